@@ -1,0 +1,230 @@
+"""Stack analysis of a case at a given set of tolerances (worst case, RSS, mean shift)."""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+from typing import Mapping
+
+import numpy as np
+
+from . import stack
+from .chain import linearise
+
+
+@dataclass(frozen=True)
+class Contribution:
+    """One contributor's part in one requirement."""
+
+    name: str
+    sensitivity: float  # ∂y/∂x [response/length]
+    count: int
+    tolerance: float  # ± [length]
+    worst_case: float  # ± count·|a|·t [response]
+    variance_share: float  # share of σ_y² [-], 0..1
+
+
+@dataclass(frozen=True)
+class RequirementAnalysis:
+    """Stack results for one requirement."""
+
+    name: str
+    linear: bool
+    nominal: float
+    lower: float | None
+    upper: float | None
+    worst_case_min: float
+    worst_case_max: float
+    sigma: float
+    fallout_below_ppm: float
+    fallout_above_ppm: float
+    target_ppm: float
+    mean_shift: float  # δ, half-width of the band the mean may sit in [response]
+    mean_shift_below_ppm: float
+    mean_shift_above_ppm: float
+    contributions: tuple[Contribution, ...] = field(default=())
+
+    @property
+    def fallout_ppm(self) -> float:
+        """Total predicted rss fallout [ppm]."""
+        return self.fallout_below_ppm + self.fallout_above_ppm
+
+    @property
+    def mean_shift_ppm(self) -> float:
+        """Total fallout with the mean at the worst place of its band [ppm]."""
+        return self.mean_shift_below_ppm + self.mean_shift_above_ppm
+
+    @property
+    def worst_case_ok(self) -> bool:
+        return (self.lower is None or self.worst_case_min >= self.lower) and (
+            self.upper is None or self.worst_case_max <= self.upper
+        )
+
+    @property
+    def cpk(self) -> float:
+        """Cpk of the response: distance from ȳ to the nearer limit over 3σ [-]."""
+        d = min(
+            math.inf if self.lower is None else self.nominal - self.lower,
+            math.inf if self.upper is None else self.upper - self.nominal,
+        )
+        return math.inf if self.sigma == 0 else d / (3.0 * self.sigma)
+
+    def to_dict(self) -> dict:
+        return {
+            "name": self.name,
+            "nominal": self.nominal,
+            "lower": self.lower,
+            "upper": self.upper,
+            "worst_case_min": self.worst_case_min,
+            "worst_case_max": self.worst_case_max,
+            "worst_case_ok": self.worst_case_ok,
+            "sigma": self.sigma,
+            "cpk": self.cpk,
+            "fallout_ppm": self.fallout_ppm,
+            "fallout_below_ppm": self.fallout_below_ppm,
+            "fallout_above_ppm": self.fallout_above_ppm,
+            "target_ppm": self.target_ppm,
+            "mean_shift": self.mean_shift,
+            "mean_shift_ppm": self.mean_shift_ppm,
+            "mean_shift_below_ppm": self.mean_shift_below_ppm,
+            "mean_shift_above_ppm": self.mean_shift_above_ppm,
+            "linear": self.linear,
+            "contributors": [
+                {
+                    "name": c.name,
+                    "sensitivity": c.sensitivity,
+                    "count": c.count,
+                    "tolerance": c.tolerance,
+                    "worst_case": c.worst_case,
+                    "variance_percent": 100.0 * c.variance_share,
+                }
+                for c in self.contributions
+            ],
+        }
+
+
+@dataclass(frozen=True)
+class StackAnalysis:
+    """Result of :func:`analyze`: one :class:`RequirementAnalysis` per requirement."""
+
+    title: str
+    units: str
+    requirements: tuple[RequirementAnalysis, ...]
+    tolerances: Mapping[str, float]
+
+    def __repr__(self) -> str:
+        lines = [f"StackAnalysis({self.title!r})"]
+        for r in self.requirements:
+            lines.append(
+                f"  {r.name}: nominal {r.nominal:.6g}, worst case "
+                f"[{r.worst_case_min:.6g}, {r.worst_case_max:.6g}], sigma {r.sigma:.4g}, "
+                f"fallout {r.fallout_ppm:.4g} ppm (target {r.target_ppm:g})"
+            )
+        return "\n".join(lines)
+
+    def to_dict(self) -> dict:
+        return {"requirements": [r.to_dict() for r in self.requirements]}
+
+    def to_frame(self):
+        """One row per requirement (pandas DataFrame)."""
+        import pandas as pd
+
+        rows = []
+        for r in self.requirements:
+            d = r.to_dict()
+            d.pop("contributors")
+            rows.append(d)
+        return pd.DataFrame(rows).set_index("name")
+
+    def contributions_frame(self):
+        """One row per (requirement, contributor) with a nonzero sensitivity."""
+        import pandas as pd
+
+        rows = [
+            {"requirement": r.name, **c}
+            for r in self.requirements
+            for c in r.to_dict()["contributors"]
+        ]
+        return pd.DataFrame(rows).set_index(["requirement", "name"])
+
+
+def analyze(case, tolerances: Mapping[str, float] | None = None) -> StackAnalysis:
+    """Worst case, RSS and mean-shift analysis of every requirement.
+
+    Parameters
+    ----------
+    case : allocator.model.Case
+    tolerances : mapping name -> ± tolerance [length], optional
+        Overrides for some or all contributors; the case's current ``tolerance``
+        values are used for the rest.
+
+    Returns
+    -------
+    StackAnalysis
+
+    Notes
+    -----
+    Per requirement with sensitivities ``a``, counts ``n``, σ factors ``f``:
+    ``W = Σ n|a|t``, ``σ_y = sqrt(Σ n (a f t)²)``, fallout
+    ``Φ((L − ȳ)/σ_y) + 1 − Φ((U − ȳ)/σ_y)``; mean-shift band ``δ = Σ n|a| m t`` with the
+    fallout taken at the worst mean in ``ȳ ± δ`` (Greenwood & Chase 1987). Nonlinear
+    expressions use their exact first-order sensitivities at the nominals.
+    """
+    t = case.current_tolerances
+    if tolerances:
+        unknown = set(tolerances) - set(case.names)
+        if unknown:
+            raise KeyError(f"unknown contributor(s): {', '.join(sorted(unknown))}")
+        t = np.array([float(tolerances.get(n, t[i])) for i, n in enumerate(case.names)])
+    n = case.counts
+    f = case.sigma_factors
+    m = case.mean_shifts
+    results = []
+    for req in case.requirements:
+        lin = linearise(case, req)
+        a = lin.sensitivity
+        wc = n * np.abs(a) * t
+        var = n * (a * f * t) ** 2
+        sigma = float(math.sqrt(var.sum()))
+        lo, hi = stack.worst_case_range(lin.nominal, a, n, t)
+        below, above = stack.normal_fallout(lin.nominal, sigma, req.lower, req.upper)
+        delta = stack.mean_shift_delta(a, n, m, t)
+        ms_below, ms_above, _ = stack.worst_mean_fallout(lin.nominal, delta, sigma, req.lower, req.upper)
+        involved = np.flatnonzero(a != 0)
+        total_var = var.sum()
+        contributions = tuple(
+            Contribution(
+                name=case.names[i],
+                sensitivity=float(a[i]),
+                count=int(n[i]),
+                tolerance=float(t[i]),
+                worst_case=float(wc[i]),
+                variance_share=float(var[i] / total_var) if total_var > 0 else 0.0,
+            )
+            for i in involved
+        )
+        results.append(
+            RequirementAnalysis(
+                name=req.name,
+                linear=lin.linear,
+                nominal=lin.nominal,
+                lower=req.lower,
+                upper=req.upper,
+                worst_case_min=lo,
+                worst_case_max=hi,
+                sigma=sigma,
+                fallout_below_ppm=below * 1e6,
+                fallout_above_ppm=above * 1e6,
+                target_ppm=req.fallout_ppm,
+                mean_shift=delta,
+                mean_shift_below_ppm=ms_below * 1e6,
+                mean_shift_above_ppm=ms_above * 1e6,
+                contributions=contributions,
+            )
+        )
+    return StackAnalysis(
+        title=case.title,
+        units=case.units,
+        requirements=tuple(results),
+        tolerances=dict(zip(case.names, map(float, t))),
+    )

@@ -1,0 +1,1 @@
+"""The command line: click commands only; every number comes from the library."""

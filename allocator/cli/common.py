@@ -1,0 +1,137 @@
+"""Pieces shared by the commands: error handling, output options, safe writing."""
+
+from __future__ import annotations
+
+import functools
+import json
+import math
+import os
+import sys
+import tempfile
+from pathlib import Path
+
+import click
+
+from ..errors import AllocatorError
+
+CASE_ARGUMENT = click.argument("case_file", metavar="CASE", type=click.Path(dir_okay=False))
+
+
+def json_option(f):
+    return click.option("--json", "as_json", is_flag=True, help="Print one JSON document on stdout.")(f)
+
+
+def csv_option(f):
+    return click.option("--csv", "as_csv", is_flag=True, help="Print CSV on stdout.")(f)
+
+
+def model_option(f):
+    return click.option(
+        "--model",
+        "models",
+        multiple=True,
+        type=click.Choice(["worst-case", "rss", "mean-shift"]),
+        help="Stack model (repeatable); default: the case's [allocation].models.",
+    )(f)
+
+
+def seed_option(f):
+    return click.option("--seed", type=int, default=None, help="Random seed (reproducible runs).")(f)
+
+
+def handle_errors(f):
+    """Turn library errors into one line on stderr and the documented exit code.
+
+    Anything unexpected is still one line (exit 2 for bad input that slipped past
+    validation would hide bugs, so unexpected errors exit 3 and ask for a report).
+    """
+
+    @functools.wraps(f)
+    def wrapper(*args, **kwargs):
+        try:
+            return f(*args, **kwargs)
+        except AllocatorError as err:
+            click.echo(f"error: {err}", err=True)
+            sys.exit(err.exit_code)
+        except click.exceptions.Exit:
+            raise
+        except click.ClickException:
+            raise
+        except KeyboardInterrupt:
+            click.echo("interrupted", err=True)
+            sys.exit(130)
+
+    return wrapper
+
+
+def load_case_or_exit(path):
+    """Load a case file (the library raises CaseError on any problem)."""
+    from ..case import load_case
+
+    return load_case(path)
+
+
+def _jsonable(value):
+    """Replace non-finite floats by None so the output is strict JSON."""
+    if isinstance(value, float) and not math.isfinite(value):
+        return None
+    if isinstance(value, dict):
+        return {str(k): _jsonable(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_jsonable(v) for v in value]
+    if hasattr(value, "item") and callable(value.item):  # numpy scalars
+        return _jsonable(value.item())
+    return value
+
+
+def echo_json(document) -> None:
+    click.echo(json.dumps(_jsonable(document), indent=2, allow_nan=False))
+
+
+def atomic_write(path, data: bytes | str, *, protect=()) -> Path:
+    """Write ``data`` to ``path`` via a temporary file and an atomic rename.
+
+    Refuses to overwrite any path in ``protect`` (e.g. the input case).
+    """
+    from ..errors import UsageError
+
+    target = Path(path)
+    for p in protect:
+        if p is not None and target.resolve() == Path(p).resolve():
+            raise UsageError(f"{target}: refusing to overwrite the input file")
+    if not target.parent.exists():
+        raise UsageError(f"{target}: folder {target.parent} does not exist")
+    mode = "wb" if isinstance(data, bytes) else "w"
+    fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=target.parent)
+    try:
+        with os.fdopen(fd, mode) as fh:
+            fh.write(data)
+        os.replace(tmp, target)
+    except BaseException:
+        try:
+            os.unlink(tmp)
+        except FileNotFoundError:
+            pass
+        raise
+    return target
+
+
+def text_table(rows, headers, *, floatfmt="g") -> str:
+    """A plain-text table for the human output (no pandas import needed)."""
+    from tabulate import tabulate
+
+    return tabulate(rows, headers=headers, floatfmt=floatfmt, disable_numparse=True)
+
+
+def fmt(value, digits: int = 4) -> str:
+    """A number for the human tables: ``g`` format, '-' for None."""
+    if value is None:
+        return "-"
+    if isinstance(value, float) and not math.isfinite(value):
+        return "inf" if value > 0 else ("-inf" if value < 0 else "nan")
+    return f"{value:.{digits}g}"
+
+
+def write_csv(frame) -> None:
+    """Print a pandas DataFrame as CSV on stdout."""
+    click.echo(frame.to_csv(), nl=False)

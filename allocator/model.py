@@ -1,0 +1,275 @@
+"""Typed, immutable objects that a validated case file becomes.
+
+Everything downstream (stack analysis, allocation, simulation, reports) works on these
+objects only; :mod:`allocator.case` is the one place that turns TOML into them.
+
+Conventions (see docs/case-file.md):
+
+- a tolerance ``t`` is the symmetric half-width: ``t = 0.05`` means ±0.05 [length];
+- in a requirement, a contributor's name stands for the *sum* of its ``count`` identical,
+  independent instances, so a linear chain's nominal is ``Σ coeff · count · nominal`` and
+  its worst case ``Σ count · |coeff| · t``.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Literal, Mapping
+
+DISTRIBUTIONS = ("normal", "uniform", "triangular")
+MODELS = ("worst-case", "rss", "mean-shift")
+CURVES = ("reciprocal", "reciprocal-power", "exponential", "table")
+DEFAULT_FALLOUT_PPM = 2700.0
+DEFAULT_MODELS = ("worst-case", "rss")
+
+Distribution = Literal["normal", "uniform", "triangular"]
+ModelName = Literal["worst-case", "rss", "mean-shift"]
+
+
+def sigma_factor(distribution: str, cp: float = 1.0) -> float:
+    """Ratio σ / t of a contributor's distribution.
+
+    Parameters
+    ----------
+    distribution : {'normal', 'uniform', 'triangular'}
+    cp : float
+        Process capability index, only meaningful for ``normal`` [-].
+
+    Returns
+    -------
+    float
+        ``1/(3·cp)`` (normal, ±t = ±3·cp·σ), ``1/√3`` (uniform on ±t),
+        ``1/√6`` (symmetric triangular on ±t).
+    """
+    if distribution == "normal":
+        return 1.0 / (3.0 * cp)
+    if distribution == "uniform":
+        return 1.0 / math.sqrt(3.0)
+    if distribution == "triangular":
+        return 1.0 / math.sqrt(6.0)
+    raise ValueError(f"unknown distribution {distribution!r}")
+
+
+@dataclass(frozen=True)
+class CostCurve:
+    """Unit cost of one part as a function of its ± tolerance.
+
+    ``curve`` is one of :data:`CURVES`. Parameters not used by a curve keep their
+    defaults. For ``table``, ``points_tolerance`` is strictly increasing and
+    ``points_cost`` holds the cost at each point; ``between`` is ``"interpolate"``
+    (piecewise linear) or ``"choose"`` (only the listed tolerances exist).
+    The arithmetic lives in :mod:`allocator.costs`.
+    """
+
+    curve: str
+    a: float = 0.0
+    b: float = 0.0
+    c: float = 0.0
+    k: float = 1.0
+    points_tolerance: tuple[float, ...] = ()
+    points_cost: tuple[float, ...] = ()
+    between: str = "interpolate"
+
+    @property
+    def is_discrete(self) -> bool:
+        """True when only listed tolerances exist (a ``choose`` table)."""
+        return self.curve == "table" and self.between == "choose"
+
+    def value(self, tolerance):
+        """Cost at ``tolerance`` (scalar or array) [currency]."""
+        from . import costs
+
+        return costs.cost_value(self, tolerance)
+
+    def derivative(self, tolerance):
+        """d cost / d tolerance [currency/length]."""
+        from . import costs
+
+        return costs.cost_derivative(self, tolerance)
+
+
+@dataclass(frozen=True)
+class Process:
+    """One way of making a contributor: an achievable range and its cost curve."""
+
+    name: str
+    limits: tuple[float, float]
+    cost: CostCurve | None
+    cp: float | None = None
+
+
+@dataclass(frozen=True)
+class Contributor:
+    """One dimension in the chain, made by one part (``count`` instances per assembly)."""
+
+    name: str
+    nominal: float
+    tolerance: float
+    limits: tuple[float, float] | None = None
+    cost: CostCurve | None = None
+    processes: tuple[Process, ...] = ()
+    description: str = ""
+    cp: float = 1.0
+    mean_shift: float = 0.0
+    distribution: str = "normal"
+    count: int = 1
+    fixed: bool = False
+
+    @property
+    def sigma_factor(self) -> float:
+        """σ / t for the contributor's own distribution and cp."""
+        return sigma_factor(self.distribution, self.cp)
+
+    def process_sigma_factor(self, process: Process) -> float:
+        """σ / t when made by ``process`` (its cp overrides the contributor's)."""
+        cp = process.cp if process.cp is not None else self.cp
+        return sigma_factor(self.distribution, cp)
+
+    def options(self) -> tuple[Process, ...]:
+        """The ways of making this contributor.
+
+        A contributor without ``process`` entries has one implicit option named
+        ``""`` with its own ``limits``, ``cost`` and ``cp``. A fixed contributor
+        without limits has the single tolerance ``tolerance``.
+        """
+        if self.processes:
+            return self.processes
+        limits = self.limits if self.limits is not None else (self.tolerance, self.tolerance)
+        return (Process(name="", limits=limits, cost=self.cost, cp=None),)
+
+    @property
+    def is_discrete(self) -> bool:
+        """True when allocation needs a discrete choice (processes or a ``choose`` table)."""
+        if self.fixed:
+            return False
+        return len(self.processes) > 1 or any(
+            p.cost is not None and p.cost.is_discrete for p in self.options()
+        )
+
+
+@dataclass(frozen=True)
+class Requirement:
+    """An assembly requirement: a response ``y`` of the contributors and its limits.
+
+    Exactly one of ``chain`` (linear: ``y = Σ coeff · x``) and ``expression``
+    (a smooth function of contributor names) is set.
+    """
+
+    name: str
+    chain: Mapping[str, float] | None = None
+    expression: str | None = None
+    lower: float | None = None
+    upper: float | None = None
+    fallout_ppm: float = DEFAULT_FALLOUT_PPM
+
+    @property
+    def is_linear(self) -> bool:
+        return self.chain is not None
+
+    @property
+    def contributor_names(self) -> tuple[str, ...]:
+        """Names this requirement depends on (chain keys, or names in the expression)."""
+        if self.chain is not None:
+            return tuple(self.chain)
+        from .chain import expression_names
+
+        return expression_names(self.expression or "")
+
+
+@dataclass(frozen=True)
+class AllocationSettings:
+    models: tuple[str, ...] = DEFAULT_MODELS
+    rounding: float | str | None = None  # a step [length], "iso286", or None
+
+
+@dataclass(frozen=True)
+class Economics:
+    volume: float | None = None  # assemblies per year
+    scrap_cost: float | None = None  # cost of one assembly outside the limits [currency]
+
+
+@dataclass(frozen=True)
+class FrontierSettings:
+    requirement: str | None = None
+    vary: str = "upper"  # lower | upper | fallout_ppm
+    range: tuple[float, float] | None = None
+    points: int = 25
+
+
+@dataclass(frozen=True)
+class Case:
+    """A whole validated case: contributors, requirements and settings."""
+
+    title: str
+    contributors: tuple[Contributor, ...]
+    requirements: tuple[Requirement, ...]
+    units: str = "mm"
+    currency: str = ""
+    allocation: AllocationSettings = field(default_factory=AllocationSettings)
+    economics: Economics = field(default_factory=Economics)
+    frontier: FrontierSettings = field(default_factory=FrontierSettings)
+    path: Path | None = None  # the file it was read from, if any
+    sha256: str | None = None  # hash of that file's bytes, for reproducibility
+
+    @property
+    def names(self) -> tuple[str, ...]:
+        return tuple(c.name for c in self.contributors)
+
+    def index(self, name: str) -> int:
+        """Position of contributor ``name`` in :attr:`contributors`."""
+        for i, c in enumerate(self.contributors):
+            if c.name == name:
+                return i
+        raise KeyError(name)
+
+    def contributor(self, name: str) -> Contributor:
+        return self.contributors[self.index(name)]
+
+    def requirement(self, name: str) -> Requirement:
+        for r in self.requirements:
+            if r.name == name:
+                return r
+        raise KeyError(name)
+
+    @property
+    def current_tolerances(self):
+        """The case's current ± tolerances as a numpy array in contributor order."""
+        import numpy as np
+
+        return np.array([c.tolerance for c in self.contributors], dtype=float)
+
+    @property
+    def counts(self):
+        import numpy as np
+
+        return np.array([c.count for c in self.contributors], dtype=float)
+
+    @property
+    def sigma_factors(self):
+        """σ / t per contributor (its own distribution and cp)."""
+        import numpy as np
+
+        return np.array([c.sigma_factor for c in self.contributors], dtype=float)
+
+    @property
+    def mean_shifts(self):
+        import numpy as np
+
+        return np.array([c.mean_shift for c in self.contributors], dtype=float)
+
+    def with_tolerances(self, tolerances: Mapping[str, float]) -> "Case":
+        """A copy whose current tolerances are replaced by ``tolerances`` (by name)."""
+        from dataclasses import replace
+
+        unknown = set(tolerances) - set(self.names)
+        if unknown:
+            raise KeyError(f"unknown contributor(s): {', '.join(sorted(unknown))}")
+        return replace(
+            self,
+            contributors=tuple(
+                replace(c, tolerance=float(tolerances[c.name])) if c.name in tolerances else c
+                for c in self.contributors
+            ),
+        )

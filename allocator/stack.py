@@ -1,0 +1,279 @@
+"""Stack models: worst case, RSS and estimated mean shift (pure functions).
+
+All functions take numpy arrays over contributors: sensitivities ``a`` [response/length],
+instance counts ``n`` [-], tolerances ``t`` [length] (± half-widths), σ/t factors ``f``
+[-] and mean-shift fractions ``m`` [-]. They never look at a case file.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+from scipy import optimize, special
+
+__all__ = [
+    "worst_case_half_width",
+    "worst_case_range",
+    "rss_sigma",
+    "mean_shift_delta",
+    "normal_fallout",
+    "worst_mean_fallout",
+    "sigma_limit",
+    "mean_shift_sigma_limit",
+]
+
+
+def _norm_cdf(z):
+    # scipy.special.ndtr is the standard normal CDF with full tail accuracy
+    return special.ndtr(z)
+
+
+def worst_case_half_width(a, n, t) -> float:
+    """Worst-case half-width of the response.
+
+    Parameters
+    ----------
+    a : array_like
+        Sensitivities ∂y/∂x_i [response/length].
+    n : array_like
+        Instances per assembly [-].
+    t : array_like
+        ± tolerances [length].
+
+    Returns
+    -------
+    float
+        ``Σ n_i·|a_i|·t_i`` [response].
+
+    Notes
+    -----
+    Every contributor at the end of its tolerance that pushes ``y`` the same way:
+    ``y ∈ [ȳ − W, ȳ + W]``, ``W = Σ n_i |a_i| t_i``.
+
+    References
+    ----------
+    .. [1] Fortini, E. T. (1967). Dimensioning for Interchangeable Manufacture.
+       Industrial Press, New York.
+
+    Examples
+    --------
+    >>> worst_case_half_width([1, -1], [1, 2], [0.1, 0.05])
+    0.2
+    """
+    a, n, t = (np.asarray(v, dtype=float) for v in (a, n, t))
+    return float(np.sum(n * np.abs(a) * t))
+
+
+def worst_case_range(nominal: float, a, n, t) -> tuple[float, float]:
+    """``(ȳ − W, ȳ + W)`` with ``W`` from :func:`worst_case_half_width` [response]."""
+    w = worst_case_half_width(a, n, t)
+    return nominal - w, nominal + w
+
+
+def rss_sigma(a, n, sigma) -> float:
+    """Standard deviation of the response by root sum of squares.
+
+    Parameters
+    ----------
+    a : array_like
+        Sensitivities [response/length].
+    n : array_like
+        Independent instances per assembly [-].
+    sigma : array_like
+        Contributor standard deviations σ_i [length] (``f_i · t_i``).
+
+    Returns
+    -------
+    float
+        ``σ_y = sqrt(Σ n_i · (a_i · σ_i)²)`` [response].
+
+    Notes
+    -----
+    Variances of independent contributors add; first order in the sensitivities
+    (exact for a linear chain).
+
+    References
+    ----------
+    .. [1] Evans, D. H. (1974). Statistical tolerancing: the state of the art, Part I.
+       Journal of Quality Technology 6(4), 188-195.
+
+    Examples
+    --------
+    >>> round(rss_sigma([1, 1], [1, 1], [0.03, 0.04]), 12)
+    0.05
+    """
+    a, n, s = (np.asarray(v, dtype=float) for v in (a, n, sigma))
+    return float(math.sqrt(np.sum(n * (a * s) ** 2)))
+
+
+def mean_shift_delta(a, n, m, t) -> float:
+    """Band within which the response mean may sit: ``δ = Σ n_i·|a_i|·m_i·t_i``.
+
+    Parameters
+    ----------
+    a, n, t : array_like
+        Sensitivities [response/length], counts [-], ± tolerances [length].
+    m : array_like
+        Mean-shift fractions, ``|μ_i − nominal_i| ≤ m_i · t_i`` [-], 0..1.
+
+    References
+    ----------
+    .. [1] Greenwood, W. H. and Chase, K. W. (1987). A new tolerance analysis method for
+       designers and manufacturers. Journal of Engineering for Industry 109(2), 112-116.
+    """
+    a, n, m, t = (np.asarray(v, dtype=float) for v in (a, n, m, t))
+    return float(np.sum(n * np.abs(a) * m * t))
+
+
+def normal_fallout(mean: float, sigma: float, lower=None, upper=None) -> tuple[float, float]:
+    """Fraction of a normal response below ``lower`` and above ``upper``.
+
+    Parameters
+    ----------
+    mean : float
+        Response mean [response].
+    sigma : float
+        Response standard deviation [response], ≥ 0.
+    lower, upper : float or None
+        Limits; a missing limit contributes 0.
+
+    Returns
+    -------
+    (float, float)
+        ``(Φ((L − μ)/σ), 1 − Φ((U − μ)/σ))`` as fractions (multiply by 1e6 for ppm).
+
+    Notes
+    -----
+    With σ = 0 the response is the mean itself: fallout 1 on a side the mean violates.
+
+    References
+    ----------
+    .. [1] Montgomery, D. C. (2009). Introduction to Statistical Quality Control, 6th ed.
+       Wiley, ch. 8 (process capability).
+
+    Examples
+    --------
+    >>> below, above = normal_fallout(0.0, 1.0, -3.0, 3.0)
+    >>> round((below + above) * 1e6)
+    2700
+    """
+    below = above = 0.0
+    if sigma <= 0:
+        if lower is not None and mean < lower:
+            below = 1.0
+        if upper is not None and mean > upper:
+            above = 1.0
+        return below, above
+    if lower is not None:
+        below = float(_norm_cdf((lower - mean) / sigma))
+    if upper is not None:
+        above = float(_norm_cdf((mean - upper) / sigma))
+    return below, above
+
+
+def worst_mean_fallout(nominal: float, delta: float, sigma: float, lower=None, upper=None):
+    """Fallout with the mean at the worst place in ``[ȳ − δ, ȳ + δ]``.
+
+    Returns
+    -------
+    (below, above, mean) : (float, float, float)
+        Fractions at the worst mean, and that mean [response].
+
+    Notes
+    -----
+    For fixed σ the total normal fallout is unimodal in the mean with its minimum at
+    the middle of the limits (one-sided: monotone), so the worst mean is an end of
+    the band. With ``δ = 0`` this is :func:`normal_fallout` at ``ȳ`` (plain RSS).
+
+    References
+    ----------
+    .. [1] Greenwood, W. H. and Chase, K. W. (1987). A new tolerance analysis method for
+       designers and manufacturers. Journal of Engineering for Industry 109(2), 112-116.
+    """
+    candidates = [nominal] if delta <= 0 else [nominal - delta, nominal + delta]
+    best = None
+    for mu in candidates:
+        below, above = normal_fallout(mu, sigma, lower, upper)
+        if best is None or below + above > best[0] + best[1]:
+            best = (below, above, mu)
+    return best
+
+
+def _two_sided_sigma(d_near: float, d_far: float, p: float) -> float:
+    """σ at which ``Φ(−d_near/σ) + Φ(−d_far/σ) = p`` (0 < d_near ≤ d_far)."""
+    one_sided = d_near / -special.ndtri(p)  # far side ignored: an upper bound on σ
+    if not math.isfinite(d_far):
+        return one_sided
+    lo = d_near / -special.ndtri(p / 2.0)  # both sides as close as the near one: lower bound
+    f = lambda s: _norm_cdf(-d_near / s) + _norm_cdf(-d_far / s) - p  # noqa: E731
+    if f(one_sided) <= 0:
+        return one_sided
+    return optimize.brentq(f, lo, one_sided, xtol=1e-15 * one_sided, rtol=1e-15, maxiter=200)
+
+
+def sigma_limit(mean: float, fallout: float, lower=None, upper=None) -> float:
+    """Largest response σ whose normal fallout with this mean is at most ``fallout``.
+
+    Parameters
+    ----------
+    mean : float
+        Response mean [response].
+    fallout : float
+        Allowed fraction outside the limits (ppm · 1e-6), 0 < fallout < 1.
+    lower, upper : float or None
+        Limits (at least one).
+
+    Returns
+    -------
+    float
+        σ_max [response]; 0 when the mean is on or outside a limit; ``inf`` when
+        there is no limit.
+
+    Notes
+    -----
+    One-sided: ``σ_max = (U − μ)/z`` with ``z = Φ⁻¹(1 − p)``. Two-sided: the 1-D root of
+    ``Φ((L − μ)/σ) + Φ((μ − U)/σ) = p`` (increasing in σ), bracketed between the
+    one-sided value and the value with both limits at the nearer distance.
+
+    References
+    ----------
+    .. [1] Chase, K. W., Greenwood, W. H., Loosli, B. G. and Hauglund, L. F. (1990).
+       Least cost tolerance allocation for mechanical assemblies with automated process
+       selection. Manufacturing Review 3(1), 49-59.
+
+    Examples
+    --------
+    >>> round(sigma_limit(0.0, 0.0027, -3.0, 3.0), 3)
+    1.0
+    """
+    if not 0.0 < fallout < 1.0:
+        raise ValueError("fallout must be strictly between 0 and 1")
+    d_low = math.inf if lower is None else mean - lower
+    d_up = math.inf if upper is None else upper - mean
+    if d_low == math.inf and d_up == math.inf:
+        return math.inf
+    d_near, d_far = min(d_low, d_up), max(d_low, d_up)
+    if d_near <= 0:
+        return 0.0
+    return _two_sided_sigma(d_near, d_far, fallout)
+
+
+def mean_shift_sigma_limit(nominal: float, delta: float, fallout: float, lower=None, upper=None) -> float:
+    """Largest σ meeting ``fallout`` with the mean anywhere in ``[ȳ − δ, ȳ + δ]``.
+
+    The worst mean is the end of the band nearest a limit (see
+    :func:`worst_mean_fallout`), so this is :func:`sigma_limit` at that end; it is
+    decreasing in δ.
+
+    References
+    ----------
+    .. [1] Greenwood, W. H. and Chase, K. W. (1987). A new tolerance analysis method for
+       designers and manufacturers. Journal of Engineering for Industry 109(2), 112-116.
+    """
+    if delta <= 0:
+        return sigma_limit(nominal, fallout, lower, upper)
+    return min(
+        sigma_limit(nominal - delta, fallout, lower, upper),
+        sigma_limit(nominal + delta, fallout, lower, upper),
+    )
