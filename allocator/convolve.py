@@ -1,0 +1,330 @@
+"""Exact distribution of a linear chain by numerical convolution (no sampling noise).
+
+A linear response ``y = Σ a_i · Σ_j x_ij`` of independent contributors is split into
+
+- a **normal part**: every normal instance together is one normal with
+  ``σ_N² = Σ count_i · (a_i · σ_i)²`` (sums of independent normals are normal, exactly);
+- a **bounded part**: the uniform and triangular instances, each of half-width ``|a_i|·t_i``.
+
+The bounded part is discretised on a common grid of step ``h``: each instance becomes the
+exact probability of each grid bin ``[(k − ½)h, (k + ½)h)`` (from its closed-form CDF), and
+the bins of all instances are convolved at once by multiplying their discrete Fourier
+transforms (``count`` identical instances: the transform raised to the power ``count``).
+Probabilities then follow without any subtraction from 1:
+
+- with a normal part, ``P(y > u) = Σ_k q_k · Φ((μ + k·h − u) / σ_N)`` with ``Φ`` evaluated
+  by :func:`scipy.special.ndtr`, which keeps its full relative accuracy far in the tails;
+- without one, the cumulative bin probabilities are interpolated linearly between bin
+  edges, summed from the nearer end so that small tails keep their relative accuracy.
+
+Rounding every instance to the grid changes the variance by about ``h²/12`` per instance,
+so the error is of second order in ``h``; the grid is chosen fine enough for ~1e-10
+absolute error in the bulk and ~1e-5 relative error at 7σ of the normal part
+(see docs/verification.md). Expressions are not linear, so this does not apply to them.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+from scipy import fft, special
+
+__all__ = [
+    "uniform_cdf",
+    "triangular_cdf",
+    "bin_masses",
+    "LinearSumDistribution",
+    "linear_sum_distribution",
+]
+
+# grid points across the bounded part's support: CDF error ~1e-10 for Irwin–Hall sums
+BULK_POINTS = 2**18
+# grid steps per σ of the normal part: relative tail error ~ (h/σ_N)² · z² / 24 ≈ 1e-5 at z = 7
+STEPS_PER_SIGMA = 400
+# hard cap on the grid (two float arrays of this length stay well under 100 MB)
+MAX_POINTS = 2**21
+# below this many steps per σ_N the normal part is put on the grid as well
+MIN_STEPS_PER_SIGMA = 8
+# the normal part, when put on the grid, is cut at ±NORMAL_CUT·σ_N (tail beyond: < 1e-40)
+NORMAL_CUT = 13.5
+
+
+def uniform_cdf(x, half_width: float):
+    """CDF of the uniform distribution on ``[−c, c]``.
+
+    Parameters
+    ----------
+    x : array_like
+        Points [length].
+    half_width : float
+        ``c > 0`` [length].
+
+    Returns
+    -------
+    numpy.ndarray
+        ``clip((x + c) / (2c), 0, 1)`` [-].
+    """
+    x = np.asarray(x, dtype=float)
+    return np.clip((x + half_width) / (2.0 * half_width), 0.0, 1.0)
+
+
+def triangular_cdf(x, half_width: float):
+    """CDF of the symmetric triangular distribution on ``[−c, c]`` (mode 0).
+
+    Parameters
+    ----------
+    x : array_like
+        Points [length].
+    half_width : float
+        ``c > 0`` [length].
+
+    Returns
+    -------
+    numpy.ndarray
+        ``(x + c)² / (2c²)`` for ``x ≤ 0``, ``1 − (c − x)² / (2c²)`` for ``x > 0`` [-].
+
+    Notes
+    -----
+    The density is ``(c − |x|) / c²``; it is the sum of two independent uniforms on
+    ``[−c/2, c/2]``.
+
+    References
+    ----------
+    .. [1] Johnson, N. L., Kotz, S. and Balakrishnan, N. (1995). Continuous Univariate
+       Distributions, Vol. 2, 2nd ed. Wiley, ch. 26 (uniform and triangular).
+    """
+    x = np.clip(np.asarray(x, dtype=float), -half_width, half_width)
+    c2 = 2.0 * half_width * half_width
+    return np.where(x <= 0.0, (x + half_width) ** 2 / c2, 1.0 - (half_width - x) ** 2 / c2)
+
+
+def _normal_cdf(x, sigma: float):
+    return special.ndtr(np.asarray(x, dtype=float) / sigma)
+
+
+_CDFS = {"uniform": uniform_cdf, "triangular": triangular_cdf, "normal": _normal_cdf}
+
+
+def bin_masses(distribution: str, scale: float, step: float) -> np.ndarray:
+    """Exact probability of each grid bin for a symmetric distribution centred on 0.
+
+    Parameters
+    ----------
+    distribution : {'uniform', 'triangular', 'normal'}
+    scale : float
+        Half-width ``c`` (uniform, triangular) or σ (normal) [length].
+    step : float
+        Grid step ``h`` [length].
+
+    Returns
+    -------
+    numpy.ndarray
+        Masses of bins ``k = −m … m`` (length ``2m + 1``), bin ``k`` being
+        ``[(k − ½)h, (k + ½)h)``.
+
+    Notes
+    -----
+    The left half is taken from CDF differences (small numbers, no cancellation) and
+    mirrored, so the right tail is as accurate as the left one.
+    """
+    cdf = _CDFS[distribution]
+    reach = NORMAL_CUT * scale if distribution == "normal" else scale
+    m = int(math.ceil(reach / step + 0.5))
+    edges = (np.arange(-m, 2) - 0.5) * step  # edges of bins −m … 0
+    left = np.diff(cdf(edges, scale))  # bins −m … 0
+    left[-1] = 1.0 - 2.0 * float(cdf(-0.5 * step, scale))
+    return np.concatenate([left, left[-2::-1]])
+
+
+def _spectrum_power(spectrum: np.ndarray, power: int) -> np.ndarray:
+    """``spectrum ** power`` by repeated squaring (exact for integer counts)."""
+    result = None
+    base = spectrum
+    while power:
+        if power & 1:
+            result = base.copy() if result is None else result * base
+        power >>= 1
+        if power:
+            base = base * base
+    return result
+
+
+@dataclass(frozen=True)
+class LinearSumDistribution:
+    """Distribution of a linear response: grid masses of the bounded part plus a normal part.
+
+    Attributes
+    ----------
+    mean : float
+        Centre of the distribution (response at nominals plus any mean shift) [response].
+    normal_sigma : float
+        σ of the part kept as an exact normal (0 when it is on the grid) [response].
+    step : float
+        Grid step ``h`` [response] (0 for a point mass).
+    masses : numpy.ndarray
+        Probability at ``mean + k·h``, ``k = −m … m``.
+    """
+
+    mean: float
+    normal_sigma: float
+    step: float
+    masses: np.ndarray
+
+    @property
+    def half_points(self) -> int:
+        return (len(self.masses) - 1) // 2
+
+    @property
+    def offsets(self) -> np.ndarray:
+        """Grid points relative to :attr:`mean` [response]."""
+        m = self.half_points
+        return np.arange(-m, m + 1) * self.step
+
+    def _tail(self, x: float, upper: bool) -> float:
+        if self.normal_sigma > 0:
+            keep = self.masses > 0
+            pts = self.mean + self.offsets[keep]
+            z = (pts - x) / self.normal_sigma if upper else (x - pts) / self.normal_sigma
+            return float(np.sum(self.masses[keep] * special.ndtr(z)))
+        if self.step == 0:
+            return float(self.mean > x) if upper else float(self.mean < x)
+        # linear interpolation of the cumulative bin masses between bin edges
+        m = self.half_points
+        pos = (x - self.mean) / self.step + m + 0.5  # edge index: edge j is below bin j
+        if upper:
+            cum = np.concatenate([np.cumsum(self.masses[::-1])[::-1], [0.0]])  # P(y > edge j)
+            fill = (1.0, 0.0)
+        else:
+            cum = np.concatenate([[0.0], np.cumsum(self.masses)])  # P(y < edge j)
+            fill = (0.0, 1.0)
+        if pos <= 0:
+            return fill[0]
+        if pos >= len(self.masses):
+            return fill[1]
+        j = int(math.floor(pos))
+        w = pos - j
+        return float((1.0 - w) * cum[j] + w * cum[j + 1])
+
+    def cdf(self, x: float) -> float:
+        """``P(y < x)``."""
+        return self._tail(float(x), upper=False)
+
+    def sf(self, x: float) -> float:
+        """``P(y > x)``, computed directly (no ``1 − cdf``)."""
+        return self._tail(float(x), upper=True)
+
+    def fallout(self, lower=None, upper=None) -> tuple[float, float]:
+        """``(P(y < lower), P(y > upper))``; a missing limit contributes 0."""
+        below = 0.0 if lower is None else self.cdf(lower)
+        above = 0.0 if upper is None else self.sf(upper)
+        return below, above
+
+
+def linear_sum_distribution(
+    coefficients,
+    counts,
+    tolerances,
+    distributions,
+    sigma_factors,
+    *,
+    mean: float = 0.0,
+    bulk_points: int = BULK_POINTS,
+    steps_per_sigma: int = STEPS_PER_SIGMA,
+    max_points: int = MAX_POINTS,
+) -> LinearSumDistribution:
+    """Exact (numerically convolved) distribution of ``y = mean + Σ a_i · Σ_j d_ij``.
+
+    Parameters
+    ----------
+    coefficients : array_like
+        Chain coefficients ``a_i`` [response/length].
+    counts : array_like of int
+        Independent identical instances per assembly [-].
+    tolerances : array_like
+        ± tolerances ``t_i`` [length].
+    distributions : sequence of {'normal', 'uniform', 'triangular'}
+        Deviation ``d_ij`` of each instance: normal with σ = ``sigma_factor · t``,
+        uniform or symmetric triangular on ``±t``.
+    sigma_factors : array_like
+        σ/t per contributor (used for normal contributors only) [-].
+    mean : float
+        Response when every deviation is 0 (nominal plus any mean shift) [response].
+    bulk_points, steps_per_sigma, max_points : int
+        Grid resolution: at least ``bulk_points`` steps across the bounded part and
+        ``steps_per_sigma`` steps per σ of the normal part, at most ``max_points``.
+
+    Returns
+    -------
+    LinearSumDistribution
+
+    Notes
+    -----
+    Characteristic functions multiply for sums of independent variables; on the grid
+    this is the product of the discrete Fourier transforms of the bin masses, each
+    raised to its ``count``. The normal part ``N(0, σ_N²)`` is kept analytic and
+    applied as ``P(y > u) = Σ_k q_k Φ((μ + k h − u)/σ_N)``. The bin rounding adds about
+    ``h²/12`` of variance per instance, so the error is ``O(h²)``.
+
+    References
+    ----------
+    .. [1] Cooley, J. W. and Tukey, J. W. (1965). An algorithm for the machine calculation
+       of complex Fourier series. Mathematics of Computation 19(90), 297-301.
+    .. [2] Feller, W. (1971). An Introduction to Probability Theory and Its Applications,
+       Vol. 2, 2nd ed. Wiley, ch. XV (characteristic functions of sums).
+
+    Examples
+    --------
+    >>> d = linear_sum_distribution([1, 1], [1, 1], [0.5, 0.5], ["uniform"] * 2, [0, 0])
+    >>> round(d.cdf(-0.5), 9)  # two uniforms on ±0.5: triangular on ±1, P(y < −0.5) = 1/8
+    0.125
+    """
+    a = np.abs(np.asarray(coefficients, dtype=float))
+    n = np.asarray(counts, dtype=int)
+    t = np.asarray(tolerances, dtype=float)
+    f = np.asarray(sigma_factors, dtype=float)
+    kinds = np.asarray(list(distributions))
+    normal = kinds == "normal"
+    normal_var = float(np.sum(n[normal] * (a[normal] * f[normal] * t[normal]) ** 2))
+    normal_sigma = math.sqrt(normal_var)
+
+    # bounded items, identical (kind, half-width) merged into one count
+    items: dict[tuple[str, float], int] = {}
+    for kind, width, count in zip(kinds[~normal], (a * t)[~normal], n[~normal]):
+        if width > 0 and count > 0:
+            items[(str(kind), float(width))] = items.get((str(kind), float(width)), 0) + int(count)
+    bounded_half = sum(w * c for (_, w), c in items.items())
+
+    if bounded_half == 0:
+        return LinearSumDistribution(float(mean), normal_sigma, 0.0, np.ones(1))
+
+    step = 2.0 * bounded_half / bulk_points
+    if normal_sigma > 0:
+        step = min(step, normal_sigma / steps_per_sigma)
+    step = max(step, 2.0 * bounded_half / max_points)
+    if 0 < normal_sigma < MIN_STEPS_PER_SIGMA * step:
+        # the normal part is too narrow to smooth the grid: put it on the grid as well
+        items[("normal", normal_sigma)] = 1
+        normal_sigma = 0.0
+
+    masses = {key: bin_masses(key[0], key[1], step) for key in items}
+    total_half = sum((len(q) - 1) // 2 * items[key] for key, q in masses.items())
+    size = fft.next_fast_len(2 * total_half + 1, real=True)
+    spectrum = None
+    for key, q in masses.items():
+        m = (len(q) - 1) // 2
+        buffer = np.zeros(size)
+        buffer[: m + 1] = q[m:]  # centre the bins on index 0 (circular layout)
+        buffer[size - m :] = q[:m]
+        part = _spectrum_power(fft.rfft(buffer), items[key])
+        spectrum = part if spectrum is None else spectrum * part
+    circular = fft.irfft(spectrum, size)
+    q = np.concatenate([circular[size - total_half :], circular[: total_half + 1]])
+    # FFT round-off leaves ±1e-18 noise where the true mass is 0: no negative masses,
+    # nothing outside the support
+    q = np.clip(q, 0.0, None)
+    reach = bounded_half + step + (NORMAL_CUT * math.sqrt(normal_var) if normal_sigma == 0 else 0.0)
+    outside = np.abs(np.arange(-total_half, total_half + 1)) * step > reach + step
+    q[outside] = 0.0
+    return LinearSumDistribution(float(mean), normal_sigma, step, q)
