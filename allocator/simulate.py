@@ -1,0 +1,763 @@
+"""Verification of a set of tolerances by Monte Carlo, with exact convolution for chains.
+
+:func:`verify` draws whole assemblies: every contributor instance independently from its
+own distribution (normal with σ = ``sigma_factor · t``, uniform or symmetric triangular on
+``±t``), a contributor's value being the sum of its ``count`` instances, and evaluates each
+requirement's exact response (the expression itself, not its linearisation). It counts the
+assemblies outside the limits, gives an exact (Clopper–Pearson) confidence interval, and
+sets beside it the analytic predictions (RSS, estimated mean shift) and, for linear chains,
+the exact fallout by numerical convolution (:mod:`allocator.convolve`).
+
+Mean shift. When a contributor has ``mean_shift > 0`` the simulation puts its mean where it
+hurts: for each requirement separately, at ``nominal + s · sign(a_i) · mean_shift · t`` per
+instance, with ``s = +1`` when the worst side is the upper limit (the end of the band
+``ȳ ± δ`` with the larger normal fallout, as in :func:`allocator.stack.worst_mean_fallout`)
+and ``s = −1`` otherwise. Requirements may have different worst sides, so each requirement
+is evaluated with its own shift on the same random draws.
+
+Reproducibility. The random stream is cut into blocks of a fixed size that depends only on
+the case (2¹⁶ assemblies unless the case is very wide); block ``b`` draws from
+``SeedSequence(seed, spawn_key=(b,))`` (the ``b``-th child of ``SeedSequence(seed).spawn``).
+Chunks are whole numbers of blocks and every floating-point sum is taken per block, so the
+same seed gives the same numbers whatever ``chunk_size`` is chosen. Memory is bounded by
+the chunk, never by the number of samples.
+
+Cautions: the results assume stable, capable processes with the stated distributions and
+independent contributors; safety-critical fits are checked worst case and against the
+applicable codes and a licensed engineering review.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+import sys
+import tempfile
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Mapping
+
+import numpy as np
+
+from . import stack
+from .chain import compile_expression, linearise, nominal_values
+from .convolve import linear_sum_distribution
+from .errors import CaseError
+
+__all__ = [
+    "BLOCK_SIZE",
+    "CHUNK_BYTES",
+    "clopper_pearson",
+    "RequirementCheck",
+    "Verification",
+    "verify",
+    "plot_verification",
+    "render_verification_plot",
+]
+
+BLOCK_SIZE = 2**16  # assemblies per random-stream block (fixed: results never depend on chunks)
+CHUNK_BYTES = 64 * 2**20  # default memory budget of one chunk's arrays [bytes]
+CONFIDENCE = 0.95
+HISTOGRAM_BINS = 200
+_HISTOGRAM_MARGIN = 0.05  # widen the histogram range by this fraction of its span each side
+_HISTOGRAM_QUANTILES = (0.0005, 0.9995)  # of block 0, for responses the worst case misjudges
+
+
+def clopper_pearson(failures, trials, confidence: float = CONFIDENCE):
+    """Exact two-sided confidence interval of a binomial proportion.
+
+    Parameters
+    ----------
+    failures : int or array_like of int
+        Number of failures ``k`` [-].
+    trials : int or array_like of int
+        Number of trials ``n ≥ 1`` [-].
+    confidence : float
+        Two-sided confidence level, e.g. 0.95 [-].
+
+    Returns
+    -------
+    (low, high) : numpy.ndarray
+        Bounds on the failure probability [-]; ``low = 0`` when ``k = 0`` and
+        ``high = 1`` when ``k = n``.
+
+    Notes
+    -----
+    With ``α = 1 − confidence``: ``low = B(α/2; k, n − k + 1)`` and
+    ``high = B(1 − α/2; k + 1, n − k)``, ``B(p; a, b)`` the beta quantile. The interval
+    inverts two one-sided binomial tests, so its coverage is at least ``confidence``
+    for every true proportion.
+
+    References
+    ----------
+    .. [1] Clopper, C. J. and Pearson, E. S. (1934). The use of confidence or fiducial
+       limits illustrated in the case of the binomial. Biometrika 26(4), 404-413.
+
+    Examples
+    --------
+    >>> low, high = clopper_pearson(0, 1_000_000)
+    >>> float(low), round(float(high) * 1e6, 3)  # "rule of three": about 3/n
+    (0.0, 3.689)
+    """
+    from scipy import special
+
+    k = np.asarray(failures, dtype=float)
+    n = np.asarray(trials, dtype=float)
+    alpha = 1.0 - confidence
+    with np.errstate(all="ignore"):
+        low = np.where(k > 0, special.betaincinv(k, n - k + 1.0, alpha / 2.0), 0.0)
+        high = np.where(k < n, special.betaincinv(k + 1.0, n - k, 1.0 - alpha / 2.0), 1.0)
+    return low, high
+
+
+@dataclass
+class RequirementCheck:
+    """Verification of one requirement (see :class:`Verification`).
+
+    Fallouts are in ppm of assemblies. ``below`` / ``above`` / ``undefined`` count the
+    sampled assemblies under the lower limit, over the upper limit and with a response
+    that is not a number (e.g. ``sqrt`` of a negative value; counted as failures).
+    """
+
+    name: str
+    linear: bool
+    lower: float | None
+    upper: float | None
+    samples: int
+    below: int
+    above: int
+    undefined: int
+    fallout_ppm: float
+    ci_low_ppm: float
+    ci_high_ppm: float
+    target_ppm: float
+    rss_ppm: float
+    mean_shift_ppm: float | None
+    predicted_ppm: float
+    convolution_ppm: float | None
+    convolution_note: str
+    nominal: float
+    sigma: float
+    shift_side: int
+    shifted_mean: float
+    mean: float
+    std: float
+    model_disagrees: bool
+    status: str
+    decided: bool
+    histogram_edges: np.ndarray = field(repr=False)
+    histogram_counts: np.ndarray = field(repr=False)
+    underflow: int = 0
+    overflow: int = 0
+
+    @property
+    def failures(self) -> int:
+        return self.below + self.above + self.undefined
+
+    def to_dict(self, histogram: bool = True) -> dict:
+        out = {
+            "name": self.name,
+            "samples": self.samples,
+            "fallout_ppm": self.fallout_ppm,
+            "ci_low_ppm": self.ci_low_ppm,
+            "ci_high_ppm": self.ci_high_ppm,
+            "below": self.below,
+            "above": self.above,
+            "undefined": self.undefined,
+            "target_ppm": self.target_ppm,
+            "status": self.status,
+            "decided": self.decided,
+            "rss_ppm": self.rss_ppm,
+            "mean_shift_ppm": self.mean_shift_ppm,
+            "predicted_ppm": self.predicted_ppm,
+            "model_disagrees": self.model_disagrees,
+            "convolution_ppm": self.convolution_ppm,
+            "convolution_note": self.convolution_note,
+            "linear": self.linear,
+            "lower": self.lower,
+            "upper": self.upper,
+            "nominal": self.nominal,
+            "sigma": self.sigma,
+            "shift_side": self.shift_side,
+            "shifted_mean": self.shifted_mean,
+            "mean": self.mean,
+            "std": self.std,
+        }
+        if histogram:
+            out["histogram"] = {
+                "edges": self.histogram_edges.tolist(),
+                "counts": self.histogram_counts.tolist(),
+                "underflow": self.underflow,
+                "overflow": self.overflow,
+            }
+        return out
+
+
+@dataclass
+class Verification:
+    """Result of :func:`verify`, read like :class:`scipy.optimize.OptimizeResult`.
+
+    Attributes
+    ----------
+    status : {'pass', 'fail'}
+        'fail' when some requirement's fallout exceeds its target beyond the confidence
+        interval (``ci_low_ppm > target_ppm``).
+    success : bool
+        ``status == 'pass'``.
+    message : str
+        One line for people.
+    seed : int
+        Seed of the run; ``verify(..., seed=seed)`` repeats it exactly.
+    samples, block_size, chunk_size : int
+        Assemblies simulated, the fixed stream block and the chunk used [-].
+    confidence : float
+        Level of the Clopper–Pearson intervals [-].
+    tolerances : dict
+        ± tolerance per contributor used [length].
+    requirements : list of RequirementCheck
+    """
+
+    status: str
+    success: bool
+    message: str
+    seed: int
+    samples: int
+    block_size: int
+    chunk_size: int
+    confidence: float
+    shift_means: bool
+    tolerances: dict
+    requirements: list
+
+    def __getitem__(self, name: str) -> RequirementCheck:
+        for check in self.requirements:
+            if check.name == name:
+                return check
+        raise KeyError(name)
+
+    def to_dict(self, histogram: bool = True) -> dict:
+        return {
+            "status": self.status,
+            "success": self.success,
+            "message": self.message,
+            "seed": self.seed,
+            "samples": self.samples,
+            "block_size": self.block_size,
+            "chunk_size": self.chunk_size,
+            "confidence": self.confidence,
+            "shift_means": self.shift_means,
+            "tolerances": dict(self.tolerances),
+            "requirements": [c.to_dict(histogram) for c in self.requirements],
+        }
+
+    def to_frame(self):
+        """One row per requirement (pandas DataFrame, index = requirement name)."""
+        import pandas as pd
+
+        rows = [c.to_dict(histogram=False) for c in self.requirements]
+        return pd.DataFrame(rows).set_index("name")
+
+    def __repr__(self) -> str:
+        lines = [
+            f"Verification(status={self.status!r}, samples={self.samples}, seed={self.seed})",
+            f"  message: {self.message}",
+        ]
+        for c in self.requirements:
+            conv = "—" if c.convolution_ppm is None else f"{c.convolution_ppm:.4g}"
+            lines.append(
+                f"  {c.name}: {c.fallout_ppm:.4g} ppm [{c.ci_low_ppm:.4g}, {c.ci_high_ppm:.4g}]"
+                f" predicted {c.predicted_ppm:.4g} convolution {conv} target {c.target_ppm:g}"
+                f" -> {c.status}"
+            )
+        return "\n".join(lines)
+
+
+# --------------------------------------------------------------------------- sampling
+
+
+class _Sampler:
+    """Column layout of one block's random draws and the maps from draws to responses.
+
+    A block draws ``Z`` (rows × normal contributors, standard normal) and ``U``
+    (rows × uniform columns, U(0, 1)): one column per uniform instance and two per
+    triangular instance (the sum of two uniforms is triangular).
+    """
+
+    def __init__(self, case, tolerances: np.ndarray):
+        kinds = [c.distribution for c in case.contributors]
+        counts = case.counts.astype(int)
+        self.n = len(kinds)
+        self.normal = np.array([i for i, k in enumerate(kinds) if k == "normal"], dtype=int)
+        # σ of the sum of `count` normal instances is σ·√count: one draw per contributor
+        self.normal_scale = (
+            case.sigma_factors[self.normal] * tolerances[self.normal] * np.sqrt(counts[self.normal])
+        )
+        owner, scale, offset = [], [], []
+        for i, kind in enumerate(kinds):
+            if kind == "uniform":  # t·(2u − 1)
+                per = 1
+                col_scale, col_offset = 2.0 * tolerances[i], -tolerances[i]
+            elif kind == "triangular":  # t·(u1 + u2 − 1)
+                per = 2
+                col_scale, col_offset = tolerances[i], -0.5 * tolerances[i]
+            else:
+                continue
+            columns = per * counts[i]
+            owner += [i] * columns
+            scale += [col_scale] * columns
+            offset += [col_offset] * columns
+        self.uniform_owner = np.array(owner, dtype=int)
+        self.uniform_scale = np.array(scale, dtype=float)
+        self.uniform_offset = np.array(offset, dtype=float)
+        self.bounded = np.unique(self.uniform_owner)
+        # first column of each bounded contributor, for np.add.reduceat
+        self.bounded_starts = np.searchsorted(self.uniform_owner, self.bounded)
+
+    @property
+    def n_normal(self) -> int:
+        return len(self.normal)
+
+    @property
+    def n_uniform(self) -> int:
+        return len(self.uniform_owner)
+
+    def draw(self, rng, z_out: np.ndarray, u_out: np.ndarray) -> None:
+        """Fill one block: the normal columns, then the uniform columns (fixed order)."""
+        if self.n_normal:
+            rng.standard_normal(out=z_out)
+        if self.n_uniform:
+            rng.random(out=u_out)
+
+    def linear_weights(self, a_matrix: np.ndarray):
+        """Weights so that ``y − ȳ − shift = Z @ wz + U @ wu + offset`` for each chain.
+
+        ``a_matrix`` is contributors × requirements.
+        """
+        wz = a_matrix[self.normal] * self.normal_scale[:, None]
+        wu = a_matrix[self.uniform_owner] * self.uniform_scale[:, None]
+        offset = (a_matrix[self.uniform_owner] * self.uniform_offset[:, None]).sum(axis=0)
+        return wz, wu, offset
+
+    def deviations(self, z: np.ndarray, u: np.ndarray) -> np.ndarray:
+        """Deviation of each contributor's value (sum of its instances) from nominal."""
+        dev = np.empty((z.shape[0], self.n))
+        if self.n_normal:
+            dev[:, self.normal] = z * self.normal_scale
+        if self.n_uniform:
+            v = u * self.uniform_scale + self.uniform_offset
+            dev[:, self.bounded] = np.add.reduceat(v, self.bounded_starts, axis=1)
+        return dev
+
+
+@dataclass
+class _Plan:
+    """Per-requirement quantities fixed before sampling."""
+
+    requirement: object
+    linear: bool
+    nominal: float
+    a: np.ndarray
+    sigma: float
+    delta: float
+    side: int
+    shift: np.ndarray  # added to each contributor's value (sum of instances)
+    shifted_mean: float
+    rss_ppm: float
+    mean_shift_ppm: float | None
+    lower: float
+    upper: float
+
+
+def _tolerance_array(case, tolerances) -> np.ndarray:
+    if tolerances is None:
+        t = case.current_tolerances
+    elif isinstance(tolerances, Mapping) or hasattr(tolerances, "items"):
+        t = case.current_tolerances.copy()
+        for name, value in dict(tolerances.items()).items():
+            if name not in case.names:
+                raise CaseError("unknown contributor", field=f"tolerances.{name}")
+            t[case.index(name)] = float(value)
+    else:
+        t = np.asarray(tolerances, dtype=float).copy()
+        if t.shape != (len(case.contributors),):
+            raise CaseError(
+                f"expected {len(case.contributors)} tolerances (one per contributor), got {t.size}",
+                field="tolerances",
+            )
+    for name, value in zip(case.names, t):
+        if not (math.isfinite(value) and value > 0):
+            raise CaseError(f"must be a positive finite number, got {value!r}", field=f"tolerances.{name}")
+    return t
+
+
+def _plan(case, requirement, t: np.ndarray, shift_means: bool) -> _Plan:
+    lin = linearise(case, requirement)
+    counts = case.counts
+    sigma = stack.rss_sigma(lin.sensitivity, counts, case.sigma_factors * t)
+    delta = stack.mean_shift_delta(lin.sensitivity, counts, case.mean_shifts, t) if shift_means else 0.0
+    lower, upper = requirement.lower, requirement.upper
+    rss_below, rss_above = stack.normal_fallout(lin.nominal, sigma, lower, upper)
+    shift_below, shift_above, worst_mean = stack.worst_mean_fallout(lin.nominal, delta, sigma, lower, upper)
+    side = 0 if delta <= 0 else (1 if worst_mean > lin.nominal else -1)
+    # per instance: s·sign(a_i)·m_i·t_i; the contributor's value carries count instances
+    shift = side * np.sign(lin.sensitivity) * case.mean_shifts * t * counts if shift_means else np.zeros_like(t)
+    return _Plan(
+        requirement=requirement,
+        linear=lin.linear,
+        nominal=lin.nominal,
+        a=lin.sensitivity,
+        sigma=sigma,
+        delta=delta,
+        side=side,
+        shift=shift,
+        shifted_mean=lin.nominal + side * delta,
+        rss_ppm=(rss_below + rss_above) * 1e6,
+        mean_shift_ppm=(shift_below + shift_above) * 1e6 if delta > 0 else None,
+        lower=-math.inf if lower is None else float(lower),
+        upper=math.inf if upper is None else float(upper),
+    )
+
+
+def _block_size(columns: int) -> int:
+    """Stream block: 2¹⁶ assemblies unless a block of this width would pass the budget."""
+    size = BLOCK_SIZE
+    while size > 1024 and size * columns * 8 > CHUNK_BYTES:
+        size //= 2
+    return size
+
+
+def _block_rng(entropy: int, block: int) -> np.random.Generator:
+    # the block-th child of SeedSequence(entropy).spawn(...), built directly
+    return np.random.Generator(np.random.PCG64(np.random.SeedSequence(entropy, spawn_key=(block,))))
+
+
+def _histogram_range(plan: _Plan, t: np.ndarray, case, first_block: np.ndarray) -> tuple[float, float]:
+    """Fixed bins: the (shifted) worst-case range, widened by block 0's spread if needed."""
+    half = stack.worst_case_half_width(plan.a, case.counts, t)
+    lo, hi = plan.shifted_mean - half, plan.shifted_mean + half
+    finite = first_block[np.isfinite(first_block)]
+    if finite.size:
+        q_lo, q_hi = np.quantile(finite, _HISTOGRAM_QUANTILES)
+        lo, hi = min(lo, float(q_lo)), max(hi, float(q_hi))
+    span = hi - lo
+    if not span > 0:
+        span = max(abs(plan.shifted_mean), 1.0) * 1e-9
+    return lo - _HISTOGRAM_MARGIN * span, hi + _HISTOGRAM_MARGIN * span
+
+
+def verify(
+    case,
+    tolerances=None,
+    *,
+    samples: int = 1_000_000,
+    seed: int | None = None,
+    chunk_size: int | None = None,
+    progress: bool = False,
+    shift_means: bool = True,
+    bins: int = HISTOGRAM_BINS,
+) -> Verification:
+    """Check tolerances by Monte Carlo simulation of whole assemblies.
+
+    Parameters
+    ----------
+    case : allocator.model.Case
+    tolerances : mapping name -> float, pandas Series, array_like or None
+        ± tolerances to check [length]; a mapping may name only some contributors
+        (the others keep their current tolerance). ``None``: the case's current ones.
+    samples : int
+        Assemblies to simulate [-], ≥ 1.
+    seed : int or None
+        Non-negative seed; ``None`` draws fresh entropy, reported in the result.
+    chunk_size : int or None
+        Assemblies per vectorised step, rounded up to whole stream blocks; default:
+        as many blocks as fit in about 64 MB. Results do not depend on it.
+    progress : bool
+        Show a progress bar on stderr when it is a terminal.
+    shift_means : bool
+        Place contributor means at their worst-side mean shift (see module notes);
+        ``False`` simulates centred processes.
+    bins : int
+        Histogram bins kept per requirement.
+
+    Returns
+    -------
+    Verification
+
+    Notes
+    -----
+    The fallout estimate is ``p̂ = k/N`` with a Clopper–Pearson interval (see
+    :func:`clopper_pearson`). A requirement fails when the lower bound exceeds the
+    target. ``model_disagrees`` is set when the analytic prediction (RSS, or estimated
+    mean shift when shifts are simulated) lies outside the interval: expected in about
+    5 % of runs by chance, systematically when the normal or linear model is wrong.
+
+    References
+    ----------
+    .. [1] Metropolis, N. and Ulam, S. (1949). The Monte Carlo method. Journal of the
+       American Statistical Association 44(247), 335-341.
+    .. [2] Clopper, C. J. and Pearson, E. S. (1934). Biometrika 26(4), 404-413.
+    .. [3] Greenwood, W. H. and Chase, K. W. (1987). A new tolerance analysis method for
+       designers and manufacturers. Journal of Engineering for Industry 109(2), 112-116.
+    """
+    samples = int(samples)
+    if samples < 1:
+        raise ValueError("samples must be at least 1")
+    if seed is None:
+        seed = int(np.random.SeedSequence().entropy)
+    seed = int(seed)
+    if seed < 0:
+        raise ValueError("seed must be a non-negative integer")
+    t = _tolerance_array(case, tolerances)
+    plans = [_plan(case, r, t, shift_means) for r in case.requirements]
+    sampler = _Sampler(case, t)
+    linear = [p for p in plans if p.linear]
+    nonlinear = [p for p in plans if not p.linear]
+    n_req = len(plans)
+    order = linear + nonlinear  # response columns: chains first
+
+    columns = sampler.n_normal + sampler.n_uniform
+    row_bytes = 8 * (columns + (sampler.n if nonlinear else 0) + 3 * n_req) + n_req
+    block = _block_size(max(row_bytes // 8, 1))
+    if chunk_size is None:
+        chunk_blocks = max(1, CHUNK_BYTES // (row_bytes * block))
+    else:
+        chunk_blocks = max(1, math.ceil(int(chunk_size) / block))
+    chunk_rows = chunk_blocks * block
+
+    a_lin = np.column_stack([p.a for p in linear]) if linear else np.zeros((sampler.n, 0))
+    wz, wu, offset = sampler.linear_weights(a_lin)
+    centre = np.array([p.shifted_mean for p in order])  # responses are summed relative to this
+    lin_const = np.array([p.shifted_mean for p in linear]) + offset - centre[: len(linear)]
+    lower = np.array([p.lower for p in order])
+    upper = np.array([p.upper for p in order])
+    compiled = [compile_expression(p.requirement.expression, case.names) for p in nonlinear]
+    nominal_at = nominal_values(case)
+    base_values = np.array([nominal_at[name] for name in case.names])
+
+    below = np.zeros(n_req, dtype=np.int64)
+    above = np.zeros(n_req, dtype=np.int64)
+    undefined = np.zeros(n_req, dtype=np.int64)
+    sum1 = np.zeros(n_req)
+    sum2 = np.zeros(n_req)
+    valid = np.zeros(n_req, dtype=np.int64)
+    hist = np.zeros((n_req, bins + 2), dtype=np.int64)  # [underflow, bins…, overflow]
+    hist_lo = hist_scale = None
+
+    z_buf = np.empty((chunk_rows, sampler.n_normal))
+    u_buf = np.empty((chunk_rows, sampler.n_uniform))
+    y_buf = np.empty((chunk_rows, n_req))
+
+    bar = None
+    if progress and sys.stderr.isatty():
+        from tqdm import tqdm
+
+        bar = tqdm(total=samples, unit="assemblies", unit_scale=True, file=sys.stderr, leave=False)
+    try:
+        n_blocks = math.ceil(samples / block)
+        for first in range(0, n_blocks, chunk_blocks):
+            blocks = range(first, min(first + chunk_blocks, n_blocks))
+            spans = [(b, (b - first) * block, min(block, samples - b * block)) for b in blocks]
+            rows = spans[-1][1] + spans[-1][2]
+            for b, start, size in spans:
+                sampler.draw(_block_rng(seed, b), z_buf[start : start + size], u_buf[start : start + size])
+            z, u, y = z_buf[:rows], u_buf[:rows], y_buf[:rows]
+            # products per block: BLAS may round differently with array length, and
+            # per-block products keep every number bit-identical for any chunk size
+            for _, start, size in spans:
+                part = slice(start, start + size)
+                y_lin = y[part, : len(linear)]
+                if linear:
+                    np.matmul(z[part], wz, out=y_lin)
+                    if sampler.n_uniform:
+                        y_lin += u[part] @ wu
+                    y_lin += lin_const
+                if nonlinear:
+                    dev = sampler.deviations(z[part], u[part])
+                    for j, (plan, expr) in enumerate(zip(nonlinear, compiled)):
+                        values = dev + (base_values + plan.shift)
+                        env = {name: values[:, i] for i, name in enumerate(case.names)}
+                        response = np.broadcast_to(expr.evaluate(env), (size,))
+                        y[part, len(linear) + j] = np.real(response) - plan.shifted_mean
+            finite = np.isfinite(y)
+            if hist_lo is None:  # bins fixed from block 0, the same for every chunking
+                ranges = np.array(
+                    [_histogram_range(p, t, case, y[: spans[0][2], j] + centre[j]) for j, p in enumerate(order)]
+                )
+                hist_lo = ranges[:, 0] - centre
+                hist_scale = bins / (ranges[:, 1] - ranges[:, 0])
+            below += np.count_nonzero(y < lower - centre, axis=0)
+            above += np.count_nonzero(y > upper - centre, axis=0)
+            undefined += np.count_nonzero(np.isnan(y), axis=0)
+            valid += np.count_nonzero(finite, axis=0)
+            clean = np.where(finite, y, 0.0)
+            for _, start, size in spans:
+                part = clean[start : start + size]
+                sum1 += part.sum(axis=0)
+                sum2 += (part * part).sum(axis=0)
+            # histogram of all requirements in one bincount; NaN goes to "underflow"
+            # and is removed again below
+            index = np.floor((np.nan_to_num(y, nan=-np.inf) - hist_lo) * hist_scale)
+            index = np.clip(index, -1, bins).astype(np.int64) + 1
+            index += np.arange(n_req) * (bins + 2)
+            hist += np.bincount(index.ravel(), minlength=n_req * (bins + 2)).reshape(n_req, bins + 2)
+            if bar is not None:
+                bar.update(rows)
+    finally:
+        if bar is not None:
+            bar.close()
+    hist[:, 0] -= undefined
+
+    failures = below + above + undefined
+    ci_low, ci_high = clopper_pearson(failures, samples)
+    checks = []
+    for j, plan in enumerate(order):
+        req = plan.requirement
+        fallout_ppm = failures[j] / samples * 1e6
+        lo_ppm, hi_ppm = float(ci_low[j]) * 1e6, float(ci_high[j]) * 1e6
+        predicted = plan.mean_shift_ppm if plan.mean_shift_ppm is not None else plan.rss_ppm
+        if plan.linear:
+            dist = linear_sum_distribution(
+                plan.a,
+                case.counts,
+                t,
+                [c.distribution for c in case.contributors],
+                case.sigma_factors,
+                mean=plan.shifted_mean,
+            )
+            conv_below, conv_above = dist.fallout(req.lower, req.upper)
+            convolution_ppm = (conv_below + conv_above) * 1e6
+            note = "exact distribution of the linear chain by numerical convolution"
+        else:
+            convolution_ppm = None
+            note = "not available: the expression is nonlinear (convolution needs a linear chain)"
+        mean = centre[j] + sum1[j] / valid[j] if valid[j] else math.nan
+        var = (sum2[j] - sum1[j] ** 2 / valid[j]) / (valid[j] - 1) if valid[j] > 1 else math.nan
+        edges = np.linspace(hist_lo[j] + centre[j], hist_lo[j] + centre[j] + bins / hist_scale[j], bins + 1)
+        checks.append(
+            RequirementCheck(
+                name=req.name,
+                linear=plan.linear,
+                lower=req.lower,
+                upper=req.upper,
+                samples=samples,
+                below=int(below[j]),
+                above=int(above[j]),
+                undefined=int(undefined[j]),
+                fallout_ppm=float(fallout_ppm),
+                ci_low_ppm=lo_ppm,
+                ci_high_ppm=hi_ppm,
+                target_ppm=float(req.fallout_ppm),
+                rss_ppm=float(plan.rss_ppm),
+                mean_shift_ppm=None if plan.mean_shift_ppm is None else float(plan.mean_shift_ppm),
+                predicted_ppm=float(predicted),
+                convolution_ppm=None if convolution_ppm is None else float(convolution_ppm),
+                convolution_note=note,
+                nominal=float(plan.nominal),
+                sigma=float(plan.sigma),
+                shift_side=int(plan.side),
+                shifted_mean=float(plan.shifted_mean),
+                mean=float(mean),
+                std=float(math.sqrt(max(var, 0.0))) if math.isfinite(var) else math.nan,
+                model_disagrees=bool(predicted < lo_ppm or predicted > hi_ppm),
+                status="fail" if lo_ppm > req.fallout_ppm else "pass",
+                decided=bool(lo_ppm > req.fallout_ppm or hi_ppm <= req.fallout_ppm),
+                histogram_edges=edges,
+                histogram_counts=hist[j, 1:-1].copy(),
+                underflow=int(hist[j, 0]),
+                overflow=int(hist[j, -1]),
+            )
+        )
+    by_name = {c.name: c for c in checks}
+    checks = [by_name[r.name] for r in case.requirements]  # back to case order
+    failed = [c.name for c in checks if c.status == "fail"]
+    undecided = [c.name for c in checks if not c.decided]
+    if failed:
+        message = f"fallout above target beyond the {CONFIDENCE:.0%} interval: {', '.join(failed)}"
+    elif undecided:
+        message = (
+            f"no requirement fails; target inside the {CONFIDENCE:.0%} interval for "
+            f"{', '.join(undecided)} (more samples would decide)"
+        )
+    else:
+        message = f"every requirement meets its target at {CONFIDENCE:.0%} confidence"
+    disagree = [c.name for c in checks if c.model_disagrees]
+    if disagree:
+        message += f"; analytic prediction outside the interval for {', '.join(disagree)}"
+    status = "fail" if failed else "pass"
+    return Verification(
+        status=status,
+        success=status == "pass",
+        message=message,
+        seed=seed,
+        samples=samples,
+        block_size=block,
+        chunk_size=chunk_rows,
+        confidence=CONFIDENCE,
+        shift_means=shift_means,
+        tolerances=dict(zip(case.names, (float(x) for x in t))),
+        requirements=checks,
+    )
+
+
+# --------------------------------------------------------------------------- plotting
+
+
+def _figure(result: Verification):
+    # a bare Figure renders through the Agg/SVG canvases without touching pyplot's backend
+    from matplotlib.figure import Figure
+    from scipy import stats
+
+    checks = result.requirements
+    fig = Figure(figsize=(7.0, 3.2 * len(checks)), layout="constrained")
+    axes = fig.subplots(len(checks), 1, squeeze=False)[:, 0]
+    for ax, c in zip(axes, checks):
+        edges = c.histogram_edges
+        width = edges[1] - edges[0]
+        density = c.histogram_counts / (c.samples * width)
+        ax.stairs(density, edges, fill=True, alpha=0.45, label=f"Monte Carlo ({c.samples:,} assemblies)")
+        lo_x, hi_x = edges[0], edges[-1]
+        for limit, label in ((c.lower, "lower limit"), (c.upper, "upper limit")):
+            if limit is not None:
+                ax.axvline(limit, color="tab:red", linestyle="--", linewidth=1.2, label=label)
+                lo_x, hi_x = min(lo_x, limit), max(hi_x, limit)
+        if c.sigma > 0:
+            xs = np.linspace(lo_x, hi_x, 600)
+            ax.plot(xs, stats.norm.pdf(xs, c.shifted_mean, c.sigma), color="black", linewidth=1.2, label="RSS normal")
+        pad = 0.03 * (hi_x - lo_x)
+        ax.set_xlim(lo_x - pad, hi_x + pad)
+        ax.set_title(f"{c.name}: {c.fallout_ppm:.4g} ppm outside (target {c.target_ppm:g} ppm)")
+        ax.set_xlabel("response")
+        ax.set_ylabel("density")
+        ax.legend(fontsize="small", loc="upper right")
+    return fig
+
+
+def render_verification_plot(result: Verification, fmt: str = "png") -> bytes:
+    """The histogram figure of ``result`` as PNG or SVG bytes (matplotlib, Agg)."""
+    import io
+
+    fmt = fmt.lower().lstrip(".")
+    if fmt not in ("png", "svg"):
+        raise ValueError(f"plot format must be png or svg, got {fmt!r}")
+    buffer = io.BytesIO()
+    _figure(result).savefig(buffer, format=fmt, dpi=120)
+    return buffer.getvalue()
+
+
+def plot_verification(result: Verification, path) -> Path:
+    """Write the response histograms of ``result`` to ``path`` (``.png`` or ``.svg``).
+
+    One panel per requirement: the Monte Carlo density, the limits as dashed lines and
+    the RSS normal approximation. Written to a temporary file and renamed into place.
+    """
+    target = Path(path)
+    data = render_verification_plot(result, target.suffix)
+    fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=target.parent or ".")
+    try:
+        with os.fdopen(fd, "wb") as fh:
+            fh.write(data)
+        os.replace(tmp, target)
+    except BaseException:
+        Path(tmp).unlink(missing_ok=True)
+        raise
+    return target
