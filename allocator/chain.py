@@ -145,9 +145,10 @@ def _compile(node: ast.AST, names: frozenset[str] | None, depth: int = 0):
         return (lambda env: op(left(env), right(env))), used_l | used_r
     if isinstance(node, ast.Call):
         if not isinstance(node.func, ast.Name) or node.func.id not in FUNCTIONS:
-            what = node.func.id if isinstance(node.func, ast.Name) else _describe(node.func)
+            if not isinstance(node.func, ast.Name):
+                raise ExpressionError(f"{_describe(node.func)} is not allowed in an expression")
             raise ExpressionError(
-                f"call of '{what}' is not allowed (allowed: {', '.join(FUNCTIONS)})"
+                f"call of '{node.func.id}' is not allowed (allowed: {', '.join(FUNCTIONS)})"
             )
         if node.keywords:
             raise ExpressionError(f"'{node.func.id}' takes no keyword arguments")

@@ -106,6 +106,10 @@ def atomic_write(path, data: bytes | str, *, protect=()) -> Path:
     try:
         with os.fdopen(fd, mode) as fh:
             fh.write(data)
+        # mkstemp creates 0600; give the file the permissions a plain open() would
+        umask = os.umask(0)
+        os.umask(umask)
+        os.chmod(tmp, 0o666 & ~umask)
         os.replace(tmp, target)
     except BaseException:
         try:
