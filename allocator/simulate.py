@@ -503,7 +503,8 @@ def verify(
     if samples < 1:
         raise ValueError("samples must be at least 1")
     if seed is None:
-        seed = int(np.random.SeedSequence().entropy)
+        # fresh OS entropy, folded to 64 bits so that it is easy to type back in
+        seed = int(np.random.SeedSequence().entropy) % 2**64
     seed = int(seed)
     if seed < 0:
         raise ValueError("seed must be a non-negative integer")
@@ -522,6 +523,8 @@ def verify(
         chunk_blocks = max(1, CHUNK_BYTES // (row_bytes * block))
     else:
         chunk_blocks = max(1, math.ceil(int(chunk_size) / block))
+    n_blocks = math.ceil(samples / block)
+    chunk_blocks = min(chunk_blocks, n_blocks)
     chunk_rows = chunk_blocks * block
 
     a_lin = np.column_stack([p.a for p in linear]) if linear else np.zeros((sampler.n, 0))
@@ -553,7 +556,6 @@ def verify(
 
         bar = tqdm(total=samples, unit="assemblies", unit_scale=True, file=sys.stderr, leave=False)
     try:
-        n_blocks = math.ceil(samples / block)
         for first in range(0, n_blocks, chunk_blocks):
             blocks = range(first, min(first + chunk_blocks, n_blocks))
             spans = [(b, (b - first) * block, min(block, samples - b * block)) for b in blocks]
