@@ -51,6 +51,7 @@ __all__ = [
     "RequirementCheck",
     "Verification",
     "verify",
+    "sample_responses",
     "plot_verification",
     "render_verification_plot",
 ]
@@ -445,6 +446,102 @@ def _histogram_range(plan: _Plan, t: np.ndarray, case, first_block: np.ndarray) 
     return lo - _HISTOGRAM_MARGIN * span, hi + _HISTOGRAM_MARGIN * span
 
 
+class _Engine:
+    """Draws chunks of assemblies and evaluates every requirement's response on them.
+
+    Responses are returned relative to ``centre`` (each requirement's shifted mean),
+    columns in :attr:`order` (chains first). Shared by :func:`verify` and
+    :func:`sample_responses` so both see the same random stream.
+    """
+
+    def __init__(self, case, t: np.ndarray, shift_means: bool, samples: int, seed: int, chunk_size):
+        self.case = case
+        self.t = t
+        self.samples = samples
+        self.seed = seed
+        plans = [_plan(case, r, t, shift_means) for r in case.requirements]
+        self.sampler = sampler = _Sampler(case, t)
+        self.linear = [p for p in plans if p.linear]
+        self.nonlinear = [p for p in plans if not p.linear]
+        self.order = self.linear + self.nonlinear
+        n_req = len(plans)
+
+        columns = sampler.n_normal + sampler.n_uniform
+        row_bytes = 8 * (columns + (sampler.n if self.nonlinear else 0) + 3 * n_req) + n_req
+        self.block = block = _block_size(max(row_bytes // 8, 1))
+        if chunk_size is None:
+            chunk_blocks = max(1, CHUNK_BYTES // (row_bytes * block))
+        else:
+            chunk_blocks = max(1, math.ceil(int(chunk_size) / block))
+        self.n_blocks = math.ceil(samples / block)
+        self.chunk_blocks = min(chunk_blocks, self.n_blocks)
+        self.chunk_rows = self.chunk_blocks * block
+
+        a_lin = np.column_stack([p.a for p in self.linear]) if self.linear else np.zeros((sampler.n, 0))
+        self.wz, self.wu, offset = sampler.linear_weights(a_lin)
+        self.centre = np.array([p.shifted_mean for p in self.order])
+        self.lin_const = offset  # the chains' shifted means cancel against the centre
+        self.compiled = [compile_expression(p.requirement.expression, case.names) for p in self.nonlinear]
+        nominal_at = nominal_values(case)
+        self.base_values = np.array([nominal_at[name] for name in case.names])
+
+    def chunks(self):
+        """Yield ``(y, spans)`` per chunk: responses minus centre, and the blocks
+        ``(index, first row, rows)`` it holds. ``y`` is reused between chunks."""
+        sampler, block, samples = self.sampler, self.block, self.samples
+        n_lin = len(self.linear)
+        z_buf = np.empty((self.chunk_rows, sampler.n_normal))
+        u_buf = np.empty((self.chunk_rows, sampler.n_uniform))
+        y_buf = np.empty((self.chunk_rows, len(self.order)))
+        for first in range(0, self.n_blocks, self.chunk_blocks):
+            blocks = range(first, min(first + self.chunk_blocks, self.n_blocks))
+            spans = [(b, (b - first) * block, min(block, samples - b * block)) for b in blocks]
+            rows = spans[-1][1] + spans[-1][2]
+            for b, start, size in spans:
+                sampler.draw(_block_rng(self.seed, b), z_buf[start : start + size], u_buf[start : start + size])
+            z, u, y = z_buf[:rows], u_buf[:rows], y_buf[:rows]
+            # products per block: BLAS may round differently with array length, and
+            # per-block products keep every number bit-identical for any chunk size
+            for _, start, size in spans:
+                part = slice(start, start + size)
+                if n_lin:
+                    y_lin = y[part, :n_lin]
+                    np.matmul(z[part], self.wz, out=y_lin)
+                    if sampler.n_uniform:
+                        y_lin += u[part] @ self.wu
+                    y_lin += self.lin_const
+                if self.nonlinear:
+                    dev = sampler.deviations(z[part], u[part])
+                    for j, (plan, expr) in enumerate(zip(self.nonlinear, self.compiled)):
+                        values = dev + (self.base_values + plan.shift)
+                        env = {name: values[:, i] for i, name in enumerate(self.case.names)}
+                        response = np.broadcast_to(expr.evaluate(env), (size,))
+                        y[part, n_lin + j] = np.real(response) - plan.shifted_mean
+            yield y, spans
+
+
+def sample_responses(case, tolerances=None, *, samples: int = 10_000, seed: int = 0, shift_means: bool = True):
+    """The simulated responses themselves, one array per requirement.
+
+    Uses exactly the random stream of :func:`verify` with the same ``seed``; holds all
+    ``samples × requirements`` values in memory, so it is meant for modest sample counts
+    (plots, tests, notebooks).
+
+    Returns
+    -------
+    dict
+        requirement name -> numpy.ndarray of ``samples`` responses [response].
+    """
+    samples = int(samples)
+    if samples < 1:
+        raise ValueError("samples must be at least 1")
+    t = _tolerance_array(case, tolerances)
+    engine = _Engine(case, t, shift_means, samples, int(seed), None)
+    parts = [np.array(y) + engine.centre for y, _ in engine.chunks()]
+    data = np.concatenate(parts, axis=0)
+    return {p.requirement.name: data[:, j] for j, p in enumerate(engine.order)}
+
+
 def verify(
     case,
     tolerances=None,
@@ -509,33 +606,10 @@ def verify(
     if seed < 0:
         raise ValueError("seed must be a non-negative integer")
     t = _tolerance_array(case, tolerances)
-    plans = [_plan(case, r, t, shift_means) for r in case.requirements]
-    sampler = _Sampler(case, t)
-    linear = [p for p in plans if p.linear]
-    nonlinear = [p for p in plans if not p.linear]
-    n_req = len(plans)
-    order = linear + nonlinear  # response columns: chains first
-
-    columns = sampler.n_normal + sampler.n_uniform
-    row_bytes = 8 * (columns + (sampler.n if nonlinear else 0) + 3 * n_req) + n_req
-    block = _block_size(max(row_bytes // 8, 1))
-    if chunk_size is None:
-        chunk_blocks = max(1, CHUNK_BYTES // (row_bytes * block))
-    else:
-        chunk_blocks = max(1, math.ceil(int(chunk_size) / block))
-    n_blocks = math.ceil(samples / block)
-    chunk_blocks = min(chunk_blocks, n_blocks)
-    chunk_rows = chunk_blocks * block
-
-    a_lin = np.column_stack([p.a for p in linear]) if linear else np.zeros((sampler.n, 0))
-    wz, wu, offset = sampler.linear_weights(a_lin)
-    centre = np.array([p.shifted_mean for p in order])  # responses are summed relative to this
-    lin_const = np.array([p.shifted_mean for p in linear]) + offset - centre[: len(linear)]
+    engine = _Engine(case, t, shift_means, samples, seed, chunk_size)
+    order, centre, n_req = engine.order, engine.centre, len(engine.order)
     lower = np.array([p.lower for p in order])
     upper = np.array([p.upper for p in order])
-    compiled = [compile_expression(p.requirement.expression, case.names) for p in nonlinear]
-    nominal_at = nominal_values(case)
-    base_values = np.array([nominal_at[name] for name in case.names])
 
     below = np.zeros(n_req, dtype=np.int64)
     above = np.zeros(n_req, dtype=np.int64)
@@ -546,40 +620,13 @@ def verify(
     hist = np.zeros((n_req, bins + 2), dtype=np.int64)  # [underflow, bins…, overflow]
     hist_lo = hist_scale = None
 
-    z_buf = np.empty((chunk_rows, sampler.n_normal))
-    u_buf = np.empty((chunk_rows, sampler.n_uniform))
-    y_buf = np.empty((chunk_rows, n_req))
-
     bar = None
     if progress and sys.stderr.isatty():
         from tqdm import tqdm
 
         bar = tqdm(total=samples, unit="assemblies", unit_scale=True, file=sys.stderr, leave=False)
     try:
-        for first in range(0, n_blocks, chunk_blocks):
-            blocks = range(first, min(first + chunk_blocks, n_blocks))
-            spans = [(b, (b - first) * block, min(block, samples - b * block)) for b in blocks]
-            rows = spans[-1][1] + spans[-1][2]
-            for b, start, size in spans:
-                sampler.draw(_block_rng(seed, b), z_buf[start : start + size], u_buf[start : start + size])
-            z, u, y = z_buf[:rows], u_buf[:rows], y_buf[:rows]
-            # products per block: BLAS may round differently with array length, and
-            # per-block products keep every number bit-identical for any chunk size
-            for _, start, size in spans:
-                part = slice(start, start + size)
-                y_lin = y[part, : len(linear)]
-                if linear:
-                    np.matmul(z[part], wz, out=y_lin)
-                    if sampler.n_uniform:
-                        y_lin += u[part] @ wu
-                    y_lin += lin_const
-                if nonlinear:
-                    dev = sampler.deviations(z[part], u[part])
-                    for j, (plan, expr) in enumerate(zip(nonlinear, compiled)):
-                        values = dev + (base_values + plan.shift)
-                        env = {name: values[:, i] for i, name in enumerate(case.names)}
-                        response = np.broadcast_to(expr.evaluate(env), (size,))
-                        y[part, len(linear) + j] = np.real(response) - plan.shifted_mean
+        for y, spans in engine.chunks():
             finite = np.isfinite(y)
             if hist_lo is None:  # bins fixed from block 0, the same for every chunking
                 ranges = np.array(
@@ -592,7 +639,7 @@ def verify(
             undefined += np.count_nonzero(np.isnan(y), axis=0)
             valid += np.count_nonzero(finite, axis=0)
             clean = np.where(finite, y, 0.0)
-            for _, start, size in spans:
+            for _, start, size in spans:  # float sums per block: independent of chunking
                 part = clean[start : start + size]
                 sum1 += part.sum(axis=0)
                 sum2 += (part * part).sum(axis=0)
@@ -603,7 +650,7 @@ def verify(
             index += np.arange(n_req) * (bins + 2)
             hist += np.bincount(index.ravel(), minlength=n_req * (bins + 2)).reshape(n_req, bins + 2)
             if bar is not None:
-                bar.update(rows)
+                bar.update(len(y))
     finally:
         if bar is not None:
             bar.close()
@@ -692,8 +739,8 @@ def verify(
         message=message,
         seed=seed,
         samples=samples,
-        block_size=block,
-        chunk_size=chunk_rows,
+        block_size=engine.block,
+        chunk_size=engine.chunk_rows,
         confidence=CONFIDENCE,
         shift_means=shift_means,
         tolerances=dict(zip(case.names, (float(x) for x in t))),
