@@ -500,15 +500,16 @@ class _Engine:
             for b, start, size in spans:
                 sampler.draw(_block_rng(self.seed, b), z_buf[start : start + size], u_buf[start : start + size])
             z, u, y = z_buf[:rows], u_buf[:rows], y_buf[:rows]
-            # products per block: BLAS may round differently with array length, and
-            # per-block products keep every number bit-identical for any chunk size
+            # products per block, so every number is bit-identical for any chunk size;
+            # einsum, not BLAS: threaded BLAS on thin matrices is slower and spin-waits
+            # badly on a busy machine
             for _, start, size in spans:
                 part = slice(start, start + size)
                 if n_lin:
                     y_lin = y[part, :n_lin]
-                    np.matmul(z[part], self.wz, out=y_lin)
+                    np.einsum("ij,jk->ik", z[part], self.wz, out=y_lin)
                     if sampler.n_uniform:
-                        y_lin += u[part] @ self.wu
+                        y_lin += np.einsum("ij,jk->ik", u[part], self.wu)
                     y_lin += self.lin_const
                 if self.nonlinear:
                     dev = sampler.deviations(z[part], u[part])
