@@ -606,6 +606,8 @@ def verify(
     seed = int(seed)
     if seed < 0:
         raise ValueError("seed must be a non-negative integer")
+    if not case.requirements:
+        raise CaseError("the case has no requirement to verify", field="requirement")
     t = _tolerance_array(case, tolerances)
     engine = _Engine(case, t, shift_means, samples, seed, chunk_size)
     order, centre, n_req = engine.order, engine.centre, len(engine.order)
@@ -772,7 +774,8 @@ def _figure(result: Verification):
                 lo_x, hi_x = min(lo_x, limit), max(hi_x, limit)
         if c.sigma > 0:
             xs = np.linspace(lo_x, hi_x, 600)
-            ax.plot(xs, stats.norm.pdf(xs, c.shifted_mean, c.sigma), color="black", linewidth=1.2, label="RSS normal")
+            label = "RSS normal" + (" at the worst mean shift" if c.shift_side else "")
+            ax.plot(xs, stats.norm.pdf(xs, c.shifted_mean, c.sigma), color="black", linewidth=1.2, label=label)
         pad = 0.03 * (hi_x - lo_x)
         ax.set_xlim(lo_x - pad, hi_x + pad)
         ax.set_title(f"{c.name}: {c.fallout_ppm:.4g} ppm outside (target {c.target_ppm:g} ppm)")
