@@ -1,0 +1,767 @@
+"""The allocation problem in arrays, shared by every solver.
+
+:func:`prepare` turns a :class:`~allocator.model.Case`, a stack model and optional held
+tolerances into an :class:`AllocationProblem`: which contributors are free, their bounds,
+cost curves, counts, σ-factors and mean-shift fractions, and each requirement's nominal
+response and sensitivities. The same object then provides what every solver needs around
+the optimisation itself, all in plain numpy:
+
+- the requirement statistics at a set of tolerances (:meth:`AllocationProblem.evaluate`),
+  which is also the independent re-check of every solution;
+- the infeasibility diagnosis at the tightest tolerances (:meth:`AllocationProblem.diagnose`);
+- the polish that restores feasibility after a solver's round-off (:meth:`AllocationProblem.polish`);
+- the shadow prices from a solver's multipliers (:func:`shadow_prices`);
+- the result object (:meth:`AllocationProblem.result`).
+
+Nothing here imports cvxpy or pandas.
+"""
+
+from __future__ import annotations
+
+import difflib
+import math
+from dataclasses import dataclass, replace
+from typing import Mapping
+
+import numpy as np
+from scipy import special
+
+from .. import costs, stack
+from ..chain import linearise
+from ..errors import CaseError, UsageError
+from ..model import MODELS, Case, CostCurve
+from .result import Allocation, RequirementResult
+
+__all__ = [
+    "AllocationProblem",
+    "CurveSet",
+    "RequirementData",
+    "Limits",
+    "prepare",
+    "sigma_limit_slopes",
+    "mean_shift_allowance",
+    "shadow_prices",
+]
+
+# A solution may sit this far (relative) outside a requirement before it is polished;
+# polishing always aims at exact feasibility, this is only what still counts as met.
+WORST_CASE_RTOL = 1e-9
+FALLOUT_RTOL = 1e-6
+# A tolerance within this fraction of its range from a bound is reported at that bound.
+BOUND_RTOL = 1e-7
+
+
+def _close(name: str, options) -> str:
+    match = difflib.get_close_matches(name, list(options), n=1)
+    return f" (did you mean '{match[0]}'?)" if match else ""
+
+
+def _g(x: float) -> str:
+    return f"{x:.4g}"
+
+
+# --------------------------------------------------------------------------- cost curves
+
+
+class CurveSet:
+    """Many cost curves evaluated at once (vectorised over contributors).
+
+    The formula families are grouped: ``reciprocal`` is ``reciprocal-power`` with
+    ``k = 1``, so two groups (power, exponential) cover them; tables (rare) are
+    evaluated one by one with :mod:`allocator.costs`. ``None`` costs nothing.
+    """
+
+    def __init__(self, curves):
+        self.curves = tuple(curves)
+        size = len(self.curves)
+        kind = np.array([("none" if c is None else c.curve) for c in self.curves], dtype=object)
+        self.power = np.flatnonzero((kind == "reciprocal") | (kind == "reciprocal-power"))
+        self.expo = np.flatnonzero(kind == "exponential")
+        self.tables = [i for i in range(size) if kind[i] == "table"]
+        par = lambda idx, attr: np.array([getattr(self.curves[i], attr) for i in idx], dtype=float)  # noqa: E731
+        self.pa, self.pb = par(self.power, "a"), par(self.power, "b")
+        self.pk = np.array(
+            [1.0 if self.curves[i].curve == "reciprocal" else self.curves[i].k for i in self.power],
+            dtype=float,
+        )
+        self.ea, self.eb, self.ec = par(self.expo, "a"), par(self.expo, "b"), par(self.expo, "c")
+        self.size = size
+
+    def value(self, t) -> np.ndarray:
+        """Unit cost of each contributor at ``t`` [currency]; NaN where undefined."""
+        t = np.asarray(t, dtype=float)
+        out = np.zeros(self.size)
+        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+            tp = t[self.power]
+            out[self.power] = np.where(tp > 0, self.pa + self.pb * tp ** (-self.pk), np.nan)
+            te = t[self.expo]
+            out[self.expo] = np.where(te > 0, self.ea + self.eb * np.exp(-self.ec * te), np.nan)
+        for i in self.tables:
+            try:
+                out[i] = costs.cost_value(self.curves[i], float(t[i]))
+            except ValueError:
+                out[i] = np.nan  # e.g. a current tolerance outside the table
+        return out
+
+    def derivative(self, t) -> np.ndarray:
+        """d cost / d t of each contributor at ``t`` [currency/length]."""
+        t = np.asarray(t, dtype=float)
+        out = np.zeros(self.size)
+        tp = t[self.power]
+        out[self.power] = -self.pk * self.pb * tp ** (-self.pk - 1.0)
+        te = t[self.expo]
+        out[self.expo] = -self.eb * self.ec * np.exp(-self.ec * te)
+        for i in self.tables:
+            out[i] = costs.cost_derivative(self.curves[i], float(t[i]))
+        return out
+
+
+def scaled_curve(curve: CostCurve | None, length: float, cost: float) -> CostCurve | None:
+    """The curve of ``cost(length·τ) / cost`` as a function of the scaled tolerance ``τ``.
+
+    Solving in ``τ = t / length`` with costs divided by ``cost`` makes the problem the
+    solver sees independent of the case's units (mm, m, μm give the same numbers).
+    """
+    if curve is None:
+        return None
+    kind = curve.curve
+    if kind == "reciprocal":
+        return replace(curve, a=curve.a / cost, b=curve.b / (cost * length))
+    if kind == "reciprocal-power":
+        return replace(curve, a=curve.a / cost, b=curve.b / (cost * length**curve.k))
+    if kind == "exponential":
+        return replace(curve, a=curve.a / cost, b=curve.b / cost, c=curve.c * length)
+    if kind == "table":
+        return replace(
+            curve,
+            points_tolerance=tuple(x / length for x in curve.points_tolerance),
+            points_cost=tuple(y / cost for y in curve.points_cost),
+        )
+    raise ValueError(f"unknown cost curve {kind!r}")
+
+
+# --------------------------------------------------------------------------- requirements
+
+
+@dataclass(frozen=True)
+class RequirementData:
+    """One requirement as the solvers see it (first-order in the contributors)."""
+
+    name: str
+    nominal: float  # ȳ [response]
+    sensitivity: np.ndarray  # a_i in case order [response/length]
+    lower: float | None
+    upper: float | None
+    fallout_ppm: float
+    linear: bool
+
+
+@dataclass(frozen=True)
+class Limits:
+    """The limits in force for one solve (a requirement's own, or overridden)."""
+
+    lower: float | None
+    upper: float | None
+    fallout_ppm: float
+
+    @property
+    def fallout(self) -> float:
+        return self.fallout_ppm * 1e-6
+
+    @property
+    def two_sided(self) -> bool:
+        return self.lower is not None and self.upper is not None
+
+
+def _sides(nominal, delta, limits: Limits):
+    """Distances from the worst mean band ``ȳ ± δ`` to the limits (inf when missing)."""
+    d_low = math.inf if limits.lower is None else nominal - delta - limits.lower
+    d_up = math.inf if limits.upper is None else limits.upper - nominal - delta
+    return d_low, d_up
+
+
+def sigma_limit_slopes(mean: float, sigma: float, limits: Limits) -> dict[str, float]:
+    """Partial derivatives of the largest allowed σ (:func:`allocator.stack.sigma_limit`).
+
+    Parameters
+    ----------
+    mean : float
+        Response mean μ [response].
+    sigma : float
+        ``σ_max = sigma_limit(μ, p, L, U)`` at that mean [response].
+    limits : Limits
+        ``L``, ``U`` and the fallout target ``p``.
+
+    Returns
+    -------
+    dict
+        ``mean``, ``lower``, ``upper`` [-] and ``fallout`` [response per unit fraction]:
+        ∂σ_max/∂μ, ∂σ_max/∂L, ∂σ_max/∂U, ∂σ_max/∂p.
+
+    Notes
+    -----
+    σ_max solves ``F = Φ(z_L) + Φ(z_U) − p = 0`` with ``z_L = (L − μ)/σ``,
+    ``z_U = (μ − U)/σ``; by the implicit function theorem, with
+    ``D = z_L φ(z_L) + z_U φ(z_U)`` (< 0),
+
+    .. math::
+
+        \\frac{∂σ}{∂μ} = \\frac{φ(z_U) − φ(z_L)}{D},\\quad
+        \\frac{∂σ}{∂L} = \\frac{φ(z_L)}{D},\\quad
+        \\frac{∂σ}{∂U} = -\\frac{φ(z_U)}{D},\\quad
+        \\frac{∂σ}{∂p} = -\\frac{σ}{D}.
+
+    A missing limit drops its term. At σ_max = 0 (mean on a limit) the one-sided limit
+    values ``∓1/z`` with ``z = Φ⁻¹(1 − p)`` are returned.
+    """
+    if not sigma > 0:
+        z = -float(special.ndtri(limits.fallout))
+        d_low, d_up = _sides(mean, 0.0, limits)
+        if d_up <= d_low:
+            return {"mean": -1.0 / z, "lower": 0.0, "upper": 1.0 / z, "fallout": 0.0}
+        return {"mean": 1.0 / z, "lower": -1.0 / z, "upper": 0.0, "fallout": 0.0}
+    phi_l = z_l = phi_u = z_u = 0.0
+    if limits.lower is not None:
+        z_l = (limits.lower - mean) / sigma
+        phi_l = math.exp(-0.5 * z_l * z_l)
+    if limits.upper is not None:
+        z_u = (mean - limits.upper) / sigma
+        phi_u = math.exp(-0.5 * z_u * z_u)
+    # the 1/sqrt(2π) of φ cancels in every ratio except ∂σ/∂p
+    d = z_l * phi_l + z_u * phi_u
+    return {
+        "mean": (phi_u - phi_l) / d,
+        "lower": phi_l / d,
+        "upper": -phi_u / d,
+        "fallout": -sigma * math.sqrt(2.0 * math.pi) / d,
+    }
+
+
+def mean_shift_allowance(nominal: float, delta: float, limits: Limits) -> tuple[float, float, float]:
+    """Largest σ with the mean anywhere in ``ȳ ± δ``, its slope in δ, and the worst mean.
+
+    Returns
+    -------
+    (g, dg/dδ, worst mean) : (float, float, float)
+        ``g(δ) = min(σ_max(ȳ − δ), σ_max(ȳ + δ))`` [response]
+        (:func:`allocator.stack.mean_shift_sigma_limit`), its right derivative [-] and
+        the band end that attains the minimum.
+
+    Notes
+    -----
+    ``g`` is decreasing; it is concave on its domain (checked numerically in the tests),
+    so a tangent ``g(δ_k) + g'(δ_k)(δ − δ_k)`` lies above it everywhere: the cutting-plane
+    solver uses those tangents as an outer approximation. At ``δ = 0`` with both band
+    ends equally bad the right derivative is the smaller of the two one-sided slopes.
+    """
+    p = limits.fallout
+    delta = max(delta, 0.0)
+    ends = []
+    for sign in (-1.0, 1.0):
+        mean = nominal + sign * delta
+        sigma = stack.sigma_limit(mean, p, limits.lower, limits.upper)
+        slope = sign * sigma_limit_slopes(mean, sigma, limits)["mean"]
+        ends.append((sigma, slope, mean))
+    low, high = ends
+    if low[0] < high[0] or (low[0] == high[0] and low[1] < high[1]):
+        return low
+    return high
+
+
+# --------------------------------------------------------------------------- the problem
+
+
+class AllocationProblem:
+    """Arrays of one allocation problem: contributors, bounds, costs, requirements.
+
+    Attributes
+    ----------
+    case : Case
+    model : str
+        ``worst-case``, ``rss`` or ``mean-shift``.
+    names : tuple of str
+    counts, sigma_factors, mean_shifts : numpy.ndarray
+        ``n_i`` [-], ``f_i = σ_i/t_i`` [-], ``m_i`` [-] in case order.
+    free : numpy.ndarray of bool
+        Contributors the allocation may change.
+    lower_bounds, upper_bounds : numpy.ndarray
+        ``[tightest, loosest]`` per contributor [length]; a held contributor has both
+        equal to its held value.
+    held : numpy.ndarray
+        Held tolerance (case ``fixed`` or the ``fix`` argument), NaN for free ones.
+    hold_kind : tuple of str
+        ``'fixed'`` (case), ``'held'`` (``fix`` argument) or ``''``.
+    current : numpy.ndarray
+        The case's current tolerances [length].
+    curves : CurveSet
+    processes : tuple of str
+    requirements : tuple of RequirementData
+    length_scale, cost_scale : float
+        Scales the solvers divide tolerances and costs by.
+    """
+
+    def __init__(self, case: Case, model: str, fix: Mapping[str, float] | None = None):
+        self.case = case
+        self.model = model
+        self.fix = dict(fix or {})
+        contributors = case.contributors
+        self.names = case.names
+        self.counts = case.counts
+        size = len(contributors)
+        lo = np.empty(size)
+        hi = np.empty(size)
+        held = np.full(size, np.nan)
+        sigma_factors = np.empty(size)
+        curves, processes, hold_kind = [], [], []
+        for i, c in enumerate(contributors):
+            option = c.options()[0]
+            processes.append(option.name)
+            curves.append(option.cost)
+            sigma_factors[i] = c.process_sigma_factor(option) if c.processes else c.sigma_factor
+            if c.fixed or c.name in self.fix:
+                value = c.tolerance if c.fixed else float(self.fix[c.name])
+                held[i] = lo[i] = hi[i] = value
+                hold_kind.append("fixed" if c.fixed else "held")
+            else:
+                lo[i], hi[i] = option.limits
+                hold_kind.append("")
+        self.sigma_factors = sigma_factors
+        self.mean_shifts = case.mean_shifts
+        self.lower_bounds, self.upper_bounds, self.held = lo, hi, held
+        self.free = np.isnan(held)
+        self.hold_kind = tuple(hold_kind)
+        self.current = case.current_tolerances
+        self.processes = tuple(processes)
+        self.curves = CurveSet(curves)
+        self.requirements = tuple(
+            RequirementData(
+                r.name, lin.nominal, np.asarray(lin.sensitivity, dtype=float),
+                r.lower, r.upper, float(r.fallout_ppm), lin.linear,
+            )
+            for r, lin in ((r, linearise(case, r)) for r in case.requirements)
+        )
+
+        free = self.free
+        if free.any():
+            self.length_scale = float(np.exp(np.mean(np.log(np.concatenate([lo[free], hi[free]])))))
+            mid = np.sqrt(lo * hi)
+            unit = self.curves.value(mid)
+            scale = float(np.sum((self.counts * unit)[free]))
+            self.cost_scale = scale if math.isfinite(scale) and scale > 0 else 1.0
+        else:
+            self.length_scale, self.cost_scale = 1.0, 1.0
+
+    # ------------------------------------------------------------------ tolerances
+
+    def full(self, t_free) -> np.ndarray:
+        """All tolerances (case order) from the free ones."""
+        t = self.held.copy()
+        t[self.free] = t_free
+        return t
+
+    @property
+    def tightest(self) -> np.ndarray:
+        return np.where(self.free, self.lower_bounds, self.held)
+
+    @property
+    def loosest(self) -> np.ndarray:
+        return np.where(self.free, self.upper_bounds, self.held)
+
+    # ------------------------------------------------------------------ limits
+
+    def limits(self, overrides=None) -> list[Limits]:
+        """The limits in force per requirement, with ``overrides`` applied.
+
+        ``overrides`` maps a requirement name to a dict with any of ``lower``,
+        ``upper``, ``fallout_ppm`` (``None`` removes a limit).
+        """
+        overrides = overrides or {}
+        known = {r.name for r in self.requirements}
+        for name, change in overrides.items():
+            if name not in known:
+                raise UsageError(f"overrides: unknown requirement {name!r}{_close(name, known)}")
+            bad = set(change) - {"lower", "upper", "fallout_ppm"}
+            if bad:
+                raise UsageError(
+                    f"overrides: {name}: unknown key(s) {', '.join(sorted(bad))} "
+                    "(allowed: lower, upper, fallout_ppm)"
+                )
+        out = []
+        for r in self.requirements:
+            change = overrides.get(r.name, {})
+            lim = Limits(
+                change.get("lower", r.lower),
+                change.get("upper", r.upper),
+                float(change.get("fallout_ppm", r.fallout_ppm)),
+            )
+            if not 0 < lim.fallout_ppm < 1e6:
+                raise UsageError(f"overrides: {r.name}: fallout_ppm must be in (0, 1e6)")
+            if lim.two_sided and lim.lower >= lim.upper:
+                raise UsageError(f"overrides: {r.name}: lower must be below upper")
+            out.append(lim)
+        return out
+
+    # ------------------------------------------------------------------ statistics
+
+    def statistics(self, t, limits: list[Limits]) -> list[dict]:
+        """Per requirement at tolerances ``t``: spreads, fallout and how far it misses.
+
+        ``excess`` is the relative violation of the model's constraint: worst case
+        ``W / min(ȳ − L, U − ȳ) − 1``; statistical ``fallout / target − 1`` (≤ 0: met).
+        """
+        n, f, m = self.counts, self.sigma_factors, self.mean_shifts
+        out = []
+        for req, lim in zip(self.requirements, limits):
+            a, y0 = req.sensitivity, req.nominal
+            half = stack.worst_case_half_width(a, n, t)
+            sigma = stack.rss_sigma(a, n, f * t)
+            delta = stack.mean_shift_delta(a, n, m, t) if self.model == "mean-shift" else 0.0
+            below, above, mean = stack.worst_mean_fallout(y0, delta, sigma, lim.lower, lim.upper)
+            fallout = below + above
+            if self.model == "worst-case":
+                room = min(_sides(y0, 0.0, lim))
+                if room == math.inf:
+                    excess = -1.0
+                elif room <= 0:
+                    excess = math.inf
+                else:
+                    excess = half / room - 1.0
+            elif lim.lower is None and lim.upper is None:
+                excess = -1.0
+            else:
+                excess = fallout / lim.fallout - 1.0
+            out.append(
+                {
+                    "half_width": half, "sigma": sigma, "delta": delta, "mean": mean,
+                    "fallout": fallout, "excess": excess,
+                }
+            )
+        return out
+
+    def _rtol(self) -> float:
+        return WORST_CASE_RTOL if self.model == "worst-case" else FALLOUT_RTOL
+
+    def feasible(self, t, limits, *, rtol: float = 0.0) -> bool:
+        """All requirements met at ``t`` (within ``rtol`` relative)."""
+        return all(s["excess"] <= rtol for s in self.statistics(t, limits))
+
+    # ------------------------------------------------------------------ infeasibility
+
+    def diagnose(self, limits: list[Limits]) -> str | None:
+        """Why the problem is infeasible, or None.
+
+        Every constraint is monotone in every tolerance, so the tightest tolerances
+        (free ones at their lower bounds, held ones at their values) minimise every
+        requirement's spread at once: if they fail a requirement, nothing meets it.
+        """
+        t = self.tightest
+        n, f = self.counts, self.sigma_factors
+        problems = []
+        for req, lim, s in zip(self.requirements, limits, self.statistics(t, limits)):
+            if s["excess"] <= self._rtol():
+                continue
+            a, y0 = req.sensitivity, req.nominal
+            outside = (lim.lower is not None and y0 <= lim.lower) or (
+                lim.upper is not None and y0 >= lim.upper
+            )
+            if outside:
+                problems.append(
+                    f"requirement '{req.name}': nominal {_g(y0)} is not inside the limits "
+                    f"[{_fmt_limit(lim.lower)}, {_fmt_limit(lim.upper)}]; no tolerance can fix that"
+                )
+                continue
+            if self.model == "worst-case":
+                lo_y, hi_y = y0 - s["half_width"], y0 + s["half_width"]
+                misses = []
+                if lim.upper is not None and hi_y > lim.upper:
+                    misses.append(f"exceeds upper {_g(lim.upper)} by {_g(hi_y - lim.upper)}")
+                if lim.lower is not None and lo_y < lim.lower:
+                    misses.append(f"is below lower {_g(lim.lower)} by {_g(lim.lower - lo_y)}")
+                what = (
+                    f"worst-case range at tightest tolerances is [{_g(lo_y)}, {_g(hi_y)}], "
+                    + " and ".join(misses)
+                )
+                share = n * np.abs(a) * t
+                label = "worst case"
+            else:
+                what = (
+                    f"fallout at tightest tolerances is {_g(s['fallout'] * 1e6)} ppm > target "
+                    f"{_g(lim.fallout_ppm)} ppm"
+                )
+                if self.model == "mean-shift" and s["delta"] > 0:
+                    what += f" (mean at {_g(s['mean'])}, shifted by up to ±{_g(s['delta'])})"
+                share = n * (a * f * t) ** 2
+                label = "variance"
+            total = share.sum()
+            top = np.argsort(-share, kind="stable")[:3]
+            parts = [
+                f"{self.names[i]}{' (' + self.hold_kind[i] + ')' if self.hold_kind[i] else ''} "
+                f"{100 * share[i] / total:.0f}%"
+                for i in top
+                if total > 0 and share[i] > 0
+            ]
+            problems.append(
+                f"requirement '{req.name}': {what}; largest shares of the {label}: {', '.join(parts)}"
+            )
+        return "; ".join(problems) if problems else None
+
+    # ------------------------------------------------------------------ polish
+
+    def polish(self, t, limits) -> tuple[np.ndarray, float]:
+        """Smallest shrink of the free tolerances that meets every requirement.
+
+        Returns ``(t', θ)`` with ``t'_i = max(lower_i, θ·t_i)`` for free contributors
+        and θ ∈ (0, 1] found by bisection (1 when ``t`` is already feasible). Every
+        constraint is monotone in every tolerance, so feasibility is monotone in θ.
+        """
+        t = np.clip(t, self.tightest, self.loosest)
+        if self.feasible(t, limits):
+            return t, 1.0
+        free = self.free
+        shrink = lambda theta: np.where(free, np.maximum(self.lower_bounds, theta * t), t)  # noqa: E731
+        good, bad = 0.0, 1.0
+        if free.any():
+            good = float(np.min(self.lower_bounds[free] / np.maximum(t[free], 1e-300)))
+        if not self.feasible(shrink(good), limits):
+            return shrink(good), good  # infeasible even at the tightest: caller reports
+        for _ in range(200):
+            mid = 0.5 * (good + bad)
+            if mid in (good, bad):
+                break
+            if self.feasible(shrink(mid), limits):
+                good = mid
+            else:
+                bad = mid
+        return shrink(good), good
+
+    # ------------------------------------------------------------------ result
+
+    def unit_costs(self, t) -> np.ndarray:
+        """Cost of one part of each contributor at ``t`` [currency]."""
+        return self.curves.value(t)
+
+    def total_cost(self, t) -> float:
+        return float(np.sum(self.counts * self.unit_costs(t)))
+
+    def bound_flags(self, t) -> tuple[str, ...]:
+        lo, hi = self.lower_bounds, self.upper_bounds
+        slack = BOUND_RTOL * np.maximum(hi - lo, hi)
+        flags = []
+        for i in range(len(t)):
+            if not self.free[i]:
+                flags.append("fixed")
+            elif t[i] <= lo[i] + slack[i]:
+                flags.append("tightest")
+            elif t[i] >= hi[i] - slack[i]:
+                flags.append("loosest")
+            else:
+                flags.append("")
+        return tuple(flags)
+
+    def result(
+        self,
+        t,
+        limits,
+        *,
+        status: str,
+        message: str,
+        solver: str,
+        iterations: int = 0,
+        gap: float | None = None,
+        multipliers=None,
+    ) -> Allocation:
+        """Build the :class:`Allocation` for tolerances ``t`` (None when infeasible).
+
+        ``multipliers`` holds, per requirement, ``-∂cost/∂(allowance)``: for worst case
+        the allowance is the half-width room ``min(ȳ − L, U − ȳ)``, for the statistical
+        models the largest allowed σ [currency per response unit].
+        """
+        case = self.case
+        current_unit = self.unit_costs(self.current)
+        current_cost = float(np.sum(self.counts * current_unit))
+        kwargs = dict(
+            model=self.model,
+            status=status,
+            message=message,
+            names=self.names,
+            current=self.current,
+            counts=self.counts,
+            lower_bounds=np.where(self.free, self.lower_bounds, np.nan),
+            upper_bounds=np.where(self.free, self.upper_bounds, np.nan),
+            unit_cost_current=current_unit,
+            current_cost=current_cost,
+            processes=dict(zip(self.names, self.processes)),
+            solver=solver,
+            iterations=iterations,
+            gap=gap,
+            units=case.units,
+            currency=case.currency,
+            title=case.title,
+            held={n: float(v) for n, v, k in zip(self.names, self.held, self.hold_kind) if k == "held"},
+        )
+        if t is None:
+            return Allocation(**kwargs, requirements=[])
+        unit = self.unit_costs(t)
+        stats = self.statistics(t, limits)
+        multipliers = [0.0] * len(self.requirements) if multipliers is None else multipliers
+        records = []
+        for req, lim, s, y in zip(self.requirements, limits, stats, multipliers):
+            prices = shadow_prices(self.model, req, lim, s, y)
+            records.append(
+                RequirementResult(
+                    name=req.name,
+                    nominal=req.nominal,
+                    lower=lim.lower,
+                    upper=lim.upper,
+                    worst_case_min=req.nominal - s["half_width"],
+                    worst_case_max=req.nominal + s["half_width"],
+                    sigma=s["sigma"],
+                    mean_shift=s["delta"],
+                    fallout_ppm=s["fallout"] * 1e6,
+                    target_ppm=None if self.model == "worst-case" else lim.fallout_ppm,
+                    linear=req.linear,
+                    **prices,
+                )
+            )
+        return Allocation(
+            **kwargs,
+            allocated=np.asarray(t, dtype=float),
+            unit_cost_allocated=unit,
+            total_cost=float(np.sum(self.counts * unit)),
+            bounds=self.bound_flags(t),
+            requirements=records,
+        )
+
+    def infeasible(self, limits, message: str, solver: str = "") -> Allocation:
+        return self.result(None, limits, status="infeasible", message=message, solver=solver)
+
+
+def _fmt_limit(x):
+    return "-inf" if x is None else _g(x)
+
+
+def shadow_prices(model: str, req: RequirementData, lim: Limits, stats: dict, y: float) -> dict:
+    """d(total cost)/d(limit) and d(total cost)/d(ppm) from a constraint multiplier.
+
+    Parameters
+    ----------
+    model : str
+    req : RequirementData
+    lim : Limits
+    stats : dict
+        :meth:`AllocationProblem.statistics` entry at the solution.
+    y : float
+        ``-∂cost/∂(allowance)`` ≥ 0 [currency per response unit]: for worst case the
+        allowance is the half-width room ``min(ȳ − L, U − ȳ)``; for rss and mean shift
+        the largest allowed σ at the worst mean.
+
+    Returns
+    -------
+    dict
+        ``binding`` ('lower' | 'upper' | 'both' | ''), ``shadow_price`` (of the binding
+        limit, or the larger of two), ``shadow_lower``, ``shadow_upper`` [currency/length]
+        and ``shadow_ppm`` [currency/ppm] (None for worst case).
+
+    Notes
+    -----
+    Envelope theorem: ``d cost*/dθ = −y · ∂(allowance)/∂θ``. Worst case: raising ``U``
+    adds room one to one when the upper side is the nearer one, raising ``L`` removes it.
+    Statistical: the σ-limit slopes of :func:`sigma_limit_slopes` at the worst mean.
+    With a centred nominal under worst case both limits bind; each value is then the
+    one-sided derivative for tightening that limit.
+    """
+    y = max(float(y), 0.0)
+    out = {"binding": "", "shadow_price": 0.0, "shadow_lower": None, "shadow_upper": None,
+           "shadow_ppm": None}
+    if lim.lower is not None:
+        out["shadow_lower"] = 0.0
+    if lim.upper is not None:
+        out["shadow_upper"] = 0.0
+    if model != "worst-case":
+        out["shadow_ppm"] = 0.0
+    if y == 0.0:
+        return out
+    if model == "worst-case":
+        d_low, d_up = _sides(req.nominal, 0.0, lim)
+        tie = math.isclose(d_low, d_up, rel_tol=1e-12)
+        if d_up <= d_low or tie:
+            out["shadow_upper"] = -y
+        if d_low <= d_up or tie:
+            out["shadow_lower"] = y
+    else:
+        sigma = stack.sigma_limit(stats["mean"], lim.fallout, lim.lower, lim.upper)
+        slopes = sigma_limit_slopes(stats["mean"], sigma, lim)
+        if lim.lower is not None:
+            out["shadow_lower"] = -y * slopes["lower"]
+        if lim.upper is not None:
+            out["shadow_upper"] = -y * slopes["upper"]
+        out["shadow_ppm"] = -y * slopes["fallout"] * 1e-6
+    low, up = abs(out["shadow_lower"] or 0.0), abs(out["shadow_upper"] or 0.0)
+    big = max(low, up)
+    sides = [s for s, v in (("lower", low), ("upper", up)) if big > 0 and v >= 1e-3 * big]
+    out["binding"] = "both" if len(sides) == 2 else (sides[0] if sides else "")
+    out["shadow_price"] = out["shadow_upper"] if up >= low else out["shadow_lower"]
+    return out
+
+
+# --------------------------------------------------------------------------- prepare
+
+
+def _check_fix(case: Case, fix) -> dict[str, float]:
+    out = {}
+    for name, value in (fix or {}).items():
+        if name not in case.names:
+            raise UsageError(f"fix: unknown contributor '{name}'{_close(name, case.names)}")
+        try:
+            value = float(value)
+        except (TypeError, ValueError):
+            raise UsageError(f"fix: {name}: tolerance must be a number (got {value!r})") from None
+        if not (math.isfinite(value) and value > 0):
+            raise UsageError(f"fix: {name}: tolerance must be > 0 (got {value:g})")
+        c = case.contributor(name)
+        option = c.options()[0]
+        if option.cost is not None and option.cost.curve == "table":
+            x = option.cost.points_tolerance
+            if not x[0] * (1 - 1e-9) <= value <= x[-1] * (1 + 1e-9):
+                raise UsageError(
+                    f"fix: {name}: tolerance {value:g} is outside its cost table's range "
+                    f"[{x[0]:g}, {x[-1]:g}]"
+                )
+        out[name] = value
+    return out
+
+
+def prepare(case: Case, model: str, fix: Mapping[str, float] | None = None) -> AllocationProblem:
+    """Check that ``case`` can be allocated continuously and build the arrays.
+
+    Raises
+    ------
+    UsageError
+        Unknown model, a ``fix`` entry naming no contributor or holding a tolerance
+        ≤ 0, or a contributor that needs process selection (discrete solver).
+    CaseError
+        A ``table`` cost that is not convex and decreasing (named, with the reason).
+    """
+    if model not in MODELS:
+        raise UsageError(f"unknown model {model!r}{_close(model, MODELS)} (choose from {', '.join(MODELS)})")
+    fix = _check_fix(case, fix)
+    file = str(case.path) if case.path is not None else None
+    for i, c in enumerate(case.contributors):
+        if c.fixed or c.name in fix:
+            continue
+        if c.is_discrete:
+            raise UsageError(
+                f"contributor '{c.name}' needs a choice of process or of listed tolerances; "
+                "that is the discrete allocation's job, not the continuous solver's"
+            )
+        option = c.options()[0]
+        if option.cost is not None and option.cost.curve == "table":
+            problem = costs.table_problem(option.cost)
+            if problem:
+                raise CaseError(
+                    f"contributor '{c.name}': its cost table cannot be used for continuous "
+                    f"allocation: {problem}",
+                    file=file,
+                    field=f"contributor[{i + 1}] ({c.name}).cost",
+                )
+    return AllocationProblem(case, model, fix)

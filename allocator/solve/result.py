@@ -1,0 +1,319 @@
+"""The result of an allocation: tolerances, costs, requirement checks and shadow prices.
+
+Reads like :class:`scipy.optimize.OptimizeResult`: ``status``, ``success``, ``message`` and
+the numbers, never a bare tuple. pandas is imported only by the methods that return
+pandas objects (``tolerances``, ``to_frame`` ...); :meth:`Allocation.rows` and
+:meth:`Allocation.to_dict` give the same numbers as plain Python for fast command-line use.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import asdict, dataclass
+
+import numpy as np
+
+__all__ = ["Allocation", "RequirementResult", "STATUSES"]
+
+STATUSES = ("optimal", "infeasible", "failed")
+
+
+@dataclass(frozen=True)
+class RequirementResult:
+    """One requirement at the allocated tolerances.
+
+    Attributes
+    ----------
+    name : str
+    nominal : float
+        Response at the nominals ȳ [response].
+    lower, upper : float or None
+        Limits in force for this solve.
+    worst_case_min, worst_case_max : float
+        ``ȳ ∓ Σ n|a|t`` [response].
+    sigma : float
+        RSS standard deviation of the response [response].
+    mean_shift : float
+        Half-width δ of the band the mean may sit in (mean-shift model; else 0) [response].
+    fallout_ppm : float
+        Predicted fallout: normal at ȳ (worst-case and rss models) or at the worst mean
+        in ȳ ± δ (mean-shift model) [ppm].
+    target_ppm : float or None
+        Fallout target (statistical models only) [ppm].
+    linear : bool
+        False when the requirement is a linearised expression.
+    binding : str
+        Which limit the optimum presses against: 'lower', 'upper', 'both' or ''.
+    shadow_price : float
+        d(total cost)/d(limit) of the binding limit [currency/length]: negative for an
+        upper limit (raising it saves money), positive for a lower one.
+    shadow_lower, shadow_upper : float or None
+        The same per limit (None when the limit is absent).
+    shadow_ppm : float or None
+        d(total cost)/d(fallout target) [currency/ppm] (statistical models).
+    """
+
+    name: str
+    nominal: float
+    lower: float | None
+    upper: float | None
+    worst_case_min: float
+    worst_case_max: float
+    sigma: float
+    mean_shift: float
+    fallout_ppm: float
+    target_ppm: float | None
+    linear: bool
+    binding: str
+    shadow_price: float
+    shadow_lower: float | None
+    shadow_upper: float | None
+    shadow_ppm: float | None
+
+    def to_dict(self) -> dict:
+        return asdict(self)
+
+
+def _number(x):
+    return None if x is None else float(x)
+
+
+class Allocation:
+    """Least-cost tolerances for one stack model.
+
+    Attributes
+    ----------
+    model : str
+        'worst-case', 'rss' or 'mean-shift'.
+    status : str
+        'optimal' (solved and re-checked against every requirement), 'infeasible'
+        (no tolerances within limits can meet a requirement; ``message`` says which and
+        by how much) or 'failed' (the solvers did not produce a verified optimum).
+    success : bool
+        ``status == 'optimal'``.
+    message : str
+    total_cost : float or None
+        ``Σ count · cost(t)`` at the allocated tolerances [currency].
+    current_cost : float
+        The same at the case's current tolerances (NaN if a current tolerance lies
+        outside its cost table) [currency].
+    savings, savings_percent : float or None
+        ``current_cost − total_cost`` [currency] and as % of ``current_cost``.
+    tolerances, current, unit_cost, active : pandas.Series
+        Allocated and current ± tolerances [length], unit cost at the allocation
+        [currency], and per contributor 'tightest' | 'loosest' | 'fixed' | ''.
+    processes : dict
+        Contributor name -> process name ('' for a contributor without processes).
+    requirements : list of RequirementResult
+    solver : str
+        'lagrange-dual' (exact 1-D dual) or the conic solver's name.
+    iterations : int
+        Root-finding steps (dual) or solver iterations (summed over cutting planes).
+    gap : float or None
+        Relative gap between the returned cost and a lower bound on the optimum.
+    held : dict
+        Tolerances held by the ``fix`` argument.
+    """
+
+    def __init__(
+        self,
+        *,
+        model,
+        status,
+        message,
+        names,
+        current,
+        counts,
+        lower_bounds,
+        upper_bounds,
+        unit_cost_current,
+        current_cost,
+        processes,
+        solver,
+        iterations,
+        gap,
+        units,
+        currency,
+        title,
+        held,
+        requirements,
+        allocated=None,
+        unit_cost_allocated=None,
+        total_cost=None,
+        bounds=None,
+    ):
+        if status not in STATUSES:
+            raise ValueError(f"unknown status {status!r}")
+        self.model = model
+        self.status = status
+        self.message = message
+        self.names = tuple(names)
+        self._current = np.asarray(current, dtype=float)
+        self._counts = np.asarray(counts, dtype=float)
+        self._lower = np.asarray(lower_bounds, dtype=float)
+        self._upper = np.asarray(upper_bounds, dtype=float)
+        self._unit_current = np.asarray(unit_cost_current, dtype=float)
+        self.current_cost = float(current_cost)
+        self.processes = dict(processes)
+        self.solver = solver
+        self.iterations = int(iterations)
+        self.gap = gap
+        self.units = units
+        self.currency = currency
+        self.title = title
+        self.held = dict(held)
+        self.requirements = list(requirements)
+        self._allocated = None if allocated is None else np.asarray(allocated, dtype=float)
+        self._unit_allocated = (
+            None if unit_cost_allocated is None else np.asarray(unit_cost_allocated, dtype=float)
+        )
+        self.total_cost = None if total_cost is None else float(total_cost)
+        self._bounds = tuple(bounds) if bounds is not None else ("",) * len(self.names)
+
+    # ------------------------------------------------------------------ numbers
+
+    @property
+    def success(self) -> bool:
+        return self.status == "optimal"
+
+    @property
+    def savings(self) -> float | None:
+        if self.total_cost is None:
+            return None
+        return self.current_cost - self.total_cost
+
+    @property
+    def savings_percent(self) -> float | None:
+        if self.total_cost is None or not self.current_cost:
+            return None
+        return 100.0 * (self.current_cost - self.total_cost) / self.current_cost
+
+    def cost_delta(self, other: "Allocation") -> float | None:
+        """``self.total_cost − other.total_cost`` (e.g. the price of holding a tolerance)."""
+        if self.total_cost is None or other.total_cost is None:
+            return None
+        return self.total_cost - other.total_cost
+
+    def allocated_array(self):
+        """Allocated tolerances as a numpy array in case order (None when infeasible)."""
+        return None if self._allocated is None else self._allocated.copy()
+
+    # ------------------------------------------------------------------ pandas views
+
+    def _series(self, values, name):
+        import pandas as pd
+
+        return pd.Series(values, index=pd.Index(self.names, name="contributor"), name=name)
+
+    @property
+    def tolerances(self):
+        """Allocated ± tolerances by contributor (None when infeasible) [length]."""
+        return None if self._allocated is None else self._series(self._allocated, "allocated")
+
+    @property
+    def current(self):
+        return self._series(self._current, "current")
+
+    @property
+    def unit_cost(self):
+        """Unit cost at the allocated tolerances [currency]."""
+        if self._unit_allocated is None:
+            return None
+        return self._series(self._unit_allocated, "unit_cost")
+
+    @property
+    def active(self):
+        return self._series(list(self._bounds), "bound")
+
+    # ------------------------------------------------------------------ plain views
+
+    def rows(self) -> list[dict]:
+        """One plain dict per contributor (what ``to_frame`` shows, without pandas)."""
+        out = []
+        for i, name in enumerate(self.names):
+            out.append(
+                {
+                    "contributor": name,
+                    "process": self.processes.get(name, ""),
+                    "count": int(self._counts[i]),
+                    "current": float(self._current[i]),
+                    "allocated": None if self._allocated is None else float(self._allocated[i]),
+                    "bound": self._bounds[i],
+                    "tightest": _finite(self._lower[i]),
+                    "loosest": _finite(self._upper[i]),
+                    "unit_cost_current": _finite(self._unit_current[i]),
+                    "unit_cost_allocated": (
+                        None if self._unit_allocated is None else _finite(self._unit_allocated[i])
+                    ),
+                }
+            )
+        return out
+
+    def to_frame(self):
+        """Per-contributor DataFrame: current, allocated, bound, unit costs, count, limits."""
+        import pandas as pd
+
+        return pd.DataFrame(self.rows()).set_index("contributor")
+
+    def requirements_frame(self):
+        """Per-requirement DataFrame: ranges, σ, fallout vs target, shadow prices."""
+        import pandas as pd
+
+        return pd.DataFrame([r.to_dict() for r in self.requirements]).set_index("name")
+
+    def to_dict(self) -> dict:
+        """JSON-ready dict; the contract keys are model, status, total_cost, tolerances."""
+        return {
+            "model": self.model,
+            "status": self.status,
+            "success": self.success,
+            "message": self.message,
+            "total_cost": self.total_cost,
+            "current_cost": self.current_cost,
+            "savings": self.savings,
+            "savings_percent": self.savings_percent,
+            "tolerances": (
+                {} if self._allocated is None
+                else {n: float(t) for n, t in zip(self.names, self._allocated)}
+            ),
+            "contributors": self.rows(),
+            "requirements": [r.to_dict() for r in self.requirements],
+            "held": self.held,
+            "solver": self.solver,
+            "iterations": self.iterations,
+            "gap": self.gap,
+            "units": self.units,
+            "currency": self.currency,
+        }
+
+    def __repr__(self) -> str:
+        head = f"Allocation(model={self.model!r}, status={self.status!r}"
+        if self.total_cost is None:
+            return f"{head}, message={self.message!r})"
+        cur = f" {self.currency}" if self.currency else ""
+        lines = [
+            f"{head}, total_cost={self.total_cost:.6g}{cur}, current_cost={self.current_cost:.6g}{cur}, "
+            f"solver={self.solver!r})"
+        ]
+        width = max(len(n) for n in self.names) if self.names else 0
+        for row in self.rows():
+            lines.append(
+                f"  {row['contributor']:<{width}}  ±{row['current']:.4g} -> ±{row['allocated']:.4g}"
+                + (f"  [{row['bound']}]" if row["bound"] else "")
+            )
+        for r in self.requirements:
+            text = (
+                f"  {r.name}: worst case [{r.worst_case_min:.6g}, {r.worst_case_max:.6g}], "
+                f"sigma {r.sigma:.4g}, fallout {r.fallout_ppm:.4g} ppm"
+            )
+            if r.target_ppm is not None:
+                text += f" (target {r.target_ppm:.4g})"
+            lines.append(text)
+        if self.message:
+            lines.append(f"  {self.message}")
+        return "\n".join(lines)
+
+
+def _finite(x):
+    x = float(x)
+    return x if math.isfinite(x) else None
