@@ -1,0 +1,440 @@
+"""Exact allocation through the Lagrange dual of separable constraints.
+
+Under worst case and rss every requirement's constraint is a sum over contributors:
+
+- worst case: ``Σ_i n_i |a_ri| t_i ≤ S_r`` (``S_r = min(ȳ − L, U − ȳ) − W_held``);
+- rss: ``Σ_i n_i a_ri² f_i² t_i² ≤ S_r`` (``S_r = σ_max² − σ_held²``).
+
+For multipliers ``λ_r ≥ 0`` the Lagrangian splits into one problem per contributor whose
+minimiser has a closed form, clipped to the contributor's limits (Chase, Greenwood,
+Loosli & Hauglund 1990). With ``v_i = Σ_r λ_r w_ri`` (``w = |a|`` or ``a² f²``):
+
+- worst case, ``C_i'(t_i) = −v_i``:  ``a + b/t^k`` gives ``t = (k b / v)^(1/(k+1))``
+  (reciprocal: k = 1); ``a + b e^(−ct)`` gives ``t = ln(b c / v) / c``; a convex table
+  gives the breakpoint whose subgradient holds ``−v``;
+- rss, ``C_i'(t_i) = −2 v_i t_i``:  ``t = (k b / (2v))^(1/(k+2))``;
+  ``t = W₀(b c² / (2v)) / c`` (Lambert W); a convex table: where the subgradient of
+  ``C(t) + v t²`` holds 0.
+
+:class:`ExactAllocation` solves a single requirement by a 1-D root in ``log λ`` (the
+constraint made active) — exact, vectorised, and without cvxpy. :func:`refine` applies
+Newton's method to the multipliers of several requirements, started from a conic
+solver's duals, to take its answer to machine precision.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+from scipy import special
+
+from .. import costs, stack
+from .problem import AllocationProblem, CurveSet, mean_shift_allowance
+
+__all__ = ["applicable", "separable", "ExactAllocation", "SeparableDual", "refine"]
+
+SOLVER_NAME = "lagrange-dual"
+
+
+def separable(problem: AllocationProblem) -> bool:
+    """True when every constraint is a sum over contributors (worst case, rss, or mean
+    shift without free mean shifts, where the allowed σ is a constant)."""
+    if problem.model == "mean-shift":
+        return not np.any(problem.mean_shifts[problem.free] > 0)
+    return problem.model in ("worst-case", "rss")
+
+
+def applicable(problem: AllocationProblem) -> bool:
+    """True when :class:`ExactAllocation` solves ``problem``: one separable requirement
+    (costs are formulas or convex tables; :func:`~.problem.prepare` refused others)."""
+    return len(problem.requirements) == 1 and separable(problem)
+
+
+# --------------------------------------------------------------------------- the dual
+
+
+class SeparableDual:
+    """The per-contributor minimisers and constraint values of a separable problem.
+
+    Parameters
+    ----------
+    problem : AllocationProblem
+        With :func:`separable` true.
+    """
+
+    def __init__(self, problem: AllocationProblem):
+        self.problem = problem
+        free = problem.free
+        self.index = np.flatnonzero(free)
+        self.lo = problem.lower_bounds[free]
+        self.hi = problem.upper_bounds[free]
+        self.n = problem.counts[free]
+        self.curves = CurveSet([problem.curves.curves[i] for i in self.index])
+        self.squared = problem.model != "worst-case"
+        a = np.array([r.sensitivity for r in problem.requirements]).reshape(len(problem.requirements), -1)
+        weight = (a * problem.sigma_factors) ** 2 if self.squared else np.abs(a)
+        self.weight = weight[:, free]  # per part, one row per requirement
+        self.coef = self.weight * self.n
+        held = ~free
+        t_held = problem.held[held]
+        power = 2 if self.squared else 1
+        self.held_part = (weight[:, held] * problem.counts[held]) @ t_held**power
+        self.held_cost = float(np.sum((problem.counts * problem.unit_costs(problem.held))[held]))
+        self.evaluations = 0
+
+    # ------------------------------------------------------------------ inner problem
+
+    def tolerances(self, v) -> np.ndarray:
+        """Minimiser of ``C_i(t) + v_i t`` (worst case) or ``C_i(t) + v_i t²`` (rss)."""
+        self.evaluations += 1
+        v = np.broadcast_to(np.asarray(v, dtype=float), self.hi.shape)
+        cs = self.curves
+        p, e = cs.power, cs.expo
+        t = np.full(self.hi.shape, np.inf)
+        with np.errstate(divide="ignore", over="ignore", invalid="ignore"):
+            if self.squared:
+                q = 2.0 * v
+                t[p] = (cs.pk * cs.pb / q[p]) ** (1.0 / (cs.pk + 2.0))
+                t[e] = special.lambertw(cs.eb * cs.ec**2 / q[e]).real / cs.ec
+            else:
+                t[p] = (cs.pk * cs.pb / v[p]) ** (1.0 / (cs.pk + 1.0))
+                t[e] = np.log(cs.eb * cs.ec / v[e]) / cs.ec
+        t[np.isnan(t) | (v <= 0)] = np.inf  # nothing pulls the tolerance tighter
+        for j in cs.tables:
+            curve = cs.curves[j]
+            if self.squared:
+                t[j] = _table_squared_minimiser(curve, 2.0 * v[j])
+            else:
+                t[j] = costs.inverse_derivative(curve, -v[j], self.lo[j], self.hi[j])
+        return np.clip(t, self.lo, self.hi)
+
+    def combined(self, lam) -> np.ndarray:
+        """Per-part weight ``v = Σ_r λ_r w_r`` for multipliers ``lam``."""
+        return np.asarray(lam, dtype=float) @ self.weight
+
+    def spreads(self, t) -> np.ndarray:
+        """Each requirement's free part ``Σ n w t`` (or ``t²``)."""
+        return self.coef @ (t * t if self.squared else t)
+
+    def cost(self, t) -> float:
+        """Cost of the free contributors [currency]."""
+        return float(self.n @ self.curves.value(t))
+
+    def bound(self, t, lam, rhs) -> float:
+        """Weak-duality lower bound on the optimum: the Lagrangian at ``t = t(λ)``."""
+        active = np.asarray(lam) > 0
+        extra = float(np.asarray(lam)[active] @ (self.spreads(t)[active] - np.asarray(rhs)[active]))
+        return self.held_cost + self.cost(t) + extra
+
+    def jacobian(self, t, v) -> np.ndarray:
+        """``∂ spread_r / ∂ λ_s`` at ``t = t(λ)`` (formula costs; clipped parts fixed)."""
+        cs = self.curves
+        curvature = np.zeros_like(t)
+        tp, te = t[cs.power], t[cs.expo]
+        curvature[cs.power] = cs.pk * (cs.pk + 1.0) * cs.pb * tp ** (-cs.pk - 2.0)
+        curvature[cs.expo] = cs.eb * cs.ec**2 * np.exp(-cs.ec * te)
+        inside = (t > self.lo) & (t < self.hi)
+        if self.squared:
+            # C'(t) + 2 v t = 0  ⇒  dt/dv = −2t / (C'' + 2v);  d spread/dt = 2 n w t
+            dt_dv = np.where(inside, -2.0 * t / (curvature + 2.0 * v), 0.0)
+            grad = 2.0 * self.coef * t
+        else:
+            dt_dv = np.where(inside, -1.0 / np.where(curvature > 0, curvature, np.inf), 0.0)
+            grad = self.coef
+        return (grad * dt_dv) @ self.weight.T
+
+    # ------------------------------------------------------------------ right-hand sides
+
+    def rhs(self, limits):
+        """``S_r`` per requirement, and the allowance it came from (room or σ)."""
+        problem = self.problem
+        out, allowance = [], []
+        for k, (req, lim) in enumerate(zip(problem.requirements, limits)):
+            if lim.lower is None and lim.upper is None:
+                out.append(math.inf)
+                allowance.append(math.inf)
+                continue
+            if not self.squared:
+                room = min(
+                    math.inf if lim.lower is None else req.nominal - lim.lower,
+                    math.inf if lim.upper is None else lim.upper - req.nominal,
+                )
+                out.append(room - self.held_part[k])
+                allowance.append(room)
+                continue
+            if problem.model == "mean-shift":
+                t_held = np.where(problem.free, 0.0, problem.held)
+                delta = stack.mean_shift_delta(req.sensitivity, problem.counts, problem.mean_shifts, t_held)
+                sigma = mean_shift_allowance(req.nominal, delta, lim)[0]
+            else:
+                sigma = stack.sigma_limit(req.nominal, lim.fallout, lim.lower, lim.upper)
+            out.append(sigma * sigma - self.held_part[k])
+            allowance.append(sigma)
+        return np.array(out), np.array(allowance)
+
+    def multipliers(self, lam, allowance) -> list[float]:
+        """``−∂cost/∂(allowance)`` per requirement (what shadow prices are made from)."""
+        lam = np.asarray(lam, dtype=float)
+        if self.squared:  # ∂(σ²)/∂σ = 2σ
+            return [2.0 * l * s if l > 0 else 0.0 for l, s in zip(lam, allowance)]
+        return [float(l) if l > 0 else 0.0 for l in lam]
+
+
+# --------------------------------------------------------------------------- 1 requirement
+
+
+class ExactAllocation:
+    """The exact 1-D dual for one prepared single-requirement problem.
+
+    Parameters
+    ----------
+    problem : AllocationProblem
+        Must satisfy :func:`applicable`.
+
+    Notes
+    -----
+    ``G(λ) = spread(t(λ)) − S`` is non-increasing in λ. If the loosest tolerances meet the
+    requirement, λ = 0. Otherwise λ is bracketed by decades from a first guess (the
+    median slope ratio at the middle of the limits) and found by Brent's method in
+    ``log λ``; the last step moves along the segment between the two bracketing
+    solutions to the point where the constraint is exactly active (where a table makes
+    ``t(λ)`` jump, every point of that segment costs the same per unit of constraint).
+    """
+
+    def __init__(self, problem: AllocationProblem):
+        if not applicable(problem):
+            raise ValueError("the exact dual needs one requirement under worst-case or rss")
+        self.problem = problem
+        self.dual = SeparableDual(problem)
+
+    def solve(self, overrides=None):
+        """Allocate; returns an :class:`~allocator.solve.result.Allocation`."""
+        problem, dual = self.problem, self.dual
+        limits = problem.limits(overrides)
+        reason = problem.diagnose(limits)
+        if reason:
+            return problem.infeasible(limits, reason, SOLVER_NAME)
+        dual.evaluations = 0
+        rhs, allowance = dual.rhs(limits)
+        t_free, lam, bound = self._root(float(rhs[0]))
+        t = problem.full(t_free)
+        polished, theta = problem.polish(t, limits)
+        cost = problem.total_cost(polished)
+        gap = max(0.0, (cost - bound) / cost) if bound is not None and cost > 0 else None
+        ok = theta >= 1.0 - 1e-9 and problem.feasible(polished, limits, rtol=problem._rtol())
+        return problem.result(
+            polished,
+            limits,
+            status="optimal" if ok else "failed",
+            message=(
+                "exact 1-D Lagrange dual; re-checked against the requirement"
+                if ok
+                else f"dual solution needed a shrink of {1 - theta:.2e} to meet the requirement"
+            ),
+            solver=SOLVER_NAME,
+            iterations=dual.evaluations,
+            gap=gap,
+            multipliers=dual.multipliers([lam], allowance),
+        )
+
+    def _root(self, rhs: float):
+        """Root of ``spread(t(λ)) = rhs`` in log λ; returns ``(t, λ, dual lower bound)``."""
+        dual = self.dual
+        loosest = dual.hi
+        if dual.index.size == 0 or not math.isfinite(rhs) or dual.spreads(loosest)[0] <= rhs:
+            return loosest.copy(), 0.0, dual.held_cost + dual.cost(loosest)
+        scale = abs(rhs) if rhs != 0 else 1.0
+        w = dual.weight[0]
+        excess = lambda lam: (dual.spreads(dual.tolerances(lam * w))[0] - rhs) / scale  # noqa: E731
+
+        # a first λ from the slopes at the middle of the limits, then widen by decades
+        mid = np.sqrt(dual.lo * dual.hi)
+        slope = -dual.curves.derivative(mid)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            per = slope / (2.0 * w * mid) if dual.squared else slope / w
+        per = per[(w > 0) & np.isfinite(per) & (per > 0)]
+        guess = float(np.median(per)) if per.size else 1.0
+        lam_lo = lam_hi = guess
+        for _ in range(400):
+            if excess(lam_hi) <= 0:
+                break
+            lam_hi *= 10.0
+        else:
+            return dual.lo.copy(), math.inf, None
+        for _ in range(400):
+            if excess(lam_lo) > 0:
+                break
+            lam_lo /= 10.0
+        x_a, x_b = _bracket_root(lambda x: excess(math.exp(x)), math.log(lam_lo), math.log(lam_hi))
+        lam_a, lam_b = math.exp(x_a), math.exp(x_b)
+        t_a, t_b = dual.tolerances(lam_a * w), dual.tolerances(lam_b * w)
+        t = self._mix(t_a, t_b, rhs)
+        bound = max(dual.bound(t_a, [lam_a], [rhs]), dual.bound(t_b, [lam_b], [rhs]))
+        return t, lam_b, bound
+
+    def _mix(self, t_a, t_b, rhs):
+        """Point on the segment t_b → t_a where the constraint is exactly active."""
+        dual = self.dual
+        d = t_a - t_b
+        room = rhs - dual.spreads(t_b)[0]
+        if room <= 0 or not np.any(d):
+            return t_b
+        coef = dual.coef[0]
+        if dual.squared:
+            quad = float(coef @ (d * d))
+            lin = 2.0 * float(coef @ (t_b * d))
+            theta = 2.0 * room / (lin + math.sqrt(lin * lin + 4.0 * quad * room))
+        else:
+            theta = room / float(coef @ d)
+        theta = min(max(theta, 0.0), 1.0)
+        for _ in range(20):  # round-off may leave the mix a hair infeasible: step back
+            t = t_b + theta * d
+            if dual.spreads(t)[0] <= rhs:
+                return t
+            theta *= 1.0 - 1e-9
+        return t_b
+
+
+# --------------------------------------------------------------------------- refinement
+
+
+def refine(problem: AllocationProblem, limits, multipliers, t_start, *, max_steps: int = 50):
+    """Newton's method on the dual, from a conic solver's answer, to machine precision.
+
+    Parameters
+    ----------
+    problem : AllocationProblem
+        Separable (:func:`separable`), formula costs only.
+    limits : list of Limits
+    multipliers : sequence of float
+        ``−∂cost/∂(allowance)`` per requirement from the conic solver's duals.
+    t_start : numpy.ndarray
+        The conic solver's tolerances (all contributors).
+
+    Returns
+    -------
+    (t, multipliers, bound) or None
+        Tolerances (all contributors) satisfying the KKT conditions to round-off, the
+        refined multipliers, and the dual lower bound; None when Newton does not settle
+        (the caller keeps the conic answer).
+
+    Notes
+    -----
+    Solves ``spread_r(t(λ)) = S_r`` for the requirements that bind, by Newton steps
+    with the analytic Jacobian of :meth:`SeparableDual.jacobian` and a backtracking
+    line search on the residual; a multiplier that turns negative leaves the active set,
+    a requirement the iterate violates joins it. At the end ``t(λ)`` minimises the
+    Lagrangian exactly, so with every constraint met and complementary slackness this is
+    the optimum (KKT sufficiency for a convex problem).
+    """
+    dual = SeparableDual(problem)
+    if dual.curves.tables or dual.index.size == 0:
+        return None
+    rhs, allowance = dual.rhs(limits)
+    finite = np.isfinite(rhs)
+    y = np.asarray(multipliers, dtype=float)
+    if dual.squared:
+        lam = np.where(y > 0, y / (2.0 * np.where(allowance > 0, allowance, np.inf)), 0.0)
+    else:
+        lam = np.clip(y, 0.0, None)
+    scale = np.where(finite & (rhs != 0), np.abs(rhs), 1.0)
+    spreads_start = dual.spreads(t_start[problem.free])
+    # start from the requirements the conic answer presses against; a slack one has λ = 0
+    active = finite & (spreads_start >= rhs - 1e-6 * scale)
+    lam = np.where(active, lam, 0.0)
+
+    def residual(lam):
+        t = dual.tolerances(dual.combined(lam))
+        return t, (dual.spreads(t) - np.where(finite, rhs, 0.0)) / scale
+
+    t, r = residual(lam)
+    for _ in range(max_steps):
+        # requirements violated by the current iterate join the active set
+        active |= finite & (r > 1e-12)
+        res = np.where(active, r, 0.0)
+        if np.all(np.abs(res) <= 1e-12) and np.all(r[~active] <= 1e-12):
+            break
+        idx = np.flatnonzero(active)
+        jac = dual.jacobian(t, dual.combined(lam))[np.ix_(idx, idx)] / scale[idx, None]
+        try:
+            step = np.linalg.solve(jac, -res[idx])
+        except np.linalg.LinAlgError:
+            return None
+        if not np.all(np.isfinite(step)):
+            return None
+        base = float(np.linalg.norm(res))
+        alpha = 1.0
+        for _ in range(40):
+            trial = lam.copy()
+            trial[idx] = np.maximum(lam[idx] + alpha * step, 0.0)
+            t_new, r_new = residual(trial)
+            if np.linalg.norm(np.where(active, r_new, 0.0)) < base or alpha < 1e-6:
+                break
+            alpha *= 0.5
+        lam = trial
+        t, r = t_new, r_new
+        # a multiplier driven to zero with its constraint slack leaves the active set
+        active &= ~((lam <= 0) & (r < 0))
+    else:
+        return None
+    if np.any(r > 1e-9) or np.any(lam < 0):
+        return None
+    return problem.full(t), dual.multipliers(lam, allowance), dual.bound(t, lam, np.where(finite, rhs, 0.0))
+
+
+def _bracket_root(f, a: float, b: float, *, xtol: float = 1e-13, maxiter: int = 300):
+    """Shrink ``[a, b]`` with ``f(a) > 0 >= f(b)`` (f non-increasing) around the root.
+
+    Illinois-modified regula falsi (superlinear for smooth f) with a bisection step
+    whenever two steps did not halve the bracket (steps of a table's f). Returns the
+    final ``(a, b)``: ``f(a) > 0 >= f(b)`` and ``b − a <= xtol·(1 + |a|)``.
+    (Our own few lines instead of scipy.optimize.brentq, whose import costs more than
+    a whole command-line allocation.)
+    """
+    fa, fb = f(a), f(b)
+    side = 0
+    width = b - a
+    for i in range(maxiter):
+        if b - a <= xtol * (1.0 + abs(a)) or fb == 0.0:
+            break
+        if i % 2 == 0:
+            if b - a > 0.5 * width and i > 0:
+                x = 0.5 * (a + b)
+            else:
+                x = b - fb * (b - a) / (fb - fa)
+            width = b - a
+        else:
+            x = b - fb * (b - a) / (fb - fa)
+        if not a < x < b:
+            x = 0.5 * (a + b)
+        fx = f(x)
+        if fx > 0:
+            a, fa = x, fx
+            if side == -1:
+                fb *= 0.5
+            side = -1
+        else:
+            b, fb = x, fx
+            if side == 1:
+                fa *= 0.5
+            side = 1
+    return a, b
+
+
+def _table_squared_minimiser(curve, q: float) -> float:
+    """Minimiser of ``C(t) + q t²/2`` over a convex piecewise-linear table's range.
+
+    ``h(t) = C'(t) + q t`` is increasing; the answer is ``clip(−s_j/q, x_j, x_{j+1})``
+    for the last segment j with ``h(x_j) ≤ 0`` (the first breakpoint when none has).
+    """
+    x = np.asarray(curve.points_tolerance, dtype=float)
+    y = np.asarray(curve.points_cost, dtype=float)
+    s = np.diff(y) / np.diff(x)
+    if q <= 0:
+        return float(x[-1])
+    ok = np.flatnonzero(s + q * x[:-1] <= 0)
+    if ok.size == 0:
+        return float(x[0])
+    j = ok[-1]
+    return float(np.clip(-s[j] / q, x[j], x[j + 1]))
