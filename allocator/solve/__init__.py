@@ -1,0 +1,110 @@
+"""Least-cost tolerance allocation.
+
+``allocate(case, model)`` picks the solver:
+
+- the exact 1-D Lagrange dual (:mod:`.exact`) when the case has one requirement and the
+  model is worst-case or rss (no cvxpy import, fastest);
+- the convex conic formulation (:mod:`.continuous`) otherwise, with cutting planes for
+  two-sided mean shift;
+- the discrete solver (``solve/discrete.py``, when present) for contributors that need a
+  choice of process or of listed tolerances.
+
+Every answer is re-checked against the original requirements in plain numpy before it is
+called 'optimal' (see :mod:`.problem`).
+"""
+
+from __future__ import annotations
+
+import importlib.util
+
+from ..model import Case
+from .result import Allocation, RequirementResult
+
+__all__ = ["allocate", "allocate_all", "solver_for", "prepare", "Allocation", "RequirementResult"]
+
+
+def prepare(case: Case, model: str, fix=None):
+    """The checked :class:`~allocator.solve.problem.AllocationProblem` for ``case``."""
+    from .problem import prepare as _prepare
+
+    return _prepare(case, model, fix)
+
+
+def _discrete_module():
+    """``allocator.solve.discrete`` if that solver is installed, else None."""
+    if importlib.util.find_spec("allocator.solve.discrete") is None:
+        return None
+    from . import discrete
+
+    return discrete
+
+
+def _default_model(case: Case) -> str:
+    return case.allocation.models[0] if case.allocation.models else "worst-case"
+
+
+def solver_for(case: Case, model: str | None = None, *, fix=None):
+    """A solver object with ``.solve(overrides=None) -> Allocation`` for repeated use.
+
+    The exact dual when it applies, else a compiled conic problem
+    (:class:`~allocator.solve.continuous.CompiledAllocation`); building it once and calling
+    ``solve`` with limit overrides is what frontier sweeps do.
+    """
+    from .exact import ExactAllocation, applicable
+
+    model = model or _default_model(case)
+    if any(c.is_discrete and not c.fixed and c.name not in (fix or {}) for c in case.contributors):
+        discrete = _discrete_module()
+        if discrete is not None and hasattr(discrete, "solver_for"):
+            return discrete.solver_for(case, model, fix=fix)
+    problem = prepare(case, model, fix)
+    if applicable(problem):
+        return ExactAllocation(problem)
+    from .continuous import CompiledAllocation
+
+    return CompiledAllocation.from_problem(problem)
+
+
+def allocate(case: Case, model: str | None = None, *, fix=None, overrides=None) -> Allocation:
+    """Least-cost ± tolerances for ``case`` under one stack model.
+
+    Parameters
+    ----------
+    case : Case
+    model : {'worst-case', 'rss', 'mean-shift'}, optional
+        Default: the first of the case's ``[allocation].models``.
+    fix : dict, optional
+        Contributor name -> ± tolerance to hold at [length] (besides the case's
+        ``fixed`` contributors).
+    overrides : dict, optional
+        Requirement name -> dict of ``lower`` / ``upper`` / ``fallout_ppm`` to use
+        instead of the case's.
+
+    Returns
+    -------
+    Allocation
+        ``status`` 'optimal', 'infeasible' (``message`` names the requirement, by how much
+        the tightest tolerances miss it and the largest contributors) or 'failed'.
+
+    Raises
+    ------
+    UsageError
+        Unknown model or contributor in ``fix``, a held tolerance ≤ 0, or a contributor
+        that needs process selection while the discrete solver is not available.
+    CaseError
+        A cost table that is not convex and decreasing.
+
+    Notes
+    -----
+    Minimise ``Σ n_i C_i(t_i)`` over ``lower_i ≤ t_i ≤ upper_i`` subject to every
+    requirement under the model (see docs/allocation.md). References: Chase, Greenwood,
+    Loosli & Hauglund (1990), Manufacturing Review 3(1), 49-59; Greenwood & Chase (1987),
+    Journal of Engineering for Industry 109(2), 112-116.
+    """
+    return solver_for(case, model, fix=fix).solve(overrides)
+
+
+def allocate_all(case: Case, models=None, fix=None) -> list[Allocation]:
+    """:func:`allocate` for each model (default: the case's ``[allocation].models``)."""
+    models = tuple(models) if models else tuple(case.allocation.models)
+    return [allocate(case, m, fix=fix) for m in models]

@@ -1,0 +1,398 @@
+"""Least-cost allocation as one convex conic problem (cvxpy), for any number of requirements.
+
+Formulation in scaled variables ``τ = t / ℓ`` (ℓ: geometric mean of the free limits) and
+costs divided by a cost scale, so that a case in mm, m or μm gives the solver the same
+numbers:
+
+- objective ``Σ n_i C_i(ℓ τ_i) / c`` with exact cones (:func:`allocator.costs.cvx_costs`:
+  ``inv_pos``, ``power``, ``exp``, piecewise-linear maxima), vectorised per family;
+- ``lower_i/ℓ ≤ τ_i ≤ upper_i/ℓ`` (held contributors are constants);
+- worst case: ``Σ n|a| t ≤ min(ȳ − L, U − ȳ) − W_held`` (linear);
+- rss: ``‖(√n a f t, σ_held)‖₂ ≤ σ_max`` (second-order cone), σ_max from
+  :func:`allocator.stack.sigma_limit`;
+- mean shift: ``‖·‖₂ ≤ s`` and ``s ≤ g(δ_k) + g'(δ_k)(δ(t) − δ_k)`` for K tangent points
+  of the concave allowance ``g`` (:func:`~allocator.solve.problem.mean_shift_allowance`);
+  the tangents are moved to the current solution's δ until the true constraint holds
+  (outer approximation / cutting planes; exact in one step when ``g`` is linear, i.e.
+  one-sided limits).
+
+Every right-hand side that depends on a limit or a fallout target is a cvxpy
+``Parameter`` and the problem is DPP-compliant, so :meth:`CompiledAllocation.solve` with
+other limits re-uses the compiled problem (what a frontier sweep needs).
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+from .. import costs, stack
+from .problem import AllocationProblem, mean_shift_allowance, prepare, scaled_curve
+
+__all__ = ["CompiledAllocation", "SOLVER_OPTIONS"]
+
+# Tight tolerances (1e-10 tends to stall in Clarabel's last steps). Every tier names all
+# its tolerances: cvxpy re-uses a cached Clarabel instance whose settings persist.
+SOLVER_OPTIONS = {
+    "CLARABEL": dict(tol_gap_abs=1e-9, tol_gap_rel=1e-9, tol_feas=1e-9, tol_ktratio=1e-7, max_iter=300),
+    "CLARABEL-STANDARD": dict(tol_gap_abs=1e-8, tol_gap_rel=1e-8, tol_feas=1e-8, tol_ktratio=1e-6, max_iter=300),
+    "SCS": dict(eps_abs=1e-9, eps_rel=1e-9, max_iters=200_000),
+    "ECOS": dict(abstol=1e-10, reltol=1e-10, feastol=1e-10, max_iters=300),
+}
+# Tried in order until one gives a verified optimum; "-STANDARD" retries a solver with
+# its default tolerances (a tight request can end "inaccurate" where the default does not).
+SOLVER_ORDER = ("CLARABEL", "CLARABEL-STANDARD", "SCS", "ECOS")
+CUT_SLOTS = 8  # tangent planes per mean-shift requirement
+FIRST_CUTS = 3  # tangents placed before the first solve (the rest start switched off)
+CUT_RTOL = 1e-9  # σ ≤ g(δ)(1 + CUT_RTOL) ends the cutting-plane loop
+MAX_CUT_ROUNDS = 80
+POLISH_LIMIT = 1e-6  # a larger shrink means the solver's answer was not accurate
+SLACK_RTOL = 1e-6  # a requirement this far inside its limit is slack: multiplier 0
+
+
+class _Row:
+    """The cvxpy pieces of one requirement's constraint."""
+
+    def __init__(self, kind, scale, constraint, rhs=None, cuts=(), delta_coef=None):
+        self.kind = kind
+        self.scale = scale  # ρ: response units per unit of the scaled constraint
+        self.constraint = constraint
+        self.rhs = rhs
+        self.cuts = list(cuts)  # (B, G, constraint) per tangent slot
+        self.delta_coef = delta_coef
+        self.points = None  # δ of each tangent slot
+
+
+class CompiledAllocation:
+    """An allocation problem compiled once, solvable for many limit values.
+
+    Parameters
+    ----------
+    case : Case
+    model : str
+        'worst-case', 'rss' or 'mean-shift'.
+    fix : dict, optional
+        Contributor name -> ± tolerance to hold [length].
+    solvers : sequence of str, optional
+        cvxpy solver names to try in order (default: Clarabel, then SCS, then ECOS
+        where installed).
+
+    Examples
+    --------
+    >>> compiled = CompiledAllocation(case, "rss")  # doctest: +SKIP
+    >>> [compiled.solve({"end_play": {"upper": u}}).total_cost for u in (0.3, 0.35)]  # doctest: +SKIP
+    """
+
+    def __init__(self, case, model: str, fix=None, *, solvers=None):
+        self._init(prepare(case, model, fix), solvers)
+
+    @classmethod
+    def from_problem(cls, problem: AllocationProblem, *, solvers=None) -> "CompiledAllocation":
+        self = cls.__new__(cls)
+        self._init(problem, solvers)
+        return self
+
+    def _init(self, problem: AllocationProblem, solvers):
+        import cvxpy as cp
+
+        self.problem = problem
+        installed = set(cp.installed_solvers())
+        order = SOLVER_ORDER if solvers is None else tuple(solvers)
+        self.solvers = tuple(s for s in order if s.split("-")[0] in installed)
+        if not self.solvers:
+            raise RuntimeError(f"none of the solvers {', '.join(order)} is installed")
+        p = problem
+        free = np.flatnonzero(p.free)
+        self.index = free
+        length, money = p.length_scale, p.cost_scale
+        n = p.counts
+        held = ~p.free
+        t_held = np.where(held, p.held, 0.0)
+        self.held_cost = float(np.sum((n * p.unit_costs(np.where(held, p.held, 1.0)))[held]))
+
+        self.tau = tau = cp.Variable(free.size, name="tau") if free.size else None
+        rows: list[_Row | None] = []
+        constraints = []
+        if free.size:
+            curves = [scaled_curve(p.curves.curves[i], length, money) for i in free]
+            objective = costs.cvx_costs(curves, tau, n[free])
+            constraints += [tau >= p.lower_bounds[free] / length, tau <= p.upper_bounds[free] / length]
+        for k, req in enumerate(p.requirements):
+            a = req.sensitivity
+            if p.model == "worst-case":
+                coef = (n * np.abs(a))[free] * length
+                nz = np.flatnonzero(coef > 0)
+                if nz.size == 0:
+                    rows.append(None)
+                    continue
+                scale = float(coef.max())
+                rhs = cp.Parameter(name=f"room_{k}")
+                con = (coef[nz] / scale) @ tau[nz] <= rhs
+                constraints.append(con)
+                rows.append(_Row("worst-case", scale, con, rhs))
+                continue
+            w = (np.sqrt(n) * np.abs(a) * p.sigma_factors)[free] * length
+            nz = np.flatnonzero(w > 0)
+            if nz.size == 0:
+                rows.append(None)
+                continue
+            scale = float(w.max())
+            spread = cp.multiply(w[nz] / scale, tau[nz])
+            sigma_held = stack.rss_sigma(a[held], n[held], (p.sigma_factors * t_held)[held])
+            if sigma_held > 0:
+                spread = cp.hstack([spread, cp.Constant(np.array([sigma_held / scale]))])
+            norm = cp.norm(spread, 2)
+            if p.model == "rss":
+                rhs = cp.Parameter(nonneg=True, name=f"sigma_max_{k}")
+                con = norm <= rhs
+                constraints.append(con)
+                rows.append(_Row("rss", scale, con, rhs))
+                continue
+            sigma = cp.Variable(name=f"sigma_{k}")
+            dcoef = (n * np.abs(a) * p.mean_shifts)[free] * length / scale
+            dz = np.flatnonzero(dcoef > 0)
+            delta = (dcoef[dz] @ tau[dz]) if dz.size else None
+            cuts = []
+            for j in range(CUT_SLOTS):
+                b = cp.Parameter(name=f"cut_{k}_{j}_b")
+                g = cp.Parameter(nonpos=True, name=f"cut_{k}_{j}_g")
+                con = sigma <= (b + g * delta if delta is not None else b)
+                cuts.append((b, g, con))
+                constraints.append(con)
+            con = norm <= sigma
+            constraints.append(con)
+            rows.append(_Row("mean-shift", scale, con, cuts=cuts, delta_coef=dcoef))
+        self.rows = rows
+        if free.size:
+            self.cvx = cp.Problem(cp.Minimize(objective), constraints)
+        else:
+            self.cvx = None
+
+    # ------------------------------------------------------------------ properties
+
+    @property
+    def is_dpp(self) -> bool:
+        """True when re-solving with new limits skips recompilation (cvxpy DPP)."""
+        return self.cvx is None or self.cvx.is_dpp()
+
+    # ------------------------------------------------------------------ parameters
+
+    def _set_rhs(self, limits, t_loose):
+        """Set the limit-dependent right-hand sides; returns the mean-shift rows."""
+        p = self.problem
+        held = ~p.free
+        t_held = np.where(held, p.held, 0.0)
+        shifting = []
+        for req, lim, row in zip(p.requirements, limits, self.rows):
+            if row is None:
+                continue
+            a = req.sensitivity
+            unbounded = lim.lower is None and lim.upper is None
+            if row.kind == "worst-case":
+                room = min(
+                    math.inf if lim.lower is None else req.nominal - lim.lower,
+                    math.inf if lim.upper is None else lim.upper - req.nominal,
+                )
+                room -= stack.worst_case_half_width(a, p.counts, t_held)
+                if not math.isfinite(room):  # no limit: never binding
+                    room = 2.0 * stack.worst_case_half_width(a, p.counts, t_loose) + 1.0
+                row.rhs.value = room / row.scale
+            elif row.kind == "rss":
+                if unbounded:
+                    sigma_max = 2.0 * stack.rss_sigma(a, p.counts, p.sigma_factors * t_loose) + 1.0
+                else:
+                    sigma_max = stack.sigma_limit(req.nominal, lim.fallout, lim.lower, lim.upper)
+                row.rhs.value = sigma_max / row.scale
+            else:
+                shifting.append((req, lim, row))
+        return shifting
+
+    def _place_cuts(self, req, lim, row, points):
+        """Tangents of g at ``points`` (values of δ; NaN: slot switched off) into the slots."""
+        p = self.problem
+        held = ~p.free
+        t_held = np.where(held, p.held, 0.0)
+        delta_held = stack.mean_shift_delta(req.sensitivity, p.counts, p.mean_shifts, t_held)
+        # an unused slot must not bind: any σ above what the loosest tolerances give
+        sigma_loose = stack.rss_sigma(req.sensitivity, p.counts, p.sigma_factors * p.loosest)
+        off = (2.0 * sigma_loose + 1e-300) / row.scale
+        unbounded = lim.lower is None and lim.upper is None
+        for (b, g, _), point in zip(row.cuts, points):
+            if unbounded or not np.isfinite(point):
+                b.value, g.value = off, 0.0
+                continue
+            value, slope, _ = mean_shift_allowance(req.nominal, point, lim)
+            slope = min(slope, 0.0)
+            b.value = (value + slope * (delta_held - point)) / row.scale
+            g.value = slope
+        row.points = np.asarray(points, dtype=float)
+
+    def _domain(self, req, lim):
+        """Largest δ for which the worst mean is still inside the limits."""
+        d_low = math.inf if lim.lower is None else req.nominal - lim.lower
+        d_up = math.inf if lim.upper is None else lim.upper - req.nominal
+        return min(d_low, d_up)
+
+    # ------------------------------------------------------------------ solve
+
+    def solve(self, overrides=None):
+        """Allocate with the case's limits, or with ``overrides``.
+
+        Parameters
+        ----------
+        overrides : dict, optional
+            Requirement name -> dict with any of ``lower``, ``upper``, ``fallout_ppm``.
+
+        Returns
+        -------
+        Allocation
+        """
+        p = self.problem
+        limits = p.limits(overrides)
+        reason = p.diagnose(limits)
+        if reason:
+            return p.infeasible(limits, reason, self.solvers[0].lower())
+        if self.cvx is None:  # everything held: only the check remains
+            t = p.held.copy()
+            ok = p.feasible(t, limits, rtol=p._rtol())
+            return p.result(t, limits, status="optimal" if ok else "infeasible",
+                            message="every contributor is held", solver="none")
+        shifting = self._set_rhs(limits, p.loosest)
+        notes = []
+        fallback = None
+        for solver in self.solvers:
+            outcome = self._attempt(solver, limits, shifting)
+            if outcome is None:
+                notes.append(f"{solver.lower()} failed")
+                continue
+            t, accurate, iterations, bound, multipliers, note = outcome
+            polished, theta = p.polish(t, limits)
+            cost = p.total_cost(polished)
+            refined = self._refine(limits, multipliers, t, cost) if accurate else None
+            if refined is not None:
+                polished, theta, cost, multipliers, bound = refined
+                note = "KKT refined" + (f"; {note}" if note else "")
+            gap = max(0.0, (cost - bound) / cost) if cost > 0 and bound is not None else None
+            verified = p.feasible(polished, limits, rtol=p._rtol())
+            if accurate and verified and theta >= 1.0 - POLISH_LIMIT:
+                message = "conic solve re-checked against every requirement"
+                if note:
+                    message += f"; {note}"
+                if theta < 1.0:
+                    message += f" (polished: tolerances shrunk by {1 - theta:.1e})"
+                return p.result(polished, limits, status="optimal", message=message,
+                                solver=solver.lower(), iterations=iterations, gap=gap,
+                                multipliers=multipliers)
+            notes.append(
+                f"{solver.lower()}: "
+                + (note or ("inaccurate" if not accurate else f"needed a shrink of {1 - theta:.1e}"))
+            )
+            if verified and fallback is None:
+                fallback = (polished, solver.lower(), iterations, gap, multipliers)
+        message = "no verified optimum (" + "; ".join(notes) + ")"
+        if fallback is not None:
+            t, solver, iterations, gap, multipliers = fallback
+            return p.result(t, limits, status="failed",
+                            message=message + "; the tolerances shown meet every requirement",
+                            solver=solver, iterations=iterations, gap=gap, multipliers=multipliers)
+        return p.result(None, limits, status="failed", message=message, solver=self.solvers[-1].lower())
+
+    def _refine(self, limits, multipliers, t, cost):
+        """Newton on the dual from the conic answer (separable models, formula costs).
+
+        Interior-point answers are accurate to about the square root of the solver's
+        gap in the tolerances (the cost is flat at the optimum); the refined point meets
+        the KKT conditions to round-off. Kept only if it is feasible and not dearer.
+        """
+        from .exact import refine, separable
+
+        p = self.problem
+        if not separable(p):
+            return None
+        out = refine(p, limits, multipliers, t)
+        if out is None:
+            return None
+        t_new, multipliers_new, bound = out
+        polished, theta = p.polish(t_new, limits)
+        new_cost = p.total_cost(polished)
+        if theta < 1.0 - 1e-9 or not new_cost <= cost * (1 + 1e-9) + 1e-300:
+            return None
+        return polished, theta, new_cost, multipliers_new, bound
+
+    def _run_solver(self, solver):
+        """One solve; returns (scaled τ, accurate?, iterations) or None on failure."""
+        import cvxpy as cp
+
+        try:
+            self.cvx.solve(solver=solver.split("-")[0], **SOLVER_OPTIONS.get(solver, {}))
+        except (cp.error.SolverError, ArithmeticError, ValueError):
+            return None
+        status = self.cvx.status
+        if status not in (cp.OPTIMAL, cp.OPTIMAL_INACCURATE) or self.tau.value is None:
+            return None
+        iterations = self.cvx.solver_stats.num_iters or 0
+        return np.asarray(self.tau.value, dtype=float), status == cp.OPTIMAL, iterations
+
+    def _attempt(self, solver, limits, shifting):
+        """Solve (with cutting planes for mean shift); None when the solver fails."""
+        import warnings
+
+        p = self.problem
+        length, money = p.length_scale, p.cost_scale
+        for req, lim, row in shifting:
+            low = stack.mean_shift_delta(req.sensitivity, p.counts, p.mean_shifts, p.tightest)
+            high = stack.mean_shift_delta(req.sensitivity, p.counts, p.mean_shifts, p.loosest)
+            high = min(high, self._domain(req, lim) * (1 - 1e-9))
+            points = np.full(len(row.cuts), np.nan)
+            points[:FIRST_CUTS] = np.linspace(low, max(low, high), FIRST_CUTS)
+            self._place_cuts(req, lim, row, points)
+        iterations = 0
+        accurate = True
+        note = ""
+        for round_ in range(1, MAX_CUT_ROUNDS + 1):
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore")  # inaccuracy is handled via the status
+                out = self._run_solver(solver)
+            if out is None:
+                return None
+            tau, ok, its = out
+            accurate &= ok
+            iterations += its
+            t = p.full(np.clip(tau * length, p.lower_bounds[p.free], p.upper_bounds[p.free]))
+            bound = float(self.cvx.value) * money + self.held_cost
+            violated = []
+            for req, lim, row in shifting:
+                a = req.sensitivity
+                sigma = stack.rss_sigma(a, p.counts, p.sigma_factors * t)
+                delta = stack.mean_shift_delta(a, p.counts, p.mean_shifts, t)
+                domain = self._domain(req, lim)
+                allowed = mean_shift_allowance(req.nominal, min(delta, domain), lim)[0] if delta < domain else 0.0
+                if sigma > allowed * (1 + CUT_RTOL):
+                    violated.append((req, lim, row, min(delta, domain * (1 - 1e-12))))
+            if not violated:
+                break
+            for req, lim, row, delta in violated:
+                points = row.points.copy()
+                unused = np.flatnonzero(np.isnan(points))
+                # a free slot, else replace the tangent farthest from the new one
+                slot = unused[0] if unused.size else int(np.argmax(np.abs(points - delta)))
+                points[slot] = delta
+                self._place_cuts(req, lim, row, points)
+        else:
+            note = f"cutting planes stopped after {MAX_CUT_ROUNDS} rounds"
+            accurate = False
+        multipliers = []
+        stats = p.statistics(t, limits)
+        for row, stat in zip(self.rows, stats):
+            if row is None or stat["excess"] < -SLACK_RTOL:  # slack: complementary slackness
+                multipliers.append(0.0)
+                continue
+            if row.kind == "mean-shift":
+                dual = sum(float(c.dual_value or 0.0) for _, _, c in row.cuts)
+            else:
+                dual = float(row.constraint.dual_value or 0.0)
+            multipliers.append(max(dual, 0.0) * money / row.scale)
+        if shifting and not note:
+            note = f"{round_} cutting-plane round{'s' if round_ > 1 else ''}"
+        return t, accurate, iterations, bound, multipliers, note
