@@ -1,0 +1,139 @@
+"""The supplier sheet: cost of loosening one contributor, checked against closed forms.
+
+Reference: the Lagrange-multiplier optimum for reciprocal costs ``c_i = a_i + b_i / t_i``
+(Chase, K. W., Greenwood, W. H., Loosli, B. G. and Hauglund, L. F. (1990). Least cost
+tolerance allocation for mechanical assemblies with automated process selection.
+Manufacturing Review 3(1), 49-59):
+
+- worst case ``Σ t_i ≤ T``: ``t_i = T √b_i / Σ √b_j`` and least cost ``Σ a + (Σ √b)² / T``;
+- rss with normal contributors at cp = 1 (σ_i = t_i / 3), ``Σ t_i² ≤ R²``:
+  ``t_i = R b_i^{1/3} / √(Σ b_j^{2/3})`` and least cost ``Σ a + (Σ b^{2/3})^{3/2} / R``.
+
+Holding contributor ``k`` at ``t_k`` leaves the others the same problem with the budget
+``T − t_k`` (worst case) or ``√(R² − t_k²)`` (rss), which gives the re-solve's cost in
+closed form.
+"""
+
+from __future__ import annotations
+
+import math
+from pathlib import Path
+
+import numpy as np
+import pytest
+from scipy import stats
+
+from allocator.case import load_case
+from allocator.model import Contributor, CostCurve
+from allocator.solve import allocate
+from allocator.supplier import looser_tolerance, supplier_sheet
+from helpers import chain_requirement, contributor, make_case, reciprocal
+
+CASES = Path(__file__).resolve().parent.parent / "cases"
+B = np.array([0.001, 0.004, 0.009])
+A = np.array([0.5, 0.2, 0.1])
+UPPER = 0.5  # nominal response 0.2, so the worst-case budget is T = 0.3
+FALLOUT_PPM = 1000.0  # one-sided: sigma_max = (U - nominal) / z(1 - p)
+
+
+def _case(models=("worst-case", "rss")):
+    parts = [
+        contributor(f"p{i}", nominal=n, tolerance=0.05, limits=(0.001, 1.0), cost=reciprocal(a=a, b=b))
+        for i, (n, a, b) in enumerate(zip((10.0, 10.0, 19.8), A, B), start=1)
+    ]
+    req = chain_requirement("gap", {"p1": 1, "p2": 1, "p3": -1}, upper=UPPER, fallout_ppm=FALLOUT_PPM)
+    return make_case(parts, [req], models=models)
+
+
+def _worst_case_cost(t_held: float | None, k: int, budget: float) -> float:
+    others = np.delete(np.sqrt(B), k)
+    if t_held is None:
+        return A.sum() + np.sqrt(B).sum() ** 2 / budget
+    return A.sum() + B[k] / t_held + others.sum() ** 2 / (budget - t_held)
+
+
+def _rss_cost(t_held: float | None, k: int, radius: float) -> float:
+    if t_held is None:
+        return A.sum() + (B ** (2 / 3)).sum() ** 1.5 / radius
+    others = np.delete(B ** (2 / 3), k)
+    return A.sum() + B[k] / t_held + others.sum() ** 1.5 / math.sqrt(radius**2 - t_held**2)
+
+
+@pytest.mark.parametrize("k", [0, 1, 2])
+def test_worst_case_loosening_matches_lagrange_closed_form(k):
+    case = _case()
+    sheet = supplier_sheet(case, "worst-case")
+    assert sheet.success
+    budget = UPPER - 0.2
+    t_opt = budget * np.sqrt(B) / np.sqrt(B).sum()
+    row = sheet[f"p{k + 1}"]
+    assert row.tolerance == pytest.approx(t_opt[k], rel=1e-6)
+    assert row.looser == pytest.approx(t_opt[k] * 1.1, rel=1e-9)
+    expected = _worst_case_cost(row.looser, k, budget) - _worst_case_cost(None, k, budget)
+    assert row.total_cost_change == pytest.approx(expected, rel=1e-5, abs=1e-9)
+    own = B[k] / row.looser - B[k] / t_opt[k]
+    assert row.own_change == pytest.approx(own, rel=1e-6)
+    assert row.elsewhere_change == pytest.approx(expected - own, rel=1e-5)
+    # every other contributor shares the smaller budget, so all of them tighten
+    assert {name for name, _, _ in row.tightened} == {f"p{i + 1}" for i in range(3) if i != k}
+    for name, before, after in row.tightened:
+        i = int(name[1:]) - 1
+        assert after == pytest.approx((budget - row.looser) * np.sqrt(B[i]) / np.delete(np.sqrt(B), k).sum(), rel=1e-6)
+        assert before == pytest.approx(t_opt[i], rel=1e-6)
+
+
+@pytest.mark.parametrize("k", [0, 2])
+def test_rss_loosening_matches_lagrange_closed_form(k):
+    case = _case()
+    sheet = supplier_sheet(case, "rss")
+    # sigma_max from scipy.stats (independent of the library's own root finding)
+    radius = 3.0 * (UPPER - 0.2) / stats.norm.isf(FALLOUT_PPM * 1e-6)
+    row = sheet[f"p{k + 1}"]
+    t_opt = radius * B ** (1 / 3) / math.sqrt((B ** (2 / 3)).sum())
+    assert row.tolerance == pytest.approx(t_opt[k], rel=1e-5)
+    expected = _rss_cost(row.looser, k, radius) - _rss_cost(None, k, radius)
+    assert row.total_cost_change == pytest.approx(expected, rel=1e-4, abs=1e-9)
+    assert row.total_cost_change > 0
+
+
+def test_changes_are_never_negative_on_a_demo_case():
+    # the base is the least cost, so holding anything elsewhere cannot be cheaper
+    case = load_case(CASES / "gearbox_end_play.toml")
+    sheet = supplier_sheet(case, "rss")
+    solved = [r for r in sheet.rows if r.status == "solved"]
+    assert solved
+    for r in solved:
+        assert r.total_cost_change >= -1e-7 * sheet.base.total_cost
+        assert r.own_change < 0  # a looser tolerance is cheaper on a decreasing cost curve
+        assert r.total_cost_change == pytest.approx(
+            allocate(case, "rss", fix={r.contributor: r.looser}).total_cost - sheet.base.total_cost, abs=1e-12
+        )
+    assert sheet["bearing_width"].status == "fixed"
+    frame = sheet.to_frame()
+    assert list(frame.index) == list(case.names)
+
+
+def test_looser_tolerance_steps_rounding_and_lists():
+    part = contributor("p", limits=(0.005, 0.05))
+    assert looser_tolerance(part, 0.02) == pytest.approx(0.022)
+    assert looser_tolerance(part, 0.0201, rounding=0.001) == pytest.approx(0.023)  # 0.02211 -> up
+    assert looser_tolerance(part, 0.048) == pytest.approx(0.05)  # clipped at the loosest
+    assert looser_tolerance(part, 0.05) is None
+    table = CostCurve(curve="table", between="choose", points_tolerance=(10.0, 50.0, 100.0), points_cost=(3.0, 2.0, 1.0))
+    resistor = Contributor(name="r", nominal=1e4, tolerance=50.0, limits=(10.0, 100.0), cost=table)
+    assert looser_tolerance(resistor, 50.0) == 100.0
+    assert looser_tolerance(resistor, 100.0) is None
+
+
+def test_at_loosest_and_infeasible_base():
+    parts = [
+        contributor("p1", limits=(0.001, 0.01), cost=reciprocal(b=0.001)),
+        contributor("p2", limits=(0.001, 1.0), cost=reciprocal(b=0.004)),
+    ]
+    case = make_case(parts, [chain_requirement("gap", {"p1": 1, "p2": 1}, upper=20.3)])
+    sheet = supplier_sheet(case, "worst-case")
+    assert sheet["p1"].status == "at loosest"
+    impossible = make_case(parts, [chain_requirement("gap", {"p1": 1, "p2": 1}, upper=20.0005)])
+    sheet = supplier_sheet(impossible, "worst-case")
+    assert sheet.status == "infeasible" and not sheet.success
+    assert sheet.rows == []
