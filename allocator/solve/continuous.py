@@ -271,7 +271,8 @@ class CompiledAllocation:
             cost = p.total_cost(polished)
             refined = self._refine(limits, multipliers, t, cost) if accurate else None
             if refined is not None:
-                polished, theta, cost, multipliers, bound = refined
+                polished, theta, cost, multipliers, refined_bound = refined
+                bound = bound if refined_bound is None else refined_bound
                 note = "KKT refined" + (f"; {note}" if note else "")
             gap = max(0.0, (cost - bound) / cost) if cost > 0 and bound is not None else None
             verified = p.feasible(polished, limits, rtol=p._rtol())
@@ -304,13 +305,16 @@ class CompiledAllocation:
         Interior-point answers are accurate to about the square root of the solver's
         gap in the tolerances (the cost is flat at the optimum); the refined point meets
         the KKT conditions to round-off. Kept only if it is feasible and not dearer.
+        Separable models: Newton on the dual (:func:`~.exact.refine`); mean shift:
+        Newton on the KKT system (:func:`refine_mean_shift`).
         """
         from .exact import refine, separable
 
         p = self.problem
-        if not separable(p):
-            return None
-        out = refine(p, limits, multipliers, t)
+        if separable(p):
+            out = refine(p, limits, multipliers, t)
+        else:
+            out = refine_mean_shift(p, limits, multipliers, t)
         if out is None:
             return None
         t_new, multipliers_new, bound = out
@@ -348,7 +352,6 @@ class CompiledAllocation:
             points[:FIRST_CUTS] = np.linspace(low, max(low, high), FIRST_CUTS)
             self._place_cuts(req, lim, row, points)
         iterations = 0
-        accurate = True
         note = ""
         for round_ in range(1, MAX_CUT_ROUNDS + 1):
             with warnings.catch_warnings():
@@ -356,8 +359,7 @@ class CompiledAllocation:
                 out = self._run_solver(solver)
             if out is None:
                 return None
-            tau, ok, its = out
-            accurate &= ok
+            tau, accurate, its = out  # earlier rounds only place tangents: the last one counts
             iterations += its
             t = p.full(np.clip(tau * length, p.lower_bounds[p.free], p.upper_bounds[p.free]))
             bound = float(self.cvx.value) * money + self.held_cost
@@ -396,3 +398,125 @@ class CompiledAllocation:
         if shifting and not note:
             note = f"{round_} cutting-plane round{'s' if round_ > 1 else ''}"
         return t, accurate, iterations, bound, multipliers, note
+
+
+def refine_mean_shift(problem: AllocationProblem, limits, multipliers, t, *, max_steps: int = 30):
+    r"""Newton's method on the KKT conditions of the mean-shift allocation.
+
+    Parameters
+    ----------
+    problem : AllocationProblem
+        Mean-shift model.
+    limits : list of Limits
+    multipliers : sequence of float
+        μ_r = −∂cost/∂g_r from the cutting-plane solve, per requirement.
+    t : numpy.ndarray
+        The conic answer (all contributors) [length].
+
+    Returns
+    -------
+    (t, multipliers, None) or None
+        None when nothing binds, the active set is not stable, or Newton does not settle.
+
+    Notes
+    -----
+    With ``h_r(t) = σ_r(t) − g_r(δ_r(t))`` for the binding requirements and the free
+    contributors strictly inside their limits (and off any table kink) as unknowns, solve
+
+    .. math::
+
+        n_i C_i'(t_i) + Σ_r μ_r ∂h_r/∂t_i = 0,\qquad h_r(t) = 0,
+
+    with the exact Hessian ``diag(n C'') + Σ μ_r ∇²h_r``,
+    ``∇²σ = (diag(n a² f²) − ∇σ ∇σᵀ)/σ`` and ``∇²(g∘δ) = g'' ∇δ ∇δᵀ`` (``g''`` by a central
+    difference of the analytic ``g'``). Contributors at a limit or a table kink stay
+    where the conic solve put them. Since the problem is convex, a point meeting these
+    conditions with μ ≥ 0 and every other requirement met is optimal.
+    """
+    p = problem
+    n, f, m = p.counts, p.sigma_factors, p.mean_shifts
+    stats = p.statistics(t, limits)
+    active = [
+        k for k, (s, lim, y) in enumerate(zip(stats, limits, multipliers))
+        if y > 0 and s["excess"] >= -SLACK_RTOL and (lim.lower is not None or lim.upper is not None)
+    ]
+    if not active:
+        return None
+    lo, hi = p.lower_bounds, p.upper_bounds
+    margin = 1e-7 * (hi - lo)
+    var = p.free & (t > lo + margin) & (t < hi - margin) & ~p.curves.at_breakpoint(t)
+    if not var.any():
+        return None
+    J = np.flatnonzero(var)
+    rows = []
+    for k in active:
+        a = p.requirements[k].sensitivity
+        rows.append((k, n * (a * f) ** 2, n * np.abs(a) * m))
+    x = np.asarray(t, dtype=float).copy()
+    mu = np.array([multipliers[k] for k in active], dtype=float)
+    for _ in range(max_steps):
+        grads, hess = [], np.diag((n * p.curves.curvature(x))[J])
+        residual_c = np.empty(len(active))
+        for j, (k, w, v) in enumerate(rows):
+            req, lim = p.requirements[k], limits[k]
+            sigma = math.sqrt(float(w @ (x * x)))
+            delta = float(v @ x)
+            g, slope, second = _allowance_with_curvature(req.nominal, delta, lim)
+            d_sigma = w * x / sigma
+            grads.append(d_sigma - slope * v)
+            wj, dj, vj = w[J], d_sigma[J], v[J]
+            hess += mu[j] * (np.diag(wj / sigma) - np.outer(dj, dj) / sigma - second * np.outer(vj, vj))
+            residual_c[j] = (sigma - g) / g
+        grad_h = np.array(grads)  # (active, contributors)
+        slope_cost = n * p.curves.derivative(x)
+        residual_s = slope_cost + mu @ grad_h
+        scale_s = np.maximum(np.abs(slope_cost[J]), 1e-300)
+        if np.all(np.abs(residual_s[J]) <= 1e-11 * scale_s) and np.all(np.abs(residual_c) <= 1e-13):
+            break
+        # constraint rows divided by g (as the residual), columns of μ in their own units
+        g_values = np.array([_allowance_with_curvature(p.requirements[k].nominal, float(v @ x), limits[k])[0]
+                             for k, _, v in rows])
+        kkt = np.zeros((J.size + len(active),) * 2)
+        kkt[: J.size, : J.size] = hess
+        kkt[: J.size, J.size :] = grad_h[:, J].T
+        kkt[J.size :, : J.size] = grad_h[:, J] / g_values[:, None]
+        rhs = -np.concatenate([residual_s[J], residual_c])
+        # equilibrate rows and columns: tolerances and multipliers differ by many decades
+        col = np.concatenate([x[J], np.maximum(mu, 1e-300)])
+        scaled = kkt * col[None, :]
+        row = 1.0 / np.maximum(np.abs(scaled).max(axis=1), 1e-300)
+        try:
+            step = np.linalg.solve(scaled * row[:, None], rhs * row) * col
+        except np.linalg.LinAlgError:
+            return None
+        if not np.all(np.isfinite(step)):
+            return None
+        x_new = x.copy()
+        x_new[J] += step[: J.size]
+        if np.any(x_new[J] <= lo[J]) or np.any(x_new[J] >= hi[J]):
+            return None  # a contributor would cross a limit: the active set was wrong
+        x, mu = x_new, mu + step[J.size :]
+    else:
+        return None
+    if np.any(mu < 0):
+        return None
+    out = [0.0] * len(limits)
+    for j, k in enumerate(active):
+        out[k] = float(mu[j])
+    return x, out, None
+
+
+def _allowance_with_curvature(nominal, delta, lim):
+    """g(δ), g'(δ) and g''(δ) (the last by a central difference of the analytic g')."""
+    value, slope, _ = mean_shift_allowance(nominal, delta, lim)
+    domain = min(
+        math.inf if lim.lower is None else nominal - lim.lower,
+        math.inf if lim.upper is None else lim.upper - nominal,
+    )
+    h = 1e-5 * max(delta, 1e-3 * domain)
+    if delta - h < 0:
+        plus = mean_shift_allowance(nominal, delta + h, lim)[1]
+        return value, slope, (plus - slope) / h
+    plus = mean_shift_allowance(nominal, delta + h, lim)[1]
+    minus = mean_shift_allowance(nominal, delta - h, lim)[1]
+    return value, slope, (plus - minus) / (2 * h)

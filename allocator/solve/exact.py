@@ -82,11 +82,18 @@ class SeparableDual:
         self.held_part = (weight[:, held] * problem.counts[held]) @ t_held**power
         self.held_cost = float(np.sum((problem.counts * problem.unit_costs(problem.held))[held]))
         self.evaluations = 0
+        self.pinned = np.full(self.index.size, np.nan)  # tolerances kept where they are
+
+    def _pin(self, t):
+        return np.where(np.isnan(self.pinned), t, self.pinned)
 
     # ------------------------------------------------------------------ inner problem
 
-    def tolerances(self, v) -> np.ndarray:
-        """Minimiser of ``C_i(t) + v_i t`` (worst case) or ``C_i(t) + v_i t²`` (rss)."""
+    def tolerances(self, v, *, pinned: bool = True) -> np.ndarray:
+        """Minimiser of ``C_i(t) + v_i t`` (worst case) or ``C_i(t) + v_i t²`` (rss).
+
+        Contributors in :attr:`pinned` keep their pinned value unless ``pinned=False``.
+        """
         self.evaluations += 1
         v = np.broadcast_to(np.asarray(v, dtype=float), self.hi.shape)
         cs = self.curves
@@ -107,7 +114,8 @@ class SeparableDual:
                 t[j] = _table_squared_minimiser(curve, 2.0 * v[j])
             else:
                 t[j] = costs.inverse_derivative(curve, -v[j], self.lo[j], self.hi[j])
-        return np.clip(t, self.lo, self.hi)
+        t = np.clip(t, self.lo, self.hi)
+        return self._pin(t) if pinned else t
 
     def combined(self, lam) -> np.ndarray:
         """Per-part weight ``v = Σ_r λ_r w_r`` for multipliers ``lam``."""
@@ -121,26 +129,26 @@ class SeparableDual:
         """Cost of the free contributors [currency]."""
         return float(self.n @ self.curves.value(t))
 
-    def bound(self, t, lam, rhs) -> float:
-        """Weak-duality lower bound on the optimum: the Lagrangian at ``t = t(λ)``."""
+    def bound(self, lam, rhs) -> float:
+        """Weak-duality lower bound on the optimum: the Lagrangian's minimum at ``λ``."""
+        t = self.tolerances(self.combined(lam), pinned=False)
         active = np.asarray(lam) > 0
         extra = float(np.asarray(lam)[active] @ (self.spreads(t)[active] - np.asarray(rhs)[active]))
         return self.held_cost + self.cost(t) + extra
 
     def jacobian(self, t, v) -> np.ndarray:
-        """``∂ spread_r / ∂ λ_s`` at ``t = t(λ)`` (formula costs; clipped parts fixed)."""
+        """``∂ spread_r / ∂ λ_s`` at ``t = t(λ)`` (clipped parts and table kinks fixed)."""
         cs = self.curves
-        curvature = np.zeros_like(t)
-        tp, te = t[cs.power], t[cs.expo]
-        curvature[cs.power] = cs.pk * (cs.pk + 1.0) * cs.pb * tp ** (-cs.pk - 2.0)
-        curvature[cs.expo] = cs.eb * cs.ec**2 * np.exp(-cs.ec * te)
-        inside = (t > self.lo) & (t < self.hi)
+        curvature = cs.curvature(t)
+        inside = (t > self.lo) & (t < self.hi) & ~cs.at_breakpoint(t)
         if self.squared:
             # C'(t) + 2 v t = 0  ⇒  dt/dv = −2t / (C'' + 2v);  d spread/dt = 2 n w t
-            dt_dv = np.where(inside, -2.0 * t / (curvature + 2.0 * v), 0.0)
+            with np.errstate(divide="ignore", invalid="ignore"):
+                dt_dv = np.where(inside & (v > 0), -2.0 * t / (curvature + 2.0 * v), 0.0)
             grad = 2.0 * self.coef * t
         else:
-            dt_dv = np.where(inside, -1.0 / np.where(curvature > 0, curvature, np.inf), 0.0)
+            # C'(t) = −v; a table piece has C'' = 0 and t(λ) jumps: no slope to follow
+            dt_dv = np.where(inside & (curvature > 0), -1.0 / np.where(curvature > 0, curvature, 1.0), 0.0)
             grad = self.coef
         return (grad * dt_dv) @ self.weight.T
 
@@ -270,7 +278,7 @@ class ExactAllocation:
         lam_a, lam_b = math.exp(x_a), math.exp(x_b)
         t_a, t_b = dual.tolerances(lam_a * w), dual.tolerances(lam_b * w)
         t = self._mix(t_a, t_b, rhs)
-        bound = max(dual.bound(t_a, [lam_a], [rhs]), dual.bound(t_b, [lam_b], [rhs]))
+        bound = max(dual.bound([lam_a], [rhs]), dual.bound([lam_b], [rhs]))
         return t, lam_b, bound
 
     def _mix(self, t_a, t_b, rhs):
@@ -305,7 +313,7 @@ def refine(problem: AllocationProblem, limits, multipliers, t_start, *, max_step
     Parameters
     ----------
     problem : AllocationProblem
-        Separable (:func:`separable`), formula costs only.
+        Separable (:func:`separable`).
     limits : list of Limits
     multipliers : sequence of float
         ``−∂cost/∂(allowance)`` per requirement from the conic solver's duals.
@@ -324,63 +332,103 @@ def refine(problem: AllocationProblem, limits, multipliers, t_start, *, max_step
     Solves ``spread_r(t(λ)) = S_r`` for the requirements that bind, by Newton steps
     with the analytic Jacobian of :meth:`SeparableDual.jacobian` and a backtracking
     line search on the residual; a multiplier that turns negative leaves the active set,
-    a requirement the iterate violates joins it. At the end ``t(λ)`` minimises the
-    Lagrangian exactly, so with every constraint met and complementary slackness this is
-    the optimum (KKT sufficiency for a convex problem).
+    a requirement the iterate violates joins it.
+
+    Under worst case a table's ``t(λ)`` jumps. A table contributor the conic answer puts
+    on a listed tolerance (within 1e-6) stays there. One strictly inside a piece of slope
+    ``s`` is optimal only if ``Σ_r λ_r |a_r| = −s`` there, which fixes a relation between
+    the multipliers while its tolerance is set by the constraints: it becomes an unknown
+    of the Newton system, with that slope condition as its equation.
+
+    At the end ``t(λ)`` minimises the Lagrangian (the weak-duality bound is computed
+    with every contributor free), so with every constraint met and complementary
+    slackness this is the optimum (KKT sufficiency for a convex problem).
     """
     dual = SeparableDual(problem)
-    if dual.curves.tables or dual.index.size == 0:
+    if dual.index.size == 0:
         return None
     rhs, allowance = dual.rhs(limits)
     finite = np.isfinite(rhs)
+    rhs0 = np.where(finite, rhs, 0.0)
     y = np.asarray(multipliers, dtype=float)
     if dual.squared:
         lam = np.where(y > 0, y / (2.0 * np.where(allowance > 0, allowance, np.inf)), 0.0)
     else:
         lam = np.clip(y, 0.0, None)
     scale = np.where(finite & (rhs != 0), np.abs(rhs), 1.0)
-    spreads_start = dual.spreads(t_start[problem.free])
+    t_free = np.asarray(t_start, dtype=float)[problem.free]
     # start from the requirements the conic answer presses against; a slack one has λ = 0
-    active = finite & (spreads_start >= rhs - 1e-6 * scale)
+    active = finite & (dual.spreads(t_free) >= rhs - 1e-6 * scale)
     lam = np.where(active, lam, 0.0)
 
-    def residual(lam):
-        t = dual.tolerances(dual.combined(lam))
-        return t, (dual.spreads(t) - np.where(finite, rhs, 0.0)) / scale
+    inner = []  # worst case: table contributors inside a piece (unknowns)
+    piece_slope, piece_lo, piece_hi = [], [], []
+    if not dual.squared:
+        for j in dual.curves.tables:
+            x = np.asarray(dual.curves.curves[j].points_tolerance)
+            c = np.asarray(dual.curves.curves[j].points_cost)
+            near = int(np.argmin(np.abs(x - t_free[j])))
+            if abs(x[near] - t_free[j]) <= 1e-6 * x[-1]:
+                dual.pinned[j] = min(max(x[near], dual.lo[j]), dual.hi[j])
+                continue
+            k = int(np.clip(np.searchsorted(x, t_free[j]) - 1, 0, x.size - 2))
+            inner.append(j)
+            piece_slope.append((c[k + 1] - c[k]) / (x[k + 1] - x[k]))
+            piece_lo.append(max(x[k], dual.lo[j]))
+            piece_hi.append(min(x[k + 1], dual.hi[j]))
+            dual.pinned[j] = t_free[j]
+    inner = np.array(inner, dtype=int)
+    piece_slope = np.array(piece_slope, dtype=float)
+    slope_scale = np.maximum(np.abs(piece_slope), 1e-300)
 
-    t, r = residual(lam)
+    def residual(lam):
+        v = dual.combined(lam)
+        t = dual.tolerances(v)
+        r = (dual.spreads(t) - rhs0) / scale
+        return t, v, r, (v[inner] + piece_slope) / slope_scale
+
+    t, v, r, r_inner = residual(lam)
     for _ in range(max_steps):
-        # requirements violated by the current iterate join the active set
-        active |= finite & (r > 1e-12)
-        res = np.where(active, r, 0.0)
+        active |= finite & (r > 1e-12)  # requirements the iterate violates join
+        idx = np.flatnonzero(active)
+        res = np.concatenate([r[idx], r_inner])
         if np.all(np.abs(res) <= 1e-12) and np.all(r[~active] <= 1e-12):
             break
-        idx = np.flatnonzero(active)
-        jac = dual.jacobian(t, dual.combined(lam))[np.ix_(idx, idx)] / scale[idx, None]
+        size = idx.size + inner.size
+        jac = np.zeros((size, size))
+        jac[: idx.size, : idx.size] = dual.jacobian(t, v)[np.ix_(idx, idx)] / scale[idx, None]
+        jac[: idx.size, idx.size :] = dual.coef[np.ix_(idx, inner)] / scale[idx, None]
+        jac[idx.size :, : idx.size] = dual.weight[np.ix_(idx, inner)].T / slope_scale[:, None]
         try:
-            step = np.linalg.solve(jac, -res[idx])
+            step = np.linalg.solve(jac, -res)
         except np.linalg.LinAlgError:
             return None
         if not np.all(np.isfinite(step)):
             return None
         base = float(np.linalg.norm(res))
+        pinned = dual.pinned.copy()
         alpha = 1.0
         for _ in range(40):
             trial = lam.copy()
-            trial[idx] = np.maximum(lam[idx] + alpha * step, 0.0)
-            t_new, r_new = residual(trial)
-            if np.linalg.norm(np.where(active, r_new, 0.0)) < base or alpha < 1e-6:
+            trial[idx] = np.maximum(lam[idx] + alpha * step[: idx.size], 0.0)
+            moved = pinned[inner] + alpha * step[idx.size :]
+            if np.any(moved < piece_lo) or np.any(moved > piece_hi):
+                return None  # leaves its piece: the slope condition no longer holds
+            dual.pinned[inner] = moved
+            t_new, v_new, r_new, ri_new = residual(trial)
+            new = float(np.linalg.norm(np.concatenate([r_new[idx], ri_new])))
+            if new < base or alpha < 1e-6:
                 break
             alpha *= 0.5
         lam = trial
-        t, r = t_new, r_new
+        t, v, r, r_inner = t_new, v_new, r_new, ri_new
         # a multiplier driven to zero with its constraint slack leaves the active set
         active &= ~((lam <= 0) & (r < 0))
     else:
         return None
     if np.any(r > 1e-9) or np.any(lam < 0):
         return None
-    return problem.full(t), dual.multipliers(lam, allowance), dual.bound(t, lam, np.where(finite, rhs, 0.0))
+    return problem.full(t), dual.multipliers(lam, allowance), dual.bound(lam, rhs0)
 
 
 def _bracket_root(f, a: float, b: float, *, xtol: float = 1e-13, maxiter: int = 300):

@@ -116,6 +116,26 @@ class CurveSet:
         return out
 
 
+    def curvature(self, t) -> np.ndarray:
+        """d² cost / d t² of each contributor at ``t`` (0 for tables and None)."""
+        t = np.asarray(t, dtype=float)
+        out = np.zeros(self.size)
+        tp = t[self.power]
+        out[self.power] = self.pk * (self.pk + 1.0) * self.pb * tp ** (-self.pk - 2.0)
+        te = t[self.expo]
+        out[self.expo] = self.eb * self.ec**2 * np.exp(-self.ec * te)
+        return out
+
+    def at_breakpoint(self, t, rtol: float = 1e-9) -> np.ndarray:
+        """True where a table contributor sits on one of its listed tolerances (a kink)."""
+        t = np.asarray(t, dtype=float)
+        out = np.zeros(self.size, dtype=bool)
+        for i in self.tables:
+            x = np.asarray(self.curves[i].points_tolerance)
+            out[i] = bool(np.any(np.abs(x - t[i]) <= rtol * x[-1]))
+        return out
+
+
 def scaled_curve(curve: CostCurve | None, length: float, cost: float) -> CostCurve | None:
     """The curve of ``cost(length·τ) / cost`` as a function of the scaled tolerance ``τ``.
 
