@@ -1,0 +1,182 @@
+"""`allocator allocate CASE`: least-cost tolerances per stack model."""
+
+from __future__ import annotations
+
+import sys
+
+import click
+
+from ..errors import UsageError
+from .common import (
+    CASE_ARGUMENT,
+    csv_option,
+    echo_json,
+    fmt,
+    handle_errors,
+    json_option,
+    load_case_or_exit,
+    model_option,
+    text_table,
+)
+
+CSV_COLUMNS = (
+    "model", "status", "contributor", "process", "count", "current", "allocated", "bound",
+    "tightest", "loosest", "unit_cost_current", "unit_cost_allocated",
+)
+
+
+def _parse_fix(items) -> dict[str, float]:
+    """``("NAME=T", ...)`` -> ``{NAME: T}``; names and values are checked by the library."""
+    out = {}
+    for item in items:
+        name, sep, value = item.partition("=")
+        name = name.strip()
+        if not sep or not name:
+            raise UsageError(f"--fix {item!r}: expected NAME=T, e.g. --fix spacer=0.02")
+        try:
+            out[name] = float(value)
+        except ValueError:
+            raise UsageError(f"--fix {item!r}: tolerance {value.strip()!r} is not a number") from None
+    return out
+
+
+@click.command()
+@CASE_ARGUMENT
+@model_option
+@click.option(
+    "--fix",
+    "fixes",
+    multiple=True,
+    metavar="NAME=T",
+    help="Hold contributor NAME at ± T (repeatable); also shows the cost against the unheld optimum.",
+)
+@json_option
+@csv_option
+@handle_errors
+def allocate(case_file, models, fixes, as_json, as_csv):
+    """Find the least-cost tolerances of CASE.
+
+    For each stack model: the allocated ± tolerance of every contributor (and whether it
+    sits at its tightest or loosest limit), unit costs before and after, the total cost
+    against the current one, and per requirement the worst-case range, sigma, predicted
+    fallout against its target and the shadow price of its limits.
+
+    Exit code 1 when a model's requirements cannot be met (the reason names the
+    requirement, by how much the tightest tolerances miss it and the largest
+    contributors) or no verified optimum was found.
+    """
+    from ..solve import allocate as run
+
+    if as_json and as_csv:
+        raise UsageError("--json and --csv cannot be used together")
+    fix = _parse_fix(fixes)
+    case = load_case_or_exit(case_file)
+    models = tuple(models) or tuple(case.allocation.models)
+    results = [run(case, m, fix=fix) for m in models]
+    baselines = [run(case, m) for m in models] if fix else [None] * len(models)
+
+    if as_json:
+        documents = []
+        for result, base in zip(results, baselines):
+            doc = result.to_dict()
+            if base is not None:
+                doc["unfixed_total_cost"] = base.total_cost
+                doc["cost_delta"] = result.cost_delta(base)
+            documents.append(doc)
+        echo_json({"title": case.title, "units": case.units, "currency": case.currency,
+                   "results": documents})
+    elif as_csv:
+        _write_csv(results)
+    else:
+        _print_human(case, results, baselines)
+
+    failed = [r for r in results if not r.success]
+    for r in failed:
+        click.echo(f"error: {r.model}: {r.status}: {r.message}", err=True)
+    if failed:
+        sys.exit(1)
+
+
+def _write_csv(results) -> None:
+    import csv
+    import io
+
+    buffer = io.StringIO()
+    writer = csv.writer(buffer, lineterminator="\n")
+    writer.writerow(CSV_COLUMNS)
+    for result in results:
+        for row in result.rows():
+            row = dict(row, model=result.model, status=result.status)
+            writer.writerow(["" if row[c] is None else row[c] for c in CSV_COLUMNS])
+    click.echo(buffer.getvalue(), nl=False)
+
+
+def _print_human(case, results, baselines) -> None:
+    u = case.units
+    money = f" {case.currency}" if case.currency else ""
+    click.echo(f"{case.title}  [{u}{',' + money if money else ''}]")
+    for result, base in zip(results, baselines):
+        click.echo("")
+        head = f"model {result.model}: {result.status}"
+        if result.solver:
+            head += f" ({result.solver}, {result.iterations} iterations"
+            head += f", gap {result.gap:.1e})" if result.gap is not None else ")"
+        click.echo(head)
+        if result.total_cost is None:
+            click.echo(f"  {result.message}")
+            continue
+        if not result.success:
+            click.echo(f"  warning: {result.message}")
+        rows = []
+        for r in result.rows():
+            name = r["contributor"] + (f" ({r['process']})" if r["process"] else "")
+            rows.append([
+                name,
+                f"±{fmt(r['current'])}",
+                f"±{fmt(r['allocated'])}",
+                r["bound"],
+                f"{fmt(r['unit_cost_current'])} -> {fmt(r['unit_cost_allocated'])}",
+                r["count"],
+            ])
+        click.echo(text_table(
+            rows,
+            ["contributor", f"current [{u}]", f"allocated [{u}]", "bound", f"unit cost{money}", "count"],
+        ))
+        savings = result.savings_percent
+        click.echo(
+            f"total cost {fmt(result.total_cost, 6)}{money} per assembly "
+            f"(current {fmt(result.current_cost, 6)}; saves {fmt(result.savings, 4)}"
+            + (f", {savings:.1f} %)" if savings is not None else ")")
+        )
+        if result.held:
+            held = ", ".join(f"{k} = ±{fmt(v)}" for k, v in result.held.items())
+            line = f"held: {held}"
+            if base is not None and base.total_cost is not None:
+                line += (
+                    f"; costs {fmt(result.cost_delta(base), 4)}{money} more than the unheld "
+                    f"optimum ({fmt(base.total_cost, 6)})"
+                )
+            click.echo(line)
+        for r in result.requirements:
+            click.echo(f"requirement {r.name}: limits [{fmt(r.lower, 6)}, {fmt(r.upper, 6)}]"
+                       + ("" if r.linear else " (linearised expression)"))
+            text = (
+                f"  worst case [{fmt(r.worst_case_min, 6)}, {fmt(r.worst_case_max, 6)}]   "
+                f"sigma {fmt(r.sigma)}   fallout {fmt(r.fallout_ppm)} ppm"
+            )
+            if r.target_ppm is not None:
+                text += f" (target {fmt(r.target_ppm)})"
+            if r.mean_shift:
+                text += f"   mean shift ±{fmt(r.mean_shift)}"
+            click.echo(text)
+            if r.binding:
+                parts = []
+                if r.shadow_lower:
+                    parts.append(f"{fmt(r.shadow_lower)}{money}/{u} per lower")
+                if r.shadow_upper:
+                    parts.append(f"{fmt(r.shadow_upper)}{money}/{u} per upper")
+                if r.shadow_ppm:
+                    parts.append(f"{fmt(r.shadow_ppm)}{money}/ppm of target")
+                click.echo(f"  binding ({r.binding}); shadow prices: {', '.join(parts)}")
+            else:
+                click.echo("  not binding (shadow price 0)")
