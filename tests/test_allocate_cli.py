@@ -1,0 +1,168 @@
+"""`allocator allocate` through click's CliRunner: human table, --json, --csv, --fix, errors.
+
+The numbers come from the library (tests/test_allocate.py and tests/reference/ check those
+against independent solvers and closed forms); here the command must show them faithfully,
+keep the output contracts and use the documented exit codes.
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+import json
+from pathlib import Path
+
+import pytest
+from click.testing import CliRunner
+
+from allocator.case import load_case
+from allocator.cli.main import cli
+from allocator.solve import allocate
+
+CASES = Path(__file__).resolve().parents[1] / "cases"
+GEARBOX = CASES / "gearbox_end_play.toml"
+
+# Invented for this test: a three-part bracket stack with one requirement.
+BRACKET = """\
+# Invented test case, not real product data.
+title = "Invented bracket stack"
+units = "mm"
+currency = "EUR"
+
+[[contributor]]
+name = "plate"
+nominal = 12.0
+tolerance = 0.05
+limits = [0.01, 0.2]
+cost = { curve = "reciprocal", a = 0.5, b = 0.01 }
+
+[[contributor]]
+name = "washer"
+nominal = 1.5
+tolerance = 0.02
+limits = [0.005, 0.1]
+count = 2
+cost = { curve = "exponential", a = 0.05, b = 0.4, c = 30.0 }
+
+[[contributor]]
+name = "boss"
+nominal = 8.8
+tolerance = 0.04
+limits = [0.01, 0.15]
+cost = { curve = "reciprocal-power", a = 1.0, b = 0.0002, k = 2.0 }
+
+[[requirement]]
+name = "clearance"
+chain = { plate = 1, washer = -1, boss = -1 }
+lower = {lower}
+upper = 0.35
+fallout_ppm = 100
+
+[allocation]
+models = ["worst-case", "rss"]
+"""
+
+
+def _write(tmp_path, lower=0.05):
+    path = tmp_path / "bracket.toml"
+    path.write_text(BRACKET.replace("{lower}", str(lower)))
+    return path
+
+
+def run(*args):
+    return CliRunner().invoke(cli, ["allocate", *map(str, args)])
+
+
+def test_human_output_shows_every_model_contributor_and_requirement(tmp_path):
+    path = _write(tmp_path)
+    result = run(path)
+    assert result.exit_code == 0, result.output
+    out = result.stdout
+    case = load_case(path)
+    for model in ("worst-case", "rss"):
+        assert f"model {model}: optimal" in out
+        library = allocate(case, model)
+        for name, t in library.tolerances.items():
+            assert f"±{t:.4g}" in out, (model, name)
+        assert f"total cost {library.total_cost:.6g} EUR" in out
+    for name in ("plate", "washer", "boss", "requirement clearance"):
+        assert name in out
+    assert "ppm (target 100)" in out and "shadow prices" in out
+
+
+def test_json_keeps_the_contract_and_matches_the_library(tmp_path):
+    path = _write(tmp_path)
+    result = run(path, "--json")
+    assert result.exit_code == 0
+    doc = json.loads(result.stdout)
+    case = load_case(path)
+    assert [r["model"] for r in doc["results"]] == ["worst-case", "rss"]
+    for entry in doc["results"]:
+        assert {"model", "status", "total_cost", "tolerances"} <= set(entry)
+        library = allocate(case, entry["model"])
+        assert entry["status"] == "optimal"
+        assert entry["total_cost"] == pytest.approx(library.total_cost, rel=1e-12)
+        assert entry["tolerances"] == pytest.approx(dict(library.tolerances), rel=1e-12)
+        assert entry["requirements"][0]["name"] == "clearance"
+
+
+def test_csv_has_one_row_per_model_and_contributor():
+    result = run(GEARBOX, "--csv", "--model", "rss", "--model", "worst-case")
+    assert result.exit_code == 0
+    rows = list(csv.DictReader(io.StringIO(result.stdout)))
+    case = load_case(GEARBOX)
+    assert len(rows) == 2 * len(case.contributors)
+    assert [r["model"] for r in rows[:1] + rows[-1:]] == ["rss", "worst-case"]
+    library = allocate(case, "rss")
+    for row in rows[: len(case.contributors)]:
+        assert float(row["allocated"]) == pytest.approx(library.tolerances[row["contributor"]], rel=1e-12)
+    assert {r["bound"] for r in rows} >= {"fixed"}
+
+
+def test_fix_holds_the_tolerance_and_reports_the_cost_of_holding(tmp_path):
+    path = _write(tmp_path)
+    result = run(path, "--model", "rss", "--fix", "plate=0.02")
+    assert result.exit_code == 0, result.output
+    assert "held: plate = ±0.02" in result.stdout
+    assert "more than the unheld optimum" in result.stdout
+    doc = json.loads(run(path, "--model", "rss", "--fix", "plate=0.02", "--json").stdout)
+    entry = doc["results"][0]
+    assert entry["tolerances"]["plate"] == 0.02
+    assert entry["cost_delta"] == pytest.approx(entry["total_cost"] - entry["unfixed_total_cost"])
+    assert entry["cost_delta"] > 0  # holding plate tighter than its optimum costs money
+
+
+@pytest.mark.parametrize(
+    "fix, message",
+    [
+        ("plat=0.02", "did you mean 'plate'"),
+        ("plate=0", "must be > 0"),
+        ("plate=-0.1", "must be > 0"),
+        ("plate", "expected NAME=T"),
+        ("plate=wide", "is not a number"),
+    ],
+)
+def test_bad_fix_is_one_line_and_exit_2(tmp_path, fix, message):
+    result = run(_write(tmp_path), "--fix", fix)
+    assert result.exit_code == 2
+    assert message in result.stderr
+    assert len(result.stderr.strip().splitlines()) == 1 and "Traceback" not in result.output
+    assert result.stdout == ""
+
+
+def test_json_and_csv_together_is_a_usage_error(tmp_path):
+    result = run(_write(tmp_path), "--json", "--csv")
+    assert result.exit_code == 2 and "cannot be used together" in result.stderr
+
+
+def test_infeasible_requirement_exits_1_with_its_name(tmp_path):
+    # nominal clearance 12 − 2·1.5 − 8.8 = 0.2; at the tightest tolerances the worst case is
+    # 0.2 ± (0.01 + 2·0.005 + 0.01) = [0.17, 0.23], which misses [0.18, 0.21] on both sides
+    path = tmp_path / "tight.toml"
+    path.write_text(BRACKET.replace("{lower}", "0.18").replace("upper = 0.35", "upper = 0.21"))
+    result = run(path, "--model", "worst-case")
+    assert result.exit_code == 1
+    assert "clearance" in result.stderr and "infeasible" in result.stderr
+    assert "exceeds upper 0.21 by 0.02" in result.stdout and "below lower 0.18 by 0.01" in result.stdout
+    doc = json.loads(run(path, "--model", "worst-case", "--json").stdout)
+    assert doc["results"][0]["status"] == "infeasible" and doc["results"][0]["total_cost"] is None
