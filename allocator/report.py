@@ -1,0 +1,1176 @@
+"""A self-contained HTML report for design reviews and supplier talks.
+
+:func:`build_report` runs the library once — :func:`allocator.analysis.analyze`,
+:func:`allocator.solve.allocate` per model, :func:`allocator.frontier.frontier`,
+:func:`allocator.simulate.verify` and :func:`allocator.supplier.supplier_sheet` — and keeps
+every result in a :class:`Report`. :meth:`Report.to_html` only formats those results: it
+computes no number of its own, so the report and the library can never disagree.
+
+The HTML is one file: inline CSS, plots as inline SVG drawn by matplotlib (glyphs as paths,
+so no font files), no scripts, no links to anything outside the file. It prints on A4
+(``@media print``) and reads in greyscale: every state that matters is written as a word,
+never shown by colour alone. Text from the case file is escaped everywhere.
+"""
+
+from __future__ import annotations
+
+import html
+import io
+import math
+import platform
+import re
+from dataclasses import dataclass, field
+from datetime import datetime, timezone
+from pathlib import Path
+
+__all__ = [
+    "SECTIONS",
+    "Report",
+    "build_report",
+    "write_report",
+    "recommended_model",
+    "fmt_number",
+    "fmt_input",
+    "fmt_tolerance",
+]
+
+# (id, heading) of every section, in order; tests and the browser check use this list
+SECTIONS = (
+    ("summary", "1 Case summary and assumptions"),
+    ("analysis", "2 Stack analysis of the current design"),
+    ("allocation", "3 Allocation by model"),
+    ("frontier", "4 Cost frontier"),
+    ("contributions", "5 Contributions to variation"),
+    ("verification", "6 Monte Carlo verification"),
+    ("shadow-prices", "7 Shadow prices"),
+    ("supplier", "8 Supplier sheet"),
+    ("cautions", "9 Cautions"),
+    ("reproducibility", "10 Reproducibility"),
+)
+
+MODEL_LABELS = {"worst-case": "worst case", "rss": "RSS", "mean-shift": "mean shift"}
+MODEL_EXPLANATIONS = {
+    "worst-case": "every part at its tolerance limit at the same time; the requirement holds "
+    "for every assembly whose parts are in tolerance",
+    "rss": "parts vary independently with the stated distributions; the response is taken as "
+    "normal with the root-sum-square σ, and its predicted fallout must meet the target",
+    "mean-shift": "as RSS, but each process mean may sit anywhere within its stated mean shift; "
+    "the fallout at the worst mean must meet the target (estimated mean shift, Greenwood & "
+    "Chase 1987)",
+}
+# order of preference for the allocation the report recommends (most conservative first)
+_PREFERENCE = ("mean-shift", "rss", "worst-case")
+
+CAUTIONS = (
+    "Statistical results (RSS, mean shift, fallout in ppm, the Monte Carlo verification) assume "
+    "stable, capable processes whose means sit where the case says (centred unless a mean shift "
+    "is given), whose spreads follow the stated distributions and cp, and whose parts vary "
+    "independently. They are predictions, not measurements.",
+    "Before relying on a statistical tolerance, confirm each process with measured capability "
+    "data (Cp, Cpk from a stable run) and keep monitoring it in production; a drifting or "
+    "incapable process invalidates the ppm figures.",
+    "Requirements given as expressions are linearised at the nominals for RSS and allocation; "
+    "the Monte Carlo section evaluates the exact expression and shows where that matters.",
+    "Safety-critical fits, and anything whose failure can hurt people, must be designed worst "
+    "case and checked against the applicable codes and standards, with review by a licensed or "
+    "otherwise qualified engineer.",
+    "Costs are the case's cost curves, not quotations. The supplier sheet shows what the model "
+    "expects; a supplier's real price may differ.",
+    "This report is a decision aid, not an approval.",
+)
+
+_VERSION_PACKAGES = ("numpy", "scipy", "cvxpy", "pandas", "matplotlib")
+
+
+# --------------------------------------------------------------------------- formatting
+
+
+def fmt_number(value, digits: int = 4, *, signed: bool = False) -> str:
+    """A number as plain text for the report: ``digits`` significant digits.
+
+    Fixed notation between 1e-4 and 1e7 (no exponent for ordinary sizes), ``e`` notation
+    outside; ``—`` for None or NaN, ``∞`` for infinity. ``signed`` adds a ``+`` to
+    positive numbers (changes, savings). The same function formats every number in the
+    HTML, so a test can look for ``fmt_number(result.total_cost)`` in it.
+
+    Examples
+    --------
+    >>> fmt_number(7.420412), fmt_number(0.0773549), fmt_number(12345.6)
+    ('7.420', '0.07735', '12346')
+    >>> fmt_number(7.098e-07), fmt_number(None), fmt_number(0.5, signed=True)
+    ('7.098e-07', '—', '+0.5000')
+    """
+    if value is None:
+        return "—"
+    x = float(value)
+    if math.isnan(x):
+        return "—"
+    if math.isinf(x):
+        return "∞" if x > 0 else "-∞"
+    sign = "+" if signed and x > 0 else ""
+    if x == 0:
+        return "0"
+    magnitude = abs(x)
+    if 1e-4 <= magnitude < 1e7:
+        exponent = math.floor(math.log10(magnitude))
+        decimals = max(0, digits - 1 - exponent)
+        text = f"{x:.{decimals}f}"
+        # rounding may have carried into a new digit (9.9996 -> 10.000): drop one decimal
+        if decimals > 0 and len(text.lstrip("-").replace(".", "").lstrip("0")) > digits:
+            text = f"{x:.{decimals - 1}f}"
+        return sign + text
+    return sign + f"{x:.{digits - 1}e}"
+
+
+def fmt_input(value) -> str:
+    """A value as the case file states it: up to 10 significant digits, no padding zeros.
+
+    Examples
+    --------
+    >>> fmt_input(0.05), fmt_input(40000.0), fmt_input(None)
+    ('0.05', '40000', '—')
+    """
+    if value is None:
+        return "—"
+    if isinstance(value, str):
+        return value
+    return f"{float(value):.10g}"
+
+
+def fmt_tolerance(value) -> str:
+    """A ± tolerance: 4 significant digits without trailing zeros (as on a drawing).
+
+    Examples
+    --------
+    >>> fmt_tolerance(0.041), fmt_tolerance(0.0411666), fmt_tolerance(50.0)
+    ('0.041', '0.04117', '50')
+    """
+    text = fmt_number(value)
+    if "." in text and "e" not in text:
+        text = text.rstrip("0").rstrip(".")
+    return text
+
+
+def _e(text) -> str:
+    """Escape text from the case (or anything else) for HTML."""
+    return html.escape("" if text is None else str(text), quote=True)
+
+
+def _n(value, digits: int = 4, *, signed: bool = False) -> str:
+    return _e(fmt_number(value, digits, signed=signed))
+
+
+def _i(value) -> str:
+    return _e(fmt_input(value))
+
+
+def _t(value) -> str:
+    return _e(fmt_tolerance(value))
+
+
+def _ppm(value) -> str:
+    return _n(value, 4)
+
+
+def _model(name: str) -> str:
+    # non-breaking: a model name never splits over two lines in a narrow column
+    return _e(MODEL_LABELS.get(name, name)).replace(" ", "&nbsp;")
+
+
+def _unit(text: str) -> str:
+    return f" [{_e(text)}]" if text else ""
+
+
+# --------------------------------------------------------------------------- the report
+
+
+@dataclass
+class Report:
+    """Everything the HTML report shows, as the library computed it.
+
+    Attributes
+    ----------
+    case : Case
+    models : tuple of str
+    analysis : StackAnalysis
+        The current design (the case's ``tolerance`` values).
+    allocations : dict
+        Model -> :class:`~allocator.solve.Allocation`.
+    recommended : str or None
+        The model whose allocation the report recommends (see :func:`recommended_model`).
+    recommended_analysis : StackAnalysis or None
+        Stack analysis at the recommended allocation.
+    frontier : Frontier or None
+    frontier_message : str
+        Why there is no frontier, when there is none.
+    verification : Verification
+    verification_basis : str
+        ``'allocation'`` (the recommended allocation) or ``'current'``.
+    supplier : SupplierSheet or None
+    samples, seed : int
+    created : datetime
+        UTC time the report was built.
+    versions : dict
+        Python and library versions used.
+    """
+
+    case: object
+    models: tuple
+    analysis: object
+    allocations: dict
+    recommended: str | None
+    recommended_analysis: object
+    frontier: object
+    frontier_message: str
+    verification: object
+    verification_basis: str
+    supplier: object
+    samples: int
+    seed: int
+    created: datetime
+    versions: dict = field(default_factory=dict)
+
+    # ------------------------------------------------------------------ status
+
+    @property
+    def problems(self) -> list[str]:
+        """One line per thing that went wrong (infeasible models, failed verification)."""
+        out = [
+            f"{MODEL_LABELS.get(m, m)}: {a.status}: {a.message}"
+            for m, a in self.allocations.items()
+            if not a.success
+        ]
+        if self.verification_basis == "allocation" and not self.verification.success:
+            out.append(f"verification of the {MODEL_LABELS.get(self.recommended)} allocation: {self.verification.message}")
+        return out
+
+    @property
+    def status(self) -> str:
+        """'ok', 'infeasible' (some model cannot meet a requirement), 'failed' or 'verification failed'."""
+        statuses = {a.status for a in self.allocations.values()}
+        if "infeasible" in statuses:
+            return "infeasible"
+        if "failed" in statuses:
+            return "failed"
+        if self.verification_basis == "allocation" and not self.verification.success:
+            return "verification failed"
+        return "ok"
+
+    @property
+    def success(self) -> bool:
+        return self.status == "ok"
+
+    @property
+    def exit_code(self) -> int:
+        """0 when every allocation is optimal and its verification passes, else 1."""
+        return 0 if self.success else 1
+
+    @property
+    def section_ids(self) -> tuple[str, ...]:
+        return tuple(s for s, _ in SECTIONS)
+
+    @property
+    def headings(self) -> tuple[str, ...]:
+        return tuple(h for _, h in SECTIONS)
+
+    def __repr__(self) -> str:
+        return (
+            f"Report({self.case.title!r}, status={self.status!r}, models={list(self.models)}, "
+            f"recommended={self.recommended!r}, samples={self.samples}, seed={self.seed})"
+        )
+
+    # ------------------------------------------------------------------ figures
+
+    def figures(self) -> dict[str, str]:
+        """Section id -> inline SVG markup of its plot (only sections that have one)."""
+        out = {}
+        if self.frontier is not None:
+            out["frontier"] = _inline_svg(_frontier_svg(self), "fr", "Cost frontier plot")
+        out["contributions"] = _inline_svg(_contributions_svg(self), "co", "Contributions to variation, horizontal bars")
+        out["verification"] = _inline_svg(_verification_svg(self), "mc", "Monte Carlo histogram of each requirement")
+        return out
+
+    # ------------------------------------------------------------------ html
+
+    def to_html(self) -> str:
+        """The report as one self-contained HTML document."""
+        figures = self.figures()
+        body = [
+            _header(self),
+            "<main>",
+            _section_summary(self),
+            _section_analysis(self),
+            _section_allocation(self),
+            _section_frontier(self, figures.get("frontier")),
+            _section_contributions(self, figures["contributions"]),
+            _section_verification(self, figures["verification"]),
+            _section_shadow(self),
+            _section_supplier(self),
+            _section_cautions(self),
+            _section_reproducibility(self),
+            "</main>",
+        ]
+        title = f"Tolerance allocation report: {self.case.title}"
+        return (
+            "<!DOCTYPE html>\n"
+            '<html lang="en">\n<head>\n<meta charset="utf-8">\n'
+            '<meta name="viewport" content="width=device-width, initial-scale=1">\n'
+            f'<meta name="generator" content="allocator {_e(self.versions.get("allocator", ""))}">\n'
+            f"<title>{_e(title)}</title>\n<style>{_CSS}</style>\n</head>\n<body>\n"
+            + "\n".join(body)
+            + "\n</body>\n</html>\n"
+        )
+
+
+def recommended_model(allocations: dict) -> str | None:
+    """The model whose allocation the report recommends.
+
+    The most conservative optimal statistical allocation (mean shift before RSS), else
+    the worst-case allocation, else None. This is the report's default, stated in the
+    report; it is not an engineering judgement about the product.
+    """
+    for model in _PREFERENCE:
+        a = allocations.get(model)
+        if a is not None and a.success:
+            return model
+    return None
+
+
+def build_report(
+    case,
+    models=None,
+    *,
+    samples: int = 200_000,
+    seed: int = 0,
+    frontier_points: int | None = None,
+    created: datetime | None = None,
+) -> Report:
+    """Run the library for a report on ``case``.
+
+    Parameters
+    ----------
+    case : allocator.model.Case
+    models : sequence of str, optional
+        Stack models to allocate with; default the case's ``[allocation].models``.
+    samples : int
+        Monte Carlo assemblies for the verification [-].
+    seed : int
+        Seed of the verification (the report is reproducible with the same seed).
+    frontier_points : int, optional
+        Points of the cost frontier; default the case's ``[frontier].points``.
+    created : datetime, optional
+        Time stamp to print (default: now, UTC).
+
+    Returns
+    -------
+    Report
+        Holds every library result; :meth:`Report.to_html` formats them.
+    """
+    from . import __version__
+    from .analysis import analyze
+    from .simulate import verify
+    from .solve import allocate
+    from .supplier import supplier_sheet
+
+    models = tuple(dict.fromkeys(models or case.allocation.models))
+    allocations = {m: allocate(case, m) for m in models}
+    recommended = recommended_model(allocations)
+    analysis = analyze(case)
+    rec_alloc = allocations.get(recommended)
+    recommended_analysis = analyze(case, dict(rec_alloc.tolerances)) if rec_alloc is not None else None
+
+    frontier, frontier_message = _run_frontier(case, models, frontier_points)
+
+    if rec_alloc is not None:
+        verification = verify(case, dict(rec_alloc.tolerances), samples=samples, seed=seed)
+        basis = "allocation"
+    else:
+        verification = verify(case, None, samples=samples, seed=seed)
+        basis = "current"
+
+    supplier = supplier_sheet(case, recommended, rec_alloc) if rec_alloc is not None else None
+
+    return Report(
+        case=case,
+        models=models,
+        analysis=analysis,
+        allocations=allocations,
+        recommended=recommended,
+        recommended_analysis=recommended_analysis,
+        frontier=frontier,
+        frontier_message=frontier_message,
+        verification=verification,
+        verification_basis=basis,
+        supplier=supplier,
+        samples=int(samples),
+        seed=int(seed),
+        created=created or datetime.now(timezone.utc).replace(microsecond=0),
+        versions=_versions(__version__),
+    )
+
+
+def write_report(case, path, models=None, **kwargs) -> Report:
+    """Build the report and write its HTML to ``path`` atomically.
+
+    Refuses to overwrite the case file itself (:class:`~allocator.errors.UsageError`),
+    checked before any work is done. Returns the :class:`Report`.
+    """
+    from .cli.common import atomic_write
+    from .errors import UsageError
+
+    target = Path(path)
+    if case.path is not None and target.resolve() == Path(case.path).resolve():
+        raise UsageError(f"{target}: refusing to overwrite the input case file")
+    if not target.parent.exists():
+        raise UsageError(f"{target}: folder {target.parent} does not exist")
+    report = build_report(case, models, **kwargs)
+    atomic_write(target, report.to_html(), protect=(case.path,))
+    return report
+
+
+def _run_frontier(case, models, points):
+    """The cost frontier, or None and the reason (a case may have no sweep to make)."""
+    import importlib.util
+
+    if importlib.util.find_spec("allocator.frontier") is None:
+        return None, "the frontier module is not installed"
+    from . import frontier as frontier_module
+
+    kwargs = {"models": models}
+    if points is not None:
+        kwargs["points"] = points
+    result = frontier_module.frontier(case, **kwargs)
+    return result, ""
+
+
+def _versions(own: str) -> dict:
+    from importlib import metadata
+
+    out = {"allocator": own, "python": platform.python_version()}
+    for name in _VERSION_PACKAGES:
+        try:
+            out[name] = metadata.version(name)
+        except metadata.PackageNotFoundError:
+            out[name] = "not installed"
+    return out
+
+
+# --------------------------------------------------------------------------- svg
+
+
+def _svg_of(figure) -> str:
+    buffer = io.StringIO()
+    figure.savefig(buffer, format="svg", metadata={"Date": None, "Creator": None, "Format": None, "Type": None})
+    return buffer.getvalue()
+
+
+def _svg_context():
+    import matplotlib
+
+    # fixed hash salt: identical reports for identical input; glyphs as paths: no fonts needed
+    return matplotlib.rc_context({"svg.hashsalt": "allocator-report", "svg.fonttype": "path"})
+
+
+_ID = re.compile(r'\bid="([^"]+)"')
+
+
+def _inline_svg(svg: str, prefix: str, label: str) -> str:
+    """Matplotlib SVG text made fit to sit inline in HTML.
+
+    Drops the XML prolog, DOCTYPE and metadata block, gives every id a per-figure prefix
+    (several figures in one page would otherwise share ids such as ``clip0``), and labels
+    the drawing for screen readers.
+    """
+    start = svg.find("<svg")
+    svg = svg[start:] if start >= 0 else svg
+    svg = re.sub(r"<metadata>.*?</metadata>\s*", "", svg, flags=re.S)
+    ids = set(_ID.findall(svg))
+    if ids:
+        svg = _ID.sub(lambda m: f'id="{prefix}-{m.group(1)}"', svg)
+        svg = re.sub(r'href="#([^"]+)"', lambda m: f'href="#{prefix}-{m.group(1)}"' if m.group(1) in ids else m.group(0), svg)
+        svg = re.sub(r"url\(#([^)]+)\)", lambda m: f"url(#{prefix}-{m.group(1)})" if m.group(1) in ids else m.group(0), svg)
+    svg = svg.replace("<svg ", f'<svg role="img" aria-label="{_e(label)}" ', 1)
+    return svg.strip()
+
+
+def _frontier_svg(report: Report) -> str:
+    from . import plots
+
+    with _svg_context():
+        return _svg_of(plots.frontier_figure(report.frontier))
+
+
+def _verification_svg(report: Report) -> str:
+    from .simulate import render_verification_plot
+
+    with _svg_context():
+        return render_verification_plot(report.verification, "svg").decode("utf-8")
+
+
+def _contributions_svg(report: Report) -> str:
+    """Horizontal bars: share of σ² per contributor, current design and recommended allocation.
+
+    Greyscale: solid dark bars for the current design, white hatched bars for the
+    allocation, told apart by fill pattern and legend, not by colour.
+    """
+    import numpy as np
+    from matplotlib.figure import Figure
+
+    current = report.analysis.requirements
+    allocated = report.recommended_analysis.requirements if report.recommended_analysis is not None else None
+    n_rows = [max(len(r.contributions), 1) for r in current]
+    height = sum(0.26 * n * (2 if allocated else 1) + 1.0 for n in n_rows)
+    with _svg_context():
+        fig = Figure(figsize=(7.0, max(2.2, height)), layout="constrained")
+        axes = fig.subplots(len(current), 1, squeeze=False, height_ratios=n_rows)[:, 0]
+        for j, (ax, req) in enumerate(zip(axes, current)):
+            names = [c.name for c in req.contributions]
+            y = np.arange(len(names))
+            share_now = [100.0 * c.variance_share for c in req.contributions]
+            bar = 0.38 if allocated else 0.6
+            ax.barh(y - (bar / 2 if allocated else 0), share_now, height=bar, color="0.25", edgecolor="black",
+                    linewidth=0.6, label="current design")
+            if allocated:
+                by_name = {c.name: 100.0 * c.variance_share for c in allocated[j].contributions}
+                share_alloc = [by_name.get(n, 0.0) for n in names]
+                ax.barh(y + bar / 2, share_alloc, height=bar, color="white", edgecolor="black", hatch="////",
+                        linewidth=0.6, label=f"{MODEL_LABELS.get(report.recommended)} allocation")
+            ax.set_yticks(y, names)
+            ax.invert_yaxis()
+            ax.set_xlim(0, 100)
+            ax.set_xlabel("share of the response variance σ² [%]")
+            ax.set_title(f"{req.name}", loc="left", fontsize="medium")
+            ax.grid(axis="x", color="0.85", linewidth=0.6)
+            ax.set_axisbelow(True)
+            for side in ("top", "right"):
+                ax.spines[side].set_visible(False)
+            ax.legend(fontsize="small", loc="lower right", frameon=True)
+        return _svg_of(fig)
+
+
+# --------------------------------------------------------------------------- html parts
+
+
+def _table(headers, rows, *, caption: str | None = None, numeric=None, cls: str = "") -> str:
+    """An HTML table; ``numeric[i]`` right-aligns column i; the first column is a row header.
+
+    ``headers`` and cells are HTML (already escaped).
+    """
+    numeric = numeric or [False] * len(headers)
+    out = [f'<div class="scroll"><table{f" class={cls!r}" if cls else ""}>']
+    if caption:
+        out.append(f"<caption>{caption}</caption>")
+    out.append(
+        "<thead><tr>"
+        + "".join(f'<th scope="col"{" class=num" if numeric[i] else ""}>{h}</th>' for i, h in enumerate(headers))
+        + "</tr></thead><tbody>"
+    )
+    for row in rows:
+        cells = []
+        for i, cell in enumerate(row):
+            tag = "th scope=\"row\"" if i == 0 else "td"
+            end = "th" if i == 0 else "td"
+            cells.append(f"<{tag}{' class=num' if numeric[i] and i else ''}>{cell}</{end}>")
+        out.append("<tr>" + "".join(cells) + "</tr>")
+    out.append("</tbody></table></div>")
+    return "".join(out)
+
+
+def _dl(items) -> str:
+    return "<dl class=\"facts\">" + "".join(f"<dt>{k}</dt><dd>{v}</dd>" for k, v in items) + "</dl>"
+
+
+def _section(report: Report, sid: str, inner: str) -> str:
+    heading = dict(SECTIONS)[sid]
+    return f'<section id="{sid}">\n<h2>{_e(heading)}</h2>\n{inner}\n</section>'
+
+
+def _flag(text: str, kind: str = "") -> str:
+    """A state written as a word in a bordered tag (greyscale-safe)."""
+    return f'<span class="tag{(" " + kind) if kind else ""}">{_e(text)}</span>'
+
+
+def _header(report: Report) -> str:
+    case = report.case
+    cur = case.currency
+    parts = [
+        "<header>",
+        '<p class="kicker">Tolerance allocation report</p>',
+        f"<h1>{_e(case.title)}</h1>",
+        '<p class="meta">'
+        + " · ".join(
+            _e(x)
+            for x in (
+                f"case file {Path(case.path).name}" if case.path else "case not read from a file",
+                f"created {report.created:%Y-%m-%d %H:%M} UTC",
+                f"allocator {report.versions.get('allocator', '')}",
+            )
+        )
+        + "</p>",
+    ]
+    problems = report.problems
+    if problems:
+        parts.append(
+            '<div class="alert" role="alert"><p><strong>Attention: '
+            + _e(report.status.upper())
+            + ".</strong> Not every result below is usable:</p><ul>"
+            + "".join(f"<li>{_e(p)}</li>" for p in problems)
+            + "</ul></div>"
+        )
+    rec = report.allocations.get(report.recommended)
+    if rec is not None:
+        parts.append(
+            '<p class="verdict">Recommended here: the <strong>'
+            + _model(report.recommended)
+            + f"</strong> allocation, <strong>{_n(rec.total_cost)}</strong>{_e(' ' + cur if cur else '')} per assembly "
+            f"against {_n(rec.current_cost)} for the current design: saving <strong>{_n(rec.savings, signed=True)}</strong> "
+            f"({_n(rec.savings_percent, 3, signed=True)} %). Monte Carlo: {_e(report.verification.message)}.</p>"
+        )
+    else:
+        parts.append('<p class="verdict">No model produced an allocation; sections 3 to 8 show the current design only.</p>')
+    parts.append(
+        '<aside class="caution-brief" role="note"><p><strong>Caution.</strong> Statistical results assume '
+        "stable, capable, centred processes with the stated distributions: verify with measured capability "
+        "before relying on them. Safety-critical fits are designed worst case and checked against the "
+        'applicable codes and a licensed engineering review. <a href="#cautions">All cautions (section 9)</a>.</p></aside>'
+    )
+    parts.append(
+        '<nav aria-label="Contents"><h2 class="toc">Contents</h2><ol>'
+        + "".join(f'<li><a href="#{sid}">{_e(h.split(" ", 1)[1])}</a></li>' for sid, h in SECTIONS)
+        + "</ol></nav>"
+    )
+    parts.append("</header>")
+    return "\n".join(parts)
+
+
+def _cost_text(curve) -> str:
+    if curve is None:
+        return "no cost (held)"
+    f = fmt_input
+    if curve.curve == "reciprocal":
+        return f"a + b/t; a = {f(curve.a)}, b = {f(curve.b)}"
+    if curve.curve == "reciprocal-power":
+        return f"a + b/t^k; a = {f(curve.a)}, b = {f(curve.b)}, k = {f(curve.k)}"
+    if curve.curve == "exponential":
+        return f"a + b·exp(−c·t); a = {f(curve.a)}, b = {f(curve.b)}, c = {f(curve.c)}"
+    if curve.curve == "table":
+        points = curve.points_tolerance
+        if curve.is_discrete:
+            return "listed tolerances only: ±" + ", ".join(fmt_input(t) for t in points)
+        return f"table of {len(points)} points, interpolated, ±{fmt_input(points[0])} to ±{fmt_input(points[-1])}"
+    return curve.curve
+
+
+def _chain_text(requirement) -> str:
+    if requirement.chain is None:
+        return f"<code>{_e(requirement.expression)}</code>"
+    terms = []
+    for name, coeff in requirement.chain.items():
+        sign = "−" if coeff < 0 else "+"
+        mag = abs(coeff)
+        factor = "" if mag == 1 else f"{fmt_input(mag)}·"
+        terms.append(f"{sign} {factor}{name}")
+    text = " ".join(terms)
+    text = text[2:] if text.startswith("+ ") else text
+    return f"<code>{_e(text)}</code>"
+
+
+def _section_summary(report: Report) -> str:
+    case = report.case
+    u = case.units
+    facts = [
+        ("Title", _e(case.title)),
+        ("Length units", _e(u or "—")),
+        ("Currency", _e(case.currency or "—")),
+        ("Case file", _e(case.path) if case.path else "—"),
+        ("Models in this report", ", ".join(_model(m) for m in report.models)),
+        ("Rounding of allocated tolerances", _e(case.allocation.rounding) if case.allocation.rounding is not None else "none"),
+    ]
+    if case.economics.volume is not None:
+        facts.append(("Volume", f"{_i(case.economics.volume)} assemblies per year"))
+    if case.economics.scrap_cost is not None:
+        facts.append(("Cost of one assembly out of limits", f"{_i(case.economics.scrap_cost)}{_e(' ' + case.currency if case.currency else '')}"))
+    rows = []
+    for c in case.contributors:
+        if c.processes:
+            limits = "by process"
+            cost = "<br>".join(
+                f"{_e(p.name)}: ±{_i(p.limits[0])} to ±{_i(p.limits[1])}"
+                + (f", cp {_i(p.cp)}" if p.cp is not None else "")
+                + f"; {_e(_cost_text(p.cost))}"
+                for p in c.processes
+            )
+        elif c.fixed and c.limits is None:
+            limits, cost = "held", _e(_cost_text(c.cost))
+        else:
+            lo, hi = c.limits if c.limits is not None else (c.tolerance, c.tolerance)
+            limits = f"{_i(lo)} to {_i(hi)}"
+            cost = _e(_cost_text(c.cost))
+        name = _e(c.name) + (f'<div class="desc">{_e(c.description)}</div>' if c.description else "")
+        if c.fixed:
+            name += " " + _flag("fixed")
+        rows.append(
+            [
+                name,
+                _i(c.nominal),
+                _i(c.tolerance),
+                limits,
+                _e(c.distribution),
+                _i(c.cp) if c.distribution == "normal" else "—",
+                _i(c.mean_shift),
+                str(c.count),
+                cost,
+            ]
+        )
+    contributors = _table(
+        ["Contributor", f"Nominal{_unit(u)}", f"Current ±{_unit(u)}", f"Achievable ±{_unit(u)}", "Distribution",
+         "cp", "Mean shift [fraction of t]", "Count", f"Unit cost curve{_unit(case.currency)}, t in {_e(u)}"],
+        rows,
+        numeric=[False, True, True, True, False, True, True, True, False],
+        caption="Contributors as stated in the case file",
+    )
+    req_rows = [
+        [_e(r.name), _chain_text(r), _i(r.lower), _i(r.upper), _i(r.fallout_ppm)]
+        for r in case.requirements
+    ]
+    requirements = _table(
+        ["Requirement", "Response y", f"Lower limit{_unit(u)}", f"Upper limit{_unit(u)}", "Fallout target [ppm]"],
+        req_rows,
+        numeric=[False, False, True, True, True],
+        caption="Requirements (the fallout target applies to the statistical models)",
+    )
+    models = "<ul>" + "".join(
+        f"<li><strong>{_model(m)}</strong>: {_e(MODEL_EXPLANATIONS.get(m, ''))}.</li>" for m in report.models
+    ) + "</ul>"
+    assumptions = (
+        "<ul>"
+        "<li>A tolerance ±t is a symmetric half-width about the nominal.</li>"
+        "<li>σ of a contributor: t/(3·cp) for normal, t/√3 for uniform, t/√6 for triangular.</li>"
+        "<li>Contributors vary independently; a contributor with count n stands for n independent parts.</li>"
+        "<li>Unit costs follow the stated curves; an assembly costs Σ count · unit cost.</li>"
+        "</ul>"
+    )
+    return _section(
+        report,
+        "summary",
+        _dl(facts) + contributors + requirements + "<h3>Models</h3>" + models + "<h3>Assumptions</h3>" + assumptions,
+    )
+
+
+def _analysis_table(analysis, units: str, caption: str) -> str:
+    reqs = analysis.requirements
+    headers = ["Quantity"] + [_e(r.name) for r in reqs]
+
+    def row(label, values):
+        return [label] + values
+
+    rows = [
+        row(f"Nominal response ȳ{_unit(units)}", [_n(r.nominal, 6) for r in reqs]),
+        row(f"Limits{_unit(units)}", [f"{_i(r.lower)} to {_i(r.upper)}" for r in reqs]),
+        row(f"Worst case, lowest{_unit(units)}", [_n(r.worst_case_min, 6) for r in reqs]),
+        row(f"Worst case, highest{_unit(units)}", [_n(r.worst_case_max, 6) for r in reqs]),
+        row("Worst case within limits", [_flag("yes") if r.worst_case_ok else _flag("NO", "bad") for r in reqs]),
+        row(f"RSS σ{_unit(units)}", [_n(r.sigma) for r in reqs]),
+        row("Cpk of the response", [_n(r.cpk, 3) for r in reqs]),
+        row("Predicted fallout, RSS [ppm]", [_ppm(r.fallout_ppm) for r in reqs]),
+        row("  of which below / above [ppm]", [f"{_ppm(r.fallout_below_ppm)} / {_ppm(r.fallout_above_ppm)}" for r in reqs]),
+        row(f"Mean-shift band ±δ{_unit(units)}", [_n(r.mean_shift) for r in reqs]),
+        row("Predicted fallout, mean at worst place [ppm]", [_ppm(r.mean_shift_ppm) for r in reqs]),
+        row("Fallout target [ppm]", [_i(r.target_ppm) for r in reqs]),
+        row("Meets target (RSS)", [_flag("yes") if r.fallout_ppm <= r.target_ppm else _flag("NO", "bad") for r in reqs]),
+        row("Response", ["linear chain" if r.linear else "expression, linearised" for r in reqs]),
+    ]
+    return _table(headers, rows, numeric=[False] + [True] * len(reqs), caption=caption, cls="metrics")
+
+
+def _section_analysis(report: Report) -> str:
+    case = report.case
+    u = case.units
+    intro = (
+        "<p>The design as it is today: every contributor at its current tolerance. "
+        "Computed by <code>allocator.analysis.analyze</code>.</p>"
+    )
+    table = _analysis_table(report.analysis, u, "Stack results at the current tolerances")
+    parts = [intro, table]
+    for r in report.analysis.requirements:
+        rows = [
+            [_e(c.name), _n(c.sensitivity), str(c.count), _i(c.tolerance), _n(c.worst_case), _n(100 * c.variance_share, 3)]
+            for c in r.contributions
+        ]
+        parts.append(
+            _table(
+                ["Contributor", "Sensitivity ∂y/∂x", "Count", f"±t{_unit(u)}", f"± worst-case share{_unit(u)}", "Share of σ² [%]"],
+                rows,
+                numeric=[False, True, True, True, True, True],
+                caption=f"Contributors to {_e(r.name)}",
+            )
+        )
+    return _section(report, "analysis", "\n".join(parts))
+
+
+def _bound_note(bound: str) -> str:
+    return {"tightest": " " + _flag("tightest"), "loosest": " " + _flag("loosest"), "fixed": " " + _flag("fixed"),
+            "held": " " + _flag("held")}.get(bound, "")
+
+
+def _section_allocation(report: Report) -> str:
+    case = report.case
+    u, cur = case.units, case.currency
+    allocs = report.allocations
+    models = list(allocs)
+    headers = ["Contributor", f"Current ±{_unit(u)}"] + [
+        f"{_model(m)} ±{_unit(u)}" + (" (recommended)" if m == report.recommended else "") for m in models
+    ]
+    rows = []
+    for i, c in enumerate(case.contributors):
+        cells = [_e(c.name), _i(c.tolerance)]
+        for m in models:
+            a = allocs[m]
+            if not a.success:
+                cells.append("—")
+                continue
+            t = a.tolerances[c.name]
+            process = a.processes.get(c.name, "")
+            cells.append(
+                _t(t) + _bound_note(str(a.active[c.name]))
+                + (f'<div class="desc">{_e(process)}</div>' if process else "")
+            )
+        rows.append(cells)
+    cost_label = f"{_unit(cur)}" if cur else ""
+    first = next(iter(allocs.values()), None)
+    current_cost = _n(first.current_cost) if first is not None else "—"
+    rows.append(['<span class="total">Cost per assembly' + cost_label + "</span>", current_cost]
+                + [_n(allocs[m].total_cost) if allocs[m].success else "—" for m in models])
+    rows.append(["Saving against current" + cost_label, ""]
+                + [_n(allocs[m].savings, signed=True) if allocs[m].success else "—" for m in models])
+    rows.append(["Saving against current [%]", ""]
+                + [_n(allocs[m].savings_percent, 3, signed=True) if allocs[m].success else "—" for m in models])
+    rows.append(["Status", ""] + [_flag(allocs[m].status, "" if allocs[m].success else "bad") for m in models])
+    table = _table(headers, rows, numeric=[False] + [True] * (1 + len(models)),
+                   caption="Least-cost ± tolerances per stack model (side by side)", cls="alloc")
+    legend = (
+        '<p class="note">Tags: <span class="tag">tightest</span> the tolerance sits at its tightest achievable value '
+        '(the cost curve ends there); <span class="tag">loosest</span> at its loosest; <span class="tag">fixed</span> held '
+        "by the case. A process name under a value is the process chosen. Computed by "
+        "<code>allocator.solve.allocate</code>; every optimum is re-checked against every requirement.</p>"
+    )
+    # predicted requirement results per model
+    req_rows = []
+    for r_i, req in enumerate(case.requirements):
+        for m in models:
+            a = allocs[m]
+            if not a.success:
+                req_rows.append([_e(req.name), _model(m), "—", "—", "—", "—", "—"])
+                continue
+            rr = a.requirements[r_i]
+            req_rows.append(
+                [
+                    _e(rr.name),
+                    _model(m),
+                    f"{_n(rr.worst_case_min, 6)} to {_n(rr.worst_case_max, 6)}",
+                    _n(rr.sigma),
+                    _ppm(rr.fallout_ppm),
+                    _i(rr.target_ppm),
+                    _e(rr.binding or "—"),
+                ]
+            )
+    req_table = _table(
+        ["Requirement", "Model", f"Worst-case range{_unit(u)}", f"RSS σ{_unit(u)}", "Predicted fallout [ppm]",
+         "Target [ppm]", "Limit pressed"],
+        req_rows,
+        numeric=[False, False, True, True, True, True, False],
+        caption="Each requirement at each allocation",
+    )
+    failures = "".join(
+        f'<div class="alert"><p><strong>{_model(m)}: {_e(a.status.upper())}.</strong> {_e(a.message)}</p></div>'
+        for m, a in allocs.items()
+        if not a.success
+    )
+    rec_note = (
+        f"<p>The report recommends the <strong>{_model(report.recommended)}</strong> allocation: the most "
+        "conservative statistical model that found an optimum (mean shift before RSS; worst case when no "
+        "statistical model was requested). This is the report's default, not an engineering judgement; "
+        "choose the model that fits the product and its risks.</p>"
+        if report.recommended
+        else ""
+    )
+    return _section(report, "allocation", failures + rec_note + table + legend + req_table)
+
+
+def _section_frontier(report: Report, svg: str | None) -> str:
+    if report.frontier is None or svg is None:
+        return _section(report, "frontier", f'<p class="note">No cost frontier: {_e(report.frontier_message)}.</p>')
+    guide = (
+        "<p><strong>How to read it.</strong> Each point is a complete least-cost allocation for one value of the "
+        "swept limit or target; the line joins them per model. Moving right along the curve loosens the "
+        "requirement; the cost falls steeply where the curve is steep, so that is where a relaxed requirement buys "
+        "most, and hardly at all where it is flat. The vertical gap between two models at the same value is the "
+        "price of the more conservative model. The case's own value is marked.</p>"
+    )
+    return _section(report, "frontier", f'<figure class="plot">{svg}<figcaption>Cost frontier '
+                    f"(<code>allocator.frontier.frontier</code>).</figcaption></figure>" + guide)
+
+
+def _section_contributions(report: Report, svg: str) -> str:
+    text = (
+        "<p>Share of the response variance σ² that each contributor causes (count · (∂y/∂x · σ)² over the total), "
+        "from <code>allocator.analysis.analyze</code> at the current tolerances"
+        + (f" and at the {_model(report.recommended)} allocation" if report.recommended else "")
+        + ". A long bar is where a tighter tolerance narrows the stack most; a short one is a part whose "
+        "tolerance hardly matters to this requirement.</p>"
+    )
+    legend = "Dark solid bars: current design." + (
+        f" White hatched bars: {_e(MODEL_LABELS.get(report.recommended))} allocation." if report.recommended else ""
+    )
+    return _section(report, "contributions", text + f'<figure class="plot">{svg}<figcaption>{legend}</figcaption></figure>')
+
+
+def _section_verification(report: Report, svg: str) -> str:
+    v = report.verification
+    case = report.case
+    u = case.units
+    basis = (
+        f"the recommended {_model(report.recommended)} allocation"
+        if report.verification_basis == "allocation"
+        else "the current design (no allocation was available)"
+    )
+    intro = (
+        f"<p>{v.samples:,} whole assemblies drawn at random for {basis}, every part from its stated distribution"
+        + (", process means placed at the worst end of their mean shift" if v.shift_means else "")
+        + f"; seed {v.seed}. Computed by <code>allocator.simulate.verify</code>; the interval is the exact "
+        f"(Clopper–Pearson) {v.confidence:.0%} interval. Result: {_e(v.message)}.</p>"
+    )
+    rows = [
+        [
+            _e(c.name),
+            _ppm(c.fallout_ppm),
+            f"{_ppm(c.ci_low_ppm)} to {_ppm(c.ci_high_ppm)}",
+            _i(c.target_ppm),
+            _ppm(c.predicted_ppm),
+            _ppm(c.convolution_ppm),
+            _n(c.mean, 6),
+            _n(c.std),
+            _flag(c.status, "" if c.status == "pass" else "bad") + ("" if c.decided else " " + _flag("undecided")),
+        ]
+        for c in v.requirements
+    ]
+    table = _table(
+        ["Requirement", "Fallout, simulated [ppm]", f"{v.confidence:.0%} interval [ppm]", "Target [ppm]",
+         "Analytic prediction [ppm]", "Exact convolution [ppm]", f"Mean{_unit(u)}", f"Std. dev.{_unit(u)}", "Verdict"],
+        rows,
+        numeric=[False, True, True, True, True, True, True, True, False],
+        caption="Simulated fallout against the target and the predictions",
+    )
+    note = (
+        '<p class="note">Verdict: <span class="tag">fail</span> when the whole interval lies above the target; '
+        '<span class="tag">undecided</span> when the target lies inside the interval (more samples would decide).</p>'
+    )
+    figure = f'<figure class="plot">{svg}<figcaption>Histogram of the simulated response with the limits (dashed) and the RSS normal curve (<code>allocator.simulate.render_verification_plot</code>).</figcaption></figure>'
+    return _section(report, "verification", intro + table + note + figure)
+
+
+def _section_shadow(report: Report) -> str:
+    case = report.case
+    u, cur = case.units, case.currency
+    per_length = f"[{_e(cur or 'cost')}/{_e(u or 'unit')}]"
+    per_ppm = f"[{_e(cur or 'cost')}/ppm]"
+    rows = []
+    for m, a in report.allocations.items():
+        if not a.success:
+            rows.append(["—", _model(m), _e(a.status), "—", "—", "—"])
+            continue
+        for rr in a.requirements:
+            rows.append(
+                [
+                    _e(rr.name),
+                    _model(m),
+                    _e(rr.binding or "none"),
+                    _n(rr.shadow_lower, signed=True),
+                    _n(rr.shadow_upper, signed=True),
+                    _n(rr.shadow_ppm, signed=True),
+                ]
+            )
+    table = _table(
+        ["Requirement", "Model", "Limit pressed", f"Cost change per unit of lower limit {per_length}",
+         f"Cost change per unit of upper limit {per_length}", f"Cost change per ppm of target {per_ppm}"],
+        rows,
+        numeric=[False, False, False, True, True, True],
+        caption="Marginal cost of each requirement limit (from the allocation's Lagrange multipliers)",
+    )
+    guide = (
+        "<p><strong>How to read it.</strong> A shadow price is the change of the least cost per assembly when a "
+        "limit moves by one unit, all else re-optimised; it holds for small moves. A negative value on an upper "
+        "limit means raising that limit saves money; a positive value on a lower limit means lowering it saves "
+        "money. The per-ppm column says what accepting one more ppm of fallout would save (statistical models). "
+        "A zero or empty entry is a limit that does not constrain the optimum. Multiply by the change you have in "
+        "mind (e.g. 0.01 of the unit) for a first estimate; the frontier shows larger moves exactly. "
+        "Source: <code>RequirementResult.shadow_lower / shadow_upper / shadow_ppm</code>.</p>"
+    )
+    return _section(report, "shadow-prices", table + guide)
+
+
+def _section_supplier(report: Report) -> str:
+    case = report.case
+    u, cur = case.units, case.currency
+    allocs = report.allocations
+    ok_models = [m for m, a in allocs.items() if a.success]
+    rec = report.recommended
+    money = _unit(cur)
+    if rec is None:
+        return _section(report, "supplier", '<p class="note">No allocation is available, so there is nothing to ask suppliers for yet.</p>')
+    ask_headers = ["Contributor", "Count", f"Current ±{_unit(u)}"] + [
+        f"Ask ±{_unit(u)}, {_model(m)}" + (" (recommended)" if m == rec else "") for m in ok_models
+    ] + [f"Unit cost at the recommended ±{money}"]
+    ask_rows = []
+    for c in case.contributors:
+        row = [_e(c.name) + (f'<div class="desc">{_e(c.description)}</div>' if c.description else ""), str(c.count), _i(c.tolerance)]
+        for m in ok_models:
+            process = allocs[m].processes.get(c.name, "")
+            row.append(_t(allocs[m].tolerances[c.name]) + (f'<div class="desc">{_e(process)}</div>' if process else ""))
+        row.append(_n(allocs[rec].unit_cost[c.name]))
+        ask_rows.append(row)
+    ask = _table(ask_headers, ask_rows, numeric=[False] + [True] * (len(ask_headers) - 1),
+                 caption="Tolerance to ask of each supplier")
+    sheet = report.supplier
+    parts = [ask]
+    if sheet is not None and sheet.rows:
+        rows = []
+        for r in sheet.rows:
+            tightened = "<br>".join(
+                f'<span class="nw">{_e(name)} {_t(before)} → {_t(after)}</span>' for name, before, after in r.tightened
+            ) or ("none" if r.status == "solved" else "")
+            status = "" if r.status == "solved" else _flag(r.status, "bad" if r.status in ("infeasible", "failed", "error") else "")
+            rows.append(
+                [
+                    _e(r.contributor),
+                    _t(r.tolerance),
+                    _n(r.unit_cost),
+                    (_t(r.looser) if r.looser is not None else "—") + (" " + status if status else ""),
+                    _n(r.own_change, signed=True),
+                    _n(r.elsewhere_change, signed=True),
+                    _n(r.total_cost_change, signed=True),
+                    tightened if r.status == "solved" else _e(r.message),
+                ]
+            )
+        parts.append(
+            _table(
+                ["Contributor", f"Asked ±{_unit(u)}", f"Unit cost{money}", f"One step looser ±{_unit(u)}",
+                 f"Change on this part{money}", f"Change elsewhere{money}", f"Change of total{money}",
+                 f"Other tolerances that must tighten [{_e(u)}]"],
+                rows,
+                numeric=[False, True, True, True, True, True, True, False],
+                caption=f"What loosening one tolerance by one step costs elsewhere ({_model(rec)} allocation)",
+                cls="supplier",
+            )
+        )
+    elif sheet is not None:
+        parts.append(f'<p class="note">{_e(sheet.message)}</p>')
+    step = sheet.step if sheet is not None else 0.1
+    guide = (
+        "<p><strong>How to read it.</strong> The first table is the tolerance to put on each drawing or purchase "
+        "order, per model, and what the case's cost curve says one part costs there. The second answers the "
+        "question a supplier asks: <em>what if I can only hold a little less?</em> For each contributor the "
+        f"allocation is solved again with that contributor held one step looser (+{step:.0%}, rounded up to the "
+        "case's rounding step; for listed tolerances, the next listed value) and everything else free. "
+        "<em>Change on this part</em> is what the supplier's part gets cheaper (count · unit-cost change, usually "
+        "negative); <em>change elsewhere</em> is what the other parts cost more because their tolerances must "
+        "tighten; <em>change of total</em> is the sum, the net price of the concession per assembly. It is never "
+        "negative, because the allocation already was the least cost; a small total means the concession is "
+        "nearly free, a large one means the supplier's price must drop at least that much to be worth it. "
+        "Computed by <code>allocator.supplier.supplier_sheet</code>.</p>"
+    )
+    parts.append(guide)
+    return _section(report, "supplier", "\n".join(parts))
+
+
+def _section_cautions(report: Report) -> str:
+    items = "".join(f"<li>{_e(text)}</li>" for text in CAUTIONS)
+    return _section(report, "cautions", f'<div class="cautions"><ul>{items}</ul></div>')
+
+
+def _section_reproducibility(report: Report) -> str:
+    case = report.case
+    v = report.versions
+    solver_rows = [
+        [_model(m), _e(a.status), _e(a.solver), str(a.iterations), _n(a.gap) if a.gap is not None else "—", _e(a.message)]
+        for m, a in report.allocations.items()
+    ]
+    solvers = _table(["Model", "Status", "Solver", "Iterations", "Relative gap", "Solver message"], solver_rows,
+                     numeric=[False, False, False, True, True, False], caption="Solvers")
+    model_flags = " ".join(f"--model {m}" for m in report.models)
+    command = (
+        f"allocator report {Path(case.path).name if case.path else 'CASE'} {model_flags} "
+        f"--samples {report.samples} --seed {report.seed} -o REPORT.html"
+    )
+    facts = [
+        ("Tool", f"allocator {_e(v.get('allocator', ''))}"),
+        ("Case file", _e(case.path) if case.path else "not read from a file"),
+        ("Case file SHA-256", f"<code>{_e(case.sha256 or '—')}</code>"),
+        ("Monte Carlo", f"{report.samples:,} assemblies, seed {report.seed}"),
+        ("Created", f"{report.created:%Y-%m-%d %H:%M:%S} UTC"),
+        ("Python and libraries", _e(", ".join(f"{k} {v[k]}" for k in ("python", *_VERSION_PACKAGES) if k in v))),
+        ("Platform", _e(platform.platform(terse=True))),
+        ("Same report again", f"<code>{_e(command)}</code>"),
+    ]
+    return _section(report, "reproducibility", _dl(facts) + solvers)
+
+
+_CSS = """
+:root { --ink: #111; --muted: #555; --rule: #999; --faint: #e9e9e9; }
+* { box-sizing: border-box; }
+html { font-size: 15px; }
+body { margin: 0 auto; max-width: 72rem; padding: 1.5rem 2rem 3rem; color: var(--ink); background: #fff;
+  font-family: system-ui, -apple-system, "Segoe UI", Roboto, "Helvetica Neue", Arial, sans-serif; line-height: 1.45; }
+h1 { font-size: 1.9rem; margin: 0.1rem 0 0.3rem; line-height: 1.2; }
+h2 { font-size: 1.3rem; margin: 2.2rem 0 0.6rem; padding-bottom: 0.2rem; border-bottom: 2px solid var(--ink); }
+h3 { font-size: 1.05rem; margin: 1.2rem 0 0.4rem; }
+h2.toc { font-size: 1rem; border: 0; margin: 0 0 0.3rem; }
+.kicker { margin: 0; text-transform: uppercase; letter-spacing: 0.08em; font-size: 0.8rem; color: var(--muted); }
+.meta { margin: 0 0 1rem; color: var(--muted); font-size: 0.9rem; }
+.verdict { font-size: 1.05rem; margin: 0.8rem 0; }
+.alert { border: 3px double var(--ink); padding: 0.4rem 0.9rem; margin: 0.8rem 0; background: var(--faint); }
+.alert p { margin: 0.3rem 0; }
+.caution-brief { border-left: 6px solid var(--ink); padding: 0.3rem 0.9rem; margin: 1rem 0; background: #f6f6f6; }
+.caution-brief p { margin: 0.2rem 0; }
+.cautions { border: 2px solid var(--ink); padding: 0.2rem 1rem; }
+.cautions li { margin: 0.4rem 0; }
+nav ol { columns: 2; margin: 0; padding-left: 1.6rem; }
+nav { border: 1px solid var(--rule); padding: 0.6rem 1rem; margin: 1rem 0; }
+a { color: inherit; }
+code { font-family: ui-monospace, "SF Mono", Menlo, Consolas, "DejaVu Sans Mono", monospace; font-size: 0.9em; }
+.scroll { overflow-x: auto; margin: 0.8rem 0 1rem; }
+table { border-collapse: collapse; font-size: 0.9rem; font-variant-numeric: tabular-nums; }
+caption { text-align: left; font-weight: 600; padding: 0 0 0.3rem; caption-side: top; }
+th, td { padding: 0.25rem 0.6rem; border-bottom: 1px solid #ccc; vertical-align: top; text-align: left; }
+thead th { border-bottom: 2px solid var(--ink); font-weight: 600; vertical-align: bottom; }
+tbody th { font-weight: 600; }
+.num { text-align: right; white-space: nowrap; }
+.nw { white-space: nowrap; display: inline-block; }
+td.model, th.model { white-space: nowrap; }
+th.num { white-space: normal; }
+table.alloc tbody tr:nth-last-child(-n+4) { background: var(--faint); }
+table.alloc tbody tr:nth-last-child(4) th, table.alloc tbody tr:nth-last-child(4) td { border-top: 2px solid var(--ink); }
+.desc { font-weight: normal; color: var(--muted); font-size: 0.85em; white-space: normal; }
+.tag { display: inline-block; border: 1px solid var(--ink); border-radius: 2px; padding: 0 0.3rem; font-size: 0.75rem;
+  line-height: 1.3; font-weight: 600; text-transform: uppercase; letter-spacing: 0.04em; background: #fff; }
+.tag.bad { background: var(--ink); color: #fff; }
+dl.facts { display: grid; grid-template-columns: max-content 1fr; gap: 0.2rem 1.2rem; margin: 0.6rem 0 1rem; }
+dl.facts dt { font-weight: 600; }
+dl.facts dd { margin: 0; overflow-wrap: anywhere; }
+.note { color: var(--muted); font-size: 0.9rem; }
+figure.plot { margin: 1rem 0; }
+figure.plot svg { max-width: 100%; height: auto; display: block; }
+figcaption { font-size: 0.85rem; color: var(--muted); margin-top: 0.3rem; }
+@page { size: A4; margin: 14mm 12mm; }
+@media print {
+  html { font-size: 10pt; }
+  body { max-width: none; padding: 0; }
+  nav { display: none; }
+  h2 { break-after: avoid; page-break-after: avoid; }
+  figure, tr, .alert, .caution-brief, dl.facts { break-inside: avoid; page-break-inside: avoid; }
+  thead { display: table-header-group; }
+  .scroll { overflow: visible; }
+  a { text-decoration: none; }
+  #cautions { break-before: page; }
+}
+"""

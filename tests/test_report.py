@@ -1,0 +1,346 @@
+"""The HTML report: structure, self-containment, escaping, and numbers equal to the library's.
+
+The report must only format library results, so every number checked here is taken from a
+fresh library call (``allocate``, ``analyze``, ``verify``, ``supplier_sheet``), not from the
+report object, and looked for in the section where it belongs. The HTML is read with the
+standard library's ``html.parser``.
+"""
+
+from __future__ import annotations
+
+import re
+from datetime import datetime, timezone
+from html.parser import HTMLParser
+from pathlib import Path
+
+import pytest
+from click.testing import CliRunner
+
+from allocator.analysis import analyze
+from allocator.case import load_case, loads_case
+from allocator.cli.main import cli
+from allocator.report import CAUTIONS, SECTIONS, build_report, fmt_input, fmt_number, fmt_tolerance
+from allocator.simulate import verify
+from allocator.solve import allocate
+from allocator.supplier import supplier_sheet
+
+ROOT = Path(__file__).resolve().parent.parent
+CASES = ROOT / "cases"
+DEMOS = sorted(p.stem for p in CASES.glob("*.toml"))
+SAMPLES = 4000  # enough for a histogram; the report's numbers are checked, not the fallout
+SEED = 7
+POINTS = 3  # frontier points: the structure matters here, not the curve's resolution
+STAMP = datetime(2024, 1, 2, 3, 4, 5, tzinfo=timezone.utc)
+
+
+class Outline(HTMLParser):
+    """Collects what the checks need: tags, attributes, h2 texts, section ids, text."""
+
+    def __init__(self):
+        super().__init__(convert_charrefs=True)
+        self.tags: list[tuple[str, dict]] = []
+        self.stack: list[str] = []
+        self.h2: list[tuple[str | None, str]] = []  # (id of the enclosing section, text)
+        self.sections: list[str] = []
+        self.text: list[str] = []
+        self._h2_text: list[str] | None = None
+        self._section: list[str | None] = []
+        self.svg_count = 0
+        self.top_level_svgs = 0
+        self._svg_depth = 0
+
+    def handle_starttag(self, tag, attrs):
+        attributes = dict(attrs)
+        self.tags.append((tag, attributes))
+        if tag == "section":
+            self.sections.append(attributes.get("id"))
+            self._section.append(attributes.get("id"))
+        if tag == "h2":
+            self._h2_text = []
+        if tag == "svg":
+            self.svg_count += 1
+            if self._svg_depth == 0:
+                self.top_level_svgs += 1
+            self._svg_depth += 1
+
+    def handle_endtag(self, tag):
+        if tag == "section" and self._section:
+            self._section.pop()
+        if tag == "h2" and self._h2_text is not None:
+            self.h2.append((self._section[-1] if self._section else None, "".join(self._h2_text).strip()))
+            self._h2_text = None
+        if tag == "svg":
+            self._svg_depth -= 1
+
+    def handle_data(self, data):
+        self.text.append(data)
+        if self._h2_text is not None:
+            self._h2_text.append(data)
+
+
+def outline(text: str) -> Outline:
+    parser = Outline()
+    parser.feed(text)
+    parser.close()
+    return parser
+
+
+def section_html(text: str, sid: str) -> str:
+    match = re.search(rf'<section id="{re.escape(sid)}">(.*?)</section>', text, flags=re.S)
+    assert match, f"section {sid} missing"
+    return match.group(1)
+
+
+@pytest.fixture(scope="module")
+def reports():
+    """One small report per demo case (built once for the module)."""
+    out = {}
+    for name in DEMOS:
+        case = load_case(CASES / f"{name}.toml")
+        report = build_report(case, samples=SAMPLES, seed=SEED, frontier_points=POINTS, created=STAMP)
+        out[name] = (case, report, report.to_html())
+    return out
+
+
+@pytest.mark.parametrize("name", DEMOS)
+def test_every_section_heading_and_plot(reports, name):
+    case, report, text = reports[name]
+    doc = outline(text)
+    assert text.startswith("<!DOCTYPE html>")
+    # every section, in order, each with its h2 inside it
+    assert doc.sections == [sid for sid, _ in SECTIONS]
+    assert [h for h in doc.h2 if h[0] is not None] == list(SECTIONS)
+    # plots: frontier (when the case has one), contributions, verification histogram
+    figures = report.figures()
+    assert doc.top_level_svgs == len(figures) >= 2
+    for sid in figures:
+        assert "<svg" in section_html(text, sid)
+    if report.frontier is not None:
+        assert len(figures) == 3
+
+
+@pytest.mark.parametrize("name", DEMOS)
+def test_self_contained(reports, name):
+    _, _, text = reports[name]
+    doc = outline(text)
+    tags = {tag for tag, _ in doc.tags}
+    assert "script" not in tags and "link" not in tags and "img" not in tags
+    assert "iframe" not in tags and "object" not in tags and "embed" not in tags
+    for tag, attributes in doc.tags:
+        assert "src" not in attributes, tag
+        for key, value in attributes.items():
+            if value and re.search(r"https?:", value):
+                # the only web addresses allowed are SVG namespace names, which are never fetched
+                assert key.startswith("xmlns"), (tag, key, value)
+            if key in ("href", "xlink:href") and value:
+                assert value.startswith("#"), (tag, key, value)
+    assert not re.search(r"https?:", "".join(doc.text))  # none in text, CSS or comments' data
+    css = "".join(re.findall(r"<style[^>]*>(.*?)</style>", text, flags=re.S))
+    assert "@import" not in css and "@font-face" not in css
+    assert not re.search(r"url\((?!#)", css), "CSS may only refer to fragments in the page"
+    # ids are unique across the inline SVGs (matplotlib reuses names such as 'patch_1')
+    ids = re.findall(r'\bid="([^"]+)"', text)
+    assert len(ids) == len(set(ids))
+
+
+def test_case_text_is_escaped():
+    text = (CASES / "gearbox_end_play.toml").read_text(encoding="utf-8")
+    text = text.replace('title = "Gearbox output shaft end play"', 'title = "<script>alert(1)</script> & \\"quotes\\""')
+    text = text.replace(
+        'description = "Spigot height of the bearing cover"', 'description = "<img src=x onerror=alert(2)>"'
+    )
+    case = loads_case(text, source="escape.toml")
+    report = build_report(case, ["rss"], samples=1000, seed=1, frontier_points=POINTS)
+    html_text = report.to_html()
+    doc = outline(html_text)
+    assert not any(tag in ("script", "img") for tag, _ in doc.tags)
+    assert "&lt;script&gt;alert(1)&lt;/script&gt; &amp; &quot;quotes&quot;" in html_text
+    assert "&lt;img src=x onerror=alert(2)&gt;" in html_text
+    title = re.search(r"<title>(.*?)</title>", html_text, flags=re.S).group(1)
+    assert "&lt;script&gt;" in title
+    assert "<script>alert(1)</script>" in "".join(doc.text)  # shown as text, as written
+
+
+def test_numbers_equal_the_library(reports):
+    case, report, text = reports["gearbox_end_play"]
+    alloc_html = section_html(text, "allocation")
+    shadow_html = section_html(text, "shadow-prices")
+    supplier_html = section_html(text, "supplier")
+    for model in case.allocation.models:
+        result = allocate(case, model)  # a fresh solve, not the report's object
+        assert result.success
+        assert fmt_number(result.total_cost) in alloc_html
+        assert fmt_number(result.current_cost) in alloc_html
+        assert fmt_number(result.savings, signed=True) in alloc_html
+        assert fmt_number(result.savings_percent, 3, signed=True) in alloc_html
+        for name, t in result.tolerances.items():
+            assert fmt_tolerance(t) in alloc_html, (model, name)
+            assert fmt_tolerance(t) in supplier_html, (model, name)
+        for rr in result.requirements:
+            assert fmt_number(rr.sigma) in alloc_html
+            assert fmt_number(rr.fallout_ppm) in alloc_html
+            for value in (rr.shadow_lower, rr.shadow_upper, rr.shadow_ppm):
+                if value is not None:
+                    assert fmt_number(value, signed=True) in shadow_html, (model, value)
+    # the header repeats the recommended allocation's totals
+    rec = allocate(case, report.recommended)
+    header = text.split("<main>", 1)[0]
+    assert fmt_number(rec.total_cost) in header and fmt_number(rec.savings, signed=True) in header
+
+    current = analyze(case)
+    analysis_html = section_html(text, "analysis")
+    for r in current.requirements:
+        for value in (r.sigma, r.fallout_ppm, r.mean_shift_ppm, r.mean_shift):
+            assert fmt_number(value) in analysis_html
+        assert fmt_number(r.cpk, 3) in analysis_html
+        assert fmt_number(r.worst_case_min, 6) in analysis_html
+        for c in r.contributions:
+            assert fmt_number(100 * c.variance_share, 3) in analysis_html
+
+    checked = verify(case, dict(rec.tolerances), samples=SAMPLES, seed=SEED)
+    verification_html = section_html(text, "verification")
+    assert f"{SAMPLES:,}" in verification_html and f"seed {SEED}" in verification_html
+    for c in checked.requirements:
+        assert fmt_number(c.fallout_ppm) in verification_html
+        assert f"{fmt_number(c.ci_low_ppm)} to {fmt_number(c.ci_high_ppm)}" in verification_html
+        assert fmt_number(c.predicted_ppm) in verification_html
+
+    sheet = supplier_sheet(case, report.recommended)
+    for row in sheet.rows:
+        if row.status == "solved":
+            assert fmt_number(row.total_cost_change, signed=True) in supplier_html
+            assert fmt_number(row.own_change, signed=True) in supplier_html
+            assert fmt_number(row.elsewhere_change, signed=True) in supplier_html
+            assert fmt_tolerance(row.looser) in supplier_html
+            for name, before, after in row.tightened:
+                assert f"{name} {fmt_tolerance(before)} → {fmt_tolerance(after)}" in supplier_html
+
+
+def test_summary_states_the_case_and_reproducibility(reports):
+    case, report, text = reports["gearbox_end_play"]
+    summary = section_html(text, "summary")
+    for c in case.contributors:
+        assert c.name in summary and fmt_input(c.nominal) in summary and fmt_input(c.tolerance) in summary
+    for r in case.requirements:
+        assert fmt_input(r.lower) in summary and fmt_input(r.upper) in summary
+    footer = section_html(text, "reproducibility")
+    assert case.sha256 in footer
+    assert f"seed {SEED}" in footer and f"{SAMPLES:,} assemblies" in footer
+    assert "2024-01-02 03:04:05 UTC" in footer
+    for package in ("numpy", "scipy", "cvxpy"):
+        assert package in footer
+    for model, result in report.allocations.items():
+        assert result.solver in footer
+
+
+def test_cautions_near_the_top_and_in_full(reports):
+    _, _, text = reports["gearbox_end_play"]
+    brief = text.find('class="caution-brief"')
+    assert 0 < brief < text.find('<section id="summary">')
+    top = text[brief : text.find("</aside>", brief)]
+    assert "capable" in top and "worst case" in top and "licensed engineering review" in top
+    cautions = section_html(text, "cautions")
+    for line in CAUTIONS:
+        assert line.replace("'", "&#x27;") in cautions
+
+
+def test_print_and_greyscale_rules_are_in_the_stylesheet(reports):
+    _, _, text = reports["gearbox_end_play"]
+    css = re.search(r"<style>(.*?)</style>", text, flags=re.S).group(1)
+    assert "@media print" in css
+    assert "system-ui" in css
+    # no colour other than greys in the page's own stylesheet (plots carry their own)
+    for colour in re.findall(r"#([0-9a-fA-F]{3,6})\b", css):
+        full = colour if len(colour) == 6 else "".join(ch * 2 for ch in colour)
+        assert full[0:2] == full[2:4] == full[4:6], f"#{colour} is not a grey"
+    # numbers are right-aligned: every numeric header has the class that aligns them
+    assert ".num { text-align: right" in css
+    assert '<th scope="col" class=num>' in text
+
+
+def test_infeasible_model_is_shown_and_exit_code_is_one(tmp_path):
+    # worst case cannot fit 0.15..0.25 (the tightest stack is ±0.083); rss at 2700 ppm can
+    text = (CASES / "gearbox_end_play.toml").read_text(encoding="utf-8")
+    text = text.replace("lower = 0.05\nupper = 0.35\nfallout_ppm = 100", "lower = 0.15\nupper = 0.25\nfallout_ppm = 2700")
+    path = tmp_path / "tight.toml"
+    path.write_text(text, encoding="utf-8")
+    out = tmp_path / "tight.html"
+    result = CliRunner().invoke(
+        cli,
+        ["report", str(path), "-o", str(out), "--model", "worst-case", "--model", "rss",
+         "--samples", "1000", "--frontier-points", str(POINTS)],
+    )
+    assert result.exit_code == 1, result.output
+    assert out.exists()
+    html_text = out.read_text(encoding="utf-8")
+    expected = allocate(load_case(path), "worst-case")
+    assert expected.status == "infeasible"
+    assert 'role="alert"' in html_text and "INFEASIBLE" in html_text
+    header = html_text.split("<main>", 1)[0]
+    import html as html_module
+
+    assert html_module.escape(expected.message, quote=True) in header
+    assert "recommended allocation: rss" in result.output
+
+
+def _invoke(*args):
+    return CliRunner().invoke(cli, ["report", *map(str, args)])
+
+
+def test_cli_writes_the_file(tmp_path):
+    out = tmp_path / "review.html"
+    result = _invoke(CASES / "gearbox_end_play.toml", "-o", out, "--model", "rss", "--samples", 1000,
+                     "--seed", 3, "--frontier-points", POINTS)
+    assert result.exit_code == 0, result.output
+    text = out.read_text(encoding="utf-8")
+    assert text.startswith("<!DOCTYPE html>") and text.rstrip().endswith("</html>")
+    assert "--model rss --samples 1000 --seed 3" in text
+    assert not list(tmp_path.glob(".*.tmp"))  # the atomic write left no temporary file
+
+
+def test_cli_refuses_to_overwrite_the_case(tmp_path):
+    case_path = tmp_path / "case.toml"
+    original = (CASES / "gearbox_end_play.toml").read_bytes()
+    case_path.write_bytes(original)
+    result = _invoke(case_path, "-o", case_path, "--samples", 1000)
+    assert result.exit_code == 2
+    assert "refusing to overwrite" in result.output
+    assert case_path.read_bytes() == original
+
+
+@pytest.mark.parametrize(
+    "args",
+    [
+        [ROOT / "tests" / "bad_cases" / "unknown_key.toml"],
+        [ROOT / "tests" / "bad_cases" / "not_toml.toml"],
+        [CASES / "does_not_exist.toml"],
+        [CASES / "gearbox_end_play.toml", "--samples", 0],
+        [CASES / "gearbox_end_play.toml", "--model", "median"],
+        [CASES / "gearbox_end_play.toml", "--seed", -1],
+    ],
+    ids=["unknown-key", "not-toml", "missing-file", "zero-samples", "unknown-model", "negative-seed"],
+)
+def test_cli_bad_input_writes_nothing(tmp_path, args):
+    out = tmp_path / "out.html"
+    result = _invoke(*args, "-o", out)
+    assert result.exit_code == 2, result.output
+    assert not out.exists()
+    assert list(tmp_path.iterdir()) == []
+    assert "Traceback" not in result.output
+    lines = [line for line in result.output.splitlines() if line.strip()]
+    assert lines and (lines[-1].startswith("error:") or lines[-1].startswith("Error:"))
+
+
+def test_cli_missing_output_folder(tmp_path):
+    out = tmp_path / "no" / "such" / "folder" / "r.html"
+    result = _invoke(CASES / "gearbox_end_play.toml", "-o", out, "--samples", 1000)
+    assert result.exit_code == 2
+    assert "does not exist" in result.output
+    assert not out.parent.exists()
+
+
+def test_same_seed_same_report():
+    case = load_case(CASES / "gearbox_end_play.toml")
+    first = build_report(case, ["rss"], samples=2000, seed=5, frontier_points=POINTS, created=STAMP).to_html()
+    second = build_report(case, ["rss"], samples=2000, seed=5, frontier_points=POINTS, created=STAMP).to_html()
+    assert first == second
