@@ -85,13 +85,14 @@ _VERSION_PACKAGES = ("numpy", "scipy", "cvxpy", "pandas", "matplotlib")
 # --------------------------------------------------------------------------- formatting
 
 
-def fmt_number(value, digits: int = 4, *, signed: bool = False) -> str:
+def fmt_number(value, digits: int = 4, *, signed: bool = False, strip: bool = False) -> str:
     """A number as plain text for the report: ``digits`` significant digits.
 
     Fixed notation between 1e-4 and 1e7 (no exponent for ordinary sizes), ``e`` notation
     outside; ``—`` for None or NaN, ``∞`` for infinity. ``signed`` adds a ``+`` to
-    positive numbers (changes, savings). The same function formats every number in the
-    HTML, so a test can look for ``fmt_number(result.total_cost)`` in it.
+    positive numbers (changes, savings); ``strip`` drops trailing zeros after the decimal
+    point (for responses shown with many digits). The same function formats every number
+    in the HTML, so a test can look for ``fmt_number(result.total_cost)`` in it.
 
     Examples
     --------
@@ -99,6 +100,8 @@ def fmt_number(value, digits: int = 4, *, signed: bool = False) -> str:
     ('7.420', '0.07735', '12346')
     >>> fmt_number(7.098e-07), fmt_number(None), fmt_number(0.5, signed=True)
     ('7.098e-07', '—', '+0.5000')
+    >>> fmt_number(0.3000000000001, 6, strip=True), fmt_number(-0.0722639419, 6, strip=True)
+    ('0.3', '-0.0722639')
     """
     if value is None:
         return "—"
@@ -118,6 +121,8 @@ def fmt_number(value, digits: int = 4, *, signed: bool = False) -> str:
         # rounding may have carried into a new digit (9.9996 -> 10.000): drop one decimal
         if decimals > 0 and len(text.lstrip("-").replace(".", "").lstrip("0")) > digits:
             text = f"{x:.{decimals - 1}f}"
+        if strip and "." in text:
+            text = text.rstrip("0").rstrip(".")
         return sign + text
     return sign + f"{x:.{digits - 1}e}"
 
@@ -145,10 +150,7 @@ def fmt_tolerance(value) -> str:
     >>> fmt_tolerance(0.041), fmt_tolerance(0.0411666), fmt_tolerance(50.0)
     ('0.041', '0.04117', '50')
     """
-    text = fmt_number(value)
-    if "." in text and "e" not in text:
-        text = text.rstrip("0").rstrip(".")
-    return text
+    return fmt_number(value, strip=True)
 
 
 def _e(text) -> str:
@@ -158,6 +160,11 @@ def _e(text) -> str:
 
 def _n(value, digits: int = 4, *, signed: bool = False) -> str:
     return _e(fmt_number(value, digits, signed=signed))
+
+
+def _r(value) -> str:
+    """A response value (nominal, worst-case end, mean): 6 significant digits, no padding."""
+    return _e(fmt_number(value, 6, strip=True))
 
 
 def _i(value) -> str:
@@ -468,7 +475,13 @@ def _svg_context():
     import matplotlib
 
     # fixed hash salt: identical reports for identical input; glyphs as paths: no fonts needed
-    return matplotlib.rc_context({"svg.hashsalt": "allocator-report", "svg.fonttype": "path"})
+    from cycler import cycler
+
+    # greys for every colour a plot does not set itself, so fills print the same in greyscale
+    greys = cycler(color=["0.35", "0.0", "0.6", "0.15", "0.75"])
+    return matplotlib.rc_context(
+        {"svg.hashsalt": "allocator-report", "svg.fonttype": "path", "axes.prop_cycle": greys}
+    )
 
 
 _ID = re.compile(r'\bid="([^"]+)"')
@@ -765,10 +778,10 @@ def _analysis_table(analysis, units: str, caption: str) -> str:
         return [label] + values
 
     rows = [
-        row(f"Nominal response ȳ{_unit(units)}", [_n(r.nominal, 6) for r in reqs]),
+        row(f"Nominal response ȳ{_unit(units)}", [_r(r.nominal) for r in reqs]),
         row(f"Limits{_unit(units)}", [f"{_i(r.lower)} to {_i(r.upper)}" for r in reqs]),
-        row(f"Worst case, lowest{_unit(units)}", [_n(r.worst_case_min, 6) for r in reqs]),
-        row(f"Worst case, highest{_unit(units)}", [_n(r.worst_case_max, 6) for r in reqs]),
+        row(f"Worst case, lowest{_unit(units)}", [_r(r.worst_case_min) for r in reqs]),
+        row(f"Worst case, highest{_unit(units)}", [_r(r.worst_case_max) for r in reqs]),
         row("Worst case within limits", [_flag("yes") if r.worst_case_ok else _flag("NO", "bad") for r in reqs]),
         row(f"RSS σ{_unit(units)}", [_n(r.sigma) for r in reqs]),
         row("Cpk of the response", [_n(r.cpk, 3) for r in reqs]),
@@ -867,7 +880,7 @@ def _section_allocation(report: Report) -> str:
                 [
                     _e(rr.name),
                     _model(m),
-                    f"{_n(rr.worst_case_min, 6)} to {_n(rr.worst_case_max, 6)}",
+                    f"{_r(rr.worst_case_min)} to {_r(rr.worst_case_max)}",
                     _n(rr.sigma),
                     _ppm(rr.fallout_ppm),
                     _i(rr.target_ppm),
@@ -925,6 +938,12 @@ def _section_contributions(report: Report, svg: str) -> str:
     return _section(report, "contributions", text + f'<figure class="plot">{svg}<figcaption>{legend}</figcaption></figure>')
 
 
+def _verdict(check) -> str:
+    if check.status == "fail":
+        return _flag("fail", "bad")
+    return _flag("pass") if check.decided else _flag("undecided")
+
+
 def _section_verification(report: Report, svg: str) -> str:
     v = report.verification
     case = report.case
@@ -936,7 +955,11 @@ def _section_verification(report: Report, svg: str) -> str:
     )
     intro = (
         f"<p>{v.samples:,} whole assemblies drawn at random for {basis}, every part from its stated distribution"
-        + (", process means placed at the worst end of their mean shift" if v.shift_means else "")
+        + (
+            ", process means placed at the worst end of their mean shift"
+            if v.shift_means and any(c.mean_shift > 0 for c in case.contributors)
+            else ""
+        )
         + f"; seed {v.seed}. Computed by <code>allocator.simulate.verify</code>; the interval is the exact "
         f"(Clopper–Pearson) {v.confidence:.0%} interval. Result: {_e(v.message)}.</p>"
     )
@@ -948,9 +971,9 @@ def _section_verification(report: Report, svg: str) -> str:
             _i(c.target_ppm),
             _ppm(c.predicted_ppm),
             _ppm(c.convolution_ppm),
-            _n(c.mean, 6),
+            _r(c.mean),
             _n(c.std),
-            _flag(c.status, "" if c.status == "pass" else "bad") + ("" if c.decided else " " + _flag("undecided")),
+            _verdict(c),
         ]
         for c in v.requirements
     ]
@@ -962,8 +985,9 @@ def _section_verification(report: Report, svg: str) -> str:
         caption="Simulated fallout against the target and the predictions",
     )
     note = (
-        '<p class="note">Verdict: <span class="tag">fail</span> when the whole interval lies above the target; '
-        '<span class="tag">undecided</span> when the target lies inside the interval (more samples would decide).</p>'
+        '<p class="note">Verdict: <span class="tag">pass</span> when the whole interval lies at or below the target; '
+        '<span class="tag bad">fail</span> when it lies above; <span class="tag">undecided</span> when the target lies '
+        "inside the interval (more samples would decide; nothing is shown to fail).</p>"
     )
     figure = f'<figure class="plot">{svg}<figcaption>Histogram of the simulated response with the limits (dashed) and the RSS normal curve (<code>allocator.simulate.render_verification_plot</code>).</figcaption></figure>'
     return _section(report, "verification", intro + table + note + figure)

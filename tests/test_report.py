@@ -193,7 +193,8 @@ def test_numbers_equal_the_library(reports):
         for value in (r.sigma, r.fallout_ppm, r.mean_shift_ppm, r.mean_shift):
             assert fmt_number(value) in analysis_html
         assert fmt_number(r.cpk, 3) in analysis_html
-        assert fmt_number(r.worst_case_min, 6) in analysis_html
+        assert fmt_number(r.worst_case_min, 6, strip=True) in analysis_html
+        assert fmt_number(r.worst_case_max, 6, strip=True) in analysis_html
         for c in r.contributions:
             assert fmt_number(100 * c.variance_share, 3) in analysis_html
 
