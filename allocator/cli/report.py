@@ -22,7 +22,7 @@ from .common import CASE_ARGUMENT, handle_errors, load_case_or_exit, model_optio
 @model_option
 @click.option(
     "--samples",
-    type=click.IntRange(min=1, max=100_000_000),
+    type=click.IntRange(min=1000, max=1_000_000_000),
     default=200_000,
     show_default=True,
     help="Monte Carlo assemblies for the verification section.",
