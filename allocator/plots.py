@@ -1,0 +1,362 @@
+"""Shared plotting helpers: a plain, greyscale-readable look for every figure we draw.
+
+Series are told apart by dash pattern and marker, never by colour alone, so a figure
+printed in black and white (or read by someone who does not see colour) loses nothing.
+Figures are bare :class:`matplotlib.figure.Figure` objects rendered by the Agg (PNG) or
+SVG canvas: no pyplot, no display, no global backend switch. matplotlib is imported only
+when a figure is drawn.
+
+- :func:`series_style` gives the style of a named series (the three stack models have
+  fixed styles; anything else takes the next free one);
+- :func:`new_figure`, :func:`finish_axes` give every figure the same frame;
+- :func:`render` turns a figure into PNG or SVG bytes (SVG text stays text);
+- :func:`save` writes them by the file's extension through a temporary file and an
+  atomic rename, refusing to overwrite protected paths (the input case);
+- :func:`frontier_figure` and :func:`economics_figure` draw the results of
+  :mod:`allocator.frontier` and :mod:`allocator.economics`.
+"""
+
+from __future__ import annotations
+
+import io
+import math
+import os
+import tempfile
+from pathlib import Path
+
+from .errors import UsageError
+
+__all__ = [
+    "FORMATS",
+    "MODEL_LABELS",
+    "series_style",
+    "new_figure",
+    "finish_axes",
+    "render",
+    "format_for",
+    "save",
+    "write_atomic",
+    "frontier_figure",
+    "economics_figure",
+    "render_frontier_plot",
+    "render_economics_plot",
+    "plot_frontier",
+    "plot_economics",
+]
+
+FORMATS = {".png": "png", ".svg": "svg"}
+
+MODEL_LABELS = {"worst-case": "worst case", "rss": "RSS", "mean-shift": "mean shift"}
+
+# Greys from black to mid grey; every one stays visible on white when printed.
+_INK = ("0.0", "0.35", "0.55", "0.2", "0.45")
+_DASHES = ("-", "--", "-.", ":", (0, (5, 1, 1, 1, 1, 1)))
+_MARKERS = ("o", "s", "^", "D", "v")
+_FIXED = {"worst-case": 0, "rss": 1, "mean-shift": 2}
+
+SHADE = {"facecolor": "0.93", "edgecolor": "0.6", "hatch": "///", "linewidth": 0.0}
+SHADE_PARTIAL = {"facecolor": "white", "edgecolor": "0.75", "hatch": "..", "linewidth": 0.0}
+
+
+def series_style(key, *, used=None) -> dict:
+    """Line style of a series: ``color``, ``linestyle``, ``marker`` (greyscale-safe).
+
+    Parameters
+    ----------
+    key : str or int
+        A stack model name (fixed style), or an index into the style cycle.
+    used : set of int, optional
+        Styles already taken in this figure; an unnamed series takes the next free one.
+
+    Returns
+    -------
+    dict
+        Keyword arguments for :meth:`matplotlib.axes.Axes.plot`.
+    """
+    if isinstance(key, str) and key in _FIXED:
+        i = _FIXED[key]
+    elif isinstance(key, int):
+        i = key % len(_DASHES)
+    else:
+        taken = used or set()
+        i = next((j for j in range(len(_DASHES)) if j not in taken), 0)
+    return {
+        "color": _INK[i],
+        "linestyle": _DASHES[i],
+        "marker": _MARKERS[i],
+        "markersize": 4.5,
+        "markerfacecolor": "white" if i % 2 else _INK[i],
+        "markeredgecolor": _INK[i],
+        "linewidth": 1.4,
+    }
+
+
+def new_figure(width: float = 7.0, height: float = 4.2):
+    """A bare constrained-layout Figure (no pyplot state)."""
+    from matplotlib.figure import Figure
+
+    return Figure(figsize=(width, height), layout="constrained")
+
+
+def finish_axes(ax, *, legend: bool = True) -> None:
+    """Light grid, no top/right frame, a framed legend that stays out of the way."""
+    ax.grid(True, color="0.88", linewidth=0.6)
+    ax.set_axisbelow(True)
+    for side in ("top", "right"):
+        ax.spines[side].set_visible(False)
+    if legend and ax.get_legend_handles_labels()[0]:
+        ax.legend(fontsize="small", frameon=True, framealpha=0.95, edgecolor="0.7")
+
+
+def format_for(path) -> str:
+    """``'png'`` or ``'svg'`` from a file name; UsageError for anything else."""
+    suffix = Path(path).suffix.lower()
+    if suffix not in FORMATS:
+        raise UsageError(f"{path}: plot file must end in .png or .svg (got {suffix or 'no extension'!r})")
+    return FORMATS[suffix]
+
+
+def render(figure, fmt: str = "png") -> bytes:
+    """PNG or SVG bytes of ``figure``.
+
+    SVG keeps text as ``<text>`` elements (searchable, selectable); no dates or
+    version stamps are written, so the same figure gives the same bytes.
+    """
+    import matplotlib
+
+    if fmt not in ("png", "svg"):
+        raise UsageError(f"unknown plot format {fmt!r} (png or svg)")
+    buffer = io.BytesIO()
+    metadata = {"Software": None} if fmt == "png" else {"Date": None, "Creator": None}
+    with matplotlib.rc_context({"svg.fonttype": "none", "svg.hashsalt": "allocator"}):
+        figure.savefig(buffer, format=fmt, dpi=150, metadata=metadata)
+    return buffer.getvalue()
+
+
+def write_atomic(path, data: bytes, *, protect=()) -> Path:
+    """Write ``data`` to ``path`` via a temporary file in the same folder and ``os.replace``.
+
+    Refuses (UsageError) to overwrite any path in ``protect`` and to write into a folder
+    that does not exist; a failed write leaves no partial file behind.
+    """
+    target = Path(path)
+    for p in protect:
+        if p is not None and target.resolve() == Path(p).resolve():
+            raise UsageError(f"{target}: refusing to overwrite the input file")
+    if not target.parent.exists():
+        raise UsageError(f"{target}: folder {target.parent} does not exist")
+    fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=target.parent)
+    try:
+        with os.fdopen(fd, "wb") as fh:
+            fh.write(data)
+        umask = os.umask(0)  # mkstemp makes 0600; give what a plain open() would
+        os.umask(umask)
+        os.chmod(tmp, 0o666 & ~umask)
+        os.replace(tmp, target)
+    except BaseException:
+        try:
+            os.unlink(tmp)
+        except FileNotFoundError:
+            pass
+        raise
+    return target
+
+
+def save(figure, path, *, protect=()) -> Path:
+    """Render ``figure`` in the format the extension of ``path`` names and write it atomically."""
+    fmt = format_for(path)
+    return write_atomic(path, render(figure, fmt), protect=protect)
+
+
+# --------------------------------------------------------------------------- labels
+
+
+def _money(currency: str) -> str:
+    return f" [{currency}]" if currency else ""
+
+
+def _value_label(vary: str, requirement: str, units: str) -> str:
+    if vary == "fallout_ppm":
+        return f"fallout target of {requirement} [ppm]"
+    return f"{vary} limit of {requirement} [{units}]"
+
+
+def _runs(mask):
+    """Index ranges ``[(i, j), ...]`` of consecutive True values."""
+    out, start = [], None
+    for i, flag in enumerate(mask):
+        if flag and start is None:
+            start = i
+        elif not flag and start is not None:
+            out.append((start, i - 1))
+            start = None
+    if start is not None:
+        out.append((start, len(mask) - 1))
+    return out
+
+
+def _edges(values, i: int, j: int, log: bool):
+    """The x-span covering points i..j, reaching halfway to their neighbours."""
+    def mid(a, b):
+        return math.sqrt(a * b) if log else 0.5 * (a + b)
+
+    left = values[i] if i == 0 else mid(values[i - 1], values[i])
+    right = values[j] if j == len(values) - 1 else mid(values[j], values[j + 1])
+    if left == right:  # a single isolated point: give it a visible width
+        pad = (values[-1] - values[0]) / (4 * max(len(values) - 1, 1)) if not log else 0.0
+        left, right = (left / 1.15, right * 1.15) if log else (left - pad, right + pad)
+    return left, right
+
+
+# --------------------------------------------------------------------------- frontier
+
+
+def frontier_figure(frontier):
+    """Least cost against the swept limit (or fallout target), one line per model.
+
+    Parameters
+    ----------
+    frontier : allocator.frontier.Frontier
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+        Lines per model (distinct dash and marker); the current design as a labelled
+        star; values where no model (hatched) or only some models (dotted) can be met
+        shaded. A fallout sweep has a log x axis; a lower-limit sweep has its x axis
+        reversed so that the requirement loosens to the right in every frontier plot.
+    """
+    import numpy as np
+
+    fig = new_figure()
+    ax = fig.subplots()
+    values = np.asarray(frontier.values, dtype=float)
+    log = frontier.vary == "fallout_ppm"
+    infeasible = {m: np.array([s != "optimal" for s in frontier.statuses[m]]) for m in frontier.models}
+    for model in frontier.models:
+        cost = np.array([np.nan if c is None else c for c in frontier.costs[model]], dtype=float)
+        label = MODEL_LABELS.get(model, model)
+        if model in frontier.flat_models:
+            label += " (does not use the target: flat)"
+        ax.plot(values, cost, label=label, markevery=_mark_every(len(values)), **series_style(model))
+
+    if len(values):
+        every = np.all(np.vstack(list(infeasible.values())), axis=0)
+        some = np.any(np.vstack(list(infeasible.values())), axis=0) & ~every
+        for mask, shade, label in (
+            (every, SHADE, "no model can meet it"),
+            (some, SHADE_PARTIAL, "only some models can meet it"),
+        ):
+            for k, (i, j) in enumerate(_runs(mask)):
+                left, right = _edges(values, i, j, log)
+                ax.axvspan(left, right, label=label if k == 0 else None, zorder=0, **shade)
+
+    current = frontier.current
+    if current and current.get("value") is not None and current.get("total_cost") is not None:
+        x, y = current["value"], current["total_cost"]
+        ax.plot([x], [y], linestyle="none", marker="*", markersize=12, color="black",
+                markerfacecolor="white", markeredgewidth=1.2, label="current design", zorder=5)
+        ax.annotate(f"current design\n{y:.4g}{(' ' + frontier.currency) if frontier.currency else ''}",
+                    (x, y), xytext=(8, 8), textcoords="offset points", fontsize="small")
+
+    if log:
+        ax.set_xscale("log")
+    if frontier.vary == "lower":
+        ax.invert_xaxis()
+    x_label = _value_label(frontier.vary, frontier.requirement, frontier.units)
+    if frontier.vary == "lower":
+        x_label += "  (looser to the right)"
+    ax.set_xlabel(x_label)
+    ax.set_ylabel(f"least cost per assembly{_money(frontier.currency)}")
+    what = "fallout target" if log else f"{frontier.vary} limit"
+    ax.set_title(f"{frontier.title}\ncost against the {what} of {frontier.requirement}", fontsize="medium")
+    finish_axes(ax)
+    return fig
+
+
+def _mark_every(n: int) -> int:
+    # markers on every point up to ~25 points, then thinned so the dashes stay readable
+    return max(1, math.ceil(n / 25))
+
+
+# --------------------------------------------------------------------------- economics
+
+
+def economics_figure(economics):
+    """Manufacturing, scrap and total cost per assembly against the fallout target.
+
+    Parameters
+    ----------
+    economics : allocator.economics.FalloutEconomics
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+        Log x axis [ppm]. Per statistical model (told apart by marker): manufacturing
+        cost dashed, total solid; the scrap cost dotted; each optimum a star named in the
+        legend; the requirement's current target a thin vertical line.
+    """
+    import numpy as np
+
+    fig = new_figure()
+    ax = fig.subplots()
+    money = economics.currency
+    for k, result in enumerate(economics.results):
+        if result.curve_ppm is None or not len(result.curve_ppm):
+            continue
+        ppm = np.asarray(result.curve_ppm, dtype=float)
+        manufacturing = np.asarray(result.curve_manufacturing, dtype=float)
+        scrap = economics.scrap_cost * ppm * 1e-6
+        style = series_style(result.model)
+        marker, ink = style["marker"], style["color"]
+        name = MODEL_LABELS.get(result.model, result.model)
+        every = _mark_every(len(ppm))
+        common = dict(color=ink, marker=marker, markersize=4, markevery=every,
+                      markerfacecolor="white", markeredgecolor=ink)
+        ax.plot(ppm, manufacturing + scrap, linestyle="-", linewidth=1.6, label=f"{name}: total", **common)
+        ax.plot(ppm, manufacturing, linestyle="--", linewidth=1.2, label=f"{name}: manufacturing", **common)
+        if k == 0:  # scrap cost depends on the target only: the same line for every model
+            ax.plot(ppm, scrap, linestyle=":", linewidth=1.4, color="0.3", label="scrap")
+        if result.optimal_ppm is not None:
+            ax.plot([result.optimal_ppm], [result.total_cost], linestyle="none", marker="*",
+                    markersize=13, color="black", markerfacecolor="white" if k % 2 else ink, zorder=5,
+                    label=f"{name} optimum: {result.optimal_ppm:.4g} ppm, {result.total_cost:.4g}"
+                    + (f" {money}" if money else ""))
+    if economics.current_ppm is not None:
+        ax.axvline(economics.current_ppm, color="0.5", linewidth=0.8, linestyle=(0, (2, 2)),
+                   label=f"current target {economics.current_ppm:g} ppm")
+    ax.set_xscale("log")
+    ax.set_xlabel(f"fallout target of {economics.requirement} [ppm]")
+    ax.set_ylabel(f"cost per assembly{_money(money)}")
+    ax.set_title(
+        f"{economics.title}\nmanufacturing + scrap ({economics.scrap_cost:g}{(' ' + money) if money else ''}"
+        " per assembly outside the limits)",
+        fontsize="medium",
+    )
+    finish_axes(ax)
+    return fig
+
+
+# --------------------------------------------------------------------------- shortcuts
+
+
+def render_frontier_plot(frontier, fmt: str = "png") -> bytes:
+    """:func:`frontier_figure` as PNG or SVG bytes."""
+    return render(frontier_figure(frontier), fmt)
+
+
+def render_economics_plot(economics, fmt: str = "png") -> bytes:
+    """:func:`economics_figure` as PNG or SVG bytes."""
+    return render(economics_figure(economics), fmt)
+
+
+def plot_frontier(frontier, path, *, protect=()) -> Path:
+    """Write the frontier plot to ``path`` (.png or .svg), atomically."""
+    fmt = format_for(path)
+    return write_atomic(path, render_frontier_plot(frontier, fmt), protect=protect)
+
+
+def plot_economics(economics, path, *, protect=()) -> Path:
+    """Write the economics plot to ``path`` (.png or .svg), atomically."""
+    fmt = format_for(path)
+    return write_atomic(path, render_economics_plot(economics, fmt), protect=protect)
