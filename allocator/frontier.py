@@ -1,0 +1,839 @@
+"""Trade-off frontier: the least cost of a design against one requirement's limit or target.
+
+For each value of the swept quantity (the ``lower`` or ``upper`` limit, or the
+``fallout_ppm`` target, of one requirement) and each stack model, the frontier holds the
+least total cost per assembly of a complete allocation that meets every requirement with
+that value in force. Reading it tells what a looser (or tighter) requirement is worth.
+
+Work is reused across points; nothing is rebuilt or recompiled per point:
+
+- every model gets one solver (:func:`allocator.solve.solver_for`) whose ``solve`` takes
+  limit overrides: the compiled conic problem re-solves with new cvxpy Parameter values
+  (DPP), the discrete solver keeps its candidates;
+- where the exact 1-D Lagrange dual applies (one requirement; worst case, rss, or mean
+  shift without free mean shifts; formula cost curves), the whole sweep is solved at once:
+  the closed-form tolerances ``t(λ)`` are evaluated on a (points × contributors) array and
+  all roots in ``log λ`` are found by one vectorised bisection (:class:`BatchedDual`). Every
+  point is then re-checked against the requirement in plain numpy, exactly as a single
+  allocation is; a point that fails the check is solved again by the model's solver;
+- under worst case the fallout target plays no part, so a fallout sweep solves worst case
+  once and says that its cost is flat.
+
+A value at which a model cannot meet the requirement is part of the frontier: its status
+is ``'infeasible'`` and its cost None.
+"""
+
+from __future__ import annotations
+
+import math
+import time
+from dataclasses import dataclass
+from typing import Callable, NamedTuple
+
+import numpy as np
+
+from .errors import UsageError
+from .model import MODELS, Case
+
+__all__ = ["Frontier", "frontier", "LimitSweep", "BatchedDual", "VARY", "MAX_POINTS", "automatic_range"]
+
+VARY = ("lower", "upper", "fallout_ppm")
+MAX_POINTS = 2000
+MIN_POINTS = 2
+AUTO_FALLOUT_RANGE = (0.1, 10000.0)  # ppm: the span shown when nothing else is said
+VERIFY_RTOL = 1e-9  # a batched point must meet the requirement to this (relative)
+STATUSES = ("optimal", "partial", "infeasible", "failed")
+
+
+def _did_you_mean(name, options) -> str:
+    import difflib
+
+    close = difflib.get_close_matches(str(name), list(options), n=1, cutoff=0.6)
+    return f" (did you mean '{close[0]}'?)" if close else ""
+
+
+def _g(x) -> str:
+    return f"{x:.4g}"
+
+
+# --------------------------------------------------------------------------- result
+
+
+@dataclass
+class Frontier:
+    """Least cost per model at each value of one requirement's limit or fallout target.
+
+    Attributes
+    ----------
+    status : str
+        'optimal' (every point solved and re-checked), 'partial' (some values cannot be
+        met by some model; they are flagged), 'infeasible' (no value can be met by any
+        model) or 'failed' (a solver gave no verified optimum at some point).
+    success : bool
+        ``status`` is 'optimal' or 'partial'.
+    message : str
+    title, units, currency : str
+        From the case.
+    requirement : str
+    vary : str
+        'lower', 'upper' or 'fallout_ppm'.
+    values : numpy.ndarray
+        The swept values, increasing [length or response] or [ppm].
+    models : tuple of str
+    costs : dict
+        Model -> list of least total costs per assembly [currency] (None where the
+        value cannot be met).
+    statuses, messages : dict
+        Model -> per-value allocation status ('optimal' | 'infeasible' | 'failed') and
+        message ('' when optimal).
+    solvers : dict
+        Model -> how the sweep was solved.
+    flat_models : tuple of str
+        Models whose cost does not depend on the swept quantity (worst case in a fallout
+        sweep).
+    current : dict
+        ``value`` (the case's own limit or target), ``total_cost`` (cost of the current
+        tolerances, the current design) and ``optimal`` (model -> least cost at that
+        value).
+    range_source : str
+        Where the values came from: 'values', 'argument', 'case' or 'automatic'.
+    notes : tuple of str
+        Things a reader should know (automatic range, flat models, fallbacks).
+    elapsed : float
+        Wall time of the sweep [s].
+    solves : int
+        Points solved one by one (the batched dual counts as one per model).
+    """
+
+    title: str
+    units: str
+    currency: str
+    requirement: str
+    vary: str
+    values: np.ndarray
+    models: tuple
+    costs: dict
+    statuses: dict
+    messages: dict
+    solvers: dict
+    flat_models: tuple
+    current: dict
+    range_source: str
+    notes: tuple
+    elapsed: float
+    solves: int
+    status: str = "optimal"
+    message: str = ""
+
+    @property
+    def success(self) -> bool:
+        return self.status in ("optimal", "partial")
+
+    @property
+    def points(self) -> list[dict]:
+        """One dict per (value, model): ``value``, ``model``, ``total_cost``, ``status``."""
+        out = []
+        for i, value in enumerate(self.values):
+            for model in self.models:
+                out.append(
+                    {
+                        "value": float(value),
+                        "model": model,
+                        "total_cost": self.costs[model][i],
+                        "status": self.statuses[model][i],
+                    }
+                )
+        return out
+
+    def savings(self, model: str) -> list:
+        """Worst-case cost minus ``model``'s cost at each value (None where either is missing)."""
+        if "worst-case" not in self.models or model == "worst-case":
+            return [None] * len(self.values)
+        base = self.costs["worst-case"]
+        return [
+            None if b is None or c is None else b - c for b, c in zip(base, self.costs[model])
+        ]
+
+    def rows(self) -> list[dict]:
+        """Tidy rows: value, model, total_cost, status, saving over worst case (and in %)."""
+        saving = {m: self.savings(m) for m in self.models}
+        out = []
+        for i, value in enumerate(self.values):
+            base = self.costs["worst-case"][i] if "worst-case" in self.models else None
+            for model in self.models:
+                s = saving[model][i]
+                out.append(
+                    {
+                        "value": float(value),
+                        "model": model,
+                        "total_cost": self.costs[model][i],
+                        "status": self.statuses[model][i],
+                        "saving_vs_worst_case": s,
+                        "saving_percent": None if s is None or not base else 100.0 * s / base,
+                    }
+                )
+        return out
+
+    def to_frame(self):
+        """Tidy DataFrame: one row per (value, model)."""
+        import pandas as pd
+
+        frame = pd.DataFrame(self.rows())
+        for column in ("total_cost", "saving_vs_worst_case", "saving_percent"):
+            frame[column] = frame[column].astype(float)
+        return frame
+
+    def to_wide(self):
+        """One row per value, a cost column per model and a saving column per statistical model."""
+        import pandas as pd
+
+        data = {m: [np.nan if c is None else c for c in self.costs[m]] for m in self.models}
+        if "worst-case" in self.models:
+            for m in self.models:
+                if m != "worst-case":
+                    data[f"{m} saving"] = [np.nan if s is None else s for s in self.savings(m)]
+        return pd.DataFrame(data, index=pd.Index(np.asarray(self.values, dtype=float), name=self.vary))
+
+    def to_dict(self) -> dict:
+        """JSON-ready: the contract's ``points`` plus the context to read them."""
+        return {
+            "requirement": self.requirement,
+            "vary": self.vary,
+            "units": self.units,
+            "currency": self.currency,
+            "status": self.status,
+            "success": self.success,
+            "message": self.message,
+            "models": list(self.models),
+            "flat_models": list(self.flat_models),
+            "range_source": self.range_source,
+            "notes": list(self.notes),
+            "solvers": dict(self.solvers),
+            "current": self.current,
+            "points": [
+                dict(p, saving_vs_worst_case=r["saving_vs_worst_case"])
+                for p, r in zip(self.points, self.rows())
+            ],
+        }
+
+    def __repr__(self) -> str:
+        span = f"[{_g(self.values[0])}, {_g(self.values[-1])}]" if len(self.values) else "[]"
+        return (
+            f"Frontier(requirement={self.requirement!r}, vary={self.vary!r}, values={span} "
+            f"({len(self.values)} points), models={list(self.models)}, status={self.status!r}, "
+            f"message={self.message!r})"
+        )
+
+
+# --------------------------------------------------------------------------- batched dual
+
+
+class BatchedDual:
+    """The exact 1-D Lagrange dual solved for many right-hand sides at once.
+
+    For one separable requirement, ``min Σ n_i C_i(t_i)`` subject to
+    ``Σ n_i w_i t_i^m ≤ S`` (worst case: ``w = |a|``, ``m = 1``; rss: ``w = a² f²``,
+    ``m = 2``) has, for a multiplier λ, the per-contributor minimisers (clipped to the
+    contributor's limits)
+
+    - ``a + b/t^k``:  ``t = (k b / (m λ w))^(1/(k+m))``;
+    - ``a + b e^(−ct)``:  ``t = ln(b c / (λ w)) / c`` (m = 1) or
+      ``t = W₀(b c² / (2 λ w)) / c`` (m = 2, Lambert W),
+
+    and the optimum makes the constraint active (Chase, Greenwood, Loosli & Hauglund
+    1990). ``spread(t(λ))`` is non-increasing in λ, so one bisection in ``log λ`` over a
+    (points × contributors) array finds every point's root together.
+
+    Parameters
+    ----------
+    problem : allocator.solve.problem.AllocationProblem
+        One requirement, a separable model, formula cost curves (see :meth:`usable`).
+
+    References
+    ----------
+    .. [1] Chase, K. W., Greenwood, W. H., Loosli, B. G. and Hauglund, L. F. (1990).
+       Least cost tolerance allocation for mechanical assemblies with automated process
+       selection. Manufacturing Review 3(1), 49-59.
+    """
+
+    def __init__(self, problem):
+        from .solve.problem import CurveSet
+
+        p = problem
+        self.problem = p
+        free = p.free
+        self.index = np.flatnonzero(free)
+        req = p.requirements[0]
+        self.requirement = req
+        self.squared = p.model != "worst-case"
+        self.m = 2.0 if self.squared else 1.0
+        a = np.asarray(req.sensitivity, dtype=float)
+        weight = (a * p.sigma_factors) ** 2 if self.squared else np.abs(a)
+        self.w = weight[free]
+        self.n = p.counts[free]
+        self.coef = self.n * self.w
+        self.lo = p.lower_bounds[free]
+        self.hi = p.upper_bounds[free]
+        self.curves = CurveSet([p.curves.curves[i] for i in self.index])
+        held = ~free
+        t_held = p.held[held]
+        self.held_part = float(np.sum(p.counts[held] * weight[held] * t_held**self.m))
+        self.t_held_full = np.where(free, 0.0, np.nan_to_num(p.held))
+        # the multipliers beyond which every contributor sits at its loosest / tightest
+        pulled = self.w > 0
+        if pulled.any():
+            lam_hi = self._multiplier_at(self.hi)[pulled]
+            lam_lo = self._multiplier_at(self.lo)[pulled]
+            self.log_lam_min = math.log(float(np.min(lam_hi))) - 1.0
+            self.log_lam_max = math.log(float(np.max(lam_lo))) + 1.0
+        else:
+            self.log_lam_min = self.log_lam_max = 0.0
+
+    @staticmethod
+    def usable(solver) -> bool:
+        """True when ``solver`` is the exact 1-D dual on formula cost curves only."""
+        try:
+            from .solve.exact import ExactAllocation
+        except ImportError:  # pragma: no cover - the solvers ship together
+            return False
+        problem = getattr(solver, "problem", None)
+        return (
+            isinstance(solver, ExactAllocation)
+            and problem is not None
+            and len(problem.requirements) == 1
+            and not problem.curves.tables
+        )
+
+    def _multiplier_at(self, t) -> np.ndarray:
+        """λ at which each contributor's minimiser is ``t``: ``−C'(t) / (m w t^(m−1))``."""
+        with np.errstate(divide="ignore", invalid="ignore"):
+            return -self.curves.derivative(t) / (self.m * self.w * t ** (self.m - 1.0))
+
+    def tolerances(self, lam) -> np.ndarray:
+        """Minimisers for multipliers ``lam`` (shape (P,)) -> array (P, free contributors)."""
+        from scipy import special
+
+        cs = self.curves
+        v = np.asarray(lam, dtype=float)[:, None] * self.w[None, :]
+        t = np.full(v.shape, np.inf)
+        p, e = cs.power, cs.expo
+        with np.errstate(divide="ignore", over="ignore", invalid="ignore"):
+            if self.squared:
+                t[:, p] = (cs.pk * cs.pb / (2.0 * v[:, p])) ** (1.0 / (cs.pk + 2.0))
+                t[:, e] = special.lambertw(cs.eb * cs.ec**2 / (2.0 * v[:, e])).real / cs.ec
+            else:
+                t[:, p] = (cs.pk * cs.pb / v[:, p]) ** (1.0 / (cs.pk + 1.0))
+                t[:, e] = np.log(cs.eb * cs.ec / v[:, e]) / cs.ec
+        t[np.isnan(t) | (v <= 0)] = np.inf  # nothing pulls the tolerance tighter
+        return np.clip(t, self.lo, self.hi)
+
+    def spread(self, t) -> np.ndarray:
+        """``Σ n w t^m`` of each row [response or response²]."""
+        return (t * t if self.squared else t) @ self.coef
+
+    def rhs(self, limits) -> float:
+        """Right-hand side ``S`` of the free part for one point's limits."""
+        from . import stack
+        from .solve.problem import mean_shift_allowance
+
+        req, lim = self.requirement, limits[0]
+        if lim.lower is None and lim.upper is None:
+            return math.inf
+        if not self.squared:
+            room = min(
+                math.inf if lim.lower is None else req.nominal - lim.lower,
+                math.inf if lim.upper is None else lim.upper - req.nominal,
+            )
+            return room - self.held_part
+        if self.problem.model == "mean-shift":  # no free mean shift here: a constant band
+            p = self.problem
+            delta = stack.mean_shift_delta(req.sensitivity, p.counts, p.mean_shifts, self.t_held_full)
+            sigma = mean_shift_allowance(req.nominal, delta, lim)[0]
+        else:
+            sigma = stack.sigma_limit(req.nominal, lim.fallout, lim.lower, lim.upper)
+        return sigma * sigma - self.held_part
+
+    def solve(self, rhs) -> np.ndarray:
+        """Free tolerances (P, n) meeting ``spread ≤ rhs`` at least cost, for each rhs.
+
+        Rows whose loosest tolerances already fit get the loosest; rows that not even the
+        tightest fit get the tightest (the caller's re-check reports them).
+        """
+        rhs = np.asarray(rhs, dtype=float)
+        size = rhs.size
+        out = np.tile(self.hi, (size, 1))
+        if self.index.size == 0 or size == 0:
+            return out
+        loose = ~(self.spread(self.hi[None, :])[0] > rhs)
+        tight = self.spread(self.lo[None, :])[0] > rhs
+        out[tight] = self.lo
+        rows = np.flatnonzero(~loose & ~tight)
+        if rows.size == 0:
+            return out
+        target = rhs[rows]
+        x_lo = np.full(rows.size, self.log_lam_min)  # spread > rhs here (all loosest)
+        x_hi = np.full(rows.size, self.log_lam_max)  # spread ≤ rhs here (all tightest)
+        for _ in range(200):
+            if np.all(x_hi - x_lo <= 1e-14 * (1.0 + np.abs(x_hi))):
+                break
+            mid = 0.5 * (x_lo + x_hi)
+            fits = self.spread(self.tolerances(np.exp(mid))) <= target
+            x_hi = np.where(fits, mid, x_hi)
+            x_lo = np.where(fits, x_lo, mid)
+        out[rows] = self.tolerances(np.exp(x_hi))  # the feasible side of each bracket
+        return out
+
+
+# --------------------------------------------------------------------------- one model
+
+
+class _Point(NamedTuple):
+    total_cost: float | None
+    status: str
+    message: str
+
+
+class LimitSweep:
+    """One stack model's least cost for many values of one requirement's limit or target.
+
+    The model's solver is built once (:func:`allocator.solve.solver_for`) and re-solved with
+    limit overrides; single-requirement separable problems on formula cost curves are
+    solved for all values at once by :class:`BatchedDual`.
+
+    Parameters
+    ----------
+    case : Case
+    model : str
+    requirement : str
+    vary : {'lower', 'upper', 'fallout_ppm'}
+    solver : object, optional
+        A solver with ``.solve(overrides)`` to use instead of ``solver_for(case, model)``.
+    """
+
+    def __init__(self, case: Case, model: str, requirement: str, vary: str, *, solver=None):
+        from .solve import solver_for
+
+        self.case = case
+        self.model = model
+        self.requirement = requirement
+        self.vary = vary
+        self.solver = solver if solver is not None else solver_for(case, model)
+        # the arrays of the problem, for the cheap feasibility test (tightest tolerances)
+        self.reference = getattr(self.solver, "problem", None) or getattr(self.solver, "reference", None)
+        self.batch = BatchedDual(self.solver.problem) if BatchedDual.usable(self.solver) else None
+        self.flat = model == "worst-case" and vary == "fallout_ppm"
+        self.solves = 0
+        self.fallbacks = 0
+
+    @property
+    def method(self) -> str:
+        if self.flat:
+            return "solved once (worst case does not use the fallout target)"
+        if self.batch is not None:
+            return "exact 1-D Lagrange dual, batched over the sweep"
+        name = type(self.solver).__name__
+        return {
+            "CompiledAllocation": "compiled conic problem re-solved with new parameters (DPP)",
+            "ExactAllocation": "exact 1-D Lagrange dual per point",
+            "DiscreteAllocation": "discrete (MILP) solver re-solved per point",
+        }.get(name, f"{name} per point")
+
+    def overrides(self, value) -> dict:
+        return {self.requirement: {self.vary: float(value)}}
+
+    def solve(self, value):
+        """The full :class:`~allocator.solve.result.Allocation` at one value."""
+        self.solves += 1
+        return self.solver.solve(self.overrides(value))
+
+    def feasible(self, value) -> bool:
+        """True when the tightest tolerances meet every requirement with this value."""
+        if self.reference is not None and hasattr(self.reference, "diagnose"):
+            ref = self.reference
+            return ref.diagnose(ref.limits(self.overrides(value))) is None
+        return self.solve(value).status != "infeasible"
+
+    def sweep(self, values, tick: Callable[[int], None] | None = None) -> list[_Point]:
+        """Least cost at each value; ``tick(k)`` reports k more points done."""
+        values = np.asarray(values, dtype=float)
+        tick = tick or (lambda k: None)
+        if self.flat and values.size:
+            one = self._point(self.solve(values[0]))
+            tick(values.size)
+            return [one] * values.size
+        if self.batch is not None:
+            return self._batched(values, tick)
+        out = []
+        for value in values:
+            out.append(self._point(self.solve(value)))
+            tick(1)
+        return out
+
+    @staticmethod
+    def _point(alloc) -> _Point:
+        message = "" if alloc.status == "optimal" else alloc.message
+        return _Point(alloc.total_cost, alloc.status, message)
+
+    def _batched(self, values, tick) -> list[_Point]:
+        problem, batch = self.batch.problem, self.batch
+        limits = [problem.limits(self.overrides(v)) for v in values]
+        reasons = [problem.diagnose(lim) for lim in limits]
+        todo = [i for i, r in enumerate(reasons) if r is None]
+        t_free = batch.solve([batch.rhs(limits[i]) for i in todo])
+        self.solves += 1
+        out: list[_Point | None] = [None] * len(values)
+        for i, reason in enumerate(reasons):
+            if reason is not None:
+                out[i] = _Point(None, "infeasible", reason)
+        for row, i in enumerate(todo):
+            t = problem.full(t_free[row])
+            if problem.feasible(t, limits[i], rtol=VERIFY_RTOL):
+                out[i] = _Point(problem.total_cost(t), "optimal", "")
+            else:  # not verified: let the model's own solver decide this point
+                self.fallbacks += 1
+                out[i] = self._point(self.solve(values[i]))
+        tick(len(values))
+        return out
+
+
+# --------------------------------------------------------------------------- settings
+
+
+def _resolve_requirement(case: Case, requirement):
+    names = [r.name for r in case.requirements]
+    if requirement is None:
+        requirement = case.frontier.requirement or names[0]
+    if requirement not in names:
+        raise UsageError(f"unknown requirement '{requirement}'{_did_you_mean(requirement, names)}"
+                         f" (the case has: {', '.join(names)})")
+    return case.requirement(requirement)
+
+
+def _resolve_vary(case: Case, req, vary):
+    notes = []
+    if vary is None:
+        vary = case.frontier.vary
+        if vary in ("lower", "upper") and getattr(req, vary) is None:
+            other = "lower" if vary == "upper" else "upper"
+            notes.append(f"requirement '{req.name}' has no {vary} limit: its {other} limit is swept")
+            vary = other
+    if vary not in VARY:
+        raise UsageError(f"vary must be one of {', '.join(VARY)} (got {vary!r}){_did_you_mean(vary, VARY)}")
+    if vary in ("lower", "upper") and getattr(req, vary) is None:
+        raise UsageError(f"requirement '{req.name}' has no {vary} limit to vary")
+    return vary, notes
+
+
+def _resolve_models(case: Case, models):
+    if models is None or len(models) == 0:
+        models = case.allocation.models
+    if isinstance(models, str):
+        models = (models,)
+    for m in models:
+        if m not in MODELS:
+            raise UsageError(f"unknown model {m!r}{_did_you_mean(m, MODELS)} (choose from {', '.join(MODELS)})")
+    return tuple(m for m in MODELS if m in set(models))
+
+
+def _check_points(points) -> int:
+    if isinstance(points, bool) or not isinstance(points, (int, np.integer)):
+        raise UsageError(f"points must be a whole number from {MIN_POINTS} to {MAX_POINTS} (got {points!r})")
+    if not MIN_POINTS <= points <= MAX_POINTS:
+        raise UsageError(f"points must be from {MIN_POINTS} to {MAX_POINTS} (got {points})")
+    return int(points)
+
+
+def _check_values(values, req, vary) -> np.ndarray:
+    """Validated, sorted, de-duplicated values of the swept quantity."""
+    try:
+        arr = np.asarray(values, dtype=float).ravel()
+    except (TypeError, ValueError):
+        raise UsageError("values must be numbers") from None
+    if arr.size == 0:
+        raise UsageError("values must hold at least one number")
+    if arr.size > MAX_POINTS:
+        raise UsageError(f"at most {MAX_POINTS} values (got {arr.size})")
+    if not np.all(np.isfinite(arr)):
+        raise UsageError("values must be finite numbers")
+    arr = np.unique(arr)
+    _check_span(float(arr[0]), float(arr[-1]), req, vary, what="values")
+    return arr
+
+
+def _check_span(first: float, last: float, req, vary, *, what="range") -> None:
+    if vary == "fallout_ppm":
+        if not (first > 0 and last < 1e6):
+            raise UsageError(f"{what}: fallout_ppm values must be > 0 and < 1000000 "
+                             f"(got {_g(first)} .. {_g(last)})")
+    elif vary == "upper" and req.lower is not None and first <= req.lower:
+        raise UsageError(f"{what}: upper values must stay above the lower limit {_g(req.lower)} "
+                         f"of '{req.name}' (got {_g(first)})")
+    elif vary == "lower" and req.upper is not None and last >= req.upper:
+        raise UsageError(f"{what}: lower values must stay below the upper limit {_g(req.upper)} "
+                         f"of '{req.name}' (got {_g(last)})")
+
+
+def _check_range(span, req, vary) -> tuple[float, float]:
+    try:
+        first, last = (float(x) for x in span)
+    except (TypeError, ValueError):
+        raise UsageError(f"range must be two numbers [from, to] (got {span!r})") from None
+    if not (math.isfinite(first) and math.isfinite(last)):
+        raise UsageError(f"range must be finite (got {_g(first)}, {_g(last)})")
+    if not first < last:
+        raise UsageError(f"range must be increasing: from < to (got {_g(first)}, {_g(last)})")
+    _check_span(first, last, req, vary)
+    return first, last
+
+
+def _nice(x: float, direction: str) -> float:
+    """``x`` rounded to 3 significant digits, up ('up') or down ('down')."""
+    if x == 0 or not math.isfinite(x):
+        return x
+    step = 10.0 ** (math.floor(math.log10(abs(x))) - 2)
+    q = x / step
+    # a hair of slack so that a value already on the grid stays where it is
+    q = math.ceil(q - 1e-9) if direction == "up" else math.floor(q + 1e-9)
+    return float(f"{q * step:.12g}")
+
+
+def automatic_range(case: Case, requirement: str, vary: str, sweeps) -> tuple[tuple[float, float], str]:
+    """A sensible sweep when neither the caller nor ``[frontier]`` gives one.
+
+    fallout_ppm: 0.1 .. 10000 ppm. lower / upper: from the tightest value any of the
+    models can meet (found by bisection on the tightest tolerances) to twice the current
+    distance between nominal and limit (loosening direction).
+
+    Returns
+    -------
+    ((from, to), note)
+    """
+    if vary == "fallout_ppm":
+        lo, hi = AUTO_FALLOUT_RANGE
+        return (lo, hi), f"range chosen automatically: {lo:g} .. {hi:g} ppm"
+    from .chain import linearise
+
+    req = case.requirement(requirement)
+    nominal = linearise(case, req).nominal
+    current = getattr(req, vary)
+    sign = 1.0 if vary == "upper" else -1.0  # direction in which the limit loosens
+    slack = sign * (current - nominal)
+    if not slack > 0:  # the nominal sits on or beyond the limit: use the worst-case spread
+        from . import stack
+
+        lin = linearise(case, req)
+        slack = stack.worst_case_half_width(lin.sensitivity, case.counts, case.current_tolerances) or 1.0
+    far = nominal + sign * 2.0 * slack
+    other = req.lower if vary == "upper" else req.upper
+    near = nominal if other is None else (max(nominal, other) if vary == "upper" else min(nominal, other))
+
+    starts = []
+    for sweep in sweeps:
+        reach = far
+        for _ in range(40):
+            if sweep.feasible(reach):
+                break
+            reach = near + 2.0 * (reach - near)
+        else:
+            continue
+        good, bad = reach, near  # bisection between a value that is met and one that is not
+        for _ in range(60):
+            mid = 0.5 * (good + bad)
+            if mid in (good, bad) or abs(good - bad) <= 1e-9 * abs(slack):
+                break
+            if sweep.feasible(mid):
+                good = mid
+            else:
+                bad = mid
+        starts.append(good)
+    if not starts:
+        a, b = sorted((nominal + sign * 0.1 * slack, far))
+        return (a, b), (
+            f"range chosen automatically: {_g(a)} .. {_g(b)} (no model meets the requirement "
+            f"at any {vary} limit: see the reasons per point)"
+        )
+    start = min(starts) if vary == "upper" else max(starts)
+    start = _nice(start, "up" if vary == "upper" else "down")
+    if sign * (far - start) <= 0:
+        far = start + sign * slack
+    far = _nice(far, "up" if vary == "upper" else "down")
+    a, b = sorted((start, far))
+    return (a, b), (
+        f"range chosen automatically: {_g(a)} .. {_g(b)} (from the tightest {vary} limit a "
+        f"model can meet to twice the current distance from the nominal)"
+    )
+
+
+# --------------------------------------------------------------------------- frontier
+
+
+def frontier(
+    case: Case,
+    requirement: str | None = None,
+    vary: str | None = None,
+    values=None,
+    range=None,  # noqa: A002 - the contract's name for the sweep span
+    points: int | None = None,
+    models=None,
+    progress: bool = False,
+) -> Frontier:
+    """Least cost per model against one requirement's limit or fallout target.
+
+    Parameters
+    ----------
+    case : Case
+    requirement : str, optional
+        Default: ``[frontier].requirement``, else the case's first requirement.
+    vary : {'lower', 'upper', 'fallout_ppm'}, optional
+        Default: ``[frontier].vary`` ('upper'; 'lower' when the requirement has no upper).
+    values : sequence of float, optional
+        The values to solve at (sorted; overrides ``range`` and ``points``).
+    range : (float, float), optional
+        ``(from, to)``, from < to. Default: ``[frontier].range`` when it belongs to the
+        same requirement and quantity, else :func:`automatic_range`.
+    points : int, optional
+        2 .. 2000; default ``[frontier].points`` (25). Evenly spaced for limits,
+        geometrically for fallout_ppm.
+    models : sequence of str, optional
+        Default: the case's ``[allocation].models``.
+    progress : bool
+        Show a progress bar on stderr (only for sweeps that take over a second).
+
+    Returns
+    -------
+    Frontier
+
+    Raises
+    ------
+    UsageError
+        Unknown requirement or model, a limit the requirement lacks, a range that is not
+        increasing or leaves the valid span, points outside 2 .. 2000.
+
+    Notes
+    -----
+    At each value ``v`` and model ``M`` the point is ``min Σ n_i C_i(t_i)`` subject to
+    every requirement under ``M`` with the swept limit (or target) set to ``v``; the
+    other limits keep the case's values. Loosening a limit enlarges the feasible set,
+    so each model's curve is non-increasing in the loosening direction; and since
+    rss ≤ mean shift ≤ worst case in spread for the same tolerances, the curves are
+    ordered rss ≤ mean shift ≤ worst case at every value.
+
+    Examples
+    --------
+    >>> from allocator.case import load_case  # doctest: +SKIP
+    >>> front = frontier(load_case("cases/gearbox_end_play.toml"), points=10)  # doctest: +SKIP
+    >>> front.to_frame().head()  # doctest: +SKIP
+    """
+    started = time.perf_counter()
+    req = _resolve_requirement(case, requirement)
+    vary, notes = _resolve_vary(case, req, vary)
+    models = _resolve_models(case, models)
+    if points is None:
+        points = case.frontier.points
+    points = _check_points(points)
+    span = range
+    sweeps = [LimitSweep(case, m, req.name, vary) for m in models]
+
+    if values is not None:
+        grid = _check_values(values, req, vary)
+        source = "values"
+    else:
+        setting = case.frontier
+        same = (setting.requirement or case.requirements[0].name) == req.name and setting.vary == vary
+        if span is not None:
+            span, source = _check_range(span, req, vary), "argument"
+        elif setting.range is not None and same:
+            span, source = _check_range(setting.range, req, vary), "case"
+        else:
+            span, note = automatic_range(case, req.name, vary, sweeps)
+            source = "automatic"
+            notes.append(note)
+        if vary == "fallout_ppm":
+            grid = np.geomspace(span[0], span[1], points)
+        else:
+            grid = np.linspace(span[0], span[1], points)
+
+    bar = _progress_bar(len(grid) * len(sweeps), progress)
+    try:
+        results = {}
+        for sweep in sweeps:
+            results[sweep.model] = sweep.sweep(grid, bar.update if bar is not None else None)
+    finally:
+        if bar is not None:
+            bar.close()
+
+    flat = tuple(s.model for s in sweeps if s.flat)
+    if flat:
+        notes.append("worst case does not use the fallout target: its cost is flat across the sweep")
+    for sweep in sweeps:
+        if sweep.fallbacks:
+            notes.append(f"{sweep.model}: {sweep.fallbacks} point(s) re-solved by the model's solver "
+                         "after the batched dual's re-check")
+
+    current_value = float(getattr(req, vary))
+    current = {"value": current_value, "total_cost": None, "optimal": {}}
+    for sweep in sweeps:
+        alloc = sweep.solve(current_value)
+        if current["total_cost"] is None and math.isfinite(alloc.current_cost):
+            current["total_cost"] = alloc.current_cost
+        current["optimal"][sweep.model] = alloc.total_cost
+
+    costs = {m: [p.total_cost for p in results[m]] for m in models}
+    statuses = {m: [p.status for p in results[m]] for m in models}
+    messages = {m: [p.message for p in results[m]] for m in models}
+    status, message = _summary(grid, models, statuses, messages, vary)
+    return Frontier(
+        title=case.title,
+        units=case.units,
+        currency=case.currency,
+        requirement=req.name,
+        vary=vary,
+        values=np.asarray(grid, dtype=float),
+        models=models,
+        costs=costs,
+        statuses=statuses,
+        messages=messages,
+        solvers={s.model: s.method for s in sweeps},
+        flat_models=flat,
+        current=current,
+        range_source=source,
+        notes=tuple(notes),
+        elapsed=time.perf_counter() - started,
+        solves=sum(s.solves for s in sweeps),
+        status=status,
+        message=message,
+    )
+
+
+def _summary(values, models, statuses, messages, vary):
+    n = len(values)
+    failed = {m: [i for i, s in enumerate(statuses[m]) if s == "failed"] for m in models}
+    bad = {m: [i for i, s in enumerate(statuses[m]) if s != "optimal"] for m in models}
+    if any(failed.values()):
+        parts = [f"{m} at {len(idx)} value(s), e.g. {_g(values[idx[0]])}: {messages[m][idx[0]]}"
+                 for m, idx in failed.items() if idx]
+        return "failed", "no verified optimum for " + "; ".join(parts)
+    if all(len(bad[m]) == n for m in models):
+        # the loosest value is the most telling: even there nothing works
+        last = n - 1 if vary != "lower" else 0
+        reason = messages[models[-1]][last] or messages[models[0]][last]
+        return "infeasible", f"no model meets the requirement at any value; e.g. at {_g(values[last])}: {reason}"
+    partial = [m for m in models if bad[m]]
+    if partial:
+        parts = []
+        for m in partial:
+            vals = [values[i] for i in bad[m]]
+            parts.append(f"{m} at {len(vals)} of {n} values ({_g(min(vals))} .. {_g(max(vals))})")
+        return "partial", "cannot be met by " + "; ".join(parts) + " (flagged 'infeasible')"
+    return "optimal", f"{n} values x {len(models)} model(s), every point solved and re-checked"
+
+
+def _progress_bar(total: int, enabled: bool):
+    if not enabled or total <= 0:
+        return None
+    import sys
+
+    from tqdm import tqdm
+
+    # delay: the bar appears only when the sweep takes longer than a second
+    return tqdm(total=total, file=sys.stderr, delay=1.0, leave=False, unit="point", desc="frontier")
