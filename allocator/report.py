@@ -219,6 +219,8 @@ class Report:
         UTC time the report was built.
     versions : dict
         Python and library versions used.
+    frontier_points, include_frontier
+        The frontier options the report was built with.
     """
 
     case: object
@@ -236,6 +238,8 @@ class Report:
     seed: int
     created: datetime
     versions: dict = field(default_factory=dict)
+    frontier_points: int | None = None
+    include_frontier: bool = True
 
     # ------------------------------------------------------------------ status
 
@@ -350,6 +354,7 @@ def build_report(
     samples: int = 200_000,
     seed: int = 0,
     frontier_points: int | None = None,
+    include_frontier: bool = True,
     created: datetime | None = None,
 ) -> Report:
     """Run the library for a report on ``case``.
@@ -365,6 +370,9 @@ def build_report(
         Seed of the verification (the report is reproducible with the same seed).
     frontier_points : int, optional
         Points of the cost frontier; default the case's ``[frontier].points``.
+    include_frontier : bool
+        False leaves the frontier out (section 4 says so): every point is a full
+        allocation, which takes a while for cases with process choices.
     created : datetime, optional
         Time stamp to print (default: now, UTC).
 
@@ -386,7 +394,10 @@ def build_report(
     rec_alloc = allocations.get(recommended)
     recommended_analysis = analyze(case, dict(rec_alloc.tolerances)) if rec_alloc is not None else None
 
-    frontier, frontier_message = _run_frontier(case, models, frontier_points)
+    if include_frontier:
+        frontier, frontier_message = _run_frontier(case, models, frontier_points)
+    else:
+        frontier, frontier_message = None, "left out of this report on request"
 
     if rec_alloc is not None:
         verification = verify(case, dict(rec_alloc.tolerances), samples=samples, seed=seed)
@@ -413,6 +424,8 @@ def build_report(
         seed=int(seed),
         created=created or datetime.now(timezone.utc).replace(microsecond=0),
         versions=_versions(__version__),
+        frontier_points=frontier_points,
+        include_frontier=include_frontier,
     )
 
 
@@ -436,18 +449,21 @@ def write_report(case, path, models=None, **kwargs) -> Report:
 
 
 def _run_frontier(case, models, points):
-    """The cost frontier, or None and the reason (a case may have no sweep to make)."""
-    import importlib.util
+    """The cost frontier, or None and the reason when the sweep cannot be made.
 
-    if importlib.util.find_spec("allocator.frontier") is None:
-        return None, "the frontier module is not installed"
-    from . import frontier as frontier_module
+    A sweep the case cannot support (say, an automatic range that finds no feasible
+    span) is a finding to show in section 4, not a reason to withhold the whole report.
+    """
+    from .errors import AllocatorError
+    from .frontier import frontier
 
     kwargs = {"models": models}
     if points is not None:
         kwargs["points"] = points
-    result = frontier_module.frontier(case, **kwargs)
-    return result, ""
+    try:
+        return frontier(case, **kwargs), ""
+    except AllocatorError as err:
+        return None, str(err)
 
 
 def _versions(own: str) -> dict:
@@ -480,7 +496,13 @@ def _svg_context():
     # greys for every colour a plot does not set itself, so fills print the same in greyscale
     greys = cycler(color=["0.35", "0.0", "0.6", "0.15", "0.75"])
     return matplotlib.rc_context(
-        {"svg.hashsalt": "allocator-report", "svg.fonttype": "path", "axes.prop_cycle": greys}
+        {
+            "svg.hashsalt": "allocator-report",
+            "svg.fonttype": "path",
+            "axes.prop_cycle": greys,
+            # a '$' in a case title is text, not mathtext (which could also fail to parse)
+            "text.parse_math": False,
+        }
     )
 
 
@@ -583,7 +605,7 @@ def _table(headers, rows, *, caption: str | None = None, numeric=None, cls: str 
         for i, cell in enumerate(row):
             tag = "th scope=\"row\"" if i == 0 else "td"
             end = "th" if i == 0 else "td"
-            cells.append(f"<{tag}{' class=num' if numeric[i] and i else ''}>{cell}</{end}>")
+            cells.append(f"<{tag}{' class=num' if numeric[i] else ''}>{cell}</{end}>")
         out.append("<tr>" + "".join(cells) + "</tr>")
     out.append("</tbody></table></div>")
     return "".join(out)
@@ -911,17 +933,54 @@ def _section_allocation(report: Report) -> str:
 
 
 def _section_frontier(report: Report, svg: str | None) -> str:
-    if report.frontier is None or svg is None:
+    front = report.frontier
+    if front is None or svg is None:
         return _section(report, "frontier", f'<p class="note">No cost frontier: {_e(report.frontier_message)}.</p>')
+    case = report.case
+    u, cur = case.units, case.currency
+    swept = "fallout target [ppm]" if front.vary == "fallout_ppm" else f"{front.vary} limit{_unit(u)}"
+    intro = (
+        f"<p>The least cost per assembly of each model as the {_e(swept.split(' [')[0])} of "
+        f"<strong>{_e(front.requirement)}</strong> moves from {_e(fmt_number(front.values[0], 6, strip=True))} to "
+        f"{_e(fmt_number(front.values[-1], 6, strip=True))} "
+        f"({len(front.values)} points; every point a complete allocation, every other limit as in the case). "
+        "Computed by <code>allocator.frontier.frontier</code>, drawn by <code>allocator.plots.frontier_figure</code>."
+        "</p>"
+    )
     guide = (
         "<p><strong>How to read it.</strong> Each point is a complete least-cost allocation for one value of the "
-        "swept limit or target; the line joins them per model. Moving right along the curve loosens the "
-        "requirement; the cost falls steeply where the curve is steep, so that is where a relaxed requirement buys "
-        "most, and hardly at all where it is flat. The vertical gap between two models at the same value is the "
-        "price of the more conservative model. The case's own value is marked.</p>"
+        "swept limit or target; a line joins one model's points, told apart by dash pattern and marker. Moving "
+        "along the axis towards a looser requirement the cost can only fall. Where a curve is steep, relaxing the "
+        "requirement a little buys a lot (ask whether the limit is really needed there); where it is flat, "
+        "relaxing buys nothing. The vertical gap between two models at the same value is the price of the more "
+        "conservative model. The star is the current design at the case's own value; shaded spans are values "
+        "that no model (or only some models) can meet.</p>"
     )
-    return _section(report, "frontier", f'<figure class="plot">{svg}<figcaption>Cost frontier '
-                    f"(<code>allocator.frontier.frontier</code>).</figcaption></figure>" + guide)
+    status = ""
+    if front.status != "optimal" or front.notes:
+        lines = ([front.message] if front.message else []) + list(front.notes)
+        status = '<p class="note">' + "<br>".join(_e(x) for x in lines) + "</p>"
+    current = front.current or {}
+    facts = []
+    if current.get("value") is not None:
+        facts.append((f"Case value of the swept quantity", _i(current["value"])))
+    if current.get("total_cost") is not None:
+        facts.append((f"Cost of the current design{_unit(cur)}", _n(current["total_cost"])))
+    for model, cost in (current.get("optimal") or {}).items():
+        facts.append((f"Least cost at the case value, {_model(model)}{_unit(cur)}", _n(cost)))
+    rows = [
+        [_e(fmt_number(v, strip=True))] + [_n(front.costs[m][i]) if front.costs[m][i] is not None else _e(front.statuses[m][i]) for m in front.models]
+        for i, v in enumerate(front.values)
+    ]
+    table = _table(
+        [_e(swept[0].upper() + swept[1:])] + [f"{_model(m)}{_unit(cur)}" for m in front.models],
+        rows,
+        numeric=[True] * (1 + len(front.models)),
+        caption="The frontier's points: least cost per assembly",
+        cls="compact",
+    )
+    figure = f'<figure class="plot">{svg}<figcaption>Least cost per assembly against the swept value, per model.</figcaption></figure>'
+    return _section(report, "frontier", intro + figure + guide + status + (_dl(facts) if facts else "") + table)
 
 
 def _section_contributions(report: Report, svg: str) -> str:
@@ -1122,9 +1181,14 @@ def _section_reproducibility(report: Report) -> str:
     solvers = _table(["Model", "Status", "Solver", "Iterations", "Relative gap", "Solver message"], solver_rows,
                      numeric=[False, False, False, True, True, False], caption="Solvers")
     model_flags = " ".join(f"--model {m}" for m in report.models)
+    frontier_flag = (
+        " --no-frontier"
+        if not report.include_frontier
+        else (f" --frontier-points {report.frontier_points}" if report.frontier_points is not None else "")
+    )
     command = (
         f"allocator report {Path(case.path).name if case.path else 'CASE'} {model_flags} "
-        f"--samples {report.samples} --seed {report.seed} -o REPORT.html"
+        f"--samples {report.samples} --seed {report.seed}{frontier_flag} -o REPORT.html"
     )
     facts = [
         ("Tool", f"allocator {_e(v.get('allocator', ''))}"),
@@ -1172,6 +1236,8 @@ tbody th { font-weight: 600; }
 .nw { white-space: nowrap; display: inline-block; }
 td.model, th.model { white-space: nowrap; }
 th.num { white-space: normal; }
+table.compact { font-size: 0.82rem; }
+table.compact td, table.compact th { padding: 0.1rem 0.6rem; }
 table.alloc tbody tr:nth-last-child(-n+4) { background: var(--faint); }
 table.alloc tbody tr:nth-last-child(4) th, table.alloc tbody tr:nth-last-child(4) td { border-top: 2px solid var(--ink); }
 .desc { font-weight: normal; color: var(--muted); font-size: 0.85em; white-space: normal; }

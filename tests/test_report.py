@@ -19,6 +19,7 @@ from click.testing import CliRunner
 from allocator.analysis import analyze
 from allocator.case import load_case, loads_case
 from allocator.cli.main import cli
+from allocator.frontier import frontier
 from allocator.report import CAUTIONS, SECTIONS, build_report, fmt_input, fmt_number, fmt_tolerance
 from allocator.simulate import verify
 from allocator.solve import allocate
@@ -91,13 +92,21 @@ def section_html(text: str, sid: str) -> str:
     return match.group(1)
 
 
+# every frontier point of the process-choice case is a mixed-integer solve: too slow for a
+# fast test, so that one case is checked without its frontier (the option users have too)
+WITHOUT_FRONTIER = {"pump_shim"}
+
+
 @pytest.fixture(scope="module")
 def reports():
     """One small report per demo case (built once for the module)."""
     out = {}
     for name in DEMOS:
         case = load_case(CASES / f"{name}.toml")
-        report = build_report(case, samples=SAMPLES, seed=SEED, frontier_points=POINTS, created=STAMP)
+        report = build_report(
+            case, samples=SAMPLES, seed=SEED, frontier_points=POINTS, created=STAMP,
+            include_frontier=name not in WITHOUT_FRONTIER,
+        )
         out[name] = (case, report, report.to_html())
     return out
 
@@ -110,13 +119,14 @@ def test_every_section_heading_and_plot(reports, name):
     # every section, in order, each with its h2 inside it
     assert doc.sections == [sid for sid, _ in SECTIONS]
     assert [h for h in doc.h2 if h[0] is not None] == list(SECTIONS)
-    # plots: frontier (when the case has one), contributions, verification histogram
+    # plots: frontier, contributions, verification histogram
     figures = report.figures()
-    assert doc.top_level_svgs == len(figures) >= 2
+    expected = 2 if name in WITHOUT_FRONTIER else 3
+    assert doc.top_level_svgs == len(figures) == expected
     for sid in figures:
-        assert "<svg" in section_html(text, sid)
-    if report.frontier is not None:
-        assert len(figures) == 3
+        assert section_html(text, sid).count("<svg") == 1
+    if name in WITHOUT_FRONTIER:
+        assert "left out of this report on request" in section_html(text, "frontier")
 
 
 @pytest.mark.parametrize("name", DEMOS)
@@ -205,6 +215,15 @@ def test_numbers_equal_the_library(reports):
         assert fmt_number(c.fallout_ppm) in verification_html
         assert f"{fmt_number(c.ci_low_ppm)} to {fmt_number(c.ci_high_ppm)}" in verification_html
         assert fmt_number(c.predicted_ppm) in verification_html
+
+    front = frontier(case, points=POINTS)
+    frontier_html = section_html(text, "frontier")
+    for model in front.models:
+        for cost, status in zip(front.costs[model], front.statuses[model]):
+            assert (fmt_number(cost) if cost is not None else f">{status}<") in frontier_html
+    for model, cost in front.current["optimal"].items():
+        assert fmt_number(cost) in frontier_html
+    assert fmt_number(front.current["total_cost"]) in frontier_html
 
     sheet = supplier_sheet(case, report.recommended)
     for row in sheet.rows:
@@ -295,7 +314,7 @@ def test_cli_writes_the_file(tmp_path):
     assert result.exit_code == 0, result.output
     text = out.read_text(encoding="utf-8")
     assert text.startswith("<!DOCTYPE html>") and text.rstrip().endswith("</html>")
-    assert "--model rss --samples 1000 --seed 3" in text
+    assert "--model rss --samples 1000 --seed 3 --frontier-points 3" in text
     assert not list(tmp_path.glob(".*.tmp"))  # the atomic write left no temporary file
 
 

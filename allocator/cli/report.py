@@ -40,8 +40,13 @@ from .common import CASE_ARGUMENT, handle_errors, load_case_or_exit, model_optio
     default=None,
     help="Points on the cost frontier; default: the case's [frontier].points.",
 )
+@click.option(
+    "--no-frontier",
+    is_flag=True,
+    help="Leave the cost frontier out (each of its points is a full allocation).",
+)
 @handle_errors
-def report(case_file, output, models, samples, seed, frontier_points):
+def report(case_file, output, models, samples, seed, frontier_points, no_frontier):
     """Write a self-contained HTML report on CASE for design reviews and supplier talks.
 
     Sections: case summary and assumptions, stack analysis of the current design,
@@ -63,6 +68,7 @@ def report(case_file, output, models, samples, seed, frontier_points):
         samples=samples,
         seed=seed,
         frontier_points=frontier_points,
+        include_frontier=not no_frontier,
     )
     line = f"wrote {output}: {result.status}"
     if result.recommended:
