@@ -1,0 +1,1019 @@
+"""Process selection, tabulated options and rounded tolerances: mixed-integer allocation.
+
+A contributor may be made by one of several processes, may only take the tolerances a
+``between = "choose"`` table lists, or (``[allocation].rounding``) only rounded values.
+The allocation then chooses, per contributor, one *candidate* ``j``: a (process,
+tolerance) pair with unit cost ``C_ij`` and σ/t factor ``f_ij`` (the process's cp). With
+one-hot binaries ``x_ij`` (Chase, Greenwood, Loosli & Hauglund 1990):
+
+.. math::
+
+    \\min \\sum_i n_i \\sum_j C_{ij} x_{ij} \\quad\\text{s.t.}\\quad \\sum_j x_{ij} = 1,
+
+- worst case: ``Σ_i n_i|a_i| Σ_j t_ij x_ij ≤ min(ȳ − L, U − ȳ)`` (linear);
+- rss: ``Σ_i n_i a_i² Σ_j (f_ij t_ij)² x_ij ≤ σ_max²`` (variance is linear in a one-hot
+  choice);
+- mean shift: ``σ(x) ≤ g(δ(x))`` with ``δ = Σ n|a| m t x`` linear and ``g`` the largest σ
+  with the mean anywhere in ``ȳ ± δ``. Solved exactly by lazy cuts: solve the MILP, check
+  the true constraint in numpy, add cuts that remove the violating choice and no
+  feasible one, repeat (see :func:`_cuts`).
+
+Every MILP is solved by HiGHS (``scipy.optimize.milp``) to a proven optimum (relative and
+absolute MIP gap 0). Each choice is re-checked in numpy against the exact constraint, and
+the final answer again by :meth:`AllocationProblem.statistics
+<allocator.solve.problem.AllocationProblem.statistics>`.
+
+Continuous cost curves inside a chosen process are discretised on a geometric grid
+(60 points per process by default); the grid MILP picks the processes and the conic solver
+(:mod:`.continuous` or :mod:`.exact`) polishes the tolerances with those processes held. A
+second MILP over grid *cells*, each optimistic (its tight end in the constraints, its least
+cost), gives a proven lower bound; cells that bound picks are split until the relative gap
+is below :data:`GAP_TARGET` or :data:`MAX_REFINE` rounds have run. The gap is reported.
+
+References: Chase, K. W., Greenwood, W. H., Loosli, B. G. and Hauglund, L. F. (1990), Least
+cost tolerance allocation for mechanical assemblies with automated process selection,
+Manufacturing Review 3(1), 49-59. Huangfu, Q. and Hall, J. A. J. (2018), Parallelizing the
+dual revised simplex method, Mathematical Programming Computation 10, 119-142 (HiGHS).
+Duran, M. A. and Grossmann, I. E. (1986), An outer-approximation algorithm for a class of
+mixed-integer nonlinear programs, Mathematical Programming 36, 307-339.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import math
+import os
+import sys
+import warnings
+from dataclasses import dataclass, replace
+
+import numpy as np
+
+from .. import costs, stack
+from ..errors import CaseError, UsageError
+from ..model import MODELS, Case
+from . import rounding as rounding_values
+from .problem import (
+    FALLOUT_RTOL,
+    WORST_CASE_RTOL,
+    AllocationProblem,
+    Limits,
+    mean_shift_allowance,
+)
+
+__all__ = [
+    "DiscreteAllocation",
+    "solver_for",
+    "allocate_discrete",
+    "needs_discrete",
+    "GRID_POINTS",
+    "GAP_TARGET",
+]
+
+GRID_POINTS = 60  # geometric grid per continuous process
+GAP_TARGET = 1e-6  # stop refining below this relative gap
+MAX_REFINE = 8  # rounds of splitting the cells the lower bound picks
+REFINE_SPLIT = 8  # a picked cell becomes this many
+MAX_CUT_ROUNDS = 400  # MILP solves per lazy-cut loop
+MAX_RELAXED_ROUNDS = 30  # the lower-bound MILP's tangent-cut rounds (any count is valid)
+CHECK_RTOL = 1e-9  # a choice meets a requirement within this (relative)
+# g(δ) is concave for targets up to here (checked numerically in tests/test_discrete.py);
+# above it only the combinatorial cuts are used, which need no concavity.
+TANGENT_MAX_FALLOUT = 0.49
+TIME_LIMIT = 600.0  # seconds per MILP solve
+OBJECTIVE_SCALE = 1e3  # HiGHS's absolute tolerances are tuned for objectives of this size
+SOLVER_NAME = "highs"
+
+_SLACK = 1e-9
+
+
+def _g(x: float) -> str:
+    return f"{x:.4g}"
+
+
+# --------------------------------------------------------------------------- options
+
+
+@dataclass
+class _Option:
+    """One way of making contributor ``owner``: a process (or the contributor itself).
+
+    ``kind`` is 'points' (only ``points`` exist: a choose table, rounded values or a held
+    tolerance) or 'continuous' (any tolerance in ``limits``; the grid in ``grid``).
+    """
+
+    owner: int
+    index: int  # position in Contributor.options()
+    name: str
+    limits: tuple[float, float]
+    curve: object
+    factor: float  # σ / t with this process's cp
+    kind: str
+    points: np.ndarray
+    point_costs: np.ndarray
+    labels: tuple[str, ...] = ()
+    grid: np.ndarray | None = None
+
+
+def _within(t: float, limits) -> bool:
+    lo, hi = limits
+    return lo * (1 - _SLACK) <= t <= hi * (1 + _SLACK)
+
+
+def _cost_at(curve, t):
+    """Unit cost at ``t`` (array), or None where the curve does not define it."""
+    if curve is None:
+        return np.zeros_like(np.asarray(t, dtype=float))
+    try:
+        return np.asarray(costs.cost_value(curve, np.asarray(t, dtype=float)), dtype=float)
+    except ValueError:
+        return None
+
+
+def _geometric_grid(lo: float, hi: float, points: int, curve) -> np.ndarray:
+    grid = np.geomspace(lo, hi, max(int(points), 2))
+    grid[0], grid[-1] = lo, hi
+    if curve is not None and curve.curve == "table":
+        # breakpoints on the grid make the cost linear inside every cell, so its least
+        # value in a cell is at an end (what the lower bound uses)
+        x = np.asarray(curve.points_tolerance, dtype=float)
+        grid = np.union1d(grid, x[(x > lo) & (x < hi)])
+    return grid
+
+
+def needs_discrete(case: Case, fix=None) -> bool:
+    """True when allocating ``case`` needs this module.
+
+    A free contributor with several processes or a ``choose`` table, or a rounding
+    setting.
+    """
+    fix = fix or {}
+    if case.allocation.rounding is not None:
+        return True
+    return any(c.is_discrete and not c.fixed and c.name not in fix for c in case.contributors)
+
+
+def _check_fix(case: Case, fix) -> dict[str, float]:
+    out = {}
+    for name, value in (fix or {}).items():
+        if name not in case.names:
+            import difflib
+
+            match = difflib.get_close_matches(name, list(case.names), n=1)
+            hint = f" (did you mean '{match[0]}'?)" if match else ""
+            raise UsageError(f"fix: unknown contributor '{name}'{hint}")
+        try:
+            value = float(value)
+        except (TypeError, ValueError):
+            raise UsageError(f"fix: {name}: tolerance must be a number (got {value!r})") from None
+        if not (math.isfinite(value) and value > 0):
+            raise UsageError(f"fix: {name}: tolerance must be > 0 (got {value:g})")
+        out[name] = value
+    return out
+
+
+# --------------------------------------------------------------------------- candidates
+
+
+@dataclass
+class _Candidates:
+    """All (contributor, option, tolerance) candidates, sorted by contributor.
+
+    A *point* is a tolerance the contributor can take: ``tolerance`` = ``value`` = it,
+    ``unit_cost`` its cost of one part. A lower-bound *cell* ``[t_lo, t_hi]`` of a
+    continuous process stands for any tolerance inside it: ``tolerance`` = t_lo,
+    ``value`` = t_hi, ``unit_cost`` the least cost in the cell, and the cost is bounded
+    below by the tangent ``tangent_cost + cost_slope·(t − tangent)`` (exact for a table,
+    which is linear inside a cell).
+    """
+
+    owner: np.ndarray
+    option: np.ndarray  # index into the owner's options
+    tolerance: np.ndarray
+    value: np.ndarray
+    unit_cost: np.ndarray
+    factor: np.ndarray
+    label: np.ndarray
+    cell: np.ndarray  # bool
+    tangent: np.ndarray
+    tangent_cost: np.ndarray
+    cost_slope: np.ndarray
+    starts: np.ndarray  # first candidate of each contributor
+
+    @property
+    def size(self) -> int:
+        return self.owner.size
+
+
+_COLUMNS = ("owner", "option", "tolerance", "value", "unit_cost", "factor", "label", "cell",
+            "tangent", "tangent_cost", "cost_slope")
+
+
+def _assemble(parts: list[dict], n_contributors: int) -> _Candidates:
+    owner = np.concatenate([p["owner"] for p in parts]).astype(int)
+    order = np.argsort(owner, kind="stable")
+    columns = {k: np.concatenate([p[k] for p in parts])[order] for k in _COLUMNS}
+    columns["owner"] = owner[order]
+    columns["option"] = columns["option"].astype(int)
+    columns["cell"] = columns["cell"].astype(bool)
+    return _Candidates(**columns, starts=np.searchsorted(columns["owner"], np.arange(n_contributors)))
+
+
+# --------------------------------------------------------------------------- MILP
+
+
+@dataclass
+class _MilpOutcome:
+    status: str  # 'optimal' | 'infeasible' | 'failed'
+    choice: np.ndarray | None  # candidate index per contributor
+    objective: float | None  # Σ n·cost at the choice [currency]
+    bound: float | None  # proven lower bound on this MILP's optimum [currency]
+    mip_gap: float | None
+    solves: int
+    nodes: int
+    cuts: int
+    message: str = ""
+    tolerances: np.ndarray | None = None  # each contributor's tolerance at the choice
+
+
+class _Rows:
+    """Sparse rows ``lo ≤ A x ≤ hi`` collected for scipy's milp."""
+
+    def __init__(self, size: int):
+        self.size = size
+        self.indices, self.values, self.lower, self.upper = [], [], [], []
+
+    def add(self, coef: np.ndarray, upper: float, lower: float = -np.inf, cols=None):
+        coef = np.asarray(coef, dtype=float)
+        cols = np.arange(self.size) if cols is None else np.asarray(cols)
+        keep = coef != 0
+        self.indices.append(cols[keep])
+        self.values.append(coef[keep])
+        self.lower.append(lower)
+        self.upper.append(upper)
+
+    def matrix(self):
+        from scipy import sparse
+
+        counts = np.array([i.size for i in self.indices])
+        indptr = np.concatenate([[0], np.cumsum(counts)])
+        data = np.concatenate(self.values) if self.values else np.zeros(0)
+        idx = np.concatenate(self.indices).astype(int) if self.indices else np.zeros(0, int)
+        a = sparse.csr_array((data, idx, indptr), shape=(len(self.indices), self.size))
+        return a, np.array(self.lower, dtype=float), np.array(self.upper, dtype=float)
+
+
+@contextlib.contextmanager
+def _quiet_stdout():
+    """Send file descriptor 1 to the null device while HiGHS runs.
+
+    HiGHS writes a diagnostic line straight to the C-level stdout when it re-solves a
+    presolved solution; solvers never print (and ``--json`` must stay one document).
+    """
+    try:
+        fd = sys.stdout.fileno()
+    except (AttributeError, OSError, ValueError):
+        fd = 1
+    sys.stdout.flush()
+    try:
+        saved = os.dup(fd)
+    except OSError:
+        yield
+        return
+    try:
+        with open(os.devnull, "w") as null:
+            os.dup2(null.fileno(), fd)
+            try:
+                yield
+            finally:
+                os.dup2(saved, fd)
+    finally:
+        os.close(saved)
+
+
+def _row_norm(coef, rhs) -> float:
+    """Divisor that makes a cut's right-hand side 1: HiGHS's feasibility tolerance is
+    absolute (1e-7), so a violation is then measured relative to the allowance."""
+    return float(rhs) if rhs > 0 else max(float(np.max(np.abs(coef))), 1e-300)
+
+
+def _run_milp(objective, rows: _Rows, time_limit: float, integrality, upper):
+    """One HiGHS solve of ``min c·x``, ``0 ≤ x ≤ upper``, with ``rows``; scipy's result."""
+    from scipy import optimize
+
+    a, lo, hi = rows.matrix()
+    options = {
+        "mip_rel_gap": 0.0,
+        "mip_abs_gap": 0.0,  # HiGHS stops at an absolute gap of 1e-6 by default
+        "time_limit": float(time_limit),
+        "presolve": True,
+    }
+    with warnings.catch_warnings(), _quiet_stdout():
+        # scipy passes HiGHS options it does not list itself through verbatim, with a warning
+        warnings.filterwarnings("ignore", message="Unrecognized options", category=RuntimeWarning)
+        return optimize.milp(
+            objective,
+            integrality=integrality,
+            bounds=optimize.Bounds(np.zeros(objective.size), upper),
+            constraints=optimize.LinearConstraint(a, lo, hi),
+            options=options,
+        )
+
+
+# --------------------------------------------------------------------------- the solver
+
+
+class DiscreteAllocation:
+    """Least-cost choice of process and tolerance per contributor, for one stack model.
+
+    Parameters
+    ----------
+    case : Case
+    model : {'worst-case', 'rss', 'mean-shift'}
+    fix : dict, optional
+        Contributor name -> ± tolerance to hold [length]. A held contributor with several
+        processes still has its process chosen (its cp and cost depend on it).
+    grid_points : int
+        Points of the geometric grid per continuous process (default 60).
+    gap_target : float
+        Stop refining the lower bound once ``(cost − bound) / cost`` is below this.
+    rounding : float, 'iso286', None or 'case'
+        Rounding of the allocated tolerances (default: the case's ``[allocation].rounding``).
+    time_limit : float
+        Seconds allowed per MILP solve.
+
+    Raises
+    ------
+    UsageError
+        Unknown model or ``fix`` entry.
+    CaseError
+        A contributor whose limits hold no rounded value (names the contributor).
+
+    Examples
+    --------
+    >>> from allocator.case import load_case  # doctest: +SKIP
+    >>> case = load_case("cases/pump_shim.toml")  # doctest: +SKIP
+    >>> DiscreteAllocation(case, "rss").solve().processes  # doctest: +SKIP
+    {'body_depth': 'fine boring', 'impeller_hub': '', 'shim': '', 'wear_plate': ''}
+    """
+
+    def __init__(self, case: Case, model: str, fix=None, *, grid_points: int = GRID_POINTS,
+                 gap_target: float = GAP_TARGET, rounding="case", time_limit: float = TIME_LIMIT):
+        if model not in MODELS:
+            raise UsageError(f"unknown model {model!r} (choose from {', '.join(MODELS)})")
+        self.case = case
+        self.model = model
+        self.fix = _check_fix(case, fix)
+        self.grid_points = int(grid_points)
+        self.gap_target = float(gap_target)
+        self.time_limit = float(time_limit)
+        self.rounding = case.allocation.rounding if rounding == "case" else rounding
+        self.counts = case.counts
+        self.mean_shifts = case.mean_shifts
+        self.options = [self._contributor_options(i, c) for i, c in enumerate(case.contributors)]
+        # the tightest thing each contributor can do (for the infeasibility diagnosis)
+        self.reference = AllocationProblem(self._tightest_case(), model, self.fix)
+        self.requirements = self.reference.requirements
+        self.sensitivity = (
+            np.array([r.sensitivity for r in self.requirements], dtype=float)
+            if self.requirements else np.zeros((0, len(case.contributors)))
+        )
+
+    # ------------------------------------------------------------------ options
+
+    def _held_value(self, c):
+        if c.fixed:
+            return c.tolerance
+        return self.fix.get(c.name)
+
+    def _contributor_options(self, i, c) -> list[_Option]:
+        held = self._held_value(c)
+        factor = lambda p: c.process_sigma_factor(p) if c.processes else c.sigma_factor  # noqa: E731
+        options = []
+        if held is not None:
+            for k, p in enumerate(c.options()):
+                if not _within(held, p.limits):
+                    continue
+                cost = _cost_at(p.cost, np.array([held]))
+                if cost is None:  # e.g. not a listed tolerance of a choose table
+                    continue
+                options.append(_Option(i, k, p.name, p.limits, p.cost, factor(p), "points",
+                                       np.array([held]), cost, ("",)))
+            if not options:
+                # held outside every process: like the continuous solver, the first option
+                p = c.options()[0]
+                cost = _cost_at(p.cost, np.array([held]))
+                options.append(_Option(i, 0, p.name, p.limits, p.cost, factor(p), "points",
+                                       np.array([held]), np.zeros(1) if cost is None else cost, ("",)))
+            return options
+        ranges = []
+        for k, p in enumerate(c.options()):
+            lo, hi = p.limits
+            ranges.append((p.name, p.limits))
+            curve = p.cost
+            if curve is not None and curve.is_discrete:
+                x = np.asarray(curve.points_tolerance, dtype=float)
+                points = x[(x >= lo * (1 - _SLACK)) & (x <= hi * (1 + _SLACK))]
+                labels = ("",) * points.size
+            elif self.rounding is not None:
+                points, labels = self._rounded(c, lo, hi)
+            elif lo < hi:
+                grid = _geometric_grid(lo, hi, self.grid_points, curve)
+                options.append(_Option(i, k, p.name, p.limits, curve, factor(p), "continuous",
+                                       np.zeros(0), np.zeros(0), (), grid))
+                continue
+            else:
+                points, labels = np.array([lo]), ("",)
+            if points.size == 0:
+                continue
+            options.append(_Option(i, k, p.name, p.limits, curve, factor(p), "points",
+                                   points, _cost_at(curve, points), labels))
+        if not options:
+            problem = rounding_values.no_value_problem(self.rounding, c.nominal, self.case.units, ranges)
+            raise CaseError(
+                f"contributor '{c.name}': {problem}",
+                file=str(self.case.path) if self.case.path is not None else None,
+                field="allocation.rounding",
+            )
+        return options
+
+    def _rounded(self, c, lo, hi):
+        if self.rounding == "iso286":
+            try:
+                return rounding_values.iso286_values(c.nominal, self.case.units, lo, hi)
+            except ValueError as err:
+                raise CaseError(
+                    f"contributor '{c.name}': {err}",
+                    file=str(self.case.path) if self.case.path is not None else None,
+                    field="allocation.rounding",
+                ) from None
+        return rounding_values.step_values(lo, hi, float(self.rounding))
+
+    @property
+    def has_continuous(self) -> bool:
+        return any(o.kind == "continuous" for opts in self.options for o in opts)
+
+    def candidates(self, cells: bool = False) -> _Candidates:
+        """Points (or, with ``cells``, lower-bound grid cells) of every contributor."""
+        parts = []
+        for opts in self.options:
+            for o in opts:
+                if o.kind == "points":
+                    t = value = tangent = o.points
+                    cost = tangent_cost = np.nan_to_num(o.point_costs)
+                    slope = np.zeros(t.size)
+                    labels, cell = o.labels, False
+                elif not cells:
+                    t = value = tangent = o.grid
+                    cost = tangent_cost = _cost_at(o.curve, o.grid)
+                    slope = np.zeros(t.size)
+                    labels, cell = ("",) * o.grid.size, False
+                else:
+                    t, value = o.grid[:-1], o.grid[1:]
+                    ends = _cost_at(o.curve, o.grid)
+                    cost = np.minimum(ends[:-1], ends[1:])
+                    if o.curve.curve == "table":
+                        # linear inside a cell: its breakpoints are on the grid
+                        tangent, tangent_cost = t, ends[:-1]
+                        slope = (ends[1:] - ends[:-1]) / (value - t)
+                    else:
+                        # convex: the tangent at the cell's middle lies below the curve
+                        tangent = np.sqrt(t * value)
+                        tangent_cost = _cost_at(o.curve, tangent)
+                        slope = np.asarray(costs.cost_derivative(o.curve, tangent), dtype=float)
+                    labels, cell = ("",) * t.size, True
+                k = t.size
+                parts.append({
+                    "owner": np.full(k, o.owner), "option": np.full(k, o.index),
+                    "tolerance": t, "value": value, "unit_cost": cost,
+                    "factor": np.full(k, o.factor), "label": np.array(labels, dtype=object),
+                    "cell": np.full(k, cell), "tangent": tangent, "tangent_cost": tangent_cost,
+                    "cost_slope": slope,
+                })
+        return _assemble(parts, len(self.options))
+
+    def _tightest_case(self) -> Case:
+        """The case with each contributor at its tightest spread over all candidates.
+
+        Every requirement is monotone in each contributor's t (worst case, δ) and σ = f·t,
+        so the least t and the least f·t of any candidate together (not always one
+        candidate) give the smallest spreads: if they fail a requirement, nothing meets it.
+        """
+        contributors = []
+        for c, opts in zip(self.case.contributors, self.options):
+            values = np.concatenate([o.points if o.kind == "points" else o.grid[:1] for o in opts])
+            sigmas = np.concatenate([
+                (o.points if o.kind == "points" else o.grid[:1]) * o.factor for o in opts
+            ])
+            t_min, s_min = float(values.min()), float(sigmas.min())
+            hi = max(float(np.max(o.points)) if o.kind == "points" else o.limits[1] for o in opts)
+            changes = dict(processes=(), limits=(t_min, hi), cost=None)
+            if c.distribution == "normal":
+                changes["cp"] = t_min / (3.0 * s_min)
+            contributors.append(replace(c, **changes))
+        return replace(self.case, contributors=tuple(contributors))
+
+    # ------------------------------------------------------------------ MILP with cuts
+
+    def _solve_milp(self, cand: _Candidates, limits: list[Limits]) -> _MilpOutcome:
+        """Least-cost choice among ``cand``, exact for points (lazy cuts for mean shift).
+
+        Columns: a binary ``x_c`` per candidate and, for every lower-bound cell, a
+        continuous ``τ_c ∈ [t_lo x_c, t_hi x_c]`` (the tolerance inside the cell when it is
+        chosen). With cells the MILP is a relaxation: its optimum is a lower bound.
+        """
+        n_c = len(self.options)
+        size = cand.size
+        owner = cand.owner
+        cells = np.flatnonzero(cand.cell)
+        n_tau = cells.size
+        point = ~cand.cell
+        t = cand.tolerance
+        n = self.counts[owner]
+        a = np.abs(self.sensitivity[:, owner])  # requirements × candidates
+        f = cand.factor
+        unit_w = n * a  # worst-case share per unit tolerance
+        unit_s = np.sqrt(n) * a * f  # σ share per unit tolerance
+        unit_d = n * a * self.mean_shifts[owner]  # mean-shift share per unit tolerance
+        unit_v = n * (a * f) ** 2  # variance share per unit tolerance squared
+
+        # a cell's tolerance is τ = t_hi·y with y ∈ [t_lo/t_hi · x, x]: columns of order 1
+        t_hi = cand.value[cells]
+
+        def linear(unit):
+            """Row over [x, y] of Σ unit·t: t·x for points, t_hi·y for cells."""
+            return np.concatenate([np.where(point, unit * t, 0.0), unit[cells] * t_hi])
+
+        def variance(unit):
+            """Row over [x, y] of Σ unit·t²: exact for points, tangent at m for cells."""
+            m = cand.tangent
+            return np.concatenate([
+                np.where(point, unit * t * t, -unit * m * m), 2.0 * unit[cells] * m[cells] * t_hi
+            ])
+
+        # objective relative to each contributor's cheapest candidate, scaled to ~1e3:
+        # HiGHS's absolute tolerances then mean ~1e-10 of the cost that can change
+        unit = cand.unit_cost
+        floor = np.minimum.reduceat(unit, cand.starts)
+        extra = n * (unit - floor[owner])
+        constant = float(np.sum(self.counts * floor))
+        typical = float(np.sum(np.maximum.reduceat(extra, cand.starts)))
+        scale = OBJECTIVE_SCALE / typical if typical > 0 else 1.0
+        # cells: n·(C(m) + C'(m)(τ − m)) − n·floor, a tangent below a convex cost (exact
+        # for a table, linear inside a cell)
+        intercept = np.where(point, unit, cand.tangent_cost - cand.cost_slope * cand.tangent)
+        objective = np.concatenate([
+            n * (intercept - floor[owner]), (n * cand.cost_slope)[cells] * t_hi
+        ]) * scale
+
+        total = size + n_tau
+        rows = _Rows(total)
+        for i in range(n_c):  # Σ_j x_ij = 1
+            lo_, hi_ = cand.starts[i], cand.starts[i + 1] if i + 1 < n_c else size
+            rows.add(np.ones(hi_ - lo_), 1.0, 1.0, cols=np.arange(lo_, hi_))
+        for k, c in enumerate(cells):  # t_lo/t_hi · x ≤ y ≤ x
+            rows.add(np.array([t[c] / t_hi[k], -1.0]), 0.0, cols=np.array([c, size + k]))
+            rows.add(np.array([-1.0, 1.0]), 0.0, cols=np.array([c, size + k]))
+
+        checks = []  # (r, kind, bound, lim) per requirement with limits
+        for r, (req, lim) in enumerate(zip(self.requirements, limits)):
+            if lim.lower is None and lim.upper is None:
+                continue
+            room = min(
+                math.inf if lim.lower is None else req.nominal - lim.lower,
+                math.inf if lim.upper is None else lim.upper - req.nominal,
+            )
+            if not room > 0:
+                return _MilpOutcome("infeasible", None, None, None, None, 0, 0, 0,
+                                    f"requirement '{req.name}': nominal outside its limits")
+            if self.model == "worst-case":
+                rows.add(linear(unit_w[r]) / room, 1.0)
+                checks.append((r, "worst-case", room, lim))
+            elif self.model == "rss":
+                sigma_max = stack.sigma_limit(req.nominal, lim.fallout, lim.lower, lim.upper)
+                rows.add(variance(unit_v[r]) / sigma_max**2, 1.0)
+                checks.append((r, "rss", sigma_max, lim))
+            else:
+                # the worst mean must stay inside the limits (fallout ≥ 50 % otherwise)
+                rows.add(linear(unit_d[r]) / room, 1.0)
+                d_lo = unit_d[r] * t
+                delta_min = float(np.sum(np.minimum.reduceat(d_lo, cand.starts)))
+                g_min = mean_shift_allowance(req.nominal, delta_min, lim)[0] if delta_min < room else 0.0
+                if g_min > 0:  # σ ≤ g(δ) ≤ g(δ_min): a cap on the variance
+                    rows.add(variance(unit_v[r]) / g_min**2, 1.0)
+                checks.append((r, "mean-shift", room, lim))
+                # tangent cuts found in earlier solves stay valid for any candidates
+                for u, rhs, slope in self._tangents.get(r, ()):
+                    coef = linear(u[owner] * unit_s[r]) - slope * linear(unit_d[r])
+                    norm = _row_norm(coef, rhs)
+                    rows.add(coef / norm, rhs / norm)
+
+        integrality = np.concatenate([np.ones(size), np.zeros(n_tau)])
+        upper = np.ones(size + n_tau)
+        solves = nodes = cuts = 0
+        choice = objective_value = bound = None
+        while solves < MAX_CUT_ROUNDS:
+            res = _run_milp(objective, rows, self.time_limit, integrality, upper)
+            solves += 1
+            nodes += int(getattr(res, "mip_node_count", 0) or 0)
+            if res.status == 2:
+                return _MilpOutcome("infeasible", None, None, None, None, solves, nodes, cuts,
+                                    "HiGHS: no combination of the candidates meets every requirement")
+            if res.x is None:
+                return _MilpOutcome("failed", None, None, bound, None, solves, nodes, cuts,
+                                    f"HiGHS: {res.message}")
+            if res.mip_dual_bound is not None:
+                bound = constant + float(res.mip_dual_bound) / scale
+            x = np.asarray(res.x, dtype=float)
+            choice = self._choice(x[:size], cand)
+            realised = t.copy()
+            realised[cells] = x[size:] * t_hi
+            objective_value = constant + float(res.fun) / scale
+            if res.status != 0:  # time or node limit with an incumbent
+                return _MilpOutcome("failed", choice, objective_value, bound, res.mip_gap, solves,
+                                    nodes, cuts, f"HiGHS: {res.message}")
+            added = self._cuts(checks, choice, cand, realised[choice], rows,
+                               linear, unit_w, unit_s, unit_d, unit_v, relaxed=n_tau > 0)
+            cuts += added
+            if not added or (n_tau and solves >= MAX_RELAXED_ROUNDS):
+                # a relaxation stopped early is still a relaxation: its optimum bounds
+                return _MilpOutcome("optimal", choice, objective_value, min(bound, objective_value),
+                                    float(res.mip_gap or 0.0), solves, nodes, cuts,
+                                    tolerances=realised[choice])
+        return _MilpOutcome("failed", choice, objective_value, bound, None, solves, nodes, cuts,
+                            f"lazy cuts did not converge in {MAX_CUT_ROUNDS} MILP solves")
+
+    @staticmethod
+    def _choice(x, cand: _Candidates) -> np.ndarray:
+        """The candidate each contributor takes (largest x in its block)."""
+        x = np.asarray(x, dtype=float)
+        order = np.lexsort((-x, cand.owner))
+        return order[cand.starts]
+
+    def _cuts(self, checks, choice, cand, t_chosen, rows: _Rows, linear,
+              unit_w, unit_s, unit_d, unit_v, relaxed: bool) -> int:
+        """Add cuts for every requirement the choice misses; returns how many.
+
+        ``t_chosen`` is each contributor's tolerance at the MILP solution. Two kinds of
+        cut, both valid for every choice that meets the requirement:
+
+        - *dominance* (points only): the fallout (or the worst case) only grows with each
+          contributor's t and σ = f·t, so every choice at least as loose as this one in
+          every contributor of the requirement fails too: at least one contributor must
+          take a candidate strictly tighter in some share. It removes this choice, so the
+          loop ends after finitely many solves.
+        - *tangent* (mean shift): with σ_i linear in the choice and u = σ*/‖σ*‖ at the
+          failing choice, Cauchy-Schwarz gives u·σ ≤ ‖σ‖, and for concave decreasing g,
+          g(δ) ≤ g(δ*) + g'(δ*)(δ − δ*): ``u·σ − g'(δ*)·δ ≤ g(δ*) − g'(δ*)·δ*``.
+
+        With lower-bound cells (``relaxed``) only tangent cuts are added, and worst case
+        and rss are not checked (the relaxation may pass them optimistically).
+        """
+        owner = cand.owner
+        added = 0
+        in_chain = np.zeros(len(self.options), dtype=bool)
+        f = cand.factor[choice]
+        for r, kind, bound, lim in checks:
+            if relaxed and kind != "mean-shift":
+                continue
+            req = self.requirements[r]
+            u_w, u_s, u_d = unit_w[r][choice], unit_s[r][choice], unit_d[r][choice]
+            if kind == "worst-case":
+                ok = float(u_w @ t_chosen) <= bound * (1 + CHECK_RTOL)
+            elif kind == "rss":
+                sigma = float(np.sqrt(np.sum((u_s * t_chosen) ** 2)))
+                ok = sigma <= bound * (1 + CHECK_RTOL)
+            else:
+                sigma_i = u_s * t_chosen
+                sigma = float(np.sqrt(np.sum(sigma_i**2)))
+                delta = float(u_d @ t_chosen)
+                allowed = mean_shift_allowance(req.nominal, delta, lim)[0] if delta < bound else 0.0
+                ok = sigma <= allowed * (1 + (FALLOUT_RTOL if relaxed else CHECK_RTOL))
+            if ok:
+                continue
+            if not relaxed:
+                # dominance cut over the contributors this requirement involves
+                t = cand.tolerance
+                shares = {
+                    "worst-case": (unit_w[r] * t,),
+                    "rss": (unit_v[r] * t * t,),
+                    "mean-shift": (unit_s[r] * t, unit_d[r] * t),
+                }[kind]
+                in_chain[:] = False
+                for share in shares:
+                    in_chain |= np.maximum.reduceat(share, cand.starts) > 0
+                dominated = in_chain[owner].copy()
+                for share in shares:
+                    dominated &= share >= share[choice][owner]
+                coef = np.concatenate([dominated.astype(float), np.zeros(rows.size - cand.size)])
+                rows.add(coef, float(np.count_nonzero(in_chain) - 1))
+                added += 1
+            if kind == "mean-shift" and sigma > 0 and lim.fallout <= TANGENT_MAX_FALLOUT:
+                point = min(delta, bound * (1 - 1e-12))
+                g, slope, _ = mean_shift_allowance(req.nominal, point, lim)
+                slope = min(slope, 0.0)
+                u = sigma_i / sigma  # per contributor
+                coef = linear(u[owner] * unit_s[r]) - slope * linear(unit_d[r])
+                rhs = g - slope * point
+                self._tangents.setdefault(r, []).append((u, rhs, slope))
+                norm = _row_norm(coef, rhs)
+                rows.add(coef / norm, rhs / norm)
+                added += 1
+        return added
+
+    # ------------------------------------------------------------------ results
+
+    def _resolved_case(self, chosen_options) -> Case:
+        """The case with each contributor's chosen process as its only option."""
+        contributors = []
+        for c, o in zip(self.case.contributors, chosen_options):
+            if not c.processes:
+                contributors.append(c)
+                continue
+            p = c.options()[o.index]
+            cp = p.cp if p.cp is not None else c.cp
+            contributors.append(replace(c, processes=(), limits=p.limits, cost=p.cost, cp=cp))
+        return replace(self.case, contributors=tuple(contributors))
+
+    def _option_of(self, cand: _Candidates, choice) -> list[_Option]:
+        out = []
+        for i, j in enumerate(choice):
+            out.append(next(o for o in self.options[i] if o.index == cand.option[j]))
+        return out
+
+    def _baseline_unit_costs(self) -> np.ndarray:
+        """Cost of one part at the current tolerance: the cheapest option that offers it."""
+        out = np.full(len(self.case.contributors), np.nan)
+        for i, c in enumerate(self.case.contributors):
+            best = math.inf
+            for p in c.options():
+                if p.cost is None:
+                    best = min(best, 0.0)
+                    continue
+                if not _within(c.tolerance, p.limits) and c.processes:
+                    continue
+                value = _cost_at(p.cost, np.array([c.tolerance]))
+                if value is not None and math.isfinite(value[0]):
+                    best = min(best, float(value[0]))
+            out[i] = best if math.isfinite(best) else np.nan
+        return out
+
+    def _result(self, chosen_options, t, limits, *, status, message, gap, iterations,
+                labels=None, requirements=None, solver=SOLVER_NAME):
+        """The :class:`Allocation` for a choice, re-checked by the shared numpy check."""
+        problem = AllocationProblem(self._resolved_case(chosen_options), self.model, self.fix)
+        problem.processes = tuple(o.name for o in chosen_options)
+        rtol = WORST_CASE_RTOL if self.model == "worst-case" else FALLOUT_RTOL
+        if status == "optimal" and not problem.feasible(t, limits, rtol=rtol):
+            status, message = "failed", "the chosen tolerances failed the re-check: " + message
+        alloc = problem.result(t, limits, status=status, message=message, solver=solver,
+                               iterations=iterations, gap=gap)
+        # the current cost of a contributor with processes: its cheapest process that
+        # offers the current tolerance (the continuous solver's problem knows only one)
+        baseline = self._baseline_unit_costs()
+        alloc._unit_current = baseline
+        alloc.current_cost = float(np.sum(self.counts * baseline))
+        if requirements is not None:
+            alloc.requirements = list(requirements)
+        if labels is not None and any(labels):
+            alloc.grades = {n: g for n, g in zip(self.case.names, labels) if g}
+        return alloc
+
+    def _infeasible(self, limits, message):
+        alloc = self.reference.infeasible(limits, message, SOLVER_NAME)
+        alloc.processes = {n: "" for n in self.case.names}
+        return alloc
+
+    # ------------------------------------------------------------------ solve
+
+    def solve(self, overrides=None):
+        """Allocate with the case's limits, or with ``overrides``.
+
+        Parameters
+        ----------
+        overrides : dict, optional
+            Requirement name -> dict with any of ``lower``, ``upper``, ``fallout_ppm``.
+
+        Returns
+        -------
+        Allocation
+            With ``processes`` (chosen process per contributor), ``gap`` (0 when every
+            option is discrete), and with rounding ``unrounded_cost`` and
+            ``rounding_cost`` [currency].
+        """
+        limits = self.reference.limits(overrides)
+        self._tangents = {}  # requirement -> [(u, rhs, g'(δ))]: mean-shift cuts for these limits
+        if self.model == "mean-shift":
+            for req, lim in zip(self.requirements, limits):
+                if lim.fallout >= 0.5:
+                    raise UsageError(
+                        f"requirement '{req.name}': a fallout target of {lim.fallout_ppm:g} ppm "
+                        "(50 % or more) is not supported with mean shift"
+                    )
+        reason = self.reference.diagnose(limits)
+        if reason:
+            return self._finish_rounding(self._infeasible(limits, reason), overrides)
+        if self.has_continuous:
+            alloc = self._solve_with_polish(limits, overrides)
+        else:
+            alloc = self._solve_points(limits)
+        return self._finish_rounding(alloc, overrides)
+
+    def _solve_points(self, limits):
+        """Every option is a set of points: one exact MILP."""
+        cand = self.candidates()
+        out = self._solve_milp(cand, limits)
+        if out.status == "infeasible":
+            return self._infeasible(limits, self._milp_infeasible_message())
+        if out.choice is None:
+            return self._failed(limits, out.message)
+        chosen = self._option_of(cand, out.choice)
+        gap = out.mip_gap if out.status == "optimal" else self._gap(out.objective, out.bound)
+        what = "exact choice" if out.status == "optimal" else "best choice found"
+        message = (
+            f"{what} among {cand.size} candidate (process, tolerance) pairs by HiGHS "
+            f"(MILP, gap {_g(gap or 0.0)}; {out.solves} solve{'s' if out.solves > 1 else ''}"
+            + (f", {out.cuts} lazy cuts" if out.cuts else "") + "), re-checked against every requirement"
+        )
+        if out.status != "optimal":
+            message += f"; {out.message}"
+        return self._result(chosen, cand.value[out.choice], limits,
+                            status="optimal" if out.status == "optimal" else "failed",
+                            message=message, gap=gap, iterations=out.solves,
+                            labels=list(cand.label[out.choice]))
+
+    def _failed(self, limits, message):
+        alloc = self.reference.result(None, limits, status="failed", message=message, solver=SOLVER_NAME)
+        alloc.processes = {n: "" for n in self.case.names}
+        return alloc
+
+    def _milp_infeasible_message(self) -> str:
+        what = "rounded values" if self.rounding is not None else "offered options"
+        return (
+            f"no combination of the {what} meets every requirement (HiGHS: MILP infeasible), "
+            "although each contributor's tightest option alone would"
+        )
+
+    @staticmethod
+    def _gap(cost, bound):
+        if cost is None or bound is None or not cost > 0:
+            return None
+        return max(0.0, (cost - bound) / cost)
+
+    def _polish(self, cand, choice, overrides, cache):
+        """Continuous optimum with the processes (and listed tolerances) of ``choice`` held."""
+        chosen = self._option_of(cand, choice)
+        held = dict(self.fix)
+        for c, o, j in zip(self.case.contributors, chosen, choice):
+            if o.kind == "points" and not c.fixed:
+                held[c.name] = float(cand.value[j])
+        key = tuple((o.index, held.get(c.name)) for c, o in zip(self.case.contributors, chosen))
+        if key in cache:
+            return cache[key]
+        from .exact import ExactAllocation, applicable
+        from .continuous import CompiledAllocation
+        from .problem import prepare
+
+        resolved = self._resolved_case(chosen)
+        try:
+            problem = prepare(resolved, self.model, held)
+            solver = ExactAllocation(problem) if applicable(problem) else CompiledAllocation.from_problem(problem)
+            alloc = solver.solve(overrides)
+        except CaseError:
+            alloc = None  # e.g. a table that is not convex: keep the grid point
+        cache[key] = (chosen, alloc)
+        return cache[key]
+
+    def _solve_with_polish(self, limits, overrides):
+        """Grid MILP, conic polish with the processes held, refined lower bound."""
+        points = self.candidates()
+        primal = self._solve_milp(points, limits)
+        if primal.status == "infeasible":
+            return self._infeasible(limits, self._milp_infeasible_message())
+        if primal.choice is None:
+            return self._failed(limits, primal.message)
+        chosen = self._option_of(points, primal.choice)
+        best = (primal.objective, chosen, points.value[primal.choice], None, "grid point")
+        cache = {}
+        polish_solver = ""
+
+        def consider(cand, choice):
+            nonlocal best, polish_solver
+            opts, alloc = self._polish(cand, choice, overrides, cache)
+            if alloc is not None and alloc.success and alloc.total_cost < best[0]:
+                best = (alloc.total_cost, opts, alloc.allocated_array(), alloc.requirements, "polished")
+                polish_solver = alloc.solver
+
+        consider(points, primal.choice)
+        bound, solves, rounds = None, primal.solves, 0
+        lower_note = ""
+        for rounds in range(1, MAX_REFINE + 2):
+            cells = self.candidates(cells=True)
+            low = self._solve_milp(cells, limits)
+            solves += low.solves
+            if low.bound is not None:
+                bound = low.bound if bound is None else max(bound, low.bound)
+            if low.choice is None:
+                lower_note = f"; lower bound: {low.message}"
+                break
+            consider(cells, low.choice)
+            gap = self._gap(best[0], bound)
+            if gap is not None and gap <= self.gap_target or rounds > MAX_REFINE:
+                break
+            self._refine(cells, low.choice)
+        gap = self._gap(best[0], bound)
+        cost, chosen, t, requirements, how = best
+        message = (
+            f"processes chosen by HiGHS (MILP over a {self.grid_points}-point grid per process), "
+            + ("tolerances polished by the conic solver with those processes held"
+               if how == "polished" else "tolerances at grid points (polish did not improve)")
+            + f"; relative gap to a proven lower bound {_g(gap) if gap is not None else 'unknown'}"
+            + f" after {rounds} refinement round{'s' if rounds != 1 else ''}{lower_note}"
+        )
+        solver = SOLVER_NAME + (f"+{polish_solver}" if how == "polished" and polish_solver else "")
+        alloc = self._result(chosen, t, limits, status="optimal", message=message, gap=gap,
+                             iterations=solves, requirements=requirements, solver=solver)
+        alloc.lower_bound = bound
+        return alloc
+
+    def _refine(self, cells: _Candidates, choice):
+        """Split the grid cells the lower bound picked into :data:`REFINE_SPLIT` parts."""
+        for j in choice:
+            if not cells.cell[j]:
+                continue
+            i = cells.owner[j]
+            o = next(o for o in self.options[i] if o.index == cells.option[j])
+            lo, hi = cells.tolerance[j], cells.value[j]
+            inner = np.geomspace(lo, hi, REFINE_SPLIT + 1)[1:-1]
+            o.grid = np.union1d(o.grid, inner)
+
+    # ------------------------------------------------------------------ rounding
+
+    def _finish_rounding(self, alloc, overrides):
+        """Attach the unrounded optimum and the cost of rounding."""
+        alloc.rounding = None if self.rounding is None else rounding_values.describe(self.rounding)
+        alloc.unrounded_cost = None
+        alloc.rounding_cost = None
+        if self.rounding is None:
+            return alloc
+        unrounded = self.unrounded_solver().solve(overrides)
+        alloc.unrounded = unrounded
+        if unrounded.total_cost is not None:
+            alloc.unrounded_cost = unrounded.total_cost
+            if alloc.total_cost is not None:
+                alloc.rounding_cost = alloc.total_cost - unrounded.total_cost
+                alloc.message += (
+                    f"; rounded to {alloc.rounding}: cost of rounding {alloc.rounding_cost:+.4g}"
+                    f" over the unrounded optimum {unrounded.total_cost:.6g}"
+                )
+        return alloc
+
+    def unrounded_solver(self):
+        """The solver of the same problem without rounding."""
+        plain = replace(self.case, allocation=replace(self.case.allocation, rounding=None))
+        if needs_discrete(plain, self.fix):
+            return DiscreteAllocation(plain, self.model, self.fix, grid_points=self.grid_points,
+                                      gap_target=self.gap_target, time_limit=self.time_limit)
+        from .continuous import CompiledAllocation
+        from .exact import ExactAllocation, applicable
+        from .problem import prepare
+
+        problem = prepare(plain, self.model, self.fix)
+        return ExactAllocation(problem) if applicable(problem) else CompiledAllocation.from_problem(problem)
+
+
+def solver_for(case: Case, model: str, *, fix=None, **options) -> DiscreteAllocation:
+    """A :class:`DiscreteAllocation` (``.solve(overrides=None) -> Allocation``)."""
+    return DiscreteAllocation(case, model, fix, **options)
+
+
+def allocate_discrete(case: Case, model: str | None = None, *, fix=None, overrides=None, **options):
+    """Least-cost process and tolerance choice for ``case`` under one stack model.
+
+    Parameters
+    ----------
+    case : Case
+    model : {'worst-case', 'rss', 'mean-shift'}, optional
+        Default: the first of the case's ``[allocation].models``.
+    fix : dict, optional
+        Contributor name -> ± tolerance to hold [length].
+    overrides : dict, optional
+        Requirement name -> dict of ``lower`` / ``upper`` / ``fallout_ppm``.
+    **options
+        ``grid_points``, ``gap_target``, ``rounding``, ``time_limit`` of
+        :class:`DiscreteAllocation`.
+
+    Returns
+    -------
+    Allocation
+
+    References
+    ----------
+    .. [1] K. W. Chase, W. H. Greenwood, B. G. Loosli and L. F. Hauglund, "Least cost
+       tolerance allocation for mechanical assemblies with automated process selection",
+       Manufacturing Review 3(1):49-59, 1990.
+    .. [2] Q. Huangfu and J. A. J. Hall, "Parallelizing the dual revised simplex method",
+       Mathematical Programming Computation 10:119-142, 2018.
+    """
+    model = model or (case.allocation.models[0] if case.allocation.models else "worst-case")
+    return solver_for(case, model, fix=fix, **options).solve(overrides)
