@@ -32,6 +32,7 @@ __all__ = [
     "series_style",
     "new_figure",
     "finish_axes",
+    "log_axis",
     "render",
     "format_for",
     "save",
@@ -181,6 +182,27 @@ def _value_label(vary: str, requirement: str, units: str) -> str:
     return f"{vary} limit of {requirement} [{units}]"
 
 
+def log_axis(ax) -> None:
+    """A log x axis labelled in plain numbers (0.01, 1, 1,000, 100,000), not powers of ten.
+
+    Plain labels read better for ppm and need no mathtext (which is slow to start).
+    """
+    from matplotlib import ticker
+
+    ax.set_xscale("log")
+    ax.xaxis.set_major_locator(ticker.LogLocator(base=10.0))
+    ax.xaxis.set_major_formatter(ticker.FuncFormatter(lambda x, _: _plain(x)))
+    ax.xaxis.set_minor_formatter(ticker.NullFormatter())
+
+
+def _plain(x: float) -> str:
+    if x >= 1:
+        return f"{x:,.0f}"
+    if x < 1e-6:
+        return f"{x:g}"
+    return f"{x:.10f}".rstrip("0")
+
+
 def _runs(mask):
     """Index ranges ``[(i, j), ...]`` of consecutive True values."""
     out, start = [], None
@@ -260,7 +282,7 @@ def frontier_figure(frontier):
                     (x, y), xytext=(8, 8), textcoords="offset points", fontsize="small")
 
     if log:
-        ax.set_xscale("log")
+        log_axis(ax)
     if frontier.vary == "lower":
         ax.invert_xaxis()
     x_label = _value_label(frontier.vary, frontier.requirement, frontier.units)
@@ -325,7 +347,7 @@ def economics_figure(economics):
     if economics.current_ppm is not None:
         ax.axvline(economics.current_ppm, color="0.5", linewidth=0.8, linestyle=(0, (2, 2)),
                    label=f"current target {economics.current_ppm:g} ppm")
-    ax.set_xscale("log")
+    log_axis(ax)
     ax.set_xlabel(f"fallout target of {economics.requirement} [ppm]")
     ax.set_ylabel(f"cost per assembly{_money(money)}")
     ax.set_title(
