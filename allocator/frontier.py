@@ -41,7 +41,7 @@ VARY = ("lower", "upper", "fallout_ppm")
 MAX_POINTS = 2000
 MIN_POINTS = 2
 AUTO_FALLOUT_RANGE = (0.1, 10000.0)  # ppm: the span shown when nothing else is said
-VERIFY_RTOL = 1e-9  # a batched point must meet the requirement to this (relative)
+VERIFY_RTOL = 1e-9  # re-check tolerance when the solver package does not name its own
 STATUSES = ("optimal", "partial", "infeasible", "failed")
 
 
@@ -279,6 +279,11 @@ class BatchedDual:
         t_held = p.held[held]
         self.held_part = float(np.sum(p.counts[held] * weight[held] * t_held**self.m))
         self.t_held_full = np.where(free, 0.0, np.nan_to_num(p.held))
+        # what still counts as met: the allocation's own re-check tolerance
+        from .solve import problem as problem_module
+
+        name = "WORST_CASE_RTOL" if p.model == "worst-case" else "FALLOUT_RTOL"
+        self.rtol = float(getattr(problem_module, name, VERIFY_RTOL))
         # the multipliers beyond which every contributor sits at its loosest / tightest
         pulled = self.w > 0
         if pulled.any():
@@ -442,9 +447,26 @@ class LimitSweep:
         return {self.requirement: {self.vary: float(value)}}
 
     def solve(self, value):
-        """The full :class:`~allocator.solve.result.Allocation` at one value."""
+        """The full :class:`~allocator.solve.result.Allocation` at one value.
+
+        A solver that raises an arithmetic error (overflow in a root search, say) gives a
+        'failed' point naming the error, so one bad point does not lose the sweep.
+        """
         self.solves += 1
-        return self.solver.solve(self.overrides(value))
+        overrides = self.overrides(value)
+        try:
+            return self.solver.solve(overrides)
+        except ArithmeticError as err:
+            if self.reference is None:
+                raise
+            return self.reference.result(
+                None,
+                self.reference.limits(overrides),
+                status="failed",
+                message=f"the {self.model} solver raised {type(err).__name__} ({err}) at "
+                f"{self.vary} = {float(value):.6g}",
+                solver=type(self.solver).__name__,
+            )
 
     def feasible(self, value) -> bool:
         """True when the tightest tolerances meet every requirement with this value."""
@@ -485,9 +507,10 @@ class LimitSweep:
         for i, reason in enumerate(reasons):
             if reason is not None:
                 out[i] = _Point(None, "infeasible", reason)
+        rtol = self.batch.rtol
         for row, i in enumerate(todo):
             t = problem.full(t_free[row])
-            if problem.feasible(t, limits[i], rtol=VERIFY_RTOL):
+            if problem.feasible(t, limits[i], rtol=rtol):
                 out[i] = _Point(problem.total_cost(t), "optimal", "")
             else:  # not verified: let the model's own solver decide this point
                 self.fallbacks += 1
