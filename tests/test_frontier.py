@@ -1,0 +1,601 @@
+"""Trade-off frontier, fallout economics, their plots and the frontier command.
+
+What each check compares against (outside the code under test):
+
+- monotonicity: loosening a limit enlarges the feasible set, so the optimal value cannot
+  rise (Boyd & Vandenberghe 2004, Convex Optimization, §5.6.1, the perturbed problem's
+  optimal value p*(u) is non-increasing in the relaxation u);
+- every point against an independent ``allocate`` of a copy of the case with that limit
+  written into the requirement (a fresh solver, no overrides, no batching), to 1e-7;
+- the batched dual against ``scipy.optimize.minimize`` (SLSQP) on an invented case;
+- model ordering: the mean-shift feasible set lies inside the rss one (the band of means
+  contains the nominal; Greenwood & Chase 1987, estimated mean shift), so rss ≤ mean shift
+  always; worst case ≥ mean shift where exact enumeration of the tolerance box's vertices
+  shows that every worst-case-feasible design also meets the mean-shift target;
+- the economic optimum against the closed form of Lagrange multiplier allocation for
+  reciprocal costs under rss (Chase, Greenwood, Loosli & Hauglund 1990, Manufacturing
+  Review 3(1)) with the normal quantile from ``scipy.stats.norm``, against a brute-force
+  scan of independent allocations, and against the stationarity condition
+  dM/dp = −scrap_cost·1e-6 by finite differences;
+- plot files: PNG signature (PNG specification, ISO/IEC 15948:2004, §5.2) and SVG parsed
+  as XML with an ``svg`` root (W3C SVG 1.1).
+"""
+
+from __future__ import annotations
+
+import math
+import xml.etree.ElementTree as ET
+from dataclasses import replace
+from itertools import product
+
+import numpy as np
+import pytest
+from click.testing import CliRunner
+from hypothesis import HealthCheck, given, note, settings
+from hypothesis import strategies as st
+from scipy import optimize, stats
+
+from allocator.cli.main import cli
+from allocator.economics import (
+    annual_cost,
+    cost_per_assembly,
+    fallout_economics,
+    minimise_log,
+    scrap_cost_per_assembly,
+)
+from allocator.errors import UsageError
+from allocator.frontier import BatchedDual, LimitSweep, frontier
+from allocator.model import CostCurve, Economics, FrontierSettings
+from allocator.plots import render_economics_plot, render_frontier_plot
+from allocator.solve import allocate
+from helpers import chain_requirement, contributor, make_case
+
+PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
+REL = 1e-7
+
+
+def _settings(examples: int):
+    return settings(
+        max_examples=examples,
+        deadline=None,
+        derandomize=True,
+        database=None,
+        print_blob=True,
+        suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large],
+    )
+
+
+def _with_limit(case, name, vary, value):
+    """A copy of ``case`` with the requirement's limit (or target) replaced."""
+    reqs = tuple(replace(r, **{vary: float(value)}) if r.name == name else r for r in case.requirements)
+    return replace(case, requirements=reqs)
+
+
+def _close(a, b, rel=REL):
+    return abs(a - b) <= rel * max(abs(a), abs(b), 1e-12)
+
+
+# --------------------------------------------------------------------------- invented cases
+
+
+@st.composite
+def invented_cases(draw, mean_shift=False):
+    """2-5 contributors, one linear requirement with both limits around the nominal."""
+    n = draw(st.integers(2, 5))
+    contributors, chain = [], {}
+    for i in range(n):
+        lo = draw(st.floats(0.002, 0.02))
+        hi = lo * draw(st.floats(3.0, 20.0))
+        kind = draw(st.sampled_from(["reciprocal", "reciprocal-power", "exponential"]))
+        a = draw(st.floats(0.0, 2.0))
+        if kind == "reciprocal":
+            cost = CostCurve("reciprocal", a=a, b=draw(st.floats(1e-3, 2e-2)))
+        elif kind == "reciprocal-power":
+            cost = CostCurve("reciprocal-power", a=a, b=draw(st.floats(1e-5, 1e-3)), k=draw(st.floats(0.6, 2.5)))
+        else:
+            cost = CostCurve("exponential", a=a, b=draw(st.floats(0.5, 5.0)), c=draw(st.floats(5.0, 80.0)))
+        distribution = draw(st.sampled_from(["normal", "normal", "uniform"]))
+        extra = {}
+        if distribution == "normal":
+            extra["cp"] = draw(st.floats(1.0, 1.5))
+        if mean_shift:
+            extra["mean_shift"] = draw(st.floats(0.0, 0.3))
+        contributors.append(contributor(
+            f"c{i}", nominal=draw(st.floats(1.0, 50.0)), tolerance=math.sqrt(lo * hi), limits=(lo, hi),
+            cost=cost, distribution=distribution, count=draw(st.integers(1, 2)), **extra,
+        ))
+        chain[f"c{i}"] = draw(st.sampled_from([1.0, -1.0])) * draw(st.floats(0.5, 2.0))
+    nominal = sum(chain[c.name] * c.count * c.nominal for c in contributors)
+    spread = sum(abs(chain[c.name]) * c.count * c.tolerance for c in contributors)
+    lower = nominal - spread * draw(st.floats(0.8, 1.5))
+    upper = nominal + spread * draw(st.floats(0.8, 1.5))
+    ppm = draw(st.sampled_from([10.0, 100.0, 2700.0]))
+    req = chain_requirement("gap", chain, lower=lower, upper=upper, fallout_ppm=ppm)
+    return make_case(contributors, [req], models=("worst-case", "rss", "mean-shift"))
+
+
+def _sweep_values(case, vary):
+    """Values from tighter than any model can meet to looser than every tolerance needs."""
+    req = case.requirements[0]
+    nominal = sum(req.chain[c.name] * c.count * c.nominal for c in case.contributors)
+    tight = sum(abs(req.chain[c.name]) * c.count * c.limits[0] for c in case.contributors)
+    loose = sum(abs(req.chain[c.name]) * c.count * c.limits[1] for c in case.contributors)
+    if vary == "upper":
+        return np.linspace(nominal + 0.3 * tight, nominal + 1.5 * loose, 6)
+    if vary == "lower":
+        return np.linspace(nominal - 1.5 * loose, nominal - 0.3 * tight, 6)
+    return np.geomspace(0.01, 50000.0, 6)
+
+
+def _loosening(values, vary):
+    """Indices in the order in which the swept quantity loosens."""
+    order = list(range(len(values)))
+    return order[::-1] if vary == "lower" else order
+
+
+@pytest.mark.parametrize("vary", ["upper", "lower", "fallout_ppm"])
+@_settings(10)
+@given(case=invented_cases())
+def test_frontier_monotone_and_equal_to_independent_allocations(case, vary):
+    values = _sweep_values(case, vary)
+    front = frontier(case, vary=vary, values=values)
+    note(repr(front))
+    for model in front.models:
+        costs = front.costs[model]
+        seen_feasible = False
+        previous = math.inf
+        for i in _loosening(front.values, vary):
+            # independent allocation with the limit written into the case
+            single = allocate(_with_limit(case, "gap", vary, front.values[i]), model)
+            assert front.statuses[model][i] == single.status, (model, front.values[i], single.message)
+            if single.total_cost is None:
+                assert costs[i] is None
+                # feasibility only grows as the limit loosens (monotone constraint)
+                assert not seen_feasible, (model, "infeasible after feasible", front.values[i])
+                continue
+            seen_feasible = True
+            assert _close(costs[i], single.total_cost), (model, front.values[i], costs[i], single.total_cost)
+            assert costs[i] <= previous * (1 + 1e-9) + 1e-12, (model, front.values[i], costs[i], previous)
+            previous = costs[i]
+
+
+def _mean_shift_inside_worst_case(case) -> bool:
+    """Exact enumeration: at every vertex of the tolerance box, the worst-case-feasible
+    design also meets the mean-shift target.
+
+    For tolerances t with W(t) = Σ n|a|t ≤ r (r = distance from nominal to the nearer
+    limit), the worst mean sits at most δ = Σ n|a|m t from the nominal, so its distance to
+    either limit is at least W − δ; the two-sided normal fallout is then at most
+    2Φ(−(W − δ)/σ). ``g(t) = Σ n|a|(1 − m)t − z·σ(t)`` (z = Φ⁻¹(1 − p/2)) is concave and
+    positively homogeneous, so g ≥ 0 on the box iff g ≥ 0 at its vertices.
+    """
+    req = case.requirements[0]
+    a = np.array([req.chain[c.name] for c in case.contributors])
+    n = case.counts
+    f = case.sigma_factors
+    m = case.mean_shifts
+    z = stats.norm.isf(req.fallout_ppm * 1e-6 / 2.0)
+    for corner in product(*[c.limits for c in case.contributors]):
+        t = np.array(corner)
+        sigma = math.sqrt(np.sum(n * (a * f * t) ** 2))
+        if np.sum(n * np.abs(a) * (1 - m) * t) < z * sigma:
+            return False
+    return True
+
+
+@_settings(6)
+@given(case=invented_cases(mean_shift=True))
+def test_model_order_rss_below_mean_shift_below_worst_case(case):
+    values = _sweep_values(case, "upper")[1::2]  # 3 values: the conic mean-shift path is slower
+    front = frontier(case, vary="upper", values=values)
+    ordered = _mean_shift_inside_worst_case(case)
+    note(f"worst case provably above mean shift: {ordered}")
+    for i, value in enumerate(front.values):
+        rss, shift, worst = (front.costs[m][i] for m in ("rss", "mean-shift", "worst-case"))
+        if shift is not None:
+            assert rss is not None and rss <= shift * (1 + 1e-9), (value, rss, shift)
+        if ordered and worst is not None:
+            assert shift is not None and shift <= worst * (1 + 1e-9), (value, shift, worst)
+
+
+def test_model_order_on_a_case_where_it_is_provable():
+    # 6 alike contributors, cp 1.33, small mean shifts: enumeration proves the order
+    cs = [contributor(f"p{i}", nominal=5.0 + i, tolerance=0.02, limits=(0.01, 0.05), cp=1.33,
+                      mean_shift=0.1, cost=CostCurve("reciprocal", a=0.2, b=0.004 * (1 + 0.2 * i)))
+          for i in range(6)]
+    req = chain_requirement("gap", {f"p{i}": (1 if i % 2 else -1) for i in range(6)},
+                            lower=2.75, upper=3.25, fallout_ppm=2700)  # nominal response 3
+    case = make_case(cs, [req], models=("worst-case", "rss", "mean-shift"))
+    assert _mean_shift_inside_worst_case(case)
+    front = frontier(case, vary="upper", values=[3.1, 3.15, 3.2, 3.25])
+    assert front.status == "optimal", front.message
+    for i in range(len(front.values)):
+        rss, shift, worst = (front.costs[m][i] for m in ("rss", "mean-shift", "worst-case"))
+        assert rss <= shift * (1 + 1e-9) and shift <= worst * (1 + 1e-9), (front.values[i], rss, shift, worst)
+        assert front.savings("rss")[i] == pytest.approx(worst - rss)
+
+
+def test_conic_mean_shift_points_equal_independent_allocations():
+    # free mean shifts: the compiled conic problem re-solved with new parameters
+    cs = [contributor("a", nominal=30.0, tolerance=0.03, limits=(0.005, 0.1), mean_shift=0.2,
+                      cost=CostCurve("reciprocal", a=1.0, b=0.02)),
+          contributor("b", nominal=10.0, tolerance=0.02, limits=(0.005, 0.1), mean_shift=0.1,
+                      cost=CostCurve("reciprocal-power", a=0.3, b=2e-4, k=1.5)),
+          contributor("c", nominal=19.8, tolerance=0.02, limits=(0.005, 0.1), distribution="uniform",
+                      cost=CostCurve("exponential", a=0.1, b=1.0, c=40.0))]
+    req = chain_requirement("gap", {"a": 1, "b": -1, "c": -1}, lower=0.05, upper=0.35, fallout_ppm=100)
+    case = make_case(cs, [req], models=("mean-shift",))
+    front = frontier(case, vary="upper", values=[0.25, 0.3, 0.4])
+    assert "conic" in front.solvers["mean-shift"]
+    for value, cost in zip(front.values, front.costs["mean-shift"]):
+        single = allocate(_with_limit(case, "gap", "upper", value), "mean-shift")
+        assert single.success and _close(cost, single.total_cost), (value, cost, single.total_cost)
+
+
+def test_batched_dual_against_slsqp():
+    """The batched closed-form dual against scipy's SLSQP on the same problem."""
+    curves = [CostCurve("reciprocal", a=0.5, b=0.006), CostCurve("reciprocal-power", a=0.2, b=2e-4, k=1.7),
+              CostCurve("exponential", a=0.1, b=2.0, c=30.0), CostCurve("reciprocal", a=0.0, b=0.01)]
+    coeff = np.array([1.0, -2.0, 1.0, -1.0])
+    cs = [contributor(f"x{i}", nominal=10.0, tolerance=0.02, limits=(0.002, 0.1), cost=c)
+          for i, c in enumerate(curves)]
+    req = chain_requirement("gap", dict(zip([c.name for c in cs], coeff)), lower=-10.5, upper=-9.5,
+                            fallout_ppm=100)  # nominal response -10
+    case = make_case(cs, [req], models=("rss",))
+    sweep = LimitSweep(case, "rss", "gap", "upper")
+    assert sweep.batch is not None
+    values = [-9.95, -9.9, -9.8]
+    points = sweep.sweep(values)
+    f = 1.0 / 3.0
+    for value, point in zip(values, points):
+        sigma_max = _two_sided_sigma(-10.0, -10.5, value, 100e-6)
+
+        def cost(t):
+            return sum(c.value(x) for c, x in zip(curves, t))
+
+        cons = {"type": "ineq", "fun": lambda t: sigma_max**2 - np.sum((coeff * f * t) ** 2)}
+        res = optimize.minimize(cost, np.full(4, 0.01), method="SLSQP", bounds=[(0.002, 0.1)] * 4,
+                                constraints=[cons], options={"ftol": 1e-14, "maxiter": 500})
+        assert res.success
+        assert point.status == "optimal"
+        assert point.total_cost == pytest.approx(res.fun, rel=1e-6), (value, point.total_cost, res.fun)
+
+
+def _two_sided_sigma(mean, lower, upper, p):
+    """σ with normal fallout p outside [lower, upper] (scipy.stats + brentq)."""
+    f = lambda s: stats.norm.cdf((lower - mean) / s) + stats.norm.sf((upper - mean) / s) - p  # noqa: E731
+    return optimize.brentq(f, 1e-9, 10.0, xtol=1e-15, rtol=1e-15)
+
+
+# --------------------------------------------------------------------------- results and settings
+
+
+def _small_case(**kw):
+    cs = [contributor("a", nominal=20.0, tolerance=0.05, limits=(0.01, 0.2), cost=CostCurve("reciprocal", a=1.0, b=0.02)),
+          contributor("b", nominal=15.0, tolerance=0.05, limits=(0.01, 0.2), cost=CostCurve("reciprocal", a=0.5, b=0.01)),
+          contributor("c", nominal=4.8, tolerance=0.02, limits=(0.005, 0.1), cost=CostCurve("reciprocal", a=0.2, b=0.005))]
+    req = chain_requirement("gap", {"a": 1, "b": -1, "c": -1}, lower=0.05, upper=0.4, fallout_ppm=100)
+    return make_case(cs, [req], models=("worst-case", "rss"), currency="EUR", **kw)
+
+
+def test_result_frame_points_and_flat_worst_case_under_fallout():
+    case = _small_case()
+    front = frontier(case, vary="fallout_ppm", range=(1.0, 10000.0), points=5)
+    frame = front.to_frame()
+    assert list(frame.columns[:4]) == ["value", "model", "total_cost", "status"]
+    assert len(frame) == 10 and set(frame["model"]) == {"worst-case", "rss"}
+    assert np.allclose(front.values, np.geomspace(1.0, 10000.0, 5))
+    assert front.flat_models == ("worst-case",)
+    assert any("flat" in n for n in front.notes)
+    worst = front.costs["worst-case"]
+    assert all(c == worst[0] for c in worst)
+    rows = frame[frame.model == "rss"]
+    assert np.allclose(rows.saving_vs_worst_case, worst[0] - rows.total_cost)
+    assert front.points[0].keys() == {"value", "model", "total_cost", "status"}
+    # the current design: cost of the case's own tolerances, at its own target
+    current = allocate(case, "rss")
+    assert front.current["value"] == 100.0
+    assert front.current["total_cost"] == pytest.approx(current.current_cost)
+    assert front.current["optimal"]["rss"] == pytest.approx(current.total_cost)
+
+
+def test_infeasible_values_are_flagged_not_solved():
+    case = _small_case()
+    front = frontier(case, vary="upper", values=[0.08, 0.3, 0.4])
+    assert front.statuses["worst-case"][0] == "infeasible" and front.costs["worst-case"][0] is None
+    assert front.messages["worst-case"][0]
+    assert front.status == "partial" and front.success
+    nothing = frontier(case, vary="upper", values=[0.06, 0.07])
+    assert nothing.status == "infeasible" and not nothing.success
+
+
+def test_defaults_come_from_the_frontier_table():
+    case = _small_case(frontier=FrontierSettings(requirement="gap", vary="lower", range=(-0.2, 0.0), points=4))
+    front = frontier(case)
+    assert front.vary == "lower" and front.range_source == "case"
+    assert np.allclose(front.values, np.linspace(-0.2, 0.0, 4))
+    # another quantity: the table's range does not apply; an automatic one is chosen
+    other = frontier(case, vary="upper", points=4)
+    assert other.range_source == "automatic" and any("automatic" in n for n in other.notes)
+    first = allocate(_with_limit(case, "gap", "upper", other.values[0]), "rss")
+    assert first.success  # the automatic range starts where a model can meet the limit
+    # ends at twice the current distance from the nominal (0.2) to the limit (0.4)
+    assert other.values[-1] == pytest.approx(0.2 + 2 * 0.2, rel=1e-2)
+
+
+@pytest.mark.parametrize(
+    "kwargs, fragment",
+    [
+        ({"requirement": "gpa"}, "did you mean 'gap'"),
+        ({"vary": "uper"}, "did you mean 'upper'"),
+        ({"range": (0.3, 0.2)}, "increasing"),
+        ({"points": 1}, "2 to 2000"),
+        ({"points": 2001}, "2 to 2000"),
+        ({"vary": "fallout_ppm", "range": (0.0, 10.0)}, "> 0"),
+        ({"vary": "upper", "range": (0.0, 0.3)}, "above the lower limit"),
+        ({"models": ("rs",)}, "unknown model"),
+    ],
+)
+def test_bad_arguments(kwargs, fragment):
+    with pytest.raises(UsageError, match=fragment):
+        frontier(_small_case(), **kwargs)
+
+
+def test_missing_limit_cannot_be_varied():
+    case = _small_case()
+    one_sided = replace(case, requirements=(replace(case.requirements[0], lower=None),))
+    with pytest.raises(UsageError, match="no lower limit"):
+        frontier(one_sided, vary="lower")
+
+
+def test_progress_bar_does_not_change_the_answer():
+    case = _small_case()
+    a = frontier(case, vary="upper", values=[0.3, 0.4], progress=True)
+    b = frontier(case, vary="upper", values=[0.3, 0.4])
+    assert a.costs == b.costs
+
+
+# --------------------------------------------------------------------------- economics
+
+
+def test_economics_pure_functions():
+    # hand calculation: 55 per scrapped assembly at 100 ppm is 0.0055 per assembly
+    assert scrap_cost_per_assembly(100.0, 55.0) == pytest.approx(0.0055)
+    assert cost_per_assembly(7.5, 100.0, 55.0) == pytest.approx(7.5055)
+    assert annual_cost(2.0, 1000) == 2000.0 and annual_cost(2.0, None) is None
+    # minimise_log on a function with a known minimiser: x + 100/x is least at x = 10
+    x, value, scan = minimise_log(lambda x: x + 100.0 / x, np.geomspace(0.01, 1e4, 13))
+    assert x == pytest.approx(10.0, rel=1e-6) and value == pytest.approx(20.0)
+    # not finite below 3: the minimum sits on that edge
+    x, _, _ = minimise_log(lambda x: x if x >= 3.0 else math.inf, np.geomspace(1.0, 100.0, 9))
+    assert x == pytest.approx(3.0, rel=1e-9)
+
+
+def _economics_case(scrap=40.0, volume=10000):
+    """Reciprocal costs, normal cp 1, one upper limit, wide tolerance ranges (no clipping)."""
+    b = [0.02, 0.05, 0.01]
+    coeff = [1.0, -1.0, 2.0]
+    cs = [contributor(f"x{i}", nominal=10.0, tolerance=0.01, limits=(1e-5, 10.0), cost=CostCurve("reciprocal", a=0.5, b=bi))
+          for i, bi in enumerate(b)]
+    req = chain_requirement("gap", {f"x{i}": c for i, c in enumerate(coeff)}, upper=20.1, fallout_ppm=100)
+    return make_case(cs, [req], models=("rss",), currency="EUR",
+                     economics=Economics(volume=volume, scrap_cost=scrap)), b, coeff
+
+
+def test_economic_optimum_against_closed_form_brute_force_and_stationarity():
+    case, b, coeff = _economics_case()
+    econ = fallout_economics(case)
+    r = econ.result("rss")
+    assert r.status == "optimal", r.message
+
+    # closed form (Chase et al. 1990, reciprocal costs under rss): with σ_max = d / z(p),
+    # M(p) = Σa + K^{3/2} z(p) / d, K = Σ (b_i |a_i| f)^{2/3}; dM/dp = −s·1e-6 gives
+    # φ(z*) = C / s with C = K^{3/2} / d (p in ppm: dz/dp = −1e-6 / φ(z)).
+    f = 1.0 / 3.0
+    d = 20.1 - sum(coeff) * 10.0
+    K = sum((bi * abs(ai) * f) ** (2.0 / 3.0) for bi, ai in zip(b, coeff))
+    C = K**1.5 / d
+    z_star = math.sqrt(-2.0 * math.log(C * math.sqrt(2 * math.pi) / 40.0))
+    p_star = stats.norm.sf(z_star) * 1e6
+    assert r.optimal_ppm == pytest.approx(p_star, rel=1e-4)
+    manufacturing = 1.5 + C * stats.norm.isf(p_star * 1e-6)
+    assert r.manufacturing_cost == pytest.approx(manufacturing, rel=1e-6)
+    assert r.total_cost == pytest.approx(manufacturing + 40.0 * p_star * 1e-6, rel=1e-6)
+    assert r.annual_total == pytest.approx(r.total_cost * 10000)
+    # at the current target (100 ppm) for comparison
+    assert r.current_manufacturing == pytest.approx(1.5 + C * stats.norm.isf(100e-6), rel=1e-6)
+    assert r.saving_per_assembly > 0
+
+    # brute force: independent allocations on a fine log grid
+    grid = np.geomspace(p_star / 3, p_star * 3, 121)
+    totals = [allocate(_with_limit(case, "gap", "fallout_ppm", p), "rss").total_cost + 40.0 * p * 1e-6 for p in grid]
+    k = int(np.argmin(totals))
+    step = math.log(grid[1] / grid[0])
+    assert abs(math.log(r.optimal_ppm / grid[k])) <= step
+    assert r.total_cost <= min(totals) * (1 + 1e-9)
+
+    # stationarity, by finite differences of independent allocations
+    h = 1e-3 * r.optimal_ppm
+    up = allocate(_with_limit(case, "gap", "fallout_ppm", r.optimal_ppm + h), "rss").total_cost
+    down = allocate(_with_limit(case, "gap", "fallout_ppm", r.optimal_ppm - h), "rss").total_cost
+    slope = (up - down) / (2 * h)
+    assert slope == pytest.approx(-40.0 * 1e-6, rel=1e-3)
+    assert r.slope_numeric == pytest.approx(-40.0 * 1e-6, rel=1e-3)
+    assert r.slope_shadow == pytest.approx(-40.0 * 1e-6, rel=1e-3)
+
+
+def test_economics_needs_scrap_cost_and_a_statistical_model():
+    case, _, _ = _economics_case()
+    with pytest.raises(UsageError, match="scrap"):
+        fallout_economics(replace(case, economics=Economics()))
+    with pytest.raises(UsageError, match="statistical"):
+        fallout_economics(case, models=("worst-case",))
+
+
+def test_economics_optimum_on_the_tightest_edge_is_reported_as_boundary():
+    # scrap so dear that the tightest achievable target is best
+    case, _, _ = _economics_case(scrap=1e9)
+    tight = [replace(c, limits=(0.03, 10.0)) for c in case.contributors]
+    econ = fallout_economics(replace(case, contributors=tuple(tight)))
+    r = econ.result("rss")
+    assert r.status == "boundary" and "tightest" in r.message
+    # the tightest target that those tolerances can meet: normal tail at d / σ(tightest)
+    sigma = math.sqrt(sum((0.03 * a / 3.0) ** 2 for a in (1.0, -1.0, 2.0)))
+    assert r.optimal_ppm == pytest.approx(stats.norm.sf(0.1 / sigma) * 1e6, rel=1e-4)
+
+
+# --------------------------------------------------------------------------- plots
+
+
+def test_plots_are_valid_png_and_svg_with_axis_labels():
+    case, _, _ = _economics_case()
+    front = frontier(case, vary="upper", values=[20.02, 20.05, 20.1])
+    png = render_frontier_plot(front, "png")
+    assert png.startswith(PNG_SIGNATURE)
+    svg = render_frontier_plot(front, "svg").decode("utf-8")
+    root = ET.fromstring(svg)
+    assert root.tag.endswith("svg")
+    assert "upper limit of gap [mm]" in svg and "least cost per assembly [EUR]" in svg
+    econ_svg = render_economics_plot(fallout_economics(case), "svg").decode("utf-8")
+    assert ET.fromstring(econ_svg).tag.endswith("svg")
+    assert "fallout target of gap [ppm]" in econ_svg and "cost per assembly [EUR]" in econ_svg
+
+
+# --------------------------------------------------------------------------- command line
+
+CASE_TEXT = """# Invented test case.
+title = "Invented bracket stack"
+units = "mm"
+currency = "EUR"
+
+[[contributor]]
+name = "base"
+nominal = 20.0
+tolerance = 0.05
+limits = [0.01, 0.2]
+cost = { curve = "reciprocal", a = 1.0, b = 0.02 }
+
+[[contributor]]
+name = "post"
+nominal = 15.0
+tolerance = 0.05
+limits = [0.01, 0.2]
+cost = { curve = "reciprocal", a = 0.5, b = 0.01 }
+
+[[contributor]]
+name = "cap"
+nominal = 4.8
+tolerance = 0.02
+limits = [0.005, 0.1]
+cost = { curve = "reciprocal", a = 0.2, b = 0.005 }
+
+[[requirement]]
+name = "gap"
+chain = { base = 1, post = -1, cap = -1 }
+lower = 0.05
+upper = 0.4
+fallout_ppm = 100
+
+[allocation]
+models = ["worst-case", "rss"]
+
+[economics]
+volume = 20000
+scrap_cost = 30.0
+
+[frontier]
+requirement = "gap"
+vary = "upper"
+range = [0.2, 0.5]
+points = 7
+"""
+
+
+@pytest.fixture()
+def case_file(tmp_path):
+    path = tmp_path / "bracket.toml"
+    path.write_text(CASE_TEXT)
+    return path
+
+
+def _invoke(*args):
+    return CliRunner().invoke(cli, ["frontier", *map(str, args)])
+
+
+def test_cli_json_uses_frontier_defaults_and_adds_economics(case_file):
+    import json
+
+    result = _invoke(case_file, "--json")
+    assert result.exit_code == 0, result.output
+    doc = json.loads(result.output)
+    assert {"value", "model", "total_cost"} <= set(doc["points"][0])
+    assert len(doc["points"]) == 7 * 2
+    values = sorted({p["value"] for p in doc["points"]})
+    assert values[0] == pytest.approx(0.2) and values[-1] == pytest.approx(0.5)
+    assert doc["range_source"] == "case" and doc["vary"] == "upper"
+    assert doc["economics"]["models"][0]["model"] == "rss"
+    assert doc["economics"]["models"][0]["optimal_ppm"] > 0
+    # every point is the least cost an independent allocation finds
+    from allocator.case import load_case
+
+    case = load_case(case_file)
+    for p in doc["points"][:6]:
+        single = allocate(_with_limit(case, "gap", "upper", p["value"]), p["model"])
+        assert p["status"] == single.status
+        if single.total_cost is None:
+            assert p["total_cost"] is None
+        else:
+            assert p["total_cost"] == pytest.approx(single.total_cost, rel=REL)
+
+
+def test_cli_csv_and_human_table(case_file):
+    result = _invoke(case_file, "--csv", "--points", "3")
+    assert result.exit_code == 0, result.output
+    lines = result.output.strip().splitlines()
+    assert lines[0].startswith("value,model,total_cost,status,saving_vs_worst_case")
+    assert len(lines) == 1 + 3 * 2
+    human = _invoke(case_file, "--points", "3", "--range", "0.25", "0.45")
+    assert human.exit_code == 0, human.output
+    assert "from --range" in human.output and "rss saves" in human.output
+    assert "fallout economics of gap" in human.output and "current design" in human.output
+
+
+def test_cli_writes_plots(case_file, tmp_path):
+    png, svg = tmp_path / "front.png", tmp_path / "econ.svg"
+    result = _invoke(case_file, "--points", "4", "--plot", png, "--economics-plot", svg)
+    assert result.exit_code == 0, result.output
+    assert png.read_bytes().startswith(PNG_SIGNATURE)
+    text = svg.read_text()
+    assert ET.fromstring(text).tag.endswith("svg") and "fallout target of gap [ppm]" in text
+
+
+@pytest.mark.parametrize(
+    "args, fragment",
+    [
+        (["--requirement", "gpa"], "did you mean 'gap'"),
+        (["--vary", "lower", "--range", "0.1", "0.0"], "increasing"),
+        (["--points", "5000"], "2 to 2000"),
+        (["--plot", "front.jpg"], ".png or .svg"),
+        (["--json", "--csv"], "cannot be used together"),
+    ],
+)
+def test_cli_bad_input_exits_2_with_one_line(case_file, tmp_path, args, fragment):
+    result = _invoke(case_file, *args)
+    assert result.exit_code == 2
+    lines = result.output.strip().splitlines()
+    assert len(lines) == 1 and fragment in lines[0], result.output
+    assert not (tmp_path / "front.jpg").exists()
+
+
+def test_cli_refuses_to_overwrite_the_case(tmp_path):
+    odd = tmp_path / "case.svg"  # a case file whose name looks like a plot
+    odd.write_text(CASE_TEXT)
+    result = _invoke(odd, "--points", "2", "--plot", odd)
+    assert result.exit_code == 2 and "refusing to overwrite" in result.output
+    assert odd.read_text() == CASE_TEXT
+
+
+def test_cli_exit_1_when_no_value_can_be_met(case_file):
+    result = _invoke(case_file, "--range", "0.06", "0.07", "--points", "2")
+    assert result.exit_code == 1
+    assert "infeasible" in result.output
