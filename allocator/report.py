@@ -679,21 +679,26 @@ def _header(report: Report) -> str:
 
 
 def _cost_text(curve) -> str:
+    """The cost curve as HTML: its formula, then its parameters on a second line."""
     if curve is None:
         return "no cost (held)"
     f = fmt_input
     if curve.curve == "reciprocal":
-        return f"a + b/t; a = {f(curve.a)}, b = {f(curve.b)}"
-    if curve.curve == "reciprocal-power":
-        return f"a + b/t^k; a = {f(curve.a)}, b = {f(curve.b)}, k = {f(curve.k)}"
-    if curve.curve == "exponential":
-        return f"a + b·exp(−c·t); a = {f(curve.a)}, b = {f(curve.b)}, c = {f(curve.c)}"
-    if curve.curve == "table":
+        formula, params = "a + b/t", f"a = {f(curve.a)}, b = {f(curve.b)}"
+    elif curve.curve == "reciprocal-power":
+        formula, params = "a + b/t^k", f"a = {f(curve.a)}, b = {f(curve.b)}, k = {f(curve.k)}"
+    elif curve.curve == "exponential":
+        formula, params = "a + b·exp(−c·t)", f"a = {f(curve.a)}, b = {f(curve.b)}, c = {f(curve.c)}"
+    elif curve.curve == "table":
         points = curve.points_tolerance
         if curve.is_discrete:
-            return "listed tolerances only: ±" + ", ".join(fmt_input(t) for t in points)
-        return f"table of {len(points)} points, interpolated, ±{fmt_input(points[0])} to ±{fmt_input(points[-1])}"
-    return curve.curve
+            formula, params = "listed tolerances only", "±" + ", ".join(f(t) for t in points)
+        else:
+            formula = f"table of {len(points)} points, interpolated"
+            params = f"±{f(points[0])} to ±{f(points[-1])}"
+    else:
+        return _e(curve.curve)
+    return f'<span class="nw">{_e(formula)}</span><div class="desc">{_e(params)}</div>'
 
 
 def _chain_text(requirement) -> str:
@@ -729,18 +734,18 @@ def _section_summary(report: Report) -> str:
     for c in case.contributors:
         if c.processes:
             limits = "by process"
-            cost = "<br>".join(
-                f"{_e(p.name)}: ±{_i(p.limits[0])} to ±{_i(p.limits[1])}"
+            cost = "".join(
+                f'<div class="proc"><strong>{_e(p.name)}</strong> ±{_i(p.limits[0])} to ±{_i(p.limits[1])}'
                 + (f", cp {_i(p.cp)}" if p.cp is not None else "")
-                + f"; {_e(_cost_text(p.cost))}"
+                + f": {_cost_text(p.cost)}</div>"
                 for p in c.processes
             )
         elif c.fixed and c.limits is None:
-            limits, cost = "held", _e(_cost_text(c.cost))
+            limits, cost = "held", _cost_text(c.cost)
         else:
             lo, hi = c.limits if c.limits is not None else (c.tolerance, c.tolerance)
             limits = f"{_i(lo)} to {_i(hi)}"
-            cost = _e(_cost_text(c.cost))
+            cost = _cost_text(c.cost)
         name = _e(c.name) + (f'<div class="desc">{_e(c.description)}</div>' if c.description else "")
         if c.fixed:
             name += " " + _flag("fixed")
@@ -759,7 +764,7 @@ def _section_summary(report: Report) -> str:
         )
     contributors = _table(
         ["Contributor", f"Nominal{_unit(u)}", f"Current ±{_unit(u)}", f"Achievable ±{_unit(u)}", "Distribution",
-         "cp", "Mean shift [fraction of t]", "Count", f"Unit cost curve{_unit(case.currency)}, t in {_e(u)}"],
+         "cp", "Mean shift [×&nbsp;t]", "Count", f"Unit cost{_unit(case.currency)} at ±t{_unit(u)}"],
         rows,
         numeric=[False, True, True, True, False, True, True, True, False],
         caption="Contributors as stated in the case file",
@@ -1234,6 +1239,7 @@ thead th { border-bottom: 2px solid var(--ink); font-weight: 600; vertical-align
 tbody th { font-weight: 600; }
 .num { text-align: right; white-space: nowrap; }
 .nw { white-space: nowrap; display: inline-block; }
+.proc + .proc { margin-top: 0.3rem; }
 td.model, th.model { white-space: nowrap; }
 th.num { white-space: normal; }
 table.compact { font-size: 0.82rem; }
