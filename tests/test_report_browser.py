@@ -48,6 +48,7 @@ def _run(browser: str, profile: Path, *args: str) -> subprocess.CompletedProcess
         "--disable-component-update",
         "--disable-sync",
         "--disable-extensions",
+        "--disable-dev-shm-usage",  # small /dev/shm in containers would crash the renderer
         "--hide-scrollbars",
         f"--user-data-dir={profile}",
         # no name resolves and every request goes to a closed local port: no network at all
