@@ -232,6 +232,21 @@ def test_conic_mean_shift_points_equal_independent_allocations():
         assert single.success and _close(cost, single.total_cost), (value, cost, single.total_cost)
 
 
+def test_sweeping_one_of_several_requirements_leaves_the_others_alone():
+    # two requirements share a contributor: the compiled conic problem, one compile
+    cs = [contributor("a", nominal=30.0, tolerance=0.03, limits=(0.005, 0.1), cost=CostCurve("reciprocal", a=1.0, b=0.02)),
+          contributor("b", nominal=10.0, tolerance=0.02, limits=(0.005, 0.1), cost=CostCurve("reciprocal", a=0.3, b=0.01)),
+          contributor("c", nominal=19.8, tolerance=0.02, limits=(0.005, 0.1), cost=CostCurve("reciprocal", a=0.1, b=0.005))]
+    first = chain_requirement("gap", {"a": 1, "b": -1, "c": -1}, lower=0.05, upper=0.35, fallout_ppm=100)
+    second = chain_requirement("reach", {"b": 1, "c": 1}, upper=29.9, fallout_ppm=100)
+    case = make_case(cs, [first, second], models=("rss",))
+    front = frontier(case, requirement="reach", vary="upper", values=[29.86, 29.9, 30.0])
+    assert "conic" in front.solvers["rss"]
+    for value, cost in zip(front.values, front.costs["rss"]):
+        single = allocate(_with_limit(case, "reach", "upper", value), "rss")
+        assert single.success and _close(cost, single.total_cost), (value, cost, single.total_cost)
+
+
 def test_batched_dual_against_slsqp():
     """The batched closed-form dual against scipy's SLSQP on the same problem."""
     curves = [CostCurve("reciprocal", a=0.5, b=0.006), CostCurve("reciprocal-power", a=0.2, b=2e-4, k=1.7),
