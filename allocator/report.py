@@ -586,6 +586,14 @@ def _contributions_svg(report: Report) -> str:
 # --------------------------------------------------------------------------- html parts
 
 
+@dataclass
+class _Row:
+    """A table row with a CSS class (e.g. the totals under the allocation table)."""
+
+    cells: list
+    cls: str
+
+
 def _table(headers, rows, *, caption: str | None = None, numeric=None, cls: str = "") -> str:
     """An HTML table; ``numeric[i]`` right-aligns column i; the first column is a row header.
 
@@ -601,12 +609,15 @@ def _table(headers, rows, *, caption: str | None = None, numeric=None, cls: str 
         + "</tr></thead><tbody>"
     )
     for row in rows:
+        row_class = ""
+        if isinstance(row, _Row):
+            row, row_class = row.cells, f' class="{row.cls}"'
         cells = []
         for i, cell in enumerate(row):
             tag = "th scope=\"row\"" if i == 0 else "td"
             end = "th" if i == 0 else "td"
             cells.append(f"<{tag}{' class=num' if numeric[i] else ''}>{cell}</{end}>")
-        out.append("<tr>" + "".join(cells) + "</tr>")
+        out.append(f"<tr{row_class}>" + "".join(cells) + "</tr>")
     out.append("</tbody></table></div>")
     return "".join(out)
 
@@ -870,28 +881,36 @@ def _section_allocation(report: Report) -> str:
                 cells.append("—")
                 continue
             t = a.tolerances[c.name]
-            process = a.processes.get(c.name, "")
+            under = [a.processes.get(c.name, ""), (getattr(a, "grades", None) or {}).get(c.name, "")]
+            under = " · ".join(x for x in under if x)
             cells.append(
                 _t(t) + _bound_note(str(a.active[c.name]))
-                + (f'<div class="desc">{_e(process)}</div>' if process else "")
+                + (f'<div class="desc">{_e(under)}</div>' if under else "")
             )
         rows.append(cells)
     cost_label = f"{_unit(cur)}" if cur else ""
     first = next(iter(allocs.values()), None)
     current_cost = _n(first.current_cost) if first is not None else "—"
-    rows.append(['<span class="total">Cost per assembly' + cost_label + "</span>", current_cost]
-                + [_n(allocs[m].total_cost) if allocs[m].success else "—" for m in models])
-    rows.append(["Saving against current" + cost_label, ""]
-                + [_n(allocs[m].savings, signed=True) if allocs[m].success else "—" for m in models])
-    rows.append(["Saving against current [%]", ""]
-                + [_n(allocs[m].savings_percent, 3, signed=True) if allocs[m].success else "—" for m in models])
-    rows.append(["Status", ""] + [_flag(allocs[m].status, "" if allocs[m].success else "bad") for m in models])
+    ok = {m: allocs[m].success for m in models}
+    rows.append(_Row(["Cost per assembly" + cost_label, current_cost]
+                     + [_n(allocs[m].total_cost) if ok[m] else "—" for m in models], "sum first"))
+    rows.append(_Row(["Saving against current" + cost_label, ""]
+                     + [_n(allocs[m].savings, signed=True) if ok[m] else "—" for m in models], "sum"))
+    rows.append(_Row(["Saving against current [%]", ""]
+                     + [_n(allocs[m].savings_percent, 3, signed=True) if ok[m] else "—" for m in models], "sum"))
+    # rounded allocations (case [allocation].rounding) say what the rounding cost
+    rounding_cost = {m: getattr(allocs[m], "rounding_cost", None) for m in models}
+    if any(v is not None for v in rounding_cost.values()):
+        rows.append(_Row([f"Cost of rounding the tolerances{cost_label}", ""]
+                         + [_n(rounding_cost[m], signed=True) if ok[m] else "—" for m in models], "sum"))
+    rows.append(_Row(["Status", ""] + [_flag(allocs[m].status, "" if ok[m] else "bad") for m in models], "sum"))
     table = _table(headers, rows, numeric=[False] + [True] * (1 + len(models)),
                    caption="Least-cost ± tolerances per stack model (side by side)", cls="alloc")
     legend = (
         '<p class="note">Tags: <span class="tag">tightest</span> the tolerance sits at its tightest achievable value '
         '(the cost curve ends there); <span class="tag">loosest</span> at its loosest; <span class="tag">fixed</span> held '
-        "by the case. A process name under a value is the process chosen. Computed by "
+        "by the case. Under a value: the process chosen, when there is a choice, and the ISO 286 grade when the "
+        "case rounds to grades. Computed by "
         "<code>allocator.solve.allocate</code>; every optimum is re-checked against every requirement.</p>"
     )
     # predicted requirement results per model
@@ -1113,8 +1132,9 @@ def _section_supplier(report: Report) -> str:
     for c in case.contributors:
         row = [_e(c.name) + (f'<div class="desc">{_e(c.description)}</div>' if c.description else ""), str(c.count), _i(c.tolerance)]
         for m in ok_models:
-            process = allocs[m].processes.get(c.name, "")
-            row.append(_t(allocs[m].tolerances[c.name]) + (f'<div class="desc">{_e(process)}</div>' if process else ""))
+            under = [allocs[m].processes.get(c.name, ""), (getattr(allocs[m], "grades", None) or {}).get(c.name, "")]
+            under = " · ".join(x for x in under if x)
+            row.append(_t(allocs[m].tolerances[c.name]) + (f'<div class="desc">{_e(under)}</div>' if under else ""))
         row.append(_n(allocs[rec].unit_cost[c.name]))
         ask_rows.append(row)
     ask = _table(ask_headers, ask_rows, numeric=[False] + [True] * (len(ask_headers) - 1),
@@ -1244,8 +1264,8 @@ td.model, th.model { white-space: nowrap; }
 th.num { white-space: normal; }
 table.compact { font-size: 0.82rem; }
 table.compact td, table.compact th { padding: 0.1rem 0.6rem; }
-table.alloc tbody tr:nth-last-child(-n+4) { background: var(--faint); }
-table.alloc tbody tr:nth-last-child(4) th, table.alloc tbody tr:nth-last-child(4) td { border-top: 2px solid var(--ink); }
+tr.sum { background: var(--faint); }
+tr.first th, tr.first td { border-top: 2px solid var(--ink); }
 .desc { font-weight: normal; color: var(--muted); font-size: 0.85em; white-space: normal; }
 .tag { display: inline-block; border: 1px solid var(--ink); border-radius: 2px; padding: 0 0.3rem; font-size: 0.75rem;
   line-height: 1.3; font-weight: 600; text-transform: uppercase; letter-spacing: 0.04em; background: #fff; }
