@@ -263,18 +263,22 @@ class ExactAllocation:
             per = slope / (2.0 * w * mid) if dual.squared else slope / w
         per = per[(w > 0) & np.isfinite(per) & (per > 0)]
         guess = float(np.median(per)) if per.size else 1.0
-        lam_lo = lam_hi = guess
+        # bracket in log λ, evaluated exactly as the root finder will (exp(log λ) may
+        # differ from λ in the last bit, which matters right at a table's kink)
+        at = lambda x: excess(math.exp(x))  # noqa: E731
+        x_lo = x_hi = math.log(guess)
+        decade = math.log(10.0)
         for _ in range(400):
-            if excess(lam_hi) <= 0:
+            if at(x_hi) <= 0:
                 break
-            lam_hi *= 10.0
+            x_hi += decade
         else:
             return dual.lo.copy(), math.inf, None
         for _ in range(400):
-            if excess(lam_lo) > 0:
+            if at(x_lo) > 0:
                 break
-            lam_lo /= 10.0
-        x_a, x_b = _bracket_root(lambda x: excess(math.exp(x)), math.log(lam_lo), math.log(lam_hi))
+            x_lo -= decade
+        x_a, x_b = _bracket_root(at, x_lo, x_hi)
         lam_a, lam_b = math.exp(x_a), math.exp(x_b)
         t_a, t_b = dual.tolerances(lam_a * w), dual.tolerances(lam_b * w)
         t = self._mix(t_a, t_b, rhs)
@@ -446,14 +450,12 @@ def _bracket_root(f, a: float, b: float, *, xtol: float = 1e-13, maxiter: int = 
     for i in range(maxiter):
         if b - a <= xtol * (1.0 + abs(a)) or fb == 0.0:
             break
-        if i % 2 == 0:
-            if b - a > 0.5 * width and i > 0:
-                x = 0.5 * (a + b)
-            else:
-                x = b - fb * (b - a) / (fb - fa)
-            width = b - a
+        if (i % 2 == 0 and i > 0 and b - a > 0.5 * width) or fa == fb:
+            x = 0.5 * (a + b)
         else:
             x = b - fb * (b - a) / (fb - fa)
+        if i % 2 == 0:
+            width = b - a
         if not a < x < b:
             x = 0.5 * (a + b)
         fx = f(x)
