@@ -15,6 +15,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
+from functools import cached_property
 from pathlib import Path
 from typing import Literal, Mapping
 
@@ -217,12 +218,14 @@ class Case:
     def names(self) -> tuple[str, ...]:
         return tuple(c.name for c in self.contributors)
 
+    @cached_property
+    def _positions(self) -> dict[str, int]:
+        # built once per case: index() is called per chain entry, a scan would be O(n²)
+        return {c.name: i for i, c in enumerate(self.contributors)}
+
     def index(self, name: str) -> int:
         """Position of contributor ``name`` in :attr:`contributors`."""
-        for i, c in enumerate(self.contributors):
-            if c.name == name:
-                return i
-        raise KeyError(name)
+        return self._positions[name]
 
     def contributor(self, name: str) -> Contributor:
         return self.contributors[self.index(name)]
