@@ -774,7 +774,15 @@ class DiscreteAllocation:
         alloc._unit_current = baseline
         alloc.current_cost = float(np.sum(self.counts * baseline))
         if requirements is not None:
+            # conic polish: shadow prices with the chosen processes held
             alloc.requirements = list(requirements)
+        else:
+            # a discrete choice has no derivative with respect to a limit
+            alloc.requirements = [
+                replace(r, binding="", shadow_price=None, shadow_lower=None, shadow_upper=None,
+                        shadow_ppm=None)
+                for r in alloc.requirements
+            ]
         if labels is not None and any(labels):
             alloc.grades = {n: g for n, g in zip(self.case.names, labels) if g}
         return alloc

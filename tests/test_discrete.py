@@ -1,0 +1,345 @@
+"""Process selection, choose tables and rounding (allocator.solve.discrete).
+
+Every expectation comes from outside the solver: exact enumeration (itertools / numpy),
+the continuous solver run once per process combination, scipy.stats / scipy.optimize for
+the normal tails, and the ISO 286-1 table in allocator.grades. All cases are invented.
+"""
+
+from __future__ import annotations
+
+import itertools
+import json
+from dataclasses import replace
+
+import numpy as np
+import pytest
+from click.testing import CliRunner
+from scipy import optimize, stats
+
+from allocator import grades
+from allocator.errors import CaseError, UsageError
+from allocator.model import (
+    AllocationSettings,
+    Case,
+    Contributor,
+    CostCurve,
+    Process,
+    Requirement,
+    sigma_factor,
+)
+from allocator.solve import allocate
+from allocator.solve.discrete import DiscreteAllocation, needs_discrete
+
+CASES = __import__("pathlib").Path(__file__).resolve().parents[1] / "cases"
+
+
+def _choose(points, prices):
+    return CostCurve("table", points_tolerance=tuple(points), points_cost=tuple(prices), between="choose")
+
+
+def _case(contributors, requirements, models=("worst-case",), rounding=None, units="mm"):
+    return Case(title="invented test case", contributors=tuple(contributors),
+                requirements=tuple(requirements), units=units,
+                allocation=AllocationSettings(models=tuple(models), rounding=rounding))
+
+
+def _process_case(mean_shift=0.0):
+    """Invented: a bore made by one of three processes plus two single-process parts."""
+    body = Contributor(
+        name="body", nominal=40.0, tolerance=0.03, mean_shift=mean_shift,
+        processes=(
+            Process("turning", (0.02, 0.10), CostCurve("reciprocal", a=3.0, b=0.05)),
+            Process("boring", (0.008, 0.03), CostCurve("reciprocal-power", a=5.0, b=0.0006, k=1.2)),
+            Process("grinding", (0.002, 0.01), CostCurve("reciprocal", a=9.0, b=0.02), cp=1.33),
+        ),
+    )
+    hub = Contributor(
+        name="hub", nominal=25.0, tolerance=0.02, mean_shift=mean_shift,
+        processes=(
+            Process("cast", (0.03, 0.12), CostCurve("exponential", a=0.8, b=4.0, c=30.0)),
+            Process("machined", (0.005, 0.08), CostCurve("exponential", a=1.2, b=6.0, c=60.0)),
+        ),
+    )
+    plate = Contributor(name="plate", nominal=12.7, tolerance=0.03, limits=(0.01, 0.1),
+                        distribution="triangular", mean_shift=mean_shift,
+                        cost=CostCurve("reciprocal", a=0.8, b=0.01))
+    req = Requirement(name="clearance", chain={"body": 1, "hub": -1, "plate": -1},
+                      lower=2.2, upper=2.4, fallout_ppm=100)
+    return _case([body, hub, plate], [req], models=("worst-case", "rss", "mean-shift"))
+
+
+def _with_processes(case, chosen):
+    """The case with each contributor restricted to the named process."""
+    out = []
+    for c in case.contributors:
+        if c.name not in chosen:
+            out.append(c)
+            continue
+        p = next(p for p in c.processes if p.name == chosen[c.name])
+        out.append(replace(c, processes=(), limits=p.limits, cost=p.cost,
+                           cp=p.cp if p.cp is not None else c.cp))
+    return replace(case, contributors=tuple(out))
+
+
+# --------------------------------------------------------------------------- g concave
+
+
+def _sigma_max_reference(mu, p, lower=-1.0, upper=1.0):
+    """Largest σ with Φ((L−μ)/σ) + Φ((μ−U)/σ) = p, by brentq on scipy.stats.norm."""
+    f = lambda s: stats.norm.cdf((lower - mu) / s) + stats.norm.sf((upper - mu) / s) - p  # noqa: E731
+    near = min(mu - lower, upper - mu)
+    return optimize.brentq(f, near / stats.norm.isf(p / 2) * 0.999, near / stats.norm.isf(p) * 1.001,
+                           xtol=1e-15, rtol=1e-14)
+
+
+@pytest.mark.parametrize("p", [1e-9, 1e-6, 1e-4, 2.7e-3, 0.05, 0.3, 0.49])
+def test_sigma_limit_is_concave_in_the_mean(p):
+    # The tangent cuts of the mean-shift MILP need g(δ) = min(σmax(ȳ−δ), σmax(ȳ+δ)) to be
+    # concave; a minimum of concave functions is concave, so check σmax(μ) itself with an
+    # independent root (scipy.stats.norm + brentq) on limits [−1, 1] (any limits scale to these).
+    mu = np.linspace(-0.99, 0.99, 397)
+    s = np.array([_sigma_max_reference(m, p) for m in mu])
+    second = s[2:] - 2 * s[1:-1] + s[:-2]
+    assert np.all(second <= 1e-12 * s.max())
+
+
+# --------------------------------------------------------------------------- choose tables
+
+
+def _choose_case(size, options, model, seed):
+    rng = np.random.default_rng(seed)
+    contributors = []
+    for i in range(size):
+        points = np.sort(rng.uniform(0.005, 0.06, options))
+        prices = np.sort(rng.uniform(0.5, 5.0, options))[::-1]
+        contributors.append(Contributor(name=f"x{i}", nominal=10.0, tolerance=float(points[-1]),
+                                        limits=(points[0], points[-1]), cost=_choose(points, prices),
+                                        cp=float(rng.choice([1.0, 1.33]))))
+    coeffs = {c.name: float(rng.choice([1.0, -1.0, 2.0])) for c in contributors}
+    a = np.abs(list(coeffs.values()))
+    mid = np.array([np.median(c.cost.points_tolerance) for c in contributors])
+    half = float(a @ mid) if model == "worst-case" else 4.0 * float(np.sqrt(np.sum((a * mid / 3) ** 2)))
+    nominal = 10.0 * sum(coeffs.values())
+    req = Requirement(name="gap", chain=coeffs, lower=nominal - half, upper=nominal + half, fallout_ppm=63)
+    return _case(contributors, [req], models=(model,))
+
+
+@pytest.mark.parametrize("model", ["worst-case", "rss"])
+def test_seven_by_six_choose_tables_match_enumeration(model):
+    # a smaller size of the benchmark's 30 x 6 case: 6^7 = 279936 combinations, all checked
+    case = _choose_case(7, 6, model, seed=11)
+    t = np.array([c.cost.points_tolerance for c in case.contributors])  # 7 x 6
+    price = np.array([c.cost.points_cost for c in case.contributors])
+    f = np.array([sigma_factor("normal", c.cp) for c in case.contributors])
+    req = case.requirements[0]
+    a = np.array([req.chain[c.name] for c in case.contributors])
+    idx = np.array(list(itertools.product(range(6), repeat=7)))
+    rows = np.arange(7)
+    tt = t[rows, idx]
+    cost = price[rows, idx].sum(axis=1)
+    nominal = 10.0 * a.sum()
+    if model == "worst-case":
+        w = (np.abs(a) * tt).sum(axis=1)
+        ok = (nominal - w >= req.lower) & (nominal + w <= req.upper)
+    else:
+        sigma = np.sqrt(((a * f * tt) ** 2).sum(axis=1))
+        fallout = stats.norm.cdf(req.lower, nominal, sigma) + stats.norm.sf(req.upper, nominal, sigma)
+        ok = fallout <= req.fallout_ppm * 1e-6
+    assert ok.any() and not ok.all()
+    result = DiscreteAllocation(case, model).solve()
+    assert result.status == "optimal"
+    assert result.gap == 0.0
+    assert result.total_cost == pytest.approx(cost[ok].min(), rel=1e-9)
+
+
+def test_dispatch_and_shadow_prices_of_a_discrete_choice():
+    case = _choose_case(4, 3, "rss", seed=3)
+    assert needs_discrete(case)
+    result = allocate(case, "rss")
+    assert result.solver == "highs"
+    assert result.success and result.gap == 0.0
+    # a discrete optimum has no derivative with respect to a limit: not reported as 0
+    assert all(r.shadow_price is None for r in result.requirements)
+
+
+# --------------------------------------------------------------------------- processes
+
+
+@pytest.mark.parametrize("model", ["worst-case", "rss", "mean-shift"])
+def test_process_choice_within_gap_of_enumerating_processes(model):
+    case = _process_case(mean_shift=0.3 if model == "mean-shift" else 0.0)
+    result = DiscreteAllocation(case, model).solve()
+    assert result.status == "optimal", result.message
+    # independent check: every process combination solved by the continuous solver
+    best, best_choice = np.inf, None
+    names = {c.name: [p.name for p in c.processes] for c in case.contributors if c.processes}
+    for combo in itertools.product(*names.values()):
+        chosen = dict(zip(names, combo))
+        alloc = allocate(_with_processes(case, chosen), model)
+        if alloc.success and alloc.total_cost < best:
+            best, best_choice = alloc.total_cost, chosen
+    assert result.gap is not None and result.gap < 1e-3
+    assert result.lower_bound <= best * (1 + 1e-9)
+    assert result.total_cost >= best * (1 - 1e-7)
+    assert (result.total_cost - best) / result.total_cost <= result.gap + 1e-8
+    assert {k: result.processes[k] for k in best_choice} == best_choice
+
+
+def test_gap_with_sixty_grid_points_and_no_refinement():
+    # the documented figure: one lower-bound MILP on the 60-point grid, no refinement
+    import allocator.solve.discrete as discrete
+
+    case = _process_case()
+    old = discrete.MAX_REFINE
+    discrete.MAX_REFINE = 0
+    try:
+        result = DiscreteAllocation(case, "rss", gap_target=0.0).solve()
+    finally:
+        discrete.MAX_REFINE = old
+    assert result.success
+    assert 0.0 <= result.gap < 1e-3
+
+
+def test_held_contributor_with_processes_still_chooses_its_process():
+    # the same tolerance made by a cheap process (cp 1) or a dearer one (cp 2): only the
+    # capable one meets the rss target, so the choice matters although t is held
+    shaft = Contributor(
+        name="shaft", nominal=20.0, tolerance=0.03, fixed=True,
+        processes=(Process("lathe", (0.01, 0.05), CostCurve("reciprocal", a=1.0, b=0.01)),
+                   Process("grinder", (0.005, 0.04), CostCurve("reciprocal", a=3.0, b=0.01), cp=2.0)),
+    )
+    sleeve = Contributor(name="sleeve", nominal=10.0, tolerance=0.02, limits=(0.005, 0.05),
+                         cost=_choose([0.005, 0.02, 0.05], [4.0, 2.0, 1.0]))
+    # σ_y with grinder and sleeve at 0.02: sqrt((0.03/6)² + (0.02/3)²) = 0.00833 [mm];
+    # with the lathe: sqrt(0.01² + 0.00667²) = 0.0120 -> limits at 3.29 σ (1000 ppm) of 0.01
+    req = Requirement(name="gap", chain={"shaft": 1, "sleeve": -1}, lower=9.967, upper=10.033,
+                      fallout_ppm=1000)
+    result = DiscreteAllocation(_case([shaft, sleeve], [req], models=("rss",)), "rss").solve()
+    assert result.success, result.message
+    assert result.processes["shaft"] == "grinder"
+    assert result.tolerances["shaft"] == 0.03
+
+
+# --------------------------------------------------------------------------- rounding
+
+
+def test_iso286_rounding_gives_standard_grades_and_costs_at_least_the_unrounded():
+    sizes = {"flange": 12.0, "spacer": 25.0, "bearing": 19.0, "shoulder": 60.0}
+    contributors = [
+        Contributor(name=n, nominal=s, tolerance=0.05, limits=(0.004, 0.2),
+                    cost=CostCurve("reciprocal", a=0.5, b=0.003))
+        for n, s in sizes.items()
+    ]
+    req = Requirement(name="play", chain={"shoulder": 1, "flange": -1, "spacer": -1, "bearing": -1},
+                      lower=3.9, upper=4.1, fallout_ppm=100)
+    case = _case(contributors, [req], models=("worst-case", "rss"), rounding="iso286")
+    for model in ("worst-case", "rss"):
+        result = allocate(case, model)
+        assert result.success, result.message
+        for name, t in result.tolerances.items():
+            # ISO 286-1 Table 1 (as typed in allocator.grades): t = IT/2
+            grade = result.grades[name]
+            assert t == pytest.approx(grades.it_tolerance_um(grade, sizes[name]) / 2000.0, rel=1e-12)
+        assert result.total_cost >= result.unrounded_cost * (1 - 1e-9)
+        assert result.rounding_cost == pytest.approx(result.total_cost - result.unrounded_cost)
+
+
+def test_rounding_with_no_value_inside_the_limits_names_the_contributor():
+    c = Contributor(name="pin", nominal=5.0, tolerance=0.005, limits=(0.002, 0.008),
+                    cost=CostCurve("reciprocal", a=0.1, b=0.001))
+    req = Requirement(name="r", chain={"pin": 1}, upper=5.05)
+    case = _case([c], [req], rounding=0.01)
+    with pytest.raises(CaseError) as err:
+        allocate(case, "worst-case")
+    assert "contributor 'pin': no multiple of 0.01 within limits [0.002, 0.008]" in str(err.value)
+
+
+def test_fixed_contributors_keep_their_tolerance_under_rounding():
+    free = Contributor(name="free", nominal=10.0, tolerance=0.05, limits=(0.005, 0.1),
+                       cost=CostCurve("reciprocal", a=0.2, b=0.002))
+    held = Contributor(name="held", nominal=10.0, tolerance=0.0123, fixed=True)
+    other = Contributor(name="other", nominal=5.0, tolerance=0.05, limits=(0.005, 0.1),
+                        cost=CostCurve("reciprocal", a=0.2, b=0.004))
+    req = Requirement(name="r", chain={"free": 1, "held": 1, "other": -1}, lower=14.93, upper=15.07)
+    case = _case([free, held, other], [req], rounding=0.005)
+    result = allocate(case, "worst-case", fix={"other": 0.0217})
+    assert result.success
+    assert result.tolerances["held"] == 0.0123
+    assert result.tolerances["other"] == 0.0217
+    assert result.tolerances["free"] == pytest.approx(0.035)  # 0.07 − 0.0123 − 0.0217 = 0.036 → 0.035
+
+
+# --------------------------------------------------------------------------- infeasible
+
+
+def test_infeasible_at_the_tightest_rounded_values_is_diagnosed():
+    # continuous tightest 0.002 would meet ±0.006, but the tightest multiple of 0.005 is 0.005
+    a = Contributor(name="a", nominal=1.0, tolerance=0.01, limits=(0.002, 0.03),
+                    cost=CostCurve("reciprocal", a=0.1, b=0.001))
+    b = Contributor(name="b", nominal=1.0, tolerance=0.01, limits=(0.002, 0.03),
+                    cost=CostCurve("reciprocal", a=0.1, b=0.001))
+    req = Requirement(name="r", chain={"a": 1, "b": 1}, lower=1.994, upper=2.006)
+    case = _case([a, b], [req], rounding=0.005)
+    assert allocate(replace(case, allocation=AllocationSettings(models=("worst-case",))),
+                    "worst-case").success
+    result = allocate(case, "worst-case")
+    assert result.status == "infeasible"
+    assert "requirement 'r'" in result.message and "tightest" in result.message
+
+
+def test_milp_infeasible_although_each_tightest_option_alone_would_pass():
+    # one part, two processes: grinding has the smaller σ (cp 2), turning the smaller mean
+    # shift band; their best parts together (σ 0.00333, δ 0.005) would meet the one-sided
+    # target but neither process does:
+    # z = Φ⁻¹(1 − 1e-4) = 3.719; δ + zσ: grinding 0.01 + 0.0124, turning 0.005 + 0.0248
+    part = Contributor(
+        name="part", nominal=0.0, tolerance=0.02, mean_shift=0.5,
+        processes=(Process("grinding", (0.02, 0.02), _choose([0.02, 0.03], [5.0, 4.0]), cp=2.0),
+                   Process("turning", (0.01, 0.01), _choose([0.01, 0.03], [1.0, 0.5]), cp=0.5)),
+    )
+    req = Requirement(name="r", chain={"part": 1}, upper=0.018, fallout_ppm=100)
+    case = _case([part], [req], models=("mean-shift",))
+    result = allocate(case, "mean-shift")
+    assert result.status == "infeasible"
+    assert "HiGHS" in result.message
+
+
+def test_mean_shift_target_of_half_or_more_is_refused():
+    case = _choose_case(3, 2, "rss", seed=1)
+    with pytest.raises(UsageError):
+        DiscreteAllocation(case, "mean-shift").solve({"gap": {"fallout_ppm": 600000}})
+
+
+# --------------------------------------------------------------------------- command line
+
+
+def test_cli_shows_processes_and_rounding(tmp_path):
+    from allocator.cli.main import cli
+
+    runner = CliRunner()
+    out = runner.invoke(cli, ["allocate", str(CASES / "pump_shim.toml"), "--model", "rss"])
+    assert out.exit_code == 0, out.output
+    assert "process" in out.output and "turning" in out.output or "boring" in out.output
+    assert "more than the unrounded optimum" in out.output
+    out = runner.invoke(cli, ["allocate", str(CASES / "pump_shim.toml"), "--model", "rss", "--json"])
+    assert out.exit_code == 0
+    doc = json.loads(out.output)["results"][0]
+    rows = {r["contributor"]: r for r in doc["contributors"]}
+    assert rows["body_depth"]["process"] in ("turning", "fine boring", "grinding")
+    assert doc["rounding"] == "multiples of 0.001"
+    assert doc["rounding_cost"] == pytest.approx(doc["total_cost"] - doc["unrounded_cost"])
+    for t in doc["tolerances"].values():
+        assert abs(t / 0.001 - round(t / 0.001)) < 1e-9 or t == 0.010
+
+
+def test_cli_exit_1_when_no_combination_meets_the_requirement(tmp_path):
+    from allocator.cli.main import cli
+
+    text = (CASES / "pump_shim.toml").read_text().replace("lower = 0.20", "lower = 0.297").replace(
+        "upper = 0.40", "upper = 0.303")
+    path = tmp_path / "tight.toml"
+    path.write_text(text)
+    (tmp_path / "shim_costs.csv").write_text((CASES / "shim_costs.csv").read_text())
+    out = CliRunner().invoke(cli, ["allocate", str(path), "--model", "worst-case"])
+    assert out.exit_code == 1
+    assert "infeasible" in out.output
