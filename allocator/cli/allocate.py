@@ -128,10 +128,13 @@ def _print_human(case, results, baselines) -> None:
         if not result.success:
             click.echo(f"  warning: {result.message}")
         rows = []
+        with_process = any(r["process"] for r in result.rows())
         for r in result.rows():
-            name = r["contributor"] + (f" ({r['process']})" if r["process"] else "")
+            name = r["contributor"]
             rows.append([
                 name,
+                *([r["process"] + (f" {result.grades[name]}" if name in result.grades else "")]
+                  if with_process else []),
                 f"±{fmt(r['current'])}",
                 f"±{fmt(r['allocated'])}",
                 r["bound"],
@@ -140,7 +143,8 @@ def _print_human(case, results, baselines) -> None:
             ])
         click.echo(text_table(
             rows,
-            ["contributor", f"current [{u}]", f"allocated [{u}]", "bound", f"unit cost{money}", "count"],
+            ["contributor", *(["process"] if with_process else []), f"current [{u}]",
+             f"allocated [{u}]", "bound", f"unit cost{money}", "count"],
         ))
         savings = result.savings_percent
         click.echo(
@@ -148,6 +152,14 @@ def _print_human(case, results, baselines) -> None:
             f"(current {fmt(result.current_cost, 6)}; saves {fmt(result.savings, 4)}"
             + (f", {savings:.1f} %)" if savings is not None else ")")
         )
+        if result.rounding:
+            line = f"rounded to {result.rounding}"
+            if result.rounding_cost is not None:
+                line += (f": costs {fmt(result.rounding_cost, 4)}{money} more than the unrounded "
+                         f"optimum ({fmt(result.unrounded_cost, 6)})")
+            if result.grades:
+                line += "; grades " + ", ".join(f"{k} {g}" for k, g in result.grades.items())
+            click.echo(line)
         if result.held:
             held = ", ".join(f"{k} = ±{fmt(v)}" for k, v in result.held.items())
             line = f"held: {held}"
@@ -178,5 +190,7 @@ def _print_human(case, results, baselines) -> None:
                 if r.shadow_ppm:
                     parts.append(f"{fmt(r.shadow_ppm)}{money}/ppm of target")
                 click.echo(f"  binding ({r.binding}); shadow prices: {', '.join(parts)}")
+            elif r.shadow_price is None:
+                click.echo("  shadow prices not defined (discrete choice)")
             else:
                 click.echo("  not binding (shadow price 0)")

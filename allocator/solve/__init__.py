@@ -53,7 +53,9 @@ def solver_for(case: Case, model: str | None = None, *, fix=None):
     from .exact import ExactAllocation, applicable
 
     model = model or _default_model(case)
-    if any(c.is_discrete and not c.fixed and c.name not in (fix or {}) for c in case.contributors):
+    if case.allocation.rounding is not None or any(
+        c.is_discrete and not c.fixed and c.name not in (fix or {}) for c in case.contributors
+    ):
         discrete = _discrete_module()
         if discrete is not None and hasattr(discrete, "solver_for"):
             return discrete.solver_for(case, model, fix=fix)

@@ -162,6 +162,11 @@ class Allocation:
         self.currency = currency
         self.title = title
         self.held = dict(held)
+        # set by the discrete solver when [allocation].rounding applies
+        self.rounding = None  # e.g. 'multiples of 0.001'
+        self.unrounded_cost = None  # the optimum without rounding [currency]
+        self.rounding_cost = None  # total_cost − unrounded_cost [currency]
+        self.grades = {}  # contributor -> ISO 286 grade ('IT7') with rounding = "iso286"
         self.requirements = list(requirements)
         self._allocated = None if allocated is None else np.asarray(allocated, dtype=float)
         self._unit_allocated = (
@@ -282,6 +287,10 @@ class Allocation:
             "solver": self.solver,
             "iterations": self.iterations,
             "gap": self.gap,
+            "rounding": self.rounding,
+            "unrounded_cost": self.unrounded_cost,
+            "rounding_cost": self.rounding_cost,
+            "grades": self.grades,
             "units": self.units,
             "currency": self.currency,
         }
