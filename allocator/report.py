@@ -1091,7 +1091,7 @@ def _section_shadow(report: Report) -> str:
                 [
                     _e(rr.name),
                     _model(m),
-                    _e(rr.binding or "none"),
+                    _e(rr.binding or "—"),
                     _n(rr.shadow_lower, signed=True),
                     _n(rr.shadow_upper, signed=True),
                     _n(rr.shadow_ppm, signed=True),
@@ -1113,6 +1113,17 @@ def _section_shadow(report: Report) -> str:
         "mind (e.g. 0.01 of the unit) for a first estimate; the frontier shows larger moves exactly. "
         "Source: <code>RequirementResult.shadow_lower / shadow_upper / shadow_ppm</code>.</p>"
     )
+    undefined = [
+        m for m, a in report.allocations.items()
+        if a.success and all(rr.shadow_lower is None and rr.shadow_upper is None for rr in a.requirements)
+    ]
+    if undefined:
+        guide += (
+            '<p class="note">No shadow prices for the '
+            + ", ".join(_model(m) for m in undefined)
+            + " allocation: its tolerances are a choice among listed, process or rounded values, where the cost "
+            "moves in steps and has no derivative. The cost frontier (section 4) shows what a limit is worth there.</p>"
+        )
     return _section(report, "shadow-prices", table + guide)
 
 
