@@ -8,6 +8,7 @@ standard library's ``html.parser``.
 
 from __future__ import annotations
 
+import html as html_module
 import re
 from datetime import datetime, timezone
 from html.parser import HTMLParser
@@ -300,8 +301,6 @@ def test_infeasible_model_is_shown_and_exit_code_is_one(tmp_path):
     assert expected.status == "infeasible"
     assert 'role="alert"' in html_text and "INFEASIBLE" in html_text
     header = html_text.split("<main>", 1)[0]
-    import html as html_module
-
     assert html_module.escape(expected.message, quote=True) in header
     assert "recommended allocation: rss" in result.output
 
