@@ -100,7 +100,8 @@ def rendered(tmp_path_factory):
     root = tmp_path_factory.mktemp("browser")
     case = load_case(CASES / "gearbox_end_play.toml")
     page = root / "report.html"
-    report = write_report(case, page, samples=4000, seed=1, frontier_points=3)
+    # one model keeps the solves few; every section and every plot is still there
+    report = write_report(case, page, ["rss"], samples=4000, seed=1, frontier_points=3)
     screenshot = root / "screenshot.png"
     shot = _run(browser, root / "profile-shot", f"--screenshot={screenshot}", f"--window-size={WIDTH},{HEIGHT}", page.as_uri())
     dump = _run(browser, root / "profile-dom", "--dump-dom", page.as_uri())
