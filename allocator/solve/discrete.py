@@ -71,11 +71,13 @@ __all__ = [
 ]
 
 GRID_POINTS = 60  # geometric grid per continuous process
-GAP_TARGET = 1e-6  # stop refining below this relative gap
+GAP_TARGET = 1e-5  # stop refining below this relative gap
 MAX_REFINE = 8  # rounds of splitting the cells the lower bound picks
 REFINE_SPLIT = 8  # a picked cell becomes this many
 MAX_CUT_ROUNDS = 400  # MILP solves per lazy-cut loop
 MAX_RELAXED_ROUNDS = 30  # the lower-bound MILP's tangent-cut rounds (any count is valid)
+DELTA_INTERVALS = 256  # most initial intervals of δ per mean-shift requirement (points MILP)
+DELTA_INTERVALS_RELAXED = 32  # the same in the lower-bound MILP
 CHECK_RTOL = 1e-9  # a choice meets a requirement within this (relative)
 # g(δ) is concave for targets up to here (checked numerically in tests/test_discrete.py);
 # above it only the combinatorial cuts are used, which need no concavity.
@@ -245,12 +247,18 @@ class _Rows:
 
     def add(self, coef: np.ndarray, upper: float, lower: float = -np.inf, cols=None):
         coef = np.asarray(coef, dtype=float)
-        cols = np.arange(self.size) if cols is None else np.asarray(cols)
+        cols = np.arange(coef.size) if cols is None else np.asarray(cols)
         keep = coef != 0
         self.indices.append(cols[keep])
         self.values.append(coef[keep])
         self.lower.append(lower)
         self.upper.append(upper)
+
+    def copy(self) -> "_Rows":
+        out = _Rows(self.size)
+        out.indices, out.values = list(self.indices), list(self.values)
+        out.lower, out.upper = list(self.lower), list(self.upper)
+        return out
 
     def matrix(self):
         from scipy import sparse
@@ -518,11 +526,12 @@ class DiscreteAllocation:
     def _solve_milp(self, cand: _Candidates, limits: list[Limits]) -> _MilpOutcome:
         """Least-cost choice among ``cand``, exact for points (lazy cuts for mean shift).
 
-        Columns: a binary ``x_c`` per candidate and, for every lower-bound cell, a
-        continuous ``τ_c ∈ [t_lo x_c, t_hi x_c]`` (the tolerance inside the cell when it is
-        chosen). With cells the MILP is a relaxation: its optimum is a lower bound.
+        Columns: a binary ``x_c`` per candidate; for every lower-bound cell a continuous
+        ``y_c ∈ [t_lo/t_hi · x_c, x_c]`` (the tolerance inside the cell is ``t_hi·y_c``);
+        for every mean-shift requirement one binary per interval of δ (see
+        :meth:`_interval_rows`). With cells the MILP is a relaxation: its optimum is a lower
+        bound. The model is rebuilt after each round of cuts.
         """
-        n_c = len(self.options)
         size = cand.size
         owner = cand.owner
         cells = np.flatnonzero(cand.cell)
@@ -536,8 +545,6 @@ class DiscreteAllocation:
         unit_s = np.sqrt(n) * a * f  # σ share per unit tolerance
         unit_d = n * a * self.mean_shifts[owner]  # mean-shift share per unit tolerance
         unit_v = n * (a * f) ** 2  # variance share per unit tolerance squared
-
-        # a cell's tolerance is τ = t_hi·y with y ∈ [t_lo/t_hi · x, x]: columns of order 1
         t_hi = cand.value[cells]
 
         def linear(unit):
@@ -566,14 +573,14 @@ class DiscreteAllocation:
             n * (intercept - floor[owner]), (n * cand.cost_slope)[cells] * t_hi
         ]) * scale
 
-        total = size + n_tau
-        rows = _Rows(total)
+        base = _Rows(size + n_tau)
+        n_c = len(self.options)
         for i in range(n_c):  # Σ_j x_ij = 1
             lo_, hi_ = cand.starts[i], cand.starts[i + 1] if i + 1 < n_c else size
-            rows.add(np.ones(hi_ - lo_), 1.0, 1.0, cols=np.arange(lo_, hi_))
+            base.add(np.ones(hi_ - lo_), 1.0, 1.0, cols=np.arange(lo_, hi_))
         for k, c in enumerate(cells):  # t_lo/t_hi · x ≤ y ≤ x
-            rows.add(np.array([t[c] / t_hi[k], -1.0]), 0.0, cols=np.array([c, size + k]))
-            rows.add(np.array([-1.0, 1.0]), 0.0, cols=np.array([c, size + k]))
+            base.add(np.array([t[c] / t_hi[k], -1.0]), 0.0, cols=np.array([c, size + k]))
+            base.add(np.array([-1.0, 1.0]), 0.0, cols=np.array([c, size + k]))
 
         checks = []  # (r, kind, bound, lim) per requirement with limits
         for r, (req, lim) in enumerate(zip(self.requirements, limits)):
@@ -587,33 +594,44 @@ class DiscreteAllocation:
                 return _MilpOutcome("infeasible", None, None, None, None, 0, 0, 0,
                                     f"requirement '{req.name}': nominal outside its limits")
             if self.model == "worst-case":
-                rows.add(linear(unit_w[r]) / room, 1.0)
+                base.add(linear(unit_w[r]) / room, 1.0)
                 checks.append((r, "worst-case", room, lim))
             elif self.model == "rss":
                 sigma_max = stack.sigma_limit(req.nominal, lim.fallout, lim.lower, lim.upper)
-                rows.add(variance(unit_v[r]) / sigma_max**2, 1.0)
+                base.add(variance(unit_v[r]) / sigma_max**2, 1.0)
                 checks.append((r, "rss", sigma_max, lim))
             else:
                 # the worst mean must stay inside the limits (fallout ≥ 50 % otherwise)
-                rows.add(linear(unit_d[r]) / room, 1.0)
-                d_lo = unit_d[r] * t
-                delta_min = float(np.sum(np.minimum.reduceat(d_lo, cand.starts)))
-                g_min = mean_shift_allowance(req.nominal, delta_min, lim)[0] if delta_min < room else 0.0
-                if g_min > 0:  # σ ≤ g(δ) ≤ g(δ_min): a cap on the variance
-                    rows.add(variance(unit_v[r]) / g_min**2, 1.0)
+                base.add(linear(unit_d[r]) / room, 1.0)
                 checks.append((r, "mean-shift", room, lim))
-                # tangent cuts found in earlier solves stay valid for any candidates
-                for u, rhs, slope in self._tangents.get(r, ()):
-                    coef = linear(u[owner] * unit_s[r]) - slope * linear(unit_d[r])
-                    norm = _row_norm(coef, rhs)
-                    rows.add(coef / norm, rhs / norm)
+                key = (r, n_tau > 0)
+                if key not in self._breaks:
+                    d_lo = unit_d[r] * t
+                    low = float(np.sum(np.minimum.reduceat(d_lo, cand.starts)))
+                    high = float(np.sum(np.maximum.reduceat(unit_d[r] * cand.value, cand.starts)))
+                    # fine intervals make the points MILP exact in one solve as a rule; the
+                    # lower bound's MILP (continuous columns too) is faster with fewer
+                    involved = int(np.count_nonzero(np.maximum.reduceat(unit_d[r] + unit_s[r], cand.starts)))
+                    count = DELTA_INTERVALS_RELAXED if n_tau else min(DELTA_INTERVALS, max(16, 8 * involved))
+                    self._breaks[key] = np.linspace(low, min(high, room), count + 1)
 
+        dominance = []  # (row over the candidates, right-hand side): only for points
         integrality = np.concatenate([np.ones(size), np.zeros(n_tau)])
-        upper = np.ones(size + n_tau)
         solves = nodes = cuts = 0
         choice = objective_value = bound = None
         while solves < MAX_CUT_ROUNDS:
-            res = _run_milp(objective, rows, self.time_limit, integrality, upper)
+            rows = base.copy()
+            for coef, rhs in dominance:
+                rows.add(coef, rhs)
+            extra_cols = []
+            for r, kind, room, lim in checks:
+                if kind == "mean-shift":
+                    self._mean_shift_rows(rows, (r, n_tau > 0), room, lim, linear, variance,
+                                          owner, unit_s, unit_d, unit_v, extra_cols)
+            z = np.concatenate(extra_cols) if extra_cols else np.zeros(0)
+            rows.size = size + n_tau + z.size
+            res = _run_milp(np.concatenate([objective, np.zeros(z.size)]), rows, self.time_limit,
+                            np.concatenate([integrality, np.ones(z.size)]), np.ones(rows.size))
             solves += 1
             nodes += int(getattr(res, "mip_node_count", 0) or 0)
             if res.status == 2:
@@ -627,13 +645,13 @@ class DiscreteAllocation:
             x = np.asarray(res.x, dtype=float)
             choice = self._choice(x[:size], cand)
             realised = t.copy()
-            realised[cells] = x[size:] * t_hi
+            realised[cells] = x[size:size + n_tau] * t_hi
             objective_value = constant + float(res.fun) / scale
             if res.status != 0:  # time or node limit with an incumbent
                 return _MilpOutcome("failed", choice, objective_value, bound, res.mip_gap, solves,
                                     nodes, cuts, f"HiGHS: {res.message}")
-            added = self._cuts(checks, choice, cand, realised[choice], rows,
-                               linear, unit_w, unit_s, unit_d, unit_v, relaxed=n_tau > 0)
+            added = self._cuts(checks, choice, cand, realised[choice], dominance,
+                               unit_w, unit_s, unit_d, unit_v, relaxed=n_tau > 0)
             cuts += added
             if not added or (n_tau and solves >= MAX_RELAXED_ROUNDS):
                 # a relaxation stopped early is still a relaxation: its optimum bounds
@@ -643,6 +661,46 @@ class DiscreteAllocation:
         return _MilpOutcome("failed", choice, objective_value, bound, None, solves, nodes, cuts,
                             f"lazy cuts did not converge in {MAX_CUT_ROUNDS} MILP solves")
 
+    def _mean_shift_rows(self, rows, key, room, lim, linear, variance, owner,
+                         unit_s, unit_d, unit_v, extra_cols):
+        """Interval binaries and tangent cuts of one mean-shift requirement.
+
+        The variance V is linear in the choice and g(δ) (the largest σ with the mean
+        anywhere in ȳ ± δ) decreases in δ. With breakpoints δ_0 < ... < δ_K and one binary
+        z_k per interval: ``Σ z_k = 1``, ``Σ δ_k z_k ≤ δ ≤ Σ δ_(k+1) z_k`` and
+        ``V ≤ Σ g(δ_k)² z_k``. Every choice that meets the requirement satisfies these
+        (take the interval holding its δ: σ ≤ g(δ) ≤ g(δ_k)); breakpoints are added where
+        a choice failed. Needs only that g decreases, not its concavity.
+        """
+        r = key[0]
+        req = self.requirements[r]
+        breaks = self._breaks[key]
+        first = rows.size
+        k = breaks.size - 1
+        cols = np.arange(first, first + k)
+        g2 = np.array([
+            mean_shift_allowance(req.nominal, float(b), lim)[0] ** 2 if b < room else 0.0
+            for b in breaks[:-1]
+        ])
+        d_row = linear(unit_d[r])
+        v_row = variance(unit_v[r])
+        v_scale = g2.max() if g2.max() > 0 else 1.0
+        rows.add(np.ones(k), 1.0, 1.0, cols=cols)
+        # δ ≤ Σ δ_(k+1) z_k and δ ≥ Σ δ_k z_k (rows in units of the room)
+        rows.add(np.concatenate([d_row, -breaks[1:]]) / room, 0.0,
+                 cols=np.concatenate([np.arange(d_row.size), cols]))
+        rows.add(np.concatenate([d_row, -breaks[:-1]]) / room, np.inf, lower=0.0,
+                 cols=np.concatenate([np.arange(d_row.size), cols]))
+        rows.add(np.concatenate([v_row, -g2]) / v_scale, 0.0,
+                 cols=np.concatenate([np.arange(v_row.size), cols]))
+        rows.size = first + k
+        extra_cols.append(cols)
+        # tangent cuts found in earlier solves stay valid for any candidates
+        for u, rhs, slope in self._tangents.get(r, ()):
+            coef = linear(u[owner] * unit_s[r]) - slope * linear(unit_d[r])
+            norm = _row_norm(coef, rhs)
+            rows.add(coef / norm, rhs / norm)
+
     @staticmethod
     def _choice(x, cand: _Candidates) -> np.ndarray:
         """The candidate each contributor takes (largest x in its block)."""
@@ -650,12 +708,12 @@ class DiscreteAllocation:
         order = np.lexsort((-x, cand.owner))
         return order[cand.starts]
 
-    def _cuts(self, checks, choice, cand, t_chosen, rows: _Rows, linear,
+    def _cuts(self, checks, choice, cand, t_chosen, dominance,
               unit_w, unit_s, unit_d, unit_v, relaxed: bool) -> int:
-        """Add cuts for every requirement the choice misses; returns how many.
+        """Record cuts for every requirement the choice misses; returns how many.
 
-        ``t_chosen`` is each contributor's tolerance at the MILP solution. Two kinds of
-        cut, both valid for every choice that meets the requirement:
+        ``t_chosen`` is each contributor's tolerance at the MILP solution. Cuts valid for
+        every choice that meets the requirement:
 
         - *dominance* (points only): the fallout (or the worst case) only grows with each
           contributor's t and σ = f·t, so every choice at least as loose as this one in
@@ -665,14 +723,14 @@ class DiscreteAllocation:
         - *tangent* (mean shift): with σ_i linear in the choice and u = σ*/‖σ*‖ at the
           failing choice, Cauchy-Schwarz gives u·σ ≤ ‖σ‖, and for concave decreasing g,
           g(δ) ≤ g(δ*) + g'(δ*)(δ − δ*): ``u·σ − g'(δ*)·δ ≤ g(δ*) − g'(δ*)·δ*``.
+        - a new *breakpoint* at δ* for the interval rows (mean shift).
 
-        With lower-bound cells (``relaxed``) only tangent cuts are added, and worst case
-        and rss are not checked (the relaxation may pass them optimistically).
+        With lower-bound cells (``relaxed``) worst case and rss are not checked (the
+        relaxation may pass them optimistically) and no dominance cut is made.
         """
         owner = cand.owner
         added = 0
         in_chain = np.zeros(len(self.options), dtype=bool)
-        f = cand.factor[choice]
         for r, kind, bound, lim in checks:
             if relaxed and kind != "mean-shift":
                 continue
@@ -692,7 +750,6 @@ class DiscreteAllocation:
             if ok:
                 continue
             if not relaxed:
-                # dominance cut over the contributors this requirement involves
                 t = cand.tolerance
                 shares = {
                     "worst-case": (unit_w[r] * t,),
@@ -705,19 +762,20 @@ class DiscreteAllocation:
                 dominated = in_chain[owner].copy()
                 for share in shares:
                     dominated &= share >= share[choice][owner]
-                coef = np.concatenate([dominated.astype(float), np.zeros(rows.size - cand.size)])
-                rows.add(coef, float(np.count_nonzero(in_chain) - 1))
+                dominance.append((dominated.astype(float), float(np.count_nonzero(in_chain) - 1)))
                 added += 1
-            if kind == "mean-shift" and sigma > 0 and lim.fallout <= TANGENT_MAX_FALLOUT:
+            if kind != "mean-shift":
+                continue
+            key = (r, relaxed)
+            breaks = self._breaks[key]
+            if 0 < delta < bound and np.min(np.abs(breaks - delta)) > 1e-12 * bound:
+                self._breaks[key] = np.sort(np.append(breaks, delta))
+                added += 1
+            if sigma > 0 and lim.fallout <= TANGENT_MAX_FALLOUT:
                 point = min(delta, bound * (1 - 1e-12))
                 g, slope, _ = mean_shift_allowance(req.nominal, point, lim)
                 slope = min(slope, 0.0)
-                u = sigma_i / sigma  # per contributor
-                coef = linear(u[owner] * unit_s[r]) - slope * linear(unit_d[r])
-                rhs = g - slope * point
-                self._tangents.setdefault(r, []).append((u, rhs, slope))
-                norm = _row_norm(coef, rhs)
-                rows.add(coef / norm, rhs / norm)
+                self._tangents.setdefault(r, []).append((sigma_i / sigma, g - slope * point, slope))
                 added += 1
         return added
 
@@ -811,6 +869,7 @@ class DiscreteAllocation:
         """
         limits = self.reference.limits(overrides)
         self._tangents = {}  # requirement -> [(u, rhs, g'(δ))]: mean-shift cuts for these limits
+        self._breaks = {}  # (requirement, relaxed) -> δ breakpoints of the interval rows
         if self.model == "mean-shift":
             for req, lim in zip(self.requirements, limits):
                 if lim.fallout >= 0.5:
