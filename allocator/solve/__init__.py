@@ -50,18 +50,26 @@ def solver_for(case: Case, model: str | None = None, *, fix=None):
     (:class:`~allocator.solve.continuous.CompiledAllocation`); building it once and calling
     ``solve`` with limit overrides is what frontier sweeps do.
     """
-    from .exact import ExactAllocation, applicable
+    from .exact import ExactAllocation, MeanShiftExact, applicable, applicable_mean_shift
+    from .problem import NeedsDiscrete
 
     model = model or _default_model(case)
-    if case.allocation.rounding is not None or any(
-        c.is_discrete and not c.fixed and c.name not in (fix or {}) for c in case.contributors
-    ):
+    discrete = _discrete_module() if case.allocation.rounding is not None else None
+    if discrete is not None and hasattr(discrete, "solver_for"):
+        return discrete.solver_for(case, model, fix=fix)
+    try:
+        # prepare() finds contributors that need a choice in the same pass that builds
+        # the arrays (no separate scan of every contributor)
+        problem = prepare(case, model, fix)
+    except NeedsDiscrete:
         discrete = _discrete_module()
-        if discrete is not None and hasattr(discrete, "solver_for"):
-            return discrete.solver_for(case, model, fix=fix)
-    problem = prepare(case, model, fix)
+        if discrete is None or not hasattr(discrete, "solver_for"):
+            raise
+        return discrete.solver_for(case, model, fix=fix)
     if applicable(problem):
         return ExactAllocation(problem)
+    if applicable_mean_shift(problem):
+        return MeanShiftExact(problem)
     from .continuous import CompiledAllocation
 
     return CompiledAllocation.from_problem(problem)

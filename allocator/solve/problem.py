@@ -34,6 +34,7 @@ from .result import Allocation, RequirementResult
 
 __all__ = [
     "AllocationProblem",
+    "NeedsDiscrete",
     "CurveSet",
     "RequirementData",
     "Limits",
@@ -49,6 +50,10 @@ WORST_CASE_RTOL = 1e-9
 FALLOUT_RTOL = 1e-6
 # A tolerance within this fraction of its range from a bound is reported at that bound.
 BOUND_RTOL = 1e-7
+
+
+class NeedsDiscrete(UsageError):
+    """A free contributor needs a choice of process or of listed tolerances."""
 
 
 def _close(name: str, options) -> str:
@@ -73,19 +78,42 @@ class CurveSet:
 
     def __init__(self, curves):
         self.curves = tuple(curves)
-        size = len(self.curves)
-        kind = np.array([("none" if c is None else c.curve) for c in self.curves], dtype=object)
-        self.power = np.flatnonzero((kind == "reciprocal") | (kind == "reciprocal-power"))
-        self.expo = np.flatnonzero(kind == "exponential")
-        self.tables = [i for i in range(size) if kind[i] == "table"]
-        par = lambda idx, attr: np.array([getattr(self.curves[i], attr) for i in idx], dtype=float)  # noqa: E731
-        self.pa, self.pb = par(self.power, "a"), par(self.power, "b")
-        self.pk = np.array(
-            [1.0 if self.curves[i].curve == "reciprocal" else self.curves[i].k for i in self.power],
-            dtype=float,
-        )
-        self.ea, self.eb, self.ec = par(self.expo, "a"), par(self.expo, "b"), par(self.expo, "c")
-        self.size = size
+        self.size = len(self.curves)
+        power, pa, pb, pk, expo, ea, eb, ec, tables = ([] for _ in range(9))
+        for i, c in enumerate(self.curves):  # one pass: cases may have thousands of parts
+            kind = None if c is None else c.curve
+            if kind == "reciprocal" or kind == "reciprocal-power":
+                power.append(i)
+                pa.append(c.a)
+                pb.append(c.b)
+                pk.append(1.0 if kind == "reciprocal" else c.k)
+            elif kind == "exponential":
+                expo.append(i)
+                ea.append(c.a)
+                eb.append(c.b)
+                ec.append(c.c)
+            elif kind == "table":
+                tables.append(i)
+        self.power, self.expo = np.array(power, dtype=int), np.array(expo, dtype=int)
+        self.pa, self.pb, self.pk = (np.array(v, dtype=float) for v in (pa, pb, pk))
+        self.ea, self.eb, self.ec = (np.array(v, dtype=float) for v in (ea, eb, ec))
+        self.tables = tables
+
+    def subset(self, index) -> "CurveSet":
+        """The curves at positions ``index`` (increasing), without re-reading the curves."""
+        index = np.asarray(index, dtype=int)
+        position = np.full(self.size, -1)
+        position[index] = np.arange(index.size)
+        out = CurveSet.__new__(CurveSet)
+        out.curves = tuple(self.curves[i] for i in index)
+        out.size = index.size
+        keep_p = position[self.power] >= 0
+        keep_e = position[self.expo] >= 0
+        out.power, out.expo = position[self.power][keep_p], position[self.expo][keep_e]
+        out.pa, out.pb, out.pk = self.pa[keep_p], self.pb[keep_p], self.pk[keep_p]
+        out.ea, out.eb, out.ec = self.ea[keep_e], self.eb[keep_e], self.ec[keep_e]
+        out.tables = [int(position[i]) for i in self.tables if position[i] >= 0]
+        return out
 
     def value(self, t) -> np.ndarray:
         """Unit cost of each contributor at ``t`` [currency]; NaN where undefined."""
@@ -288,6 +316,22 @@ def mean_shift_allowance(nominal: float, delta: float, limits: Limits) -> tuple[
     return high
 
 
+def allowance_with_curvature(nominal: float, delta: float, lim: Limits) -> tuple[float, float, float]:
+    """g(δ), g'(δ) and g''(δ) (the last by a central difference of the analytic g')."""
+    value, slope, _ = mean_shift_allowance(nominal, delta, lim)
+    domain = min(
+        math.inf if lim.lower is None else nominal - lim.lower,
+        math.inf if lim.upper is None else lim.upper - nominal,
+    )
+    h = 1e-5 * max(delta, 1e-3 * domain)
+    if delta - h < 0:
+        plus = mean_shift_allowance(nominal, delta + h, lim)[1]
+        return value, slope, (plus - slope) / h
+    plus = mean_shift_allowance(nominal, delta + h, lim)[1]
+    minus = mean_shift_allowance(nominal, delta - h, lim)[1]
+    return value, slope, (plus - minus) / (2 * h)
+
+
 # --------------------------------------------------------------------------- the problem
 
 
@@ -318,39 +362,79 @@ class AllocationProblem:
     requirements : tuple of RequirementData
     length_scale, cost_scale : float
         Scales the solvers divide tolerances and costs by.
+
+    With ``check=True`` (what :func:`prepare` does) the same pass refuses contributors
+    that need a discrete choice (:class:`NeedsDiscrete`) and non-convex cost tables
+    (:class:`~allocator.errors.CaseError`); without it any case is taken as it is (the
+    discrete solver uses that for the statistics of a chosen combination).
     """
 
-    def __init__(self, case: Case, model: str, fix: Mapping[str, float] | None = None):
+    def __init__(self, case: Case, model: str, fix: Mapping[str, float] | None = None, *, check: bool = False):
         self.case = case
         self.model = model
         self.fix = dict(fix or {})
         contributors = case.contributors
-        self.names = case.names
-        self.counts = case.counts
-        size = len(contributors)
-        lo = np.empty(size)
-        hi = np.empty(size)
-        held = np.full(size, np.nan)
-        sigma_factors = np.empty(size)
+        nan = math.nan
+        lo, hi, held, sigma_factors = [], [], [], []
+        names, counts, shifts, current = [], [], [], []
         curves, processes, hold_kind = [], [], []
+        file = str(case.path) if case.path is not None else None
+        fixes = self.fix
+        # one pass (the same as Contributor.options()[0], without building a Process per
+        # call), filling lists: this runs on every allocation and cases may have thousands
+        # of parts
         for i, c in enumerate(contributors):
-            option = c.options()[0]
-            processes.append(option.name)
-            curves.append(option.cost)
-            sigma_factors[i] = c.process_sigma_factor(option) if c.processes else c.sigma_factor
-            if c.fixed or c.name in self.fix:
-                value = c.tolerance if c.fixed else float(self.fix[c.name])
-                held[i] = lo[i] = hi[i] = value
-                hold_kind.append("fixed" if c.fixed else "held")
+            names.append(c.name)
+            counts.append(c.count)
+            shifts.append(c.mean_shift)
+            current.append(c.tolerance)
+            if c.processes:
+                option = c.processes[0]
+                limits, curve, name = option.limits, option.cost, option.name
+                sigma_factors.append(c.process_sigma_factor(option))
             else:
-                lo[i], hi[i] = option.limits
-                hold_kind.append("")
+                limits = c.limits if c.limits is not None else (c.tolerance, c.tolerance)
+                curve, name = c.cost, ""
+                sigma_factors.append(c.sigma_factor)
+            processes.append(name)
+            curves.append(curve)
+            if c.fixed or c.name in fixes:
+                value = c.tolerance if c.fixed else float(fixes[c.name])
+                lo.append(value)
+                hi.append(value)
+                held.append(value)
+                hold_kind.append("fixed" if c.fixed else "held")
+                continue
+            lo.append(limits[0])
+            hi.append(limits[1])
+            held.append(nan)
+            hold_kind.append("")
+            if not check:
+                continue
+            if len(c.processes) > 1 or (curve is not None and curve.is_discrete):
+                raise NeedsDiscrete(
+                    f"contributor '{c.name}' needs a choice of process or of listed tolerances; "
+                    "that is the discrete allocation's job, not the continuous solver's"
+                )
+            if curve is not None and curve.curve == "table":
+                problem = costs.table_problem(curve)
+                if problem:
+                    raise CaseError(
+                        f"contributor '{c.name}': its cost table cannot be used for continuous "
+                        f"allocation: {problem}",
+                        file=file,
+                        field=f"contributor[{i + 1}] ({c.name}).cost",
+                    )
+        lo, hi, held = (np.array(v, dtype=float) for v in (lo, hi, held))
+        sigma_factors = np.array(sigma_factors, dtype=float)
+        self.names = tuple(names)
+        self.counts = np.array(counts, dtype=float)
         self.sigma_factors = sigma_factors
-        self.mean_shifts = case.mean_shifts
+        self.mean_shifts = np.array(shifts, dtype=float)
         self.lower_bounds, self.upper_bounds, self.held = lo, hi, held
         self.free = np.isnan(held)
         self.hold_kind = tuple(hold_kind)
-        self.current = case.current_tolerances
+        self.current = np.array(current, dtype=float)
         self.processes = tuple(processes)
         self.curves = CurveSet(curves)
         self.requirements = tuple(
@@ -564,19 +648,11 @@ class AllocationProblem:
         return float(np.sum(self.counts * self.unit_costs(t)))
 
     def bound_flags(self, t) -> tuple[str, ...]:
+        """'tightest' | 'loosest' | 'fixed' | '' per contributor."""
         lo, hi = self.lower_bounds, self.upper_bounds
         slack = BOUND_RTOL * np.maximum(hi - lo, hi)
-        flags = []
-        for i in range(len(t)):
-            if not self.free[i]:
-                flags.append("fixed")
-            elif t[i] <= lo[i] + slack[i]:
-                flags.append("tightest")
-            elif t[i] >= hi[i] - slack[i]:
-                flags.append("loosest")
-            else:
-                flags.append("")
-        return tuple(flags)
+        flags = np.where(t <= lo + slack, "tightest", np.where(t >= hi - slack, "loosest", ""))
+        return tuple(np.where(self.free, flags, "fixed").tolist())
 
     def result(
         self,
@@ -758,30 +834,11 @@ def prepare(case: Case, model: str, fix: Mapping[str, float] | None = None) -> A
     ------
     UsageError
         Unknown model, a ``fix`` entry naming no contributor or holding a tolerance
-        ≤ 0, or a contributor that needs process selection (discrete solver).
+        ≤ 0; :class:`NeedsDiscrete` (a UsageError) for a contributor that needs process
+        selection (the discrete solver's job).
     CaseError
         A ``table`` cost that is not convex and decreasing (named, with the reason).
     """
     if model not in MODELS:
         raise UsageError(f"unknown model {model!r}{_close(model, MODELS)} (choose from {', '.join(MODELS)})")
-    fix = _check_fix(case, fix)
-    file = str(case.path) if case.path is not None else None
-    for i, c in enumerate(case.contributors):
-        if c.fixed or c.name in fix:
-            continue
-        if c.is_discrete:
-            raise UsageError(
-                f"contributor '{c.name}' needs a choice of process or of listed tolerances; "
-                "that is the discrete allocation's job, not the continuous solver's"
-            )
-        option = c.options()[0]
-        if option.cost is not None and option.cost.curve == "table":
-            problem = costs.table_problem(option.cost)
-            if problem:
-                raise CaseError(
-                    f"contributor '{c.name}': its cost table cannot be used for continuous "
-                    f"allocation: {problem}",
-                    file=file,
-                    field=f"contributor[{i + 1}] ({c.name}).cost",
-                )
-    return AllocationProblem(case, model, fix)
+    return AllocationProblem(case, model, _check_fix(case, fix), check=True)
