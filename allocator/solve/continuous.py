@@ -28,7 +28,7 @@ import math
 import numpy as np
 
 from .. import costs, stack
-from .problem import AllocationProblem, mean_shift_allowance, prepare, scaled_curve
+from .problem import AllocationProblem, allowance_with_curvature, mean_shift_allowance, prepare, scaled_curve
 
 __all__ = ["CompiledAllocation", "SOLVER_OPTIONS"]
 
@@ -461,7 +461,7 @@ def refine_mean_shift(problem: AllocationProblem, limits, multipliers, t, *, max
             req, lim = p.requirements[k], limits[k]
             sigma = math.sqrt(float(w @ (x * x)))
             delta = float(v @ x)
-            g, slope, second = _allowance_with_curvature(req.nominal, delta, lim)
+            g, slope, second = allowance_with_curvature(req.nominal, delta, lim)
             d_sigma = w * x / sigma
             grads.append(d_sigma - slope * v)
             wj, dj, vj = w[J], d_sigma[J], v[J]
@@ -474,7 +474,7 @@ def refine_mean_shift(problem: AllocationProblem, limits, multipliers, t, *, max
         if np.all(np.abs(residual_s[J]) <= 1e-11 * scale_s) and np.all(np.abs(residual_c) <= 1e-13):
             break
         # constraint rows divided by g (as the residual), columns of μ in their own units
-        g_values = np.array([_allowance_with_curvature(p.requirements[k].nominal, float(v @ x), limits[k])[0]
+        g_values = np.array([allowance_with_curvature(p.requirements[k].nominal, float(v @ x), limits[k])[0]
                              for k, _, v in rows])
         kkt = np.zeros((J.size + len(active),) * 2)
         kkt[: J.size, : J.size] = hess
@@ -504,19 +504,3 @@ def refine_mean_shift(problem: AllocationProblem, limits, multipliers, t, *, max
     for j, k in enumerate(active):
         out[k] = float(mu[j])
     return x, out, None
-
-
-def _allowance_with_curvature(nominal, delta, lim):
-    """g(δ), g'(δ) and g''(δ) (the last by a central difference of the analytic g')."""
-    value, slope, _ = mean_shift_allowance(nominal, delta, lim)
-    domain = min(
-        math.inf if lim.lower is None else nominal - lim.lower,
-        math.inf if lim.upper is None else lim.upper - nominal,
-    )
-    h = 1e-5 * max(delta, 1e-3 * domain)
-    if delta - h < 0:
-        plus = mean_shift_allowance(nominal, delta + h, lim)[1]
-        return value, slope, (plus - slope) / h
-    plus = mean_shift_allowance(nominal, delta + h, lim)[1]
-    minus = mean_shift_allowance(nominal, delta - h, lim)[1]
-    return value, slope, (plus - minus) / (2 * h)

@@ -30,11 +30,22 @@ import numpy as np
 from scipy import special
 
 from .. import costs, stack
-from .problem import AllocationProblem, CurveSet, mean_shift_allowance
+from .problem import AllocationProblem, allowance_with_curvature, mean_shift_allowance
 
-__all__ = ["applicable", "separable", "ExactAllocation", "SeparableDual", "refine"]
+__all__ = [
+    "applicable",
+    "applicable_mean_shift",
+    "separable",
+    "ExactAllocation",
+    "MeanShiftExact",
+    "SeparableDual",
+    "refine",
+    "minimise_linear_price",
+    "minimise_quadratic_price",
+]
 
 SOLVER_NAME = "lagrange-dual"
+GAP_LIMIT = 1e-8  # Newton's answer counts only with a dual bound this close (else: conic)
 
 
 def separable(problem: AllocationProblem) -> bool:
@@ -70,7 +81,7 @@ class SeparableDual:
         self.lo = problem.lower_bounds[free]
         self.hi = problem.upper_bounds[free]
         self.n = problem.counts[free]
-        self.curves = CurveSet([problem.curves.curves[i] for i in self.index])
+        self.curves = problem.curves.subset(self.index)
         self.squared = problem.model != "worst-case"
         a = np.array([r.sensitivity for r in problem.requirements]).reshape(len(problem.requirements), -1)
         weight = (a * problem.sigma_factors) ** 2 if self.squared else np.abs(a)
@@ -96,25 +107,10 @@ class SeparableDual:
         """
         self.evaluations += 1
         v = np.broadcast_to(np.asarray(v, dtype=float), self.hi.shape)
-        cs = self.curves
-        p, e = cs.power, cs.expo
-        t = np.full(self.hi.shape, np.inf)
-        with np.errstate(divide="ignore", over="ignore", invalid="ignore"):
-            if self.squared:
-                q = 2.0 * v
-                t[p] = (cs.pk * cs.pb / q[p]) ** (1.0 / (cs.pk + 2.0))
-                t[e] = special.lambertw(cs.eb * cs.ec**2 / q[e]).real / cs.ec
-            else:
-                t[p] = (cs.pk * cs.pb / v[p]) ** (1.0 / (cs.pk + 1.0))
-                t[e] = np.log(cs.eb * cs.ec / v[e]) / cs.ec
-        t[np.isnan(t) | (v <= 0)] = np.inf  # nothing pulls the tolerance tighter
-        for j in cs.tables:
-            curve = cs.curves[j]
-            if self.squared:
-                t[j] = _table_squared_minimiser(curve, 2.0 * v[j])
-            else:
-                t[j] = costs.inverse_derivative(curve, -v[j], self.lo[j], self.hi[j])
-        t = np.clip(t, self.lo, self.hi)
+        if self.squared:
+            t = minimise_quadratic_price(self.curves, 2.0 * v, self.lo, self.hi)
+        else:
+            t = minimise_linear_price(self.curves, v, self.lo, self.hi)
         return self._pin(t) if pinned else t
 
     def combined(self, lam) -> np.ndarray:
@@ -308,6 +304,235 @@ class ExactAllocation:
         return t_b
 
 
+# --------------------------------------------------------------------------- mean shift
+
+
+def applicable_mean_shift(problem: AllocationProblem) -> bool:
+    """True when :class:`MeanShiftExact` applies: one requirement, mean-shift model with
+    at least one free contributor that has a mean shift (otherwise :func:`applicable`)."""
+    return (
+        len(problem.requirements) == 1
+        and problem.model == "mean-shift"
+        and bool(np.any(problem.mean_shifts[problem.free] > 0))
+    )
+
+
+class MeanShiftExact:
+    r"""Single-requirement mean-shift allocation without a conic solver.
+
+    Parameters
+    ----------
+    problem : AllocationProblem
+        Must satisfy :func:`applicable_mean_shift`.
+
+    Notes
+    -----
+    The constraint is ``h(t) = σ(t) − g(δ(t)) ≤ 0`` with ``σ² = Σ n w t² + σ_held²``
+    (``w = a² f²``), ``δ = Σ n v t + δ_held`` (``v = |a| m``) and the concave, decreasing
+    allowance ``g`` (:func:`~.problem.mean_shift_allowance`). With its multiplier μ the
+    KKT conditions are, per part,
+
+    .. math::
+
+        C_i'(t_i) + α\,w_i\,t_i + β\,v_i = 0,\qquad α = μ/σ,\quad β = −μ\,g'(δ) ≥ 0,
+
+    separable for given ``(α, β)`` (:func:`minimise_quadratic_price` with a shift), plus
+    two scalar equations
+
+    .. math::
+
+        F_1 = σ − g(δ) = 0,\qquad F_2 = β + α\,σ\,g'(δ) = 0.
+
+    A 1-D root in ``log α`` with β = 0 gives a feasible start on the constraint
+    (``F_1`` is decreasing in α); damped Newton steps on ``(F_1, F_2)`` with the exact
+    Jacobian (implicit differentiation of the per-part stationarity, ``g''`` by a
+    central difference of the analytic ``g'``) finish. A lower bound comes from the
+    tangent of ``h`` at the answer (a relaxation, ``h`` being convex): the separable
+    minimum of ``C(t) + μ ℓ(t)``. If Newton does not settle, the conic solver takes over.
+
+    References
+    ----------
+    .. [1] Greenwood, W. H. and Chase, K. W. (1987). A new tolerance analysis method for
+       designers and manufacturers. Journal of Engineering for Industry 109(2), 112-116.
+    .. [2] Chase, K. W., Greenwood, W. H., Loosli, B. G. and Hauglund, L. F. (1990).
+       Least cost tolerance allocation for mechanical assemblies with automated process
+       selection. Manufacturing Review 3(1), 49-59.
+    """
+
+    SOLVER_NAME = "lagrange-newton"
+
+    def __init__(self, problem: AllocationProblem):
+        if not applicable_mean_shift(problem):
+            raise ValueError("needs one requirement under mean shift with free mean shifts")
+        self.problem = problem
+        free, held = problem.free, ~problem.free
+        self.index = np.flatnonzero(free)
+        self.lo = problem.lower_bounds[free]
+        self.hi = problem.upper_bounds[free]
+        self.n = problem.counts[free]
+        self.curves = problem.curves.subset(self.index)
+        req = problem.requirements[0]
+        a = req.sensitivity
+        w = (a * problem.sigma_factors) ** 2
+        v = np.abs(a) * problem.mean_shifts
+        self.w, self.v = w[free], v[free]
+        t_held = problem.held[held]
+        n_held = problem.counts[held]
+        self.var_held = float(np.sum(n_held * w[held] * t_held**2))
+        self.delta_held = float(np.sum(n_held * v[held] * t_held))
+        self.held_cost = float(np.sum((problem.counts * problem.unit_costs(problem.held))[held]))
+        self.evaluations = 0
+        self._conic = None
+
+    def tolerances(self, alpha: float, beta: float) -> np.ndarray:
+        self.evaluations += 1
+        return minimise_quadratic_price(self.curves, alpha * self.w, self.lo, self.hi, shift=beta * self.v)
+
+    def _state(self, t):
+        sigma = math.sqrt(float(self.n @ (self.w * t * t)) + self.var_held)
+        delta = float(self.n @ (self.v * t)) + self.delta_held
+        return sigma, delta
+
+    def solve(self, overrides=None):
+        """Allocate; returns an :class:`~allocator.solve.result.Allocation`."""
+        problem = self.problem
+        limits = problem.limits(overrides)
+        reason = problem.diagnose(limits)
+        if reason:
+            return problem.infeasible(limits, reason, self.SOLVER_NAME)
+        self.evaluations = 0
+        out = self._kkt(limits[0])
+        if out is not None:
+            t_free, mu, bound = out
+            t = problem.full(t_free)
+            polished, theta = problem.polish(t, limits)
+            cost = problem.total_cost(polished)
+            gap = max(0.0, (cost - bound) / cost) if cost > 0 else 0.0
+            verified = theta >= 1.0 - 1e-9 and problem.feasible(polished, limits, rtol=problem._rtol())
+            if verified and gap <= GAP_LIMIT:
+                return problem.result(
+                    polished, limits, status="optimal",
+                    message="KKT conditions solved by Newton (separable in the multipliers); "
+                    "re-checked against the requirement",
+                    solver=self.SOLVER_NAME, iterations=self.evaluations, gap=gap, multipliers=[mu],
+                )
+        # Newton did not settle (or its answer did not verify): the conic solver decides
+        if self._conic is None:
+            from .continuous import CompiledAllocation
+
+            self._conic = CompiledAllocation.from_problem(problem)
+        return self._conic.solve(overrides)
+
+    def _kkt(self, lim):
+        """``(t, μ, lower bound)`` or None."""
+        req = self.problem.requirements[0]
+        if lim.lower is None and lim.upper is None or self.index.size == 0:
+            return self.hi.copy(), 0.0, self.held_cost + self._cost(self.hi)
+        domain = min(
+            math.inf if lim.lower is None else req.nominal - lim.lower,
+            math.inf if lim.upper is None else lim.upper - req.nominal,
+        )
+
+        def residual(t):
+            sigma, delta = self._state(t)
+            if delta >= domain:
+                return math.inf, sigma, delta, (0.0, -math.inf, 0.0)
+            g = allowance_with_curvature(req.nominal, delta, lim)
+            return (sigma - g[0]) / g[0], sigma, delta, g
+
+        if residual(self.hi)[0] <= 0:
+            return self.hi.copy(), 0.0, self.held_cost + self._cost(self.hi)
+        # 1. β = 0: a point on the constraint (F1 decreases as α grows)
+        mid = np.sqrt(self.lo * self.hi)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            per = -self.curves.derivative(mid) / (self.w * mid)
+        per = per[np.isfinite(per) & (per > 0)]
+        guess = math.log(float(np.median(per)) if per.size else 1.0)
+
+        def f1(x):
+            return residual(self.tolerances(math.exp(x), 0.0))[0]
+
+        x_lo = x_hi = guess
+        for _ in range(400):
+            if f1(x_hi) <= 0:
+                break
+            x_hi += math.log(10.0)
+        else:
+            return None
+        for _ in range(400):
+            if f1(x_lo) > 0:
+                break
+            x_lo -= math.log(10.0)
+        _, x_b = _bracket_root(f1, x_lo, x_hi, xtol=1e-10)
+        alpha, beta = math.exp(x_b), 0.0
+
+        # 2. Newton on (F1, F2)
+        def system(alpha, beta):
+            t = self.tolerances(alpha, beta)
+            f1, sigma, delta, (g, g1, g2) = residual(t)
+            if not math.isfinite(f1):
+                return None
+            scale = alpha * sigma * abs(g1) + beta
+            f2 = (beta + alpha * sigma * g1) / scale if scale > 0 else 0.0
+            return t, np.array([f1, f2]), sigma, delta, g, g1, g2, scale
+
+        state = system(alpha, beta)
+        if state is None:
+            return None
+        for _ in range(60):
+            t, res, sigma, delta, g, g1, g2, scale = state
+            if abs(res[0]) <= 1e-13 and abs(res[1]) <= 1e-11:
+                break
+            inside = (t > self.lo) & (t < self.hi) & ~self.curves.at_breakpoint(t)
+            denominator = self.curves.curvature(t) + alpha * self.w
+            with np.errstate(divide="ignore", invalid="ignore"):
+                dt_da = np.where(inside, -self.w * t / denominator, 0.0)
+                dt_db = np.where(inside, -self.v / denominator, 0.0)
+            jac = np.empty((2, 2))
+            for col, dt in enumerate((dt_da, dt_db)):
+                d_sigma = float(self.n @ (self.w * t * dt)) / sigma
+                d_delta = float(self.n @ (self.v * dt))
+                jac[0, col] = (d_sigma - g1 * d_delta) / g
+                d_n2 = alpha * g1 * d_sigma + alpha * sigma * g2 * d_delta
+                d_n2 += sigma * g1 if col == 0 else 1.0
+                jac[1, col] = d_n2 / scale if scale > 0 else 0.0
+            try:
+                step = np.linalg.solve(jac, -res)
+            except np.linalg.LinAlgError:
+                return None
+            if not np.all(np.isfinite(step)):
+                return None
+            base = float(np.linalg.norm(res))
+            lam = 1.0
+            for _ in range(40):
+                a_new = alpha + lam * step[0]
+                b_new = max(beta + lam * step[1], 0.0)
+                trial = system(a_new, b_new) if a_new > 0 else None
+                if trial is not None and float(np.linalg.norm(trial[1])) < base:
+                    break
+                lam *= 0.5
+            else:
+                if abs(res[0]) <= 1e-10 and abs(res[1]) <= 1e-8:
+                    break  # round-off floor: no step improves any more
+                return None
+            alpha, beta, state = a_new, b_new, trial
+        else:
+            return None
+        t, res, sigma, delta, g, g1, g2, scale = state
+        if res[0] > 1e-9:
+            return None
+        mu = alpha * sigma
+        # lower bound: the tangent ℓ of the convex h at t relaxes the constraint
+        price = alpha * self.w * t + beta * self.v  # μ ∂h/∂t per part
+        t_b = minimise_linear_price(self.curves, price, self.lo, self.hi)
+        bound = (self.held_cost + self._cost(t_b) + float(self.n @ (price * (t_b - t)))
+                 + mu * (sigma - g))
+        return t, mu, bound
+
+    def _cost(self, t) -> float:
+        return float(self.n @ self.curves.value(t))
+
+
 # --------------------------------------------------------------------------- refinement
 
 
@@ -472,15 +697,97 @@ def _bracket_root(f, a: float, b: float, *, xtol: float = 1e-13, maxiter: int = 
     return a, b
 
 
-def _table_squared_minimiser(curve, q: float) -> float:
-    """Minimiser of ``C(t) + q t²/2`` over a convex piecewise-linear table's range.
+def minimise_linear_price(cs, s, lo, hi) -> np.ndarray:
+    """Per part, the minimiser of ``C(t) + s t`` on ``[lo, hi]`` (``C'(t) = −s``).
 
-    ``h(t) = C'(t) + q t`` is increasing; the answer is ``clip(−s_j/q, x_j, x_{j+1})``
-    for the last segment j with ``h(x_j) ≤ 0`` (the first breakpoint when none has).
+    ``a + b/t^k``: ``(k b / s)^(1/(k+1))``; ``a + b e^(−ct)``: ``ln(b c / s) / c``; a convex
+    table: :func:`allocator.costs.inverse_derivative`. ``s <= 0``: the loosest limit.
+    """
+    s = np.broadcast_to(np.asarray(s, dtype=float), np.shape(lo))
+    t = _linear_root(cs, s)
+    for j in cs.tables:
+        t[j] = costs.inverse_derivative(cs.curves[j], -s[j], lo[j], hi[j])
+    return np.clip(t, lo, hi)
+
+
+def _linear_root(cs, s) -> np.ndarray:
+    """Unclipped root of ``C'(t) = −s`` for the formula curves (inf elsewhere)."""
+    p, e = cs.power, cs.expo
+    t = np.full(np.shape(s), np.inf)
+    with np.errstate(divide="ignore", over="ignore", invalid="ignore"):
+        t[p] = (cs.pk * cs.pb / s[p]) ** (1.0 / (cs.pk + 1.0))
+        t[e] = np.log(cs.eb * cs.ec / s[e]) / cs.ec
+    t[np.isnan(t) | (s <= 0)] = np.inf  # nothing pulls the tolerance tighter
+    return t
+
+
+def minimise_quadratic_price(cs, q, lo, hi, shift=None) -> np.ndarray:
+    """Per part, the minimiser of ``C(t) + q t²/2 (+ shift·t)`` on ``[lo, hi]``.
+
+    Without ``shift`` in closed form: ``a + b/t^k`` gives ``(k b / q)^(1/(k+2))``,
+    ``a + b e^(−ct)`` gives ``W₀(b c² / q) / c``. With ``shift`` (``C'(t) + q t + shift =
+    0``, the mean-shift stationarity) the root is bracketed by these one-term closed forms
+    and found by safeguarded Newton steps in ``log t`` (vectorised). Tables: the last
+    piece whose left end has a non-positive slope of the whole expression.
+    """
+    q = np.broadcast_to(np.asarray(q, dtype=float), np.shape(lo))
+    p, e = cs.power, cs.expo
+
+    def closed(q):
+        t = np.full(np.shape(lo), np.inf)
+        with np.errstate(divide="ignore", over="ignore", invalid="ignore"):
+            t[p] = (cs.pk * cs.pb / q[p]) ** (1.0 / (cs.pk + 2.0))
+            t[e] = special.lambertw(cs.eb * cs.ec**2 / q[e]).real / cs.ec
+        t[np.isnan(t) | (q <= 0)] = np.inf
+        return t
+
+    if shift is None:
+        t = closed(q)
+    else:
+        shift = np.broadcast_to(np.asarray(shift, dtype=float), np.shape(lo))
+        # C' + q t + r = 0 lies between the roots of C' + q t = 0, C' + r = 0 (upper: either
+        # term alone stops earlier) and those of C' + 2 q t = 0, C' + 2 r = 0 (lower)
+        up = np.minimum(closed(q), _linear_root(cs, shift))
+        low = np.minimum(closed(2.0 * q), _linear_root(cs, 2.0 * shift))
+        up = np.clip(up, lo, hi)  # a root below lo (or above hi) ends at that limit
+        low = np.clip(np.minimum(low, up), lo, up)
+        t = np.sqrt(low * up)
+        formula = np.zeros(np.shape(lo), dtype=bool)
+        formula[p] = formula[e] = True
+        live = formula & (low < up)
+        for _ in range(60):
+            if not live.any():
+                break
+            h = cs.derivative(t) + q * t + shift
+            slope = t * (cs.curvature(t) + q)  # dh / d ln t
+            low = np.where(live & (h < 0), t, low)
+            up = np.where(live & (h > 0), t, up)
+            with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+                step = np.exp(np.log(t) - h / slope)
+            inside = (step > low) & (step < up) & np.isfinite(step)
+            new = np.where(inside, step, np.sqrt(low * up))
+            done = np.abs(new / t - 1.0) <= 4e-16
+            t = np.where(live, new, t)
+            live &= ~done & (h != 0)
+    for j in cs.tables:
+        r = 0.0 if shift is None else float(shift[j])
+        if q[j] > 0:
+            t[j] = _table_squared_minimiser(cs.curves[j], float(q[j]), r)
+        else:
+            t[j] = costs.inverse_derivative(cs.curves[j], -r, lo[j], hi[j])
+    return np.clip(t, lo, hi)
+
+
+def _table_squared_minimiser(curve, q: float, shift: float = 0.0) -> float:
+    """Minimiser of ``C(t) + q t²/2 + shift·t`` over a convex piecewise-linear table's range.
+
+    ``h(t) = C'(t) + q t + shift`` is increasing; the answer is
+    ``clip(−(s_j + shift)/q, x_j, x_{j+1})`` for the last segment j with ``h(x_j) ≤ 0``
+    (the first breakpoint when none has).
     """
     x = np.asarray(curve.points_tolerance, dtype=float)
     y = np.asarray(curve.points_cost, dtype=float)
-    s = np.diff(y) / np.diff(x)
+    s = np.diff(y) / np.diff(x) + shift
     if q <= 0:
         return float(x[-1])
     ok = np.flatnonzero(s + q * x[:-1] <= 0)

@@ -74,10 +74,6 @@ class RequirementResult:
         return asdict(self)
 
 
-def _number(x):
-    return None if x is None else float(x)
-
-
 class Allocation:
     """Least-cost tolerances for one stack model.
 
@@ -106,7 +102,8 @@ class Allocation:
         Contributor name -> process name ('' for a contributor without processes).
     requirements : list of RequirementResult
     solver : str
-        'lagrange-dual' (exact 1-D dual) or the conic solver's name.
+        'lagrange-dual' (exact 1-D dual), 'lagrange-newton' (one requirement under mean
+        shift) or the conic solver's name ('clarabel', ...).
     iterations : int
         Root-finding steps (dual) or solver iterations (summed over cutting planes).
     gap : float or None
