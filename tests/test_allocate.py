@@ -280,20 +280,25 @@ def test_two_sided_mean_shift_is_exact_against_slsqp():
     ]
     req = chain_requirement("gap", {"p": 1, "q": -1, "r": -1, "s": 1}, lower=0.02, upper=0.26, fallout_ppm=300)
     case = make_case(people, [req], models=("mean-shift",))
-    result = allocate(case, "mean-shift")
-    assert result.success and result.solver.startswith("clarabel"), result.message
-    t = result.allocated_array()
-    assert _true_check(case, "mean-shift", t)[0] >= 0
     ref_cost, ref_t = slsqp_reference(case, "mean-shift", starts=8)
-    assert result.total_cost <= ref_cost * (1 + 1e-7)
-    np.testing.assert_allclose(t, ref_t, rtol=1e-3)
-    # active: the worst-mean fallout equals the target (scipy.stats)
-    n, f, m, a, y0 = _arrays(case)
-    sigma = math.sqrt(np.sum(n * (a[0] * f * t) ** 2))
-    delta = np.sum(n * np.abs(a[0]) * m * t)
-    worst = max(_fallout(y0[0] + s * delta, sigma, 0.02, 0.26) for s in (-1, 1))
-    assert worst * 1e6 == pytest.approx(300.0, rel=1e-6)
-    assert result.gap is not None and result.gap <= 1e-6
+    newton = allocate(case, "mean-shift")
+    conic = CompiledAllocation(case, "mean-shift").solve()  # cutting planes
+    assert newton.solver == "lagrange-newton" and conic.solver.startswith("clarabel")
+    for result in (newton, conic):
+        assert result.success, result.message
+        t = result.allocated_array()
+        assert _true_check(case, "mean-shift", t)[0] >= 0
+        assert result.total_cost <= ref_cost * (1 + 1e-7)
+        np.testing.assert_allclose(t, ref_t, rtol=1e-3)
+        # active: the worst-mean fallout equals the target (scipy.stats)
+        n, f, m, a, y0 = _arrays(case)
+        sigma = math.sqrt(np.sum(n * (a[0] * f * t) ** 2))
+        delta = np.sum(n * np.abs(a[0]) * m * t)
+        worst = max(_fallout(y0[0] + s * delta, sigma, 0.02, 0.26) for s in (-1, 1))
+        assert worst * 1e6 == pytest.approx(300.0, rel=1e-6)
+        assert result.gap is not None and result.gap <= 1e-6
+    # two independent methods, one answer
+    np.testing.assert_allclose(newton.allocated_array(), conic.allocated_array(), rtol=1e-7)
 
 
 @pytest.mark.parametrize(
@@ -504,13 +509,13 @@ def test_compiled_problem_is_dpp_and_resolves_with_overrides():
 
 
 def test_exact_and_conic_paths_agree_on_tables_and_exponential():
-    case = multi_case(table=True)
+    case = multi_case(table=True, mean_shift=0.2)
     for j in range(3):
         single = make_case(case.contributors, case.requirements[j:j + 1])
-        for model in ("worst-case", "rss"):
+        for model in ("worst-case", "rss", "mean-shift"):
             exact = allocate(single, model)
             conic = CompiledAllocation(single, model).solve()
-            assert exact.solver == "lagrange-dual" and exact.success and conic.success
+            assert exact.solver.startswith("lagrange-") and exact.success and conic.success
             assert exact.total_cost == pytest.approx(conic.total_cost, rel=1e-8)
             assert np.all(_true_check(single, model, exact.allocated_array()) >= -1e-9)
 
@@ -615,4 +620,7 @@ def test_solver_for_picks_the_exact_dual_for_one_requirement():
     assert type(solver_for(single, "rss")).__name__ == "ExactAllocation"
     assert type(solver_for(case, "rss")).__name__ == "CompiledAllocation"
     assert type(solver_for(multi_case(mean_shift=0.2), "mean-shift")).__name__ == "CompiledAllocation"
+    shifted = multi_case(mean_shift=0.2)
+    one = make_case(shifted.contributors, shifted.requirements[:1])
+    assert type(solver_for(one, "mean-shift")).__name__ == "MeanShiftExact"
     assert prepare(case, "rss").free.sum() == 7
