@@ -224,8 +224,10 @@ def test_conic_mean_shift_points_equal_independent_allocations():
           contributor("c", nominal=19.8, tolerance=0.02, limits=(0.005, 0.1), distribution="uniform",
                       cost=CostCurve("exponential", a=0.1, b=1.0, c=40.0))]
     req = chain_requirement("gap", {"a": 1, "b": -1, "c": -1}, lower=0.05, upper=0.35, fallout_ppm=100)
-    case = make_case(cs, [req], models=("mean-shift",))
-    front = frontier(case, vary="upper", values=[0.25, 0.3, 0.4])
+    # a second, slack requirement: one alone is solved without the conic problem
+    slack = chain_requirement("reach", {"a": 1}, upper=40.0)
+    case = make_case(cs, [req, slack], models=("mean-shift",))
+    front = frontier(case, requirement="gap", vary="upper", values=[0.25, 0.3, 0.4])
     assert "conic" in front.solvers["mean-shift"]
     for value, cost in zip(front.values, front.costs["mean-shift"]):
         single = allocate(_with_limit(case, "gap", "upper", value), "mean-shift")
