@@ -221,6 +221,9 @@ class Report:
         Python and library versions used.
     frontier_points, include_frontier
         The frontier options the report was built with.
+    unrounded : dict
+        Model -> allocation of the case without its ``[allocation].rounding``, solved only
+        for the shadow prices a rounded allocation cannot have (its cost moves in steps).
     """
 
     case: object
@@ -240,6 +243,7 @@ class Report:
     versions: dict = field(default_factory=dict)
     frontier_points: int | None = None
     include_frontier: bool = True
+    unrounded: dict = field(default_factory=dict)
 
     # ------------------------------------------------------------------ status
 
@@ -394,6 +398,8 @@ def build_report(
     rec_alloc = allocations.get(recommended)
     recommended_analysis = analyze(case, dict(rec_alloc.tolerances)) if rec_alloc is not None else None
 
+    unrounded = _unrounded_allocations(case, allocations)
+
     if include_frontier:
         frontier, frontier_message = _run_frontier(case, models, frontier_points)
     else:
@@ -426,6 +432,7 @@ def build_report(
         versions=_versions(__version__),
         frontier_points=frontier_points,
         include_frontier=include_frontier,
+        unrounded=unrounded,
     )
 
 
@@ -446,6 +453,33 @@ def write_report(case, path, models=None, **kwargs) -> Report:
     report = build_report(case, models, **kwargs)
     atomic_write(target, report.to_html(), protect=(case.path,))
     return report
+
+
+def _has_shadow_prices(allocation) -> bool:
+    return any(rr.shadow_lower is not None or rr.shadow_upper is not None for rr in allocation.requirements)
+
+
+def _unrounded_allocations(case, allocations) -> dict:
+    """For rounded allocations without shadow prices: the same model solved without rounding.
+
+    Rounding to a step makes the allocation a choice among listed values, whose cost has
+    no derivative; the unrounded optimum of the same case does have one, and its shadow
+    prices are what the limits are worth at the margin before rounding.
+    """
+    from dataclasses import replace
+
+    from .solve import allocate
+
+    if case.allocation.rounding is None:
+        return {}
+    plain = replace(case, allocation=replace(case.allocation, rounding=None))
+    out = {}
+    for model, result in allocations.items():
+        if result.success and not _has_shadow_prices(result):
+            unrounded = allocate(plain, model)
+            if unrounded.success and _has_shadow_prices(unrounded):
+                out[model] = unrounded
+    return out
 
 
 def _run_frontier(case, models, points):
@@ -1086,11 +1120,12 @@ def _section_shadow(report: Report) -> str:
         if not a.success:
             rows.append(["—", _model(m), _e(a.status), "—", "—", "—"])
             continue
-        for rr in a.requirements:
+        source = report.unrounded.get(m, a)
+        for rr in source.requirements:
             rows.append(
                 [
                     _e(rr.name),
-                    _model(m),
+                    _model(m) + (" <small>(unrounded)</small>" if m in report.unrounded else ""),
                     _e(rr.binding or "—"),
                     _n(rr.shadow_lower, signed=True),
                     _n(rr.shadow_upper, signed=True),
@@ -1113,9 +1148,16 @@ def _section_shadow(report: Report) -> str:
         "mind (e.g. 0.01 of the unit) for a first estimate; the frontier shows larger moves exactly. "
         "Source: <code>RequirementResult.shadow_lower / shadow_upper / shadow_ppm</code>.</p>"
     )
+    if report.unrounded:
+        guide += (
+            '<p class="note">Marked <em>(unrounded)</em>: the allocation in section 3 is rounded to '
+            f"{_e(report.case.allocation.rounding)}, so its cost moves in steps and has no derivative. These shadow "
+            "prices belong to the same model solved without rounding (<code>allocate</code> on the case with "
+            "<code>rounding</code> removed): what the limits are worth at the margin before rounding.</p>"
+        )
     undefined = [
         m for m, a in report.allocations.items()
-        if a.success and all(rr.shadow_lower is None and rr.shadow_upper is None for rr in a.requirements)
+        if a.success and m not in report.unrounded and not _has_shadow_prices(a)
     ]
     if undefined:
         guide += (

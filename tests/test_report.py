@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import html as html_module
 import re
+from dataclasses import replace
 from datetime import datetime, timezone
 from html.parser import HTMLParser
 from pathlib import Path
@@ -91,9 +92,11 @@ def section_html(text: str, sid: str) -> str:
     return match.group(1)
 
 
-# every frontier point of the process-choice case is a mixed-integer solve: too slow for a
-# fast test, so that one case is checked without its frontier (the option users have too)
-WITHOUT_FRONTIER = {"pump_shim"}
+def _heavy(case) -> bool:
+    """Process choice or ISO 286 grades: every solve is a mixed-integer program (seconds each,
+    mean shift with cutting planes the slowest). A fast test checks such a case's report on
+    the worst-case and rss models and without the frontier, the options users have too."""
+    return case.allocation.rounding == "iso286" or any(len(c.processes) > 1 for c in case.contributors)
 
 
 @pytest.fixture(scope="module")
@@ -102,9 +105,11 @@ def reports():
     out = {}
     for name in DEMOS:
         case = load_case(CASES / f"{name}.toml")
+        heavy = _heavy(case)
+        models = [m for m in case.allocation.models if m != "mean-shift"] or None if heavy else None
         report = build_report(
-            case, samples=SAMPLES, seed=SEED, frontier_points=POINTS, created=STAMP,
-            include_frontier=name not in WITHOUT_FRONTIER,
+            case, models, samples=SAMPLES, seed=SEED, frontier_points=POINTS, created=STAMP,
+            include_frontier=not heavy,
         )
         out[name] = (case, report, report.to_html())
     return out
@@ -120,11 +125,11 @@ def test_every_section_heading_and_plot(reports, name):
     assert [h for h in doc.h2 if h[0] is not None] == list(SECTIONS)
     # plots: frontier, contributions, verification histogram
     figures = report.figures()
-    expected = 2 if name in WITHOUT_FRONTIER else 3
+    expected = 2 if _heavy(case) else 3
     assert doc.top_level_svgs == len(figures) == expected
     for sid in figures:
         assert section_html(text, sid).count("<svg") == 1
-    if name in WITHOUT_FRONTIER:
+    if _heavy(case):
         assert "left out of this report on request" in section_html(text, "frontier")
 
 
@@ -188,9 +193,18 @@ def test_numbers_equal_the_library(reports):
         for rr in result.requirements:
             assert fmt_number(rr.sigma) in alloc_html
             assert fmt_number(rr.fallout_ppm) in alloc_html
-            for value in (rr.shadow_lower, rr.shadow_upper, rr.shadow_ppm):
-                if value is not None:
-                    assert fmt_number(value, signed=True) in shadow_html, (model, value)
+        # a rounded allocation has no shadow prices; the report shows the unrounded optimum's
+        priced = result
+        if all(rr.shadow_upper is None and rr.shadow_lower is None for rr in result.requirements):
+            assert case.allocation.rounding is not None
+            plain = replace(case, allocation=replace(case.allocation, rounding=None))
+            priced = allocate(plain, model)
+            assert model in report.unrounded
+        shadows = [v for rr in priced.requirements for v in (rr.shadow_lower, rr.shadow_upper, rr.shadow_ppm)]
+        assert any(v is not None for v in shadows)
+        for value in shadows:
+            if value is not None:
+                assert fmt_number(value, signed=True) in shadow_html, (model, value)
     # the header repeats the recommended allocation's totals
     rec = allocate(case, report.recommended)
     header = text.split("<main>", 1)[0]
