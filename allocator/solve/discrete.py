@@ -14,21 +14,24 @@ one-hot binaries ``x_ij`` (Chase, Greenwood, Loosli & Hauglund 1990):
 - rss: ``Σ_i n_i a_i² Σ_j (f_ij t_ij)² x_ij ≤ σ_max²`` (variance is linear in a one-hot
   choice);
 - mean shift: ``σ(x) ≤ g(δ(x))`` with ``δ = Σ n|a| m t x`` linear and ``g`` the largest σ
-  with the mean anywhere in ``ȳ ± δ``. Solved exactly by lazy cuts: solve the MILP, check
-  the true constraint in numpy, add cuts that remove the violating choice and no
-  feasible one, repeat (see :func:`_cuts`).
+  with the mean anywhere in ``ȳ ± δ`` (decreasing in δ). Relaxed exactly-where-it-matters
+  by one binary per interval of δ (``V ≤ g(δ_k)²`` on ``[δ_k, δ_(k+1)]``), then made exact
+  by lazy cuts: solve, check the true constraint in numpy, add cuts that remove the
+  violating choice and no feasible one, repeat (see :meth:`DiscreteAllocation._cuts`).
 
 Every MILP is solved by HiGHS (``scipy.optimize.milp``) to a proven optimum (relative and
 absolute MIP gap 0). Each choice is re-checked in numpy against the exact constraint, and
 the final answer again by :meth:`AllocationProblem.statistics
 <allocator.solve.problem.AllocationProblem.statistics>`.
 
-Continuous cost curves inside a chosen process are discretised on a geometric grid
-(60 points per process by default); the grid MILP picks the processes and the conic solver
-(:mod:`.continuous` or :mod:`.exact`) polishes the tolerances with those processes held. A
-second MILP over grid *cells*, each optimistic (its tight end in the constraints, its least
-cost), gives a proven lower bound; cells that bound picks are split until the relative gap
-is below :data:`GAP_TARGET` or :data:`MAX_REFINE` rounds have run. The gap is reported.
+Continuous cost curves inside a process are discretised on a geometric grid (60 points
+per process by default): the MILP over grid points picks the processes, and the conic
+solver (:mod:`.continuous` or :mod:`.exact`) polishes the tolerances with those processes
+held. A second MILP over grid *cells* gives a proven lower bound: in a cell the tolerance
+is a continuous column and the cost is bounded below by a tangent (convex curves) or is
+exact (tables, linear between their breakpoints); the variance uses a tangent of t² from
+below. Cells the bound picks are split until the relative gap is below
+:data:`GAP_TARGET` or :data:`MAX_REFINE` rounds have run. The gap is reported.
 
 References: Chase, K. W., Greenwood, W. H., Loosli, B. G. and Hauglund, L. F. (1990), Least
 cost tolerance allocation for mechanical assemblies with automated process selection,
@@ -75,7 +78,7 @@ GAP_TARGET = 1e-5  # stop refining below this relative gap
 MAX_REFINE = 8  # rounds of splitting the cells the lower bound picks
 REFINE_SPLIT = 8  # a picked cell becomes this many
 MAX_CUT_ROUNDS = 400  # MILP solves per lazy-cut loop
-MAX_RELAXED_ROUNDS = 30  # the lower-bound MILP's tangent-cut rounds (any count is valid)
+MAX_RELAXED_ROUNDS = 3  # cut rounds per lower-bound MILP (any count gives a valid bound)
 DELTA_INTERVALS = 256  # most initial intervals of δ per mean-shift requirement (points MILP)
 DELTA_INTERVALS_RELAXED = 32  # the same in the lower-bound MILP
 CHECK_RTOL = 1e-9  # a choice meets a requirement within this (relative)
@@ -523,7 +526,7 @@ class DiscreteAllocation:
 
     # ------------------------------------------------------------------ MILP with cuts
 
-    def _solve_milp(self, cand: _Candidates, limits: list[Limits]) -> _MilpOutcome:
+    def _solve_milp(self, cand: _Candidates, limits: list[Limits], restricted: bool = False) -> _MilpOutcome:
         """Least-cost choice among ``cand``, exact for points (lazy cuts for mean shift).
 
         Columns: a binary ``x_c`` per candidate; for every lower-bound cell a continuous
@@ -531,6 +534,11 @@ class DiscreteAllocation:
         for every mean-shift requirement one binary per interval of δ (see
         :meth:`_interval_rows`). With cells the MILP is a relaxation: its optimum is a lower
         bound. The model is rebuilt after each round of cuts.
+
+        ``restricted`` (points only) replaces the mean-shift interval rows by sufficient
+        ones (``V ≤ g(δ_(k+1))²``) and solves once: every answer then meets the
+        requirement, but the optimum may be missed by a little (used to pick processes
+        before the conic polish, where the lower bound accounts for it).
         """
         size = cand.size
         owner = cand.owner
@@ -613,7 +621,9 @@ class DiscreteAllocation:
                     # lower bound's MILP (continuous columns too) is faster with fewer
                     involved = int(np.count_nonzero(np.maximum.reduceat(unit_d[r] + unit_s[r], cand.starts)))
                     count = DELTA_INTERVALS_RELAXED if n_tau else min(DELTA_INTERVALS, max(16, 8 * involved))
-                    self._breaks[key] = np.linspace(low, min(high, room), count + 1)
+                    breaks = np.linspace(low, min(high, room), count + 1)
+                    seeds = [d for d in self._seeds.get(r, ()) if breaks[0] < d < breaks[-1]]
+                    self._breaks[key] = np.union1d(breaks, seeds) if n_tau else breaks
 
         dominance = []  # (row over the candidates, right-hand side): only for points
         integrality = np.concatenate([np.ones(size), np.zeros(n_tau)])
@@ -627,7 +637,8 @@ class DiscreteAllocation:
             for r, kind, room, lim in checks:
                 if kind == "mean-shift":
                     self._mean_shift_rows(rows, (r, n_tau > 0), room, lim, linear, variance,
-                                          owner, unit_s, unit_d, unit_v, extra_cols)
+                                          owner, unit_s, unit_d, unit_v, extra_cols,
+                                          restricted=restricted)
             z = np.concatenate(extra_cols) if extra_cols else np.zeros(0)
             rows.size = size + n_tau + z.size
             res = _run_milp(np.concatenate([objective, np.zeros(z.size)]), rows, self.time_limit,
@@ -650,6 +661,9 @@ class DiscreteAllocation:
             if res.status != 0:  # time or node limit with an incumbent
                 return _MilpOutcome("failed", choice, objective_value, bound, res.mip_gap, solves,
                                     nodes, cuts, f"HiGHS: {res.message}")
+            if restricted:
+                return _MilpOutcome("optimal", choice, objective_value, None, None, solves, nodes, 0,
+                                    tolerances=realised[choice])
             added = self._cuts(checks, choice, cand, realised[choice], dominance,
                                unit_w, unit_s, unit_d, unit_v, relaxed=n_tau > 0)
             cuts += added
@@ -662,7 +676,7 @@ class DiscreteAllocation:
                             f"lazy cuts did not converge in {MAX_CUT_ROUNDS} MILP solves")
 
     def _mean_shift_rows(self, rows, key, room, lim, linear, variance, owner,
-                         unit_s, unit_d, unit_v, extra_cols):
+                         unit_s, unit_d, unit_v, extra_cols, restricted=False):
         """Interval binaries and tangent cuts of one mean-shift requirement.
 
         The variance V is linear in the choice and g(δ) (the largest σ with the mean
@@ -670,7 +684,8 @@ class DiscreteAllocation:
         z_k per interval: ``Σ z_k = 1``, ``Σ δ_k z_k ≤ δ ≤ Σ δ_(k+1) z_k`` and
         ``V ≤ Σ g(δ_k)² z_k``. Every choice that meets the requirement satisfies these
         (take the interval holding its δ: σ ≤ g(δ) ≤ g(δ_k)); breakpoints are added where
-        a choice failed. Needs only that g decreases, not its concavity.
+        a choice failed. Needs only that g decreases, not its concavity. ``restricted``
+        uses the right ends instead, ``V ≤ Σ g(δ_(k+1))² z_k``: sufficient, not necessary.
         """
         r = key[0]
         req = self.requirements[r]
@@ -680,7 +695,7 @@ class DiscreteAllocation:
         cols = np.arange(first, first + k)
         g2 = np.array([
             mean_shift_allowance(req.nominal, float(b), lim)[0] ** 2 if b < room else 0.0
-            for b in breaks[:-1]
+            for b in (breaks[1:] if restricted else breaks[:-1])
         ])
         d_row = linear(unit_d[r])
         v_row = variance(unit_v[r])
@@ -870,6 +885,7 @@ class DiscreteAllocation:
         limits = self.reference.limits(overrides)
         self._tangents = {}  # requirement -> [(u, rhs, g'(δ))]: mean-shift cuts for these limits
         self._breaks = {}  # (requirement, relaxed) -> δ breakpoints of the interval rows
+        self._seeds = {}  # requirement -> δ of good solutions (breakpoints of the bound)
         if self.model == "mean-shift":
             for req, lim in zip(self.requirements, limits):
                 if lim.fallout >= 0.5:
@@ -954,7 +970,9 @@ class DiscreteAllocation:
     def _solve_with_polish(self, limits, overrides):
         """Grid MILP, conic polish with the processes held, refined lower bound."""
         points = self.candidates()
-        primal = self._solve_milp(points, limits)
+        primal = self._solve_milp(points, limits, restricted=True)
+        if primal.status == "infeasible" and self.model == "mean-shift":
+            primal = self._solve_milp(points, limits)  # the sufficient rows may be too strict
         if primal.status == "infeasible":
             return self._infeasible(limits, self._milp_infeasible_message())
         if primal.choice is None:
@@ -970,6 +988,7 @@ class DiscreteAllocation:
             if alloc is not None and alloc.success and alloc.total_cost < best[0]:
                 best = (alloc.total_cost, opts, alloc.allocated_array(), alloc.requirements, "polished")
                 polish_solver = alloc.solver
+                self._seed_lower_bound(opts, best[2], limits)
 
         consider(points, primal.choice)
         bound, solves, rounds = None, primal.solves, 0
@@ -1002,6 +1021,39 @@ class DiscreteAllocation:
                              iterations=solves, requirements=requirements, solver=solver)
         alloc.lower_bound = bound
         return alloc
+
+    def _seed_lower_bound(self, chosen, t, limits):
+        """Mean-shift cuts at a good solution: a breakpoint and a tangent at its δ.
+
+        Both are valid anywhere (like every cut of :meth:`_cuts`); placed at the best
+        known solution they make the lower bound tight where the optimum is.
+        """
+        if self.model != "mean-shift":
+            return
+        f = np.array([o.factor for o in chosen])
+        n = self.counts
+        for r, (req, lim) in enumerate(zip(self.requirements, limits)):
+            if lim.lower is None and lim.upper is None:
+                continue
+            key = (r, True)
+            a = np.abs(self.sensitivity[r])
+            sigma_i = np.sqrt(n) * a * f * t
+            sigma = float(np.sqrt(np.sum(sigma_i**2)))
+            delta = float(np.sum(n * a * self.mean_shifts * t))
+            self._seeds.setdefault(r, []).append(delta)
+            breaks = self._breaks.get(key)
+            if breaks is not None and breaks[0] < delta < breaks[-1] and (
+                np.min(np.abs(breaks - delta)) > 1e-12 * breaks[-1]
+            ):
+                self._breaks[key] = np.sort(np.append(breaks, delta))
+            room = min(
+                math.inf if lim.lower is None else req.nominal - lim.lower,
+                math.inf if lim.upper is None else lim.upper - req.nominal,
+            )
+            if sigma > 0 and delta < room and lim.fallout <= TANGENT_MAX_FALLOUT:
+                g, slope, _ = mean_shift_allowance(req.nominal, delta, lim)
+                slope = min(slope, 0.0)
+                self._tangents.setdefault(r, []).append((sigma_i / sigma, g - slope * delta, slope))
 
     def _refine(self, cells: _Candidates, choice):
         """Split the grid cells the lower bound picked into :data:`REFINE_SPLIT` parts."""
