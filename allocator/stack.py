@@ -209,6 +209,10 @@ def _two_sided_sigma(d_near: float, d_far: float, p: float) -> float:
     f = lambda s: _norm_cdf(-d_near / s) + _norm_cdf(-d_far / s) - p  # noqa: E731
     if f(one_sided) <= 0:
         return one_sided
+    if f(lo) >= 0:
+        # symmetric limits (d_far == d_near up to round-off): lo is the root itself, and
+        # round-off may put f(lo) a hair above 0, leaving brentq no sign change
+        return lo
     return optimize.brentq(f, lo, one_sided, xtol=1e-15 * one_sided, rtol=1e-15, maxiter=200)
 
 
