@@ -766,11 +766,11 @@ def _figure(result: Verification):
         edges = c.histogram_edges
         width = edges[1] - edges[0]
         density = c.histogram_counts / (c.samples * width)
-        ax.stairs(density, edges, fill=True, alpha=0.45, label=f"Monte Carlo ({c.samples:,} assemblies)")
+        ax.stairs(density, edges, fill=True, color="0.75", label=f"Monte Carlo ({c.samples:,} assemblies)")
         lo_x, hi_x = edges[0], edges[-1]
         for limit, label in ((c.lower, "lower limit"), (c.upper, "upper limit")):
             if limit is not None:
-                ax.axvline(limit, color="tab:red", linestyle="--", linewidth=1.2, label=label)
+                ax.axvline(limit, color="black", linestyle="--", linewidth=1.2, label=label)
                 lo_x, hi_x = min(lo_x, limit), max(hi_x, limit)
         if c.sigma > 0:
             xs = np.linspace(lo_x, hi_x, 600)
@@ -779,7 +779,7 @@ def _figure(result: Verification):
         pad = 0.03 * (hi_x - lo_x)
         ax.set_xlim(lo_x - pad, hi_x + pad)
         ax.set_title(f"{c.name}: {c.fallout_ppm:.4g} ppm outside (target {c.target_ppm:g} ppm)")
-        ax.set_xlabel("response")
+        ax.set_xlabel(f"{c.name} (response)")
         ax.set_ylabel("density")
         ax.legend(fontsize="small", loc="upper right")
     return fig
