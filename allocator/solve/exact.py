@@ -433,14 +433,17 @@ class MeanShiftExact:
             math.inf if lim.upper is None else lim.upper - req.nominal,
         )
 
-        def residual(t):
+        def residual(t, curvature=True):
             sigma, delta = self._state(t)
             if delta >= domain:
                 return math.inf, sigma, delta, (0.0, -math.inf, 0.0)
-            g = allowance_with_curvature(req.nominal, delta, lim)
+            if curvature:
+                g = allowance_with_curvature(req.nominal, delta, lim)
+            else:
+                g = mean_shift_allowance(req.nominal, delta, lim)
             return (sigma - g[0]) / g[0], sigma, delta, g
 
-        if residual(self.hi)[0] <= 0:
+        if residual(self.hi, curvature=False)[0] <= 0:
             return self.hi.copy(), 0.0, self.held_cost + self._cost(self.hi)
         # 1. β = 0: a point on the constraint (F1 decreases as α grows)
         mid = np.sqrt(self.lo * self.hi)
@@ -450,7 +453,7 @@ class MeanShiftExact:
         guess = math.log(float(np.median(per)) if per.size else 1.0)
 
         def f1(x):
-            return residual(self.tolerances(math.exp(x), 0.0))[0]
+            return residual(self.tolerances(math.exp(x), 0.0), curvature=False)[0]
 
         x_lo = x_hi = guess
         for _ in range(400):
@@ -463,7 +466,7 @@ class MeanShiftExact:
             if f1(x_lo) > 0:
                 break
             x_lo -= math.log(10.0)
-        _, x_b = _bracket_root(f1, x_lo, x_hi, xtol=1e-10)
+        _, x_b = _bracket_root(f1, x_lo, x_hi, xtol=1e-4)  # a start for Newton, no more
         alpha, beta = math.exp(x_b), 0.0
 
         # 2. Newton on (F1, F2)
@@ -751,10 +754,13 @@ def minimise_quadratic_price(cs, q, lo, hi, shift=None) -> np.ndarray:
         low = np.minimum(closed(2.0 * q), _linear_root(cs, 2.0 * shift))
         up = np.clip(up, lo, hi)  # a root below lo (or above hi) ends at that limit
         low = np.clip(np.minimum(low, up), lo, up)
-        t = np.sqrt(low * up)
         formula = np.zeros(np.shape(lo), dtype=bool)
         formula[p] = formula[e] = True
-        live = formula & (low < up)
+        h_up = cs.derivative(up) + q * up + shift
+        h_low = cs.derivative(low) + q * low + shift
+        # a root beyond a limit (h < 0 at hi, or h > 0 at lo) ends at that limit at once
+        t = np.where(h_up <= 0, up, np.where(h_low >= 0, low, np.sqrt(low * up)))
+        live = formula & (low < up) & (h_up > 0) & (h_low < 0)
         for _ in range(60):
             if not live.any():
                 break
@@ -764,9 +770,13 @@ def minimise_quadratic_price(cs, q, lo, hi, shift=None) -> np.ndarray:
             up = np.where(live & (h > 0), t, up)
             with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
                 step = np.exp(np.log(t) - h / slope)
-            inside = (step > low) & (step < up) & np.isfinite(step)
+            # a converged step lands on the bracket end just set to t: closed bounds
+            inside = (step >= low) & (step <= up) & np.isfinite(step)
             new = np.where(inside, step, np.sqrt(low * up))
-            done = np.abs(new / t - 1.0) <= 4e-16
+            # quadratic convergence: after a Newton step this small the new point is exact
+            # to round-off (demanding less than ~1e-13 only spins in the last bits)
+            done = (np.abs(new / t - 1.0) <= 1e-13) & inside
+            done |= up <= low * (1.0 + 1e-15)
             t = np.where(live, new, t)
             live &= ~done & (h != 0)
     for j in cs.tables:
