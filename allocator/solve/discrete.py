@@ -364,8 +364,8 @@ class DiscreteAllocation:
     --------
     >>> from allocator.case import load_case  # doctest: +SKIP
     >>> case = load_case("cases/pump_shim.toml")  # doctest: +SKIP
-    >>> DiscreteAllocation(case, "rss").solve().processes  # doctest: +SKIP
-    {'body_depth': 'fine boring', 'impeller_hub': '', 'shim': '', 'wear_plate': ''}
+    >>> result = DiscreteAllocation(case, "rss").solve()  # doctest: +SKIP
+    >>> result.processes["body_depth"], result.unrounded_cost, result.rounding_cost  # doctest: +SKIP
     """
 
     def __init__(self, case: Case, model: str, fix=None, *, grid_points: int = GRID_POINTS,
