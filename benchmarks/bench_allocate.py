@@ -19,6 +19,7 @@ Whole process: `allocator allocate` on the gearbox demo, wall time         goal 
 
 from __future__ import annotations
 
+import shutil
 import statistics
 import subprocess
 import sys
@@ -179,6 +180,7 @@ def whole_process(repeat):
         if label.startswith("demo"):
             goal = f"  exit {done.returncode}; goal <= 1 s: " + ("ok" if wall <= 1.0 else "ABOVE GOAL")
         print(f"  {label:<46} {wall:6.3f} s  ({wall / base:5.1f}x python startup){goal}")
+    shutil.rmtree(folder, ignore_errors=True)
 
 
 def main():
