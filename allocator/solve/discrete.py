@@ -119,6 +119,9 @@ class _Option:
     labels: tuple[str, ...] = ()
     grid: np.ndarray | None = None
 
+    def __post_init__(self):
+        self.base_grid = self.grid
+
 
 def _within(t: float, limits) -> bool:
     lo, hi = limits
@@ -883,6 +886,10 @@ class DiscreteAllocation:
             ``rounding_cost`` [currency].
         """
         limits = self.reference.limits(overrides)
+        for opts in self.options:  # refinement is per solve: start from the plain grid
+            for o in opts:
+                if o.kind == "continuous":
+                    o.grid = o.base_grid
         self._tangents = {}  # requirement -> [(u, rhs, g'(δ))]: mean-shift cuts for these limits
         self._breaks = {}  # (requirement, relaxed) -> δ breakpoints of the interval rows
         self._seeds = {}  # requirement -> δ of good solutions (breakpoints of the bound)
