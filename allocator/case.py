@@ -478,10 +478,10 @@ def _read_table_file(cost: _Table):
     text = cost.get("file", lambda v: _text(v))
     target = _table_file_path(cost, text)
     try:
-        if target.stat().st_size > MAX_FILE_BYTES:
+        size = target.stat().st_size
+        if size > MAX_FILE_BYTES:
             cost.fail("file", f"{text} is larger than {MAX_FILE_BYTES // 2**20} MB")
-        with open(target, "rb") as fh:
-            data = fh.read(MAX_FILE_BYTES + 1)
+        data = _read_capped(target, size)
     except OSError as err:
         cost.fail("file", f"cannot read {text} ({(err.strerror or str(err)).lower()})")
     if len(data) > MAX_FILE_BYTES:
@@ -823,9 +823,31 @@ def _build(data: dict, source: _Source, path: Path | None, sha256: str) -> Case:
     return case
 
 
+# a line that opens one more [[contributor]] / [[requirement]] table (spaces allowed)
+_ARRAY_HEADER = re.compile(r"^[ \t]*\[\[[ \t]*(contributor|requirement)[ \t]*\]\]", re.MULTILINE)
+
+
+def _count_headers(text: str, source: _Source) -> None:
+    """Refuse too many [[contributor]] / [[requirement]] tables before parsing.
+
+    tomllib builds the whole document first (10^6 contributor headers fit in 16 MB and
+    take seconds and ~100 MB to parse); counting header lines is one cheap pass. The
+    count is exact for ordinary files; the same limits are checked again after parsing.
+    """
+    if text.count("[[") <= MAX_CONTRIBUTORS:  # C-speed upper bound: the usual case
+        return
+    counts = {"contributor": 0, "requirement": 0}
+    for match in _ARRAY_HEADER.finditer(text):
+        counts[match.group(1)] += 1
+    for key, count in counts.items():
+        if count > MAX_CONTRIBUTORS:
+            source.fail(key, f"too many entries ({count}; the limit is {MAX_CONTRIBUTORS})")
+
+
 def _parse(text: str, source: _Source) -> dict:
     if not text.strip():
         source.fail(None, "file is empty")
+    _count_headers(text, source)
     try:
         data = tomllib.loads(text)
     except tomllib.TOMLDecodeError as err:
@@ -845,6 +867,20 @@ def _decode(data: bytes, source: _Source) -> str:
         line = data.count(b"\n", 0, err.start) + 1
         source.fail(None, f"not UTF-8 text (invalid byte 0x{data[err.start]:02x} on line {line})")
     return text.removeprefix("\ufeff")  # tolerate a byte-order mark
+
+
+def _read_capped(path: Path, size: int) -> bytes:
+    """At most MAX_FILE_BYTES + 1 bytes of ``path`` whose size was ``size`` at stat time.
+
+    Asks for ``size + 1`` bytes first: ``read(n)`` reserves ``n`` bytes up front, so
+    asking for the cap every time would hold 16 MB for a 1 kB file. Only a file that grew
+    since its stat (or a special file reporting size 0) is read on, up to the cap.
+    """
+    with open(path, "rb") as fh:
+        data = fh.read(size + 1)
+        if len(data) > size:
+            data += fh.read(MAX_FILE_BYTES + 1 - len(data))
+    return data
 
 
 def _too_large(size: int) -> str:
@@ -919,8 +955,7 @@ def load_case(path) -> Case:
         size = file.stat().st_size
         if size > MAX_FILE_BYTES:
             src.fail(None, _too_large(size))
-        with open(file, "rb") as fh:
-            data = fh.read(MAX_FILE_BYTES + 1)
+        data = _read_capped(file, size)
     except FileNotFoundError:
         src.fail(None, "file not found")
     except OSError as err:

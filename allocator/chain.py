@@ -112,7 +112,10 @@ def _compile(node: ast.AST, names: frozenset[str] | None, depth: int = 0):
     if isinstance(node, ast.Constant):
         if isinstance(node.value, bool) or not isinstance(node.value, (int, float)):
             raise ExpressionError(f"{_describe(node)} is not allowed (numbers only)")
-        value = float(node.value)
+        try:
+            value = float(node.value)
+        except OverflowError:  # an integer literal beyond the float range, e.g. 10**400 written out
+            value = math.inf
         if not math.isfinite(value):
             raise ExpressionError("numbers in an expression must be finite")
         return (lambda env, v=value: v), frozenset()
