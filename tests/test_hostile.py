@@ -528,3 +528,39 @@ def test_unusable_case_paths_are_one_line(tmp_path, make, fragment):
             assert result.exit_code == 2 and "Traceback" not in result.output
             continue
         assert_one_line_exit_2(result, fragment)
+
+
+# --------------------------------------------------------------------------- the corpus through allocate
+
+BAD = Path(__file__).parent / "bad_cases"
+CORPUS = sorted(BAD.glob("*.toml"))
+
+
+@pytest.fixture(scope="module")
+def corpus_copy(tmp_path_factory) -> Path:
+    """The corpus in a fresh folder, with a real CSV just outside it (a '../' target)."""
+    import shutil
+
+    root = tmp_path_factory.mktemp("hostile")
+    shutil.copytree(BAD, root / "bad_cases")
+    (root / "outside_costs.csv").write_text("tolerance,cost\n0.01,3.0\n0.2,0.5\n", encoding="utf-8")
+    return root / "bad_cases"
+
+
+def test_corpus_is_large_and_every_file_says_what_it_expects():
+    assert len(CORPUS) >= 40
+    for path in CORPUS:
+        first = path.read_bytes().split(b"\n", 1)[0]
+        assert first.startswith(b"# expect: ") and len(first) > len(b"# expect: "), path.name
+
+
+@pytest.mark.parametrize("name", [p.stem for p in CORPUS])
+def test_corpus_file_through_allocate_is_one_line_exit_2(corpus_copy, name):
+    """tests/test_bad_input.py runs the corpus through ``analyze``; ``allocate`` must
+    answer the same way (one line with the expected fragment, exit 2, nothing written)."""
+    path = corpus_copy / f"{name}.toml"
+    fragment = path.read_bytes().split(b"\n", 1)[0].decode("utf-8").removeprefix("# expect: ").strip()
+    before = files_in(corpus_copy.parent)
+    line = assert_one_line_exit_2(run_cli(["allocate", str(path)]), fragment)
+    assert line.startswith(f"error: {path}: "), line
+    assert files_in(corpus_copy.parent) == before
