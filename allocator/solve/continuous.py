@@ -285,10 +285,14 @@ class CompiledAllocation:
                 return p.result(polished, limits, status="optimal", message=message,
                                 solver=solver.lower(), iterations=iterations, gap=gap,
                                 multipliers=multipliers)
-            notes.append(
-                f"{solver.lower()}: "
-                + (note or ("inaccurate" if not accurate else f"needed a shrink of {1 - theta:.1e}"))
-            )
+            if not accurate:
+                reason = "inaccurate"
+            elif theta < 1.0 - POLISH_LIMIT:
+                reason = f"needed a shrink of {1 - theta:.1e}"
+            else:
+                reason = "failed the re-check"
+            # the note (e.g. cutting-plane rounds) adds to the reason, never replaces it
+            notes.append(f"{solver.lower()}: {reason}" + (f" ({note})" if note else ""))
             if verified and fallback is None:
                 fallback = (polished, solver.lower(), iterations, gap, multipliers)
         message = "no verified optimum (" + "; ".join(notes) + ")"
