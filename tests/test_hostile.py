@@ -564,3 +564,141 @@ def test_corpus_file_through_allocate_is_one_line_exit_2(corpus_copy, name):
     line = assert_one_line_exit_2(run_cli(["allocate", str(path)]), fragment)
     assert line.startswith(f"error: {path}: "), line
     assert files_in(corpus_copy.parent) == before
+
+
+# --------------------------------------------------------------------------- output files
+# Every command that writes a file writes it whole or not at all (temporary file in the
+# same folder, then an atomic rename) and never overwrites the case it reads.
+
+GEARBOX = Path(__file__).resolve().parents[1] / "cases" / "gearbox_end_play.toml"
+
+
+def _available(command: str) -> bool:
+    return command in cli.list_commands(None)
+
+
+def writing_commands():
+    """(id, args with CASE and OUT placeholders) for every writing option that exists."""
+    candidates = [
+        ("init", ["init", "OUT"]),
+        ("verify-plot", ["verify", "CASE", "--samples", "1000", "--plot", "OUT"]),
+        ("frontier-plot", ["frontier", "CASE", "--points", "3", "--plot", "OUT"]),
+        ("frontier-economics-plot", ["frontier", "CASE", "--points", "3", "--economics-plot", "OUT"]),
+        ("report", ["report", "CASE", "--samples", "1000", "--no-frontier", "-o", "OUT"]),
+    ]
+    return [pytest.param(args, id=name) if _available(args[0]) else
+            pytest.param(args, id=name, marks=pytest.mark.skip(reason=f"no '{args[0]}' command yet"))
+            for name, args in candidates]
+
+
+def test_every_command_with_an_output_option_is_covered():
+    """A new writing command (or option) must be added to writing_commands()."""
+    covered = {args[0] for p in writing_commands() for args in [p.values[0]]}
+    for name in cli.list_commands(None):
+        command = cli.get_command(None, name)
+        writes = [o for o in command.params if any(flag in ("-o", "--output", "--plot") or flag.endswith("-plot")
+                                                   for flag in getattr(o, "opts", []))]
+        if writes or name == "init":
+            assert name in covered, f"'{name}' writes files but is not covered here"
+
+
+def _fill(args, case: Path, out: Path):
+    return [str(case) if a == "CASE" else str(out) if a == "OUT" else a for a in args]
+
+
+class _HalfThenFull:
+    """A file object that writes half of what it is given, then reports a full disk."""
+
+    def __init__(self, fh):
+        self.fh = fh
+
+    def write(self, data):
+        self.fh.write(data[: len(data) // 2])
+        self.fh.flush()
+        raise OSError(28, "No space left on device")
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        self.fh.close()
+
+
+@pytest.mark.parametrize("args", writing_commands())
+def test_a_failed_write_leaves_no_file_and_no_temporary(tmp_path, monkeypatch, args):
+    case = tmp_path / "case.toml"
+    case.write_bytes(GEARBOX.read_bytes())
+    suffix = ".toml" if args[0] == "init" else ".html" if args[0] == "report" else ".svg"
+    out = tmp_path / f"out{suffix}"
+    real_fdopen = os.fdopen
+    monkeypatch.setattr(os, "fdopen", lambda fd, *a, **k: _HalfThenFull(real_fdopen(fd, *a, **k)))
+    result = CliRunner().invoke(cli, _fill(args, case, out))
+    monkeypatch.undo()
+    assert result.exit_code == 2, (result.output, result.exception)
+    assert "Traceback" not in result.output
+    errors = [line for line in result.stderr.splitlines() if line.startswith("error:")]
+    assert len(errors) == 1 and "no space left on device" in errors[0], result.stderr
+    assert files_in(tmp_path) == ["case.toml"]  # no output, no temporary file
+    assert case.read_bytes() == GEARBOX.read_bytes()
+
+
+@pytest.mark.parametrize("args", writing_commands())
+def test_a_failed_write_keeps_the_previous_output(tmp_path, monkeypatch, args):
+    case = tmp_path / "case.toml"
+    case.write_bytes(GEARBOX.read_bytes())
+    out = tmp_path / ("old.toml" if args[0] == "init" else "old.html" if args[0] == "report" else "old.svg")
+    out.write_bytes(b"previous output, intact\n")
+    args = args + ["--force"] if args[0] == "init" else args
+    real_fdopen = os.fdopen
+    monkeypatch.setattr(os, "fdopen", lambda fd, *a, **k: _HalfThenFull(real_fdopen(fd, *a, **k)))
+    result = CliRunner().invoke(cli, _fill(args, case, out))
+    monkeypatch.undo()
+    assert result.exit_code == 2, (result.output, result.exception)
+    assert out.read_bytes() == b"previous output, intact\n"
+    assert files_in(tmp_path) == sorted(["case.toml", out.name])
+
+
+@pytest.mark.parametrize("args", [p for p in writing_commands() if p.values[0][0] != "init"])
+@pytest.mark.parametrize("how", ["same-path", "symlink", "relative"])
+def test_no_command_overwrites_its_case(tmp_path, monkeypatch, args, how):
+    """The case is named .svg/.html so that only the 'input file' rule can refuse it."""
+    suffix = ".html" if args[0] == "report" else ".svg"
+    case = tmp_path / f"case{suffix}"
+    case.write_bytes(GEARBOX.read_bytes())
+    if how == "same-path":
+        out = case
+    elif how == "symlink":
+        out = tmp_path / f"link{suffix}"
+        out.symlink_to(case)
+    else:
+        (tmp_path / "sub").mkdir()
+        out = tmp_path / "sub" / ".." / case.name
+    before = files_in(tmp_path)
+    result = CliRunner().invoke(cli, _fill(args, case, out))
+    line = assert_one_line_exit_2(result, "refusing to overwrite the input")
+    assert line.startswith(f"error: {out}: ")
+    assert case.read_bytes() == GEARBOX.read_bytes()
+    assert files_in(tmp_path) == before
+
+
+def test_a_hard_link_to_the_case_is_replaced_not_written_through(tmp_path):
+    """A second name for the case's inode: the rename replaces that name; the case's own
+    bytes are untouched."""
+    if not _available("verify"):
+        pytest.skip("no verify command yet")
+    case = tmp_path / "case.toml"
+    case.write_bytes(GEARBOX.read_bytes())
+    twin = tmp_path / "twin.svg"
+    os.link(case, twin)
+    result = CliRunner().invoke(cli, ["verify", str(case), "--samples", "1000", "--plot", str(twin)])
+    assert result.exit_code in (0, 1), result.output
+    assert case.read_bytes() == GEARBOX.read_bytes()
+    assert twin.read_bytes().lstrip().startswith(b"<")  # the plot (SVG) now has that name
+
+
+def test_init_refuses_to_overwrite_without_force(tmp_path):
+    path = tmp_path / "mine.toml"
+    path.write_text("my own notes\n", encoding="utf-8")
+    result = CliRunner().invoke(cli, ["init", str(path)])
+    assert_one_line_exit_2(result, "already exists (use --force to overwrite it)")
+    assert path.read_text(encoding="utf-8") == "my own notes\n"

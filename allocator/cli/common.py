@@ -42,8 +42,9 @@ def seed_option(f):
 def handle_errors(f):
     """Turn library errors into one line on stderr and the documented exit code.
 
-    Anything unexpected is still one line (exit 2 for bad input that slipped past
-    validation would hide bugs, so unexpected errors exit 3 and ask for a report).
+    An operating-system error on a file the command reads or writes (disk full, no
+    permission, a folder where a file was expected) is one line with exit code 2 too.
+    Anything else is a bug and keeps its traceback, so that it can be reported.
     """
 
     @functools.wraps(f)
@@ -60,6 +61,13 @@ def handle_errors(f):
         except KeyboardInterrupt:
             click.echo("interrupted", err=True)
             sys.exit(130)
+        except OSError as err:
+            # a file the command reads or writes (disk full, no permission, ...): one line
+            # os.replace(tmp, target) names both: the target is the file the user named
+            name = getattr(err, "filename2", None) or getattr(err, "filename", None)
+            where = f"{name}: " if name else ""
+            click.echo(f"error: {where}{(err.strerror or str(err)).lower()}", err=True)
+            sys.exit(2)
 
     return wrapper
 
@@ -102,7 +110,10 @@ def atomic_write(path, data: bytes | str, *, protect=()) -> Path:
     if not target.parent.exists():
         raise UsageError(f"{target}: folder {target.parent} does not exist")
     mode = "wb" if isinstance(data, bytes) else "w"
-    fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=target.parent)
+    try:
+        fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=target.parent)
+    except OSError as err:
+        raise UsageError(f"{target}: cannot write ({(err.strerror or str(err)).lower()})") from err
     try:
         with os.fdopen(fd, mode) as fh:
             fh.write(data)
@@ -111,11 +122,13 @@ def atomic_write(path, data: bytes | str, *, protect=()) -> Path:
         os.umask(umask)
         os.chmod(tmp, 0o666 & ~umask)
         os.replace(tmp, target)
-    except BaseException:
+    except BaseException as err:
         try:
             os.unlink(tmp)
         except FileNotFoundError:
             pass
+        if isinstance(err, OSError):  # e.g. disk full: nothing half-written remains
+            raise UsageError(f"{target}: cannot write ({(err.strerror or str(err)).lower()})") from err
         raise
     return target
 
