@@ -19,8 +19,11 @@ checks, with its own numpy code and ``scipy.stats.norm`` (never the project's
   ``scipy.optimize.minimize(method="SLSQP")`` finds from three starts is cheaper
   (1e-7 relative; a start that does not converge is skipped).
 
-Cases built to be infeasible (limits tighter than the response spread at the tightest
-tolerances) must come back 'infeasible' with the requirement's name in the message.
+A feasible case may end 'failed' (no solver answer could be verified) only if the result
+says so and any tolerances it shows still meet every requirement, and in at most 2 % of
+the examples. Cases built to be infeasible (limits tighter than the response spread at
+the tightest tolerances) must come back 'infeasible' with the requirement's name in the
+message.
 
 Runs are reproducible: every property is derandomized (the examples depend only on the
 test's code and the Hypothesis version) unless ``ALLOCATOR_PROPERTY_SEED`` is set;
@@ -54,11 +57,11 @@ MODELS = ("worst-case", "rss", "mean-shift")
 # examples per property (before ALLOCATOR_PROPERTY_SCALE); the sum is what CI runs
 EXAMPLES = {
     "sigma_limit": 300,
-    "single": 600,
-    "several": 300,
-    "slsqp": 100,
-    "infeasible": 150,
-    "text": 40,
+    "single": 1000,
+    "several": 400,
+    "slsqp": 120,
+    "infeasible": 200,
+    "text": 50,
 }
 
 
@@ -447,6 +450,31 @@ def check_optimal(invented: Invented, result, *, perturb: bool = True) -> np.nda
     return t
 
 
+# A feasible case may end 'failed' when no solver's answer can be verified (the library
+# must say so rather than guess); that is allowed, but rarely: at most this share of runs.
+MAX_FAILED_SHARE = 0.02
+
+
+def is_honest_failure(invented: Invented, result, counter: "Counter") -> bool:
+    """True (and checked) when ``result`` is an explicit 'failed'; False for 'optimal'."""
+    if result.status != "failed":
+        return False
+    counter("failed, said so")
+    assert result.message.startswith("no verified optimum"), result.message
+    t = result.allocated_array()
+    if t is not None:  # tolerances shown with a failure must still meet every requirement
+        ref = Reference(invented.case, invented.model)
+        assert ref.within_limits(t) and np.all(ref.excess(t)[0] <= rtol_for(invented.model))
+    return True
+
+
+def check_failures_are_rare(counter: "Counter") -> None:
+    failed = counter.events.get("failed, said so", 0)
+    assert failed <= max(1, MAX_FAILED_SHARE * counter.runs), (
+        f"{failed} of {counter.runs} feasible cases ended 'failed'"
+    )
+
+
 def check_infeasible(invented: Invented, result) -> None:
     ref = Reference(invented.case, invented.model)
     bad = ref.excess(ref.tightest())[0] > rtol_for(invented.model)
@@ -613,9 +641,11 @@ def test_single_requirement_allocations_are_verified_optima():
         note(repr(invented.case))
         result = allocate(invented.case, invented.model)
         counter(f"{invented.model} via {result.solver}")
-        check_optimal(invented, result)
+        if not is_honest_failure(invented, result, counter):
+            check_optimal(invented, result)
 
     _run("single", inner, counter)
+    check_failures_are_rare(counter)
 
 
 def test_several_requirements_allocations_are_verified_optima():
@@ -631,9 +661,11 @@ def test_several_requirements_allocations_are_verified_optima():
         note(repr(invented.case))
         result = allocate(invented.case, invented.model)
         counter(f"{invented.model} via {result.solver}")
-        check_optimal(invented, result)
+        if not is_honest_failure(invented, result, counter):
+            check_optimal(invented, result)
 
     _run("several", inner, counter)
+    check_failures_are_rare(counter)
 
 
 def test_allocations_are_no_dearer_than_slsqp():
@@ -648,6 +680,8 @@ def test_allocations_are_no_dearer_than_slsqp():
         counter.runs += 1
         note(repr(invented.case))
         result = allocate(invented.case, invented.model)
+        if is_honest_failure(invented, result, counter):
+            return
         check_optimal(invented, result, perturb=False)
         reference = slsqp_best(invented)
         if reference is None:
@@ -660,6 +694,7 @@ def test_allocations_are_no_dearer_than_slsqp():
         )
 
     _run("slsqp", inner, counter)
+    check_failures_are_rare(counter)
     compared = counter.events.get("compared with slsqp", 0)
     assert compared >= 0.5 * counter.runs, f"SLSQP converged in only {compared} of {counter.runs} examples"
 
