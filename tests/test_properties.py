@@ -103,7 +103,7 @@ def _run(key: str, inner, counter: Counter) -> None:
     mode = f"seed {SEED}" if SEED is not None else "derandomized"
     try:
         inner()
-    except BaseException as err:  # add the reproduction line to whatever failed
+    except Exception as err:  # add the reproduction line to whatever failed
         raise AssertionError(
             f"property '{key}' failed after {counter.runs} examples ({mode}); reproduce with: "
             + (f"ALLOCATOR_PROPERTY_SEED={SEED} " if SEED is not None else "")
