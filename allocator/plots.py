@@ -20,11 +20,10 @@ from __future__ import annotations
 
 import io
 import math
-import os
-import tempfile
 from pathlib import Path
 
 from .errors import UsageError
+from .files import atomic_write
 
 __all__ = [
     "FORMATS",
@@ -36,7 +35,6 @@ __all__ = [
     "render",
     "format_for",
     "save",
-    "write_atomic",
     "frontier_figure",
     "economics_figure",
     "render_frontier_plot",
@@ -134,39 +132,10 @@ def render(figure, fmt: str = "png") -> bytes:
     return buffer.getvalue()
 
 
-def write_atomic(path, data: bytes, *, protect=()) -> Path:
-    """Write ``data`` to ``path`` via a temporary file in the same folder and ``os.replace``.
-
-    Refuses (UsageError) to overwrite any path in ``protect`` and to write into a folder
-    that does not exist; a failed write leaves no partial file behind.
-    """
-    target = Path(path)
-    for p in protect:
-        if p is not None and target.resolve() == Path(p).resolve():
-            raise UsageError(f"{target}: refusing to overwrite the input file")
-    if not target.parent.exists():
-        raise UsageError(f"{target}: folder {target.parent} does not exist")
-    fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=target.parent)
-    try:
-        with os.fdopen(fd, "wb") as fh:
-            fh.write(data)
-        umask = os.umask(0)  # mkstemp makes 0600; give what a plain open() would
-        os.umask(umask)
-        os.chmod(tmp, 0o666 & ~umask)
-        os.replace(tmp, target)
-    except BaseException:
-        try:
-            os.unlink(tmp)
-        except FileNotFoundError:
-            pass
-        raise
-    return target
-
-
 def save(figure, path, *, protect=()) -> Path:
     """Render ``figure`` in the format the extension of ``path`` names and write it atomically."""
     fmt = format_for(path)
-    return write_atomic(path, render(figure, fmt), protect=protect)
+    return atomic_write(path, render(figure, fmt), protect=protect)
 
 
 # --------------------------------------------------------------------------- labels
@@ -375,10 +344,10 @@ def render_economics_plot(economics, fmt: str = "png") -> bytes:
 def plot_frontier(frontier, path, *, protect=()) -> Path:
     """Write the frontier plot to ``path`` (.png or .svg), atomically."""
     fmt = format_for(path)
-    return write_atomic(path, render_frontier_plot(frontier, fmt), protect=protect)
+    return atomic_write(path, render_frontier_plot(frontier, fmt), protect=protect)
 
 
 def plot_economics(economics, path, *, protect=()) -> Path:
     """Write the economics plot to ``path`` (.png or .svg), atomically."""
     fmt = format_for(path)
-    return write_atomic(path, render_economics_plot(economics, fmt), protect=protect)
+    return atomic_write(path, render_economics_plot(economics, fmt), protect=protect)

@@ -442,7 +442,7 @@ def write_report(case, path, models=None, **kwargs) -> Report:
     Refuses to overwrite the case file itself (:class:`~allocator.errors.UsageError`),
     checked before any work is done. Returns the :class:`Report`.
     """
-    from .cli.common import atomic_write
+    from .files import atomic_write
     from .errors import UsageError
 
     target = Path(path)
@@ -1021,7 +1021,7 @@ def _section_frontier(report: Report, svg: str | None) -> str:
     current = front.current or {}
     facts = []
     if current.get("value") is not None:
-        facts.append((f"Case value of the swept quantity", _i(current["value"])))
+        facts.append(("Case value of the swept quantity", _i(current["value"])))
     if current.get("total_cost") is not None:
         facts.append((f"Cost of the current design{_unit(cur)}", _n(current["total_cost"])))
     for model, cost in (current.get("optimal") or {}).items():

@@ -30,9 +30,7 @@ applicable codes and a licensed engineering review.
 from __future__ import annotations
 
 import math
-import os
 import sys
-import tempfile
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Mapping
@@ -803,14 +801,6 @@ def plot_verification(result: Verification, path) -> Path:
     One panel per requirement: the Monte Carlo density, the limits as dashed lines and
     the RSS normal approximation. Written to a temporary file and renamed into place.
     """
-    target = Path(path)
-    data = render_verification_plot(result, target.suffix)
-    fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=target.parent or ".")
-    try:
-        with os.fdopen(fd, "wb") as fh:
-            fh.write(data)
-        os.replace(tmp, target)
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise
-    return target
+    from .files import atomic_write
+
+    return atomic_write(path, render_verification_plot(result, Path(path).suffix))

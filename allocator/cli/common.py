@@ -5,10 +5,7 @@ from __future__ import annotations
 import functools
 import json
 import math
-import os
 import sys
-import tempfile
-from pathlib import Path
 
 import click
 
@@ -94,43 +91,6 @@ def _jsonable(value):
 
 def echo_json(document) -> None:
     click.echo(json.dumps(_jsonable(document), indent=2, allow_nan=False))
-
-
-def atomic_write(path, data: bytes | str, *, protect=()) -> Path:
-    """Write ``data`` to ``path`` via a temporary file and an atomic rename.
-
-    Refuses to overwrite any path in ``protect`` (e.g. the input case).
-    """
-    from ..errors import UsageError
-
-    target = Path(path)
-    for p in protect:
-        if p is not None and target.resolve() == Path(p).resolve():
-            raise UsageError(f"{target}: refusing to overwrite the input file")
-    if not target.parent.exists():
-        raise UsageError(f"{target}: folder {target.parent} does not exist")
-    mode = "wb" if isinstance(data, bytes) else "w"
-    try:
-        fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=target.parent)
-    except OSError as err:
-        raise UsageError(f"{target}: cannot write ({(err.strerror or str(err)).lower()})") from err
-    try:
-        with os.fdopen(fd, mode) as fh:
-            fh.write(data)
-        # mkstemp creates 0600; give the file the permissions a plain open() would
-        umask = os.umask(0)
-        os.umask(umask)
-        os.chmod(tmp, 0o666 & ~umask)
-        os.replace(tmp, target)
-    except BaseException as err:
-        try:
-            os.unlink(tmp)
-        except FileNotFoundError:
-            pass
-        if isinstance(err, OSError):  # e.g. disk full: nothing half-written remains
-            raise UsageError(f"{target}: cannot write ({(err.strerror or str(err)).lower()})") from err
-        raise
-    return target
 
 
 def text_table(rows, headers, *, floatfmt="g") -> str:

@@ -8,7 +8,8 @@ from pathlib import Path
 import click
 
 from ..errors import UsageError
-from .common import atomic_write, handle_errors
+from ..files import atomic_write
+from .common import handle_errors
 
 
 def starter_text() -> str:

@@ -197,7 +197,7 @@ def verify(case_file, tolerance_file, models, samples, seed, plot, centred, as_j
     """
     from ..simulate import render_verification_plot
     from ..simulate import verify as run_verify
-    from .common import atomic_write
+    from ..files import atomic_write
 
     if len(models) > 1:
         raise UsageError("verify checks one set of tolerances: give --model once")
