@@ -136,30 +136,12 @@ def cases():
 
 CASES = cases()
 
-# Known shortfalls of the multi-requirement conic path (allocator/solve/continuous.py):
-# when the KKT refinement does not apply, the interior-point answer leaves the tolerances
-# of parts that barely move the total cost undetermined beyond ~1e-5..1e-1 (the cost agrees
-# to 1e-8). Strict: a fix turns these into passes that must be unmarked.
-UNREFINED_NEAR_A_LIMIT = (
-    "bug: continuous.refine_mean_shift gives up when a contributor sits just inside a limit "
-    "(0.999993 of its loosest here, outside the 1e-7 margin) and Newton would cross it; the "
-    "cutting-plane answer then agrees across units only to ~4e-6 in the tolerances"
-)
-UNREFINED_SLACK_MULTIPLIER = (
-    "bug: continuous._attempt sets the multiplier of a requirement more than SLACK_RTOL = 1e-6 "
-    "inside its limit to 0; with part costs spread over 1e-3..1e4 the conic answer leaves "
-    "binding requirements 3e-6..4e-5 inside, exact.refine / refine_mean_shift start from the "
-    "wrong active set and give up, and tolerances of cheap parts differ by up to 10 % between "
-    "runs that differ only by a cost factor"
-)
-UNITS_XFAIL = {"mean-shift-8x3": UNREFINED_NEAR_A_LIMIT}
-COSTS_XFAIL = {
-    "worst-case-12x5": UNREFINED_SLACK_MULTIPLIER,
-    "rss-8x3": UNREFINED_SLACK_MULTIPLIER,
-    "rss-12x5": UNREFINED_SLACK_MULTIPLIER,
-    "mean-shift-8x3": UNREFINED_SLACK_MULTIPLIER,
-    "mean-shift-12x5": UNREFINED_SLACK_MULTIPLIER,
-}
+# Known shortfalls of the multi-requirement conic path (allocator/solve/continuous.py),
+# strict xfail per case id; none at present. (An unrefined interior-point answer leaves the
+# tolerances of parts that barely move the total cost undetermined beyond ~1e-5..1e-1, so
+# these tests fail whenever the KKT refinement does not apply.)
+UNITS_XFAIL: dict[str, str] = {}
+COSTS_XFAIL: dict[str, str] = {}
 
 
 def params(known: dict):

@@ -210,15 +210,6 @@ def test_a_point_outside_the_constraints_is_polished_or_failed(monkeypatch, mode
         assert_failed_honestly(model, result)
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason=(
-        "bug: allocator/solve/continuous.py CompiledAllocation.solve accepts any feasible "
-        "point that the solver calls optimal; the gap to the solver's own bound is computed "
-        "(result.gap) but never required to be small, so a feasible but dearer point is "
-        "returned as 'optimal' (3-8 % dearer here)"
-    ),
-)
 @pytest.mark.parametrize("model", MODELS)
 def test_a_feasible_point_that_is_not_the_optimum_is_not_called_optimal(monkeypatch, model):
     """The solver says optimal but its point is 10 % tighter than the optimum (feasible,

@@ -48,7 +48,7 @@ FIRST_CUTS = 3  # tangents placed before the first solve (the rest start switche
 CUT_RTOL = 1e-9  # σ ≤ g(δ)(1 + CUT_RTOL) ends the cutting-plane loop
 MAX_CUT_ROUNDS = 80
 POLISH_LIMIT = 1e-6  # a larger shrink means the solver's answer was not accurate
-SLACK_RTOL = 1e-6  # a requirement this far inside its limit is slack: multiplier 0
+GAP_RTOL = 1e-6  # 'optimal' needs a certified relative gap at most this (honest: <= ~2e-9)
 
 
 class _Row:
@@ -266,17 +266,22 @@ class CompiledAllocation:
             if outcome is None:
                 notes.append(f"{solver.lower()} failed")
                 continue
-            t, accurate, iterations, bound, multipliers, note = outcome
+            t, accurate, iterations, multipliers, note = outcome
             polished, theta = p.polish(t, limits)
             cost = p.total_cost(polished)
             refined = self._refine(limits, multipliers, t, cost) if accurate else None
+            # lower bounds certified by weak duality (never the solver's own objective)
+            bounds = [lagrangian_bound(p, limits, polished, multipliers)]
             if refined is not None:
                 polished, theta, cost, multipliers, refined_bound = refined
-                bound = bound if refined_bound is None else refined_bound
+                bounds += [refined_bound, lagrangian_bound(p, limits, polished, multipliers)]
                 note = "KKT refined" + (f"; {note}" if note else "")
-            gap = max(0.0, (cost - bound) / cost) if cost > 0 and bound is not None else None
+            bounds = [b for b in bounds if b is not None]
+            bound = max(bounds) if bounds else None
+            gap = max(0.0, (cost - bound) / abs(cost)) if cost != 0 and bound is not None else None
             verified = p.feasible(polished, limits, rtol=p._rtol())
-            if accurate and verified and theta >= 1.0 - POLISH_LIMIT:
+            close = gap is not None and gap <= GAP_RTOL
+            if accurate and verified and theta >= 1.0 - POLISH_LIMIT and close:
                 message = "conic solve re-checked against every requirement"
                 if note:
                     message += f"; {note}"
@@ -289,6 +294,12 @@ class CompiledAllocation:
                 reason = "inaccurate"
             elif theta < 1.0 - POLISH_LIMIT:
                 reason = f"needed a shrink of {1 - theta:.1e}"
+            elif not verified:
+                reason = "failed the re-check"
+            elif gap is None:
+                reason = "no certified lower bound"
+            elif not close:
+                reason = f"certified gap {gap:.1e} above {GAP_RTOL:g}"
             else:
                 reason = "failed the re-check"
             # the note (e.g. cutting-plane rounds) adds to the reason, never replaces it
@@ -366,7 +377,6 @@ class CompiledAllocation:
             tau, accurate, its = out  # earlier rounds only place tangents: the last one counts
             iterations += its
             t = p.full(np.clip(tau * length, p.lower_bounds[p.free], p.upper_bounds[p.free]))
-            bound = float(self.cvx.value) * money + self.held_cost
             violated = []
             for req, lim, row in shifting:
                 a = req.sensitivity
@@ -388,10 +398,12 @@ class CompiledAllocation:
         else:
             note = f"cutting planes stopped after {MAX_CUT_ROUNDS} rounds"
             accurate = False
+        # the duals, not the slack, say which requirements bind: with costs spread over
+        # decades a binding requirement can sit 1e-5 inside its limit; the refinement
+        # drops any whose multiplier turns out 0 (complementary slackness)
         multipliers = []
-        stats = p.statistics(t, limits)
-        for row, stat in zip(self.rows, stats):
-            if row is None or stat["excess"] < -SLACK_RTOL:  # slack: complementary slackness
+        for row, lim in zip(self.rows, limits):
+            if row is None or (lim.lower is None and lim.upper is None):
                 multipliers.append(0.0)
                 continue
             if row.kind == "mean-shift":
@@ -401,7 +413,7 @@ class CompiledAllocation:
             multipliers.append(max(dual, 0.0) * money / row.scale)
         if shifting and not note:
             note = f"{round_} cutting-plane round{'s' if round_ > 1 else ''}"
-        return t, accurate, iterations, bound, multipliers, note
+        return t, accurate, iterations, multipliers, note
 
 
 def refine_mean_shift(problem: AllocationProblem, limits, multipliers, t, *, max_steps: int = 30):
@@ -439,54 +451,122 @@ def refine_mean_shift(problem: AllocationProblem, limits, multipliers, t, *, max
     """
     p = problem
     n, f, m = p.counts, p.sigma_factors, p.mean_shifts
+    limited = [k for k, lim in enumerate(limits) if lim.lower is not None or lim.upper is not None]
     stats = p.statistics(t, limits)
-    active = [
-        k for k, (s, lim, y) in enumerate(zip(stats, limits, multipliers))
-        if y > 0 and s["excess"] >= -SLACK_RTOL and (lim.lower is not None or lim.upper is not None)
-    ]
-    if not active:
-        return None
+    y = np.asarray(multipliers, dtype=float)
+    # a positive dual (or a requirement at its limit) makes a requirement a candidate;
+    # complementary slackness sorts them out below
+    active = [k for k in limited if y[k] > 0 or stats[k]["excess"] >= -1e-6]
     lo, hi = p.lower_bounds, p.upper_bounds
     margin = 1e-7 * (hi - lo)
-    var = p.free & (t > lo + margin) & (t < hi - margin) & ~p.curves.at_breakpoint(t)
-    if not var.any():
+    x = np.asarray(t, dtype=float).copy()
+    kink = p.curves.at_breakpoint(x)
+    at_lo = p.free & ~kink & (x <= lo + margin)
+    at_hi = p.free & ~kink & (x >= hi - margin)
+    x[at_lo], x[at_hi] = lo[at_lo], hi[at_hi]
+    mu_of = {k: float(y[k]) for k in limited}
+    for _ in range(4 * len(limits) + 2 * int(p.free.sum()) + 4):
+        var = p.free & ~kink & ~at_lo & ~at_hi
+        if not active or not var.any():
+            return None
+        saved = at_lo.copy(), at_hi.copy()
+        out = _kkt_newton(p, limits, active, np.flatnonzero(var), x, np.array([mu_of[k] for k in active]),
+                          at_lo, at_hi, max_steps)
+        if out is None:
+            # cannot make every candidate bind: the slack one with the smallest
+            # multiplier leaves (complementary slackness), else give up
+            stats = p.statistics(x, limits)
+            slack = [k for k in active if stats[k]["excess"] < -1e-9]
+            if not slack:
+                return None
+            drop = min(slack, key=lambda k: mu_of[k] * max(stats[k]["sigma"], 1e-300))
+            active = [k for k in active if k != drop]
+            mu_of[drop] = 0.0
+            at_lo, at_hi = saved
+            continue
+        x, mu = out
+        mu_of.update(zip(active, mu.tolist()))
+        # complementary slackness: a negative multiplier leaves the active set
+        if np.any(mu < 0):
+            drop = active[int(np.argmin(mu))]
+            active = [k for k in active if k != drop]
+            mu_of[drop] = 0.0
+            continue
+        # a contributor on a bound whose Lagrangian slope points inward is released
+        grad_l = n * p.curves.derivative(x)
+        for k in active:
+            grad_l = grad_l + mu_of[k] * _constraint_gradient(p, k, limits[k], x)
+        scale = np.maximum(np.abs(n * p.curves.derivative(x)), 1e-300)
+        release = (at_lo & (grad_l < -1e-9 * scale)) | (at_hi & (grad_l > 1e-9 * scale))
+        if release.any():
+            worst = int(np.argmax(np.where(release, np.abs(grad_l) / scale, -np.inf)))
+            at_lo[worst] = at_hi[worst] = False
+            continue
+        # a violated requirement joins
+        stats = p.statistics(x, limits)
+        joining = [k for k in limited if k not in active and stats[k]["excess"] > 1e-12]
+        if joining:
+            active = sorted(active + joining)
+            continue
+        break
+    else:
         return None
-    J = np.flatnonzero(var)
+    out = [0.0] * len(limits)
+    for k in active:
+        out[k] = float(mu_of[k])
+    return x, out, None
+
+
+def _constraint_gradient(p, k, lim, x):
+    """∂h_k/∂t with ``h = σ − g(δ)`` (all contributors)."""
+    a = p.requirements[k].sensitivity
+    w = p.counts * (a * p.sigma_factors) ** 2
+    v = p.counts * np.abs(a) * p.mean_shifts
+    sigma = math.sqrt(float(w @ (x * x)))
+    slope = mean_shift_allowance(p.requirements[k].nominal, float(v @ x), lim)[1]
+    return (w * x / sigma if sigma > 0 else 0.0 * w) - slope * v
+
+
+def _kkt_newton(p, limits, active, J, x, mu, at_lo, at_hi, max_steps):
+    """Newton on the KKT system for a fixed active set; a contributor whose step would
+    cross a bound is put on it (into ``at_lo``/``at_hi``) and leaves the unknowns."""
+    n, f, m = p.counts, p.sigma_factors, p.mean_shifts
+    lo, hi = p.lower_bounds, p.upper_bounds
     rows = []
     for k in active:
         a = p.requirements[k].sensitivity
         rows.append((k, n * (a * f) ** 2, n * np.abs(a) * m))
-    x = np.asarray(t, dtype=float).copy()
-    mu = np.array([multipliers[k] for k in active], dtype=float)
+    x = x.copy()
     for _ in range(max_steps):
         grads, hess = [], np.diag((n * p.curves.curvature(x))[J])
         residual_c = np.empty(len(active))
+        g_values = np.empty(len(active))
         for j, (k, w, v) in enumerate(rows):
             req, lim = p.requirements[k], limits[k]
             sigma = math.sqrt(float(w @ (x * x)))
             delta = float(v @ x)
             g, slope, second = allowance_with_curvature(req.nominal, delta, lim)
+            if not (sigma > 0 and g > 0 and math.isfinite(g) and math.isfinite(second)):
+                return None
             d_sigma = w * x / sigma
             grads.append(d_sigma - slope * v)
             wj, dj, vj = w[J], d_sigma[J], v[J]
             hess += mu[j] * (np.diag(wj / sigma) - np.outer(dj, dj) / sigma - second * np.outer(vj, vj))
             residual_c[j] = (sigma - g) / g
+            g_values[j] = g
         grad_h = np.array(grads)  # (active, contributors)
         slope_cost = n * p.curves.derivative(x)
         residual_s = slope_cost + mu @ grad_h
         scale_s = np.maximum(np.abs(slope_cost[J]), 1e-300)
         if np.all(np.abs(residual_s[J]) <= 1e-11 * scale_s) and np.all(np.abs(residual_c) <= 1e-13):
-            break
-        # constraint rows divided by g (as the residual), columns of μ in their own units
-        g_values = np.array([allowance_with_curvature(p.requirements[k].nominal, float(v @ x), limits[k])[0]
-                             for k, _, v in rows])
+            return x, mu
         kkt = np.zeros((J.size + len(active),) * 2)
         kkt[: J.size, : J.size] = hess
         kkt[: J.size, J.size :] = grad_h[:, J].T
         kkt[J.size :, : J.size] = grad_h[:, J] / g_values[:, None]
         rhs = -np.concatenate([residual_s[J], residual_c])
         # equilibrate rows and columns: tolerances and multipliers differ by many decades
-        col = np.concatenate([x[J], np.maximum(mu, 1e-300)])
+        col = np.concatenate([x[J], np.maximum(np.abs(mu), 1e-300)])
         scaled = kkt * col[None, :]
         row = 1.0 / np.maximum(np.abs(scaled).max(axis=1), 1e-300)
         try:
@@ -495,16 +575,100 @@ def refine_mean_shift(problem: AllocationProblem, limits, multipliers, t, *, max
             return None
         if not np.all(np.isfinite(step)):
             return None
-        x_new = x.copy()
-        x_new[J] += step[: J.size]
-        if np.any(x_new[J] <= lo[J]) or np.any(x_new[J] >= hi[J]):
-            return None  # a contributor would cross a limit: the active set was wrong
-        x, mu = x_new, mu + step[J.size :]
-    else:
-        return None
-    if np.any(mu < 0):
-        return None
-    out = [0.0] * len(limits)
-    for j, k in enumerate(active):
-        out[k] = float(mu[j])
-    return x, out, None
+        new = x[J] + step[: J.size]
+        below, above = new <= lo[J], new >= hi[J]
+        mu = mu + step[J.size :]
+        if below.any() or above.any():
+            # active-set step: the crossing contributors stop on their bound
+            x[J] = np.clip(new, lo[J], hi[J])
+            at_lo[J[below]] = True
+            at_hi[J[above]] = True
+            J = J[~(below | above)]
+            if J.size == 0:
+                return None
+            continue
+        x[J] = new
+    return None
+
+def lagrangian_bound(problem: AllocationProblem, limits, t, multipliers) -> float | None:
+    r"""A lower bound on the least cost, certified by weak duality.
+
+    Parameters
+    ----------
+    problem : AllocationProblem
+    limits : list of Limits
+    t : numpy.ndarray
+        Any tolerances (all contributors) [length]; the tangents are taken there.
+    multipliers : sequence of float
+        ``μ_r ≥ 0`` per requirement, in cost per unit of the requirement's allowance
+        (room under worst case, σ otherwise).
+
+    Returns
+    -------
+    float or None
+        The bound [currency]; None when a constraint cannot be evaluated at ``t``.
+
+    Notes
+    -----
+    Every constraint ``h_r(t) ≤ 0`` is convex (worst case: ``Σ n|a|t − room``; rss:
+    ``σ(t) − σ_max``; mean shift: ``σ(t) − g(δ(t))`` with ``g`` concave), so its tangent
+    ``ℓ_r(t') = h_r(t) + ∇h_r(t)·(t' − t)`` lies below it and ``ℓ_r ≤ 0`` relaxes the
+    problem. For ``μ ≥ 0`` the minimum of the Lagrangian of that relaxation,
+
+    .. math::
+
+        \min_{lo ≤ t' ≤ hi} Σ_i n_i C_i(t'_i) + Σ_r μ_r ℓ_r(t'),
+
+    is separable (:func:`~.exact.minimise_linear_price`) and bounds the optimum from
+    below whatever ``μ`` and ``t`` are; it equals the optimum at a KKT point. It is
+    computed here in plain numpy, independent of what the conic solver claims.
+    """
+    from .exact import minimise_linear_price
+
+    p = problem
+    n, f, m = p.counts, p.sigma_factors, p.mean_shifts
+    t = np.asarray(t, dtype=float)
+    price = np.zeros_like(t)  # Σ μ ∂h/∂t
+    constant = 0.0  # Σ μ (h(t) − ∇h·t)
+    for req, lim, mu in zip(p.requirements, limits, multipliers):
+        if not mu > 0 or (lim.lower is None and lim.upper is None):
+            continue
+        a = req.sensitivity
+        if p.model == "worst-case":
+            room = min(_sides_room(req.nominal, lim))
+            grad = n * np.abs(a)
+            h = float(grad @ t) - room
+        else:
+            sigma = stack.rss_sigma(a, n, f * t)
+            if not sigma > 0:
+                return None
+            grad = n * (a * f) ** 2 * t / sigma
+            if p.model == "rss":
+                h = sigma - stack.sigma_limit(req.nominal, lim.fallout, lim.lower, lim.upper)
+            else:
+                v = n * np.abs(a) * m
+                delta = float(v @ t)
+                g, slope, _ = mean_shift_allowance(req.nominal, delta, lim)
+                grad = grad - slope * v
+                h = sigma - g
+        if not (math.isfinite(h) and np.all(np.isfinite(grad))):
+            return None
+        price += mu * grad
+        constant += mu * (h - float(grad @ t))
+    free = p.free
+    index = np.flatnonzero(free)
+    cost_held = float(np.sum((n * p.unit_costs(np.where(free, 1.0, t)))[~free]))
+    if index.size == 0:
+        return cost_held + constant + float(price @ t)
+    curves = p.curves.subset(index)
+    t_b = minimise_linear_price(curves, price[free] / n[free], p.lower_bounds[free], p.upper_bounds[free])
+    value = cost_held + float(n[free] @ curves.value(t_b)) + float(price[free] @ t_b)
+    value += float(price[~free] @ t[~free]) + constant
+    return value if math.isfinite(value) else None
+
+
+def _sides_room(nominal, lim):
+    return (
+        math.inf if lim.lower is None else nominal - lim.lower,
+        math.inf if lim.upper is None else lim.upper - nominal,
+    )

@@ -539,7 +539,7 @@ class MeanShiftExact:
 # --------------------------------------------------------------------------- refinement
 
 
-def refine(problem: AllocationProblem, limits, multipliers, t_start, *, max_steps: int = 50):
+def refine(problem: AllocationProblem, limits, multipliers, t_start, *, max_steps: int = 50, candidates=None):
     """Newton's method on the dual, from a conic solver's answer, to machine precision.
 
     Parameters
@@ -589,8 +589,25 @@ def refine(problem: AllocationProblem, limits, multipliers, t_start, *, max_step
         lam = np.clip(y, 0.0, None)
     scale = np.where(finite & (rhs != 0), np.abs(rhs), 1.0)
     t_free = np.asarray(t_start, dtype=float)[problem.free]
-    # start from the requirements the conic answer presses against; a slack one has λ = 0
-    active = finite & (dual.spreads(t_free) >= rhs - 1e-6 * scale)
+    at_limit = finite & (dual.spreads(t_free) >= rhs - 1e-6 * scale)
+    if candidates is None:
+        # the duals say which requirements bind (with costs over many decades a binding
+        # one can sit 1e-5 inside its limit while its dual is 1e-7 of the largest);
+        # interior-point duals of slack ones are not exactly 0, so the candidate sets
+        # are tried from the clearest positive duals to every positive one, then the
+        # requirements at their limit. Any success is a KKT point, hence the optimum.
+        share = np.where(finite, lam * np.abs(rhs0), 0.0)
+        top = float(share.max()) if share.size else 0.0
+        tried = []
+        for mask in (at_limit | (share > 1e-9 * top), at_limit | (lam > 0), at_limit):
+            if any(np.array_equal(mask, m) for m in tried):
+                continue
+            tried.append(mask)
+            out = refine(problem, limits, multipliers, t_start, max_steps=max_steps, candidates=mask)
+            if out is not None:
+                return out
+        return None
+    active = np.asarray(candidates, dtype=bool) & finite
     lam = np.where(active, lam, 0.0)
 
     inner = []  # worst case: table contributors inside a piece (unknowns)
@@ -632,11 +649,21 @@ def refine(problem: AllocationProblem, limits, multipliers, t_start, *, max_step
         jac[: idx.size, idx.size :] = dual.coef[np.ix_(idx, inner)] / scale[idx, None]
         jac[idx.size :, : idx.size] = dual.weight[np.ix_(idx, inner)].T / slope_scale[:, None]
         try:
-            step = np.linalg.solve(jac, -res)
+            singular = np.linalg.cond(jac) > 1e13
+            step = None if singular else np.linalg.solve(jac, -res)
         except np.linalg.LinAlgError:
-            return None
-        if not np.all(np.isfinite(step)):
-            return None
+            step = None
+        if step is None or not np.all(np.isfinite(step)):
+            # the candidates cannot all bind (their multipliers move too few free
+            # tolerances): the slack one with the smallest multiplier leaves
+            slack = active & (r < 0)
+            if not slack.any():
+                return None
+            drop = int(np.argmin(np.where(slack, lam * scale, np.inf)))
+            active[drop] = False
+            lam[drop] = 0.0
+            t, v, r, r_inner = residual(lam)
+            continue
         base = float(np.linalg.norm(res))
         pinned = dual.pinned.copy()
         alpha = 1.0
