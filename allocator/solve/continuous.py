@@ -278,7 +278,7 @@ class CompiledAllocation:
                 note = "KKT refined" + (f"; {note}" if note else "")
             bounds = [b for b in bounds if b is not None]
             bound = max(bounds) if bounds else None
-            gap = max(0.0, (cost - bound) / abs(cost)) if cost != 0 and bound is not None else None
+            gap = float(max(0.0, (cost - bound) / abs(cost))) if cost != 0 and bound is not None else None
             verified = p.feasible(polished, limits, rtol=p._rtol())
             close = gap is not None and gap <= GAP_RTOL
             if accurate and verified and theta >= 1.0 - POLISH_LIMIT and close:
@@ -445,9 +445,15 @@ def refine_mean_shift(problem: AllocationProblem, limits, multipliers, t, *, max
 
     with the exact Hessian ``diag(n C'') + Σ μ_r ∇²h_r``,
     ``∇²σ = (diag(n a² f²) − ∇σ ∇σᵀ)/σ`` and ``∇²(g∘δ) = g'' ∇δ ∇δᵀ`` (``g''`` by a central
-    difference of the analytic ``g'``). Contributors at a limit or a table kink stay
-    where the conic solve put them. Since the problem is convex, a point meeting these
+    difference of the analytic ``g'``). Since the problem is convex, a point meeting these
     conditions with μ ≥ 0 and every other requirement met is optimal.
+
+    The active sets are found on the way: the requirements with a positive dual (or at
+    their limit) start as candidates; a multiplier that turns negative drops its
+    requirement, a violated requirement joins, and when Newton cannot make every
+    candidate bind the slack one with the smallest multiplier leaves. A contributor
+    whose step would cross a limit is put on it and leaves the unknowns; one on a limit
+    whose Lagrangian slope points inward is released. Table kinks stay fixed.
     """
     p = problem
     n, f, m = p.counts, p.sigma_factors, p.mean_shifts
