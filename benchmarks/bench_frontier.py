@@ -32,9 +32,11 @@ import numpy as np
 
 from allocator.economics import fallout_economics
 from allocator.frontier import frontier
-from allocator.model import AllocationSettings, Case, Contributor, CostCurve, Economics, Requirement
+from allocator.model import AllocationSettings, Case, Contributor, Economics, Requirement
 from allocator.solve import allocate, prepare
 from allocator.solve.exact import ExactAllocation
+
+from invented import random_cost  # noqa: E402  (benchmarks/ is on sys.path when run as a script)
 
 POINTS = 100
 
@@ -43,14 +45,7 @@ def invented_case(n: int = 20, *, mean_shift: bool, seed: int = 11) -> Case:
     rng = np.random.default_rng(seed)
     people = []
     for i in range(n):
-        kind = rng.integers(3)
-        if kind == 0:
-            cost = CostCurve("reciprocal", a=rng.uniform(0.1, 2), b=rng.uniform(1e-3, 1e-2))
-        elif kind == 1:
-            cost = CostCurve("reciprocal-power", a=rng.uniform(0.1, 2), b=rng.uniform(1e-5, 1e-3),
-                             k=float(rng.choice([1.5, 2.0])))
-        else:
-            cost = CostCurve("exponential", a=rng.uniform(0.1, 1), b=rng.uniform(0.5, 3), c=rng.uniform(10, 60))
+        cost = random_cost(rng)
         lo = rng.uniform(0.002, 0.01)
         people.append(Contributor(
             name=f"x{i}", nominal=rng.uniform(1, 50), tolerance=lo * 3, limits=(lo, lo * rng.uniform(5, 30)),
