@@ -21,15 +21,10 @@ COMMANDS = {
 
 class LazyGroup(click.Group):
     def list_commands(self, ctx):
-        return [name for name in COMMANDS if self._available(name)]
-
-    @staticmethod
-    def _available(name: str) -> bool:
-        module = COMMANDS[name][0]
-        return importlib.util.find_spec(module) is not None
+        return list(COMMANDS)
 
     def get_command(self, ctx, name):
-        if name not in COMMANDS or not self._available(name):
+        if name not in COMMANDS:
             return None
         module, attr = COMMANDS[name]
         return getattr(importlib.import_module(module), attr)

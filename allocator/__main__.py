@@ -1,0 +1,5 @@
+"""``python -m allocator`` runs the command line."""
+
+from .cli.main import main
+
+main()
