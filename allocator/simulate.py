@@ -766,7 +766,7 @@ def _figure(result: Verification):
         density = c.histogram_counts / (c.samples * width)
         ax.stairs(density, edges, fill=True, color="0.75", label=f"Monte Carlo ({c.samples:,} assemblies)")
         lo_x, hi_x = edges[0], edges[-1]
-        for limit, label in ((c.lower, "lower limit"), (c.upper, "upper limit")):
+        for limit, label in ((c.lower, "limits"), (c.upper, "limits" if c.lower is None else "_nolegend_")):
             if limit is not None:
                 ax.axvline(limit, color="black", linestyle="--", linewidth=1.2, label=label)
                 lo_x, hi_x = min(lo_x, limit), max(hi_x, limit)
