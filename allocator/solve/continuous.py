@@ -456,7 +456,7 @@ def refine_mean_shift(problem: AllocationProblem, limits, multipliers, t, *, max
     whose Lagrangian slope points inward is released. Table kinks stay fixed.
     """
     p = problem
-    n, f, m = p.counts, p.sigma_factors, p.mean_shifts
+    n = p.counts
     limited = [k for k, lim in enumerate(limits) if lim.lower is not None or lim.upper is not None]
     stats = p.statistics(t, limits)
     y = np.asarray(multipliers, dtype=float)

@@ -60,6 +60,7 @@ from .problem import (
     FALLOUT_RTOL,
     WORST_CASE_RTOL,
     AllocationProblem,
+    check_fix_values,
     Limits,
     mean_shift_allowance,
 )
@@ -159,25 +160,6 @@ def needs_discrete(case: Case, fix=None) -> bool:
     if case.allocation.rounding is not None:
         return True
     return any(c.is_discrete and not c.fixed and c.name not in fix for c in case.contributors)
-
-
-def _check_fix(case: Case, fix) -> dict[str, float]:
-    out = {}
-    for name, value in (fix or {}).items():
-        if name not in case.names:
-            import difflib
-
-            match = difflib.get_close_matches(name, list(case.names), n=1)
-            hint = f" (did you mean '{match[0]}'?)" if match else ""
-            raise UsageError(f"fix: unknown contributor '{name}'{hint}")
-        try:
-            value = float(value)
-        except (TypeError, ValueError):
-            raise UsageError(f"fix: {name}: tolerance must be a number (got {value!r})") from None
-        if not (math.isfinite(value) and value > 0):
-            raise UsageError(f"fix: {name}: tolerance must be > 0 (got {value:g})")
-        out[name] = value
-    return out
 
 
 # --------------------------------------------------------------------------- candidates
@@ -377,7 +359,7 @@ class DiscreteAllocation:
             raise UsageError(f"unknown model {model!r} (choose from {', '.join(MODELS)})")
         self.case = case
         self.model = model
-        self.fix = _check_fix(case, fix)
+        self.fix = check_fix_values(case, fix)
         self.grid_points = int(grid_points)
         self.gap_target = float(gap_target)
         self.time_limit = float(time_limit)

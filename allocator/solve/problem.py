@@ -803,7 +803,8 @@ def shadow_prices(model: str, req: RequirementData, lim: Limits, stats: dict, y:
 # --------------------------------------------------------------------------- prepare
 
 
-def _check_fix(case: Case, fix) -> dict[str, float]:
+def check_fix_values(case: Case, fix) -> dict[str, float]:
+    """``fix`` as name -> float, each naming a contributor and holding a finite t > 0."""
     out = {}
     for name, value in (fix or {}).items():
         if name not in case.names:
@@ -814,6 +815,15 @@ def _check_fix(case: Case, fix) -> dict[str, float]:
             raise UsageError(f"fix: {name}: tolerance must be a number (got {value!r})") from None
         if not (math.isfinite(value) and value > 0):
             raise UsageError(f"fix: {name}: tolerance must be > 0 (got {value:g})")
+        out[name] = value
+    return out
+
+
+def _check_fix(case: Case, fix) -> dict[str, float]:
+    """:func:`check_fix_values`, and a held value must lie in its cost table's range
+    (the continuous solver prices every contributor on its curve)."""
+    out = check_fix_values(case, fix)
+    for name, value in out.items():
         c = case.contributor(name)
         option = c.options()[0]
         if option.cost is not None and option.cost.curve == "table":
@@ -823,7 +833,6 @@ def _check_fix(case: Case, fix) -> dict[str, float]:
                     f"fix: {name}: tolerance {value:g} is outside its cost table's range "
                     f"[{x[0]:g}, {x[-1]:g}]"
                 )
-        out[name] = value
     return out
 
 
