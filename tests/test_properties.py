@@ -571,7 +571,7 @@ def slsqp_best(invented: Invented) -> float | None:
 
 def _log_fallout(ref: Reference, r: int, mean: float, sigma: float):
     """log F and its partial derivatives in the mean and in σ (two-tail normal fallout)."""
-    logs, d_mean, d_sigma = [], [], []
+    logs, d_mean = [], []
     if ref.lower[r] is not None:
         z = (ref.lower[r] - mean) / sigma  # F_low = Φ(z)
         logs.append(special.log_ndtr(z))
@@ -750,7 +750,7 @@ def case_text(case: Case) -> str:
         if c.cost is not None:
             cur = c.cost
             if cur.curve == "table":
-                parts = [f"curve = \"table\"", f"tolerance = {_toml_value(cur.points_tolerance)}",
+                parts = ["curve = \"table\"", f"tolerance = {_toml_value(cur.points_tolerance)}",
                          f"cost = {_toml_value(cur.points_cost)}"]
             else:
                 parts = [f'curve = "{cur.curve}"', f"a = {cur.a!r}", f"b = {cur.b!r}"]

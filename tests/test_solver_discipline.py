@@ -27,7 +27,7 @@ from allocator.model import AllocationSettings, Case, Contributor, CostCurve, Re
 from allocator.solve import allocate
 from allocator.solve import continuous
 
-from test_properties import Invented, Reference, case_text, rtol_for
+from test_properties import Reference, case_text, rtol_for
 
 MODELS = ("worst-case", "rss", "mean-shift")
 REAL_SOLVE = cp.Problem.solve
