@@ -214,19 +214,14 @@ def test_toml_built_to_exhaust_the_parser_is_one_line(tmp_path, text, fragment):
 # --------------------------------------------------------------------------- size limits
 
 
-def test_a_100_mb_case_is_refused_before_it_is_read(tmp_path, monkeypatch):
-    """A sparse 100 MB file: refused from its size alone, in bounded memory."""
-    path = tmp_path / "huge.toml"
-    with open(path, "wb") as fh:
-        fh.write(b'title = "huge"\n')
-        fh.truncate(100 * 2**20)  # sparse: nothing is written to disk
-    assert path.stat().st_size == 100 * 2**20
-
+def _load_refused_unopened(monkeypatch, path, *, never_open):
+    """load_case(path) must raise CaseError without opening ``never_open``; returns the
+    error and the peak traced memory [bytes] while refusing."""
     real_open = open
 
     def guarded_open(file, mode="r", *args, **kwargs):
-        if Path(file) == path:
-            raise AssertionError("the oversized case file was opened")
+        if Path(file) == never_open:
+            raise AssertionError(f"the oversized file {never_open.name} was opened")
         return real_open(file, mode, *args, **kwargs)
 
     monkeypatch.setattr("builtins.open", guarded_open)
@@ -237,9 +232,21 @@ def test_a_100_mb_case_is_refused_before_it_is_read(tmp_path, monkeypatch):
         peak = tracemalloc.get_traced_memory()[1]
     finally:
         tracemalloc.stop()
-    assert str(info.value) == f"{path}: file is larger than 16 MB (100.0 MB); refusing to read it"
+        monkeypatch.undo()
+    return info.value, peak
+
+
+def test_a_100_mb_case_is_refused_before_it_is_read(tmp_path, monkeypatch):
+    """A sparse 100 MB file: refused from its size alone, in bounded memory."""
+    path = tmp_path / "huge.toml"
+    with open(path, "wb") as fh:
+        fh.write(b'title = "huge"\n')
+        fh.truncate(100 * 2**20)  # sparse: nothing is written to disk
+    assert path.stat().st_size == 100 * 2**20
+
+    error, peak = _load_refused_unopened(monkeypatch, path, never_open=path)
+    assert str(error) == f"{path}: file is larger than 16 MB (100.0 MB); refusing to read it"
     assert peak < 1 * 2**20, f"peak {peak / 2**20:.1f} MB while refusing"
-    monkeypatch.undo()
     for command in COMMANDS:
         assert_one_line_exit_2(run_cli([command, str(path)]), "larger than 16 MB")
 
@@ -390,24 +397,9 @@ def test_csv_table_over_16_mb_is_refused_before_it_is_read(tmp_path, monkeypatch
     with open(table, "wb") as fh:
         fh.write(b"tolerance,cost\n")
         fh.truncate(40 * 2**20)  # sparse
-    real_open = open
-
-    def guarded_open(file, mode="r", *args, **kwargs):
-        if Path(file) == table:
-            raise AssertionError("the oversized table was opened")
-        return real_open(file, mode, *args, **kwargs)
-
-    monkeypatch.setattr("builtins.open", guarded_open)
-    tracemalloc.start()
-    try:
-        with pytest.raises(CaseError) as info:
-            load_case(path)
-        peak = tracemalloc.get_traced_memory()[1]
-    finally:
-        tracemalloc.stop()
-    assert "contributor[2] (y).cost.file: costs.csv is larger than 16 MB" in str(info.value)
+    error, peak = _load_refused_unopened(monkeypatch, path, never_open=table)
+    assert "contributor[2] (y).cost.file: costs.csv is larger than 16 MB" in str(error)
     assert peak < 1 * 2**20
-    monkeypatch.undo()
     for command in COMMANDS:
         assert_one_line_exit_2(run_cli([command, str(path)]), "costs.csv is larger than 16 MB")
 
