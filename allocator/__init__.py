@@ -19,7 +19,7 @@ _LAZY = {
     "loads_case": ("allocator.case", "loads_case"),
     "analyze": ("allocator.analysis", "analyze"),
     "allocate": ("allocator.solve", "allocate"),
-    "frontier": ("allocator.frontier", "frontier"),
+    "frontier": ("allocator.sweep", "frontier"),
     "verify": ("allocator.simulate", "verify"),
     "CaseError": ("allocator.errors", "CaseError"),
 }

@@ -19,7 +19,7 @@ only as far as that prediction does: stable, capable, centred processes.
 
 Pure functions (:func:`scrap_cost_per_assembly`, :func:`cost_per_assembly`,
 :func:`annual_cost`, :func:`minimise_log`) carry the arithmetic;
-:func:`fallout_economics` runs the allocations through :class:`allocator.frontier.LimitSweep`
+:func:`fallout_economics` runs the allocations through :class:`allocator.sweep.LimitSweep`
 (one solver per model, re-solved with new targets, never rebuilt).
 """
 
@@ -425,11 +425,11 @@ def fallout_economics(
     Minimises ``K(p) = M(p) + s·p·1e-6`` (:func:`cost_per_assembly`) over ``ln p`` in
     ``bounds`` with :func:`minimise_log` (a scan of 6 points per decade, 3 where every
     point needs a solver call of its own, refined by bounded Brent). ``M(p)`` is the least-cost allocation with the requirement's target
-    set to ``p`` (:class:`allocator.frontier.LimitSweep`). At an interior optimum
+    set to ``p`` (:class:`allocator.sweep.LimitSweep`). At an interior optimum
     ``dM/dp = −s·1e-6``; both the allocation's shadow price and a central finite
     difference of ``M`` are reported so that this can be checked.
     """
-    from .frontier import LimitSweep, _resolve_models, _resolve_requirement
+    from .sweep import LimitSweep, _resolve_models, _resolve_requirement
 
     req = _resolve_requirement(case, requirement)
     scrap = case.economics.scrap_cost if scrap_cost is None else scrap_cost

@@ -13,7 +13,7 @@ when a figure is drawn.
 - :func:`save` writes them by the file's extension through a temporary file and an
   atomic rename, refusing to overwrite protected paths (the input case);
 - :func:`frontier_figure` and :func:`economics_figure` draw the results of
-  :mod:`allocator.frontier` and :mod:`allocator.economics`.
+  :mod:`allocator.sweep` and :mod:`allocator.economics`.
 """
 
 from __future__ import annotations
@@ -207,7 +207,7 @@ def frontier_figure(frontier):
 
     Parameters
     ----------
-    frontier : allocator.frontier.Frontier
+    frontier : allocator.sweep.Frontier
 
     Returns
     -------

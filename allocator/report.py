@@ -1,7 +1,7 @@
 """A self-contained HTML report for design reviews and supplier talks.
 
 :func:`build_report` runs the library once — :func:`allocator.analysis.analyze`,
-:func:`allocator.solve.allocate` per model, :func:`allocator.frontier.frontier`,
+:func:`allocator.solve.allocate` per model, :func:`allocator.sweep.frontier`,
 :func:`allocator.simulate.verify` and :func:`allocator.supplier.supplier_sheet` — and keeps
 every result in a :class:`Report`. :meth:`Report.to_html` only formats those results: it
 computes no number of its own, so the report and the library can never disagree.
@@ -489,7 +489,7 @@ def _run_frontier(case, models, points):
     span) is a finding to show in section 4, not a reason to withhold the whole report.
     """
     from .errors import AllocatorError
-    from .frontier import frontier
+    from .sweep import frontier
 
     kwargs = {"models": models}
     if points is not None:
@@ -1002,7 +1002,7 @@ def _section_frontier(report: Report, svg: str | None) -> str:
         f"<strong>{_e(front.requirement)}</strong> moves from {_e(fmt_number(front.values[0], 6, strip=True))} to "
         f"{_e(fmt_number(front.values[-1], 6, strip=True))} "
         f"({len(front.values)} points; every point a complete allocation, every other limit as in the case). "
-        "Computed by <code>allocator.frontier.frontier</code>, drawn by <code>allocator.plots.frontier_figure</code>."
+        "Computed by <code>allocator.sweep.frontier</code>, drawn by <code>allocator.plots.frontier_figure</code>."
         "</p>"
     )
     guide = (

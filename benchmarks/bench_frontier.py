@@ -31,7 +31,7 @@ from dataclasses import replace
 import numpy as np
 
 from allocator.economics import fallout_economics
-from allocator.frontier import frontier
+from allocator.sweep import frontier
 from allocator.model import AllocationSettings, Case, Contributor, Economics, Requirement
 from allocator.solve import allocate, prepare
 from allocator.solve.exact import ExactAllocation

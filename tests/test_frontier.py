@@ -44,7 +44,7 @@ from allocator.economics import (
     scrap_cost_per_assembly,
 )
 from allocator.errors import UsageError
-from allocator.frontier import LimitSweep, frontier
+from allocator.sweep import LimitSweep, frontier
 from allocator.model import CostCurve, Economics, FrontierSettings
 from allocator.plots import render_economics_plot, render_frontier_plot
 from allocator.solve import allocate

@@ -75,7 +75,7 @@ def frontier(case_file, requirement, vary, span, points, models, plot, economics
     Exit code 1 when no value can be met by any model, or a solver gave no verified
     optimum; 2 for bad input.
     """
-    from ..frontier import frontier as run_frontier
+    from ..sweep import frontier as run_frontier
 
     if as_json and as_csv:
         raise UsageError("--json and --csv cannot be used together")
