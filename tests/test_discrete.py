@@ -203,6 +203,37 @@ def test_gap_with_sixty_grid_points_and_no_refinement():
     assert 0.0 <= result.gap < 1e-3
 
 
+@pytest.mark.parametrize("model", ["worst-case", "rss", "mean-shift"])
+def test_one_solver_re_solved_in_any_order_matches_fresh_solvers_and_enumeration(model):
+    # A sweep re-solves one object: it starts from the last choice (an incumbent that may
+    # not even be feasible after a tightening), a grid coarse away from the last optimum
+    # and carried-over cuts. Each answer must equal a fresh solver's (1e-9) and lie within
+    # its certified gap of the best process combination found by enumerating every
+    # combination with the continuous solver.
+    case = _process_case(mean_shift=0.3 if model == "mean-shift" else 0.0)
+    names = {c.name: [p.name for p in c.processes] for c in case.contributors if c.processes}
+    solver = DiscreteAllocation(case, model)
+    # loose, tight, loose again, tighter, impossible, back to loose
+    for lower, upper in [(2.2, 2.4), (2.25, 2.35), (2.2, 2.4), (2.27, 2.33), (2.299, 2.301), (2.22, 2.38)]:
+        overrides = {"clearance": {"lower": lower, "upper": upper}}
+        reused = solver.solve(overrides)
+        fresh = DiscreteAllocation(case, model).solve(overrides)
+        assert reused.status == fresh.status, (lower, upper, reused.message)
+        if fresh.status != "optimal":
+            assert reused.total_cost is None
+            continue
+        assert reused.total_cost == pytest.approx(fresh.total_cost, rel=1e-9)
+        assert reused.gap <= 1e-5
+        limited = replace(case, requirements=(replace(case.requirements[0], lower=lower, upper=upper),))
+        best = min(
+            (a.total_cost for combo in itertools.product(*names.values())
+             if (a := allocate(_with_processes(limited, dict(zip(names, combo))), model)).success),
+            default=np.inf,
+        )
+        assert reused.lower_bound <= best * (1 + 1e-9)
+        assert best * (1 - 1e-7) <= reused.total_cost <= best * (1 + reused.gap + 1e-8)
+
+
 def test_held_contributor_with_processes_still_chooses_its_process():
     # the same tolerance made by a cheap process (cp 1) or a dearer one (cp 2): only the
     # capable one meets the rss target, so the choice matters although t is held

@@ -30,8 +30,15 @@ solver (:mod:`.continuous` or :mod:`.exact`) polishes the tolerances with those 
 held. A second MILP over grid *cells* gives a proven lower bound: in a cell the tolerance
 is a continuous column and the cost is bounded below by a tangent (convex curves) or is
 exact (tables, linear between their breakpoints); the variance uses a tangent of t² from
-below. Cells the bound picks are split until the relative gap is below
-:data:`GAP_TARGET` or :data:`MAX_REFINE` rounds have run. The gap is reported.
+below. The cells around the polished incumbent are split before the first bound, whose
+MILP gets the incumbent's cost as a pruning cutoff; cells the bound picks are split until
+the relative gap is below :data:`GAP_TARGET` or :data:`MAX_REFINE` rounds have run. The gap
+is reported.
+
+Re-solved with other limits (a frontier's points), a :class:`DiscreteAllocation` reuses
+what stays valid: its last process choice as the first incumbent, a grid coarse away from
+its last optimum, mean-shift tangent cuts re-derived for the new limits, the polish
+solvers. Every answer is still re-checked and its lower bound proven as above.
 
 References: Chase, K. W., Greenwood, W. H., Loosli, B. G. and Hauglund, L. F. (1990), Least
 cost tolerance allocation for mechanical assemblies with automated process selection,
@@ -88,6 +95,14 @@ CHECK_RTOL = 1e-9  # a choice meets a requirement within this (relative)
 TANGENT_MAX_FALLOUT = 0.49
 TIME_LIMIT = 600.0  # seconds per MILP solve
 OBJECTIVE_SCALE = 1e3  # HiGHS's absolute tolerances are tuned for objectives of this size
+CARRIED_CUTS = 24  # mean-shift tangent cuts a solve hands to the next (per requirement)
+SWEEP_STRIDE = 6  # with a previous optimum, keep every 6th point of the plain grid ...
+SWEEP_SPAN = 1.25  # ... and the plain grid within this factor of the last tolerance
+KEPT_POLISHERS = 64  # conic solvers kept per process choice for the polish
+CUTOFF_SLACK = 1e-6  # a pruning cutoff sits this far (relative) above the known cost
+# HiGHS options used with a cutoff (emptied, and no cutoff given, if the installed HiGHS
+# lacks one of them)
+_PRUNING_OPTIONS = {"mip_heuristic_run_rins": False, "mip_heuristic_run_rens": False}
 SOLVER_NAME = "highs"
 
 _SLACK = 1e-9
@@ -293,8 +308,13 @@ def _row_norm(coef, rhs) -> float:
     return float(rhs) if rhs > 0 else max(float(np.max(np.abs(coef))), 1e-300)
 
 
-def _run_milp(objective, rows: _Rows, time_limit: float, integrality, upper):
-    """One HiGHS solve of ``min c·x``, ``0 ≤ x ≤ upper``, with ``rows``; scipy's result."""
+def _run_milp(objective, rows: _Rows, time_limit: float, integrality, upper, cutoff=None):
+    """One HiGHS solve of ``min c·x``, ``0 ≤ x ≤ upper``, with ``rows``; scipy's result.
+
+    ``cutoff`` (in the units of ``c·x``) is an objective value known to be at least the
+    optimum (the cost of a verified solution): HiGHS then prunes every branch whose bound
+    reaches it instead of searching for solutions there. It never changes the optimum.
+    """
     from scipy import optimize
 
     a, lo, hi = rows.matrix()
@@ -304,16 +324,29 @@ def _run_milp(objective, rows: _Rows, time_limit: float, integrality, upper):
         "time_limit": float(time_limit),
         "presolve": True,
     }
+    pruning = cutoff is not None and math.isfinite(cutoff) and _PRUNING_OPTIONS
+    if pruning:
+        # with a cutoff in hand the large-neighbourhood searches for better solutions
+        # (RINS, RENS) cost more than they save; the optimum and the proof are unchanged
+        options.update(_PRUNING_OPTIONS, objective_bound=float(cutoff))
     with warnings.catch_warnings(), _quiet_stdout():
         # scipy passes HiGHS options it does not list itself through verbatim, with a warning
         warnings.filterwarnings("ignore", message="Unrecognized options", category=RuntimeWarning)
-        return optimize.milp(
-            objective,
-            integrality=integrality,
-            bounds=optimize.Bounds(np.zeros(objective.size), upper),
-            constraints=optimize.LinearConstraint(a, lo, hi),
-            options=options,
-        )
+        try:
+            return optimize.milp(
+                objective,
+                integrality=integrality,
+                bounds=optimize.Bounds(np.zeros(objective.size), upper),
+                constraints=optimize.LinearConstraint(a, lo, hi),
+                options=options,
+            )
+        except AttributeError:
+            # a HiGHS (bundled with an older scipy) without one of the pruning options:
+            # solve without them from now on
+            if not pruning:
+                raise
+            _PRUNING_OPTIONS.clear()
+    return _run_milp(objective, rows, time_limit, integrality, upper)
 
 
 # --------------------------------------------------------------------------- the solver
@@ -374,6 +407,15 @@ class DiscreteAllocation:
             np.array([r.sensitivity for r in self.requirements], dtype=float)
             if self.requirements else np.zeros((0, len(case.contributors)))
         )
+        # work that stays valid from one solve to the next (a sweep re-solves this object
+        # with other limits): mean-shift tangent cuts as (u, δ*), to be re-derived for the
+        # new limits; the conic solvers of the polish per process choice (they take the
+        # limits as overrides); the solver of the unrounded problem
+        self._tangent_points = {}
+        self._polishers = {}
+        self._unrounded = None
+        self._last_choice = None  # (options, held tolerances) of the last polished optimum
+        self._last_t = None  # its tolerances
 
     # ------------------------------------------------------------------ options
 
@@ -511,7 +553,8 @@ class DiscreteAllocation:
 
     # ------------------------------------------------------------------ MILP with cuts
 
-    def _solve_milp(self, cand: _Candidates, limits: list[Limits], restricted: bool = False) -> _MilpOutcome:
+    def _solve_milp(self, cand: _Candidates, limits: list[Limits], restricted: bool = False,
+                    cutoff: float | None = None) -> _MilpOutcome:
         """Least-cost choice among ``cand``, exact for points (lazy cuts for mean shift).
 
         Columns: a binary ``x_c`` per candidate; for every lower-bound cell a continuous
@@ -524,6 +567,10 @@ class DiscreteAllocation:
         ones (``V ≤ g(δ_(k+1))²``) and solves once: every answer then meets the
         requirement, but the optimum may be missed by a little (used to pick processes
         before the conic polish, where the lower bound accounts for it).
+
+        ``cutoff`` [currency] is a cost known to be at least this MILP's optimum (a verified
+        solution's cost, for the lower-bound MILP, whose optimum is at most the true one):
+        HiGHS prunes with it. A solve that finds nothing below it is repeated without.
         """
         size = cand.size
         owner = cand.owner
@@ -626,8 +673,16 @@ class DiscreteAllocation:
                                           restricted=restricted)
             z = np.concatenate(extra_cols) if extra_cols else np.zeros(0)
             rows.size = size + n_tau + z.size
-            res = _run_milp(np.concatenate([objective, np.zeros(z.size)]), rows, self.time_limit,
-                            np.concatenate([integrality, np.ones(z.size)]), np.ones(rows.size))
+            milp_args = (np.concatenate([objective, np.zeros(z.size)]), rows, self.time_limit,
+                         np.concatenate([integrality, np.ones(z.size)]), np.ones(rows.size))
+            limit = None
+            if cutoff is not None and math.isfinite(cutoff):
+                limit = (cutoff - constant) * scale
+                limit += CUTOFF_SLACK * max(abs(limit), OBJECTIVE_SCALE)
+            res = _run_milp(*milp_args, cutoff=limit)
+            if limit is not None and (res.status == 2 or res.x is None):
+                # nothing below the cutoff (or the cutoff confused HiGHS): the plain solve decides
+                res = _run_milp(*milp_args)
             solves += 1
             nodes += int(getattr(res, "mip_node_count", 0) or 0)
             if res.status == 2:
@@ -772,12 +827,22 @@ class DiscreteAllocation:
                 self._breaks[key] = np.sort(np.append(breaks, delta))
                 added += 1
             if sigma > 0 and lim.fallout <= TANGENT_MAX_FALLOUT:
-                point = min(delta, bound * (1 - 1e-12))
-                g, slope, _ = mean_shift_allowance(req.nominal, point, lim)
-                slope = min(slope, 0.0)
-                self._tangents.setdefault(r, []).append((sigma_i / sigma, g - slope * point, slope))
+                self._add_tangent(r, sigma_i / sigma, min(delta, bound * (1 - 1e-12)), lim)
                 added += 1
         return added
+
+    def _add_tangent(self, r, u, point, lim):
+        """The mean-shift tangent cut of requirement ``r`` at ``δ* = point`` for ``lim``.
+
+        ``u·σ − g'(δ*)·δ ≤ g(δ*) − g'(δ*)·δ*`` holds for every choice that meets the
+        requirement, for any unit vector ``u ≥ 0`` and any δ* (see :meth:`_cuts`): the
+        pair (u, δ*) is kept so that the next solve re-derives the cut for its own limits.
+        """
+        req = self.requirements[r]
+        g, slope, _ = mean_shift_allowance(req.nominal, point, lim)
+        slope = min(slope, 0.0)
+        self._tangents.setdefault(r, []).append((u, g - slope * point, slope))
+        self._tangent_points.setdefault(r, []).append((u, point))
 
     # ------------------------------------------------------------------ results
 
@@ -871,8 +936,10 @@ class DiscreteAllocation:
         for opts in self.options:  # refinement is per solve: start from the plain grid
             for o in opts:
                 if o.kind == "continuous":
-                    o.grid = o.base_grid
+                    o.grid = o.base_grid if self._last_t is None else self._sweep_grid(o)
+        carried = self._tangent_points
         self._tangents = {}  # requirement -> [(u, rhs, g'(δ))]: mean-shift cuts for these limits
+        self._tangent_points = {}  # requirement -> [(u, δ*)] of those cuts
         self._breaks = {}  # (requirement, relaxed) -> δ breakpoints of the interval rows
         self._seeds = {}  # requirement -> δ of good solutions (breakpoints of the bound)
         if self.model == "mean-shift":
@@ -884,12 +951,58 @@ class DiscreteAllocation:
                     )
         reason = self.reference.diagnose(limits)
         if reason:
+            self._tangent_points = carried  # nothing learnt here: keep the last solve's cuts
             return self._finish_rounding(self._infeasible(limits, reason), overrides)
+        self._carry_cuts(carried, limits)
         if self.has_continuous:
             alloc = self._solve_with_polish(limits, overrides)
         else:
             alloc = self._solve_points(limits)
         return self._finish_rounding(alloc, overrides)
+
+    def _sweep_grid(self, o: _Option) -> np.ndarray:
+        """Starting grid of a continuous option when a previous solve's optimum is known.
+
+        Every :data:`SWEEP_STRIDE`-th point of the plain grid, its ends and a table's
+        breakpoints, and the plain grid's points within a factor :data:`SWEEP_SPAN` of the
+        previous optimum's tolerance where that option was chosen: the lower bound is
+        valid on any grid that covers the range (with a table's breakpoints on it); fine
+        cells are only needed where its optimum lies, near the last one in a sweep. A
+        coarse cell the bound picks is split like any other.
+        """
+        base = o.base_grid
+        keep = np.zeros(base.size, dtype=bool)
+        keep[::SWEEP_STRIDE] = True
+        keep[[0, -1]] = True
+        if o.curve is not None and o.curve.curve == "table":
+            keep |= np.isin(base, np.asarray(o.curve.points_tolerance, dtype=float))
+        chosen, _ = self._last_choice
+        t = self._last_t[o.owner]
+        if chosen[o.owner] is o and np.isfinite(t):
+            keep |= (base >= t / SWEEP_SPAN) & (base <= t * SWEEP_SPAN)
+        return base[keep]
+
+    def _carry_cuts(self, carried, limits):
+        """Re-derive the last solve's mean-shift tangent cuts for these limits.
+
+        A cut is valid for any limits once g(δ*) and g'(δ*) are taken at the new limits
+        (see :meth:`_add_tangent`); started with them, the MILPs of a sweep's next point
+        need fewer rounds of cuts. The latest :data:`CARRIED_CUTS` per requirement are
+        kept, each only where δ* leaves room inside the new limits.
+        """
+        if self.model != "mean-shift":
+            return
+        for r, points in carried.items():
+            req, lim = self.requirements[r], limits[r]
+            if lim.lower is None and lim.upper is None or lim.fallout > TANGENT_MAX_FALLOUT:
+                continue
+            room = min(
+                math.inf if lim.lower is None else req.nominal - lim.lower,
+                math.inf if lim.upper is None else lim.upper - req.nominal,
+            )
+            for u, point in points[-CARRIED_CUTS:]:
+                if 0 <= point < room * (1 - 1e-12):
+                    self._add_tangent(r, u, point, lim)
 
     def _solve_points(self, limits):
         """Every option is a set of points: one exact MILP."""
@@ -939,63 +1052,105 @@ class DiscreteAllocation:
         for c, o, j in zip(self.case.contributors, chosen, choice):
             if o.kind == "points" and not c.fixed:
                 held[c.name] = float(cand.value[j])
+        return self._polish_held(chosen, held, overrides, cache)
+
+    def _polish_held(self, chosen, held, overrides, cache):
+        """Continuous optimum with the options ``chosen`` and the tolerances ``held`` held."""
         key = tuple((o.index, held.get(c.name)) for c, o in zip(self.case.contributors, chosen))
         if key in cache:
             return cache[key]
-        from .exact import ExactAllocation, applicable
-        from .continuous import CompiledAllocation
-        from .problem import prepare
-
-        resolved = self._resolved_case(chosen)
         try:
-            problem = prepare(resolved, self.model, held)
-            solver = ExactAllocation(problem) if applicable(problem) else CompiledAllocation.from_problem(problem)
-            alloc = solver.solve(overrides)
+            solver = self._polisher(key, chosen, held)
+            alloc = None if solver is None else solver.solve(overrides)
         except CaseError:
             alloc = None  # e.g. a table that is not convex: keep the grid point
-        cache[key] = (chosen, alloc)
+        cache[key] = (chosen, alloc, held)
         return cache[key]
 
+    def _polisher(self, key, chosen, held):
+        """The conic solver with the processes of ``chosen`` and ``held`` values held.
+
+        Built once per process choice and kept (the latest :data:`KEPT_POLISHERS`): it
+        takes the limits as overrides, so the points of a sweep share it. None where the
+        choice has no convex form (e.g. a table that is not convex).
+        """
+        if key in self._polishers:
+            self._polishers[key] = self._polishers.pop(key)  # most recently used last
+            return self._polishers[key]
+        from .continuous import CompiledAllocation
+        from .exact import ExactAllocation, applicable
+        from .problem import prepare
+
+        try:
+            problem = prepare(self._resolved_case(chosen), self.model, held)
+            solver = ExactAllocation(problem) if applicable(problem) else CompiledAllocation.from_problem(problem)
+        except CaseError:
+            solver = None
+        self._polishers[key] = solver
+        while len(self._polishers) > KEPT_POLISHERS:
+            self._polishers.pop(next(iter(self._polishers)))
+        return solver
+
     def _solve_with_polish(self, limits, overrides):
-        """Grid MILP, conic polish with the processes held, refined lower bound."""
-        points = self.candidates()
-        primal = self._solve_milp(points, limits, restricted=True)
-        if primal.status == "infeasible" and self.model == "mean-shift":
-            primal = self._solve_milp(points, limits)  # the sufficient rows may be too strict
-        if primal.status == "infeasible":
-            return self._infeasible(limits, self._milp_infeasible_message())
-        if primal.choice is None:
-            return self._failed(limits, primal.message)
-        chosen = self._option_of(points, primal.choice)
-        best = (primal.objective, chosen, points.value[primal.choice], None, "grid point")
+        """Grid MILP, conic polish with the processes held, refined lower bound.
+
+        When the previous solve (another point of a sweep) left a process choice, its
+        polish at these limits is tried first: a verified solution is an incumbent as good
+        as the grid MILP's as a rule, and the grid MILP is skipped. Only the lower bound
+        certifies the answer either way.
+        """
         cache = {}
         polish_solver = ""
+        best = None
+        solves = 0
 
-        def consider(cand, choice):
+        def consider(polished):
             nonlocal best, polish_solver
-            opts, alloc = self._polish(cand, choice, overrides, cache)
-            if alloc is not None and alloc.success and alloc.total_cost < best[0]:
+            opts, alloc, held = polished
+            if alloc is not None and alloc.success and (best is None or alloc.total_cost < best[0]):
                 best = (alloc.total_cost, opts, alloc.allocated_array(), alloc.requirements, "polished")
                 polish_solver = alloc.solver
+                self._last_choice = (opts, held)
+                self._last_t = best[2]
                 self._seed_lower_bound(opts, best[2], limits)
 
-        consider(points, primal.choice)
-        bound, solves, rounds = None, primal.solves, 0
+        if self._last_choice is not None:
+            consider(self._polish_held(*self._last_choice, overrides, cache))
+        if best is None:
+            points = self.candidates()
+            primal = self._solve_milp(points, limits, restricted=True)
+            if primal.status == "infeasible" and self.model == "mean-shift":
+                primal = self._solve_milp(points, limits)  # the sufficient rows may be too strict
+            if primal.status == "infeasible":
+                return self._infeasible(limits, self._milp_infeasible_message())
+            if primal.choice is None:
+                return self._failed(limits, primal.message)
+            chosen = self._option_of(points, primal.choice)
+            best = (primal.objective, chosen, points.value[primal.choice], None, "grid point")
+            solves = primal.solves
+            consider(self._polish(points, primal.choice, overrides, cache))
+        # the optimum is most likely near the incumbent: split its cells before the first
+        # lower bound instead of after it (the bound is valid on any grid)
+        self._refine_near(best[1], best[2])
+        bound, rounds = None, 0
         lower_note = ""
         for rounds in range(1, MAX_REFINE + 2):
             cells = self.candidates(cells=True)
-            low = self._solve_milp(cells, limits)
+            low = self._solve_milp(cells, limits, cutoff=best[0])
             solves += low.solves
             if low.bound is not None:
                 bound = low.bound if bound is None else max(bound, low.bound)
             if low.choice is None:
                 lower_note = f"; lower bound: {low.message}"
                 break
-            consider(cells, low.choice)
+            incumbent = best
+            consider(self._polish(cells, low.choice, overrides, cache))
             gap = self._gap(best[0], bound)
             if gap is not None and gap <= self.gap_target or rounds > MAX_REFINE:
                 break
             self._refine(cells, low.choice)
+            if best is not incumbent:  # a new incumbent: split the cells around it too
+                self._refine_near(best[1], best[2])
         gap = self._gap(best[0], bound)
         cost, chosen, t, requirements, how = best
         message = (
@@ -1040,9 +1195,22 @@ class DiscreteAllocation:
                 math.inf if lim.upper is None else lim.upper - req.nominal,
             )
             if sigma > 0 and delta < room and lim.fallout <= TANGENT_MAX_FALLOUT:
-                g, slope, _ = mean_shift_allowance(req.nominal, delta, lim)
-                slope = min(slope, 0.0)
-                self._tangents.setdefault(r, []).append((sigma_i / sigma, g - slope * delta, slope))
+                self._add_tangent(r, sigma_i / sigma, delta, lim)
+
+    def _refine_near(self, chosen, t):
+        """Split the grid cells around each tolerance ``t`` of a continuous chosen option.
+
+        The cell holding ``t_i`` and its two neighbours become :data:`REFINE_SPLIT` parts
+        each: where the lower bound's optimum lies when the incumbent is (nearly) optimal.
+        """
+        for o, ti in zip(chosen, np.asarray(t, dtype=float)):
+            if o.kind != "continuous" or not np.isfinite(ti):
+                continue
+            grid = o.grid
+            k = int(np.clip(np.searchsorted(grid, ti) - 1, 0, grid.size - 2))
+            lo, hi = max(k - 1, 0), min(k + 2, grid.size - 1)
+            inner = [np.geomspace(grid[j], grid[j + 1], REFINE_SPLIT + 1)[1:-1] for j in range(lo, hi)]
+            o.grid = np.union1d(grid, np.concatenate(inner))
 
     def _refine(self, cells: _Candidates, choice):
         """Split the grid cells the lower bound picked into :data:`REFINE_SPLIT` parts."""
@@ -1064,7 +1232,9 @@ class DiscreteAllocation:
         alloc.rounding_cost = None
         if self.rounding is None:
             return alloc
-        unrounded = self.unrounded_solver().solve(overrides)
+        if self._unrounded is None:
+            self._unrounded = self.unrounded_solver()
+        unrounded = self._unrounded.solve(overrides)
         alloc.unrounded = unrounded
         if unrounded.total_cost is not None:
             alloc.unrounded_cost = unrounded.total_cost
