@@ -33,6 +33,7 @@ import numpy as np
 
 from .errors import UsageError
 from .model import Case
+from .progress import progress_bar
 
 __all__ = [
     "scrap_cost_per_assembly",
@@ -48,6 +49,7 @@ __all__ = [
 DEFAULT_BOUNDS = (1e-3, 1e5)  # ppm: 1 in a billion to 10 %
 SCAN_PER_DECADE = 6  # where the whole scan is one batched dual solve
 SCAN_PER_DECADE_SLOW = 3  # where every scan point is a solver call of its own
+REFINE_ESTIMATE = 20  # allocations after the scan, per model (for the progress estimate)
 STATISTICAL = ("rss", "mean-shift")
 PPM = 1e-6
 
@@ -392,6 +394,7 @@ def fallout_economics(
     scrap_cost: float | None = None,
     volume: float | None = None,
     bounds=DEFAULT_BOUNDS,
+    progress: bool = False,
 ) -> FalloutEconomics:
     """The fallout target that minimises manufacturing plus scrap cost per assembly.
 
@@ -410,6 +413,10 @@ def fallout_economics(
         Assemblies per year; default ``[economics].volume``.
     bounds : (float, float)
         Search interval of the target [ppm], default 1e-3 .. 1e5.
+    progress : bool
+        Show a progress bar on stderr, with an estimate of the time left, updated after
+        every allocation (the scan's points first, then the refinement's, whose number is
+        estimated at :data:`REFINE_ESTIMATE` per model and grows when there are more).
 
     Returns
     -------
@@ -458,15 +465,29 @@ def fallout_economics(
             raise UsageError("the fallout economics need a statistical model (rss or mean-shift)")
 
     decades = math.log10(hi / lo)
-    results = []
+    sweeps = []
     for model in chosen:
         solver, note = _economics_solver(case, model)
         if note and note not in notes:
             notes.append(note)
         sweep = LimitSweep(case, model, req.name, "fallout_ppm", solver=solver)
         density = SCAN_PER_DECADE if sweep.batch is not None else SCAN_PER_DECADE_SLOW
-        grid = np.geomspace(lo, hi, max(int(round(decades * density)) + 1, 3))
-        results.append(_optimise(sweep, grid, scrap, volume, float(req.fallout_ppm), (lo, hi)))
+        sweeps.append((sweep, np.geomspace(lo, hi, max(int(round(decades * density)) + 1, 3))))
+    planned = sum(grid.size + REFINE_ESTIMATE for _, grid in sweeps)
+    bar = progress_bar(planned, desc="fallout economics", unit="allocation", enabled=progress,
+                       slow=any(sweep.slow for sweep, _ in sweeps))
+    results = []
+    try:
+        planned = 0
+        for sweep, grid in sweeps:
+            bar.describe(sweep.model)
+            results.append(_optimise(sweep, grid, scrap, volume, float(req.fallout_ppm), (lo, hi), bar))
+            planned += grid.size + REFINE_ESTIMATE
+            if bar.done < planned:  # fewer refinement steps than estimated: drop the rest
+                bar.grow(bar.done - planned)
+                planned = bar.done
+    finally:
+        bar.close()
 
     statuses = [r.status for r in results]
     if all(s == "infeasible" for s in statuses):
@@ -496,18 +517,23 @@ def fallout_economics(
     )
 
 
-def _optimise(sweep, grid, scrap, volume, current_ppm, bounds) -> FalloutOptimum:
-    """One model: scan, refine, check stationarity, compare with the current target."""
+def _optimise(sweep, grid, scrap, volume, current_ppm, bounds, bar=None) -> FalloutOptimum:
+    """One model: scan, refine, check stationarity, compare with the current target.
+
+    ``bar`` (see :func:`allocator.progress.progress_bar`) is told of every allocation.
+    """
     expected = -scrap * PPM
     cache: dict[float, object] = {}
+    tick = bar.update if bar is not None else (lambda k=1: None)
 
     def allocation(p: float):
         if p not in cache:
             cache[p] = sweep.solve(p)
+            tick(1)
         return cache[p]
 
     # the scan reuses the sweep machinery (batched where the exact dual applies)
-    points = sweep.sweep(grid)
+    points = sweep.sweep(grid, tick)
     manufacturing = np.array([np.nan if pt.total_cost is None else pt.total_cost for pt in points])
     failed = [pt.message for pt in points if pt.status == "failed"]
 

@@ -360,6 +360,7 @@ def build_report(
     frontier_points: int | None = None,
     include_frontier: bool = True,
     created: datetime | None = None,
+    progress: bool = False,
 ) -> Report:
     """Run the library for a report on ``case``.
 
@@ -379,6 +380,9 @@ def build_report(
         allocation, which takes a while for cases with process choices.
     created : datetime, optional
         Time stamp to print (default: now, UTC).
+    progress : bool
+        Show progress bars on stderr for the frontier and the verification (the command
+        line passes ``sys.stderr.isatty()``).
 
     Returns
     -------
@@ -401,15 +405,16 @@ def build_report(
     unrounded = _unrounded_allocations(case, allocations)
 
     if include_frontier:
-        frontier, frontier_message = _run_frontier(case, models, frontier_points)
+        frontier, frontier_message = _run_frontier(case, models, frontier_points, progress)
     else:
         frontier, frontier_message = None, "left out of this report on request"
 
     if rec_alloc is not None:
-        verification = verify(case, dict(rec_alloc.tolerances), samples=samples, seed=seed)
+        verification = verify(case, dict(rec_alloc.tolerances), samples=samples, seed=seed,
+                              progress=progress)
         basis = "allocation"
     else:
-        verification = verify(case, None, samples=samples, seed=seed)
+        verification = verify(case, None, samples=samples, seed=seed, progress=progress)
         basis = "current"
 
     supplier = supplier_sheet(case, recommended, rec_alloc) if rec_alloc is not None else None
@@ -482,7 +487,7 @@ def _unrounded_allocations(case, allocations) -> dict:
     return out
 
 
-def _run_frontier(case, models, points):
+def _run_frontier(case, models, points, progress=False):
     """The cost frontier, or None and the reason when the sweep cannot be made.
 
     A sweep the case cannot support (say, an automatic range that finds no feasible
@@ -491,7 +496,7 @@ def _run_frontier(case, models, points):
     from .errors import AllocatorError
     from .sweep import frontier
 
-    kwargs = {"models": models}
+    kwargs = {"models": models, "progress": progress}
     if points is not None:
         kwargs["points"] = points
     try:

@@ -9,7 +9,12 @@ Work is reused across points; nothing is rebuilt or recompiled per point:
 
 - every model gets one solver (:func:`allocator.solve.solver_for`) whose ``solve`` takes
   limit overrides: the compiled conic problem re-solves with new cvxpy Parameter values
-  (DPP), the discrete solver keeps its candidates;
+  (DPP); the discrete solver keeps its candidates, its conic polish solvers and its
+  mean-shift cuts (re-derived for each point's limits), starts each point from the
+  previous point's process choice as the incumbent (a pruning cutoff for the lower-bound
+  MILP) and from a grid that is fine only near the previous optimum. Every point is still
+  re-checked and its lower bound proven to the same gap as a single allocation;
+- the value of the case's own limit, when it is on the grid, is not solved twice;
 - where the exact 1-D Lagrange dual applies (one requirement; worst case, rss, or mean
   shift without free mean shifts; formula cost curves), the whole sweep is solved at once:
   the closed-form tolerances ``t(λ)`` are evaluated on a (points × contributors) array and
@@ -34,6 +39,7 @@ import numpy as np
 
 from .errors import UsageError
 from .model import MODELS, Case
+from .progress import progress_bar
 
 __all__ = ["Frontier", "frontier", "LimitSweep", "BatchedDual", "VARY", "MAX_POINTS", "automatic_range"]
 
@@ -392,6 +398,12 @@ class BatchedDual:
 # --------------------------------------------------------------------------- one model
 
 
+def _same_value(value, other):
+    """Equal to 1e-12 (relative): a grid value that is the case's own limit but for rounding."""
+    value = np.asarray(value, dtype=float)
+    return np.abs(value - other) <= 1e-12 * np.maximum(np.abs(value), abs(other))
+
+
 class _Point(NamedTuple):
     total_cost: float | None
     status: str
@@ -429,6 +441,7 @@ class LimitSweep:
         self.flat = model == "worst-case" and vary == "fallout_ppm"
         self.solves = 0
         self.fallbacks = 0
+        self.kept = None  # the full allocation at the value ``sweep(..., keep=)`` asked for
 
     @property
     def method(self) -> str:
@@ -440,8 +453,15 @@ class LimitSweep:
         return {
             "CompiledAllocation": "compiled conic problem re-solved with new parameters (DPP)",
             "ExactAllocation": "exact 1-D Lagrange dual per point",
-            "DiscreteAllocation": "discrete (MILP) solver re-solved per point",
+            "DiscreteAllocation": "discrete (MILP) solver re-solved per point, each started from the last",
         }.get(name, f"{name} per point")
+
+    @property
+    def slow(self) -> bool:
+        """True when each point is a mixed-integer solve of its own (seconds, not milliseconds)."""
+        from .solve.discrete import DiscreteAllocation
+
+        return not self.flat and self.batch is None and isinstance(self.solver, DiscreteAllocation)
 
     def overrides(self, value) -> dict:
         return {self.requirement: {self.vary: float(value)}}
@@ -475,19 +495,34 @@ class LimitSweep:
             return ref.diagnose(ref.limits(self.overrides(value))) is None
         return self.solve(value).status != "infeasible"
 
-    def sweep(self, values, tick: Callable[[int], None] | None = None) -> list[_Point]:
-        """Least cost at each value; ``tick(k)`` reports k more points done."""
+    def sweep(self, values, tick: Callable[[int], None] | None = None, *, keep=None) -> list[_Point]:
+        """Least cost at each value; ``tick(k)`` reports k more points done.
+
+        Point by point, the values are solved in the order in which the requirement loosens
+        (increasing for an upper limit or a fallout target, decreasing for a lower limit),
+        one after the other on the same solver: the discrete solver starts each point from
+        the previous one's choice and grid (see :class:`allocator.solve.discrete.DiscreteAllocation`).
+        With ``keep``, the full allocation at that value (when it is one of ``values``, to
+        1e-12 relative) is left in :attr:`kept`.
+        """
         values = np.asarray(values, dtype=float)
         tick = tick or (lambda k: None)
+        self.kept = None
         if self.flat and values.size:
-            one = self._point(self.solve(values[0]))
+            alloc = self.solve(values[0])
+            if keep is not None and np.any(_same_value(values, keep)):
+                self.kept = alloc
             tick(values.size)
-            return [one] * values.size
+            return [self._point(alloc)] * values.size
         if self.batch is not None:
             return self._batched(values, tick)
-        out = []
-        for value in values:
-            out.append(self._point(self.solve(value)))
+        out: list[_Point | None] = [None] * values.size
+        order = range(values.size - 1, -1, -1) if self.vary == "lower" else range(values.size)
+        for i in order:
+            alloc = self.solve(values[i])
+            if keep is not None and _same_value(values[i], keep):
+                self.kept = alloc
+            out[i] = self._point(alloc)
             tick(1)
         return out
 
@@ -720,7 +755,9 @@ def frontier(
     models : sequence of str, optional
         Default: the case's ``[allocation].models``.
     progress : bool
-        Show a progress bar on stderr (only for sweeps that take over a second).
+        Show a progress bar on stderr, with an estimate of the time left, updated after
+        every point of every model (:func:`allocator.progress.progress_bar`: drawn at once
+        when points are mixed-integer solves, else only for sweeps that take over a second).
 
     Returns
     -------
@@ -776,14 +813,24 @@ def frontier(
         else:
             grid = np.linspace(span[0], span[1], points)
 
-    bar = _progress_bar(len(grid) * len(sweeps), progress)
+    # one step per point and model, and one per model for the current design (fewer when
+    # the current value is on the grid)
+    current_value = float(getattr(req, vary))
+    bar = progress_bar(len(grid) * len(sweeps) + len(sweeps), desc="frontier", enabled=progress,
+                       slow=any(s.slow for s in sweeps))
+    current = {"value": current_value, "total_cost": None, "optimal": {}}
     try:
         results = {}
         for sweep in sweeps:
-            results[sweep.model] = sweep.sweep(grid, bar.update if bar is not None else None)
+            bar.describe(sweep.model)
+            results[sweep.model] = sweep.sweep(grid, bar.update, keep=current_value)
+            alloc = sweep.kept if sweep.kept is not None else sweep.solve(current_value)
+            bar.update(1)
+            if current["total_cost"] is None and math.isfinite(alloc.current_cost):
+                current["total_cost"] = alloc.current_cost
+            current["optimal"][sweep.model] = alloc.total_cost
     finally:
-        if bar is not None:
-            bar.close()
+        bar.close()
 
     flat = tuple(s.model for s in sweeps if s.flat)
     if flat:
@@ -792,14 +839,6 @@ def frontier(
         if sweep.fallbacks:
             notes.append(f"{sweep.model}: {sweep.fallbacks} point(s) re-solved by the model's solver "
                          "after the batched dual's re-check")
-
-    current_value = float(getattr(req, vary))
-    current = {"value": current_value, "total_cost": None, "optimal": {}}
-    for sweep in sweeps:
-        alloc = sweep.solve(current_value)
-        if current["total_cost"] is None and math.isfinite(alloc.current_cost):
-            current["total_cost"] = alloc.current_cost
-        current["optimal"][sweep.model] = alloc.total_cost
 
     costs = {m: [p.total_cost for p in results[m]] for m in models}
     statuses = {m: [p.status for p in results[m]] for m in models}
@@ -849,14 +888,3 @@ def _summary(values, models, statuses, messages, vary):
             parts.append(f"{m} at {len(vals)} of {n} values ({_g(min(vals))} .. {_g(max(vals))})")
         return "partial", "cannot be met by " + "; ".join(parts) + " (flagged 'infeasible')"
     return "optimal", f"{n} values x {len(models)} model(s), every point solved and re-checked"
-
-
-def _progress_bar(total: int, enabled: bool):
-    if not enabled or total <= 0:
-        return None
-    import sys
-
-    from tqdm import tqdm
-
-    # delay: the bar appears only when the sweep takes longer than a second
-    return tqdm(total=total, file=sys.stderr, delay=1.0, leave=False, unit="point", desc="frontier")

@@ -616,3 +616,248 @@ def test_cli_exit_1_when_no_value_can_be_met(case_file):
     result = _invoke(case_file, "--range", "0.06", "0.07", "--points", "2")
     assert result.exit_code == 1
     assert "infeasible" in result.output
+
+
+# --------------------------------------------------------------------------- long work: progress, files
+
+# Invented: a bore made by one of two processes (continuous cost curves), a pin bought in
+# classes (a choose table), a plate: every frontier point is a mixed-integer solve.
+DISCRETE_CASE_TEXT = """
+title = "Invented bracket with a bore made by one of two processes"
+units = "mm"
+currency = "EUR"
+
+[[contributor]]
+name = "bore"
+nominal = 40.0
+tolerance = 0.03
+
+[[contributor.process]]
+name = "turning"
+limits = [0.02, 0.10]
+cost = { curve = "reciprocal", a = 3.0, b = 0.05 }
+
+[[contributor.process]]
+name = "grinding"
+limits = [0.004, 0.03]
+cp = 1.33
+cost = { curve = "reciprocal", a = 6.0, b = 0.02 }
+
+[[contributor]]
+name = "pin"
+nominal = 25.0
+tolerance = 0.02
+cost = { curve = "table", between = "choose", tolerance = [0.005, 0.02, 0.05], cost = [2.0, 0.9, 0.4] }
+
+[[contributor]]
+name = "plate"
+nominal = 12.7
+tolerance = 0.03
+limits = [0.01, 0.1]
+mean_shift = 0.2
+cost = { curve = "reciprocal", a = 0.8, b = 0.01 }
+
+[[requirement]]
+name = "gap"
+chain = { bore = 1, pin = -1, plate = -1 }
+lower = 2.2
+upper = 2.4
+fallout_ppm = 100
+
+[allocation]
+models = ["worst-case", "rss"]
+
+[economics]
+scrap_cost = 40.0
+
+[frontier]
+vary = "upper"
+range = [2.34, 2.46]
+points = 4
+"""
+
+
+def _run_on_a_terminal(args, cwd):
+    """Run the command line in a fresh process with stderr on a pseudo-terminal.
+
+    Returns (exit code, stdout text, everything written to the terminal). The terminal
+    is 100 columns wide, as a user's would be.
+    """
+    import fcntl
+    import os
+    import pty
+    import site
+    import struct
+    import subprocess
+    import sys
+    import termios
+    import threading
+    from pathlib import Path
+
+    root = Path(__file__).resolve().parents[1]
+    env = dict(os.environ, PYTHONPATH=os.pathsep.join([str(root), *site.getsitepackages()]))
+    master, slave = pty.openpty()
+    fcntl.ioctl(slave, termios.TIOCSWINSZ, struct.pack("HHHH", 30, 100, 0, 0))
+    chunks = []
+
+    def read():
+        while True:
+            try:
+                data = os.read(master, 4096)
+            except OSError:  # the other end closed
+                return
+            if not data:
+                return
+            chunks.append(data)
+
+    reader = threading.Thread(target=read, daemon=True)
+    reader.start()
+    try:
+        done = subprocess.run([sys.executable, "-m", "allocator", *map(str, args)], cwd=cwd, env=env,
+                              stdin=subprocess.DEVNULL, stdout=subprocess.PIPE, stderr=slave,
+                              timeout=300)
+    finally:
+        os.close(slave)
+        reader.join(timeout=10)
+        os.close(master)
+    return done.returncode, done.stdout.decode(), b"".join(chunks).decode(errors="replace")
+
+
+@pytest.fixture()
+def discrete_case_file(tmp_path):
+    path = tmp_path / "bracket_processes.toml"
+    path.write_text(DISCRETE_CASE_TEXT)
+    return path
+
+
+def test_cli_progress_on_a_terminal_and_nothing_in_the_json(discrete_case_file, tmp_path):
+    # stderr on a pseudo-terminal: a bar per long task (points counted, time left), drawn
+    # as soon as mixed-integer points start; stdout (a pipe) holds one JSON document only
+    import json
+
+    png = tmp_path / "front.png"
+    code, out, terminal = _run_on_a_terminal(
+        ["frontier", discrete_case_file, "--json", "--plot", png], cwd=tmp_path)
+    assert code == 0, terminal
+    doc = json.loads(out)  # nothing but the document on stdout
+    assert len(doc["points"]) == 4 * 2
+    assert "frontier" in terminal and "/10" in terminal  # 4 points x 2 models + 2 current
+    assert "fallout economics" in terminal and "allocation" in terminal
+    assert "<" in terminal  # tqdm's "elapsed<remaining"
+    # the file written is named on the terminal, not in the JSON
+    assert f"wrote frontier plot {png}" in terminal and "wrote" not in out
+    assert png.read_bytes().startswith(PNG_SIGNATURE)
+
+
+def test_cli_no_progress_when_stderr_is_not_a_terminal(discrete_case_file, tmp_path):
+    # CliRunner's stderr is not a terminal: no bar, no carriage returns, on either stream
+    png = tmp_path / "front.png"
+    result = CliRunner().invoke(cli, ["frontier", str(discrete_case_file), "--csv", "--plot", str(png)])
+    assert result.exit_code == 0, result.output
+    assert "\r" not in result.output and "point/s" not in result.output and "%|" not in result.output
+    assert result.stdout.startswith("value,model,total_cost")
+    assert "wrote" not in result.stdout  # machine output stays clean ...
+    assert result.stderr.strip().splitlines() == [f"wrote frontier plot {png}"]  # ... the note is on stderr
+
+
+def test_cli_names_the_plot_files_it_wrote(case_file, tmp_path):
+    png, svg = tmp_path / "front.png", tmp_path / "econ.svg"
+    result = _invoke(case_file, "--points", "3", "--plot", png, "--economics-plot", svg)
+    assert result.exit_code == 0, result.output
+    lines = result.stdout.splitlines()
+    assert f"wrote frontier plot {png}" in lines and f"wrote economics plot {svg}" in lines
+    assert png.exists() and svg.exists()
+    as_json = _invoke(case_file, "--points", "3", "--json", "--economics-plot", svg)
+    assert as_json.exit_code == 0
+    assert "wrote" not in as_json.stdout and f"wrote economics plot {svg}" in as_json.stderr
+
+
+# --------------------------------------------------------------------------- discrete frontiers
+
+
+def _discrete_case(tmp_path):
+    from allocator.case import load_case
+
+    path = tmp_path / "bracket_processes.toml"
+    path.write_text(DISCRETE_CASE_TEXT)
+    return load_case(path)
+
+
+@pytest.mark.parametrize(
+    "model, vary, values",
+    [
+        ("worst-case", "upper", [2.3, 2.33, 2.36, 2.4, 2.46]),  # the first cannot be met
+        ("rss", "upper", [2.3, 2.33, 2.36, 2.4, 2.46]),
+        ("mean-shift", "upper", [2.3, 2.33, 2.36, 2.4, 2.46]),
+        ("rss", "lower", [2.12, 2.2, 2.24, 2.27]),
+        ("mean-shift", "fallout_ppm", [1.0, 30.0, 1000.0, 20000.0]),
+    ],
+)
+def test_discrete_frontier_points_equal_independent_allocations(tmp_path, model, vary, values):
+    # The sweep re-solves one discrete solver from point to point (previous choice as the
+    # incumbent, coarse grid away from the previous optimum, mean-shift cuts carried over):
+    # every point must still be what a fresh solver finds for that limit alone, to 1e-9,
+    # with its lower bound proven to the same gap, and the curve cannot rise as the limit
+    # loosens (Boyd & Vandenberghe 2004, §5.6.1).
+    case = _discrete_case(tmp_path)
+    front = frontier(case, vary=vary, values=values, models=(model,))
+    assert front.solvers[model].startswith("discrete")
+    costs = front.costs[model]
+    for value, cost, status in zip(front.values, costs, front.statuses[model]):
+        single = allocate(case, model, overrides={"gap": {vary: float(value)}})
+        assert status == single.status, (value, single.message)
+        if single.total_cost is None:
+            assert cost is None
+        else:
+            assert cost == pytest.approx(single.total_cost, rel=1e-9), value
+            assert single.gap is not None and single.gap <= 1e-5
+    met = [c for i in _loosening(front.values, vary) if (c := costs[i]) is not None]
+    assert len(met) >= 3
+    assert all(b <= a * (1 + 1e-9) for a, b in zip(met, met[1:]))
+    if vary == "upper" and model == "worst-case":
+        assert front.statuses[model][0] == "infeasible" and front.status == "partial"
+
+
+def _choose_only_case():
+    """Invented: four parts bought in classes (choose tables), one requirement."""
+    tables = {
+        "a": ([0.01, 0.02, 0.04], [3.0, 1.6, 0.9]),
+        "b": ([0.005, 0.015, 0.03, 0.06], [4.0, 2.2, 1.1, 0.5]),
+        "c": ([0.02, 0.05], [1.5, 0.6]),
+        "d": ([0.01, 0.03, 0.08], [2.5, 1.0, 0.3]),
+    }
+    parts = [
+        contributor(name, nominal=10.0, tolerance=points[-1], limits=(points[0], points[-1]),
+                    cost=CostCurve("table", points_tolerance=tuple(points), points_cost=tuple(prices),
+                                   between="choose"))
+        for name, (points, prices) in tables.items()
+    ]
+    chain = {"a": 1.0, "b": -1.0, "c": 2.0, "d": -1.0}
+    req = chain_requirement("gap", chain, lower=10.0 - 0.2, upper=10.0 + 0.2, fallout_ppm=100)
+    return make_case(parts, [req], models=("worst-case", "rss")), tables, chain
+
+
+@pytest.mark.parametrize("model", ["worst-case", "rss"])
+def test_choose_table_frontier_against_exact_enumeration(model):
+    # 3·4·2·3 = 72 combinations per point, all enumerated with numpy; the rss fallout of
+    # each from scipy.stats.norm (normal parts, cp 1: σ = t/3)
+    case, tables, chain = _choose_only_case()
+    values = np.linspace(10.06, 10.3, 7)
+    front = frontier(case, vary="upper", values=values, models=(model,))
+    names = list(tables)
+    combos = list(product(*(range(len(tables[n][0])) for n in names)))
+    t = np.array([[tables[n][0][k] for n, k in zip(names, combo)] for combo in combos])
+    price = np.array([sum(tables[n][1][k] for n, k in zip(names, combo)) for combo in combos])
+    a = np.abs([chain[n] for n in names])
+    for upper, cost in zip(values, front.costs[model]):
+        if model == "worst-case":
+            ok = (t @ a <= 0.2 + 1e-12) & (t @ a <= upper - 10.0 + 1e-12)
+        else:
+            sigma = np.sqrt(((t / 3.0 * a) ** 2).sum(axis=1))
+            fallout = stats.norm.cdf(9.8, 10.0, sigma) + stats.norm.sf(upper, 10.0, sigma)
+            ok = fallout <= 100e-6 * (1 + 1e-9)
+        if not ok.any():
+            assert cost is None
+        else:
+            assert cost == pytest.approx(price[ok].min(), rel=1e-9), upper
+    assert sum(c is not None for c in front.costs[model]) >= 4

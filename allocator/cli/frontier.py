@@ -84,6 +84,8 @@ def frontier(case_file, requirement, vary, span, points, models, plot, economics
     if economics_plot and case.economics.scrap_cost is None:
         raise UsageError(f"--economics-plot: {case_file} has no [economics] scrap_cost")
 
+    # a progress bar (with the time left) only where someone watches: never on a pipe
+    progress = sys.stderr.isatty()
     result = run_frontier(
         case,
         requirement=requirement,
@@ -91,18 +93,22 @@ def frontier(case_file, requirement, vary, span, points, models, plot, economics
         range=span,
         points=points,
         models=tuple(models) or None,
-        progress=sys.stderr.isatty(),
+        progress=progress,
     )
-    economics, economics_note = _economics(case, result)
+    economics, economics_note = _economics(case, result, progress)
 
+    # which files were written: on stderr when stdout carries the JSON or CSV
+    written = []
     if plot:
         from ..plots import plot_frontier
 
         plot_frontier(result, plot, protect=(case_file,))
+        written.append(f"wrote frontier plot {plot}")
     if economics_plot and economics is not None:
         from ..plots import plot_economics
 
         plot_economics(economics, economics_plot, protect=(case_file,))
+        written.append(f"wrote economics plot {economics_plot}")
 
     if as_json:
         document = {"title": case.title, **result.to_dict()}
@@ -115,6 +121,8 @@ def frontier(case_file, requirement, vary, span, points, models, plot, economics
         click.echo(result.to_frame().to_csv(index=False), nl=False)
     else:
         _print_human(case, result, economics, economics_note)
+    for line in written:
+        click.echo(line, err=as_json or as_csv)
 
     if economics_plot and economics is None:
         click.echo(f"warning: no economics plot written: {economics_note}", err=True)
@@ -123,7 +131,7 @@ def frontier(case_file, requirement, vary, span, points, models, plot, economics
         sys.exit(1)
 
 
-def _economics(case, result):
+def _economics(case, result, progress=False):
     """The fallout economics when the case prices scrap (None and why not, otherwise)."""
     if case.economics.scrap_cost is None:
         return None, ""
@@ -132,7 +140,7 @@ def _economics(case, result):
         return None, "no statistical model selected (worst case does not use the fallout target)"
     from ..economics import fallout_economics
 
-    return fallout_economics(case, result.requirement, statistical), ""
+    return fallout_economics(case, result.requirement, statistical, progress=progress), ""
 
 
 def _print_human(case, result, economics, economics_note) -> None:

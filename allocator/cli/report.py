@@ -69,6 +69,7 @@ def report(case_file, output, models, samples, seed, frontier_points, no_frontie
         seed=seed,
         frontier_points=frontier_points,
         include_frontier=not no_frontier,
+        progress=sys.stderr.isatty(),  # progress bars on a terminal only
     )
     line = f"wrote {output}: {result.status}"
     if result.recommended:
