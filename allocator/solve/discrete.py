@@ -30,10 +30,14 @@ solver (:mod:`.continuous` or :mod:`.exact`) polishes the tolerances with those 
 held. A second MILP over grid *cells* gives a proven lower bound: in a cell the tolerance
 is a continuous column and the cost is bounded below by a tangent (convex curves) or is
 exact (tables, linear between their breakpoints); the variance uses a tangent of t² from
-below. The cells around the polished incumbent are split before the first bound, whose
-MILP gets the incumbent's cost as a pruning cutoff; cells the bound picks are split until
-the relative gap is below :data:`GAP_TARGET` or :data:`MAX_REFINE` rounds have run. The gap
-is reported.
+below. With one requirement a Lagrangian dual bound comes first (Everett 1963; Fisher
+1981: for worst case and rss the requirement itself, for mean shift its tangent cut at the
+incumbent, each priced by one multiplier, every contributor's least priced cost found
+exactly); where a continuous part absorbs the slack it meets the gap target by itself and
+no MILP is solved. Otherwise the cells around the polished incumbent are split before the
+first MILP bound, which gets the incumbent's cost as a pruning cutoff; cells the bound
+picks are split until the relative gap is below :data:`GAP_TARGET` or :data:`MAX_REFINE`
+rounds have run. The gap is reported.
 
 Re-solved with other limits (a frontier's points), a :class:`DiscreteAllocation` reuses
 what stays valid: its last process choice as the first incumbent, a grid coarse away from
@@ -45,7 +49,10 @@ cost tolerance allocation for mechanical assemblies with automated process selec
 Manufacturing Review 3(1), 49-59. Huangfu, Q. and Hall, J. A. J. (2018), Parallelizing the
 dual revised simplex method, Mathematical Programming Computation 10, 119-142 (HiGHS).
 Duran, M. A. and Grossmann, I. E. (1986), An outer-approximation algorithm for a class of
-mixed-integer nonlinear programs, Mathematical Programming 36, 307-339.
+mixed-integer nonlinear programs, Mathematical Programming 36, 307-339. Everett, H. (1963),
+Generalized Lagrange multiplier method for solving problems of optimum allocation of
+resources, Operations Research 11(3), 399-417. Fisher, M. L. (1981), The Lagrangian
+relaxation method for solving integer programming problems, Management Science 27(1), 1-18.
 """
 
 from __future__ import annotations
@@ -347,6 +354,120 @@ def _run_milp(objective, rows: _Rows, time_limit: float, integrality, upper, cut
                 raise
             _PRUNING_OPTIONS.clear()
     return _run_milp(objective, rows, time_limit, integrality, upper)
+
+
+# --------------------------------------------------------------------------- Lagrangian
+
+
+class _LagrangianTerms:
+    """Per option, the least ``n C(t) + λ W t^m`` of :meth:`DiscreteAllocation._lagrangian`."""
+
+    def __init__(self, solver, weight, m):
+        """``weight(i, o)``: the constraint's coefficient W of contributor i with option o."""
+        from .problem import CurveSet
+
+        n = solver.counts
+        self.m = m
+        self.n_contributors = len(solver.options)
+        self.owner, self.weight, self.lo, self.hi, self.opts = [], [], [], [], []
+        formula, tables, free, points = [], [], [], []
+        for i, opts in enumerate(solver.options):
+            for o in opts:
+                w = weight(i, o)
+                k = len(self.owner)
+                self.owner.append(i)
+                self.weight.append(w)
+                self.lo.append(o.limits[0] if o.kind == "continuous" else np.nan)
+                self.hi.append(o.limits[1] if o.kind == "continuous" else np.nan)
+                self.opts.append(o)
+                if o.kind == "points":
+                    points.append(k)
+                elif o.curve is None:
+                    free.append(k)
+                elif o.curve.curve == "table":
+                    tables.append(k)
+                else:
+                    formula.append(k)
+        self.owner = np.array(self.owner, dtype=int)
+        self.weight = np.array(self.weight, dtype=float)
+        self.lo, self.hi = np.array(self.lo, dtype=float), np.array(self.hi, dtype=float)
+        self.count = n[self.owner].astype(float)
+        self.formula, self.free = np.array(formula, dtype=int), np.array(free, dtype=int)
+        self.curves = CurveSet([self.opts[k].curve for k in formula])
+        self.tables = []
+        for k in tables:  # breakpoints inside the limits, with the ends
+            o = self.opts[k]
+            x = np.asarray(o.curve.points_tolerance, dtype=float)
+            x = np.union1d(x[(x > o.limits[0]) & (x < o.limits[1])], o.limits)
+            self.tables.append((k, x, np.nan_to_num(_cost_at(o.curve, x))))
+        self.points = [(k, self.opts[k].points, np.nan_to_num(self.opts[k].point_costs)) for k in points]
+
+    def scale(self, rhs) -> float:
+        """Where to centre the search for the multiplier: one unit of cost per part per
+        unit of the constraint (the search spans e^±60 around it)."""
+        return float(np.sum(self.count)) / rhs
+
+    def _per_option(self, lam):
+        """(cost part n·C, constraint part W·t^m, t) of each option's minimiser."""
+        size = self.owner.size
+        cost, use, t = np.zeros(size), np.zeros(size), np.zeros(size)
+        m, w, n = self.m, self.weight, self.count
+        price = lam * w / n  # per unit of cost of one part
+        if self.formula.size:
+            k = self.formula
+            lo, hi = self.lo[k], self.hi[k]
+            from .exact import minimise_linear_price, minimise_quadratic_price
+
+            with np.errstate(divide="ignore", over="ignore", invalid="ignore"):
+                if m == 1:
+                    tk = minimise_linear_price(self.curves, price[k], lo, hi)
+                else:
+                    tk = minimise_quadratic_price(self.curves, 2.0 * price[k], lo, hi)
+            tk = np.clip(np.nan_to_num(tk, nan=hi, posinf=hi), lo, hi)
+            t[k] = tk
+            cost[k] = n[k] * self.curves.value(tk)
+        if self.free.size:
+            k = self.free
+            t[k] = np.where(w[k] > 0, self.lo[k], self.hi[k])
+        for k, x, c in self.tables:
+            cands, costs_ = [x], [c]
+            if m == 2 and price[k] > 0:  # each piece: c0 + slope (t − x0) + price t²
+                slope = np.diff(c) / np.diff(x)
+                stat = np.clip(-slope / (2.0 * price[k]), x[:-1], x[1:])
+                cands.append(stat)
+                costs_.append(c[:-1] + slope * (stat - x[:-1]))
+            xs, cs = np.concatenate(cands), np.concatenate(costs_)
+            j = int(np.argmin(cs + price[k] * xs**m))
+            t[k], cost[k] = xs[j], n[k] * cs[j]
+        for k, x, c in self.points:
+            j = int(np.argmin(c + price[k] * x**m))
+            t[k], cost[k] = x[j], n[k] * c[j]
+        use = w * t**m
+        return cost, use, t
+
+    def _best(self, lam):
+        cost, use, t = self._per_option(lam)
+        total = cost + lam * use
+        order = np.lexsort((total, self.owner))
+        starts = np.searchsorted(self.owner[order], np.arange(self.n_contributors))
+        return order[starts], cost, use, t
+
+    def value(self, lam):
+        """(Σ_i min_o (n C + λ W t^m), Σ_i W t^m at those minimisers)."""
+        pick, cost, use, _ = self._best(lam)
+        return float(np.sum(cost[pick] + lam * use[pick])), float(np.sum(use[pick]))
+
+    def slope(self, lam) -> float:
+        return self.value(lam)[1]
+
+    def magnitude(self, lam, rhs) -> float:
+        pick, cost, use, _ = self._best(lam)
+        return float(np.sum(np.abs(cost[pick]) + lam * use[pick]) + lam * rhs)
+
+    def choice(self, lam):
+        """The option and tolerance each contributor takes at ``lam``."""
+        pick, _, _, t = self._best(lam)
+        return [self.opts[k] for k in pick], t[pick]
 
 
 # --------------------------------------------------------------------------- the solver
@@ -1129,12 +1250,25 @@ class DiscreteAllocation:
             best = (primal.objective, chosen, points.value[primal.choice], None, "grid point")
             solves = primal.solves
             consider(self._polish(points, primal.choice, overrides, cache))
+        # one requirement: the Lagrangian dual bound costs no MILP and, where a continuous
+        # part takes up the slack, proves the optimum by itself; its choice is a candidate
+        bound, rounds = None, 0
+        lagrangian = self._lagrangian(limits, best[1:3])
+        if lagrangian is not None:
+            bound, opts, t_dual = lagrangian
+            held = dict(self.fix)
+            for c, o, ti in zip(self.case.contributors, opts, t_dual):
+                if o.kind == "points" and not c.fixed:
+                    held[c.name] = float(ti)
+            consider(self._polish_held(opts, held, overrides, cache))
+        gap = self._gap(best[0], bound)
+        proven_by_dual = gap is not None and gap <= self.gap_target
         # the optimum is most likely near the incumbent: split its cells before the first
         # lower bound instead of after it (the bound is valid on any grid)
-        self._refine_near(best[1], best[2])
-        bound, rounds = None, 0
+        if not proven_by_dual:
+            self._refine_near(best[1], best[2])
         lower_note = ""
-        for rounds in range(1, MAX_REFINE + 2):
+        for rounds in range(1, 0 if proven_by_dual else MAX_REFINE + 2):
             cells = self.candidates(cells=True)
             low = self._solve_milp(cells, limits, cutoff=best[0])
             solves += low.solves
@@ -1153,12 +1287,17 @@ class DiscreteAllocation:
                 self._refine_near(best[1], best[2])
         gap = self._gap(best[0], bound)
         cost, chosen, t, requirements, how = best
+        chooser = (
+            f"processes chosen by HiGHS (MILP over a {self.grid_points}-point grid per process)" if solves
+            else "processes from the last solve's choice or the Lagrangian dual (no MILP needed)"
+        )
         message = (
-            f"processes chosen by HiGHS (MILP over a {self.grid_points}-point grid per process), "
+            chooser + ", "
             + ("tolerances polished by the conic solver with those processes held"
                if how == "polished" else "tolerances at grid points (polish did not improve)")
             + f"; relative gap to a proven lower bound {_g(gap) if gap is not None else 'unknown'}"
-            + f" after {rounds} refinement round{'s' if rounds != 1 else ''}{lower_note}"
+            + (" (Lagrangian dual bound)" if proven_by_dual else
+               f" after {rounds} refinement round{'s' if rounds != 1 else ''}{lower_note}")
         )
         solver = SOLVER_NAME + (f"+{polish_solver}" if how == "polished" and polish_solver else "")
         alloc = self._result(chosen, t, limits, status="optimal", message=message, gap=gap,
@@ -1196,6 +1335,104 @@ class DiscreteAllocation:
             )
             if sigma > 0 and delta < room and lim.fallout <= TANGENT_MAX_FALLOUT:
                 self._add_tangent(r, sigma_i / sigma, delta, lim)
+
+    def _lagrangian(self, limits, incumbent=None):
+        """Lagrangian dual bound of one requirement, and the choice that attains it.
+
+        With one constrained requirement ``Σ_i W_i(o_i) t_i^m ≤ S`` (worst case:
+        ``W = n|a|``, ``m = 1``, ``S`` the room; rss: ``W = n a² f_o²``, ``m = 2``,
+        ``S = σ_max²``; mean shift: the tangent cut of :meth:`_cuts` at the incumbent
+        ``(options, t)``, ``W = u_i √n_i |a_i| f_o − g'(δ*) n_i |a_i| m_i``, ``m = 1``,
+        ``S = g(δ*) − g'(δ*) δ*``, which every choice meeting the requirement satisfies, so
+        that bounding the problem with it alone bounds the mean-shift problem), for every
+        multiplier ``λ ≥ 0``
+
+        .. math:: L(λ) = \\sum_i \\min_{o, t} \\left(n_i C_o(t) + λ W_i(o) t^m\\right) − λ S
+
+        is at most the least cost (weak duality; no convexity needed, only that each inner
+        minimum is exact: closed forms for the formula curves, every breakpoint and every
+        piece's stationary point for a table, every listed value for points). ``L`` is
+        concave; its maximum is found by bisection on the sign of its slope
+        ``Σ W t^m − S`` in ``log λ``, and the largest value met is the bound. Where some
+        contributor with a continuous curve is free to absorb the slack, the bound equals
+        the optimum (Everett 1963; Fisher 1981) and no MILP is needed to prove it; for
+        mean shift the cut at an optimal incumbent has the constraint's own gradient
+        there, so the same holds.
+
+        Returns
+        -------
+        (bound [currency], chosen options, tolerances) or None
+            None with more than one constrained requirement, or for mean shift without
+            an incumbent whose cut applies (a target over 49 %, no spread, or the worst
+            mean outside the limits).
+
+        References
+        ----------
+        .. [1] Everett, H. (1963). Generalized Lagrange multiplier method for solving
+           problems of optimum allocation of resources. Operations Research 11(3), 399-417.
+        .. [2] Fisher, M. L. (1981). The Lagrangian relaxation method for solving integer
+           programming problems. Management Science 27(1), 1-18.
+        """
+        active = [r for r, lim in enumerate(limits) if lim.lower is not None or lim.upper is not None]
+        if len(active) != 1:
+            return None
+        r = active[0]
+        req, lim = self.requirements[r], limits[r]
+        room = min(
+            math.inf if lim.lower is None else req.nominal - lim.lower,
+            math.inf if lim.upper is None else lim.upper - req.nominal,
+        )
+        if not room > 0:
+            return None
+        a, n = np.abs(self.sensitivity[r]), self.counts
+        if self.model == "worst-case":
+            m, rhs = 1, room
+            weight = lambda i, o: n[i] * a[i]  # noqa: E731
+        elif self.model == "rss":
+            m, rhs = 2, stack.sigma_limit(req.nominal, lim.fallout, lim.lower, lim.upper) ** 2
+            weight = lambda i, o: n[i] * (a[i] * o.factor) ** 2  # noqa: E731
+        else:
+            if incumbent is None or lim.fallout > TANGENT_MAX_FALLOUT:
+                return None
+            chosen, t = incumbent
+            f = np.array([o.factor for o in chosen])
+            sigma_i = np.sqrt(n) * a * f * np.asarray(t, dtype=float)
+            sigma = float(np.sqrt(np.sum(sigma_i**2)))
+            delta = float(np.sum(n * a * self.mean_shifts * t))
+            if not (sigma > 0 and delta < room):
+                return None
+            g, slope, _ = mean_shift_allowance(req.nominal, delta, lim)
+            slope = min(slope, 0.0)
+            u = sigma_i / sigma
+            m, rhs = 1, g - slope * delta
+            shifts = self.mean_shifts
+
+            def weight(i, o):
+                return u[i] * math.sqrt(n[i]) * a[i] * o.factor - slope * n[i] * a[i] * shifts[i]
+        if not (math.isfinite(rhs) and rhs > 0):
+            return None
+        terms = _LagrangianTerms(self, weight, m)
+        scale = terms.scale(rhs)
+        best = (terms.value(0.0)[0], 0.0)
+        if terms.slope(0.0) > rhs:  # the loosest choice misses: the multiplier is positive
+            lo, hi = math.log(scale) - 60.0, math.log(scale) + 60.0
+            for _ in range(120):
+                mid = 0.5 * (lo + hi)
+                lam = math.exp(mid)
+                total, spread = terms.value(lam)
+                bound = total - lam * rhs
+                if bound > best[0]:
+                    best = (bound, lam)
+                if spread > rhs:
+                    lo = mid
+                else:
+                    hi = mid
+                if hi - lo < 1e-13:
+                    break
+        bound, lam = best
+        chosen, t = terms.choice(lam)
+        # a margin for the rounding of the sums (the bound must never exceed the optimum)
+        return bound - 1e-12 * terms.magnitude(lam, rhs), chosen, t
 
     def _refine_near(self, chosen, t):
         """Split the grid cells around each tolerance ``t`` of a continuous chosen option.
