@@ -166,3 +166,19 @@ def test_infeasible_requirement_exits_1_with_its_name(tmp_path):
     assert "exceeds upper 0.21 by 0.02" in result.stdout and "below lower 0.18 by 0.01" in result.stdout
     doc = json.loads(run(path, "--model", "worst-case", "--json").stdout)
     assert doc["results"][0]["status"] == "infeasible" and doc["results"][0]["total_cost"] is None
+
+
+@pytest.mark.skipif(__import__("sys").platform == "win32", reason="needs a POSIX pseudo-terminal")
+def test_progress_per_model_on_a_terminal_only(tmp_path):
+    # choose tables make every model a mixed-integer solve: on a terminal a bar counts the
+    # models at once; stdout (a pipe) keeps one JSON document; CliRunner (no terminal) none
+    from helpers import run_on_a_terminal
+
+    divider = CASES / "divider_output.toml"
+    code, out, terminal = run_on_a_terminal(["allocate", divider, "--json"], cwd=tmp_path)
+    assert code == 0, terminal
+    assert len(json.loads(out)["results"]) == 2
+    assert "allocate" in terminal and "/2" in terminal and "model" in terminal
+    plain = CliRunner().invoke(cli, ["allocate", str(divider), "--json"])
+    assert plain.exit_code == 0 and plain.stderr == ""
+    assert json.loads(plain.stdout) == json.loads(out)

@@ -48,7 +48,7 @@ from allocator.sweep import LimitSweep, frontier
 from allocator.model import CostCurve, Economics, FrontierSettings
 from allocator.plots import render_economics_plot, render_frontier_plot
 from allocator.solve import allocate
-from helpers import chain_requirement, contributor, make_case
+from helpers import chain_requirement, contributor, make_case, run_on_a_terminal
 
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
 REL = 1e-7
@@ -677,52 +677,6 @@ points = 4
 """
 
 
-def _run_on_a_terminal(args, cwd):
-    """Run the command line in a fresh process with stderr on a pseudo-terminal.
-
-    Returns (exit code, stdout text, everything written to the terminal). The terminal
-    is 100 columns wide, as a user's would be.
-    """
-    import fcntl
-    import os
-    import pty
-    import site
-    import struct
-    import subprocess
-    import sys
-    import termios
-    import threading
-    from pathlib import Path
-
-    root = Path(__file__).resolve().parents[1]
-    env = dict(os.environ, PYTHONPATH=os.pathsep.join([str(root), *site.getsitepackages()]))
-    master, slave = pty.openpty()
-    fcntl.ioctl(slave, termios.TIOCSWINSZ, struct.pack("HHHH", 30, 100, 0, 0))
-    chunks = []
-
-    def read():
-        while True:
-            try:
-                data = os.read(master, 4096)
-            except OSError:  # the other end closed
-                return
-            if not data:
-                return
-            chunks.append(data)
-
-    reader = threading.Thread(target=read, daemon=True)
-    reader.start()
-    try:
-        done = subprocess.run([sys.executable, "-m", "allocator", *map(str, args)], cwd=cwd, env=env,
-                              stdin=subprocess.DEVNULL, stdout=subprocess.PIPE, stderr=slave,
-                              timeout=300)
-    finally:
-        os.close(slave)
-        reader.join(timeout=10)
-        os.close(master)
-    return done.returncode, done.stdout.decode(), b"".join(chunks).decode(errors="replace")
-
-
 @pytest.fixture()
 def discrete_case_file(tmp_path):
     path = tmp_path / "bracket_processes.toml"
@@ -730,13 +684,14 @@ def discrete_case_file(tmp_path):
     return path
 
 
+@pytest.mark.skipif(__import__("sys").platform == "win32", reason="needs a POSIX pseudo-terminal")
 def test_cli_progress_on_a_terminal_and_nothing_in_the_json(discrete_case_file, tmp_path):
     # stderr on a pseudo-terminal: a bar per long task (points counted, time left), drawn
     # as soon as mixed-integer points start; stdout (a pipe) holds one JSON document only
     import json
 
     png = tmp_path / "front.png"
-    code, out, terminal = _run_on_a_terminal(
+    code, out, terminal = run_on_a_terminal(
         ["frontier", discrete_case_file, "--json", "--plot", png], cwd=tmp_path)
     assert code == 0, terminal
     doc = json.loads(out)  # nothing but the document on stdout

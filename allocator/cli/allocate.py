@@ -72,8 +72,7 @@ def allocate(case_file, models, fixes, as_json, as_csv):
     fix = _parse_fix(fixes)
     case = load_case_or_exit(case_file)
     models = tuple(models) or tuple(case.allocation.models)
-    results = [run(case, m, fix=fix) for m in models]
-    baselines = [run(case, m) for m in models] if fix else [None] * len(models)
+    results, baselines = _run_models(case, models, fix, run)
 
     if as_json:
         documents = []
@@ -95,6 +94,28 @@ def allocate(case_file, models, fixes, as_json, as_csv):
         click.echo(f"error: {r.model}: {r.status}: {r.message}", err=True)
     if failed:
         sys.exit(1)
+
+
+def _run_models(case, models, fix, run):
+    """Each model's allocation (and without ``fix``, when holding), with a progress bar
+    per model on a terminal (drawn at once when the models are mixed-integer solves)."""
+    from ..progress import progress_bar
+    from ..solve.discrete import needs_discrete
+
+    jobs = [(m, fix) for m in models] + ([(m, {}) for m in models] if fix else [])
+    bar = progress_bar(len(jobs), desc="allocate", unit="model", enabled=sys.stderr.isatty(),
+                       slow=needs_discrete(case, fix) or needs_discrete(case))
+    done = []
+    try:
+        for model, held in jobs:
+            bar.describe(model)
+            done.append(run(case, model, fix=held))
+            bar.update(1)
+    finally:
+        bar.close()
+    results = done[: len(models)]
+    baselines = done[len(models):] if fix else [None] * len(models)
+    return results, baselines
 
 
 def _write_csv(results) -> None:
