@@ -43,6 +43,10 @@ class RequirementAnalysis:
     mean_shift_below_ppm: float
     mean_shift_above_ppm: float
     contributions: tuple[Contribution, ...] = field(default=())
+    # how far the worst case passes each limit [response]; 0.0 when it holds within the
+    # round-off margin of stack.limit_margin (the one comparison used for every verdict)
+    worst_case_below: float = 0.0
+    worst_case_above: float = 0.0
 
     @property
     def fallout_ppm(self) -> float:
@@ -56,9 +60,9 @@ class RequirementAnalysis:
 
     @property
     def worst_case_ok(self) -> bool:
-        return (self.lower is None or self.worst_case_min >= self.lower) and (
-            self.upper is None or self.worst_case_max <= self.upper
-        )
+        """The worst-case range lies inside the limits (round-off excused, see
+        :func:`allocator.stack.limit_margin`)."""
+        return self.worst_case_below == 0.0 and self.worst_case_above == 0.0
 
     @property
     def cpk(self) -> float:
@@ -78,6 +82,8 @@ class RequirementAnalysis:
             "worst_case_min": self.worst_case_min,
             "worst_case_max": self.worst_case_max,
             "worst_case_ok": self.worst_case_ok,
+            "worst_case_below": self.worst_case_below,
+            "worst_case_above": self.worst_case_above,
             "sigma": self.sigma,
             "cpk": self.cpk,
             "fallout_ppm": self.fallout_ppm,
@@ -169,6 +175,11 @@ def analyze(case, tolerances: Mapping[str, float] | None = None) -> StackAnalysi
     ``Φ((L − ȳ)/σ_y) + 1 − Φ((U − ȳ)/σ_y)``; mean-shift band ``δ = Σ n|a| m t`` with the
     fallout taken at the worst mean in ``ȳ ± δ`` (Greenwood & Chase 1987). Nonlinear
     expressions use their exact first-order sensitivities at the nominals.
+
+    The worst-case verdict (``worst_case_ok``, ``worst_case_below``/``_above``) is
+    :func:`allocator.stack.worst_case_excess`: a worst case within ``1e-9`` of the largest
+    of ``|ȳ|, |L|, |U|, W`` from a limit counts as on it, so binary round-off of decimal
+    inputs never turns a design that meets its limit exactly into a failure.
     """
     t = case.current_tolerances
     if tolerances:
@@ -186,7 +197,9 @@ def analyze(case, tolerances: Mapping[str, float] | None = None) -> StackAnalysi
         wc = n * np.abs(a) * t
         var = n * (a * f * t) ** 2
         sigma = float(math.sqrt(var.sum()))
-        lo, hi = stack.worst_case_range(lin.nominal, a, n, t)
+        half = stack.worst_case_half_width(a, n, t)
+        lo, hi = lin.nominal - half, lin.nominal + half
+        wc_below, wc_above = stack.worst_case_excess(lin.nominal, half, req.lower, req.upper)
         below, above = stack.normal_fallout(lin.nominal, sigma, req.lower, req.upper)
         delta = stack.mean_shift_delta(a, n, m, t)
         ms_below, ms_above, _ = stack.worst_mean_fallout(lin.nominal, delta, sigma, req.lower, req.upper)
@@ -220,6 +233,8 @@ def analyze(case, tolerances: Mapping[str, float] | None = None) -> StackAnalysi
                 mean_shift_below_ppm=ms_below * 1e6,
                 mean_shift_above_ppm=ms_above * 1e6,
                 contributions=contributions,
+                worst_case_below=wc_below,
+                worst_case_above=wc_above,
             )
         )
     return StackAnalysis(

@@ -842,6 +842,18 @@ def _section_summary(report: Report) -> str:
     )
 
 
+def _worst_case_flag(r) -> str:
+    """'yes', or 'NO' with the amount past each limit (as judged by the analysis)."""
+    if r.worst_case_ok:
+        return _flag("yes")
+    misses = [
+        f"{_n(amount, 3)} {side}"
+        for amount, side in ((r.worst_case_below, "below lower"), (r.worst_case_above, "above upper"))
+        if amount
+    ]
+    return _flag("NO", "bad") + " " + ", ".join(misses)
+
+
 def _analysis_table(analysis, units: str, caption: str) -> str:
     reqs = analysis.requirements
     headers = ["Quantity"] + [_e(r.name) for r in reqs]
@@ -854,7 +866,7 @@ def _analysis_table(analysis, units: str, caption: str) -> str:
         row(f"Limits{_unit(units)}", [f"{_i(r.lower)} to {_i(r.upper)}" for r in reqs]),
         row(f"Worst case, lowest{_unit(units)}", [_r(r.worst_case_min) for r in reqs]),
         row(f"Worst case, highest{_unit(units)}", [_r(r.worst_case_max) for r in reqs]),
-        row("Worst case within limits", [_flag("yes") if r.worst_case_ok else _flag("NO", "bad") for r in reqs]),
+        row("Worst case within limits", [_worst_case_flag(r) for r in reqs]),
         row(f"RSS σ{_unit(units)}", [_n(r.sigma) for r in reqs]),
         row("Cpk of the response", [_n(r.cpk, 3) for r in reqs]),
         row("Predicted fallout, RSS [ppm]", [_ppm(r.fallout_ppm) for r in reqs]),

@@ -46,7 +46,7 @@ def analyze(case_file, as_json, as_csv):
         limits = f"[{fmt(r.lower, 6)}, {fmt(r.upper, 6)}]"
         click.echo("")
         click.echo(f"requirement {r.name}: limits {limits}" + ("" if r.linear else "  (linearised expression)"))
-        verdict = "inside limits" if r.worst_case_ok else "OUTSIDE limits"
+        verdict = "inside limits" if r.worst_case_ok else "OUTSIDE limits: " + _misses(r)
         click.echo(
             f"  nominal {fmt(r.nominal, 6)}   worst case [{fmt(r.worst_case_min, 6)}, "
             f"{fmt(r.worst_case_max, 6)}] {verdict}"
@@ -71,3 +71,13 @@ def analyze(case_file, as_json, as_csv):
                 ["contributor", "sensitivity", "count", f"± tol [{u}]", "± worst case", "% variance"],
             )
         )
+
+
+def _misses(r) -> str:
+    """Which limit the worst case passes and by how much (the amounts the analysis judged)."""
+    parts = []
+    if r.worst_case_below:
+        parts.append(f"{fmt(r.worst_case_below, 3)} below lower {fmt(r.lower, 6)}")
+    if r.worst_case_above:
+        parts.append(f"{fmt(r.worst_case_above, 3)} above upper {fmt(r.upper, 6)}")
+    return " and ".join(parts)

@@ -46,7 +46,10 @@ __all__ = [
 
 # A solution may sit this far (relative) outside a requirement before it is polished;
 # polishing always aims at exact feasibility, this is only what still counts as met.
-WORST_CASE_RTOL = 1e-9
+# Worst case: W <= room·(1 + rtol) with room = min(ȳ − L, U − ȳ) <= W; the excess rtol·room
+# then lies within stack.limit_margin (rtol·max(|ȳ|, |L|, |U|, W)), so the analysis of an
+# accepted allocation calls it inside its limits.
+WORST_CASE_RTOL = stack.LIMIT_RTOL
 FALLOUT_RTOL = 1e-6
 # A tolerance within this fraction of its range from a bound is reported at that bound.
 BOUND_RTOL = 1e-7
