@@ -256,7 +256,11 @@ class Report:
             if not a.success
         ]
         if self.verification_basis == "allocation" and not self.verification.success:
-            out.append(f"verification of the {MODEL_LABELS.get(self.recommended)} allocation: {self.verification.message}")
+            note = self.verification.assumption_note
+            out.append(
+                f"verification of the {MODEL_LABELS.get(self.recommended)} allocation: {self.verification.message}"
+                + (f" ({note})" if note else "")
+            )
         return out
 
     @property
@@ -406,7 +410,9 @@ def build_report(
         frontier, frontier_message = None, "left out of this report on request"
 
     if rec_alloc is not None:
-        verification = verify(case, dict(rec_alloc.tolerances), samples=samples, seed=seed)
+        verification = verify(
+            case, dict(rec_alloc.tolerances), samples=samples, seed=seed, allocated_with=recommended
+        )
         basis = "allocation"
     else:
         verification = verify(case, None, samples=samples, seed=seed)
@@ -1092,6 +1098,8 @@ def _section_verification(report: Report, svg: str) -> str:
         + f"; seed {v.seed}. Computed by <code>allocator.simulate.verify</code>; the interval is the exact "
         f"(Clopper–Pearson) {v.confidence:.0%} interval. Result: {_e(v.message)}.</p>"
     )
+    if v.assumption_note:
+        intro += f'<p class="note"><strong>Note:</strong> {_e(v.assumption_note)}.</p>'
     rows = [
         [
             _e(c.name),

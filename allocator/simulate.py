@@ -214,6 +214,12 @@ class Verification:
     tolerances : dict
         ± tolerance per contributor used [length].
     requirements : list of RequirementCheck
+    allocated_with : str or None
+        The stack model the tolerances were allocated with, when the caller said so.
+    assumption_note : str
+        One line, empty when there is nothing to say: set when the simulation assumes
+        something the allocation did not (an ``rss`` allocation simulated with the
+        case's mean shifts in place), with what to run instead.
     """
 
     status: str
@@ -227,6 +233,8 @@ class Verification:
     shift_means: bool
     tolerances: dict
     requirements: list
+    allocated_with: str | None = None
+    assumption_note: str = ""
 
     def __getitem__(self, name: str) -> RequirementCheck:
         for check in self.requirements:
@@ -246,6 +254,8 @@ class Verification:
             "confidence": self.confidence,
             "shift_means": self.shift_means,
             "tolerances": dict(self.tolerances),
+            "allocated_with": self.allocated_with,
+            "assumption_note": self.assumption_note,
             "requirements": [c.to_dict(histogram) for c in self.requirements],
         }
 
@@ -261,6 +271,8 @@ class Verification:
             f"Verification(status={self.status!r}, samples={self.samples}, seed={self.seed})",
             f"  message: {self.message}",
         ]
+        if self.assumption_note:
+            lines.append(f"  note: {self.assumption_note}")
         for c in self.requirements:
             conv = "—" if c.convolution_ppm is None else f"{c.convolution_ppm:.4g}"
             lines.append(
@@ -551,6 +563,7 @@ def verify(
     progress: bool = False,
     shift_means: bool = True,
     bins: int = HISTOGRAM_BINS,
+    allocated_with: str | None = None,
 ) -> Verification:
     """Check tolerances by Monte Carlo simulation of whole assemblies.
 
@@ -574,6 +587,12 @@ def verify(
         ``False`` simulates centred processes.
     bins : int
         Histogram bins kept per requirement.
+    allocated_with : str or None
+        The stack model the tolerances come from (``'worst-case'``, ``'rss'``,
+        ``'mean-shift'``), if they are an allocation. An ``'rss'`` allocation assumes
+        centred processes; simulated with the case's mean shifts in place it can miss its
+        target for that reason alone, and :attr:`Verification.assumption_note` says so
+        (see docs/verification.md, *Which assumptions are simulated*).
 
     Returns
     -------
@@ -734,6 +753,7 @@ def verify(
     if disagree:
         message += f"; analytic prediction outside the interval for {', '.join(disagree)}"
     status = "fail" if failed else "pass"
+    note = _assumption_note(case, checks, allocated_with, shift_means)
     return Verification(
         status=status,
         success=status == "pass",
@@ -746,6 +766,30 @@ def verify(
         shift_means=shift_means,
         tolerances=dict(zip(case.names, (float(x) for x in t))),
         requirements=checks,
+        allocated_with=allocated_with,
+        assumption_note=note,
+    )
+
+
+def _assumption_note(case, checks, allocated_with: str | None, shift_means: bool) -> str:
+    """One line when the simulation places mean shifts that an rss allocation left out.
+
+    The rss model takes every process as centred (Evans 1974); the case's ``mean_shift``
+    is the mean-shift model's input (Greenwood & Chase 1987). Verifying an rss allocation
+    with the shifts in place tests it against an assumption it was not designed for.
+    """
+    if allocated_with != "rss" or not shift_means:
+        return ""
+    shifted = [c.name for c in checks if c.shift_side != 0]
+    if not shifted:
+        return ""
+    movers = [c.name for c in case.contributors if c.mean_shift > 0]
+    shown = ", ".join(movers[:4]) + (f" and {len(movers) - 4} more" if len(movers) > 4 else "")
+    return (
+        f"the simulation places the case's mean shifts ({shown}) on the worse side of "
+        f"{', '.join(shifted)}, which the rss allocation did not assume (rss takes centred "
+        "processes); verify it with --centred to check it under its own assumption, or "
+        "allocate with --model mean-shift to allow for the shifts"
     )
 
 

@@ -228,6 +228,44 @@ def test_mean_shift_side_follows_the_nearer_limit_and_can_be_turned_off():
     assert centred.shifted_mean == pytest.approx(mean)
 
 
+def test_rss_allocation_verified_with_mean_shifts_says_why_and_what_to_run():
+    from allocator.solve import allocate
+
+    mean, sigma = normal_chain_reference()
+    case = normal_chain_case(mean - 0.2, mean + 0.2, mean_shift=0.5, fallout_ppm=100.0)
+    alloc = allocate(case, "rss")
+    assert alloc.success
+    t = dict(alloc.tolerances)
+    shifted = verify(case, t, samples=20_000, seed=5, allocated_with="rss")
+    check = shifted["gap"]
+    # why it can fail: the rss allocation meets 100 ppm with centred means (scipy.stats.norm at
+    # ȳ), but the simulated means sit δ = Σ n|a| m t off, where the fallout is far larger
+    a, n = np.array([1.0, -1.0, -1.0, 0.5]), np.array([1, 2, 1, 1])
+    tv = np.array([t[k] for k in "abcd"])
+    cp = np.array([1.0, 1.33, 1.0, 0.8])
+    sigma_y = math.sqrt(np.sum(n * (a * tv / (3 * cp)) ** 2))
+    delta = float(np.sum(n * np.abs(a) * 0.5 * tv))
+    centred_ppm = (stats.norm.cdf(mean - 0.2, mean, sigma_y) + stats.norm.sf(mean + 0.2, mean, sigma_y)) * 1e6
+    shifted_ppm = (stats.norm.cdf(mean - 0.2, mean + check.shift_side * delta, sigma_y)
+                   + stats.norm.sf(mean + 0.2, mean + check.shift_side * delta, sigma_y)) * 1e6
+    assert centred_ppm == pytest.approx(100.0, rel=1e-4)
+    assert check.rss_ppm == pytest.approx(centred_ppm, rel=1e-6)
+    assert check.mean_shift_ppm == pytest.approx(shifted_ppm, rel=1e-6) and shifted_ppm > 10 * 100.0
+    # ... and the result says so, in a field every output can show
+    note = shifted.assumption_note
+    assert "places the case's mean shifts (a, b, c, d)" in note and "gap" in note
+    assert "rss allocation did not assume" in note
+    assert "--centred" in note and "--model mean-shift" in note
+    assert shifted.to_dict()["assumption_note"] == note and "\n" not in note
+    assert "note:" in repr(shifted)
+    # nothing to say when the simulation matches the model's assumptions
+    assert verify(case, t, samples=2_000, seed=5, allocated_with="rss", shift_means=False).assumption_note == ""
+    assert verify(case, t, samples=2_000, seed=5, allocated_with="mean-shift").assumption_note == ""
+    assert verify(case, t, samples=2_000, seed=5).assumption_note == ""
+    no_shift = normal_chain_case(mean - 0.2, mean + 0.2, fallout_ppm=100.0)
+    assert verify(no_shift, t, samples=2_000, seed=5, allocated_with="rss").assumption_note == ""
+
+
 # ----------------------------------------------------------------- reproducibility, memory
 
 
@@ -412,6 +450,25 @@ def test_cli_exit_1_when_target_exceeded(tmp_path):
     out = run(path, "--samples", "2e4", "--seed", "1")
     assert out.exit_code == 1
     assert "fail" in out.output
+
+
+def test_cli_rss_allocation_with_mean_shifts_explains_itself(tmp_path):
+    path = tmp_path / "shifted.toml"
+    text = CASE_TOML.format(lower=0.05).replace(
+        'name = "rail"\nnominal = 40.0\n', 'name = "rail"\nnominal = 40.0\nmean_shift = 0.8\n'
+    )
+    assert "mean_shift = 0.8" in text
+    path.write_text(text)
+    out = run(path, "--model", "rss", "--samples", "2e4", "--seed", "4")
+    assert out.exit_code in (0, 1), out.output
+    assert "note: the simulation places the case's mean shifts (rail)" in out.output
+    assert "rss allocation did not assume" in out.output and "--centred" in out.output
+    doc = json.loads(run(path, "--model", "rss", "--samples", "2e4", "--seed", "4", "--json").output)
+    assert "--centred" in doc["assumption_note"] and doc["allocated_with"] == "rss"
+    centred = run(path, "--model", "rss", "--samples", "2e4", "--seed", "4", "--centred")
+    assert "note:" not in centred.output
+    own = run(path, "--model", "mean-shift", "--samples", "2e4", "--seed", "4")
+    assert "note:" not in own.output and "mean shifts placed on the worse side" in own.output
 
 
 def test_cli_sample_bounds(case_file):

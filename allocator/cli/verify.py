@@ -217,7 +217,9 @@ def verify(case_file, tolerance_file, models, samples, seed, plot, centred, as_j
         tolerances = None
         source = "current tolerances of the case"
 
-    result = run_verify(case, tolerances, samples=samples, seed=seed, progress=True, shift_means=not centred)
+    result = run_verify(
+        case, tolerances, samples=samples, seed=seed, progress=True, shift_means=not centred, allocated_with=model
+    )
 
     if plot is not None:
         data = render_verification_plot(result, Path(plot).suffix)
@@ -284,7 +286,9 @@ def _print_human(case, result, source: str, plot) -> None:
             notes.append(f"{c.name}: no convolution (nonlinear expression)")
         if c.undefined:
             notes.append(f"{c.name}: {c.undefined:,} assemblies with an undefined response, counted as failures")
-    if any(c.shift_side for c in result.requirements):
+    if result.assumption_note:
+        notes.append(f"note: {result.assumption_note}")
+    elif any(c.shift_side for c in result.requirements):
         notes.append("mean shifts placed on the worse side of each requirement")
     notes.append(
         "statistical results assume stable, capable processes with the stated distributions; "
