@@ -59,6 +59,7 @@ MAX_CONTRIBUTORS = 100_000
 MAX_COUNT = 1_000_000  # instances of one contributor per assembly
 MAX_TABLE_ROWS = 100_000  # points in one cost table (inline or CSV)
 MAX_FRONTIER_POINTS = 2000
+MAX_LABEL_CHARS = 24  # a units label is printed in table headers: short, one line
 PPM = 1_000_000.0
 
 # names an expression reserves for its functions and constant
@@ -179,6 +180,27 @@ def _text(value, *, nonempty: bool = False) -> str:
         raise _Problem(f"must be text (got {_show(value)})")
     if nonempty and not value.strip():
         raise _Problem("must not be empty")
+    return value
+
+
+def _units_label(value) -> str:
+    """A units label: text printed beside numbers, never used to convert them.
+
+    Refused, because no table or report can honour it: anything but text, an empty or
+    blank label, more than MAX_LABEL_CHARS characters, and line breaks, tabs or other
+    non-printable characters.
+    """
+    if not isinstance(value, str):
+        raise _Problem(f'must be a text label such as "mm" (got {_show(value)})')
+    if not value.strip():
+        raise _Problem('must not be empty (a label such as "mm"; lengths are never converted)')
+    if len(value) > MAX_LABEL_CHARS:
+        raise _Problem(
+            f'must be a short label such as "mm" (at most {MAX_LABEL_CHARS} characters, got {len(value)})'
+        )
+    if not value.isprintable():
+        bad = next(ch for ch in value if not ch.isprintable())
+        raise _Problem(f'must be one line of printable text such as "mm" (got the character {bad!r})')
     return value
 
 
@@ -788,7 +810,7 @@ def _build(data: dict, source: _Source, path: Path | None, sha256: str) -> Case:
     top = _Table(source, data, "")
     top.check_keys(TOP_KEYS)
     title = top.get("title", lambda v: _text(v, nonempty=True), required="a title for the case")
-    units = top.get("units", _text, default="mm")
+    units = top.get("units", _units_label, default="mm")
     currency = top.get("currency", _text, default="")
 
     seen: dict = {}
@@ -801,13 +823,17 @@ def _build(data: dict, source: _Source, path: Path | None, sha256: str) -> Case:
     requirement_tables = top.array("requirement", header="requirement", at_least=1, at_most=MAX_CONTRIBUTORS)
     requirements = tuple(_read_requirement(item, seen, names) for item in requirement_tables)
 
+    allocation = _read_allocation(top.sub("allocation"))
+    if allocation.rounding == "iso286":
+        _check_iso286_units(top, units)
+
     case = Case(
         title=title,
         contributors=contributors,
         requirements=requirements,
         units=units,
         currency=currency,
-        allocation=_read_allocation(top.sub("allocation")),
+        allocation=allocation,
         economics=_read_economics(top.sub("economics")),
         frontier=_read_frontier(top.sub("frontier"), requirements),
         path=path,
@@ -821,6 +847,20 @@ def _build(data: dict, source: _Source, path: Path | None, sha256: str) -> Case:
             except ExpressionError as err:
                 table.fail("expression", str(err))
     return case
+
+
+def _check_iso286_units(top: _Table, units: str) -> None:
+    """ISO 286 grades are tabulated in millimetres: the one place ``units`` is a scale."""
+    from .grades import mm_per_unit
+
+    try:
+        mm_per_unit(units)
+    except ValueError:
+        top.fail(
+            "units",
+            f'{units!r} cannot be converted to millimetres for rounding = "iso286" '
+            "(use mm, m, um, μm, µm or in, or a numeric rounding step)",
+        )
 
 
 # a line that opens one more [[contributor]] / [[requirement]] table (spaces allowed)

@@ -71,6 +71,23 @@ def _table(curve: CostCurve) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     return x, y, np.diff(y) / np.diff(x)
 
 
+def _rise_problem(x: np.ndarray, y: np.ndarray) -> str | None:
+    """The first segment over which a table's cost rises (beyond round-off), or None.
+
+    The slack is 1e-9 of the largest cost, so a flat segment written with round-off
+    (1.0 then 1.0000000000000002) does not count as rising.
+    """
+    cost_slack = _RTOL * max(float(np.max(np.abs(y))), 1e-300)
+    rises = np.flatnonzero(np.diff(y) > cost_slack)
+    if not rises.size:
+        return None
+    j = rises[0]
+    return (
+        f"cost rises between tolerance {_fmt(x[j])} and {_fmt(x[j + 1])} "
+        f"(from {_fmt(y[j])} to {_fmt(y[j + 1])})"
+    )
+
+
 def _table_range_slack(x: np.ndarray) -> float:
     return _RTOL * max(abs(x[-1]), x[-1] - x[0])
 
@@ -354,7 +371,7 @@ def table_problem(curve: CostCurve) -> str | None:
     Returns
     -------
     str or None
-        One line such as ``"cost rises between tolerance 0.02 and 0.05"`` or
+        One line such as ``"cost rises between tolerance 0.02 and 0.05 (from 3 to 3.5)"`` or
         ``"not convex at tolerance 0.05 (slope -20 then -40 ...)"``.
 
     Notes
@@ -383,8 +400,8 @@ def table_problem(curve: CostCurve) -> str | None:
     --------
     >>> from allocator.model import CostCurve
     >>> table_problem(CostCurve("table", points_tolerance=(0.01, 0.02, 0.05),
-    ...                         points_cost=(5.0, 3.0, 3.5)))
-    'cost rises between tolerance 0.02 and 0.05'
+    ...                         points_cost=(5.0, 3.0, 3.5), between="choose"))
+    'cost rises between tolerance 0.02 and 0.05 (from 3 to 3.5)'
     >>> table_problem(CostCurve("table", points_tolerance=(0.01, 0.02, 0.05),
     ...                         points_cost=(5.0, 3.0, 2.4))) is None
     True
@@ -395,11 +412,9 @@ def table_problem(curve: CostCurve) -> str | None:
     if basic:
         return basic
     x, y, slopes = _table(curve)
-    cost_slack = _RTOL * max(float(np.max(np.abs(y))), 1e-300)
-    rises = np.flatnonzero(np.diff(y) > cost_slack)
-    if rises.size:
-        j = rises[0]
-        return f"cost rises between tolerance {_fmt(x[j])} and {_fmt(x[j + 1])}"
+    rise = _rise_problem(x, y)
+    if rise:
+        return rise
     slope_slack = _RTOL * max(float(np.max(np.abs(slopes))), 1e-300)
     bends = np.flatnonzero(np.diff(slopes) < -slope_slack)
     if bends.size:
@@ -469,7 +484,10 @@ def check_curve(curve: CostCurve, limits: Sequence[float] | None = None) -> str 
     -----
     The contract is ``a >= 0``, ``b > 0``, ``c > 0`` (exponential), ``k > 0``
     (reciprocal-power), all finite; a table has at least 2 points, strictly increasing
-    tolerances > 0, costs >= 0 and ``between`` in {interpolate, choose}. Under it
+    tolerances > 0, costs >= 0 and ``between`` in {interpolate, choose}; an
+    ``interpolate`` table's cost never rises from one point to the next (1e-9 relative
+    slack), while a ``choose`` table may list a dominated entry (a looser tolerance that
+    costs more, which no least-cost choice takes). Under it
 
     .. math:: C(t) \\ge 0,\\quad C'(t) < 0,\\quad C''(t) > 0 \\quad (t > 0)
 
@@ -547,6 +565,15 @@ def _check_table(curve: CostCurve, limits: Sequence[float] | None) -> str | None
         )
     if np.any(y < 0):
         return f"table costs must be >= 0 (got {_fmt(y[y < 0][0])})"
+    if curve.between == "interpolate":
+        # interpolated costs are used continuously: a looser tolerance that costs more is
+        # an error in the data (a 'choose' table may list such a dominated entry)
+        rise = _rise_problem(x, y)
+        if rise:
+            return (
+                f"{rise}: an interpolated cost must not rise as the tolerance loosens "
+                '(write between = "choose" if only the listed tolerances exist)'
+            )
     if limits is not None:
         lo, hi = (float(v) for v in limits)
         slack = _table_range_slack(x)

@@ -540,7 +540,7 @@ def test_bad_fix_and_model_are_usage_errors():
         allocate(case, "rss", fix={"c00": 0.01})
     with pytest.raises(UsageError, match="must be > 0"):
         allocate(case, "rss", fix={"c0": 0.0})
-    with pytest.raises(UsageError, match="outside its cost table"):
+    with pytest.raises(UsageError, match=r"fix: c3: tolerance 0\.5 is outside its limits \[0\.004, 0\.08\]"):
         allocate(case, "rss", fix={"c3": 0.5})
     with pytest.raises(UsageError, match="unknown model"):
         allocate(case, "rms")

@@ -17,6 +17,7 @@ from click.testing import CliRunner
 
 from allocator.case import load_case
 from allocator.cli.main import cli
+from allocator.errors import UsageError
 from allocator.solve import allocate
 
 CASES = Path(__file__).resolve().parents[1] / "cases"
@@ -148,6 +149,43 @@ def test_bad_fix_is_one_line_and_exit_2(tmp_path, fix, message):
     assert message in result.stderr
     assert len(result.stderr.strip().splitlines()) == 1 and "Traceback" not in result.output
     assert result.stdout == ""
+
+
+@pytest.mark.parametrize("value", ["0.5", "0.009", "1e-9"])
+def test_fix_outside_the_limits_is_refused_naming_them(tmp_path, value):
+    # plate can be made to ±0.01 .. ±0.2; a hold outside that is not a tolerance it has
+    path = _write(tmp_path)
+    expected = f"fix: plate: tolerance {float(value):g} is outside its limits [0.01, 0.2]"
+    result = run(path, "--fix", f"plate={value}")
+    assert result.exit_code == 2, result.output
+    assert result.stderr.strip() == f"error: {expected}"
+    assert result.stdout == "" and "Traceback" not in result.output
+    with pytest.raises(UsageError) as info:  # the library says the same
+        allocate(load_case(path), "rss", fix={"plate": float(value)})
+    assert str(info.value) == expected
+
+
+def test_fix_at_a_limit_is_accepted(tmp_path):
+    path = tmp_path / "loose.toml"  # limits wide enough for plate at its loosest
+    path.write_text(BRACKET.replace("{lower}", "-1.0").replace("upper = 0.35", "upper = 1.5"))
+    for value in ("0.01", "0.2"):
+        result = run(path, "--model", "rss", "--fix", f"plate={value}", "--json")
+        assert result.exit_code == 0, result.output
+        assert json.loads(result.stdout)["results"][0]["tolerances"]["plate"] == float(value)
+
+
+def test_fix_outside_every_process_names_each_range():
+    path = CASES / "pump_shim.toml"
+    result = run(path, "--model", "rss", "--fix", "body_depth=0.5")
+    assert result.exit_code == 2, result.output
+    line = result.stderr.strip()
+    assert len(line.splitlines()) == 1
+    assert line == (
+        "error: fix: body_depth: tolerance 0.5 is outside the limits of every process "
+        "(turning [0.02, 0.1], fine boring [0.008, 0.03], grinding [0.002, 0.01])"
+    )
+    with pytest.raises(UsageError, match="outside the limits of every process"):
+        allocate(load_case(path), "worst-case", fix={"body_depth": 0.5})
 
 
 def test_json_and_csv_together_is_a_usage_error(tmp_path):

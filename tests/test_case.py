@@ -338,3 +338,80 @@ def test_init_refuses_to_overwrite_without_force(tmp_path):
     result = CliRunner().invoke(cli, ["init", str(target), "--force"])
     assert result.exit_code == 0
     load_case(target)
+
+
+# --------------------------------------------------------------------------- units label
+
+
+@pytest.mark.parametrize("label", ["inch", "in", "µm", "N·m", "arc minutes", "x" * 24])
+def test_units_is_a_label_kept_as_written_and_never_a_scale(label):
+    from allocator.analysis import analyze
+
+    case = loads_case(MINIMAL.replace('title = "minimal"', f'title = "minimal"\nunits = "{label}"'))
+    assert case.units == label
+    # a label changes no number: the same analysis as the default "mm"
+    base = analyze(loads_case(MINIMAL)).requirements[0].to_dict()
+    assert analyze(case).requirements[0].to_dict() == base
+
+
+@pytest.mark.parametrize(
+    "value, fragment",
+    [
+        ('""', "units: must not be empty"),
+        ('"   "', "units: must not be empty"),
+        ('"""mm\ninch"""', "units: must be one line of printable text such as \"mm\" (got the character '\\n')"),
+        ('"mm\t"', "units: must be one line of printable text"),
+        ('"' + "x" * 25 + '"', "units: must be a short label such as \"mm\" (at most 24 characters, got 25)"),
+        ("25.4", "units: must be a text label such as \"mm\" (got 25.4)"),
+    ],
+    ids=["empty", "blank", "two-lines", "tab", "too-long", "number"],
+)
+def test_units_that_cannot_be_shown_as_a_label_are_refused(value, fragment):
+    err = _error(MINIMAL.replace('title = "minimal"', f'title = "minimal"\nunits = {value}'))
+    assert fragment in str(err) and str(err).startswith("t.toml: units: ")
+
+
+def test_iso286_rounding_refuses_units_it_cannot_convert_to_millimetres():
+    text = MINIMAL + '\n[allocation]\nrounding = "iso286"\n'
+    err = _error(text.replace('title = "minimal"', 'title = "minimal"\nunits = "inch"'))
+    assert "units: 'inch' cannot be converted to millimetres for rounding = \"iso286\"" in str(err)
+    assert loads_case(text.replace('title = "minimal"', 'title = "minimal"\nunits = "in"')).units == "in"
+    # with a numeric step the label is only a label
+    step = MINIMAL.replace('title = "minimal"', 'title = "minimal"\nunits = "inch"') + "\n[allocation]\nrounding = 0.001\n"
+    assert loads_case(step).units == "inch"
+
+
+def test_starter_template_says_units_is_a_label():
+    from allocator.cli.init import starter_text
+
+    line = next(l for l in starter_text().splitlines() if l.startswith("units"))
+    assert "a label, not a scale" in line and "nothing is converted" in starter_text()
+
+
+# --------------------------------------------------------------------------- rising cost tables
+
+
+def test_interpolated_cost_table_that_rises_is_refused_naming_the_points():
+    table = 'cost = { curve = "table", tolerance = [0.05, 0.1, 0.2], cost = [3.0, 1.0, 1.5] }'
+    text = MINIMAL.replace('cost = { curve = "reciprocal", b = 0.5 }', table)
+    err = _error(text)
+    assert str(err).startswith("t.toml: contributor[1] (a).cost: cost rises between tolerance 0.1 and 0.2 (from 1 to 1.5)")
+    assert 'between = "choose"' in str(err)
+
+
+def test_interpolated_csv_cost_table_that_rises_is_refused(tmp_path):
+    (tmp_path / "rising.csv").write_text("tolerance,cost\n0.05,3.0\n0.1,1.0\n0.2,1.2\n", encoding="utf-8")
+    path = _csv_case(tmp_path, "rising.csv")
+    with pytest.raises(CaseError) as info:
+        load_case(path)
+    assert str(info.value).startswith(f"{path}: contributor[1] (a).cost: cost rises between tolerance 0.1 and 0.2")
+
+
+def test_choose_cost_table_may_list_a_dominated_entry():
+    # a looser class that costs more is never worth choosing, but it is not an error
+    table = 'cost = { curve = "table", between = "choose", tolerance = [0.05, 0.1, 0.2], cost = [3.0, 1.0, 1.5] }'
+    case = loads_case(MINIMAL.replace('cost = { curve = "reciprocal", b = 0.5 }', table))
+    assert case.contributor("a").cost.points_cost == (3.0, 1.0, 1.5)
+    # flat stretches and round-off are no rise either
+    flat = 'cost = { curve = "table", tolerance = [0.05, 0.1, 0.2], cost = [3.0, 1.0, 1.0000000000000002] }'
+    assert loads_case(MINIMAL.replace('cost = { curve = "reciprocal", b = 0.5 }', flat))

@@ -152,6 +152,28 @@ def test_seven_by_six_choose_tables_match_enumeration(model):
     assert result.total_cost == pytest.approx(cost[ok].min(), rel=1e-9)
 
 
+def test_choose_table_with_a_dominated_entry_matches_enumeration():
+    # x0 lists 0.04 at 2.5, dearer than 0.02 at 2.0: accepted by the loader, never worth taking
+    x0 = Contributor(name="x0", nominal=10.0, tolerance=0.02, limits=(0.01, 0.04),
+                     cost=_choose([0.01, 0.02, 0.04], [4.0, 2.0, 2.5]))
+    x1 = Contributor(name="x1", nominal=6.0, tolerance=0.03, limits=(0.01, 0.05),
+                     cost=_choose([0.01, 0.03, 0.05], [3.0, 1.5, 1.0]))
+    req = Requirement(name="gap", chain={"x0": 1.0, "x1": -1.0}, lower=3.93, upper=4.07)
+    case = _case([x0, x1], [req])
+    result = allocate(case, "worst-case")
+    # exact enumeration of the 3 x 3 choices (worst case: t0 + t1 <= 0.07)
+    best = min(
+        (c0 + c1, t0, t1)
+        for (t0, c0), (t1, c1) in itertools.product(
+            zip(x0.cost.points_tolerance, x0.cost.points_cost), zip(x1.cost.points_tolerance, x1.cost.points_cost)
+        )
+        if t0 + t1 <= 0.07 + 1e-12
+    )
+    assert best == (3.0, 0.02, 0.05)
+    assert result.success and result.total_cost == pytest.approx(best[0], rel=1e-12)
+    assert result.tolerances["x0"] == 0.02
+
+
 def test_dispatch_and_shadow_prices_of_a_discrete_choice():
     case = _choose_case(4, 3, "rss", seed=3)
     assert needs_discrete(case)

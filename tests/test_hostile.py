@@ -201,7 +201,7 @@ def test_the_same_case_with_a_plain_expression_loads(tmp_path):
         ("title = " + "[" * 100_000 + "]" * 100_000 + "\n", "not valid TOML"),
         ("title = " + "{a = " * 10_000 + "1" + "}" * 10_000 + "\n", "not valid TOML"),
         ('title = "t"\n' + "[" + "a." * 10_000 + "a]\nb = 1\n", "unknown key 'a'"),
-        ('title = "t"\nunits = "' + "\\u0000" * 1000 + '"\n', "contributor: missing"),
+        ('title = "t"\nunits = "' + "\\u0000" * 1000 + '"\n', "units: must be a short label"),
     ],
     ids=["arrays-1e5-deep", "inline-tables-1e4-deep", "dotted-key-1e4-long", "nul-characters"],
 )

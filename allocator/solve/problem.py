@@ -806,8 +806,18 @@ def shadow_prices(model: str, req: RequirementData, lim: Limits, stats: dict, y:
 # --------------------------------------------------------------------------- prepare
 
 
+# A held tolerance written equal to a limit (up to float noise) is inside it.
+_FIX_RTOL = 1e-9
+
+
 def check_fix_values(case: Case, fix) -> dict[str, float]:
-    """``fix`` as name -> float, each naming a contributor and holding a finite t > 0."""
+    """``fix`` as name -> float: each names a contributor and holds a finite t > 0 inside
+    its limits (with processes: inside the limits of at least one process).
+
+    A held tolerance the part cannot be made to is refused rather than priced off its cost
+    curve. A case-``fixed`` contributor keeps its own tolerance, so its entry is not
+    checked against limits.
+    """
     out = {}
     for name, value in (fix or {}).items():
         if name not in case.names:
@@ -818,24 +828,17 @@ def check_fix_values(case: Case, fix) -> dict[str, float]:
             raise UsageError(f"fix: {name}: tolerance must be a number (got {value!r})") from None
         if not (math.isfinite(value) and value > 0):
             raise UsageError(f"fix: {name}: tolerance must be > 0 (got {value:g})")
-        out[name] = value
-    return out
-
-
-def _check_fix(case: Case, fix) -> dict[str, float]:
-    """:func:`check_fix_values`, and a held value must lie in its cost table's range
-    (the continuous solver prices every contributor on its curve)."""
-    out = check_fix_values(case, fix)
-    for name, value in out.items():
         c = case.contributor(name)
-        option = c.options()[0]
-        if option.cost is not None and option.cost.curve == "table":
-            x = option.cost.points_tolerance
-            if not x[0] * (1 - 1e-9) <= value <= x[-1] * (1 + 1e-9):
-                raise UsageError(
-                    f"fix: {name}: tolerance {value:g} is outside its cost table's range "
-                    f"[{x[0]:g}, {x[-1]:g}]"
-                )
+        if not c.fixed:
+            options = c.options()
+            if not any(lo * (1 - _FIX_RTOL) <= value <= hi * (1 + _FIX_RTOL) for lo, hi in (p.limits for p in options)):
+                if c.processes:
+                    ranges = ", ".join(f"{p.name} [{p.limits[0]:g}, {p.limits[1]:g}]" for p in options)
+                    where = f"the limits of every process ({ranges})"
+                else:
+                    where = f"its limits [{options[0].limits[0]:g}, {options[0].limits[1]:g}]"
+                raise UsageError(f"fix: {name}: tolerance {value:g} is outside {where}")
+        out[name] = value
     return out
 
 
@@ -846,11 +849,11 @@ def prepare(case: Case, model: str, fix: Mapping[str, float] | None = None) -> A
     ------
     UsageError
         Unknown model, a ``fix`` entry naming no contributor or holding a tolerance
-        ≤ 0; :class:`NeedsDiscrete` (a UsageError) for a contributor that needs process
+        ≤ 0 or outside the contributor's limits; :class:`NeedsDiscrete` (a UsageError) for a contributor that needs process
         selection (the discrete solver's job).
     CaseError
         A ``table`` cost that is not convex and decreasing (named, with the reason).
     """
     if model not in MODELS:
         raise UsageError(f"unknown model {model!r}{_close(model, MODELS)} (choose from {', '.join(MODELS)})")
-    return AllocationProblem(case, model, _check_fix(case, fix), check=True)
+    return AllocationProblem(case, model, check_fix_values(case, fix), check=True)
