@@ -38,3 +38,23 @@ class InfeasibleError(AllocatorError):
     """A requirement cannot be met (exit code 1)."""
 
     exit_code = 1
+
+
+class InternalError(AllocatorError):
+    """A computation failed unexpectedly: a bug, not bad input nor an unmeetable
+    requirement (exit code 3).
+
+    ``str(err)`` is one line naming where it happened and the original error; the
+    original exception is kept as ``__cause__`` (and ``err.original``) for a bug report.
+    """
+
+    exit_code = 3
+
+    def __init__(self, where: str, original: BaseException):
+        self.where = where
+        self.original = original
+        detail = " ".join(str(original).split()) or "(no message)"
+        super().__init__(
+            f"internal error in {where}: {type(original).__name__}: {detail} "
+            "(a bug in allocator, not a problem with the case; please report it with the case file)"
+        )

@@ -14,6 +14,7 @@ never shown by colour alone. Text from the case file is escaped everywhere.
 
 from __future__ import annotations
 
+import contextlib
 import html
 import io
 import math
@@ -304,31 +305,43 @@ class Report:
         """Section id -> inline SVG markup of its plot (only sections that have one)."""
         out = {}
         if self.frontier is not None:
-            out["frontier"] = _inline_svg(_frontier_svg(self), "fr", "Cost frontier plot")
-        out["contributions"] = _inline_svg(_contributions_svg(self), "co", "Contributions to variation, horizontal bars")
-        out["verification"] = _inline_svg(_verification_svg(self), "mc", "Monte Carlo histogram of each requirement")
+            with _working_on("frontier"):
+                out["frontier"] = _inline_svg(_frontier_svg(self), "fr", "Cost frontier plot")
+        with _working_on("contributions"):
+            out["contributions"] = _inline_svg(_contributions_svg(self), "co", "Contributions to variation, horizontal bars")
+        with _working_on("verification"):
+            out["verification"] = _inline_svg(_verification_svg(self), "mc", "Monte Carlo histogram of each requirement")
         return out
 
     # ------------------------------------------------------------------ html
 
     def to_html(self) -> str:
-        """The report as one self-contained HTML document."""
+        """The report as one self-contained HTML document.
+
+        Raises
+        ------
+        InternalError
+            Formatting a section failed unexpectedly (names the section).
+        """
         figures = self.figures()
-        body = [
-            _header(self),
-            "<main>",
-            _section_summary(self),
-            _section_analysis(self),
-            _section_allocation(self),
-            _section_frontier(self, figures.get("frontier")),
-            _section_contributions(self, figures["contributions"]),
-            _section_verification(self, figures["verification"]),
-            _section_shadow(self),
-            _section_supplier(self),
-            _section_cautions(self),
-            _section_reproducibility(self),
-            "</main>",
-        ]
+        sections = (
+            ("summary", _section_summary, ()),
+            ("analysis", _section_analysis, ()),
+            ("allocation", _section_allocation, ()),
+            ("frontier", _section_frontier, (figures.get("frontier"),)),
+            ("contributions", _section_contributions, (figures["contributions"],)),
+            ("verification", _section_verification, (figures["verification"],)),
+            ("shadow-prices", _section_shadow, ()),
+            ("supplier", _section_supplier, ()),
+            ("cautions", _section_cautions, ()),
+            ("reproducibility", _section_reproducibility, ()),
+        )
+        with _working_on(None):
+            body = [_header(self), "<main>"]
+        for name, render, extra in sections:
+            with _working_on(name):
+                body.append(render(self, *extra))
+        body.append("</main>")
         title = f"Tolerance allocation report: {self.case.title}"
         return (
             "<!DOCTYPE html>\n"
@@ -339,6 +352,29 @@ class Report:
             + "\n".join(body)
             + "\n</body>\n</html>\n"
         )
+
+
+@contextlib.contextmanager
+def _working_on(section: str | None, detail: str = ""):
+    """Let an unexpected exception while computing or formatting ``section`` (an id of
+    :data:`SECTIONS`; None: the page header) end the report as an
+    :class:`~allocator.errors.InternalError` naming the section (and ``detail``).
+
+    Library errors (bad input, usage) pass unchanged: they already say what is wrong. A
+    failure is never turned into text in the report, so a report written with "ok" hides
+    none.
+    """
+    from .errors import AllocatorError, InternalError
+
+    try:
+        yield
+    except AllocatorError:
+        raise
+    except Exception as err:
+        where = "the report header" if section is None else f"report section '{dict(SECTIONS)[section]}'"
+        if detail:
+            where += f" ({detail})"
+        raise InternalError(where, err) from err
 
 
 def recommended_model(allocations: dict) -> str | None:
@@ -388,6 +424,14 @@ def build_report(
     -------
     Report
         Holds every library result; :meth:`Report.to_html` formats them.
+
+    Raises
+    ------
+    CaseError, UsageError
+        Bad input (as the library functions raise them).
+    InternalError
+        A computation failed unexpectedly (names the section); never shown as text in
+        the report.
     """
     from . import __version__
     from .analysis import analyze
@@ -396,29 +440,38 @@ def build_report(
     from .supplier import supplier_sheet
 
     models = tuple(dict.fromkeys(models or case.allocation.models))
-    allocations = {m: allocate(case, m) for m in models}
+    allocations = {}
+    for m in models:
+        with _working_on("allocation", f"model {m}"):
+            allocations[m] = allocate(case, m)
     recommended = recommended_model(allocations)
-    analysis = analyze(case)
+    with _working_on("analysis"):
+        analysis = analyze(case)
     rec_alloc = allocations.get(recommended)
-    recommended_analysis = analyze(case, dict(rec_alloc.tolerances)) if rec_alloc is not None else None
+    with _working_on("allocation"):
+        recommended_analysis = analyze(case, dict(rec_alloc.tolerances)) if rec_alloc is not None else None
 
-    unrounded = _unrounded_allocations(case, allocations)
+    with _working_on("shadow-prices"):
+        unrounded = _unrounded_allocations(case, allocations)
 
     if include_frontier:
-        frontier, frontier_message = _run_frontier(case, models, frontier_points)
+        with _working_on("frontier"):
+            frontier, frontier_message = _run_frontier(case, models, frontier_points)
     else:
         frontier, frontier_message = None, "left out of this report on request"
 
-    if rec_alloc is not None:
-        verification = verify(
-            case, dict(rec_alloc.tolerances), samples=samples, seed=seed, allocated_with=recommended
-        )
-        basis = "allocation"
-    else:
-        verification = verify(case, None, samples=samples, seed=seed)
-        basis = "current"
+    with _working_on("verification"):
+        if rec_alloc is not None:
+            verification = verify(
+                case, dict(rec_alloc.tolerances), samples=samples, seed=seed, allocated_with=recommended
+            )
+            basis = "allocation"
+        else:
+            verification = verify(case, None, samples=samples, seed=seed)
+            basis = "current"
 
-    supplier = supplier_sheet(case, recommended, rec_alloc) if rec_alloc is not None else None
+    with _working_on("supplier"):
+        supplier = supplier_sheet(case, recommended, rec_alloc) if rec_alloc is not None else None
 
     return Report(
         case=case,
@@ -489,12 +542,13 @@ def _unrounded_allocations(case, allocations) -> dict:
 
 
 def _run_frontier(case, models, points):
-    """The cost frontier, or None and the reason when the sweep cannot be made.
+    """The cost frontier and its note ("" when there is none to make).
 
-    A sweep the case cannot support (say, an automatic range that finds no feasible
-    span) is a finding to show in section 4, not a reason to withhold the whole report.
+    A sweep the case's ``[frontier]`` settings cannot support (a range on the wrong side
+    of the other limit, say) is bad input: the :class:`~allocator.errors.UsageError` names
+    the report section and the report is not written.
     """
-    from .errors import AllocatorError
+    from .errors import UsageError
     from .sweep import frontier
 
     kwargs = {"models": models}
@@ -502,8 +556,8 @@ def _run_frontier(case, models, points):
         kwargs["points"] = points
     try:
         return frontier(case, **kwargs), ""
-    except AllocatorError as err:
-        return None, str(err)
+    except UsageError as err:
+        raise UsageError(f"report section '{dict(SECTIONS)['frontier']}': {err}") from err
 
 
 def _versions(own: str) -> dict:
@@ -1220,7 +1274,7 @@ def _section_supplier(report: Report) -> str:
             tightened = "<br>".join(
                 f'<span class="nw">{_e(name)} {_t(before)} → {_t(after)}</span>' for name, before, after in r.tightened
             ) or ("none" if r.status == "solved" else "")
-            status = "" if r.status == "solved" else _flag(r.status, "bad" if r.status in ("infeasible", "failed", "error") else "")
+            status = "" if r.status == "solved" else _flag(r.status, "bad" if r.status in ("infeasible", "failed") else "")
             rows.append(
                 [
                     _e(r.contributor),

@@ -204,3 +204,34 @@ def test_infeasible_requirement_exits_1_with_its_name(tmp_path):
     assert "exceeds upper 0.21 by 0.02" in result.stdout and "below lower 0.18 by 0.01" in result.stdout
     doc = json.loads(run(path, "--model", "worst-case", "--json").stdout)
     assert doc["results"][0]["status"] == "infeasible" and doc["results"][0]["total_cost"] is None
+
+
+@pytest.mark.parametrize("output", ["human", "--json"])
+def test_one_model_crashing_does_not_hide_the_models_that_solved(tmp_path, monkeypatch, output):
+    # mean shift once raised inside its solver: nothing was printed, not even rss's answer
+    import allocator.solve
+
+    path = _write(tmp_path)
+    expected = allocate(load_case(path), "rss")
+    original = allocator.solve.allocate
+
+    def spoiled(case, model=None, **kwargs):
+        if model == "mean-shift":
+            raise ValueError("zero-size array to reduction operation maximum which has no identity")
+        return original(case, model, **kwargs)
+
+    monkeypatch.setattr(allocator.solve, "allocate", spoiled)
+    args = [path, "--model", "rss", "--model", "mean-shift"] + ([output] if output != "human" else [])
+    result = run(*args)
+    assert result.exit_code == 3
+    assert "Traceback" not in result.output
+    lines = result.stderr.splitlines()
+    assert len(lines) == 1
+    assert lines[0].startswith("error: internal error in model mean-shift: ValueError: zero-size array")
+    if output == "--json":
+        doc = json.loads(result.stdout)
+        assert [r["model"] for r in doc["results"]] == ["rss"]
+        assert doc["results"][0]["total_cost"] == pytest.approx(expected.total_cost, rel=1e-12)
+    else:
+        assert "model rss: optimal" in result.stdout
+        assert f"total cost {expected.total_cost:.6g}" in result.stdout

@@ -245,6 +245,120 @@ def test_held_contributor_with_processes_still_chooses_its_process():
     assert result.tolerances["shaft"] == 0.03
 
 
+# --------------------------------------------------------------------------- mean shift, δ fixed
+
+
+def _sigma_factor_reference(distribution, cp):
+    """σ / t written out: ±t = ±3·cp·σ (normal), σ² = t²/6 (symmetric triangle on ±t)."""
+    return 1.0 / (3.0 * cp) if distribution == "normal" else 1.0 / np.sqrt(6.0)
+
+
+def _enumerate(case, model):
+    """Cheapest combination of options meeting every requirement, by itertools.product.
+
+    Fallout with scipy.stats.norm at the worst end of the mean band ȳ ± δ,
+    δ = Σ n|a|·mean_shift·t (δ = 0 under rss); returns (cost, {name: (process, t)}, second
+    cheapest feasible cost).
+    """
+    options = []
+    for c in case.contributors:
+        rows = []
+        for p in c.options():
+            f = _sigma_factor_reference(c.distribution, p.cp if p.cp is not None else c.cp)
+            if c.fixed:
+                rows.append((p.name, c.tolerance, f, 0.0))
+                continue
+            for t, price in zip(p.cost.points_tolerance, p.cost.points_cost):
+                rows.append((p.name, t, f, price))
+        options.append(rows)
+    n = np.array([c.count for c in case.contributors], dtype=float)
+    m = np.array([c.mean_shift for c in case.contributors]) if model == "mean-shift" else 0.0
+    found = []
+    for combo in itertools.product(*options):
+        t = np.array([o[1] for o in combo])
+        f = np.array([o[2] for o in combo])
+        ok = True
+        for req in case.requirements:
+            a = np.array([req.chain.get(c.name, 0.0) for c in case.contributors])
+            nominal = sum(a_i * n_i * c.nominal for a_i, n_i, c in zip(a, n, case.contributors))
+            sigma = np.sqrt(np.sum(n * (a * f * t) ** 2))
+            delta = np.sum(n * np.abs(a) * m * t)
+            fallout = max(stats.norm.cdf(req.lower, mu, sigma) + stats.norm.sf(req.upper, mu, sigma)
+                          for mu in (nominal - delta, nominal + delta))
+            ok &= fallout <= req.fallout_ppm * 1e-6
+        if ok:
+            found.append((float(n @ [o[3] for o in combo]), {c.name: o[:2] for c, o in zip(case.contributors, combo)}))
+    found.sort(key=lambda x: x[0])
+    return found[0][0], found[0][1], found[1][0]
+
+
+def _shifted_case(mean_shifts=None, held_shift=None):
+    """Invented: choose tables and a part made by one of two processes, no mean shifts
+    unless given; with ``held_shift`` a second requirement over parts without a free
+    mean-shift contributor (one held part with that mean shift)."""
+    ms = mean_shifts or {}
+    contributors = [
+        Contributor(name="a", nominal=10.0, tolerance=0.02, limits=(0.01, 0.04), mean_shift=ms.get("a", 0.0),
+                    cost=_choose([0.01, 0.02, 0.04], [3.0, 1.6, 1.0])),
+        Contributor(name="b", nominal=4.0, tolerance=0.015, limits=(0.005, 0.03), distribution="triangular",
+                    mean_shift=ms.get("b", 0.0), cost=_choose([0.005, 0.015, 0.03], [4.0, 2.0, 1.2])),
+        Contributor(name="c", nominal=3.0, tolerance=0.02, processes=(
+            Process("mill", (0.02, 0.05), _choose([0.02, 0.05], [1.5, 0.8]), cp=0.8),
+            Process("grind", (0.005, 0.01), _choose([0.005, 0.01], [3.5, 2.5]), cp=1.67),
+        )),
+        Contributor(name="d", nominal=1.0, tolerance=0.03, limits=(0.01, 0.03), count=2, cp=1.33,
+                    cost=_choose([0.01, 0.03], [1.0, 0.4])),
+    ]
+    # y = a − b + 2c − 2·d (d twice) = 10 − 4 + 6 − 2 = 10
+    requirements = [Requirement(name="gap", chain={"a": 1, "b": -1, "c": 2, "d": -1},
+                                lower=9.94, upper=10.06, fallout_ppm=100)]
+    if held_shift is not None:
+        contributors.append(Contributor(name="e", nominal=5.0, tolerance=0.01, fixed=True,
+                                        mean_shift=held_shift))
+        # y = c + e = 3 + 5 = 8; its only mean shift is the held part's
+        requirements.append(Requirement(name="stack", chain={"c": 1, "e": 1},
+                                        lower=7.9835, upper=8.0165, fallout_ppm=1000))
+    return _case(contributors, requirements, models=("rss", "mean-shift"))
+
+
+def test_mean_shift_without_mean_shifts_equals_rss_and_enumeration():
+    # with every mean shift 0 the band ȳ ± δ is ȳ: mean shift is rss (CASE-FORMAT "The models")
+    case = _shifted_case()
+    expected, choice, runner_up = _enumerate(case, "rss")
+    assert runner_up > expected * (1 + 1e-6)  # one optimum: the choices are comparable
+    results = {model: DiscreteAllocation(case, model).solve() for model in ("rss", "mean-shift")}
+    for model, result in results.items():
+        assert result.status == "optimal", (model, result.message)
+        assert result.total_cost == pytest.approx(expected, rel=1e-9)
+        assert {k: (result.processes[k], result.tolerances[k]) for k in choice} == choice
+    assert results["mean-shift"].total_cost == pytest.approx(results["rss"].total_cost, rel=1e-9)
+
+
+@pytest.mark.parametrize("held_shift", [0.0, 0.5])
+def test_mean_shift_with_one_requirement_without_free_mean_shifts(held_shift):
+    # "gap" has mean-shift contributors; "stack" has none that is free (δ = 0, or the
+    # held part's constant n|a|·m·t): each against enumeration of the true fallout
+    case = _shifted_case({"a": 0.3, "b": 0.2}, held_shift=held_shift)
+    expected, choice, _ = _enumerate(case, "mean-shift")
+    result = DiscreteAllocation(case, "mean-shift").solve()
+    assert result.status == "optimal", result.message
+    assert result.total_cost == pytest.approx(expected, rel=1e-9)
+    assert {k: (result.processes[k], result.tolerances[k]) for k in choice} == choice
+
+
+@pytest.mark.parametrize("name", ["divider_output.toml", "pump_shim.toml"])
+def test_demos_without_mean_shifts_allocate_under_mean_shift_as_under_rss(name):
+    from allocator.case import load_case
+
+    case = load_case(CASES / name)
+    assert not case.mean_shifts.any()
+    shifted = allocate(case, "mean-shift")
+    plain = allocate(case, "rss")
+    assert shifted.status == "optimal", shifted.message
+    assert shifted.total_cost == pytest.approx(plain.total_cost, rel=1e-9)
+    assert shifted.processes == plain.processes
+
+
 # --------------------------------------------------------------------------- rounding
 
 

@@ -381,3 +381,72 @@ def test_same_seed_same_report():
     first = build_report(case, ["rss"], **options).to_html()
     second = build_report(case, ["rss"], **options).to_html()
     assert first == second
+
+
+# --------------------------------------------------------------------------- failures
+
+
+def _spoil_the_held_resolve(monkeypatch):
+    """Make every allocation with a held tolerance (the supplier sheet's re-solve) raise."""
+    import allocator.solve
+
+    original = allocator.solve.allocate
+
+    def spoiled(case, model=None, *, fix=None, **kwargs):
+        if fix:
+            raise ValueError("zero-size array to reduction operation\nmaximum which has no identity")
+        return original(case, model, fix=fix, **kwargs)
+
+    monkeypatch.setattr(allocator.solve, "allocate", spoiled)
+
+
+def _assert_one_line_failure(result, out, exit_code, *words):
+    assert result.exit_code == exit_code, result.output
+    assert isinstance(result.exception, SystemExit)  # handled, not a crash of the command
+    assert "Traceback" not in result.output
+    assert result.stdout == ""  # no "wrote ...: ok"
+    lines = result.stderr.splitlines()
+    assert len(lines) == 1 and lines[0].startswith("error: "), result.stderr
+    for word in words:
+        assert word in lines[0]
+    assert not out.exists()
+    assert list(out.parent.iterdir()) == []
+
+
+def test_cli_an_error_inside_a_section_fails_the_run_and_writes_nothing(tmp_path, monkeypatch):
+    # the supplier sheet once printed an exception's text in a cell while the command said "ok"
+    _spoil_the_held_resolve(monkeypatch)
+    out = tmp_path / "review.html"
+    result = _invoke(CASES / "gearbox_end_play.toml", "-o", out, "--model", "rss", "--samples", 1000,
+                     "--no-frontier")
+    _assert_one_line_failure(result, out, 3, "internal error", "8 Supplier sheet", "ValueError",
+                             "zero-size array to reduction operation maximum")
+
+
+def test_cli_an_error_while_formatting_a_section_fails_the_run(tmp_path, monkeypatch):
+    import allocator.report
+
+    def broken(report):
+        raise KeyError("missing")
+
+    monkeypatch.setattr(allocator.report, "_section_shadow", broken)
+    out = tmp_path / "review.html"
+    result = _invoke(CASES / "gearbox_end_play.toml", "-o", out, "--model", "rss", "--samples", 1000,
+                     "--no-frontier")
+    _assert_one_line_failure(result, out, 3, "internal error", "7 Shadow prices", "KeyError")
+
+
+def test_cli_a_frontier_range_the_requirement_cannot_take_is_bad_input(tmp_path):
+    # [frontier] sweeps the upper limit from 0.01, below the lower limit 0.05: the case is
+    # read without complaint, the sweep refuses it; once a note in section 4 of an "ok" report
+    text = (CASES / "gearbox_end_play.toml").read_text(encoding="utf-8").replace(
+        "range = [0.25, 0.60]", "range = [0.01, 0.60]")
+    case_dir = tmp_path / "case"
+    case_dir.mkdir()
+    path = case_dir / "sweep.toml"
+    path.write_text(text, encoding="utf-8")
+    out_dir = tmp_path / "out"
+    out_dir.mkdir()
+    out = out_dir / "review.html"
+    result = _invoke(path, "-o", out, "--model", "rss", "--samples", 1000, "--frontier-points", POINTS)
+    _assert_one_line_failure(result, out, 2, "4 Cost frontier", "upper values must stay above the lower limit")

@@ -137,3 +137,18 @@ def test_at_loosest_and_infeasible_base():
     sheet = supplier_sheet(impossible, "worst-case")
     assert sheet.status == "infeasible" and not sheet.success
     assert sheet.rows == []
+
+
+def test_an_error_in_a_re_solve_is_raised_not_written_into_a_row(monkeypatch):
+    # a row once held the exception's text as its message (status 'error')
+    import allocator.solve
+
+    case = load_case(CASES / "gearbox_end_play.toml")
+    base = allocate(case, "rss")
+
+    def spoiled(*args, **kwargs):
+        raise ValueError("zero-size array to reduction operation maximum which has no identity")
+
+    monkeypatch.setattr(allocator.solve, "allocate", spoiled)
+    with pytest.raises(ValueError, match="zero-size array"):
+        supplier_sheet(case, "rss", base)

@@ -6,7 +6,7 @@ import sys
 
 import click
 
-from ..errors import UsageError
+from ..errors import AllocatorError, InternalError, UsageError
 from .common import (
     CASE_ARGUMENT,
     csv_option,
@@ -63,7 +63,8 @@ def allocate(case_file, models, fixes, as_json, as_csv):
 
     Exit code 1 when a model's requirements cannot be met (the reason names the
     requirement, by how much the tightest tolerances miss it and the largest
-    contributors) or no verified optimum was found.
+    contributors) or no verified optimum was found; 3 when a model's solver failed
+    unexpectedly (a bug: the models that solved are still shown, then the error).
     """
     from ..solve import allocate as run
 
@@ -72,8 +73,18 @@ def allocate(case_file, models, fixes, as_json, as_csv):
     fix = _parse_fix(fixes)
     case = load_case_or_exit(case_file)
     models = tuple(models) or tuple(case.allocation.models)
-    results = [run(case, m, fix=fix) for m in models]
-    baselines = [run(case, m) for m in models] if fix else [None] * len(models)
+    results, baselines, crashed = [], [], []
+    for m in models:
+        try:
+            result = run(case, m, fix=fix)
+            base = run(case, m) if fix else None
+        except AllocatorError:
+            raise  # bad input: one line, exit 2, nothing else
+        except Exception as err:  # a bug in one model must not hide the others
+            crashed.append(InternalError(f"model {m}", err))
+            continue
+        results.append(result)
+        baselines.append(base)
 
     if as_json:
         documents = []
@@ -93,6 +104,10 @@ def allocate(case_file, models, fixes, as_json, as_csv):
     failed = [r for r in results if not r.success]
     for r in failed:
         click.echo(f"error: {r.model}: {r.status}: {r.message}", err=True)
+    for err in crashed:
+        click.echo(f"error: {err}", err=True)
+    if crashed:
+        sys.exit(crashed[0].exit_code)
     if failed:
         sys.exit(1)
 

@@ -56,7 +56,8 @@ def report(case_file, output, models, samples, seed, frontier_points, no_frontie
 
     Exit codes: 0 written and every allocation optimal (and its verification passes);
     1 written, but a model cannot meet a requirement (or the verification fails): the
-    report says which, at the top; 2 bad input or usage: nothing written.
+    report says which, at the top; 2 bad input or usage: nothing written; 3 a section
+    failed unexpectedly (a bug; the message names the section): nothing written.
     """
     from ..report import write_report
 

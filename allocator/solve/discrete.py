@@ -18,6 +18,8 @@ one-hot binaries ``x_ij`` (Chase, Greenwood, Loosli & Hauglund 1990):
   by one binary per interval of δ (``V ≤ g(δ_k)²`` on ``[δ_k, δ_(k+1)]``), then made exact
   by lazy cuts: solve, check the true constraint in numpy, add cuts that remove the
   violating choice and no feasible one, repeat (see :meth:`DiscreteAllocation._cuts`).
+  A requirement whose δ no choice moves (no free contributor with a mean shift) is the
+  rss row with ``σ_max = g(δ)``, as in the continuous solvers (``g(0)`` is rss's σ_max).
 
 Every MILP is solved by HiGHS (``scipy.optimize.milp``) to a proven optimum (relative and
 absolute MIP gap 0). Each choice is re-checked in numpy against the exact constraint, and
@@ -594,14 +596,26 @@ class DiscreteAllocation:
                 base.add(variance(unit_v[r]) / sigma_max**2, 1.0)
                 checks.append((r, "rss", sigma_max, lim))
             else:
+                # δ's least and largest value over the choices; equal when no choice moves
+                # the mean band (no contributor with a mean shift, or none free)
+                low = float(np.sum(np.minimum.reduceat(unit_d[r] * t, cand.starts)))
+                high = float(np.sum(np.maximum.reduceat(unit_d[r] * cand.value, cand.starts)))
+                if not low < room:
+                    # every choice puts the worst mean on or past a limit: fallout ≥ 50 %
+                    return _MilpOutcome("infeasible", None, None, None, None, 0, 0, 0,
+                                        f"requirement '{req.name}': the mean band reaches a limit")
+                if not high > low:
+                    # δ is the same constant for every choice (0 without mean shifts): the
+                    # requirement is rss with σ_max = g(δ), as in the continuous solvers
+                    sigma_max = mean_shift_allowance(req.nominal, low, lim)[0]
+                    base.add(variance(unit_v[r]) / sigma_max**2, 1.0)
+                    checks.append((r, "rss", sigma_max, lim))
+                    continue
                 # the worst mean must stay inside the limits (fallout ≥ 50 % otherwise)
                 base.add(linear(unit_d[r]) / room, 1.0)
                 checks.append((r, "mean-shift", room, lim))
                 key = (r, n_tau > 0)
                 if key not in self._breaks:
-                    d_lo = unit_d[r] * t
-                    low = float(np.sum(np.minimum.reduceat(d_lo, cand.starts)))
-                    high = float(np.sum(np.maximum.reduceat(unit_d[r] * cand.value, cand.starts)))
                     # fine intervals make the points MILP exact in one solve as a rule; the
                     # lower bound's MILP (continuous columns too) is faster with fewer
                     involved = int(np.count_nonzero(np.maximum.reduceat(unit_d[r] + unit_s[r], cand.starts)))
