@@ -75,10 +75,10 @@ TOP_KEYS = (
 )
 CONTRIBUTOR_KEYS = (
     "name", "description", "nominal", "tolerance", "limits", "cp", "mean_shift",
-    "distribution", "count", "fixed", "cost", "process",
+    "distribution", "count", "fixed", "cost", "process", "units",
 )
 PROCESS_KEYS = ("name", "limits", "cost", "cp")
-REQUIREMENT_KEYS = ("name", "chain", "expression", "lower", "upper", "fallout_ppm")
+REQUIREMENT_KEYS = ("name", "chain", "expression", "lower", "upper", "fallout_ppm", "units")
 ALLOCATION_KEYS = ("models", "rounding")
 ECONOMICS_KEYS = ("volume", "scrap_cost")
 FRONTIER_KEYS = ("requirement", "vary", "range", "points")
@@ -180,6 +180,19 @@ def _text(value, *, nonempty: bool = False) -> str:
     if nonempty and not value.strip():
         raise _Problem("must not be empty")
     return value
+
+
+MAX_LABEL = 32  # characters of a units label
+
+
+def _label(value) -> str:
+    """A units label (text only, never converted): not empty, short, printable."""
+    text = _text(value, nonempty=True).strip()
+    if len(text) > MAX_LABEL:
+        raise _Problem(f"must be a short units label (at most {MAX_LABEL} characters, got {len(text)})")
+    if not text.isprintable():
+        raise _Problem(f"must be printable text on one line (got {text!r})")
+    return text
 
 
 def _choice(value, options) -> str:
@@ -592,6 +605,7 @@ def _read_contributor(item: _Table, seen: dict) -> Contributor:
     mean_shift = item.get("mean_shift", lambda v: _bounded(v, ge=0, le=1), default=0.0)
     count = item.get("count", lambda v: _integer(v, minimum=1, maximum=MAX_COUNT), default=1)
     fixed = item.get("fixed", _boolean, default=False)
+    units = item.get("units", _label)
 
     processes = ()
     limits = curve = None
@@ -642,6 +656,7 @@ def _read_contributor(item: _Table, seen: dict) -> Contributor:
         distribution=distribution,
         count=count,
         fixed=fixed,
+        units=units,
     )
 
 
@@ -704,8 +719,10 @@ def _read_requirement(item: _Table, seen: dict, names) -> Requirement:
     if lower is not None and upper is not None and not lower < upper:
         item.fail("upper", f"must be greater than lower (got lower {lower!r}, upper {upper!r})")
     fallout_ppm = item.get("fallout_ppm", lambda v: _bounded(v, gt=0, lt=PPM), default=DEFAULT_FALLOUT_PPM)
+    units = item.get("units", _label)
     return Requirement(
-        name=name, chain=chain, expression=expression, lower=lower, upper=upper, fallout_ppm=fallout_ppm
+        name=name, chain=chain, expression=expression, lower=lower, upper=upper, fallout_ppm=fallout_ppm,
+        units=units,
     )
 
 
