@@ -10,6 +10,7 @@ import numpy as np
 
 from . import stack
 from .chain import linearise
+from .model import per_unit
 
 
 @dataclass(frozen=True)
@@ -22,6 +23,8 @@ class Contribution:
     tolerance: float  # ± [length]
     worst_case: float  # ± count·|a|·t [response]
     variance_share: float  # share of σ_y² [-], 0..1
+    units: str = ""  # label of the contributor's tolerance
+    sensitivity_units: str = ""  # label of ∂y/∂x: requirement units per contributor unit
 
 
 @dataclass(frozen=True)
@@ -47,6 +50,7 @@ class RequirementAnalysis:
     # round-off margin of stack.limit_margin (the one comparison used for every verdict)
     worst_case_below: float = 0.0
     worst_case_above: float = 0.0
+    units: str = ""  # label of the response, its limits, worst case, σ and δ
 
     @property
     def fallout_ppm(self) -> float:
@@ -95,6 +99,7 @@ class RequirementAnalysis:
             "mean_shift_below_ppm": self.mean_shift_below_ppm,
             "mean_shift_above_ppm": self.mean_shift_above_ppm,
             "linear": self.linear,
+            "units": self.units,
             "contributors": [
                 {
                     "name": c.name,
@@ -103,6 +108,8 @@ class RequirementAnalysis:
                     "tolerance": c.tolerance,
                     "worst_case": c.worst_case,
                     "variance_percent": 100.0 * c.variance_share,
+                    "units": c.units,
+                    "sensitivity_units": c.sensitivity_units,
                 }
                 for c in self.contributions
             ],
@@ -114,7 +121,7 @@ class StackAnalysis:
     """Result of :func:`analyze`: one :class:`RequirementAnalysis` per requirement."""
 
     title: str
-    units: str
+    units: str  # the case's units (each requirement and contribution carries its own label)
     requirements: tuple[RequirementAnalysis, ...]
     tolerances: Mapping[str, float]
 
@@ -147,7 +154,7 @@ class StackAnalysis:
         import pandas as pd
 
         rows = [
-            {"requirement": r.name, **c}
+            {"requirement": r.name, **c, "requirement_units": r.units}
             for r in self.requirements
             for c in r.to_dict()["contributors"]
         ]
@@ -190,8 +197,11 @@ def analyze(case, tolerances: Mapping[str, float] | None = None) -> StackAnalysi
     n = case.counts
     f = case.sigma_factors
     m = case.mean_shifts
+    names = case.names
+    contributor_units = [case.contributor_units(name) for name in names]
     results = []
     for req in case.requirements:
+        units = case.requirement_units(req.name)
         lin = linearise(case, req)
         a = lin.sensitivity
         wc = n * np.abs(a) * t
@@ -207,12 +217,14 @@ def analyze(case, tolerances: Mapping[str, float] | None = None) -> StackAnalysi
         total_var = var.sum()
         contributions = tuple(
             Contribution(
-                name=case.names[i],
+                name=names[i],
                 sensitivity=float(a[i]),
                 count=int(n[i]),
                 tolerance=float(t[i]),
                 worst_case=float(wc[i]),
                 variance_share=float(var[i] / total_var) if total_var > 0 else 0.0,
+                units=contributor_units[i],
+                sensitivity_units=per_unit(units, contributor_units[i]),
             )
             for i in involved
         )
@@ -235,6 +247,7 @@ def analyze(case, tolerances: Mapping[str, float] | None = None) -> StackAnalysi
                 contributions=contributions,
                 worst_case_below=wc_below,
                 worst_case_above=wc_above,
+                units=units,
             )
         )
     return StackAnalysis(

@@ -76,10 +76,10 @@ TOP_KEYS = (
 )
 CONTRIBUTOR_KEYS = (
     "name", "description", "nominal", "tolerance", "limits", "cp", "mean_shift",
-    "distribution", "count", "fixed", "cost", "process",
+    "distribution", "count", "fixed", "cost", "process", "units",
 )
 PROCESS_KEYS = ("name", "limits", "cost", "cp")
-REQUIREMENT_KEYS = ("name", "chain", "expression", "lower", "upper", "fallout_ppm")
+REQUIREMENT_KEYS = ("name", "chain", "expression", "lower", "upper", "fallout_ppm", "units")
 ALLOCATION_KEYS = ("models", "rounding")
 ECONOMICS_KEYS = ("volume", "scrap_cost")
 FRONTIER_KEYS = ("requirement", "vary", "range", "points")
@@ -192,7 +192,8 @@ def _units_label(value) -> str:
     """
     if not isinstance(value, str):
         raise _Problem(f'must be a text label such as "mm" (got {_show(value)})')
-    if not value.strip():
+    value = value.strip(" ")  # spaces around a label are layout, not part of it
+    if not value:
         raise _Problem('must not be empty (a label such as "mm"; lengths are never converted)')
     if len(value) > MAX_LABEL_CHARS:
         raise _Problem(
@@ -614,6 +615,7 @@ def _read_contributor(item: _Table, seen: dict) -> Contributor:
     mean_shift = item.get("mean_shift", lambda v: _bounded(v, ge=0, le=1), default=0.0)
     count = item.get("count", lambda v: _integer(v, minimum=1, maximum=MAX_COUNT), default=1)
     fixed = item.get("fixed", _boolean, default=False)
+    units = item.get("units", _units_label)
 
     processes = ()
     limits = curve = None
@@ -664,6 +666,7 @@ def _read_contributor(item: _Table, seen: dict) -> Contributor:
         distribution=distribution,
         count=count,
         fixed=fixed,
+        units=units,
     )
 
 
@@ -726,8 +729,10 @@ def _read_requirement(item: _Table, seen: dict, names) -> Requirement:
     if lower is not None and upper is not None and not lower < upper:
         item.fail("upper", f"must be greater than lower (got lower {lower!r}, upper {upper!r})")
     fallout_ppm = item.get("fallout_ppm", lambda v: _bounded(v, gt=0, lt=PPM), default=DEFAULT_FALLOUT_PPM)
+    units = item.get("units", _units_label)
     return Requirement(
-        name=name, chain=chain, expression=expression, lower=lower, upper=upper, fallout_ppm=fallout_ppm
+        name=name, chain=chain, expression=expression, lower=lower, upper=upper, fallout_ppm=fallout_ppm,
+        units=units,
     )
 
 
@@ -814,10 +819,8 @@ def _build(data: dict, source: _Source, path: Path | None, sha256: str) -> Case:
     currency = top.get("currency", _text, default="")
 
     seen: dict = {}
-    contributors = tuple(
-        _read_contributor(item, seen)
-        for item in top.array("contributor", header="contributor", at_least=1, at_most=MAX_CONTRIBUTORS)
-    )
+    contributor_tables = top.array("contributor", header="contributor", at_least=1, at_most=MAX_CONTRIBUTORS)
+    contributors = tuple(_read_contributor(item, seen) for item in contributor_tables)
     names = tuple(c.name for c in contributors)
     seen = {}
     requirement_tables = top.array("requirement", header="requirement", at_least=1, at_most=MAX_CONTRIBUTORS)
@@ -825,7 +828,7 @@ def _build(data: dict, source: _Source, path: Path | None, sha256: str) -> Case:
 
     allocation = _read_allocation(top.sub("allocation"))
     if allocation.rounding == "iso286":
-        _check_iso286_units(top, units)
+        _check_iso286_units(top, units, contributor_tables, contributors)
 
     case = Case(
         title=title,
@@ -849,18 +852,27 @@ def _build(data: dict, source: _Source, path: Path | None, sha256: str) -> Case:
     return case
 
 
-def _check_iso286_units(top: _Table, units: str) -> None:
-    """ISO 286 grades are tabulated in millimetres: the one place ``units`` is a scale."""
+def _check_iso286_units(top: _Table, units: str, tables, contributors) -> None:
+    """ISO 286 grades are tabulated in millimetres: the one place a units label is a scale.
+
+    Every contributor that is rounded (not ``fixed``) needs a length unit: its own
+    ``units``, else the case's; the error names the field that set the label.
+    """
     from .grades import mm_per_unit
 
-    try:
-        mm_per_unit(units)
-    except ValueError:
-        top.fail(
-            "units",
-            f'{units!r} cannot be converted to millimetres for rounding = "iso286" '
-            "(use mm, m, um, μm, µm or in, or a numeric rounding step)",
-        )
+    for table, c in zip(tables, contributors):
+        if c.fixed:
+            continue
+        label = units if c.units is None else c.units
+        try:
+            mm_per_unit(label)
+        except ValueError:
+            where, key = (top, "units") if c.units is None else (table, "units")
+            where.fail(
+                key,
+                f'{label!r} cannot be converted to millimetres for rounding = "iso286" '
+                "(use mm, m, um, μm, µm or in, or a numeric rounding step)",
+            )
 
 
 # a line that opens one more [[contributor]] / [[requirement]] table (spaces allowed)

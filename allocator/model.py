@@ -53,6 +53,31 @@ def sigma_factor(distribution: str, cp: float = 1.0) -> float:
     raise ValueError(f"unknown distribution {distribution!r}")
 
 
+def per_unit(numerator: str, denominator: str) -> str:
+    """Label of a ratio of two labelled quantities, e.g. ``per_unit("N", "mm") == "N/mm"``.
+
+    Labels are text only (no conversion): equal labels give ``"-"`` (a pure number),
+    an empty denominator gives the numerator, an empty numerator ``"1/mm"``; ``N``
+    per ``N/mm`` is ``mm``; any other denominator that is itself a ratio or a product
+    is put in parentheses.
+
+    Examples
+    --------
+    >>> per_unit("EUR", "N"), per_unit("mm", "mm"), per_unit("EUR", "N/mm"), per_unit("N", "N/mm")
+    ('EUR/N', '-', 'EUR/(N/mm)', 'mm')
+    """
+    if numerator == denominator:
+        return "-"
+    if not denominator:
+        return numerator
+    head, slash, rest = denominator.partition("/")
+    if slash and head == numerator and rest and "/" not in rest:
+        return rest  # N per (N/mm) is mm
+    if any(ch in denominator for ch in "/*· "):
+        denominator = f"({denominator})"
+    return f"{numerator or '1'}/{denominator}"
+
+
 @dataclass(frozen=True)
 class CostCurve:
     """Unit cost of one part as a function of its ± tolerance.
@@ -117,6 +142,7 @@ class Contributor:
     distribution: str = "normal"
     count: int = 1
     fixed: bool = False
+    units: str | None = None  # label of nominal and tolerance; None: the case's ``units``
 
     @property
     def sigma_factor(self) -> float:
@@ -164,6 +190,7 @@ class Requirement:
     lower: float | None = None
     upper: float | None = None
     fallout_ppm: float = DEFAULT_FALLOUT_PPM
+    units: str | None = None  # label of the response and its limits; None: the case's ``units``
 
     @property
     def is_linear(self) -> bool:
@@ -201,7 +228,11 @@ class FrontierSettings:
 
 @dataclass(frozen=True)
 class Case:
-    """A whole validated case: contributors, requirements and settings."""
+    """A whole validated case: contributors, requirements and settings.
+
+    ``units`` labels every contributor and requirement that has no ``units`` of its own;
+    :meth:`contributor_units` and :meth:`requirement_units` give the label in force.
+    """
 
     title: str
     contributors: tuple[Contributor, ...]
@@ -230,11 +261,43 @@ class Case:
     def contributor(self, name: str) -> Contributor:
         return self.contributors[self.index(name)]
 
-    def requirement(self, name: str) -> Requirement:
+    @cached_property
+    def _requirements_by_name(self) -> dict[str, Requirement]:
+        # built once per case: problem and result code look requirements up per solve
+        out: dict[str, Requirement] = {}
         for r in self.requirements:
-            if r.name == name:
-                return r
-        raise KeyError(name)
+            out.setdefault(r.name, r)  # the first of a name, as a scan would find it
+        return out
+
+    def requirement(self, name: str) -> Requirement:
+        return self._requirements_by_name[name]
+
+    def contributor_units(self, name: str) -> str:
+        """Units label of contributor ``name``: its own ``units``, else the case's."""
+        own = self.contributor(name).units
+        return self.units if own is None else own
+
+    @cached_property
+    def own_contributor_units(self) -> dict[str, str]:
+        """Contributor name -> units label, only for contributors with their own label."""
+        return {c.name: c.units for c in self.contributors if c.units is not None}
+
+    def requirement_units(self, name: str) -> str:
+        """Units label of requirement ``name`` (its response and limits): its own, else the case's."""
+        own = self.requirement(name).units
+        return self.units if own is None else own
+
+    def sensitivity_units(self, requirement: str, contributor: str) -> str:
+        """Label of ∂y/∂x: requirement units per contributor unit (``"N/mm"``), see :func:`per_unit`."""
+        return per_unit(self.requirement_units(requirement), self.contributor_units(contributor))
+
+    @property
+    def unit_labels(self) -> tuple[str, ...]:
+        """The distinct units labels in use, the case's first (for a one-line summary)."""
+        items = (*self.contributors, *self.requirements)
+        used = {self.units if x.units is None else x.units for x in items}
+        labels = dict.fromkeys([self.units] + [x.units for x in items if x.units is not None])
+        return tuple(label for label in labels if label and label in used)
 
     @property
     def current_tolerances(self):

@@ -257,7 +257,7 @@ def frontier_figure(frontier):
     x_label = _value_label(frontier.vary, frontier.requirement, frontier.units)
     if frontier.vary == "lower":
         x_label += "  (looser to the right)"
-    ax.set_xlabel(x_label)
+    ax.set_xlabel(x_label, parse_math=False)  # the units label is text from the case, never mathtext
     ax.set_ylabel(f"least cost per assembly{_money(frontier.currency)}")
     what = "fallout target" if log else f"{frontier.vary} limit"
     ax.set_title(f"{frontier.title}\ncost against the {what} of {frontier.requirement}", fontsize="medium")

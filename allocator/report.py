@@ -189,6 +189,36 @@ def _unit(text: str) -> str:
     return f" [{_e(text)}]" if text else ""
 
 
+class _Units:
+    """Units of one table column (or row): in its header when every entry shares one
+    label, otherwise after each value (a requirement in N beside lengths in mm)."""
+
+    def __init__(self, labels):
+        distinct = set(labels)
+        self.shared = next(iter(distinct), "") if len(distinct) <= 1 else None
+
+    def head(self, text: str) -> str:
+        """``text`` with the shared label: ``"Current ± [mm]"`` (HTML)."""
+        return text + _unit(self.shared) if self.shared is not None else text
+
+    def cell(self, value: str, label: str) -> str:
+        """A value (HTML) followed by its own label when the column has no shared one."""
+        if self.shared is not None or not label or value == "—":
+            return value
+        return f"{value}&nbsp;{_e(label)}"
+
+
+def _own_units_text(case, limit: int = 12) -> str:
+    """HTML list of the contributors and requirements whose units differ from the case's."""
+    own = [(c.name, c.units) for c in case.contributors if c.units not in (None, case.units)]
+    own += [(r.name, r.units) for r in case.requirements if r.units not in (None, case.units)]
+    if not own:
+        return ""
+    shown = ", ".join(f"{_e(name)} [{_e(label)}]" for name, label in own[:limit])
+    more = f" and {len(own) - limit} more" if len(own) > limit else ""
+    return f'<div class="desc">in their own units: {shown}{more}</div>'
+
+
 # --------------------------------------------------------------------------- the report
 
 
@@ -825,7 +855,7 @@ def _section_summary(report: Report) -> str:
     u = case.units
     facts = [
         ("Title", _e(case.title)),
-        ("Length units", _e(u or "—")),
+        ("Units", _e(u or "—") + _own_units_text(case)),
         ("Currency", _e(case.currency or "—")),
         ("Case file", _e(case.path) if case.path else "—"),
         ("Models in this report", ", ".join(_model(m) for m in report.models)),
@@ -836,11 +866,14 @@ def _section_summary(report: Report) -> str:
     if case.economics.scrap_cost is not None:
         facts.append(("Cost of one assembly out of limits", f"{_i(case.economics.scrap_cost)}{_e(' ' + case.currency if case.currency else '')}"))
     rows = []
+    cu = _Units(case.contributor_units(c.name) for c in case.contributors)
     for c in case.contributors:
+        label = case.contributor_units(c.name)
         if c.processes:
             limits = "by process"
             cost = "".join(
-                f'<div class="proc"><strong>{_e(p.name)}</strong> ±{_i(p.limits[0])} to ±{_i(p.limits[1])}'
+                f'<div class="proc"><strong>{_e(p.name)}</strong> '
+                + cu.cell(f"±{_i(p.limits[0])} to ±{_i(p.limits[1])}", label)
                 + (f", cp {_i(p.cp)}" if p.cp is not None else "")
                 + f": {_cost_text(p.cost)}</div>"
                 for p in c.processes
@@ -849,7 +882,7 @@ def _section_summary(report: Report) -> str:
             limits, cost = "held", _cost_text(c.cost)
         else:
             lo, hi = c.limits if c.limits is not None else (c.tolerance, c.tolerance)
-            limits = f"{_i(lo)} to {_i(hi)}"
+            limits = cu.cell(f"{_i(lo)} to {_i(hi)}", label)
             cost = _cost_text(c.cost)
         name = _e(c.name) + (f'<div class="desc">{_e(c.description)}</div>' if c.description else "")
         if c.fixed:
@@ -857,8 +890,8 @@ def _section_summary(report: Report) -> str:
         rows.append(
             [
                 name,
-                _i(c.nominal),
-                _i(c.tolerance),
+                cu.cell(_i(c.nominal), label),
+                cu.cell(_i(c.tolerance), label),
                 limits,
                 _e(c.distribution),
                 _i(c.cp) if c.distribution == "normal" else "—",
@@ -868,18 +901,20 @@ def _section_summary(report: Report) -> str:
             ]
         )
     contributors = _table(
-        ["Contributor", f"Nominal{_unit(u)}", f"Current ±{_unit(u)}", f"Achievable ±{_unit(u)}", "Distribution",
-         "cp", "Mean shift [×&nbsp;t]", "Count", f"Unit cost{_unit(case.currency)} at ±t{_unit(u)}"],
+        ["Contributor", cu.head("Nominal"), cu.head("Current ±"), cu.head("Achievable ±"), "Distribution",
+         "cp", "Mean shift [×&nbsp;t]", "Count", f"Unit cost{_unit(case.currency)} at ±t" + cu.head("")],
         rows,
         numeric=[False, True, True, True, False, True, True, True, False],
         caption="Contributors as stated in the case file",
     )
+    ru = _Units(case.requirement_units(r.name) for r in case.requirements)
     req_rows = [
-        [_e(r.name), _chain_text(r), _i(r.lower), _i(r.upper), _i(r.fallout_ppm)]
+        [_e(r.name), _chain_text(r), ru.cell(_i(r.lower), case.requirement_units(r.name)),
+         ru.cell(_i(r.upper), case.requirement_units(r.name)), _i(r.fallout_ppm)]
         for r in case.requirements
     ]
     requirements = _table(
-        ["Requirement", "Response y", f"Lower limit{_unit(u)}", f"Upper limit{_unit(u)}", "Fallout target [ppm]"],
+        ["Requirement", "Response y", ru.head("Lower limit"), ru.head("Upper limit"), "Fallout target [ppm]"],
         req_rows,
         numeric=[False, False, True, True, True],
         caption="Requirements (the fallout target applies to the statistical models)",
@@ -914,24 +949,29 @@ def _worst_case_flag(r) -> str:
     return _flag("NO", "bad") + " " + ", ".join(misses)
 
 
-def _analysis_table(analysis, units: str, caption: str) -> str:
+def _analysis_table(analysis, caption: str) -> str:
     reqs = analysis.requirements
     headers = ["Quantity"] + [_e(r.name) for r in reqs]
+    ru = _Units(r.units for r in reqs)
 
     def row(label, values):
         return [label] + values
 
+    def measured(label, values):
+        """A row in the requirements' units: in the label when shared, else after each value."""
+        return [ru.head(label)] + [ru.cell(v, r.units) for v, r in zip(values, reqs)]
+
     rows = [
-        row(f"Nominal response ȳ{_unit(units)}", [_r(r.nominal) for r in reqs]),
-        row(f"Limits{_unit(units)}", [f"{_i(r.lower)} to {_i(r.upper)}" for r in reqs]),
-        row(f"Worst case, lowest{_unit(units)}", [_r(r.worst_case_min) for r in reqs]),
-        row(f"Worst case, highest{_unit(units)}", [_r(r.worst_case_max) for r in reqs]),
+        measured("Nominal response ȳ", [_r(r.nominal) for r in reqs]),
+        measured("Limits", [f"{_i(r.lower)} to {_i(r.upper)}" for r in reqs]),
+        measured("Worst case, lowest", [_r(r.worst_case_min) for r in reqs]),
+        measured("Worst case, highest", [_r(r.worst_case_max) for r in reqs]),
         row("Worst case within limits", [_worst_case_flag(r) for r in reqs]),
-        row(f"RSS σ{_unit(units)}", [_n(r.sigma) for r in reqs]),
+        measured("RSS σ", [_n(r.sigma) for r in reqs]),
         row("Cpk of the response", [_n(r.cpk, 3) for r in reqs]),
         row("Predicted fallout, RSS [ppm]", [_ppm(r.fallout_ppm) for r in reqs]),
         row("  of which below / above [ppm]", [f"{_ppm(r.fallout_below_ppm)} / {_ppm(r.fallout_above_ppm)}" for r in reqs]),
-        row(f"Mean-shift band ±δ{_unit(units)}", [_n(r.mean_shift) for r in reqs]),
+        measured("Mean-shift band ±δ", [_n(r.mean_shift) for r in reqs]),
         row("Predicted fallout, mean at worst place [ppm]", [_ppm(r.mean_shift_ppm) for r in reqs]),
         row("Fallout target [ppm]", [_i(r.target_ppm) for r in reqs]),
         row("Meets target (RSS)", [_flag("yes") if r.fallout_ppm <= r.target_ppm else _flag("NO", "bad") for r in reqs]),
@@ -941,22 +981,24 @@ def _analysis_table(analysis, units: str, caption: str) -> str:
 
 
 def _section_analysis(report: Report) -> str:
-    case = report.case
-    u = case.units
     intro = (
         "<p>The design as it is today: every contributor at its current tolerance. "
         "Computed by <code>allocator.analysis.analyze</code>.</p>"
     )
-    table = _analysis_table(report.analysis, u, "Stack results at the current tolerances")
+    table = _analysis_table(report.analysis, "Stack results at the current tolerances")
     parts = [intro, table]
     for r in report.analysis.requirements:
+        per = _Units(c.sensitivity_units for c in r.contributions)
+        tol = _Units(c.units for c in r.contributions)
         rows = [
-            [_e(c.name), _n(c.sensitivity), str(c.count), _i(c.tolerance), _n(c.worst_case), _n(100 * c.variance_share, 3)]
+            [_e(c.name), per.cell(_n(c.sensitivity), c.sensitivity_units), str(c.count),
+             tol.cell(_i(c.tolerance), c.units), _n(c.worst_case), _n(100 * c.variance_share, 3)]
             for c in r.contributions
         ]
         parts.append(
             _table(
-                ["Contributor", "Sensitivity ∂y/∂x", "Count", f"±t{_unit(u)}", f"± worst-case share{_unit(u)}", "Share of σ² [%]"],
+                ["Contributor", per.head("Sensitivity ∂y/∂x"), "Count", tol.head("±t"),
+                 f"± worst-case share{_unit(r.units)}", "Share of σ² [%]"],
                 rows,
                 numeric=[False, True, True, True, True, True],
                 caption=f"Contributors to {_e(r.name)}",
@@ -972,15 +1014,17 @@ def _bound_note(bound: str) -> str:
 
 def _section_allocation(report: Report) -> str:
     case = report.case
-    u, cur = case.units, case.currency
+    cur = case.currency
     allocs = report.allocations
     models = list(allocs)
-    headers = ["Contributor", f"Current ±{_unit(u)}"] + [
-        f"{_model(m)} ±{_unit(u)}" + (" (recommended)" if m == report.recommended else "") for m in models
+    cu = _Units(case.contributor_units(c.name) for c in case.contributors)
+    headers = ["Contributor", cu.head("Current ±")] + [
+        cu.head(f"{_model(m)} ±") + (" (recommended)" if m == report.recommended else "") for m in models
     ]
     rows = []
     for i, c in enumerate(case.contributors):
-        cells = [_e(c.name), _i(c.tolerance)]
+        label = case.contributor_units(c.name)
+        cells = [_e(c.name), cu.cell(_i(c.tolerance), label)]
         for m in models:
             a = allocs[m]
             if not a.success:
@@ -990,7 +1034,7 @@ def _section_allocation(report: Report) -> str:
             under = [a.processes.get(c.name, ""), (getattr(a, "grades", None) or {}).get(c.name, "")]
             under = " · ".join(x for x in under if x)
             cells.append(
-                _t(t) + _bound_note(str(a.active[c.name]))
+                cu.cell(_t(t), label) + _bound_note(str(a.active[c.name]))
                 + (f'<div class="desc">{_e(under)}</div>' if under else "")
             )
         rows.append(cells)
@@ -1021,7 +1065,9 @@ def _section_allocation(report: Report) -> str:
     )
     # predicted requirement results per model
     req_rows = []
+    ru = _Units(case.requirement_units(r.name) for r in case.requirements)
     for r_i, req in enumerate(case.requirements):
+        label = case.requirement_units(req.name)
         for m in models:
             a = allocs[m]
             if not a.success:
@@ -1032,15 +1078,15 @@ def _section_allocation(report: Report) -> str:
                 [
                     _e(rr.name),
                     _model(m),
-                    f"{_r(rr.worst_case_min)} to {_r(rr.worst_case_max)}",
-                    _n(rr.sigma),
+                    ru.cell(f"{_r(rr.worst_case_min)} to {_r(rr.worst_case_max)}", label),
+                    ru.cell(_n(rr.sigma), label),
                     _ppm(rr.fallout_ppm),
                     _i(rr.target_ppm),
                     _e(rr.binding or "—"),
                 ]
             )
     req_table = _table(
-        ["Requirement", "Model", f"Worst-case range{_unit(u)}", f"RSS σ{_unit(u)}", "Predicted fallout [ppm]",
+        ["Requirement", "Model", ru.head("Worst-case range"), ru.head("RSS σ"), "Predicted fallout [ppm]",
          "Target [ppm]", "Limit pressed"],
         req_rows,
         numeric=[False, False, True, True, True, True, False],
@@ -1067,8 +1113,8 @@ def _section_frontier(report: Report, svg: str | None) -> str:
     if front is None or svg is None:
         return _section(report, "frontier", f'<p class="note">No cost frontier: {_e(report.frontier_message)}.</p>')
     case = report.case
-    u, cur = case.units, case.currency
-    swept = "fallout target [ppm]" if front.vary == "fallout_ppm" else f"{front.vary} limit{_unit(u)}"
+    cur = case.currency
+    swept = "fallout target [ppm]" if front.vary == "fallout_ppm" else f"{front.vary} limit{_unit(front.units)}"
     intro = (
         f"<p>The least cost per assembly of each model as the {_e(swept.split(' [')[0])} of "
         f"<strong>{_e(front.requirement)}</strong> moves from {_e(fmt_number(front.values[0], 6, strip=True))} to "
@@ -1093,7 +1139,8 @@ def _section_frontier(report: Report, svg: str | None) -> str:
     current = front.current or {}
     facts = []
     if current.get("value") is not None:
-        facts.append(("Case value of the swept quantity", _i(current["value"])))
+        value_units = "ppm" if front.vary == "fallout_ppm" else front.units
+        facts.append(("Case value of the swept quantity", _i(current["value"]) + (f"&nbsp;{_e(value_units)}" if value_units else "")))
     if current.get("total_cost") is not None:
         facts.append((f"Cost of the current design{_unit(cur)}", _n(current["total_cost"])))
     for model, cost in (current.get("optimal") or {}).items():
@@ -1136,7 +1183,7 @@ def _verdict(check) -> str:
 def _section_verification(report: Report, svg: str) -> str:
     v = report.verification
     case = report.case
-    u = case.units
+    ru = _Units(c.units for c in v.requirements)
     basis = (
         f"the recommended {_model(report.recommended)} allocation"
         if report.verification_basis == "allocation"
@@ -1162,15 +1209,15 @@ def _section_verification(report: Report, svg: str) -> str:
             _i(c.target_ppm),
             _ppm(c.predicted_ppm),
             _ppm(c.convolution_ppm),
-            _r(c.mean),
-            _n(c.std),
+            ru.cell(_r(c.mean), c.units),
+            ru.cell(_n(c.std), c.units),
             _verdict(c),
         ]
         for c in v.requirements
     ]
     table = _table(
         ["Requirement", "Fallout, simulated [ppm]", f"{v.confidence:.0%} interval [ppm]", "Target [ppm]",
-         "Analytic prediction [ppm]", "Exact convolution [ppm]", f"Mean{_unit(u)}", f"Std. dev.{_unit(u)}", "Verdict"],
+         "Analytic prediction [ppm]", "Exact convolution [ppm]", ru.head("Mean"), ru.head("Std. dev."), "Verdict"],
         rows,
         numeric=[False, True, True, True, True, True, True, True, False],
         caption="Simulated fallout against the target and the predictions",
@@ -1185,10 +1232,16 @@ def _section_verification(report: Report, svg: str) -> str:
 
 
 def _section_shadow(report: Report) -> str:
+    from .model import per_unit
+
     case = report.case
-    u, cur = case.units, case.currency
-    per_length = f"[{_e(cur or 'cost')}/{_e(u or 'unit')}]"
+    cur = case.currency
     per_ppm = f"[{_e(cur or 'cost')}/ppm]"
+
+    def per_limit(name: str) -> str:
+        return per_unit(cur or "cost", case.requirement_units(name) or "unit")
+
+    pu = _Units(per_limit(r.name) for r in case.requirements)
     rows = []
     for m, a in report.allocations.items():
         if not a.success:
@@ -1201,14 +1254,14 @@ def _section_shadow(report: Report) -> str:
                     _e(rr.name),
                     _model(m) + (" <small>(unrounded)</small>" if m in report.unrounded else ""),
                     _e(rr.binding or "—"),
-                    _n(rr.shadow_lower, signed=True),
-                    _n(rr.shadow_upper, signed=True),
+                    pu.cell(_n(rr.shadow_lower, signed=True), per_limit(rr.name)),
+                    pu.cell(_n(rr.shadow_upper, signed=True), per_limit(rr.name)),
                     _n(rr.shadow_ppm, signed=True),
                 ]
             )
     table = _table(
-        ["Requirement", "Model", "Limit pressed", f"Cost change per unit of lower limit {per_length}",
-         f"Cost change per unit of upper limit {per_length}", f"Cost change per ppm of target {per_ppm}"],
+        ["Requirement", "Model", "Limit pressed", pu.head("Cost change per unit of lower limit"),
+         pu.head("Cost change per unit of upper limit"), f"Cost change per ppm of target {per_ppm}"],
         rows,
         numeric=[False, False, False, True, True, True],
         caption="Marginal cost of each requirement limit (from the allocation's Lagrange multipliers)",
@@ -1245,23 +1298,27 @@ def _section_shadow(report: Report) -> str:
 
 def _section_supplier(report: Report) -> str:
     case = report.case
-    u, cur = case.units, case.currency
+    cur = case.currency
+    cu = _Units(case.contributor_units(c.name) for c in case.contributors)
     allocs = report.allocations
     ok_models = [m for m, a in allocs.items() if a.success]
     rec = report.recommended
     money = _unit(cur)
     if rec is None:
         return _section(report, "supplier", '<p class="note">No allocation is available, so there is nothing to ask suppliers for yet.</p>')
-    ask_headers = ["Contributor", "Count", f"Current ±{_unit(u)}"] + [
-        f"Ask ±{_unit(u)}, {_model(m)}" + (" (recommended)" if m == rec else "") for m in ok_models
+    ask_headers = ["Contributor", "Count", cu.head("Current ±")] + [
+        cu.head("Ask ±") + f", {_model(m)}" + (" (recommended)" if m == rec else "") for m in ok_models
     ] + [f"Unit cost at the recommended ±{money}"]
     ask_rows = []
     for c in case.contributors:
-        row = [_e(c.name) + (f'<div class="desc">{_e(c.description)}</div>' if c.description else ""), str(c.count), _i(c.tolerance)]
+        label = case.contributor_units(c.name)
+        row = [_e(c.name) + (f'<div class="desc">{_e(c.description)}</div>' if c.description else ""), str(c.count),
+               cu.cell(_i(c.tolerance), label)]
         for m in ok_models:
             under = [allocs[m].processes.get(c.name, ""), (getattr(allocs[m], "grades", None) or {}).get(c.name, "")]
             under = " · ".join(x for x in under if x)
-            row.append(_t(allocs[m].tolerances[c.name]) + (f'<div class="desc">{_e(under)}</div>' if under else ""))
+            row.append(cu.cell(_t(allocs[m].tolerances[c.name]), label)
+                       + (f'<div class="desc">{_e(under)}</div>' if under else ""))
         row.append(_n(allocs[rec].unit_cost[c.name]))
         ask_rows.append(row)
     ask = _table(ask_headers, ask_rows, numeric=[False] + [True] * (len(ask_headers) - 1),
@@ -1272,15 +1329,17 @@ def _section_supplier(report: Report) -> str:
         rows = []
         for r in sheet.rows:
             tightened = "<br>".join(
-                f'<span class="nw">{_e(name)} {_t(before)} → {_t(after)}</span>' for name, before, after in r.tightened
+                f'<span class="nw">{_e(name)} {_t(before)} → '
+                f'{cu.cell(_t(after), case.contributor_units(name))}</span>'
+                for name, before, after in r.tightened
             ) or ("none" if r.status == "solved" else "")
             status = "" if r.status == "solved" else _flag(r.status, "bad" if r.status in ("infeasible", "failed") else "")
             rows.append(
                 [
                     _e(r.contributor),
-                    _t(r.tolerance),
+                    cu.cell(_t(r.tolerance), r.units),
                     _n(r.unit_cost),
-                    (_t(r.looser) if r.looser is not None else "—") + (" " + status if status else ""),
+                    (cu.cell(_t(r.looser), r.units) if r.looser is not None else "—") + (" " + status if status else ""),
                     _n(r.own_change, signed=True),
                     _n(r.elsewhere_change, signed=True),
                     _n(r.total_cost_change, signed=True),
@@ -1289,9 +1348,9 @@ def _section_supplier(report: Report) -> str:
             )
         parts.append(
             _table(
-                ["Contributor", f"Asked ±{_unit(u)}", f"Unit cost{money}", f"One step looser ±{_unit(u)}",
+                ["Contributor", cu.head("Asked ±"), f"Unit cost{money}", cu.head("One step looser ±"),
                  f"Change on this part{money}", f"Change elsewhere{money}", f"Change of total{money}",
-                 f"Other tolerances that must tighten [{_e(u)}]"],
+                 cu.head("Other tolerances that must tighten")],
                 rows,
                 numeric=[False, True, True, True, True, True, True, False],
                 caption=f"What loosening one tolerance by one step costs elsewhere ({_model(rec)} allocation)",

@@ -148,6 +148,7 @@ class RequirementCheck:
     histogram_counts: np.ndarray = field(repr=False)
     underflow: int = 0
     overflow: int = 0
+    units: str = ""  # label of the response, its limits, mean, std and histogram edges
 
     @property
     def failures(self) -> int:
@@ -181,6 +182,7 @@ class RequirementCheck:
             "shifted_mean": self.shifted_mean,
             "mean": self.mean,
             "std": self.std,
+            "units": self.units,
         }
         if histogram:
             out["histogram"] = {
@@ -734,6 +736,7 @@ def verify(
                 histogram_counts=hist[j, 1:-1].copy(),
                 underflow=int(hist[j, 0]),
                 overflow=int(hist[j, -1]),
+                units=case.requirement_units(req.name),
             )
         )
     by_name = {c.name: c for c in checks}
@@ -821,7 +824,8 @@ def _figure(result: Verification):
         pad = 0.03 * (hi_x - lo_x)
         ax.set_xlim(lo_x - pad, hi_x + pad)
         ax.set_title(f"{c.name}: {c.fallout_ppm:.4g} ppm outside (target {c.target_ppm:g} ppm)")
-        ax.set_xlabel(f"{c.name} (response)")
+        # a units label is text from the case: never mathtext
+        ax.set_xlabel(f"{c.name} [{c.units}]" if c.units else f"{c.name} (response)", parse_math=False)
         ax.set_ylabel("density")
         ax.legend(fontsize="small", loc="upper right")
     return fig

@@ -115,8 +115,11 @@ class Loosening:
     elsewhere_change : float or None
         ``total_cost_change − own_change``: what the other parts cost more [currency].
     tightened : tuple of (name, from, to)
-        Other contributors whose tolerance tightened, largest relative change first.
+        Other contributors whose tolerance tightened, largest relative change first
+        (each in its own contributor's units).
     message : str
+    units : str
+        Units label of ``tolerance`` and ``looser`` (the contributor's).
     """
 
     contributor: str
@@ -131,6 +134,7 @@ class Loosening:
     elsewhere_change: float | None = None
     tightened: tuple = field(default=())
     message: str = ""
+    units: str = ""
 
     def to_dict(self) -> dict:
         return {
@@ -146,6 +150,7 @@ class Loosening:
             "elsewhere_change": self.elsewhere_change,
             "tightened": [{"name": n, "from": a, "to": b} for n, a, b in self.tightened],
             "message": self.message,
+            "units": self.units,
         }
 
 
@@ -261,7 +266,8 @@ def supplier_sheet(case, model: str, allocation=None, *, step: float = DEFAULT_S
     for c in case.contributors:
         t = float(t_base[c.name])
         unit = _maybe(unit_base[c.name])
-        common = dict(contributor=c.name, count=c.count, tolerance=t, unit_cost=unit, bound=str(bounds[c.name]))
+        common = dict(contributor=c.name, count=c.count, tolerance=t, unit_cost=unit, bound=str(bounds[c.name]),
+                      units=case.contributor_units(c.name))
         if c.fixed:
             rows.append(Loosening(**common, looser=None, status="fixed", message="held by the case"))
             continue

@@ -72,8 +72,10 @@ class Frontier:
     success : bool
         ``status`` is 'optimal' or 'partial'.
     message : str
-    title, units, currency : str
+    title, currency : str
         From the case.
+    units : str
+        Units label of the swept requirement (its own ``units``, else the case's).
     requirement : str
     vary : str
         'lower', 'upper' or 'fallout_ppm'.
@@ -807,7 +809,7 @@ def frontier(
     status, message = _summary(grid, models, statuses, messages, vary)
     return Frontier(
         title=case.title,
-        units=case.units,
+        units=case.requirement_units(req.name),
         currency=case.currency,
         requirement=req.name,
         vary=vary,

@@ -383,6 +383,32 @@ def test_iso286_rounding_gives_standard_grades_and_costs_at_least_the_unrounded(
         assert result.rounding_cost == pytest.approx(result.total_cost - result.unrounded_cost)
 
 
+def test_iso286_rounding_reads_the_size_in_the_contributors_own_units():
+    # a 1.0 in sleeve in a mm case: its ISO 286 size is 25.4 mm (>18-30 mm row), not 1 mm
+    sleeve = Contributor(name="sleeve", nominal=1.0, tolerance=0.002, limits=(0.0001, 0.004),
+                         cost=CostCurve("reciprocal", a=0.5, b=0.0001), units="in")
+    shaft = Contributor(name="shaft", nominal=25.0, tolerance=0.05, limits=(0.004, 0.2),
+                        cost=CostCurve("reciprocal", a=0.5, b=0.003))
+    req = Requirement(name="fit", expression="25.4 * sleeve - shaft", lower=0.3, upper=0.5)
+    case = _case([sleeve, shaft], [req], rounding="iso286")
+    result = allocate(case, "worst-case")
+    assert result.success, result.message
+    grade = result.grades["sleeve"]
+    # ISO 286-1 Table 1 (as typed in allocator.grades, checked in tests/reference): t = IT/2
+    it_inches = grades.it_tolerance_um(grade, 25.4) / 1000.0 / 25.4
+    assert result.tolerances["sleeve"] == pytest.approx(it_inches / 2.0, rel=1e-9)
+    assert result.tolerances["shaft"] == pytest.approx(grades.it_tolerance_um(result.grades["shaft"], 25.0) / 2000.0)
+
+
+def test_iso286_rounding_refuses_a_contributor_labelled_in_a_non_length_unit():
+    rate = Contributor(name="spring_rate", nominal=20.0, tolerance=1.0, limits=(0.2, 2.0),
+                       cost=CostCurve("reciprocal", a=0.5, b=0.4), units="N/mm")
+    req = Requirement(name="load", expression="spring_rate * 2.0", lower=34.0, upper=46.0)
+    with pytest.raises(CaseError) as err:
+        allocate(_case([rate], [req], rounding="iso286"), "worst-case")
+    assert "contributor 'spring_rate': unknown length unit 'N/mm'" in str(err.value)
+
+
 def test_rounding_with_no_value_inside_the_limits_names_the_contributor():
     c = Contributor(name="pin", nominal=5.0, tolerance=0.005, limits=(0.002, 0.008),
                     cost=CostCurve("reciprocal", a=0.1, b=0.001))

@@ -13,15 +13,19 @@ from .common import (
     echo_json,
     fmt,
     handle_errors,
+    unit_header,
     json_option,
+    labelled,
     load_case_or_exit,
     model_option,
+    shared_label,
     text_table,
+    units_title,
 )
 
 CSV_COLUMNS = (
     "model", "status", "contributor", "process", "count", "current", "allocated", "bound",
-    "tightest", "loosest", "unit_cost_current", "unit_cost_allocated",
+    "tightest", "loosest", "unit_cost_current", "unit_cost_allocated", "units",
 )
 
 
@@ -127,9 +131,10 @@ def _write_csv(results) -> None:
 
 
 def _print_human(case, results, baselines) -> None:
-    u = case.units
+    from ..model import per_unit
+
     money = f" {case.currency}" if case.currency else ""
-    click.echo(f"{case.title}  [{u}{',' + money if money else ''}]")
+    click.echo(f"{case.title}  [{units_title(case)}{',' + money if money else ''}]")
     for result, base in zip(results, baselines):
         click.echo("")
         head = f"model {result.model}: {result.status}"
@@ -144,22 +149,23 @@ def _print_human(case, results, baselines) -> None:
             click.echo(f"  warning: {result.message}")
         rows = []
         with_process = any(r["process"] for r in result.rows())
+        u = shared_label(r["units"] for r in result.rows())
         for r in result.rows():
             name = r["contributor"]
             rows.append([
                 name,
                 *([r["process"] + (f" {result.grades[name]}" if name in result.grades else "")]
                   if with_process else []),
-                f"±{fmt(r['current'])}",
-                f"±{fmt(r['allocated'])}",
+                labelled(f"±{fmt(r['current'])}", r["units"], u),
+                labelled(f"±{fmt(r['allocated'])}", r["units"], u),
                 r["bound"],
                 f"{fmt(r['unit_cost_current'])} -> {fmt(r['unit_cost_allocated'])}",
                 r["count"],
             ])
         click.echo(text_table(
             rows,
-            ["contributor", *(["process"] if with_process else []), f"current [{u}]",
-             f"allocated [{u}]", "bound", f"unit cost{money}", "count"],
+            ["contributor", *(["process"] if with_process else []), unit_header("current", u),
+             unit_header("allocated", u), "bound", f"unit cost{money}", "count"],
         ))
         savings = result.savings_percent
         click.echo(
@@ -185,7 +191,8 @@ def _print_human(case, results, baselines) -> None:
                 )
             click.echo(line)
         for r in result.requirements:
-            click.echo(f"requirement {r.name}: limits [{fmt(r.lower, 6)}, {fmt(r.upper, 6)}]"
+            name = f"{r.name} [{r.units}]" if r.units else r.name
+            click.echo(f"requirement {name}: limits [{fmt(r.lower, 6)}, {fmt(r.upper, 6)}]"
                        + ("" if r.linear else " (linearised expression)"))
             text = (
                 f"  worst case [{fmt(r.worst_case_min, 6)}, {fmt(r.worst_case_max, 6)}]   "
@@ -198,10 +205,11 @@ def _print_human(case, results, baselines) -> None:
             click.echo(text)
             if r.binding:
                 parts = []
+                per_limit = per_unit(case.currency or "cost", r.units)
                 if r.shadow_lower:
-                    parts.append(f"{fmt(r.shadow_lower)}{money}/{u} per lower")
+                    parts.append(f"{fmt(r.shadow_lower)} {per_limit} per lower")
                 if r.shadow_upper:
-                    parts.append(f"{fmt(r.shadow_upper)}{money}/{u} per upper")
+                    parts.append(f"{fmt(r.shadow_upper)} {per_limit} per upper")
                 if r.shadow_ppm:
                     parts.append(f"{fmt(r.shadow_ppm)}{money}/ppm of target")
                 click.echo(f"  binding ({r.binding}); shadow prices: {', '.join(parts)}")

@@ -10,9 +10,13 @@ from .common import (
     echo_json,
     fmt,
     handle_errors,
+    unit_header,
     json_option,
+    labelled,
     load_case_or_exit,
+    shared_label,
     text_table,
+    units_title,
     write_csv,
 )
 
@@ -40,12 +44,12 @@ def analyze(case_file, as_json, as_csv):
     if as_csv:
         write_csv(result.contributions_frame())
         return
-    u = case.units
-    click.echo(f"{case.title}  [{u}]")
+    click.echo(f"{case.title}  [{units_title(case)}]")
     for r in result.requirements:
         limits = f"[{fmt(r.lower, 6)}, {fmt(r.upper, 6)}]"
         click.echo("")
-        click.echo(f"requirement {r.name}: limits {limits}" + ("" if r.linear else "  (linearised expression)"))
+        name = f"{r.name} [{r.units}]" if r.units else r.name
+        click.echo(f"requirement {name}: limits {limits}" + ("" if r.linear else "  (linearised expression)"))
         verdict = "inside limits" if r.worst_case_ok else "OUTSIDE limits: " + _misses(r)
         click.echo(
             f"  nominal {fmt(r.nominal, 6)}   worst case [{fmt(r.worst_case_min, 6)}, "
@@ -61,14 +65,18 @@ def analyze(case_file, as_json, as_csv):
                 f"  mean shift ±{fmt(r.mean_shift)}: fallout {fmt(r.mean_shift_ppm)} ppm "
                 f"(below {fmt(r.mean_shift_below_ppm)}, above {fmt(r.mean_shift_above_ppm)})"
             )
+        per = shared_label(c.sensitivity_units for c in r.contributions)
+        tol = shared_label(c.units for c in r.contributions)
         rows = [
-            [c.name, fmt(c.sensitivity), c.count, fmt(c.tolerance), fmt(c.worst_case), f"{100 * c.variance_share:.1f}"]
+            [c.name, labelled(fmt(c.sensitivity), c.sensitivity_units, per), c.count,
+             labelled(fmt(c.tolerance), c.units, tol), fmt(c.worst_case), f"{100 * c.variance_share:.1f}"]
             for c in r.contributions
         ]
         click.echo(
             text_table(
                 rows,
-                ["contributor", "sensitivity", "count", f"± tol [{u}]", "± worst case", "% variance"],
+                ["contributor", unit_header("sensitivity", per), "count", unit_header("± tol", tol),
+                 unit_header("± worst case", r.units), "% variance"],
             )
         )
 

@@ -109,6 +109,33 @@ def fmt(value, digits: int = 4) -> str:
     return f"{value:.{digits}g}"
 
 
+def shared_label(labels) -> str | None:
+    """The one units label every row of a column shares, or None when they differ.
+
+    A shared label goes in the column header (:func:`unit_header`); otherwise each value carries
+    its own (:func:`labelled`).
+    """
+    distinct = set(labels)
+    if len(distinct) > 1:
+        return None
+    return next(iter(distinct), "")
+
+
+def unit_header(text: str, shared: str | None) -> str:
+    """A column header with the column's shared units label: ``"± tol [mm]"``."""
+    return f"{text} [{shared}]" if shared else text
+
+
+def labelled(text: str, label: str, shared: str | None) -> str:
+    """A value with its own units label when its column has no shared one: ``"0.05 mm"``."""
+    return text if shared is not None or not label or text == "-" else f"{text} {label}"
+
+
+def units_title(case) -> str:
+    """The units labels a case uses, for the title line: ``"mm"`` or ``"mm, N"``."""
+    return ", ".join(case.unit_labels)
+
+
 def write_csv(frame) -> None:
     """Print a pandas DataFrame as CSV on stdout."""
     click.echo(frame.to_csv(), nl=False)

@@ -18,6 +18,7 @@ from .common import (
     load_case_or_exit,
     model_option,
     text_table,
+    units_title,
 )
 
 SOURCES = {
@@ -112,7 +113,8 @@ def frontier(case_file, requirement, vary, span, points, models, plot, economics
             document["economics_note"] = economics_note
         echo_json(document)
     elif as_csv:
-        click.echo(result.to_frame().to_csv(index=False), nl=False)
+        value_units = "ppm" if result.vary == "fallout_ppm" else result.units
+        click.echo(result.to_frame().assign(value_units=value_units).to_csv(index=False), nl=False)
     else:
         _print_human(case, result, economics, economics_note)
 
@@ -136,13 +138,12 @@ def _economics(case, result):
 
 
 def _print_human(case, result, economics, economics_note) -> None:
-    u = case.units
     money = f" {case.currency}" if case.currency else ""
-    click.echo(f"{case.title}  [{u}{',' + money if money else ''}]")
+    click.echo(f"{case.title}  [{units_title(case)}{',' + money if money else ''}]")
     if result.vary == "fallout_ppm":
         what, unit = "fallout target", "ppm"
     else:
-        what, unit = f"{result.vary} limit", u
+        what, unit = f"{result.vary} limit", result.units  # the swept requirement's units
     values = result.values
     click.echo(
         f"frontier of {result.requirement}: least cost per assembly against its {what}, "

@@ -22,6 +22,7 @@ from .common import (
     model_option,
     seed_option,
     text_table,
+    units_title,
     write_csv,
 )
 
@@ -235,7 +236,7 @@ def verify(case_file, tolerance_file, models, samples, seed, plot, centred, as_j
 
 
 def _print_human(case, result, source: str, plot) -> None:
-    click.echo(f"{case.title}  [{case.units}]")
+    click.echo(f"{case.title}  [{units_title(case)}]")
     click.echo(
         f"Monte Carlo: {result.samples:,} assemblies, seed {result.seed} "
         f"(repeat with --seed {result.seed}); {source}"
@@ -246,6 +247,7 @@ def _print_human(case, result, source: str, plot) -> None:
         rows.append(
             [
                 c.name,
+                f"[{fmt(c.lower, 6)}, {fmt(c.upper, 6)}]" + (f" {c.units}" if c.units else ""),
                 f"{c.samples:,}",
                 f"{fmt(c.fallout_ppm)} [{fmt(c.ci_low_ppm)}, {fmt(c.ci_high_ppm)}]",
                 fmt(c.rss_ppm),
@@ -261,6 +263,7 @@ def _print_human(case, result, source: str, plot) -> None:
             rows,
             [
                 "requirement",
+                "limits",
                 "samples",
                 f"fallout ppm [{level} CI]",
                 "rss ppm",

@@ -427,7 +427,9 @@ class DiscreteAllocation:
             options.append(_Option(i, k, p.name, p.limits, curve, factor(p), "points",
                                    points, _cost_at(curve, points), labels))
         if not options:
-            problem = rounding_values.no_value_problem(self.rounding, c.nominal, self.case.units, ranges)
+            problem = rounding_values.no_value_problem(
+                self.rounding, c.nominal, self.case.contributor_units(c.name), ranges
+            )
             raise CaseError(
                 f"contributor '{c.name}': {problem}",
                 file=str(self.case.path) if self.case.path is not None else None,
@@ -438,7 +440,7 @@ class DiscreteAllocation:
     def _rounded(self, c, lo, hi):
         if self.rounding == "iso286":
             try:
-                return rounding_values.iso286_values(c.nominal, self.case.units, lo, hi)
+                return rounding_values.iso286_values(c.nominal, self.case.contributor_units(c.name), lo, hi)
             except ValueError as err:
                 raise CaseError(
                     f"contributor '{c.name}': {err}",

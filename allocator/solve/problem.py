@@ -694,6 +694,7 @@ class AllocationProblem:
             iterations=iterations,
             gap=gap,
             units=case.units,
+            contributor_units=case.own_contributor_units,
             currency=case.currency,
             title=case.title,
             held={n: float(v) for n, v, k in zip(self.names, self.held, self.hold_kind) if k == "held"},
@@ -720,6 +721,7 @@ class AllocationProblem:
                     target_ppm=None if self.model == "worst-case" else lim.fallout_ppm,
                     linear=req.linear,
                     **prices,
+                    units=case.requirement_units(req.name),
                 )
             )
         return Allocation(

@@ -45,12 +45,15 @@ class RequirementResult:
     binding : str
         Which limit the optimum presses against: 'lower', 'upper', 'both' or ''.
     shadow_price : float
-        d(total cost)/d(limit) of the binding limit [currency/length]: negative for an
+        d(total cost)/d(limit) of the binding limit [currency/response]: negative for an
         upper limit (raising it saves money), positive for a lower one.
     shadow_lower, shadow_upper : float or None
         The same per limit (None when the limit is absent).
     shadow_ppm : float or None
         d(total cost)/d(fallout target) [currency/ppm] (statistical models).
+    units : str
+        Label of the response and its limits (the requirement's ``units``, else the
+        case's); shadow prices of the limits are in currency per this label.
     """
 
     name: str
@@ -69,6 +72,7 @@ class RequirementResult:
     shadow_lower: float | None
     shadow_upper: float | None
     shadow_ppm: float | None
+    units: str = ""
 
     def to_dict(self) -> dict:
         return asdict(self)
@@ -110,6 +114,11 @@ class Allocation:
         Relative gap between the returned cost and a lower bound on the optimum.
     held : dict
         Tolerances held by the ``fix`` argument.
+    units : str
+        The case's units label.
+    contributor_units : dict
+        Contributor name -> units label of its tolerances (its own, else the case's);
+        the constructor takes only the labels that differ from ``units``.
     """
 
     def __init__(
@@ -138,6 +147,7 @@ class Allocation:
         unit_cost_allocated=None,
         total_cost=None,
         bounds=None,
+        contributor_units=None,
     ):
         if status not in STATUSES:
             raise ValueError(f"unknown status {status!r}")
@@ -156,6 +166,7 @@ class Allocation:
         self.iterations = int(iterations)
         self.gap = gap
         self.units = units
+        self._own_units = dict(contributor_units or {})  # only labels that differ from ``units``
         self.currency = currency
         self.title = title
         self.held = dict(held)
@@ -199,6 +210,11 @@ class Allocation:
     def allocated_array(self):
         """Allocated tolerances as a numpy array in case order (None when infeasible)."""
         return None if self._allocated is None else self._allocated.copy()
+
+    @property
+    def contributor_units(self) -> dict:
+        """Contributor name -> units label of its tolerances."""
+        return {n: self._own_units.get(n, self.units) for n in self.names}
 
     # ------------------------------------------------------------------ pandas views
 
@@ -247,6 +263,7 @@ class Allocation:
                     "unit_cost_allocated": (
                         None if self._unit_allocated is None else _finite(self._unit_allocated[i])
                     ),
+                    "units": self._own_units.get(name, self.units),
                 }
             )
         return out
