@@ -472,3 +472,15 @@ def test_choose_cost_table_may_list_a_dominated_entry():
     # flat stretches and round-off are no rise either
     flat = 'cost = { curve = "table", tolerance = [0.05, 0.1, 0.2], cost = [3.0, 1.0, 1.0000000000000002] }'
     assert loads_case(MINIMAL.replace('cost = { curve = "reciprocal", b = 0.5 }', flat))
+
+
+def test_iso286_rounding_checks_each_rounded_contributors_own_units():
+    text = MINIMAL + '\n[allocation]\nrounding = "iso286"\n'
+    # a rounded contributor labelled in a unit that is not a length: refused on its own field
+    err = _error(text.replace('name = "a"\n', 'name = "a"\nunits = "N"\n'))
+    assert str(err).startswith("t.toml: contributor[1] (a).units: 'N' cannot be converted to millimetres")
+    # a fixed contributor is not rounded, and a length label of its own is honoured
+    assert loads_case(text.replace('name = "b"\n', 'name = "b"\nunits = "N"\n')).contributor_units("b") == "N"
+    case = loads_case(text.replace('title = "minimal"', 'title = "minimal"\nunits = "N"')
+                      .replace('name = "a"\n', 'name = "a"\nunits = "mm"\n'))
+    assert case.units == "N" and case.contributor_units("a") == "mm"
