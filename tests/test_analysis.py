@@ -53,3 +53,26 @@ def test_tolerance_overrides_and_frames():
     d = res.to_dict()["requirements"][0]
     for key in ("name", "nominal", "worst_case_min", "worst_case_max", "sigma", "fallout_ppm"):
         assert key in d
+
+
+def test_cli_prints_tiny_fallout_in_ppb_without_exponents():
+    # the gear hub demo's upper tail is far below 0.01 ppm: the table says it in ppb
+    import re
+    from pathlib import Path
+
+    from click.testing import CliRunner
+
+    from allocator.case import load_case
+    from allocator.cli.main import cli
+    from allocator.ppm import format_ppm
+
+    path = Path(__file__).resolve().parents[1] / "cases" / "gear_hub_end_play.toml"
+    result = CliRunner().invoke(cli, ["analyze", str(path)])
+    assert result.exit_code == 0, result.output
+    r = analyze(load_case(path)).requirements[0]
+    assert r.fallout_above_ppm < 0.01
+    assert f"above {format_ppm(r.fallout_above_ppm)}" in result.stdout
+    assert format_ppm(r.fallout_above_ppm).endswith(" ppb")
+    for line in result.stdout.splitlines():
+        if "fallout" in line:
+            assert not re.search(r"\d[eE][-+]\d", line), line
