@@ -579,8 +579,11 @@ def _optimise(sweep, grid, scrap, volume, current_ppm, bounds) -> FalloutOptimum
     else:
         slope = base.slope_numeric if base.slope_numeric is not None else base.slope_shadow
         error = abs(slope - expected) / abs(expected) if expected else abs(slope)
-        base.message = (f"interior optimum; dM/dp = {slope:.4g} against -scrap_cost*1e-6 = {expected:.4g} "
-                        f"(relative difference {error:.1e})")
+        # in words: −dM/dp (manufacturing saved) against s·1e-6 (scrap added), per 1000 ppm
+        balance = "the two balance" if error <= 1e-3 else f"they differ by {100 * error:.2g} %"
+        base.message = (f"interior optimum: there each further 1000 ppm of fallout saves {-1000 * slope:.4g} "
+                        f"of manufacturing cost per assembly and adds {-1000 * expected:.4g} of scrap cost; "
+                        f"{balance}")
     return base
 
 

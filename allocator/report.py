@@ -20,9 +20,12 @@ import io
 import math
 import platform
 import re
+import shlex
 from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from pathlib import Path
+
+from .ppm import format_ppm
 
 __all__ = [
     "SECTIONS",
@@ -177,7 +180,20 @@ def _t(value) -> str:
 
 
 def _ppm(value) -> str:
-    return _n(value, 4)
+    """A fallout in a column headed [ppm]: plain decimals, ppb for tiny values."""
+    return _e(format_ppm(value, unit=False, missing="—"))
+
+
+def _saving(value, digits: int = 4, *, percent: bool = False) -> str:
+    """A saving against the current design; a dearer result reads ``costs 5.096 more``."""
+    if value is not None and float(value) < 0:
+        return _e(f"costs {fmt_number(-float(value), digits)}{' %' if percent else ''} more")
+    return _n(value, digits, signed=True)
+
+
+def _has_mean_shifts(case) -> bool:
+    """True when some contributor of ``case`` states a mean shift."""
+    return any(c.mean_shift > 0 for c in case.contributors)
 
 
 def _model(name: str) -> str:
@@ -789,18 +805,29 @@ def _header(report: Report) -> str:
         )
     rec = report.allocations.get(report.recommended)
     if rec is not None:
+        if rec.savings is not None and rec.savings < 0:
+            change = (f"it costs <strong>{_n(-rec.savings)}</strong> more "
+                      f"({_n(-rec.savings_percent, 3) if rec.savings_percent is not None else '—'} %)")
+        else:
+            change = (f"saving <strong>{_n(rec.savings, signed=True)}</strong> "
+                      f"({_n(rec.savings_percent, 3, signed=True)} %)")
         parts.append(
             '<p class="verdict">Recommended here: the <strong>'
             + _model(report.recommended)
             + f"</strong> allocation, <strong>{_n(rec.total_cost)}</strong>{_e(' ' + cur if cur else '')} per assembly "
-            f"against {_n(rec.current_cost)} for the current design: saving <strong>{_n(rec.savings, signed=True)}</strong> "
-            f"({_n(rec.savings_percent, 3, signed=True)} %). Monte Carlo: {_e(report.verification.message)}.</p>"
+            f"against {_n(rec.current_cost)} for the current design: {change}. "
+            f"Monte Carlo: {_e(report.verification.message)}.</p>"
         )
     else:
         parts.append('<p class="verdict">No model produced an allocation; sections 3 to 8 show the current design only.</p>')
+    means = (
+        "whose means stay within the mean shifts the case states"
+        if _has_mean_shifts(case)
+        else "centred on their nominals (the case states no mean shift)"
+    )
     parts.append(
         '<aside class="caution-brief" role="note"><p><strong>Caution.</strong> Statistical results assume '
-        "stable, capable, centred processes with the stated distributions: verify with measured capability "
+        f"stable, capable processes with the stated distributions, {means}: verify with measured capability "
         "before relying on them. Safety-critical fits are designed worst case and checked against the "
         'applicable codes and a licensed engineering review. <a href="#cautions">All cautions (section 9)</a>.</p></aside>'
     )
@@ -910,7 +937,7 @@ def _section_summary(report: Report) -> str:
     ru = _Units(case.requirement_units(r.name) for r in case.requirements)
     req_rows = [
         [_e(r.name), _chain_text(r), ru.cell(_i(r.lower), case.requirement_units(r.name)),
-         ru.cell(_i(r.upper), case.requirement_units(r.name)), _i(r.fallout_ppm)]
+         ru.cell(_i(r.upper), case.requirement_units(r.name)), _ppm(r.fallout_ppm)]
         for r in case.requirements
     ]
     requirements = _table(
@@ -973,7 +1000,7 @@ def _analysis_table(analysis, caption: str) -> str:
         row("  of which below / above [ppm]", [f"{_ppm(r.fallout_below_ppm)} / {_ppm(r.fallout_above_ppm)}" for r in reqs]),
         measured("Mean-shift band ±δ", [_n(r.mean_shift) for r in reqs]),
         row("Predicted fallout, mean at worst place [ppm]", [_ppm(r.mean_shift_ppm) for r in reqs]),
-        row("Fallout target [ppm]", [_i(r.target_ppm) for r in reqs]),
+        row("Fallout target [ppm]", [_ppm(r.target_ppm) for r in reqs]),
         row("Meets target (RSS)", [_flag("yes") if r.fallout_ppm <= r.target_ppm else _flag("NO", "bad") for r in reqs]),
         row("Response", ["linear chain" if r.linear else "expression, linearised" for r in reqs]),
     ]
@@ -1045,9 +1072,9 @@ def _section_allocation(report: Report) -> str:
     rows.append(_Row(["Cost per assembly" + cost_label, current_cost]
                      + [_n(allocs[m].total_cost) if ok[m] else "—" for m in models], "sum first"))
     rows.append(_Row(["Saving against current" + cost_label, ""]
-                     + [_n(allocs[m].savings, signed=True) if ok[m] else "—" for m in models], "sum"))
+                     + [_saving(allocs[m].savings) if ok[m] else "—" for m in models], "sum"))
     rows.append(_Row(["Saving against current [%]", ""]
-                     + [_n(allocs[m].savings_percent, 3, signed=True) if ok[m] else "—" for m in models], "sum"))
+                     + [_saving(allocs[m].savings_percent, 3, percent=True) if ok[m] else "—" for m in models], "sum"))
     # rounded allocations (case [allocation].rounding) say what the rounding cost
     rounding_cost = {m: getattr(allocs[m], "rounding_cost", None) for m in models}
     if any(v is not None for v in rounding_cost.values()):
@@ -1081,7 +1108,7 @@ def _section_allocation(report: Report) -> str:
                     ru.cell(f"{_r(rr.worst_case_min)} to {_r(rr.worst_case_max)}", label),
                     ru.cell(_n(rr.sigma), label),
                     _ppm(rr.fallout_ppm),
-                    _i(rr.target_ppm),
+                    _ppm(rr.target_ppm),
                     _e(rr.binding or "—"),
                 ]
             )
@@ -1146,7 +1173,7 @@ def _section_frontier(report: Report, svg: str | None) -> str:
     for model, cost in (current.get("optimal") or {}).items():
         facts.append((f"Least cost at the case value, {_model(model)}{_unit(cur)}", _n(cost)))
     rows = [
-        [_e(fmt_number(v, strip=True))] + [_n(front.costs[m][i]) if front.costs[m][i] is not None else _e(front.statuses[m][i]) for m in front.models]
+        [_ppm(v) if front.vary == "fallout_ppm" else _e(fmt_number(v, strip=True))] + [_n(front.costs[m][i]) if front.costs[m][i] is not None else _e(front.statuses[m][i]) for m in front.models]
         for i, v in enumerate(front.values)
     ]
     table = _table(
@@ -1206,7 +1233,7 @@ def _section_verification(report: Report, svg: str) -> str:
             _e(c.name),
             _ppm(c.fallout_ppm),
             f"{_ppm(c.ci_low_ppm)} to {_ppm(c.ci_high_ppm)}",
-            _i(c.target_ppm),
+            _ppm(c.target_ppm),
             _ppm(c.predicted_ppm),
             _ppm(c.convolution_ppm),
             ru.cell(_r(c.mean), c.units),
@@ -1273,7 +1300,7 @@ def _section_shadow(report: Report) -> str:
         "money. The per-ppm column says what accepting one more ppm of fallout would save (statistical models). "
         "A zero or empty entry is a limit that does not constrain the optimum. Multiply by the change you have in "
         "mind (e.g. 0.01 of the unit) for a first estimate; the frontier shows larger moves exactly. "
-        "Source: <code>RequirementResult.shadow_lower / shadow_upper / shadow_ppm</code>.</p>"
+        "Computed by <code>allocator.solve.allocate</code> together with each allocation.</p>"
     )
     if report.unrounded:
         guide += (
@@ -1397,8 +1424,9 @@ def _section_reproducibility(report: Report) -> str:
         if not report.include_frontier
         else (f" --frontier-points {report.frontier_points}" if report.frontier_points is not None else "")
     )
+    # the case path exactly as it was given (folder included), quoted for a shell
     command = (
-        f"allocator report {Path(case.path).name if case.path else 'CASE'} {model_flags} "
+        f"allocator report {shlex.quote(str(case.path)) if case.path else 'CASE'} {model_flags} "
         f"--samples {report.samples} --seed {report.seed}{frontier_flag} -o REPORT.html"
     )
     facts = [

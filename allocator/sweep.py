@@ -438,12 +438,14 @@ class LimitSweep:
             return "solved once (worst case does not use the fallout target)"
         if self.batch is not None:
             return "exact 1-D Lagrange dual, batched over the sweep"
+        # said in words: the user never sees our class names
         name = type(self.solver).__name__
         return {
             "CompiledAllocation": "compiled conic problem re-solved with new parameters (DPP)",
-            "ExactAllocation": "exact 1-D Lagrange dual per point",
-            "DiscreteAllocation": "discrete (MILP) solver re-solved per point",
-        }.get(name, f"{name} per point")
+            "ExactAllocation": "exact 1-D Lagrange dual, solved again at each value",
+            "MeanShiftExact": "optimality conditions of the mean-shift model solved directly at each value",
+            "DiscreteAllocation": "mixed-integer program (MILP) solved again at each value",
+        }.get(name, "the model's own solver, run again at each value")
 
     def overrides(self, value) -> dict:
         return {self.requirement: {self.vary: float(value)}}
@@ -675,7 +677,7 @@ def automatic_range(case: Case, requirement: str, vary: str, sweeps) -> tuple[tu
         a, b = sorted((nominal + sign * 0.1 * slack, far))
         return (a, b), (
             f"range chosen automatically: {_g(a)} .. {_g(b)} (no model meets the requirement "
-            f"at any {vary} limit: see the reasons per point)"
+            f"at any {vary} limit: see the reason at each value)"
         )
     start = min(starts) if vary == "upper" else max(starts)
     start = _nice(start, "up" if vary == "upper" else "down")
@@ -848,7 +850,9 @@ def _summary(values, models, statuses, messages, vary):
         parts = []
         for m in partial:
             vals = [values[i] for i in bad[m]]
-            parts.append(f"{m} at {len(vals)} of {n} values ({_g(min(vals))} .. {_g(max(vals))})")
+            lo, hi = _g(min(vals)), _g(max(vals))
+            where = lo if lo == hi else f"{lo} .. {hi}"  # a range of one value is that value
+            parts.append(f"{m} at {len(vals)} of {n} values ({where})")
         return "partial", "cannot be met by " + "; ".join(parts) + " (flagged 'infeasible')"
     return "optimal", f"{n} values x {len(models)} model(s), every point solved and re-checked"
 

@@ -157,3 +157,26 @@ def test_zero_spread_response_on_its_limit_has_no_fallout():
     assert stack.normal_fallout(0.1 + 0.2, 0.0, upper=0.3) == (0.0, 0.0)
     assert stack.normal_fallout(0.3 - 0.2, 0.0, lower=0.1) == (0.0, 0.0)
     assert stack.normal_fallout(0.3 * (1 + 1e-6), 0.0, upper=0.3) == (0.0, 1.0)
+
+
+def test_cli_prints_tiny_fallout_in_ppb_without_exponents():
+    # the gear hub demo's upper tail is far below 0.01 ppm: the table says it in ppb
+    import re
+    from pathlib import Path
+
+    from click.testing import CliRunner
+
+    from allocator.case import load_case
+    from allocator.cli.main import cli
+    from allocator.ppm import format_ppm
+
+    path = Path(__file__).resolve().parents[1] / "cases" / "gear_hub_end_play.toml"
+    result = CliRunner().invoke(cli, ["analyze", str(path)])
+    assert result.exit_code == 0, result.output
+    r = analyze(load_case(path)).requirements[0]
+    assert r.fallout_above_ppm < 0.01
+    assert f"above {format_ppm(r.fallout_above_ppm)}" in result.stdout
+    assert format_ppm(r.fallout_above_ppm).endswith(" ppb")
+    for line in result.stdout.splitlines():
+        if "fallout" in line:
+            assert not re.search(r"\d[eE][-+]\d", line), line

@@ -514,12 +514,34 @@ def test_unusable_case_paths_are_one_line(tmp_path, make, fragment):
     with pytest.raises(CaseError, match=re.escape(fragment)):
         load_case(path)
     for command in COMMANDS:
-        result = run_cli([command, str(path)])
-        if fragment == "is a folder, not a case file":
-            # click's own path check answers first (still exit 2, no traceback)
-            assert result.exit_code == 2 and "Traceback" not in result.output
-            continue
-        assert_one_line_exit_2(result, fragment)
+        assert_one_line_exit_2(run_cli([command, str(path)]), fragment)
+
+
+@pytest.mark.parametrize("command", ["analyze", "allocate", "frontier", "verify", "report"])
+def test_a_folder_as_the_case_is_one_line_in_every_command(tmp_path, command):
+    # `allocator analyze .`: the folder exactly as given, then the problem
+    extra = ["-o", str(tmp_path / "r.html")] if command == "report" else []
+    line = assert_one_line_exit_2(run_cli([command, ".", *extra], tmp_path), "is a folder, not a case file")
+    assert line == "error: .: is a folder, not a case file"
+
+
+@pytest.mark.parametrize(
+    "args, line",
+    [
+        (["init", "{tmp}"], "error: {tmp}: is a folder, not a file"),
+        (["report", "{case}", "-o", "{tmp}"], "error: {tmp}: --output: is a folder, not a file"),
+        (["verify", "{case}", "--tolerances", "{tmp}"], "error: {tmp}: --tolerances: is a folder, not a file"),
+        (["verify", "{case}", "--plot", "{tmp}"], "error: {tmp}: --plot: is a folder, not a file"),
+    ],
+    ids=["init", "report-output", "verify-tolerances", "verify-plot"],
+)
+def test_a_folder_where_a_file_is_expected_is_one_line(tmp_path, args, line):
+    case = tmp_path / "case.toml"
+    case.write_text(case_text(), encoding="utf-8")
+    before = files_in(tmp_path)
+    fill = lambda text: text.format(tmp=tmp_path, case=case)  # noqa: E731
+    assert assert_one_line_exit_2(run_cli([fill(a) for a in args])) == fill(line)
+    assert files_in(tmp_path) == before
 
 
 # --------------------------------------------------------------------------- the corpus through allocate

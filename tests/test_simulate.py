@@ -450,6 +450,9 @@ def test_cli_exit_1_when_target_exceeded(tmp_path):
     out = run(path, "--samples", "2e4", "--seed", "1")
     assert out.exit_code == 1
     assert "fail" in out.output
+    # the verdict and its reason once, in the output; stderr one short line
+    assert "result: fail - fallout above target" in out.stdout
+    assert out.stderr == "error: verification: fallout above target for clearance\n"
 
 
 def test_cli_rss_allocation_with_mean_shifts_explains_itself(tmp_path):
@@ -463,7 +466,7 @@ def test_cli_rss_allocation_with_mean_shifts_explains_itself(tmp_path):
     assert out.exit_code in (0, 1), out.output
     assert "note: the simulation places the case's mean shifts (rail)" in out.output
     assert "rss allocation did not assume" in out.output and "--centred" in out.output
-    doc = json.loads(run(path, "--model", "rss", "--samples", "2e4", "--seed", "4", "--json").output)
+    doc = json.loads(run(path, "--model", "rss", "--samples", "2e4", "--seed", "4", "--json").stdout)
     assert "--centred" in doc["assumption_note"] and doc["allocated_with"] == "rss"
     centred = run(path, "--model", "rss", "--samples", "2e4", "--seed", "4", "--centred")
     assert "note:" not in centred.output
@@ -476,6 +479,20 @@ def test_cli_sample_bounds(case_file):
     assert run(case_file, "--samples", "2e9").exit_code == 2
     assert run(case_file, "--samples", "abc").exit_code == 2
     assert run(case_file, "--seed", "-4", "--samples", "1e3").exit_code == 2
+    for bad in ("2.5", "-1"):
+        out = run(case_file, "--samples", bad)
+        assert out.exit_code == 2 and out.stderr.startswith("error: --samples: ") and out.stderr.count("\n") == 1
+
+
+def test_report_and_verify_share_one_samples_type():
+    from allocator.cli.common import SampleCount
+    from allocator.cli.report import report
+    from allocator.cli.verify import verify as verify_command
+
+    for command in (report, verify_command):
+        option = next(p for p in command.params if p.name == "samples")
+        assert isinstance(option.type, SampleCount)
+    assert SampleCount().convert("2e5", None, None) == 200_000
 
 
 def test_special_ndtr_is_the_normal_cdf_used():

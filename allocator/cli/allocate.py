@@ -7,10 +7,13 @@ import sys
 import click
 
 from ..errors import AllocatorError, InternalError, UsageError
+from ..ppm import format_ppm
 from .common import (
     CASE_ARGUMENT,
     csv_option,
+    echo_error,
     echo_json,
+    exit_failed,
     fmt,
     handle_errors,
     unit_header,
@@ -106,14 +109,13 @@ def allocate(case_file, models, fixes, as_json, as_csv):
         _print_human(case, results, baselines)
 
     failed = [r for r in results if not r.success]
-    for r in failed:
-        click.echo(f"error: {r.model}: {r.status}: {r.message}", err=True)
-    for err in crashed:
-        click.echo(f"error: {err}", err=True)
     if crashed:
+        # the models that solved are printed above; the crash gets one line
+        echo_error(crashed[0])
         sys.exit(crashed[0].exit_code)
     if failed:
-        sys.exit(1)
+        # the reason is in the output above (table or JSON); stderr gets one short line
+        exit_failed("allocation with " + "; ".join(f"model {r.model}: {r.status}" for r in failed))
 
 
 def _write_csv(results) -> None:
@@ -130,6 +132,21 @@ def _write_csv(results) -> None:
     click.echo(buffer.getvalue(), nl=False)
 
 
+def _count(n, noun: str) -> str:
+    """``1 iteration``, ``3 iterations``."""
+    return f"{n} {noun}" if n == 1 else f"{n} {noun}s"
+
+
+def _saving(savings, percent) -> str:
+    """``saves 1.18 (12.6 %)``, or for a dearer result ``costs 5.096 more (47.0 %)``."""
+    if savings is None:
+        return "saving unknown"
+    share = f" ({abs(percent):.1f} %)" if percent is not None else ""
+    if savings < 0:
+        return f"costs {fmt(-savings, 4)} more{share}"
+    return f"saves {fmt(savings, 4)}{share}"
+
+
 def _print_human(case, results, baselines) -> None:
     from ..model import per_unit
 
@@ -139,7 +156,7 @@ def _print_human(case, results, baselines) -> None:
         click.echo("")
         head = f"model {result.model}: {result.status}"
         if result.solver:
-            head += f" ({result.solver}, {result.iterations} iterations"
+            head += f" ({result.solver}, {_count(result.iterations, 'iteration')}"
             head += f", gap {result.gap:.1e})" if result.gap is not None else ")"
         click.echo(head)
         if result.total_cost is None:
@@ -148,14 +165,17 @@ def _print_human(case, results, baselines) -> None:
         if not result.success:
             click.echo(f"  warning: {result.message}")
         rows = []
+        # a process column only where the case offers processes, a grade column only where
+        # the tolerances are rounded to ISO 286 grades; a part without one has an empty cell
         with_process = any(r["process"] for r in result.rows())
+        with_grade = bool(result.grades)
         u = shared_label(r["units"] for r in result.rows())
         for r in result.rows():
             name = r["contributor"]
             rows.append([
                 name,
-                *([r["process"] + (f" {result.grades[name]}" if name in result.grades else "")]
-                  if with_process else []),
+                *([r["process"] or ""] if with_process else []),
+                *([result.grades.get(name, "")] if with_grade else []),
                 labelled(f"±{fmt(r['current'])}", r["units"], u),
                 labelled(f"±{fmt(r['allocated'])}", r["units"], u),
                 r["bound"],
@@ -164,14 +184,12 @@ def _print_human(case, results, baselines) -> None:
             ])
         click.echo(text_table(
             rows,
-            ["contributor", *(["process"] if with_process else []), unit_header("current", u),
-             unit_header("allocated", u), "bound", f"unit cost{money}", "count"],
+            ["contributor", *(["process"] if with_process else []), *(["grade"] if with_grade else []),
+             unit_header("current", u), unit_header("allocated", u), "bound", f"unit cost{money}", "count"],
         ))
-        savings = result.savings_percent
         click.echo(
             f"total cost {fmt(result.total_cost, 6)}{money} per assembly "
-            f"(current {fmt(result.current_cost, 6)}; saves {fmt(result.savings, 4)}"
-            + (f", {savings:.1f} %)" if savings is not None else ")")
+            f"(current {fmt(result.current_cost, 6)}; {_saving(result.savings, result.savings_percent)})"
         )
         if result.rounding:
             line = f"rounded to {result.rounding}"
@@ -196,10 +214,10 @@ def _print_human(case, results, baselines) -> None:
                        + ("" if r.linear else " (linearised expression)"))
             text = (
                 f"  worst case [{fmt(r.worst_case_min, 6)}, {fmt(r.worst_case_max, 6)}]   "
-                f"sigma {fmt(r.sigma)}   fallout {fmt(r.fallout_ppm)} ppm"
+                f"sigma {fmt(r.sigma)}   fallout {format_ppm(r.fallout_ppm)}"
             )
             if r.target_ppm is not None:
-                text += f" (target {fmt(r.target_ppm)})"
+                text += f" (target {format_ppm(r.target_ppm)})"
             if r.mean_shift:
                 text += f"   mean shift ±{fmt(r.mean_shift)}"
             click.echo(text)

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import click
 
+from ..ppm import format_ppm
 from .common import (
     CASE_ARGUMENT,
     csv_option,
@@ -56,14 +57,14 @@ def analyze(case_file, as_json, as_csv):
             f"{fmt(r.worst_case_max, 6)}] {verdict}"
         )
         click.echo(
-            f"  rss sigma {fmt(r.sigma)}   Cpk {fmt(r.cpk, 3)}   fallout {fmt(r.fallout_ppm)} ppm "
-            f"(below {fmt(r.fallout_below_ppm)}, above {fmt(r.fallout_above_ppm)}; "
-            f"target {fmt(r.target_ppm)})"
+            f"  rss sigma {fmt(r.sigma)}   Cpk {fmt(r.cpk, 3)}   fallout {format_ppm(r.fallout_ppm)} "
+            f"(below {format_ppm(r.fallout_below_ppm)}, above {format_ppm(r.fallout_above_ppm)}; "
+            f"target {format_ppm(r.target_ppm)})"
         )
         if r.mean_shift > 0:
             click.echo(
-                f"  mean shift ±{fmt(r.mean_shift)}: fallout {fmt(r.mean_shift_ppm)} ppm "
-                f"(below {fmt(r.mean_shift_below_ppm)}, above {fmt(r.mean_shift_above_ppm)})"
+                f"  mean shift ±{fmt(r.mean_shift)}: fallout {format_ppm(r.mean_shift_ppm)} "
+                f"(below {format_ppm(r.mean_shift_below_ppm)}, above {format_ppm(r.mean_shift_above_ppm)})"
             )
         per = shared_label(c.sensitivity_units for c in r.contributions)
         tol = shared_label(c.units for c in r.contributions)

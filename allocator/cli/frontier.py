@@ -12,6 +12,7 @@ from .common import (
     CASE_ARGUMENT,
     csv_option,
     echo_json,
+    exit_failed,
     fmt,
     handle_errors,
     json_option,
@@ -120,9 +121,8 @@ def frontier(case_file, requirement, vary, span, points, models, plot, economics
 
     if economics_plot and economics is None:
         click.echo(f"warning: no economics plot written: {economics_note}", err=True)
-    if not result.success:
-        click.echo(f"error: {result.status}: {result.message}", err=True)
-        sys.exit(1)
+    if not result.success:  # the reason is in the output; stderr gets one short line
+        exit_failed(f"frontier of {result.requirement}: {result.status}")
 
 
 def _economics(case, result):
@@ -193,6 +193,8 @@ def _print_human(case, result, economics, economics_note) -> None:
 
 
 def _print_economics(economics, money) -> None:
+    from ..ppm import format_ppm
+
     click.echo("")
     volume = economics.volume
     head = (
@@ -217,7 +219,7 @@ def _print_economics(economics, money) -> None:
             (f"{LABELS[r.model]}: current target", r.current_ppm, r.current_manufacturing,
              r.current_scrap, r.current_total, r.annual_current_total),
         ):
-            row = [label, fmt(ppm, 4), fmt(m, 6), fmt(s, 4), fmt(t, 6)]
+            row = [label, format_ppm(ppm, unit=False), fmt(m, 6), fmt(s, 4), fmt(t, 6)]
             if volume is not None:
                 row.append(fmt(year, 8))
             rows.append(row)

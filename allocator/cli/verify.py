@@ -5,16 +5,21 @@ from __future__ import annotations
 import difflib
 import json
 import math
-import sys
 from pathlib import Path
 
 import click
 
 from ..errors import CaseError, InfeasibleError, UsageError
+from ..ppm import format_ppm
 from .common import (
     CASE_ARGUMENT,
+    MAX_SAMPLES,
+    MIN_SAMPLES,
+    FilePath,
+    SampleCount,
     csv_option,
     echo_json,
+    exit_failed,
     fmt,
     handle_errors,
     json_option,
@@ -26,31 +31,7 @@ from .common import (
     write_csv,
 )
 
-MIN_SAMPLES = 1_000
-MAX_SAMPLES = 1_000_000_000
 PLOT_FORMATS = (".png", ".svg")
-
-
-class SampleCount(click.ParamType):
-    """A whole number of assemblies; accepts ``200000``, ``2e5`` and ``200_000``."""
-
-    name = "N"
-
-    def convert(self, value, param, ctx):
-        if isinstance(value, int):
-            number = value
-        else:
-            text = str(value).strip().replace("_", "")
-            try:
-                as_float = float(text)
-            except ValueError:
-                self.fail(f"{value!r} is not a number", param, ctx)
-            if not math.isfinite(as_float) or as_float != int(as_float):
-                self.fail(f"{value!r} is not a whole number", param, ctx)
-            number = int(as_float)
-        if not MIN_SAMPLES <= number <= MAX_SAMPLES:
-            self.fail(f"{number} is outside {MIN_SAMPLES:.0e}..{MAX_SAMPLES:.0e}", param, ctx)
-        return number
 
 
 def _check_value(value, file: str, field: str) -> float:
@@ -161,7 +142,7 @@ def _verdict(check) -> str:
 @click.option(
     "--tolerances",
     "tolerance_file",
-    type=click.Path(dir_okay=False),
+    type=FilePath(),
     default=None,
     metavar="FILE.json",
     help="Tolerances to check: the output of `allocate --json` or a plain {name: t} object.",
@@ -175,7 +156,7 @@ def _verdict(check) -> str:
     help=f"Assemblies to simulate ({MIN_SAMPLES:.0e}..{MAX_SAMPLES:.0e}; 2e5 style accepted).",
 )
 @seed_option
-@click.option("--plot", type=click.Path(dir_okay=False), default=None, metavar="FILE", help="Write response histograms (.png or .svg).")
+@click.option("--plot", type=FilePath(), default=None, metavar="FILE", help="Write response histograms (.png or .svg).")
 @click.option(
     "--centred",
     is_flag=True,
@@ -231,8 +212,14 @@ def verify(case_file, tolerance_file, models, samples, seed, plot, centred, as_j
         write_csv(result.to_frame())
     else:
         _print_human(case, result, source, plot)
-    if result.status == "fail":
-        sys.exit(1)
+    if result.status == "fail":  # the reason is in the output; stderr gets one short line
+        failing = ", ".join(c.name for c in result.requirements if c.status == "fail")
+        exit_failed(f"verification: fallout above target for {failing}")
+
+
+def _ppm(value) -> str:
+    """A table cell under a [ppm] header (ppb values say so)."""
+    return format_ppm(value, unit=False)
 
 
 def _print_human(case, result, source: str, plot) -> None:
@@ -249,11 +236,11 @@ def _print_human(case, result, source: str, plot) -> None:
                 c.name,
                 f"[{fmt(c.lower, 6)}, {fmt(c.upper, 6)}]" + (f" {c.units}" if c.units else ""),
                 f"{c.samples:,}",
-                f"{fmt(c.fallout_ppm)} [{fmt(c.ci_low_ppm)}, {fmt(c.ci_high_ppm)}]",
-                fmt(c.rss_ppm),
-                fmt(c.mean_shift_ppm),
-                fmt(c.convolution_ppm),
-                fmt(c.target_ppm),
+                f"{_ppm(c.fallout_ppm)} [{_ppm(c.ci_low_ppm)}, {_ppm(c.ci_high_ppm)}]",
+                _ppm(c.rss_ppm),
+                _ppm(c.mean_shift_ppm),
+                _ppm(c.convolution_ppm),
+                _ppm(c.target_ppm),
                 _verdict(c),
             ]
         )
@@ -282,7 +269,7 @@ def _print_human(case, result, source: str, plot) -> None:
             model = "mean-shift" if c.mean_shift_ppm is not None else "rss"
             why = "linearised, normal" if not c.linear else "normal"
             notes.append(
-                f"{c.name}: the {model} prediction {fmt(c.predicted_ppm)} ppm lies outside the interval "
+                f"{c.name}: the {model} prediction {format_ppm(c.predicted_ppm)} lies outside the interval "
                 f"(the {why} model may not fit; ~5 % of runs by chance)"
             )
         if not c.linear:
