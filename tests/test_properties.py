@@ -64,16 +64,21 @@ EXAMPLES = {
     "infeasible": 200,
     "text": 50,
 }
+# The three longest properties also run on a few examples in the fast loop
+# (``pytest -m "not slow"``, see DEVELOPERS.md); the full counts above are marked slow.
+QUICK_EXAMPLES = {"single": 60, "several": 30, "slsqp": 12}
+SIZES = pytest.mark.parametrize("size", ["quick", pytest.param("full", marks=pytest.mark.slow)])
 
 
-def _examples(key: str) -> int:
-    return max(1, int(round(EXAMPLES[key] * SCALE)))
+def _examples(key: str, size: str = "full") -> int:
+    counts = QUICK_EXAMPLES if size == "quick" else EXAMPLES
+    return max(1, int(round(counts[key] * SCALE)))
 
 
-def _settings(key: str):
+def _settings(key: str, size: str = "full"):
     """Per-test settings: fixed example count, no deadline, reproducible examples."""
     return settings(
-        max_examples=_examples(key),
+        max_examples=_examples(key, size),
         deadline=None,
         derandomize=SEED is None,
         database=None,
@@ -99,7 +104,7 @@ class Counter:
             self.events[label] = self.events.get(label, 0) + 1
 
 
-def _run(key: str, inner, counter: Counter) -> None:
+def _run(key: str, inner, counter: Counter, size: str = "full") -> None:
     """Run a Hypothesis property, then report how many examples ran and how to rerun it."""
     mode = f"seed {SEED}" if SEED is not None else "derandomized"
     try:
@@ -112,7 +117,7 @@ def _run(key: str, inner, counter: Counter) -> None:
         ) from err
     summary = ", ".join(f"{k} {v}" for k, v in sorted(counter.events.items()))
     print(f"[property {key}] {counter.runs} examples ({mode}); {summary}")
-    assert counter.runs >= _examples(key), f"only {counter.runs} of {_examples(key)} examples ran"
+    assert counter.runs >= _examples(key, size), f"only {counter.runs} of {_examples(key, size)} examples ran"
 
 
 # --------------------------------------------------------------------------- strategies
@@ -353,11 +358,12 @@ def test_sigma_limit_meets_the_target_exactly():
     _run("sigma_limit", inner, counter)
 
 
-def test_single_requirement_allocations_are_verified_optima():
+@SIZES
+def test_single_requirement_allocations_are_verified_optima(size):
     """One requirement, any model, 2-40 contributors (mostly the exact dual)."""
     counter = Counter()
 
-    @_settings("single")
+    @_settings("single", size)
     @_seeded
     @given(invented_cases(max_requirements=1))
     def inner(invented):
@@ -368,16 +374,17 @@ def test_single_requirement_allocations_are_verified_optima():
         if not is_honest_failure(invented, result, counter):
             check_optimal(invented, result)
 
-    _run("single", inner, counter)
+    _run("single", inner, counter, size)
     check_failures_are_rare(counter)
 
 
-def test_several_requirements_allocations_are_verified_optima():
+@SIZES
+def test_several_requirements_allocations_are_verified_optima(size):
     """2-5 requirements sharing contributors (the conic solver, with cutting planes for
     mean shift); small cases so that many examples run quickly."""
     counter = Counter()
 
-    @_settings("several")
+    @_settings("several", size)
     @_seeded
     @given(invented_cases(max_contributors=10, min_requirements=2, max_requirements=5))
     def inner(invented):
@@ -388,16 +395,17 @@ def test_several_requirements_allocations_are_verified_optima():
         if not is_honest_failure(invented, result, counter):
             check_optimal(invented, result)
 
-    _run("several", inner, counter)
+    _run("several", inner, counter, size)
     check_failures_are_rare(counter)
 
 
-def test_allocations_are_no_dearer_than_slsqp():
+@SIZES
+def test_allocations_are_no_dearer_than_slsqp(size):
     """The expensive property: an independent SLSQP solve never finds a cheaper
     feasible point (scipy.optimize.minimize, method SLSQP, three starts)."""
     counter = Counter()
 
-    @_settings("slsqp")
+    @_settings("slsqp", size)
     @_seeded
     @given(invented_cases(max_contributors=16, max_requirements=5))
     def inner(invented):
@@ -417,7 +425,7 @@ def test_allocations_are_no_dearer_than_slsqp():
             f"SLSQP found {reference!r} < {result.total_cost!r} ({result.solver})"
         )
 
-    _run("slsqp", inner, counter)
+    _run("slsqp", inner, counter, size)
     check_failures_are_rare(counter)
     compared = counter.events.get("compared with slsqp", 0)
     assert compared >= 0.5 * counter.runs, f"SLSQP converged in only {compared} of {counter.runs} examples"

@@ -210,7 +210,8 @@ def _process_cp(c, name):
 
 
 @pytest.mark.parametrize("model", ["worst-case", "rss", "mean-shift"])
-@pytest.mark.parametrize("seed", range(6))
+# seeds 2-4 draw the largest cases (seconds each with mean shift): CI runs them, the fast loop not
+@pytest.mark.parametrize("seed", [pytest.param(s, marks=pytest.mark.slow) if s in (2, 3, 4) else s for s in range(6)])
 def test_same_optimum_as_enumeration(model, seed):
     case = _random_case(seed, model)
     result, ok = _check_against_enumeration(case, model)
