@@ -996,8 +996,9 @@ def load_case(path) -> Case:
 
     Examples
     --------
-    >>> case = load_case("cases/gearbox_end_play.toml")  # doctest: +SKIP
-    >>> case.names  # doctest: +SKIP
+    >>> case = load_case("cases/gearbox_end_play.toml")
+    >>> case.names
+    ('housing_depth', 'gasket', 'bearing_width', 'retaining_ring', 'spacer', 'cover_spigot')
     """
     file = Path(path)
     src = _Source(str(path), file.parent)

@@ -75,7 +75,7 @@ def scrap_cost_per_assembly(fallout_ppm, scrap_cost):
 
     Examples
     --------
-    >>> scrap_cost_per_assembly(100.0, 55.0)
+    >>> print(round(scrap_cost_per_assembly(100.0, 55.0), 6))  # 55 · 100 · 1e-6
     0.0055
     """
     return np.multiply(scrap_cost, np.multiply(fallout_ppm, PPM))
@@ -105,7 +105,7 @@ def cost_per_assembly(manufacturing, fallout_ppm, scrap_cost):
 
     Examples
     --------
-    >>> round(cost_per_assembly(7.5, 100.0, 55.0), 6)
+    >>> print(round(cost_per_assembly(7.5, 100.0, 55.0), 6))  # 7.5 + 55 · 100 · 1e-6
     7.5055
     """
     return np.add(manufacturing, scrap_cost_per_assembly(fallout_ppm, scrap_cost))

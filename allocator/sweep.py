@@ -747,9 +747,17 @@ def frontier(
 
     Examples
     --------
-    >>> from allocator.case import load_case  # doctest: +SKIP
-    >>> front = frontier(load_case("cases/gearbox_end_play.toml"), points=10)  # doctest: +SKIP
-    >>> front.to_frame().head()  # doctest: +SKIP
+    >>> from allocator.case import load_case
+    >>> front = frontier(load_case("cases/gearbox_end_play.toml"), points=10)
+    >>> len(front.values), front.models
+    (10, ('worst-case', 'rss', 'mean-shift'))
+    >>> costs = front.to_wide().dropna()  # NaN: a value that model cannot meet
+    >>> bool((costs["rss"] <= costs["mean-shift"] + 1e-9).all())
+    True
+    >>> bool((costs["mean-shift"] <= costs["worst-case"] + 1e-9).all())
+    True
+    >>> bool((costs["rss"].diff().dropna() <= 1e-9).all())  # never dearer as the limit loosens
+    True
     """
     started = time.perf_counter()
     req = _resolve_requirement(case, requirement)

@@ -289,6 +289,9 @@ def test_reading_a_small_case_does_not_reserve_the_cap():
     assert peak < 2**20, f"peak {peak / 2**20:.1f} MB for a {path.stat().st_size} byte case"
 
 
+# slow (writes 15 MB); the header count has a fast check in
+# test_header_count_accepts_spaced_headers_and_ignores_commented_ones
+@pytest.mark.slow
 def test_a_million_contributor_headers_are_refused_before_parsing(tmp_path, monkeypatch):
     """10^6 ``[[contributor]]`` tables fit in 15 MB, under the size cap; parsing them
     would build 10^6 tables (seconds, ~100 MB), so the loader counts the headers first."""
@@ -325,6 +328,8 @@ def test_header_count_accepts_spaced_headers_and_ignores_commented_ones():
     assert case.names == ("x", "y")
 
 
+# slow (parses under tracemalloc); fast check of the count refusal: test_bad_input.py
+@pytest.mark.slow
 def test_many_inline_contributors_are_refused_in_bounded_memory():
     """``contributor = [{}, {}, ...]`` is parsed, then refused by count. 3·10^5 tables
     here (tracemalloc slows the parse); 5.5·10^6 of them fill the 16 MB cap and peak at

@@ -43,3 +43,8 @@ def test_frontier_after_allocate_in_a_fresh_interpreter():
     done = subprocess.run([sys.executable, "-c", code], cwd=ROOT, capture_output=True, text=True, timeout=300)
     assert done.returncode == 0, done.stderr
     assert done.stdout.strip() == "Frontier"
+
+
+def test_the_package_carries_its_typing_marker():
+    """pyproject.toml ships allocator/py.typed (PEP 561); the file must be there to ship."""
+    assert (Path(allocator.__file__).parent / "py.typed").is_file()

@@ -101,11 +101,10 @@ def _heavy(case) -> bool:
     return case.allocation.rounding == "iso286" or any(len(c.processes) > 1 for c in case.contributors)
 
 
-@pytest.fixture(scope="module")
-def reports():
-    """One small report per demo case (built once for the module)."""
-    out = {}
-    for name in DEMOS:
+class _Reports(dict):
+    """Demo name -> (case, report, html), each built when first asked for."""
+
+    def __missing__(self, name):
         case = load_case(CASES / f"{name}.toml")
         heavy = _heavy(case)
         models = [m for m in case.allocation.models if m != "mean-shift"] or None if heavy else None
@@ -113,11 +112,22 @@ def reports():
             case, models, samples=SAMPLES, seed=SEED, frontier_points=POINTS, created=STAMP,
             include_frontier=not heavy,
         )
-        out[name] = (case, report, report.to_html())
-    return out
+        self[name] = (case, report, report.to_html())
+        return self[name]
 
 
-@pytest.mark.parametrize("name", DEMOS)
+@pytest.fixture(scope="module")
+def reports():
+    """One small report per demo case (built once for the module, when a test first needs it)."""
+    return _Reports()
+
+
+# a heavy demo's report takes seconds (mixed-integer solves): those run in CI, not the fast loop
+DEMO_PARAMS = [pytest.param(name, marks=pytest.mark.slow) if _heavy(load_case(CASES / f"{name}.toml")) else name
+               for name in DEMOS]
+
+
+@pytest.mark.parametrize("name", DEMO_PARAMS)
 def test_every_section_heading_and_plot(reports, name):
     case, report, text = reports[name]
     doc = outline(text)
@@ -135,7 +145,7 @@ def test_every_section_heading_and_plot(reports, name):
         assert "left out of this report on request" in section_html(text, "frontier")
 
 
-@pytest.mark.parametrize("name", DEMOS)
+@pytest.mark.parametrize("name", DEMO_PARAMS)
 def test_self_contained(reports, name):
     _, _, text = reports[name]
     doc = outline(text)

@@ -5,7 +5,7 @@ solver and then spoils the outcome the way real solvers sometimes do: it raises
 ``SolverError``, reports ``optimal_inaccurate``, returns NaN or no values, or a point a
 little (or a lot) outside the constraints, or a feasible point that is not the optimum.
 Whatever happens, an 'optimal' result must be the verified optimum -- checked here with
-the independent numpy/scipy.stats code of tests/test_properties.py and against an
+the independent numpy/scipy.stats code of tests/helpers.py and against an
 unspoilt solve -- and anything else must be status 'failed' (``allocate`` exits 1 with a
 one-line reason), never an unverified 'optimal'.
 
@@ -27,7 +27,7 @@ from allocator.model import AllocationSettings, Case, Contributor, CostCurve, Re
 from allocator.solve import allocate
 from allocator.solve import continuous
 
-from test_properties import Reference, case_text, rtol_for
+from helpers import Reference, case_text, rtol_for
 
 MODELS = ("worst-case", "rss", "mean-shift")
 REAL_SOLVE = cp.Problem.solve

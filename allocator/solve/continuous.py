@@ -80,8 +80,14 @@ class CompiledAllocation:
 
     Examples
     --------
-    >>> compiled = CompiledAllocation(case, "rss")  # doctest: +SKIP
-    >>> [compiled.solve({"end_play": {"upper": u}}).total_cost for u in (0.3, 0.35)]  # doctest: +SKIP
+    >>> from allocator.case import load_case
+    >>> case = load_case("cases/gearbox_end_play.toml")
+    >>> compiled = CompiledAllocation(case, "rss")
+    >>> tight, loose = (compiled.solve({"end_play": {"upper": u}}) for u in (0.3, 0.35))
+    >>> tight.status, loose.status
+    ('optimal', 'optimal')
+    >>> bool(loose.total_cost < tight.total_cost)  # the looser upper limit costs less
+    True
     """
 
     def __init__(self, case, model: str, fix=None, *, solvers=None):

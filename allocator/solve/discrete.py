@@ -349,10 +349,15 @@ class DiscreteAllocation:
 
     Examples
     --------
-    >>> from allocator.case import load_case  # doctest: +SKIP
-    >>> case = load_case("cases/pump_shim.toml")  # doctest: +SKIP
-    >>> result = DiscreteAllocation(case, "rss").solve()  # doctest: +SKIP
-    >>> result.processes["body_depth"], result.unrounded_cost, result.rounding_cost  # doctest: +SKIP
+    >>> from allocator.case import load_case
+    >>> case = load_case("cases/pump_shim.toml")
+    >>> result = DiscreteAllocation(case, "rss").solve()
+    >>> result.status, result.gap
+    ('optimal', 0.0)
+    >>> result.processes["body_depth"] in ("turning", "fine boring", "grinding")
+    True
+    >>> bool(result.rounding_cost >= 0.0)  # rounded tolerances never beat the unrounded optimum
+    True
     """
 
     def __init__(self, case: Case, model: str, fix=None, *, grid_points: int = GRID_POINTS,
