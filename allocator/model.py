@@ -24,6 +24,8 @@ MODELS = ("worst-case", "rss", "mean-shift")
 CURVES = ("reciprocal", "reciprocal-power", "exponential", "table")
 DEFAULT_FALLOUT_PPM = 2700.0
 DEFAULT_MODELS = ("worst-case", "rss")
+# A tolerance written equal to a limit (up to float noise) is inside it.
+HOLD_RTOL = 1e-9
 
 Distribution = Literal["normal", "uniform", "triangular"]
 ModelName = Literal["worst-case", "rss", "mean-shift"]
@@ -168,9 +170,70 @@ class Contributor:
 
     @property
     def is_discrete(self) -> bool:
-        """True when allocation needs a discrete choice (processes or a ``choose`` table)."""
-        if self.fixed:
-            return False
+        """True when allocation needs a discrete choice for this contributor.
+
+        Free: several processes or a ``choose`` table. Fixed: several processes can make
+        its ``tolerance`` (see :meth:`needs_choice`).
+        """
+        return self.needs_choice(self.tolerance if self.fixed else None)
+
+    def options_holding(self, tolerance: float) -> tuple[int, ...]:
+        """The options (positions in :meth:`options`) that can make ± ``tolerance``.
+
+        An option can make ``t`` when its ``limits`` hold it (up to :data:`HOLD_RTOL`
+        relative) and its cost is defined there: a ``choose`` table must list ``t``.
+        Holding a tolerance does not choose the process: each of these makes ``t`` at its
+        own cost and with its own cp (so its own σ).
+
+        Parameters
+        ----------
+        tolerance : float
+            ± tolerance [length].
+
+        Returns
+        -------
+        tuple of int
+            Empty when no option makes ``tolerance``.
+
+        Examples
+        --------
+        >>> shaft = Contributor(name="shaft", nominal=20.0, tolerance=0.03, processes=(
+        ...     Process("lathe", (0.01, 0.05), CostCurve("reciprocal", a=1.0, b=0.01)),
+        ...     Process("grinder", (0.005, 0.02), CostCurve("reciprocal", a=3.0, b=0.01))))
+        >>> shaft.options_holding(0.015), shaft.options_holding(0.03), shaft.options_holding(0.1)
+        ((0, 1), (0,), ())
+        """
+        t = float(tolerance)
+        out = []
+        for k, p in enumerate(self.options()):
+            lo, hi = p.limits
+            if not lo * (1.0 - HOLD_RTOL) <= t <= hi * (1.0 + HOLD_RTOL):
+                continue
+            if p.cost is not None and p.cost.is_discrete:
+                try:
+                    p.cost.value(t)
+                except ValueError:  # not one of the listed tolerances
+                    continue
+            out.append(k)
+        return tuple(out)
+
+    def needs_choice(self, held: float | None = None) -> bool:
+        """True when allocating this contributor is a discrete choice.
+
+        Parameters
+        ----------
+        held : float, optional
+            The ± tolerance it is held at [length] (a ``fix`` entry, or ``tolerance`` when
+            it is ``fixed``); None when it is free.
+
+        Returns
+        -------
+        bool
+            Free: several processes or a ``choose`` table. Held at ``t``: several options
+            can make ``t`` (:meth:`options_holding`); with one it is fully determined.
+        """
+        if held is not None:
+            return len(self.options_holding(held)) > 1
         return len(self.processes) > 1 or any(
             p.cost is not None and p.cost.is_discrete for p in self.options()
         )

@@ -56,9 +56,11 @@ def looser_tolerance(contributor, tolerance: float, *, step: float = DEFAULT_STE
     Returns
     -------
     float or None
-        ``min(t·(1 + step) rounded up to the rounding step, loosest)`` [length]; for a
-        contributor whose tolerances come from ``choose`` tables, the next listed tolerance
-        above ``t``. None when ``t`` already is the loosest achievable value.
+        ``min(t·(1 + step) rounded up to the rounding step, loosest)`` [length], moved up
+        to the next value an option can make when it falls between the ranges of the
+        processes (or between the listed tolerances of a ``choose`` table there); for a
+        contributor whose tolerances come from ``choose`` tables only, the next listed
+        tolerance above ``t``. None when ``t`` already is the loosest achievable value.
 
     Examples
     --------
@@ -84,7 +86,27 @@ def looser_tolerance(contributor, tolerance: float, *, step: float = DEFAULT_STE
         looser = round(looser, 12)
         if looser <= t:
             looser = t + rounding
-    return float(min(looser, loosest))
+    looser = float(min(looser, loosest))
+    if not contributor.options_holding(looser):
+        looser = _next_achievable(contributor, looser)
+    return looser
+
+
+def _next_achievable(contributor, t: float) -> float:
+    """The least tolerance ≥ ``t`` one of the contributor's options can make [length].
+
+    ``t`` is at most the loosest limit of some option, so there is one.
+    """
+    best = []
+    for p in contributor.options():
+        lo, hi = p.limits
+        if p.cost is not None and p.cost.is_discrete:
+            x = np.asarray(p.cost.points_tolerance, dtype=float)
+            x = x[(x >= max(t, lo) * (1.0 - 1e-9)) & (x <= hi * (1.0 + 1e-9))]
+            best.extend(x.tolist())
+        elif t <= hi * (1.0 + 1e-9):
+            best.append(max(t, lo))
+    return float(min(best))
 
 
 @dataclass(frozen=True)

@@ -624,3 +624,20 @@ def test_solver_for_picks_the_exact_dual_for_one_requirement():
     one = make_case(shifted.contributors, shifted.requirements[:1])
     assert type(solver_for(one, "mean-shift")).__name__ == "MeanShiftExact"
     assert prepare(case, "rss").free.sum() == 7
+
+
+def test_requirement_leaving_exactly_the_tightest_tolerances_is_solved():
+    # room ±0.03 = held 0.015 + tightest 0.005 + 0.01: the only feasible point is at the
+    # tightest limits (up to the round-off of 40 − 25 − 12.7); λ of the dual is unbounded
+    # (regression: exp(log λ) overflowed instead of returning the tightest tolerances)
+    people = [
+        Contributor(name="body", nominal=40.0, tolerance=0.015, fixed=True),
+        contributor("hub", nominal=25.0, limits=(0.005, 0.08), cost=CostCurve("reciprocal", a=1.2, b=0.02)),
+        contributor("plate", nominal=12.7, limits=(0.01, 0.1), cost=CostCurve("reciprocal", a=0.8, b=0.01)),
+    ]
+    case = make_case(people, [chain_requirement("gap", {"body": 1, "hub": -1, "plate": -1}, lower=2.27, upper=2.33)])
+    result = allocate(case, "worst-case")
+    assert result.status == "optimal", result.message
+    assert result.tolerances["hub"] == pytest.approx(0.005, rel=1e-9)
+    assert result.tolerances["plate"] == pytest.approx(0.01, rel=1e-9)
+    assert result.total_cost == pytest.approx(1.2 + 0.02 / 0.005 + 0.8 + 0.01 / 0.01, rel=1e-9)

@@ -63,6 +63,7 @@ from .problem import (
     WORST_CASE_RTOL,
     AllocationProblem,
     check_fix_values,
+    cheapest_unit_cost,
     Limits,
     mean_shift_allowance,
 )
@@ -126,11 +127,6 @@ class _Option:
         self.base_grid = self.grid
 
 
-def _within(t: float, limits) -> bool:
-    lo, hi = limits
-    return lo * (1 - _SLACK) <= t <= hi * (1 + _SLACK)
-
-
 def _cost_at(curve, t):
     """Unit cost at ``t`` (array), or None where the curve does not define it."""
     if curve is None:
@@ -155,13 +151,17 @@ def _geometric_grid(lo: float, hi: float, points: int, curve) -> np.ndarray:
 def needs_discrete(case: Case, fix=None) -> bool:
     """True when allocating ``case`` needs this module.
 
-    A free contributor with several processes or a ``choose`` table, or a rounding
-    setting.
+    A rounding setting; a free contributor with several processes or a ``choose`` table;
+    or a held one (``fixed``, or in ``fix``) at a tolerance several of its processes can
+    make (holding ``t`` leaves the choice among the processes whose range holds ``t``).
     """
     fix = fix or {}
     if case.allocation.rounding is not None:
         return True
-    return any(c.is_discrete and not c.fixed and c.name not in fix for c in case.contributors)
+    return any(
+        c.needs_choice(c.tolerance if c.fixed else (float(fix[c.name]) if c.name in fix else None))
+        for c in case.contributors
+    )
 
 
 # --------------------------------------------------------------------------- candidates
@@ -391,23 +391,22 @@ class DiscreteAllocation:
 
     def _contributor_options(self, i, c) -> list[_Option]:
         held = self._held_value(c)
-        factor = lambda p: c.process_sigma_factor(p) if c.processes else c.sigma_factor  # noqa: E731
+        factor = lambda p: c.process_sigma_factor(p)  # noqa: E731
         options = []
         if held is not None:
-            for k, p in enumerate(c.options()):
-                if not _within(held, p.limits):
-                    continue
+            # held at t: one candidate (p, t) per option p that can make t, at p's cost
+            # and with p's cp
+            all_options = c.options()
+            for k in c.options_holding(held):
+                p = all_options[k]
                 cost = _cost_at(p.cost, np.array([held]))
-                if cost is None:  # e.g. not a listed tolerance of a choose table
-                    continue
                 options.append(_Option(i, k, p.name, p.limits, p.cost, factor(p), "points",
                                        np.array([held]), cost, ("",)))
             if not options:
-                # held outside every process: like the continuous solver, the first option
-                p = c.options()[0]
-                cost = _cost_at(p.cost, np.array([held]))
-                options.append(_Option(i, 0, p.name, p.limits, p.cost, factor(p), "points",
-                                       np.array([held]), np.zeros(1) if cost is None else cost, ("",)))
+                # a fixed part no option makes (a held `fix` value was refused by
+                # check_fix_values): taken as it is, no cost and its own cp
+                options.append(_Option(i, -1, "", (held, held), None, c.sigma_factor, "points",
+                                       np.array([held]), np.zeros(1), ("",)))
             return options
         ranges = []
         for k, p in enumerate(c.options()):
@@ -806,6 +805,9 @@ class DiscreteAllocation:
         """The case with each contributor's chosen process as its only option."""
         contributors = []
         for c, o in zip(self.case.contributors, chosen_options):
+            if o.index < 0:  # a fixed part no option makes: taken as it is
+                contributors.append(replace(c, processes=(), limits=None, cost=None))
+                continue
             if not c.processes:
                 contributors.append(c)
                 continue
@@ -822,20 +824,7 @@ class DiscreteAllocation:
 
     def _baseline_unit_costs(self) -> np.ndarray:
         """Cost of one part at the current tolerance: the cheapest option that offers it."""
-        out = np.full(len(self.case.contributors), np.nan)
-        for i, c in enumerate(self.case.contributors):
-            best = math.inf
-            for p in c.options():
-                if p.cost is None:
-                    best = min(best, 0.0)
-                    continue
-                if not _within(c.tolerance, p.limits) and c.processes:
-                    continue
-                value = _cost_at(p.cost, np.array([c.tolerance]))
-                if value is not None and math.isfinite(value[0]):
-                    best = min(best, float(value[0]))
-            out[i] = best if math.isfinite(best) else np.nan
-        return out
+        return np.array([cheapest_unit_cost(c, c.tolerance) for c in self.case.contributors], dtype=float)
 
     def _result(self, chosen_options, t, limits, *, status, message, gap, iterations,
                 labels=None, requirements=None, solver=SOLVER_NAME):

@@ -46,6 +46,7 @@ __all__ = [
 
 SOLVER_NAME = "lagrange-dual"
 GAP_LIMIT = 1e-8  # Newton's answer counts only with a dual bound this close (else: conic)
+_LOG_FLOAT_MAX = math.log(np.finfo(float).max)  # exp() of more overflows
 
 
 def separable(problem: AllocationProblem) -> bool:
@@ -267,6 +268,10 @@ class ExactAllocation:
         for _ in range(400):
             if at(x_hi) <= 0:
                 break
+            if x_hi + decade >= _LOG_FLOAT_MAX:
+                # no finite λ meets it: the requirement leaves exactly the tightest
+                # tolerances (diagnose() let them pass up to round-off)
+                return dual.lo.copy(), math.inf, None
             x_hi += decade
         else:
             return dual.lo.copy(), math.inf, None

@@ -29,7 +29,7 @@ from scipy import special
 from .. import costs, stack
 from ..chain import linearise
 from ..errors import CaseError, UsageError
-from ..model import MODELS, Case, CostCurve
+from ..model import HOLD_RTOL, MODELS, Case, CostCurve
 from .result import Allocation, RequirementResult
 
 __all__ = [
@@ -39,6 +39,8 @@ __all__ = [
     "RequirementData",
     "Limits",
     "prepare",
+    "check_fix_values",
+    "cheapest_unit_cost",
     "sigma_limit_slopes",
     "mean_shift_allowance",
     "shadow_prices",
@@ -366,10 +368,17 @@ class AllocationProblem:
     length_scale, cost_scale : float
         Scales the solvers divide tolerances and costs by.
 
+    A held contributor (``fixed``, or in ``fix``) at ``t`` takes the cost curve and cp of
+    the option that makes ``t`` (:meth:`~allocator.model.Contributor.options_holding`).
+    When several can, that is a discrete choice; when none can (a ``fixed`` part outside
+    every range the case gives it) the part is taken as it is: no cost, its own cp.
+
     With ``check=True`` (what :func:`prepare` does) the same pass refuses contributors
-    that need a discrete choice (:class:`NeedsDiscrete`) and non-convex cost tables
-    (:class:`~allocator.errors.CaseError`); without it any case is taken as it is (the
-    discrete solver uses that for the statistics of a chosen combination).
+    that need a discrete choice, free or held (:class:`NeedsDiscrete`), and non-convex
+    cost tables (:class:`~allocator.errors.CaseError`); without it any case is taken as it
+    is, a held contributor with the first option that makes its tolerance (the discrete
+    solver uses that for the statistics of a chosen combination, where each contributor
+    has one option left).
     """
 
     def __init__(self, case: Case, model: str, fix: Mapping[str, float] | None = None, *, check: bool = False):
@@ -381,16 +390,47 @@ class AllocationProblem:
         lo, hi, held, sigma_factors = [], [], [], []
         names, counts, shifts, current = [], [], [], []
         curves, processes, hold_kind = [], [], []
+        current_override = {}  # held with several processes: cheapest at the current t
         file = str(case.path) if case.path is not None else None
         fixes = self.fix
-        # one pass (the same as Contributor.options()[0], without building a Process per
-        # call), filling lists: this runs on every allocation and cases may have thousands
-        # of parts
+        # one pass (for a free contributor the same as Contributor.options()[0], without
+        # building a Process per call), filling lists: this runs on every allocation and
+        # cases may have thousands of parts
         for i, c in enumerate(contributors):
             names.append(c.name)
             counts.append(c.count)
             shifts.append(c.mean_shift)
             current.append(c.tolerance)
+            if c.fixed or c.name in fixes:
+                # held at t: the options that can make t (holding t does not choose the
+                # process; each makes t at its own cost and cp)
+                value = c.tolerance if c.fixed else float(fixes[c.name])
+                makers = c.options_holding(value)
+                if len(makers) > 1 and check:
+                    options = c.options()
+                    raise NeedsDiscrete(
+                        f"contributor '{c.name}' held at ±{value:g} can be made by "
+                        f"{', '.join(repr(options[k].name) for k in makers)}; choosing one is "
+                        "the discrete allocation's job, not the continuous solver's"
+                    )
+                if makers:
+                    option = c.options()[makers[0]]
+                    curve, name = option.cost, option.name
+                    sigma_factors.append(c.process_sigma_factor(option))
+                else:
+                    # a fixed part no option makes is taken as it is: no cost, its own cp
+                    # (a held `fix` value no option makes was refused by check_fix_values)
+                    curve, name = None, ""
+                    sigma_factors.append(c.sigma_factor)
+                if len(c.processes) > 1:
+                    current_override[i] = cheapest_unit_cost(c, c.tolerance)
+                processes.append(name)
+                curves.append(curve)
+                lo.append(value)
+                hi.append(value)
+                held.append(value)
+                hold_kind.append("fixed" if c.fixed else "held")
+                continue
             if c.processes:
                 option = c.processes[0]
                 limits, curve, name = option.limits, option.cost, option.name
@@ -401,13 +441,6 @@ class AllocationProblem:
                 sigma_factors.append(c.sigma_factor)
             processes.append(name)
             curves.append(curve)
-            if c.fixed or c.name in fixes:
-                value = c.tolerance if c.fixed else float(fixes[c.name])
-                lo.append(value)
-                hi.append(value)
-                held.append(value)
-                hold_kind.append("fixed" if c.fixed else "held")
-                continue
             lo.append(limits[0])
             hi.append(limits[1])
             held.append(nan)
@@ -438,6 +471,7 @@ class AllocationProblem:
         self.free = np.isnan(held)
         self.hold_kind = tuple(hold_kind)
         self.current = np.array(current, dtype=float)
+        self._current_override = current_override
         self.processes = tuple(processes)
         self.curves = CurveSet(curves)
         self.requirements = tuple(
@@ -677,6 +711,8 @@ class AllocationProblem:
         """
         case = self.case
         current_unit = self.unit_costs(self.current)
+        for i, value in self._current_override.items():
+            current_unit[i] = value
         current_cost = float(np.sum(self.counts * current_unit))
         kwargs = dict(
             model=self.model,
@@ -809,12 +845,39 @@ def shadow_prices(model: str, req: RequirementData, lim: Limits, stats: dict, y:
 
 
 # A held tolerance written equal to a limit (up to float noise) is inside it.
-_FIX_RTOL = 1e-9
+_FIX_RTOL = HOLD_RTOL
+
+
+def cheapest_unit_cost(contributor, tolerance: float) -> float:
+    """Cost of one part made to ± ``tolerance`` by its cheapest option that can [currency].
+
+    The options are those of :meth:`~allocator.model.Contributor.options_holding`. When
+    none can make it: 0 for a ``fixed`` contributor (taken as it is), else the first
+    option's curve at ``tolerance`` (NaN where the curve does not define it).
+    """
+    makers = contributor.options_holding(tolerance)
+    options = contributor.options()
+    if not makers:
+        if contributor.fixed:
+            return 0.0
+        makers = (0,)
+    best = math.inf
+    for k in makers:
+        curve = options[k].cost
+        if curve is None:
+            return 0.0
+        try:
+            best = min(best, float(costs.cost_value(curve, float(tolerance))))
+        except ValueError:
+            continue
+    return best if math.isfinite(best) else math.nan
 
 
 def check_fix_values(case: Case, fix) -> dict[str, float]:
-    """``fix`` as name -> float: each names a contributor and holds a finite t > 0 inside
-    its limits (with processes: inside the limits of at least one process).
+    """``fix`` as name -> float: each names a contributor and holds a finite t > 0 that
+    one of its options can make (:meth:`~allocator.model.Contributor.options_holding`:
+    inside its limits, or with processes inside the limits of at least one process; a
+    ``choose`` table must list it).
 
     A held tolerance the part cannot be made to is refused rather than priced off its cost
     curve. A case-``fixed`` contributor keeps its own tolerance, so its entry is not
@@ -831,15 +894,23 @@ def check_fix_values(case: Case, fix) -> dict[str, float]:
         if not (math.isfinite(value) and value > 0):
             raise UsageError(f"fix: {name}: tolerance must be > 0 (got {value:g})")
         c = case.contributor(name)
-        if not c.fixed:
+        if not c.fixed and not c.options_holding(value):
             options = c.options()
-            if not any(lo * (1 - _FIX_RTOL) <= value <= hi * (1 + _FIX_RTOL) for lo, hi in (p.limits for p in options)):
-                if c.processes:
-                    ranges = ", ".join(f"{p.name} [{p.limits[0]:g}, {p.limits[1]:g}]" for p in options)
-                    where = f"the limits of every process ({ranges})"
-                else:
-                    where = f"its limits [{options[0].limits[0]:g}, {options[0].limits[1]:g}]"
-                raise UsageError(f"fix: {name}: tolerance {value:g} is outside {where}")
+            covering = [p for p in options
+                        if p.limits[0] * (1 - _FIX_RTOL) <= value <= p.limits[1] * (1 + _FIX_RTOL)]
+            if covering:  # inside a range, but only choose tables cover it and none lists it
+                listed = "; ".join(
+                    (f"{p.name}: " if c.processes else "")
+                    + ", ".join(f"{x:g}" for x in p.cost.points_tolerance)
+                    for p in covering
+                )
+                raise UsageError(f"fix: {name}: tolerance {value:g} is not one of the listed tolerances ({listed})")
+            if c.processes:
+                ranges = ", ".join(f"{p.name} [{p.limits[0]:g}, {p.limits[1]:g}]" for p in options)
+                where = f"the limits of every process ({ranges})"
+            else:
+                where = f"its limits [{options[0].limits[0]:g}, {options[0].limits[1]:g}]"
+            raise UsageError(f"fix: {name}: tolerance {value:g} is outside {where}")
         out[name] = value
     return out
 
