@@ -5,6 +5,9 @@
   (×1e6) -- gives the same allocation, scaled (1e-6 relative), the same total cost
   (1e-9 relative) and the same status, for all three models, on the exact single-
   requirement paths and on the conic multi-requirement path.
+- The formulation itself: the arrays handed to Clarabel for the conic cases are the same
+  in every unit and currency to 1e-12 relative, also for a requirement whose limits are
+  removed (checked without solving).
 - Money: parts whose costs range from 1e-3 to 1e4 per part, all multiplied by one
   constant, give the same tolerances (the argmin of Σ n·C_i(t_i) is invariant under
   C → k·C for k > 0) and a total cost multiplied by that constant.
@@ -28,6 +31,7 @@ import pytest
 
 from allocator.model import Case, Contributor, CostCurve, Requirement
 from allocator.solve import allocate
+from allocator.solve.continuous import CompiledAllocation
 
 from test_properties import Reference, build_case, rtol_for
 
@@ -236,3 +240,50 @@ def test_the_scaled_cases_really_are_the_same_case():
                 np.testing.assert_allclose(d.cost.value(t * s), c.cost.value(t), rtol=1e-12)
             for r, q in zip(case.requirements, scaled.requirements):
                 assert linearise(scaled, q).nominal == pytest.approx(s * linearise(case, r).nominal, rel=1e-12)
+
+
+# --------------------------------------------------------------------------- what the solver sees
+
+# the cases that go through the conic solver (several requirements, or an expression)
+CONIC = [c for c in CASES if not c[0].endswith("x1")]
+
+
+def solver_arrays(case: Case, model: str, overrides=None) -> dict[str, np.ndarray]:
+    """``A``, ``b``, ``c`` handed to Clarabel in the first solve (dense)."""
+    data = CompiledAllocation(case, model).solver_data(overrides)
+    return {key: np.asarray(data[key].todense() if hasattr(data[key], "todense") else data[key], dtype=float)
+            for key in ("A", "b", "c")}
+
+
+def limits_removed(case: Case) -> dict:
+    """Overrides that take both limits off the first requirement (an API-only case)."""
+    return {case.requirements[0].name: {"lower": None, "upper": None}}
+
+
+def assert_same_arrays(base: dict, other: dict, rtol: float, what: str) -> None:
+    for key in base:
+        assert other[key].shape == base[key].shape, (what, key)
+        size = max(float(np.max(np.abs(base[key]), initial=0.0)), 1e-300)
+        error = float(np.max(np.abs(other[key] - base[key]), initial=0.0)) / size
+        assert error <= rtol, f"{what}: {key} differs by {error:.1e} (relative to its largest entry)"
+
+
+@pytest.mark.parametrize("label, case, model", [pytest.param(*c, id=c[0]) for c in CONIC])
+@pytest.mark.parametrize("overrides", [False, True], ids=["case-limits", "first-unlimited"])
+def test_the_solver_is_handed_the_same_numbers_in_every_unit(label, case, model, overrides):
+    """The scaled formulation does not depend on the length unit or the currency: the
+    arrays Clarabel gets for the case in m, um, km and nm (or with every cost × 1e±4)
+    equal those in mm to 1e-12 relative. The rescaled case carries its own round-off
+    (limits and nominals are rounded separately, and the room ``U - y`` amplifies that
+    by ``|y|/room``): measured up to 1.5e-13 here. Checked without solving, so it holds
+    whichever solver attempt would succeed. With both limits of a requirement removed
+    (overrides, API only) the never-binding right-hand side once carried an absolute
+    ``+1`` (500 times the largest entry of b in m, 1e6 times too large in km)."""
+    change = limits_removed(case) if overrides else None
+    base = solver_arrays(case, model, change)
+    for units, s in LENGTH_SCALES.items():
+        other = solver_arrays(scale_lengths(case, s, units), model, change)
+        assert_same_arrays(base, other, 1e-12, f"{label} in {units}")
+    for k in (1e-4, 1e4):  # and the currency: costs are divided by a cost scale
+        other = solver_arrays(scale_costs(case, k), model, change)
+        assert_same_arrays(base, other, 1e-12, f"{label}, costs x {k:g}")
