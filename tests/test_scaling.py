@@ -3,8 +3,10 @@
 - Lengths: the same invented case written in mm, in m (×1e-3) and in μm (×1e3) -- and,
   to show that this is the solvers' internal scaling and not luck, in km (×1e-6) and nm
   (×1e6) -- gives the same allocation, scaled (1e-6 relative), the same total cost
-  (1e-9 relative) and the same status, for all three models, on the exact single-
-  requirement paths and on the conic multi-requirement path.
+  (1e-9 relative), the same status and a certified gap within the one 'optimal'
+  requires, for all three models, on the exact single-requirement paths and on the
+  conic multi-requirement path. Which solver attempt answered is not compared: it can
+  change with the last bit of the data (docs/allocation.md).
 - The formulation itself: the arrays handed to Clarabel for the conic cases are the same
   in every unit and currency to 1e-12 relative, also for a requirement whose limits are
   removed (checked without solving).
@@ -31,7 +33,7 @@ import pytest
 
 from allocator.model import Case, Contributor, CostCurve, Requirement
 from allocator.solve import allocate
-from allocator.solve.continuous import CompiledAllocation
+from allocator.solve.continuous import GAP_RTOL, CompiledAllocation
 
 from test_properties import Reference, build_case, rtol_for
 
@@ -181,11 +183,16 @@ def solve_in_units(case: Case, model: str):
 
 
 @pytest.mark.parametrize("label, case, model", params({}))
-def test_units_do_not_change_the_cost_or_the_path(label, case, model):
+def test_units_do_not_change_the_status_the_cost_or_the_certificate(label, case, model):
+    """Same status and total cost in every unit, each answer re-checked independently
+    (:func:`solve_in_units`) and certified within the gap 'optimal' requires
+    (docs/allocation.md). Which solver attempt answered is not part of the contract."""
     base, scaled = solve_in_units(case, model)
+    for result in [base] + [r for _, r in scaled.values()]:
+        assert result.gap is not None and 0.0 <= result.gap <= GAP_RTOL, (result.units, result.gap)
     for units, (s, result) in scaled.items():
+        assert result.status == base.status, units
         assert result.total_cost == pytest.approx(base.total_cost, rel=1e-8), units
-        assert result.solver == base.solver, units
 
 
 @pytest.mark.parametrize("label, case, model", params(UNITS_XFAIL))
