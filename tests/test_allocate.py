@@ -283,7 +283,8 @@ def test_two_sided_mean_shift_is_exact_against_slsqp():
     ref_cost, ref_t = slsqp_reference(case, "mean-shift", starts=8)
     newton = allocate(case, "mean-shift")
     conic = CompiledAllocation(case, "mean-shift").solve()  # cutting planes
-    assert newton.solver == "lagrange-newton" and conic.solver.startswith("clarabel")
+    # the two paths really ran (which conic solver or tier answered is not the point)
+    assert newton.solver == "lagrange-newton" and not conic.solver.startswith("lagrange")
     for result in (newton, conic):
         assert result.success, result.message
         t = result.allocated_array()
