@@ -444,12 +444,12 @@ def test_cli_an_error_inside_a_section_fails_the_run_and_writes_nothing(tmp_path
 
 
 def test_cli_an_error_while_formatting_a_section_fails_the_run(tmp_path, monkeypatch):
-    import allocator.report
+    import allocator.report.sections
 
     def broken(report):
         raise KeyError("missing")
 
-    monkeypatch.setattr(allocator.report, "_section_shadow", broken)
+    monkeypatch.setattr(allocator.report.sections, "shadow_prices", broken)
     out = tmp_path / "review.html"
     result = _invoke(CASES / "gearbox_end_play.toml", "-o", out, "--model", "rss", "--samples", 1000,
                      "--no-frontier")
