@@ -14,21 +14,22 @@ from .html import MODEL_LABELS, esc
 
 
 def svg_of(figure) -> str:
+    """A matplotlib figure as SVG text, without date or creator (the same input, the same bytes)."""
     buffer = io.StringIO()
     figure.savefig(buffer, format="svg", metadata={"Date": None, "Creator": None, "Format": None, "Type": None})
     return buffer.getvalue()
 
 
 def svg_context():
+    """Matplotlib settings for the report's plots: fixed hash salt, glyphs as paths, greys."""
     import matplotlib
-
-    # fixed hash salt: identical reports for identical input; glyphs as paths: no fonts needed
     from cycler import cycler
 
     # greys for every colour a plot does not set itself, so fills print the same in greyscale
     greys = cycler(color=["0.35", "0.0", "0.6", "0.15", "0.75"])
     return matplotlib.rc_context(
         {
+            # fixed hash salt: identical reports for identical input; glyphs as paths: no fonts needed
             "svg.hashsalt": "allocator-report",
             "svg.fonttype": "path",
             "axes.prop_cycle": greys,
@@ -61,6 +62,7 @@ def inline_svg(svg: str, prefix: str, label: str) -> str:
 
 
 def frontier_svg(report) -> str:
+    """Section 4: the cost frontier (:func:`allocator.plots.frontier_figure`) as SVG."""
     from .. import plots
 
     with svg_context():
@@ -68,6 +70,7 @@ def frontier_svg(report) -> str:
 
 
 def verification_svg(report) -> str:
+    """Section 6: the Monte Carlo histogram (:func:`allocator.simulate.render_verification_plot`) as SVG."""
     from ..simulate import render_verification_plot
 
     with svg_context():
@@ -75,7 +78,7 @@ def verification_svg(report) -> str:
 
 
 def contributions_svg(report) -> str:
-    """Horizontal bars: share of σ² per contributor, current design and recommended allocation.
+    """Section 5: horizontal bars: share of σ² per contributor, current design and recommended allocation.
 
     Greyscale: solid dark bars for the current design, white hatched bars for the
     allocation, told apart by fill pattern and legend, not by colour.
@@ -113,5 +116,3 @@ def contributions_svg(report) -> str:
                 ax.spines[side].set_visible(False)
             ax.legend(fontsize="small", loc="lower right", frameon=True)
         return svg_of(fig)
-
-

@@ -11,6 +11,7 @@ import contextlib
 
 from ..errors import AllocatorError, InternalError
 
+# (id, heading) of every section, in order; tests and the browser check use this list
 SECTIONS = (
     ("summary", "1 Case summary and assumptions"),
     ("analysis", "2 Stack analysis of the current design"),
@@ -23,7 +24,6 @@ SECTIONS = (
     ("cautions", "9 Cautions"),
     ("reproducibility", "10 Reproducibility"),
 )
-
 
 
 @contextlib.contextmanager
@@ -45,5 +45,3 @@ def working_on(section: str | None, detail: str = ""):
         if detail:
             where += f" ({detail})"
         raise InternalError(where, err) from err
-
-

@@ -42,6 +42,7 @@ from .html import (
 )
 from .outline import SECTIONS, working_on
 
+# what each stack model assumes, in words (section 1)
 MODEL_EXPLANATIONS = {
     "worst-case": "every part at its tolerance limit at the same time; the requirement holds "
     "for every assembly whose parts are in tolerance",
@@ -51,8 +52,8 @@ MODEL_EXPLANATIONS = {
     "the fallout at the worst mean must meet the target (estimated mean shift, Greenwood & "
     "Chase 1987)",
 }
-# order of preference for the allocation the report recommends (most conservative first)
 
+# the cautions in full (section 9); the header repeats their gist next to the result
 CAUTIONS = (
     "Statistical results (RSS, mean shift, fallout in ppm, the Monte Carlo verification) assume "
     "stable, capable processes whose means sit where the case says (centred unless a mean shift "
@@ -70,23 +71,6 @@ CAUTIONS = (
     "expects; a supplier's real price may differ.",
     "This report is a decision aid, not an approval.",
 )
-
-
-def _has_mean_shifts(case) -> bool:
-    """True when some contributor of ``case`` states a mean shift."""
-    return any(c.mean_shift > 0 for c in case.contributors)
-
-
-
-def _own_units_text(case, limit: int = 12) -> str:
-    """HTML list of the contributors and requirements whose units differ from the case's."""
-    own = [(c.name, c.units) for c in case.contributors if c.units not in (None, case.units)]
-    own += [(r.name, r.units) for r in case.requirements if r.units not in (None, case.units)]
-    if not own:
-        return ""
-    shown = ", ".join(f"{esc(name)} [{esc(label)}]" for name, label in own[:limit])
-    more = f" and {len(own) - limit} more" if len(own) > limit else ""
-    return f'<div class="desc">in their own units: {shown}{more}</div>'
 
 
 # --------------------------------------------------------------------------- the page
@@ -143,17 +127,12 @@ def section(sid: str, inner: str) -> str:
     return f'<section id="{sid}">\n<h2>{esc(heading)}</h2>\n{inner}\n</section>'
 
 
-def has_shadow_prices(result) -> bool:
-    """True when some requirement of ``allocation`` has a shadow price on a limit."""
-    return any(rr.shadow_lower is not None or rr.shadow_upper is not None for rr in result.requirements)
-
-
-# --------------------------------------------------------------------------- header and sections
+# --------------------------------------------------------------------------- header
 
 
 def header(report) -> str:
+    """The top of the page: title, problems, the result that matters, a short caution, contents."""
     case = report.case
-    cur = case.currency
     parts = [
         "<header>",
         '<p class="kicker">Tolerance allocation report</p>',
@@ -178,34 +157,8 @@ def header(report) -> str:
             + "".join(f"<li>{esc(p)}</li>" for p in problems)
             + "</ul></div>"
         )
-    rec = report.allocations.get(report.recommended)
-    if rec is not None:
-        if rec.savings is not None and rec.savings < 0:
-            change = (f"it costs <strong>{num(-rec.savings)}</strong> more "
-                      f"({num(-rec.savings_percent, 3) if rec.savings_percent is not None else '—'} %)")
-        else:
-            change = (f"saving <strong>{num(rec.savings, signed=True)}</strong> "
-                      f"({num(rec.savings_percent, 3, signed=True)} %)")
-        parts.append(
-            '<p class="verdict">Recommended here: the <strong>'
-            + model_name(report.recommended)
-            + f"</strong> allocation, <strong>{num(rec.total_cost)}</strong>{esc(' ' + cur if cur else '')} per assembly "
-            f"against {num(rec.current_cost)} for the current design: {change}. "
-            f"Monte Carlo: {esc(report.verification.message)}.</p>"
-        )
-    else:
-        parts.append('<p class="verdict">No model produced an allocation; sections 3 to 8 show the current design only.</p>')
-    means = (
-        "whose means stay within the mean shifts the case states"
-        if _has_mean_shifts(case)
-        else "centred on their nominals (the case states no mean shift)"
-    )
-    parts.append(
-        '<aside class="caution-brief" role="note"><p><strong>Caution.</strong> Statistical results assume '
-        f"stable, capable processes with the stated distributions, {means}: verify with measured capability "
-        "before relying on them. Safety-critical fits are designed worst case and checked against the "
-        'applicable codes and a licensed engineering review. <a href="#cautions">All cautions (section 9)</a>.</p></aside>'
-    )
+    parts.append(_verdict_line(report))
+    parts.append(_caution_brief(case))
     parts.append(
         '<nav aria-label="Contents"><h2 class="toc">Contents</h2><ol>'
         + "".join(f'<li><a href="#{sid}">{esc(h.split(" ", 1)[1])}</a></li>' for sid, h in SECTIONS)
@@ -215,44 +168,73 @@ def header(report) -> str:
     return "\n".join(parts)
 
 
-def _cost_text(curve) -> str:
-    """The cost curve as HTML: its formula, then its parameters on a second line."""
-    if curve is None:
-        return "no cost (held)"
-    f = fmt_input
-    if curve.curve == "reciprocal":
-        formula, params = "a + b/t", f"a = {f(curve.a)}, b = {f(curve.b)}"
-    elif curve.curve == "reciprocal-power":
-        formula, params = "a + b/t^k", f"a = {f(curve.a)}, b = {f(curve.b)}, k = {f(curve.k)}"
-    elif curve.curve == "exponential":
-        formula, params = "a + b·exp(−c·t)", f"a = {f(curve.a)}, b = {f(curve.b)}, c = {f(curve.c)}"
-    elif curve.curve == "table":
-        points = curve.points_tolerance
-        if curve.is_discrete:
-            formula, params = "listed tolerances only", "±" + ", ".join(f(t) for t in points)
+def _verdict_line(report) -> str:
+    """The recommended allocation's cost against today's, its saving and the Monte Carlo verdict."""
+    cur = report.case.currency
+    rec = report.allocations.get(report.recommended)
+    if rec is not None:
+        if rec.savings is not None and rec.savings < 0:
+            change = (f"it costs <strong>{num(-rec.savings)}</strong> more "
+                      f"({num(-rec.savings_percent, 3) if rec.savings_percent is not None else '—'} %)")
         else:
-            formula = f"table of {len(points)} points, interpolated"
-            params = f"±{f(points[0])} to ±{f(points[-1])}"
-    else:
-        return esc(curve.curve)
-    return f'<span class="nw">{esc(formula)}</span><div class="desc">{esc(params)}</div>'
+            change = (f"saving <strong>{num(rec.savings, signed=True)}</strong> "
+                      f"({num(rec.savings_percent, 3, signed=True)} %)")
+        return (
+            '<p class="verdict">Recommended here: the <strong>'
+            + model_name(report.recommended)
+            + f"</strong> allocation, <strong>{num(rec.total_cost)}</strong>{esc(' ' + cur if cur else '')} per assembly "
+            f"against {num(rec.current_cost)} for the current design: {change}. "
+            f"Monte Carlo: {esc(report.verification.message)}.</p>"
+        )
+    return '<p class="verdict">No model produced an allocation; sections 3 to 8 show the current design only.</p>'
 
 
-def _chain_text(requirement) -> str:
-    if requirement.chain is None:
-        return f"<code>{esc(requirement.expression)}</code>"
-    terms = []
-    for name, coeff in requirement.chain.items():
-        sign = "−" if coeff < 0 else "+"
-        mag = abs(coeff)
-        factor = "" if mag == 1 else f"{fmt_input(mag)}·"
-        terms.append(f"{sign} {factor}{name}")
-    text = " ".join(terms)
-    text = text[2:] if text.startswith("+ ") else text
-    return f"<code>{esc(text)}</code>"
+def _caution_brief(case) -> str:
+    """The short caution at the top; whether processes are taken as centred depends on the case."""
+    means = (
+        "whose means stay within the mean shifts the case states"
+        if _has_mean_shifts(case)
+        else "centred on their nominals (the case states no mean shift)"
+    )
+    return (
+        '<aside class="caution-brief" role="note"><p><strong>Caution.</strong> Statistical results assume '
+        f"stable, capable processes with the stated distributions, {means}: verify with measured capability "
+        "before relying on them. Safety-critical fits are designed worst case and checked against the "
+        'applicable codes and a licensed engineering review. <a href="#cautions">All cautions (section 9)</a>.</p></aside>'
+    )
+
+
+def _has_mean_shifts(case) -> bool:
+    """True when some contributor of ``case`` states a mean shift."""
+    return any(c.mean_shift > 0 for c in case.contributors)
+
+
+# --------------------------------------------------------------------------- 1 Case summary and assumptions
 
 
 def summary(report) -> str:
+    """Section 1: the case as stated (facts, contributors, requirements), the models, the assumptions."""
+    case = report.case
+    models = "<ul>" + "".join(
+        f"<li><strong>{model_name(m)}</strong>: {esc(MODEL_EXPLANATIONS.get(m, ''))}.</li>" for m in report.models
+    ) + "</ul>"
+    assumptions = (
+        "<ul>"
+        "<li>A tolerance ±t is a symmetric half-width about the nominal.</li>"
+        "<li>σ of a contributor: t/(3·cp) for normal, t/√3 for uniform, t/√6 for triangular.</li>"
+        "<li>Contributors vary independently; a contributor with count n stands for n independent parts.</li>"
+        "<li>Unit costs follow the stated curves; an assembly costs Σ count · unit cost.</li>"
+        "</ul>"
+    )
+    return section(
+        "summary",
+        _case_facts(report) + _contributors_table(case) + _requirements_table(case)
+        + "<h3>Models</h3>" + models + "<h3>Assumptions</h3>" + assumptions,
+    )
+
+
+def _case_facts(report) -> str:
+    """Title, units, currency, file, models, rounding and the economics the case states."""
     case = report.case
     u = case.units
     facts = [
@@ -267,6 +249,22 @@ def summary(report) -> str:
         facts.append(("Volume", f"{given(case.economics.volume)} assemblies per year"))
     if case.economics.scrap_cost is not None:
         facts.append(("Cost of one assembly out of limits", f"{given(case.economics.scrap_cost)}{esc(' ' + case.currency if case.currency else '')}"))
+    return facts_list(facts)
+
+
+def _own_units_text(case, limit: int = 12) -> str:
+    """HTML list of the contributors and requirements whose units differ from the case's."""
+    own = [(c.name, c.units) for c in case.contributors if c.units not in (None, case.units)]
+    own += [(r.name, r.units) for r in case.requirements if r.units not in (None, case.units)]
+    if not own:
+        return ""
+    shown = ", ".join(f"{esc(name)} [{esc(label)}]" for name, label in own[:limit])
+    more = f" and {len(own) - limit} more" if len(own) > limit else ""
+    return f'<div class="desc">in their own units: {shown}{more}</div>'
+
+
+def _contributors_table(case) -> str:
+    """Every contributor as the case states it: nominal, ±, range, distribution, cost curve."""
     rows = []
     cu = Units(case.contributor_units(c.name) for c in case.contributors)
     for c in case.contributors:
@@ -302,55 +300,102 @@ def summary(report) -> str:
                 cost,
             ]
         )
-    contributors = table(
+    return table(
         ["Contributor", cu.head("Nominal"), cu.head("Current ±"), cu.head("Achievable ±"), "Distribution",
          "cp", "Mean shift [×&nbsp;t]", "Count", f"Unit cost{unit_suffix(case.currency)} at ±t" + cu.head("")],
         rows,
         numeric=[False, True, True, True, False, True, True, True, False],
         caption="Contributors as stated in the case file",
     )
+
+
+def _cost_text(curve) -> str:
+    """The cost curve as HTML: its formula, then its parameters on a second line."""
+    if curve is None:
+        return "no cost (held)"
+    f = fmt_input
+    if curve.curve == "reciprocal":
+        formula, params = "a + b/t", f"a = {f(curve.a)}, b = {f(curve.b)}"
+    elif curve.curve == "reciprocal-power":
+        formula, params = "a + b/t^k", f"a = {f(curve.a)}, b = {f(curve.b)}, k = {f(curve.k)}"
+    elif curve.curve == "exponential":
+        formula, params = "a + b·exp(−c·t)", f"a = {f(curve.a)}, b = {f(curve.b)}, c = {f(curve.c)}"
+    elif curve.curve == "table":
+        points = curve.points_tolerance
+        if curve.is_discrete:
+            formula, params = "listed tolerances only", "±" + ", ".join(f(t) for t in points)
+        else:
+            formula = f"table of {len(points)} points, interpolated"
+            params = f"±{f(points[0])} to ±{f(points[-1])}"
+    else:
+        return esc(curve.curve)
+    return f'<span class="nw">{esc(formula)}</span><div class="desc">{esc(params)}</div>'
+
+
+def _requirements_table(case) -> str:
+    """Every requirement: its response, limits and fallout target."""
     ru = Units(case.requirement_units(r.name) for r in case.requirements)
     req_rows = [
         [esc(r.name), _chain_text(r), ru.cell(given(r.lower), case.requirement_units(r.name)),
          ru.cell(given(r.upper), case.requirement_units(r.name)), ppm(r.fallout_ppm)]
         for r in case.requirements
     ]
-    requirements = table(
+    return table(
         ["Requirement", "Response y", ru.head("Lower limit"), ru.head("Upper limit"), "Fallout target [ppm]"],
         req_rows,
         numeric=[False, False, True, True, True],
         caption="Requirements (the fallout target applies to the statistical models)",
     )
-    models = "<ul>" + "".join(
-        f"<li><strong>{model_name(m)}</strong>: {esc(MODEL_EXPLANATIONS.get(m, ''))}.</li>" for m in report.models
-    ) + "</ul>"
-    assumptions = (
-        "<ul>"
-        "<li>A tolerance ±t is a symmetric half-width about the nominal.</li>"
-        "<li>σ of a contributor: t/(3·cp) for normal, t/√3 for uniform, t/√6 for triangular.</li>"
-        "<li>Contributors vary independently; a contributor with count n stands for n independent parts.</li>"
-        "<li>Unit costs follow the stated curves; an assembly costs Σ count · unit cost.</li>"
-        "</ul>"
-    )
-    return section(
-        "summary",
-        facts_list(facts) + contributors + requirements + "<h3>Models</h3>" + models + "<h3>Assumptions</h3>" + assumptions,
-    )
 
 
-def _worst_case_flag(r) -> str:
-    """'yes', or 'NO' with the amount past each limit (as judged by the analysis)."""
-    if r.worst_case_ok:
-        return flag("yes")
-    misses = [
-        f"{num(amount, 3)} {side}"
-        for amount, side in ((r.worst_case_below, "below lower"), (r.worst_case_above, "above upper"))
-        if amount
-    ]
-    return flag("NO", "bad") + " " + ", ".join(misses)
+def _chain_text(requirement) -> str:
+    """The response of a requirement as written: its chain as a signed sum, or its expression."""
+    if requirement.chain is None:
+        return f"<code>{esc(requirement.expression)}</code>"
+    terms = []
+    for name, coeff in requirement.chain.items():
+        sign = "−" if coeff < 0 else "+"
+        mag = abs(coeff)
+        factor = "" if mag == 1 else f"{fmt_input(mag)}·"
+        terms.append(f"{sign} {factor}{name}")
+    text = " ".join(terms)
+    text = text[2:] if text.startswith("+ ") else text
+    return f"<code>{esc(text)}</code>"
+
+
+# --------------------------------------------------------------------------- 2 Stack analysis of the current design
+
+
+def analysis(report) -> str:
+    """Section 2: the current design's stack results, and each requirement's contributors."""
+    intro = (
+        "<p>The design as it is today: every contributor at its current tolerance. "
+        "Computed by <code>allocator.analysis.analyze</code>.</p>"
+    )
+    results = _analysis_table(report.analysis, "Stack results at the current tolerances")
+    parts = [intro, results]
+    for r in report.analysis.requirements:
+        per = Units(c.sensitivity_units for c in r.contributions)
+        tol_units = Units(c.units for c in r.contributions)
+        rows = [
+            [esc(c.name), per.cell(num(c.sensitivity), c.sensitivity_units), str(c.count),
+             tol_units.cell(given(c.tolerance), c.units), num(c.worst_case), num(100 * c.variance_share, 3)]
+            for c in r.contributions
+        ]
+        parts.append(
+            table(
+                ["Contributor", per.head("Sensitivity ∂y/∂x"), "Count", tol_units.head("±t"),
+                 f"± worst-case share{unit_suffix(r.units)}", "Share of σ² [%]"],
+                rows,
+                numeric=[False, True, True, True, True, True],
+                caption=f"Contributors to {esc(r.name)}",
+            )
+        )
+    return section("analysis", "\n".join(parts))
 
 
 def _analysis_table(result, caption: str) -> str:
+    """Quantities down, requirements across: one stack analysis (:class:`StackAnalysis`)."""
     reqs = result.requirements
     headers = ["Quantity"] + [esc(r.name) for r in reqs]
     ru = Units(r.units for r in reqs)
@@ -381,82 +426,36 @@ def _analysis_table(result, caption: str) -> str:
     return table(headers, rows, numeric=[False] + [True] * len(reqs), caption=caption, cls="metrics")
 
 
-def analysis(report) -> str:
-    intro = (
-        "<p>The design as it is today: every contributor at its current tolerance. "
-        "Computed by <code>allocator.analysis.analyze</code>.</p>"
-    )
-    results = _analysis_table(report.analysis, "Stack results at the current tolerances")
-    parts = [intro, results]
-    for r in report.analysis.requirements:
-        per = Units(c.sensitivity_units for c in r.contributions)
-        tol_units = Units(c.units for c in r.contributions)
-        rows = [
-            [esc(c.name), per.cell(num(c.sensitivity), c.sensitivity_units), str(c.count),
-             tol_units.cell(given(c.tolerance), c.units), num(c.worst_case), num(100 * c.variance_share, 3)]
-            for c in r.contributions
-        ]
-        parts.append(
-            table(
-                ["Contributor", per.head("Sensitivity ∂y/∂x"), "Count", tol_units.head("±t"),
-                 f"± worst-case share{unit_suffix(r.units)}", "Share of σ² [%]"],
-                rows,
-                numeric=[False, True, True, True, True, True],
-                caption=f"Contributors to {esc(r.name)}",
-            )
-        )
-    return section("analysis", "\n".join(parts))
+def _worst_case_flag(r) -> str:
+    """'yes', or 'NO' with the amount past each limit (as judged by the analysis)."""
+    if r.worst_case_ok:
+        return flag("yes")
+    misses = [
+        f"{num(amount, 3)} {side}"
+        for amount, side in ((r.worst_case_below, "below lower"), (r.worst_case_above, "above upper"))
+        if amount
+    ]
+    return flag("NO", "bad") + " " + ", ".join(misses)
 
 
-def _bound_note(bound: str) -> str:
-    return {"tightest": " " + flag("tightest"), "loosest": " " + flag("loosest"), "fixed": " " + flag("fixed"),
-            "held": " " + flag("held")}.get(bound, "")
+# --------------------------------------------------------------------------- 3 Allocation by model
 
 
 def allocation(report) -> str:
-    case = report.case
-    cur = case.currency
-    allocs = report.allocations
-    models = list(allocs)
-    cu = Units(case.contributor_units(c.name) for c in case.contributors)
-    headers = ["Contributor", cu.head("Current ±")] + [
-        cu.head(f"{model_name(m)} ±") + (" (recommended)" if m == report.recommended else "") for m in models
-    ]
-    rows = []
-    for i, c in enumerate(case.contributors):
-        label = case.contributor_units(c.name)
-        cells = [esc(c.name), cu.cell(given(c.tolerance), label)]
-        for m in models:
-            a = allocs[m]
-            if not a.success:
-                cells.append("—")
-                continue
-            t = a.tolerances[c.name]
-            under = [a.processes.get(c.name, ""), (getattr(a, "grades", None) or {}).get(c.name, "")]
-            under = " · ".join(x for x in under if x)
-            cells.append(
-                cu.cell(tol(t), label) + _bound_note(str(a.active[c.name]))
-                + (f'<div class="desc">{esc(under)}</div>' if under else "")
-            )
-        rows.append(cells)
-    cost_label = f"{unit_suffix(cur)}" if cur else ""
-    first = next(iter(allocs.values()), None)
-    current_cost = num(first.current_cost) if first is not None else "—"
-    ok = {m: allocs[m].success for m in models}
-    rows.append(Row(["Cost per assembly" + cost_label, current_cost]
-                     + [num(allocs[m].total_cost) if ok[m] else "—" for m in models], "sum first"))
-    rows.append(Row(["Saving against current" + cost_label, ""]
-                     + [saving(allocs[m].savings) if ok[m] else "—" for m in models], "sum"))
-    rows.append(Row(["Saving against current [%]", ""]
-                     + [saving(allocs[m].savings_percent, 3, percent=True) if ok[m] else "—" for m in models], "sum"))
-    # rounded allocations (case [allocation].rounding) say what the rounding cost
-    rounding_cost = {m: getattr(allocs[m], "rounding_cost", None) for m in models}
-    if any(v is not None for v in rounding_cost.values()):
-        rows.append(Row([f"Cost of rounding the tolerances{cost_label}", ""]
-                         + [num(rounding_cost[m], signed=True) if ok[m] else "—" for m in models], "sum"))
-    rows.append(Row(["Status", ""] + [flag(allocs[m].status, "" if ok[m] else "bad") for m in models], "sum"))
-    results = table(headers, rows, numeric=[False] + [True] * (1 + len(models)),
-                   caption="Least-cost ± tolerances per stack model (side by side)", cls="alloc")
+    """Section 3: the least-cost tolerances side by side, their cost, and each requirement at each."""
+    failures = "".join(
+        f'<div class="alert"><p><strong>{model_name(m)}: {esc(a.status.upper())}.</strong> {esc(a.message)}</p></div>'
+        for m, a in report.allocations.items()
+        if not a.success
+    )
+    rec_note = (
+        f"<p>The report recommends the <strong>{model_name(report.recommended)}</strong> allocation: the most "
+        "conservative statistical model that found an optimum (mean shift before RSS; worst case when no "
+        "statistical model was requested). This is the report's default, not an engineering judgement; "
+        "choose the model that fits the product and its risks.</p>"
+        if report.recommended
+        else ""
+    )
     legend = (
         '<p class="note">Tags: <span class="tag">tightest</span> the tolerance sits at its tightest achievable value '
         '(the cost curve ends there); <span class="tag">loosest</span> at its loosest; <span class="tag">fixed</span> held '
@@ -464,13 +463,83 @@ def allocation(report) -> str:
         "case rounds to grades. Computed by "
         "<code>allocator.solve.allocate</code>; every optimum is re-checked against every requirement.</p>"
     )
-    # predicted requirement results per model
+    return section(
+        "allocation",
+        failures + rec_note + _tolerances_table(report) + legend + _requirements_at_allocations(report),
+    )
+
+
+def _tolerances_table(report) -> str:
+    """Contributors down, models across; the cost, saving and status rows underneath."""
+    case = report.case
+    allocs = report.allocations
+    models = list(allocs)
+    cu = Units(case.contributor_units(c.name) for c in case.contributors)
+    headers = ["Contributor", cu.head("Current ±")] + [
+        cu.head(f"{model_name(m)} ±") + (" (recommended)" if m == report.recommended else "") for m in models
+    ]
+    rows = []
+    for c in case.contributors:
+        label = case.contributor_units(c.name)
+        cells = [esc(c.name), cu.cell(given(c.tolerance), label)]
+        for m in models:
+            a = allocs[m]
+            if not a.success:
+                cells.append("—")
+                continue
+            cells.append(cu.cell(tol(a.tolerances[c.name]), label) + _bound_note(str(a.active[c.name]))
+                         + _process_and_grade(a, c.name))
+        rows.append(cells)
+    rows += _cost_rows(case.currency, allocs)
+    return table(headers, rows, numeric=[False] + [True] * (1 + len(models)),
+                 caption="Least-cost ± tolerances per stack model (side by side)", cls="alloc")
+
+
+def _bound_note(bound: str) -> str:
+    """A tag when an allocated tolerance sits at a bound of its range (or is held)."""
+    return {"tightest": " " + flag("tightest"), "loosest": " " + flag("loosest"), "fixed": " " + flag("fixed"),
+            "held": " " + flag("held")}.get(bound, "")
+
+
+def _process_and_grade(result, name: str) -> str:
+    """The process chosen and the ISO 286 grade of one contributor, under its value (HTML)."""
+    under = [result.processes.get(name, ""), (getattr(result, "grades", None) or {}).get(name, "")]
+    under = " · ".join(x for x in under if x)
+    return f'<div class="desc">{esc(under)}</div>' if under else ""
+
+
+def _cost_rows(currency, allocs) -> list:
+    """The rows under the tolerances: cost per assembly, saving, cost of rounding, status."""
+    models = list(allocs)
+    cost_label = f"{unit_suffix(currency)}" if currency else ""
+    first = next(iter(allocs.values()), None)
+    current_cost = num(first.current_cost) if first is not None else "—"
+    ok = {m: allocs[m].success for m in models}
+    rows = [
+        Row(["Cost per assembly" + cost_label, current_cost]
+            + [num(allocs[m].total_cost) if ok[m] else "—" for m in models], "sum first"),
+        Row(["Saving against current" + cost_label, ""]
+            + [saving(allocs[m].savings) if ok[m] else "—" for m in models], "sum"),
+        Row(["Saving against current [%]", ""]
+            + [saving(allocs[m].savings_percent, 3, percent=True) if ok[m] else "—" for m in models], "sum"),
+    ]
+    # rounded allocations (case [allocation].rounding) say what the rounding cost
+    rounding_cost = {m: getattr(allocs[m], "rounding_cost", None) for m in models}
+    if any(v is not None for v in rounding_cost.values()):
+        rows.append(Row([f"Cost of rounding the tolerances{cost_label}", ""]
+                        + [num(rounding_cost[m], signed=True) if ok[m] else "—" for m in models], "sum"))
+    rows.append(Row(["Status", ""] + [flag(allocs[m].status, "" if ok[m] else "bad") for m in models], "sum"))
+    return rows
+
+
+def _requirements_at_allocations(report) -> str:
+    """The predicted result of each requirement at each model's allocation."""
+    case = report.case
     req_rows = []
     ru = Units(case.requirement_units(r.name) for r in case.requirements)
     for r_i, req in enumerate(case.requirements):
         label = case.requirement_units(req.name)
-        for m in models:
-            a = allocs[m]
+        for m, a in report.allocations.items():
             if not a.success:
                 req_rows.append([esc(req.name), model_name(m), "—", "—", "—", "—", "—"])
                 continue
@@ -486,30 +555,20 @@ def allocation(report) -> str:
                     esc(rr.binding or "—"),
                 ]
             )
-    req_table = table(
+    return table(
         ["Requirement", "Model", ru.head("Worst-case range"), ru.head("RSS σ"), "Predicted fallout [ppm]",
          "Target [ppm]", "Limit pressed"],
         req_rows,
         numeric=[False, False, True, True, True, True, False],
         caption="Each requirement at each allocation",
     )
-    failures = "".join(
-        f'<div class="alert"><p><strong>{model_name(m)}: {esc(a.status.upper())}.</strong> {esc(a.message)}</p></div>'
-        for m, a in allocs.items()
-        if not a.success
-    )
-    rec_note = (
-        f"<p>The report recommends the <strong>{model_name(report.recommended)}</strong> allocation: the most "
-        "conservative statistical model that found an optimum (mean shift before RSS; worst case when no "
-        "statistical model was requested). This is the report's default, not an engineering judgement; "
-        "choose the model that fits the product and its risks.</p>"
-        if report.recommended
-        else ""
-    )
-    return section("allocation", failures + rec_note + results + legend + req_table)
+
+
+# --------------------------------------------------------------------------- 4 Cost frontier
 
 
 def frontier(report, svg: str | None) -> str:
+    """Section 4: least cost against the swept limit or target (``svg``: the plot, None without one)."""
     front = report.frontier
     if front is None or svg is None:
         return section("frontier", f'<p class="note">No cost frontier: {esc(report.frontier_message)}.</p>')
@@ -561,7 +620,11 @@ def frontier(report, svg: str | None) -> str:
     return section("frontier", intro + figure + guide + status + (facts_list(facts) if facts else "") + results)
 
 
+# --------------------------------------------------------------------------- 5 Contributions to variation
+
+
 def contributions(report, svg: str) -> str:
+    """Section 5: each contributor's share of σ², today and at the recommended allocation."""
     text = (
         "<p>Share of the response variance σ² that each contributor causes (count · (∂y/∂x · σ)² over the total), "
         "from <code>allocator.analysis.analyze</code> at the current tolerances"
@@ -575,13 +638,11 @@ def contributions(report, svg: str) -> str:
     return section("contributions", text + f'<figure class="plot">{svg}<figcaption>{legend}</figcaption></figure>')
 
 
-def _verdict(check) -> str:
-    if check.status == "fail":
-        return flag("fail", "bad")
-    return flag("pass") if check.decided else flag("undecided")
+# --------------------------------------------------------------------------- 6 Monte Carlo verification
 
 
 def verification(report, svg: str) -> str:
+    """Section 6: simulated fallout against the target and the predictions, with the histogram."""
     v = report.verification
     case = report.case
     ru = Units(c.units for c in v.requirements)
@@ -632,41 +693,18 @@ def verification(report, svg: str) -> str:
     return section("verification", intro + results + note + figure)
 
 
+def _verdict(check) -> str:
+    """pass, fail or undecided for one requirement's Monte Carlo check."""
+    if check.status == "fail":
+        return flag("fail", "bad")
+    return flag("pass") if check.decided else flag("undecided")
+
+
+# --------------------------------------------------------------------------- 7 Shadow prices
+
+
 def shadow_prices(report) -> str:
-    from ..model import per_unit
-
-    case = report.case
-    cur = case.currency
-    per_ppm = f"[{esc(cur or 'cost')}/ppm]"
-
-    def per_limit(name: str) -> str:
-        return per_unit(cur or "cost", case.requirement_units(name) or "unit")
-
-    pu = Units(per_limit(r.name) for r in case.requirements)
-    rows = []
-    for m, a in report.allocations.items():
-        if not a.success:
-            rows.append(["—", model_name(m), esc(a.status), "—", "—", "—"])
-            continue
-        source = report.unrounded.get(m, a)
-        for rr in source.requirements:
-            rows.append(
-                [
-                    esc(rr.name),
-                    model_name(m) + (" <small>(unrounded)</small>" if m in report.unrounded else ""),
-                    esc(rr.binding or "—"),
-                    pu.cell(num(rr.shadow_lower, signed=True), per_limit(rr.name)),
-                    pu.cell(num(rr.shadow_upper, signed=True), per_limit(rr.name)),
-                    num(rr.shadow_ppm, signed=True),
-                ]
-            )
-    results = table(
-        ["Requirement", "Model", "Limit pressed", pu.head("Cost change per unit of lower limit"),
-         pu.head("Cost change per unit of upper limit"), f"Cost change per ppm of target {per_ppm}"],
-        rows,
-        numeric=[False, False, False, True, True, True],
-        caption="Marginal cost of each requirement limit (from the allocation's Lagrange multipliers)",
-    )
+    """Section 7: what each requirement limit is worth at the margin, and how to read it."""
     guide = (
         "<p><strong>How to read it.</strong> A shadow price is the change of the least cost per assembly when a "
         "limit moves by one unit, all else re-optimised; it holds for small moves. A negative value on an upper "
@@ -694,70 +732,63 @@ def shadow_prices(report) -> str:
             + " allocation: its tolerances are a choice among listed, process or rounded values, where the cost "
             "moves in steps and has no derivative. The cost frontier (section 4) shows what a limit is worth there.</p>"
         )
-    return section("shadow-prices", results + guide)
+    return section("shadow-prices", _shadow_price_table(report) + guide)
+
+
+def _shadow_price_table(report) -> str:
+    """Per requirement and model: the cost change per unit of each limit and per ppm of target."""
+    from ..model import per_unit
+
+    case = report.case
+    cur = case.currency
+    per_ppm = f"[{esc(cur or 'cost')}/ppm]"
+
+    def per_limit(name: str) -> str:
+        return per_unit(cur or "cost", case.requirement_units(name) or "unit")
+
+    pu = Units(per_limit(r.name) for r in case.requirements)
+    rows = []
+    for m, a in report.allocations.items():
+        if not a.success:
+            rows.append(["—", model_name(m), esc(a.status), "—", "—", "—"])
+            continue
+        source = report.unrounded.get(m, a)
+        for rr in source.requirements:
+            rows.append(
+                [
+                    esc(rr.name),
+                    model_name(m) + (" <small>(unrounded)</small>" if m in report.unrounded else ""),
+                    esc(rr.binding or "—"),
+                    pu.cell(num(rr.shadow_lower, signed=True), per_limit(rr.name)),
+                    pu.cell(num(rr.shadow_upper, signed=True), per_limit(rr.name)),
+                    num(rr.shadow_ppm, signed=True),
+                ]
+            )
+    return table(
+        ["Requirement", "Model", "Limit pressed", pu.head("Cost change per unit of lower limit"),
+         pu.head("Cost change per unit of upper limit"), f"Cost change per ppm of target {per_ppm}"],
+        rows,
+        numeric=[False, False, False, True, True, True],
+        caption="Marginal cost of each requirement limit (from the allocation's Lagrange multipliers)",
+    )
+
+
+def has_shadow_prices(result) -> bool:
+    """True when some requirement of the allocation ``result`` has a shadow price on a limit."""
+    return any(rr.shadow_lower is not None or rr.shadow_upper is not None for rr in result.requirements)
+
+
+# --------------------------------------------------------------------------- 8 Supplier sheet
 
 
 def supplier(report) -> str:
-    case = report.case
-    cur = case.currency
-    cu = Units(case.contributor_units(c.name) for c in case.contributors)
-    allocs = report.allocations
-    ok_models = [m for m, a in allocs.items() if a.success]
-    rec = report.recommended
-    money = unit_suffix(cur)
-    if rec is None:
+    """Section 8: the tolerance to ask of each supplier, and what one step looser costs elsewhere."""
+    if report.recommended is None:
         return section("supplier", '<p class="note">No allocation is available, so there is nothing to ask suppliers for yet.</p>')
-    ask_headers = ["Contributor", "Count", cu.head("Current ±")] + [
-        cu.head("Ask ±") + f", {model_name(m)}" + (" (recommended)" if m == rec else "") for m in ok_models
-    ] + [f"Unit cost at the recommended ±{money}"]
-    ask_rows = []
-    for c in case.contributors:
-        label = case.contributor_units(c.name)
-        row = [esc(c.name) + (f'<div class="desc">{esc(c.description)}</div>' if c.description else ""), str(c.count),
-               cu.cell(given(c.tolerance), label)]
-        for m in ok_models:
-            under = [allocs[m].processes.get(c.name, ""), (getattr(allocs[m], "grades", None) or {}).get(c.name, "")]
-            under = " · ".join(x for x in under if x)
-            row.append(cu.cell(tol(allocs[m].tolerances[c.name]), label)
-                       + (f'<div class="desc">{esc(under)}</div>' if under else ""))
-        row.append(num(allocs[rec].unit_cost[c.name]))
-        ask_rows.append(row)
-    ask = table(ask_headers, ask_rows, numeric=[False] + [True] * (len(ask_headers) - 1),
-                 caption="Tolerance to ask of each supplier")
     sheet = report.supplier
-    parts = [ask]
+    parts = [_ask_table(report)]
     if sheet is not None and sheet.rows:
-        rows = []
-        for r in sheet.rows:
-            tightened = "<br>".join(
-                f'<span class="nw">{esc(name)} {tol(before)} → '
-                f'{cu.cell(tol(after), case.contributor_units(name))}</span>'
-                for name, before, after in r.tightened
-            ) or ("none" if r.status == "solved" else "")
-            status = "" if r.status == "solved" else flag(r.status, "bad" if r.status in ("infeasible", "failed") else "")
-            rows.append(
-                [
-                    esc(r.contributor),
-                    cu.cell(tol(r.tolerance), r.units),
-                    num(r.unit_cost),
-                    (cu.cell(tol(r.looser), r.units) if r.looser is not None else "—") + (" " + status if status else ""),
-                    num(r.own_change, signed=True),
-                    num(r.elsewhere_change, signed=True),
-                    num(r.total_cost_change, signed=True),
-                    tightened if r.status == "solved" else esc(r.message),
-                ]
-            )
-        parts.append(
-            table(
-                ["Contributor", cu.head("Asked ±"), f"Unit cost{money}", cu.head("One step looser ±"),
-                 f"Change on this part{money}", f"Change elsewhere{money}", f"Change of total{money}",
-                 cu.head("Other tolerances that must tighten")],
-                rows,
-                numeric=[False, True, True, True, True, True, True, False],
-                caption=f"What loosening one tolerance by one step costs elsewhere ({model_name(rec)} allocation)",
-                cls="supplier",
-            )
-        )
+        parts.append(_concession_table(report))
     elif sheet is not None:
         parts.append(f'<p class="note">{esc(sheet.message)}</p>')
     step = sheet.step if sheet is not None else 0.1
@@ -778,12 +809,80 @@ def supplier(report) -> str:
     return section("supplier", "\n".join(parts))
 
 
+def _ask_table(report) -> str:
+    """Per contributor: current ±, the ± each model asks for, the unit cost at the recommended one."""
+    case = report.case
+    cu = Units(case.contributor_units(c.name) for c in case.contributors)
+    allocs = report.allocations
+    ok_models = [m for m, a in allocs.items() if a.success]
+    rec = report.recommended
+    money = unit_suffix(case.currency)
+    ask_headers = ["Contributor", "Count", cu.head("Current ±")] + [
+        cu.head("Ask ±") + f", {model_name(m)}" + (" (recommended)" if m == rec else "") for m in ok_models
+    ] + [f"Unit cost at the recommended ±{money}"]
+    ask_rows = []
+    for c in case.contributors:
+        label = case.contributor_units(c.name)
+        row = [esc(c.name) + (f'<div class="desc">{esc(c.description)}</div>' if c.description else ""), str(c.count),
+               cu.cell(given(c.tolerance), label)]
+        for m in ok_models:
+            row.append(cu.cell(tol(allocs[m].tolerances[c.name]), label) + _process_and_grade(allocs[m], c.name))
+        row.append(num(allocs[rec].unit_cost[c.name]))
+        ask_rows.append(row)
+    return table(ask_headers, ask_rows, numeric=[False] + [True] * (len(ask_headers) - 1),
+                 caption="Tolerance to ask of each supplier")
+
+
+def _concession_table(report) -> str:
+    """Per contributor held one step looser: the change on its part, elsewhere and in total."""
+    case = report.case
+    cu = Units(case.contributor_units(c.name) for c in case.contributors)
+    money = unit_suffix(case.currency)
+    rows = []
+    for r in report.supplier.rows:
+        tightened = "<br>".join(
+            f'<span class="nw">{esc(name)} {tol(before)} → '
+            f'{cu.cell(tol(after), case.contributor_units(name))}</span>'
+            for name, before, after in r.tightened
+        ) or ("none" if r.status == "solved" else "")
+        status = "" if r.status == "solved" else flag(r.status, "bad" if r.status in ("infeasible", "failed") else "")
+        rows.append(
+            [
+                esc(r.contributor),
+                cu.cell(tol(r.tolerance), r.units),
+                num(r.unit_cost),
+                (cu.cell(tol(r.looser), r.units) if r.looser is not None else "—") + (" " + status if status else ""),
+                num(r.own_change, signed=True),
+                num(r.elsewhere_change, signed=True),
+                num(r.total_cost_change, signed=True),
+                tightened if r.status == "solved" else esc(r.message),
+            ]
+        )
+    return table(
+        ["Contributor", cu.head("Asked ±"), f"Unit cost{money}", cu.head("One step looser ±"),
+         f"Change on this part{money}", f"Change elsewhere{money}", f"Change of total{money}",
+         cu.head("Other tolerances that must tighten")],
+        rows,
+        numeric=[False, True, True, True, True, True, True, False],
+        caption=f"What loosening one tolerance by one step costs elsewhere ({model_name(report.recommended)} allocation)",
+        cls="supplier",
+    )
+
+
+# --------------------------------------------------------------------------- 9 Cautions
+
+
 def cautions(report) -> str:
+    """Section 9: the full list of :data:`CAUTIONS`."""
     items = "".join(f"<li>{esc(text)}</li>" for text in CAUTIONS)
     return section("cautions", f'<div class="cautions"><ul>{items}</ul></div>')
 
 
+# --------------------------------------------------------------------------- 10 Reproducibility
+
+
 def reproducibility(report) -> str:
+    """Section 10: versions, seed, case checksum, solvers, and the command that makes the same report."""
     case = report.case
     v = report.versions
     solver_rows = [
@@ -814,5 +913,3 @@ def reproducibility(report) -> str:
         ("Same report again", f"<code>{esc(command)}</code>"),
     ]
     return section("reproducibility", facts_list(facts) + solvers)
-
-
