@@ -15,7 +15,8 @@ from datetime import datetime, timezone
 from pathlib import Path
 
 from ..errors import UsageError
-from . import figures, sections
+from . import sections
+from .figures import contributions_svg, frontier_svg, inline_svg, verification_svg
 from .html import MODEL_LABELS
 from .outline import SECTIONS, working_on
 from .sections import has_shadow_prices
@@ -141,11 +142,11 @@ class Report:
         out = {}
         if self.frontier is not None:
             with working_on("frontier"):
-                out["frontier"] = figures.inline_svg(figures.frontier_svg(self), "fr", "Cost frontier plot")
+                out["frontier"] = inline_svg(frontier_svg(self), "fr", "Cost frontier plot")
         with working_on("contributions"):
-            out["contributions"] = figures.inline_svg(figures.contributions_svg(self), "co", "Contributions to variation, horizontal bars")
+            out["contributions"] = inline_svg(contributions_svg(self), "co", "Contributions to variation, horizontal bars")
         with working_on("verification"):
-            out["verification"] = figures.inline_svg(figures.verification_svg(self), "mc", "Monte Carlo histogram of each requirement")
+            out["verification"] = inline_svg(verification_svg(self), "mc", "Monte Carlo histogram of each requirement")
         return out
 
     # ------------------------------------------------------------------ html
