@@ -316,6 +316,27 @@ def test_print_and_greyscale_rules_are_in_the_stylesheet(reports):
     assert '<th scope="col" class=num>' in text
 
 
+def test_the_stylesheet_ships_with_the_package(reports):
+    # a wheel (a non-editable install) carries only the .py files and the data files that
+    # pyproject's package-data lists: the stylesheet is read from the installed package
+    import fnmatch
+    import tomllib
+    from importlib import resources
+
+    patterns = tomllib.loads((ROOT / "pyproject.toml").read_text(encoding="utf-8"))["tool"]["setuptools"][
+        "package-data"]["allocator"]
+    package = ROOT / "allocator"
+    data = [path.relative_to(package).as_posix() for path in package.rglob("*")
+            if path.is_file() and path.suffix not in (".py", ".pyc")]
+    assert "report/style.css" in data
+    unlisted = [name for name in data if not any(fnmatch.fnmatch(name, p) for p in patterns)]
+    assert not unlisted, f"add to [tool.setuptools.package-data] in pyproject.toml: {unlisted}"
+    # and the page carries that file, unchanged, as its stylesheet
+    css = resources.files("allocator.report").joinpath("style.css").read_text(encoding="utf-8")
+    _, _, text = reports["gearbox_end_play"]
+    assert f"<style>\n{css}</style>" in text
+
+
 def test_infeasible_model_is_shown_and_exit_code_is_one(tmp_path):
     # worst case cannot fit 0.15..0.25 (the tightest stack is ±0.083); rss at 2700 ppm can
     text = (CASES / "gearbox_end_play.toml").read_text(encoding="utf-8")
@@ -444,12 +465,12 @@ def test_cli_an_error_inside_a_section_fails_the_run_and_writes_nothing(tmp_path
 
 
 def test_cli_an_error_while_formatting_a_section_fails_the_run(tmp_path, monkeypatch):
-    import allocator.report
+    import allocator.report.sections
 
     def broken(report):
         raise KeyError("missing")
 
-    monkeypatch.setattr(allocator.report, "_section_shadow", broken)
+    monkeypatch.setattr(allocator.report.sections, "shadow_prices", broken)
     out = tmp_path / "review.html"
     result = _invoke(CASES / "gearbox_end_play.toml", "-o", out, "--model", "rss", "--samples", 1000,
                      "--no-frontier")
