@@ -167,9 +167,9 @@ def analyze(case, tolerances: Mapping[str, float] | None = None) -> StackAnalysi
     Parameters
     ----------
     case : allocator.model.Case
-    tolerances : mapping name -> ± tolerance [length], optional
-        Overrides for some or all contributors; the case's current ``tolerance``
-        values are used for the rest.
+    tolerances : mapping or pandas.Series, name -> ± tolerance [length], optional
+        Overrides for some or all contributors (e.g. ``allocation.tolerances``); the
+        case's current ``tolerance`` values are used for the rest.
 
     Returns
     -------
@@ -189,11 +189,13 @@ def analyze(case, tolerances: Mapping[str, float] | None = None) -> StackAnalysi
     inputs never turns a design that meets its limit exactly into a failure.
     """
     t = case.current_tolerances
-    if tolerances:
-        unknown = set(tolerances) - set(case.names)
+    if tolerances is not None:
+        # dict(...) of a mapping or a pandas Series: never the truth value of the object
+        given = dict(tolerances.items())
+        unknown = set(given) - set(case.names)
         if unknown:
             raise KeyError(f"unknown contributor(s): {', '.join(sorted(unknown))}")
-        t = np.array([float(tolerances.get(n, t[i])) for i, n in enumerate(case.names)])
+        t = np.array([float(given.get(n, t[i])) for i, n in enumerate(case.names)])
     n = case.counts
     f = case.sigma_factors
     m = case.mean_shifts

@@ -56,6 +56,21 @@ def test_tolerance_overrides_and_frames():
         assert key in d
 
 
+def test_tolerances_given_as_a_pandas_series_or_any_mapping():
+    """An allocation's ``tolerances`` (a pandas Series) goes straight into analyze."""
+    import pandas as pd
+    from types import MappingProxyType
+
+    case = end_play_case()
+    # worst case by hand: 0.02 + 2·0.02 + 0.01 = 0.07 about the nominal 0.2
+    for given in (pd.Series({"housing": 0.02, "spacer": 0.01}),
+                  MappingProxyType({"housing": 0.02, "spacer": 0.01})):
+        r = analyze(case, given).requirements[0]
+        assert (r.worst_case_min, r.worst_case_max) == pytest.approx((0.13, 0.27))
+    # an empty Series changes nothing
+    assert analyze(case, pd.Series(dtype=float)).requirements[0].worst_case_max == pytest.approx(0.32)
+
+
 # --------------------------------------------------------------------------- verdict at a limit
 # Exact decimal arithmetic (fractions.Fraction of the numbers as written) is the reference:
 # it says where the worst case really is; binary floating point lands a few ulps off.
