@@ -10,6 +10,7 @@ import numpy as np
 
 from . import stack
 from .chain import linearise
+from .errors import UsageError, unknown_names
 from .model import per_unit
 
 
@@ -175,6 +176,11 @@ def analyze(case, tolerances: Mapping[str, float] | None = None) -> StackAnalysi
     -------
     StackAnalysis
 
+    Raises
+    ------
+    UsageError
+        ``tolerances`` names a contributor the case does not have.
+
     Notes
     -----
     Per requirement with sensitivities ``a``, counts ``n``, σ factors ``f``:
@@ -192,9 +198,9 @@ def analyze(case, tolerances: Mapping[str, float] | None = None) -> StackAnalysi
     if tolerances is not None:
         # dict(...) of a mapping or a pandas Series: never the truth value of the object
         given = dict(tolerances.items())
-        unknown = set(given) - set(case.names)
-        if unknown:
-            raise KeyError(f"unknown contributor(s): {', '.join(sorted(unknown))}")
+        problem = unknown_names("contributor", given, case.names)
+        if problem:
+            raise UsageError(f"tolerances: {problem}")
         t = np.array([float(given.get(n, t[i])) for i, n in enumerate(case.names)])
     n = case.counts
     f = case.sigma_factors

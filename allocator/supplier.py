@@ -18,6 +18,9 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from .errors import UsageError, did_you_mean
+from .model import MODELS
+
 __all__ = ["DEFAULT_STEP", "Loosening", "SupplierSheet", "looser_tolerance", "supplier_sheet"]
 
 DEFAULT_STEP = 0.10  # loosen by 10 % (then up to the case's rounding step)
@@ -256,6 +259,11 @@ def supplier_sheet(case, model: str, allocation=None, *, step: float = DEFAULT_S
     -------
     SupplierSheet
 
+    Raises
+    ------
+    UsageError
+        Unknown model, a step that is not > 0.
+
     Notes
     -----
     For contributor ``k`` with optimum ``t*`` and total cost ``C*``, the re-solve holds
@@ -268,8 +276,10 @@ def supplier_sheet(case, model: str, allocation=None, *, step: float = DEFAULT_S
     """
     from .solve import allocate
 
+    if model not in MODELS:
+        raise UsageError(f"unknown model {model!r}{did_you_mean(model, MODELS)} (choose from {', '.join(MODELS)})")
     if not step > 0:
-        raise ValueError(f"step must be > 0 (got {step!r})")
+        raise UsageError(f"step must be > 0 (got {step!r})")
     base = allocation if allocation is not None else allocate(case, model)
     if not base.success:
         return SupplierSheet(

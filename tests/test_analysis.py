@@ -49,8 +49,6 @@ def test_tolerance_overrides_and_frames():
     assert frame.loc["end_play", "worst_case_max"] == pytest.approx(r.worst_case_max)
     contrib = res.contributions_frame()
     assert set(contrib.index.get_level_values("name")) == {"housing", "bearing", "spacer"}
-    with pytest.raises(KeyError):
-        analyze(case, {"nope": 0.1})
     d = res.to_dict()["requirements"][0]
     for key in ("name", "nominal", "worst_case_min", "worst_case_max", "sigma", "fallout_ppm"):
         assert key in d
@@ -69,6 +67,18 @@ def test_tolerances_given_as_a_pandas_series_or_any_mapping():
         assert (r.worst_case_min, r.worst_case_max) == pytest.approx((0.13, 0.27))
     # an empty Series changes nothing
     assert analyze(case, pd.Series(dtype=float)).requirements[0].worst_case_max == pytest.approx(0.32)
+
+
+def test_unknown_contributor_is_a_usage_error_with_a_suggestion():
+    from allocator.errors import UsageError
+
+    case = end_play_case()
+    with pytest.raises(UsageError, match="unknown contributor 'housng' \\(did you mean 'housing'\\?\\)"):
+        analyze(case, {"housng": 0.1})
+    with pytest.raises(ValueError, match="unknown contributor 'nope'"):  # UsageError is a ValueError
+        analyze(case, {"nope": 0.1})
+    with pytest.raises(UsageError, match="did you mean 'spacer'"):
+        case.with_tolerances({"spacr": 0.1})
 
 
 # --------------------------------------------------------------------------- verdict at a limit

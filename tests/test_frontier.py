@@ -375,12 +375,25 @@ def test_defaults_come_from_the_frontier_table():
         ({"points": 2001}, "2 to 2000"),
         ({"vary": "fallout_ppm", "range": (0.0, 10.0)}, "> 0"),
         ({"vary": "upper", "range": (0.0, 0.3)}, "above the lower limit"),
-        ({"models": ("rs",)}, "unknown model"),
+        ({"models": ("rs",)}, "unknown model 'rs' \\(did you mean 'rss'\\?\\)"),
     ],
 )
 def test_bad_arguments(kwargs, fragment):
     with pytest.raises(UsageError, match=fragment):
         frontier(_small_case(), **kwargs)
+
+
+@pytest.mark.parametrize(
+    "kwargs, fragment",
+    [
+        ({"requirement": "gpa"}, "unknown requirement 'gpa' \\(did you mean 'gap'\\?\\)"),
+        ({"models": ("rs",)}, "unknown model 'rs' \\(did you mean 'rss'\\?\\)"),
+    ],
+)
+def test_fallout_economics_names_unknown_names_like_frontier(kwargs, fragment):
+    with pytest.raises(ValueError, match=fragment) as err:  # a UsageError is a ValueError
+        fallout_economics(_small_case(), scrap_cost=10.0, **kwargs)
+    assert isinstance(err.value, UsageError)
 
 
 def test_missing_limit_cannot_be_varied():

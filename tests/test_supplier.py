@@ -139,6 +139,18 @@ def test_at_loosest_and_infeasible_base():
     assert sheet.rows == []
 
 
+def test_unknown_model_is_a_usage_error_even_with_an_allocation_given():
+    from allocator.errors import UsageError
+
+    case = _case()
+    base = allocate(case, "rss")
+    for given in (None, base):
+        with pytest.raises(UsageError, match="unknown model 'rs' \\(did you mean 'rss'\\?\\)"):
+            supplier_sheet(case, "rs", given)
+    with pytest.raises(UsageError, match="step must be > 0"):
+        supplier_sheet(case, "rss", base, step=0.0)
+
+
 def test_an_error_in_a_re_solve_is_raised_not_written_into_a_row(monkeypatch):
     # a row once held the exception's text as its message (status 'error')
     import allocator.solve

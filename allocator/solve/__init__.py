@@ -17,7 +17,8 @@ from __future__ import annotations
 
 import importlib.util
 
-from ..model import Case
+from ..errors import UsageError, did_you_mean
+from ..model import MODELS, Case
 from .result import Allocation, RequirementResult
 
 __all__ = ["allocate", "allocate_all", "solver_for", "prepare", "Allocation", "RequirementResult"]
@@ -54,6 +55,9 @@ def solver_for(case: Case, model: str | None = None, *, fix=None):
     from .problem import NeedsDiscrete
 
     model = model or _default_model(case)
+    if model not in MODELS:
+        # checked here, before the dispatch, so every solver path says the same
+        raise UsageError(f"unknown model {model!r}{did_you_mean(model, MODELS)} (choose from {', '.join(MODELS)})")
     discrete = _discrete_module() if case.allocation.rounding is not None else None
     if discrete is not None and hasattr(discrete, "solver_for"):
         return discrete.solver_for(case, model, fix=fix)
