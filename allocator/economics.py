@@ -31,6 +31,7 @@ from typing import Callable
 
 import numpy as np
 
+from . import status as _status
 from .errors import UsageError
 from .model import Case
 
@@ -268,7 +269,7 @@ class FalloutOptimum:
 
     @property
     def success(self) -> bool:
-        return self.status in ("optimal", "boundary")
+        return self.status in (_status.OPTIMAL, _status.BOUNDARY)
 
     def to_dict(self, *, curve: bool = False) -> dict:
         out = asdict(self)
@@ -318,7 +319,7 @@ class FalloutEconomics:
 
     @property
     def success(self) -> bool:
-        return self.status == "optimal"
+        return self.status == _status.OPTIMAL
 
     def result(self, model: str) -> FalloutOptimum:
         for r in self.results:
@@ -469,16 +470,17 @@ def fallout_economics(
         results.append(_optimise(sweep, grid, scrap, volume, float(req.fallout_ppm), (lo, hi)))
 
     statuses = [r.status for r in results]
-    if all(s == "infeasible" for s in statuses):
-        status = "infeasible"
+    unmet = (_status.FAILED, _status.INFEASIBLE)
+    if all(s == _status.INFEASIBLE for s in statuses):
+        status = _status.INFEASIBLE
         message = results[0].message
-    elif any(s in ("failed", "infeasible") for s in statuses):
-        status = "failed"
-        message = "; ".join(f"{r.model}: {r.message}" for r in results if r.status in ("failed", "infeasible"))
+    elif any(s in unmet for s in statuses):
+        status = _status.FAILED
+        message = "; ".join(f"{r.model}: {r.message}" for r in results if r.status in unmet)
     else:
-        status = "optimal"
+        status = _status.OPTIMAL
         message = "; ".join(
-            f"{r.model}: {r.optimal_ppm:.4g} ppm" + (" (boundary)" if r.status == "boundary" else "")
+            f"{r.model}: {r.optimal_ppm:.4g} ppm" + (" (boundary)" if r.status == _status.BOUNDARY else "")
             for r in results
         )
     return FalloutEconomics(

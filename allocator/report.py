@@ -25,6 +25,7 @@ from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from pathlib import Path
 
+from . import status as _status
 from .ppm import format_ppm
 
 __all__ = [
@@ -312,19 +313,20 @@ class Report:
 
     @property
     def status(self) -> str:
-        """'ok', 'infeasible' (some model cannot meet a requirement), 'failed' or 'verification failed'."""
+        """'ok', 'infeasible' (some model cannot meet a requirement), 'failed' or
+        'verification failed' (:data:`allocator.status.REPORT`)."""
         statuses = {a.status for a in self.allocations.values()}
-        if "infeasible" in statuses:
-            return "infeasible"
-        if "failed" in statuses:
-            return "failed"
+        if _status.INFEASIBLE in statuses:
+            return _status.INFEASIBLE
+        if _status.FAILED in statuses:
+            return _status.FAILED
         if self.verification_basis == "allocation" and not self.verification.success:
-            return "verification failed"
-        return "ok"
+            return _status.VERIFICATION_FAILED
+        return _status.OK
 
     @property
     def success(self) -> bool:
-        return self.status == "ok"
+        return self.status == _status.OK
 
     @property
     def exit_code(self) -> int:
@@ -1359,8 +1361,8 @@ def _section_supplier(report: Report) -> str:
                 f'<span class="nw">{_e(name)} {_t(before)} → '
                 f'{cu.cell(_t(after), case.contributor_units(name))}</span>'
                 for name, before, after in r.tightened
-            ) or ("none" if r.status == "solved" else "")
-            status = "" if r.status == "solved" else _flag(r.status, "bad" if r.status in ("infeasible", "failed") else "")
+            ) or ("none" if r.status == _status.OPTIMAL else "")
+            status = "" if r.status == _status.OPTIMAL else _flag(r.status, "bad" if r.status in ("infeasible", "failed") else "")
             rows.append(
                 [
                     _e(r.contributor),
@@ -1370,7 +1372,7 @@ def _section_supplier(report: Report) -> str:
                     _n(r.own_change, signed=True),
                     _n(r.elsewhere_change, signed=True),
                     _n(r.total_cost_change, signed=True),
-                    tightened if r.status == "solved" else _e(r.message),
+                    tightened if r.status == _status.OPTIMAL else _e(r.message),
                 ]
             )
         parts.append(

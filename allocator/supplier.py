@@ -18,6 +18,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from . import status as _status
 from .errors import UsageError, did_you_mean
 from .model import MODELS
 
@@ -129,8 +130,9 @@ class Loosening:
     looser : float or None
         The ± tolerance tried (see :func:`looser_tolerance`) [length].
     status : str
-        'solved', 'infeasible' / 'failed' (the re-solve's status), 'fixed' (held by the
-        case) or 'at loosest' (nothing looser exists).
+        'optimal', 'infeasible' or 'failed' (the re-solve's status, see
+        :mod:`allocator.status`); 'fixed' (held by the case) or 'at loosest' (nothing
+        looser exists) when there was nothing to re-solve.
     total_cost_change : float or None
         Total cost with the looser tolerance minus the optimum's [currency per assembly];
         never negative up to solver accuracy, since the optimum was the least cost.
@@ -187,7 +189,8 @@ class SupplierSheet:
     ----------
     model : str
     status : str
-        'ok', or the base allocation's status when that is not optimal (no rows then).
+        'optimal' (every row computed), or the base allocation's status when that is
+        not optimal (no rows then); see :mod:`allocator.status`.
     success : bool
     message : str
     step : float
@@ -206,7 +209,7 @@ class SupplierSheet:
 
     @property
     def success(self) -> bool:
-        return self.status == "ok"
+        return self.status == _status.OPTIMAL
 
     def __getitem__(self, name: str) -> Loosening:
         for row in self.rows:
@@ -301,12 +304,12 @@ def supplier_sheet(case, model: str, allocation=None, *, step: float = DEFAULT_S
         common = dict(contributor=c.name, count=c.count, tolerance=t, unit_cost=unit, bound=str(bounds[c.name]),
                       units=case.contributor_units(c.name))
         if c.fixed:
-            rows.append(Loosening(**common, looser=None, status="fixed", message="held by the case"))
+            rows.append(Loosening(**common, looser=None, status=_status.FIXED, message="held by the case"))
             continue
         looser = looser_tolerance(c, t, step=step, rounding=case.allocation.rounding)
         if looser is None:
             rows.append(
-                Loosening(**common, looser=None, status="at loosest", message="already at its loosest achievable value")
+                Loosening(**common, looser=None, status=_status.AT_LOOSEST, message="already at its loosest achievable value")
             )
             continue
         # an exception here is a failure of the sheet, never a row: the looser value lies
@@ -329,7 +332,7 @@ def supplier_sheet(case, model: str, allocation=None, *, step: float = DEFAULT_S
             Loosening(
                 **common,
                 looser=looser,
-                status="solved",
+                status=_status.OPTIMAL,
                 total_cost_change=delta,
                 own_change=own,
                 elsewhere_change=elsewhere,
@@ -339,7 +342,7 @@ def supplier_sheet(case, model: str, allocation=None, *, step: float = DEFAULT_S
         )
     return SupplierSheet(
         model=model,
-        status="ok",
+        status=_status.OPTIMAL,
         message=f"each contributor loosened by one step ({step:.0%}, then the rounding step) and re-solved",
         step=step,
         base=base,

@@ -13,9 +13,11 @@ from dataclasses import asdict, dataclass
 
 import numpy as np
 
+from .. import status as _status
+
 __all__ = ["Allocation", "RequirementResult", "STATUSES"]
 
-STATUSES = ("optimal", "infeasible", "failed")
+STATUSES = _status.SOLVE  # see allocator.status
 
 
 @dataclass(frozen=True)
@@ -187,7 +189,7 @@ class Allocation:
 
     @property
     def success(self) -> bool:
-        return self.status == "optimal"
+        return self.status == _status.OPTIMAL
 
     @property
     def savings(self) -> float | None:
