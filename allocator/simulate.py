@@ -109,7 +109,7 @@ def clopper_pearson(failures, trials, confidence: float = CONFIDENCE):
     return low, high
 
 
-@dataclass
+@dataclass(frozen=True)
 class RequirementCheck:
     """Verification of one requirement (see :class:`Verification`).
 
@@ -194,7 +194,7 @@ class RequirementCheck:
         return out
 
 
-@dataclass
+@dataclass(frozen=True)
 class Verification:
     """Result of :func:`verify`, read like :class:`scipy.optimize.OptimizeResult`.
 

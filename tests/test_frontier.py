@@ -437,6 +437,22 @@ def _economics_case(scrap=40.0, volume=10000):
                      economics=Economics(volume=volume, scrap_cost=scrap)), b, coeff
 
 
+def test_economics_results_are_complete_and_frozen():
+    import dataclasses
+
+    econ = fallout_economics(_economics_case()[0])
+    r = econ.result("rss")
+    # complete when built: the optimum, the current target and the saving between them
+    assert r.status == "optimal" and r.success
+    assert r.saving_per_assembly == pytest.approx(r.current_total - r.total_cost, rel=1e-12)
+    assert r.annual_saving == pytest.approx(r.saving_per_assembly * 10000, rel=1e-12)
+    for result, name in ((r, "status"), (r, "total_cost"), (econ, "status"), (econ, "results")):
+        with pytest.raises(dataclasses.FrozenInstanceError):
+            setattr(result, name, None)
+    d = econ.to_dict(curve=True)["models"][0]
+    assert isinstance(d["curve_ppm"], list) and len(d["curve_ppm"]) == len(d["curve_manufacturing"])
+
+
 def test_economic_optimum_against_closed_form_brute_force_and_stationarity():
     case, b, coeff = _economics_case()
     econ = fallout_economics(case)
