@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
-from typing import Mapping
+from typing import TYPE_CHECKING, Mapping
 
 import numpy as np
 
@@ -12,6 +12,9 @@ from . import stack
 from .chain import linearise
 from .errors import UsageError, unknown_names
 from .model import per_unit
+
+if TYPE_CHECKING:
+    from .model import Case
 
 
 @dataclass(frozen=True)
@@ -140,7 +143,7 @@ class StackAnalysis:
         return {"requirements": [r.to_dict() for r in self.requirements]}
 
     def to_frame(self):
-        """One row per requirement (pandas DataFrame)."""
+        """One row per requirement (pandas DataFrame, index ``requirement``)."""
         import pandas as pd
 
         rows = []
@@ -148,10 +151,11 @@ class StackAnalysis:
             d = r.to_dict()
             d.pop("contributors")
             rows.append(d)
-        return pd.DataFrame(rows).set_index("name")
+        return pd.DataFrame(rows).set_index("name").rename_axis("requirement")
 
     def contributions_frame(self):
-        """One row per (requirement, contributor) with a nonzero sensitivity."""
+        """One row per (requirement, contributor) with a nonzero sensitivity (index
+        ``requirement``, ``contributor``)."""
         import pandas as pd
 
         rows = [
@@ -159,10 +163,15 @@ class StackAnalysis:
             for r in self.requirements
             for c in r.to_dict()["contributors"]
         ]
-        return pd.DataFrame(rows).set_index(["requirement", "name"])
+        return pd.DataFrame(rows).set_index(["requirement", "name"]).rename_axis(["requirement", "contributor"])
+
+    def _repr_html_(self) -> str:
+        from .display import result_html
+
+        return result_html(f"Stack analysis: {self.title}", self.to_frame())
 
 
-def analyze(case, tolerances: Mapping[str, float] | None = None) -> StackAnalysis:
+def analyze(case: Case, tolerances: Mapping[str, float] | None = None) -> StackAnalysis:
     """Worst case, RSS and mean-shift analysis of every requirement.
 
     Parameters

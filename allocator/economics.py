@@ -27,7 +27,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import asdict, dataclass, field
-from typing import Callable
+from typing import Callable, Sequence
 
 import numpy as np
 
@@ -335,6 +335,11 @@ class FalloutEconomics:
 
         return pd.DataFrame([r.to_dict() for r in self.results]).set_index("model")
 
+    def _repr_html_(self) -> str:
+        from .display import result_html
+
+        return result_html(f"Fallout economics of {self.requirement}: {self.status}", self.to_frame(), self.message)
+
     def curve_frame(self):
         """The coarse scan as a tidy frame: ppm, model, manufacturing, scrap, total."""
         import pandas as pd
@@ -389,12 +394,12 @@ def _economics_solver(case: Case, model: str):
 
 def fallout_economics(
     case: Case,
-    requirement: str | None = None,
-    models=None,
     *,
+    requirement: str | None = None,
+    models: Sequence[str] | None = None,
     scrap_cost: float | None = None,
     volume: float | None = None,
-    bounds=DEFAULT_BOUNDS,
+    bounds: tuple[float, float] = DEFAULT_BOUNDS,
 ) -> FalloutEconomics:
     """The fallout target that minimises manufacturing plus scrap cost per assembly.
 

@@ -519,7 +519,7 @@ def build_report(
             basis = "current"
 
     with _working_on("supplier"):
-        supplier = supplier_sheet(case, recommended, rec_alloc) if rec_alloc is not None else None
+        supplier = supplier_sheet(case, recommended, allocation=rec_alloc) if rec_alloc is not None else None
 
     return Report(
         case=case,

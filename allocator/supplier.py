@@ -15,12 +15,17 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
+from typing import TYPE_CHECKING
 
 import numpy as np
 
 from . import status as _status
 from .errors import UsageError, did_you_mean
 from .model import MODELS
+
+if TYPE_CHECKING:
+    from .model import Case
+    from .solve.result import Allocation
 
 __all__ = ["DEFAULT_STEP", "Loosening", "SupplierSheet", "looser_tolerance", "supplier_sheet"]
 
@@ -238,6 +243,11 @@ class SupplierSheet:
         columns = list(Loosening.__dataclass_fields__)
         return pd.DataFrame(rows, columns=columns).set_index("contributor")
 
+    def _repr_html_(self) -> str:
+        from .display import result_html
+
+        return result_html(f"Supplier sheet {self.model}: {self.status}", self.to_frame(), self.message)
+
     def __repr__(self) -> str:
         lines = [f"SupplierSheet(model={self.model!r}, status={self.status!r}, step={self.step:g})"]
         for r in self.rows:
@@ -246,7 +256,8 @@ class SupplierSheet:
         return "\n".join(lines)
 
 
-def supplier_sheet(case, model: str, allocation=None, *, step: float = DEFAULT_STEP) -> SupplierSheet:
+def supplier_sheet(case: Case, model: str, *, allocation: Allocation | None = None,
+                   step: float = DEFAULT_STEP) -> SupplierSheet:
     """Per contributor: the cost elsewhere of loosening its allocated tolerance by one step.
 
     Parameters

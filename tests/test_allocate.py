@@ -619,6 +619,9 @@ def test_result_object_frames_dict_and_repr():
     assert {"current", "allocated", "bound", "unit_cost_current", "unit_cost_allocated", "count"} <= set(frame.columns)
     req = result.requirements_frame()
     assert list(req.index) == ["r0", "r1", "r2"]
+    assert frame.index.name == "contributor" and req.index.name == "requirement"
+    page = result._repr_html_()
+    assert "<table" in page and "Allocation rss: optimal" in page and "c0" in page
     doc = json.loads(json.dumps(result.to_dict()))
     assert {"model", "status", "total_cost", "tolerances"} <= set(doc)
     assert doc["tolerances"]["c0"] == pytest.approx(result.tolerances["c0"])

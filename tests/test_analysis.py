@@ -48,7 +48,10 @@ def test_tolerance_overrides_and_frames():
     frame = res.to_frame()
     assert frame.loc["end_play", "worst_case_max"] == pytest.approx(r.worst_case_max)
     contrib = res.contributions_frame()
-    assert set(contrib.index.get_level_values("name")) == {"housing", "bearing", "spacer"}
+    assert set(contrib.index.get_level_values("contributor")) == {"housing", "bearing", "spacer"}
+    # indexed by the natural names; a notebook shows the result as a table
+    assert frame.index.name == "requirement" and contrib.index.names == ["requirement", "contributor"]
+    assert "<table" in res._repr_html_() and "end_play" in res._repr_html_()
     d = res.to_dict()["requirements"][0]
     for key in ("name", "nominal", "worst_case_min", "worst_case_max", "sigma", "fallout_ppm"):
         assert key in d
@@ -205,3 +208,17 @@ def test_cli_prints_tiny_fallout_in_ppb_without_exponents():
     for line in result.stdout.splitlines():
         if "fallout" in line:
             assert not re.search(r"\d[eE][-+]\d", line), line
+
+
+def test_csv_of_the_command_line_keeps_its_column_names(tmp_path):
+    """The library frame is indexed by contributor; the CLI's CSV header stays as it was."""
+    from click.testing import CliRunner
+
+    from allocator.cli.main import cli
+
+    from pathlib import Path
+
+    case_file = Path(__file__).resolve().parent.parent / "cases" / "gearbox_end_play.toml"
+    out = CliRunner().invoke(cli, ["analyze", str(case_file), "--csv"])
+    assert out.exit_code == 0, out.output
+    assert out.output.splitlines()[0].startswith("requirement,name,sensitivity,")

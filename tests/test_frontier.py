@@ -449,6 +449,7 @@ def test_economics_results_are_complete_and_frozen():
     for result, name in ((r, "status"), (r, "total_cost"), (econ, "status"), (econ, "results")):
         with pytest.raises(dataclasses.FrozenInstanceError):
             setattr(result, name, None)
+    assert econ.to_frame().index.name == "model" and "<table" in econ._repr_html_()
     d = econ.to_dict(curve=True)["models"][0]
     assert isinstance(d["curve_ppm"], list) and len(d["curve_ppm"]) == len(d["curve_manufacturing"])
 

@@ -347,7 +347,8 @@ def test_histogram_and_plot(tmp_path):
     assert check.histogram_counts.sum() + check.underflow + check.overflow == 20_000
     assert len(check.histogram_edges) == len(check.histogram_counts) + 1
     frame = result.to_frame()
-    assert list(frame.index) == ["gap"]
+    assert list(frame.index) == ["gap"] and frame.index.name == "requirement"
+    assert "<table" in result._repr_html_()
     png = plot_verification(result, tmp_path / "h.png")
     assert png.read_bytes().startswith(PNG_MAGIC)
     svg = render_verification_plot(result, "svg")

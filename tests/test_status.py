@@ -44,7 +44,7 @@ def test_results_of_a_demo_case_speak_the_documented_words(case):
     assert front.status in status.SWEEP
     assert {s for row in front.statuses.values() for s in row} <= set(status.SOLVE)
 
-    sheet = allocator.supplier_sheet(case, "rss", alloc)
+    sheet = allocator.supplier_sheet(case, "rss", allocation=alloc)
     assert sheet.status == status.OPTIMAL and sheet.success
     assert {r.status for r in sheet.rows} <= set(status.LOOSENING)
 

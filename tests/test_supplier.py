@@ -110,7 +110,8 @@ def test_changes_are_never_negative_on_a_demo_case():
         )
     assert sheet["bearing_width"].status == "fixed"
     frame = sheet.to_frame()
-    assert list(frame.index) == list(case.names)
+    assert list(frame.index) == list(case.names) and frame.index.name == "contributor"
+    assert "<table" in sheet._repr_html_()
 
 
 def test_looser_tolerance_steps_rounding_and_lists():
@@ -146,9 +147,9 @@ def test_unknown_model_is_a_usage_error_even_with_an_allocation_given():
     base = allocate(case, "rss")
     for given in (None, base):
         with pytest.raises(UsageError, match="unknown model 'rs' \\(did you mean 'rss'\\?\\)"):
-            supplier_sheet(case, "rs", given)
+            supplier_sheet(case, "rs", allocation=given)
     with pytest.raises(UsageError, match="step must be > 0"):
-        supplier_sheet(case, "rss", base, step=0.0)
+        supplier_sheet(case, "rss", allocation=base, step=0.0)
 
 
 def test_an_error_in_a_re_solve_is_raised_not_written_into_a_row(monkeypatch):
@@ -163,7 +164,7 @@ def test_an_error_in_a_re_solve_is_raised_not_written_into_a_row(monkeypatch):
 
     monkeypatch.setattr(allocator.solve, "allocate", spoiled)
     with pytest.raises(ValueError, match="zero-size array"):
-        supplier_sheet(case, "rss", base)
+        supplier_sheet(case, "rss", allocation=base)
 
 
 def _two_process_case():
