@@ -18,7 +18,7 @@ CASE = ROOT / "cases" / "gearbox_end_play.toml"
 
 
 def test_every_status_word_is_documented():
-    text = (ROOT / "docs" / "results.md").read_text(encoding="utf-8")
+    text = (ROOT / "docs/results.md").read_text(encoding="utf-8")
     for word in status.ALL:
         assert f"`{word}`" in text or f" {word}," in text or f" {word} " in text, word
 
