@@ -4,13 +4,17 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
-from typing import Mapping
+from typing import TYPE_CHECKING, Mapping
 
 import numpy as np
 
 from . import stack
 from .chain import linearise
+from .errors import UsageError, unknown_names
 from .model import per_unit
+
+if TYPE_CHECKING:
+    from .model import Case
 
 
 @dataclass(frozen=True)
@@ -139,7 +143,7 @@ class StackAnalysis:
         return {"requirements": [r.to_dict() for r in self.requirements]}
 
     def to_frame(self):
-        """One row per requirement (pandas DataFrame)."""
+        """One row per requirement (pandas DataFrame, index ``requirement``)."""
         import pandas as pd
 
         rows = []
@@ -147,10 +151,11 @@ class StackAnalysis:
             d = r.to_dict()
             d.pop("contributors")
             rows.append(d)
-        return pd.DataFrame(rows).set_index("name")
+        return pd.DataFrame(rows).set_index("name").rename_axis("requirement")
 
     def contributions_frame(self):
-        """One row per (requirement, contributor) with a nonzero sensitivity."""
+        """One row per (requirement, contributor) with a nonzero sensitivity (index
+        ``requirement``, ``contributor``)."""
         import pandas as pd
 
         rows = [
@@ -158,22 +163,32 @@ class StackAnalysis:
             for r in self.requirements
             for c in r.to_dict()["contributors"]
         ]
-        return pd.DataFrame(rows).set_index(["requirement", "name"])
+        return pd.DataFrame(rows).set_index(["requirement", "name"]).rename_axis(["requirement", "contributor"])
+
+    def _repr_html_(self) -> str:
+        from .display import result_html
+
+        return result_html(f"Stack analysis: {self.title}", self.to_frame())
 
 
-def analyze(case, tolerances: Mapping[str, float] | None = None) -> StackAnalysis:
+def analyze(case: Case, tolerances: Mapping[str, float] | None = None) -> StackAnalysis:
     """Worst case, RSS and mean-shift analysis of every requirement.
 
     Parameters
     ----------
     case : allocator.model.Case
-    tolerances : mapping name -> ± tolerance [length], optional
-        Overrides for some or all contributors; the case's current ``tolerance``
-        values are used for the rest.
+    tolerances : mapping or pandas.Series, name -> ± tolerance [length], optional
+        Overrides for some or all contributors (e.g. ``allocation.tolerances``); the
+        case's current ``tolerance`` values are used for the rest.
 
     Returns
     -------
     StackAnalysis
+
+    Raises
+    ------
+    UsageError
+        ``tolerances`` names a contributor the case does not have.
 
     Notes
     -----
@@ -189,11 +204,13 @@ def analyze(case, tolerances: Mapping[str, float] | None = None) -> StackAnalysi
     inputs never turns a design that meets its limit exactly into a failure.
     """
     t = case.current_tolerances
-    if tolerances:
-        unknown = set(tolerances) - set(case.names)
-        if unknown:
-            raise KeyError(f"unknown contributor(s): {', '.join(sorted(unknown))}")
-        t = np.array([float(tolerances.get(n, t[i])) for i, n in enumerate(case.names)])
+    if tolerances is not None:
+        # dict(...) of a mapping or a pandas Series: never the truth value of the object
+        given = dict(tolerances.items())
+        problem = unknown_names("contributor", given, case.names)
+        if problem:
+            raise UsageError(f"tolerances: {problem}")
+        t = np.array([float(given.get(n, t[i])) for i, n in enumerate(case.names)])
     n = case.counts
     f = case.sigma_factors
     m = case.mean_shifts

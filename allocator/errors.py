@@ -1,6 +1,48 @@
-"""Exceptions that the command line turns into one-line messages and exit codes."""
+"""Exceptions that the command line turns into one-line messages and exit codes.
+
+Which error for which mistake (the same whichever entry point is called):
+
+- :class:`UsageError` -- an argument of a library call or a command-line option is wrong,
+  including a name that is not in the case (unknown model, contributor or requirement);
+- :class:`CaseError` -- the content of a case file (or of a tolerance file read by the
+  command line) is wrong; the message names the file and the field.
+
+Both are :class:`ValueError` subclasses, so ``except ValueError`` catches bad input of
+either kind. Looking a name up in a *result* by subscript (``sheet["housing"]``) follows
+the mapping protocol and raises :class:`KeyError`.
+"""
 
 from __future__ import annotations
+
+import difflib
+from typing import Iterable
+
+
+def did_you_mean(name: object, options: Iterable[str]) -> str:
+    """``" (did you mean 'x'?)"`` for the closest of ``options``, or ``""``.
+
+    Examples
+    --------
+    >>> did_you_mean("housng", ["housing", "shim"])
+    " (did you mean 'housing'?)"
+    >>> did_you_mean("zzz", ["housing"])
+    ''
+    """
+    close = difflib.get_close_matches(str(name), list(options), n=1, cutoff=0.6)
+    return f" (did you mean '{close[0]}'?)" if close else ""
+
+
+def unknown_names(what: str, given: Iterable[object], known: Iterable[str]) -> str:
+    """One line naming the unknown ``given`` entries, each with its did-you-mean, or ``""``.
+
+    Examples
+    --------
+    >>> unknown_names("contributor", ["housng", "shim"], ["housing", "shim"])
+    "unknown contributor 'housng' (did you mean 'housing'?)"
+    """
+    known = list(known)
+    bad = [str(n) for n in given if n not in known]
+    return "; ".join(f"unknown {what} '{n}'{did_you_mean(n, known)}" for n in bad)
 
 
 class AllocatorError(Exception):
@@ -28,8 +70,8 @@ class CaseError(AllocatorError, ValueError):
         return ": ".join(parts + [self.problem])
 
 
-class UsageError(AllocatorError):
-    """A command-line option or argument is wrong (exit code 2)."""
+class UsageError(AllocatorError, ValueError):
+    """A command-line option or an argument of a library call is wrong (exit code 2)."""
 
     exit_code = 2
 

@@ -392,9 +392,12 @@ class Case:
         """A copy whose current tolerances are replaced by ``tolerances`` (by name)."""
         from dataclasses import replace
 
-        unknown = set(tolerances) - set(self.names)
-        if unknown:
-            raise KeyError(f"unknown contributor(s): {', '.join(sorted(unknown))}")
+        from .errors import UsageError, unknown_names
+
+        tolerances = dict(tolerances.items())
+        problem = unknown_names("contributor", tolerances, self.names)
+        if problem:
+            raise UsageError(f"tolerances: {problem}")
         return replace(
             self,
             contributors=tuple(

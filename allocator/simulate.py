@@ -109,7 +109,7 @@ def clopper_pearson(failures, trials, confidence: float = CONFIDENCE):
     return low, high
 
 
-@dataclass
+@dataclass(frozen=True)
 class RequirementCheck:
     """Verification of one requirement (see :class:`Verification`).
 
@@ -194,7 +194,7 @@ class RequirementCheck:
         return out
 
 
-@dataclass
+@dataclass(frozen=True)
 class Verification:
     """Result of :func:`verify`, read like :class:`scipy.optimize.OptimizeResult`.
 
@@ -262,11 +262,17 @@ class Verification:
         }
 
     def to_frame(self):
-        """One row per requirement (pandas DataFrame, index = requirement name)."""
+        """One row per requirement (pandas DataFrame, index ``requirement``)."""
         import pandas as pd
 
         rows = [c.to_dict(histogram=False) for c in self.requirements]
-        return pd.DataFrame(rows).set_index("name")
+        return pd.DataFrame(rows).set_index("name").rename_axis("requirement")
+
+    def _repr_html_(self) -> str:
+        from .display import result_html
+
+        return result_html(f"Verification: {self.status} ({self.samples} samples, seed {self.seed})",
+                           self.to_frame(), self.message)
 
     def __repr__(self) -> str:
         lines = [

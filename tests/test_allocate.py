@@ -549,6 +549,19 @@ def test_bad_fix_and_model_are_usage_errors():
         allocate(case, "rss", overrides={"rx": {"upper": 1.0}})
 
 
+@pytest.mark.parametrize("case_file", ["gearbox_end_play.toml", "gear_hub_end_play.toml", "pump_shim.toml"])
+def test_unknown_model_says_the_same_on_every_solver_path(case_file):
+    # gear_hub and pump_shim round their tolerances (the discrete solver's path)
+    from pathlib import Path
+
+    from allocator.case import load_case
+
+    case = load_case(Path(__file__).resolve().parent.parent / "cases" / case_file)
+    with pytest.raises(UsageError, match="unknown model 'rs' \\(did you mean 'rss'\\?\\)"):
+        allocate(case, "rs")
+    assert issubclass(UsageError, ValueError)
+
+
 def test_discrete_contributor_is_refused_with_a_clear_message(monkeypatch):
     import allocator.solve as solve
 
@@ -607,6 +620,9 @@ def test_result_object_frames_dict_and_repr():
     assert {"current", "allocated", "bound", "unit_cost_current", "unit_cost_allocated", "count"} <= set(frame.columns)
     req = result.requirements_frame()
     assert list(req.index) == ["r0", "r1", "r2"]
+    assert frame.index.name == "contributor" and req.index.name == "requirement"
+    page = result._repr_html_()
+    assert "<table" in page and "Allocation rss: optimal" in page and "c0" in page
     doc = json.loads(json.dumps(result.to_dict()))
     assert {"model", "status", "total_cost", "tolerances"} <= set(doc)
     assert doc["tolerances"]["c0"] == pytest.approx(result.tolerances["c0"])

@@ -48,12 +48,40 @@ def test_tolerance_overrides_and_frames():
     frame = res.to_frame()
     assert frame.loc["end_play", "worst_case_max"] == pytest.approx(r.worst_case_max)
     contrib = res.contributions_frame()
-    assert set(contrib.index.get_level_values("name")) == {"housing", "bearing", "spacer"}
-    with pytest.raises(KeyError):
-        analyze(case, {"nope": 0.1})
+    assert set(contrib.index.get_level_values("contributor")) == {"housing", "bearing", "spacer"}
+    # indexed by the natural names; a notebook shows the result as a table
+    assert frame.index.name == "requirement" and contrib.index.names == ["requirement", "contributor"]
+    assert "<table" in res._repr_html_() and "end_play" in res._repr_html_()
     d = res.to_dict()["requirements"][0]
     for key in ("name", "nominal", "worst_case_min", "worst_case_max", "sigma", "fallout_ppm"):
         assert key in d
+
+
+def test_tolerances_given_as_a_pandas_series_or_any_mapping():
+    """An allocation's ``tolerances`` (a pandas Series) goes straight into analyze."""
+    import pandas as pd
+    from types import MappingProxyType
+
+    case = end_play_case()
+    # worst case by hand: 0.02 + 2·0.02 + 0.01 = 0.07 about the nominal 0.2
+    for given in (pd.Series({"housing": 0.02, "spacer": 0.01}),
+                  MappingProxyType({"housing": 0.02, "spacer": 0.01})):
+        r = analyze(case, given).requirements[0]
+        assert (r.worst_case_min, r.worst_case_max) == pytest.approx((0.13, 0.27))
+    # an empty Series changes nothing
+    assert analyze(case, pd.Series(dtype=float)).requirements[0].worst_case_max == pytest.approx(0.32)
+
+
+def test_unknown_contributor_is_a_usage_error_with_a_suggestion():
+    from allocator.errors import UsageError
+
+    case = end_play_case()
+    with pytest.raises(UsageError, match="unknown contributor 'housng' \\(did you mean 'housing'\\?\\)"):
+        analyze(case, {"housng": 0.1})
+    with pytest.raises(ValueError, match="unknown contributor 'nope'"):  # UsageError is a ValueError
+        analyze(case, {"nope": 0.1})
+    with pytest.raises(UsageError, match="did you mean 'spacer'"):
+        case.with_tolerances({"spacr": 0.1})
 
 
 # --------------------------------------------------------------------------- verdict at a limit
@@ -180,3 +208,17 @@ def test_cli_prints_tiny_fallout_in_ppb_without_exponents():
     for line in result.stdout.splitlines():
         if "fallout" in line:
             assert not re.search(r"\d[eE][-+]\d", line), line
+
+
+def test_csv_of_the_command_line_keeps_its_column_names(tmp_path):
+    """The library frame is indexed by contributor; the CLI's CSV header stays as it was."""
+    from click.testing import CliRunner
+
+    from allocator.cli.main import cli
+
+    from pathlib import Path
+
+    case_file = Path(__file__).resolve().parent.parent / "cases" / "gearbox_end_play.toml"
+    out = CliRunner().invoke(cli, ["analyze", str(case_file), "--csv"])
+    assert out.exit_code == 0, out.output
+    assert out.output.splitlines()[0].startswith("requirement,name,sensitivity,")

@@ -375,12 +375,25 @@ def test_defaults_come_from_the_frontier_table():
         ({"points": 2001}, "2 to 2000"),
         ({"vary": "fallout_ppm", "range": (0.0, 10.0)}, "> 0"),
         ({"vary": "upper", "range": (0.0, 0.3)}, "above the lower limit"),
-        ({"models": ("rs",)}, "unknown model"),
+        ({"models": ("rs",)}, "unknown model 'rs' \\(did you mean 'rss'\\?\\)"),
     ],
 )
 def test_bad_arguments(kwargs, fragment):
     with pytest.raises(UsageError, match=fragment):
         frontier(_small_case(), **kwargs)
+
+
+@pytest.mark.parametrize(
+    "kwargs, fragment",
+    [
+        ({"requirement": "gpa"}, "unknown requirement 'gpa' \\(did you mean 'gap'\\?\\)"),
+        ({"models": ("rs",)}, "unknown model 'rs' \\(did you mean 'rss'\\?\\)"),
+    ],
+)
+def test_fallout_economics_names_unknown_names_like_frontier(kwargs, fragment):
+    with pytest.raises(ValueError, match=fragment) as err:  # a UsageError is a ValueError
+        fallout_economics(_small_case(), scrap_cost=10.0, **kwargs)
+    assert isinstance(err.value, UsageError)
 
 
 def test_missing_limit_cannot_be_varied():
@@ -422,6 +435,23 @@ def _economics_case(scrap=40.0, volume=10000):
     req = chain_requirement("gap", {f"x{i}": c for i, c in enumerate(coeff)}, upper=20.1, fallout_ppm=100)
     return make_case(cs, [req], models=("rss",), currency="EUR",
                      economics=Economics(volume=volume, scrap_cost=scrap)), b, coeff
+
+
+def test_economics_results_are_complete_and_frozen():
+    import dataclasses
+
+    econ = fallout_economics(_economics_case()[0])
+    r = econ.result("rss")
+    # complete when built: the optimum, the current target and the saving between them
+    assert r.status == "optimal" and r.success
+    assert r.saving_per_assembly == pytest.approx(r.current_total - r.total_cost, rel=1e-12)
+    assert r.annual_saving == pytest.approx(r.saving_per_assembly * 10000, rel=1e-12)
+    for result, name in ((r, "status"), (r, "total_cost"), (econ, "status"), (econ, "results")):
+        with pytest.raises(dataclasses.FrozenInstanceError):
+            setattr(result, name, None)
+    assert econ.to_frame().index.name == "model" and "<table" in econ._repr_html_()
+    d = econ.to_dict(curve=True)["models"][0]
+    assert isinstance(d["curve_ppm"], list) and len(d["curve_ppm"]) == len(d["curve_manufacturing"])
 
 
 def test_economic_optimum_against_closed_form_brute_force_and_stationarity():

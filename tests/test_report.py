@@ -265,7 +265,7 @@ def test_numbers_equal_the_library(reports):
     assert sheet.model == report.recommended and sheet.base is report.allocations[report.recommended]
     assert [r.contributor for r in sheet.rows] == list(case.names)
     for row in sheet.rows:
-        if row.status == "solved":
+        if row.status == "optimal":
             assert fmt_number(row.total_cost_change, signed=True) in supplier_html
             assert fmt_number(row.own_change, signed=True) in supplier_html
             assert fmt_number(row.elsewhere_change, signed=True) in supplier_html

@@ -292,6 +292,18 @@ def test_same_seed_same_numbers_and_chunk_size_does_not_matter():
     assert different["requirements"][0]["mean"] != base["requirements"][0]["mean"]
 
 
+def test_verification_results_are_frozen():
+    import dataclasses
+
+    cs = [contributor("a", nominal=10.0, tolerance=0.03), contributor("b", nominal=5.0, tolerance=0.03)]
+    case = make_case(cs, [chain_requirement("gap", {"a": 1, "b": -1}, lower=4.9, upper=5.1)])
+    result = verify(case, samples=2000, seed=3)
+    for obj, name in ((result, "status"), (result, "requirements"), (result["gap"], "status"),
+                      (result["gap"], "fallout_ppm")):
+        with pytest.raises(dataclasses.FrozenInstanceError):
+            setattr(obj, name, None)
+
+
 def test_seed_is_generated_and_reported_when_not_given():
     case = normal_chain_case(-1.0, 1.0)
     first = verify(case, samples=5_000)
@@ -335,7 +347,8 @@ def test_histogram_and_plot(tmp_path):
     assert check.histogram_counts.sum() + check.underflow + check.overflow == 20_000
     assert len(check.histogram_edges) == len(check.histogram_counts) + 1
     frame = result.to_frame()
-    assert list(frame.index) == ["gap"]
+    assert list(frame.index) == ["gap"] and frame.index.name == "requirement"
+    assert "<table" in result._repr_html_()
     png = plot_verification(result, tmp_path / "h.png")
     assert png.read_bytes().startswith(PNG_MAGIC)
     svg = render_verification_plot(result, "svg")

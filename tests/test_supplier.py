@@ -100,7 +100,7 @@ def test_changes_are_never_negative_on_a_demo_case():
     # the base is the least cost, so holding anything elsewhere cannot be cheaper
     case = load_case(CASES / "gearbox_end_play.toml")
     sheet = supplier_sheet(case, "rss")
-    solved = [r for r in sheet.rows if r.status == "solved"]
+    solved = [r for r in sheet.rows if r.status == "optimal"]
     assert solved
     for r in solved:
         assert r.total_cost_change >= -1e-7 * sheet.base.total_cost
@@ -110,7 +110,8 @@ def test_changes_are_never_negative_on_a_demo_case():
         )
     assert sheet["bearing_width"].status == "fixed"
     frame = sheet.to_frame()
-    assert list(frame.index) == list(case.names)
+    assert list(frame.index) == list(case.names) and frame.index.name == "contributor"
+    assert "<table" in sheet._repr_html_()
 
 
 def test_looser_tolerance_steps_rounding_and_lists():
@@ -139,6 +140,18 @@ def test_at_loosest_and_infeasible_base():
     assert sheet.rows == []
 
 
+def test_unknown_model_is_a_usage_error_even_with_an_allocation_given():
+    from allocator.errors import UsageError
+
+    case = _case()
+    base = allocate(case, "rss")
+    for given in (None, base):
+        with pytest.raises(UsageError, match="unknown model 'rs' \\(did you mean 'rss'\\?\\)"):
+            supplier_sheet(case, "rs", allocation=given)
+    with pytest.raises(UsageError, match="step must be > 0"):
+        supplier_sheet(case, "rss", allocation=base, step=0.0)
+
+
 def test_an_error_in_a_re_solve_is_raised_not_written_into_a_row(monkeypatch):
     # a row once held the exception's text as its message (status 'error')
     import allocator.solve
@@ -151,7 +164,7 @@ def test_an_error_in_a_re_solve_is_raised_not_written_into_a_row(monkeypatch):
 
     monkeypatch.setattr(allocator.solve, "allocate", spoiled)
     with pytest.raises(ValueError, match="zero-size array"):
-        supplier_sheet(case, "rss", base)
+        supplier_sheet(case, "rss", allocation=base)
 
 
 def _two_process_case():
@@ -185,7 +198,7 @@ def test_loosening_a_part_with_processes_is_costed_by_the_process_that_makes_it(
     assert row.tolerance == pytest.approx(0.15, rel=1e-6)
     assert row.looser == pytest.approx(0.165, rel=1e-6)
     held = A[0] + A[1] + 0.1 + 0.009 / row.looser + root[:2].sum() ** 2 / (0.3 - row.looser)
-    assert row.status == "solved"
+    assert row.status == "optimal"
     assert row.total_cost_change == pytest.approx(held - base, rel=1e-5, abs=1e-9)
     assert row.total_cost_change >= 0
 

@@ -43,7 +43,8 @@ def analyze(case_file, as_json, as_csv):
         echo_json({"title": case.title, "units": case.units, **result.to_dict()})
         return
     if as_csv:
-        write_csv(result.contributions_frame())
+        # the CSV columns keep the names they always had
+        write_csv(result.contributions_frame(), index_label=["requirement", "name"])
         return
     click.echo(f"{case.title}  [{units_title(case)}]")
     for r in result.requirements:

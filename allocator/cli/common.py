@@ -248,6 +248,7 @@ def units_title(case) -> str:
     return ", ".join(case.unit_labels)
 
 
-def write_csv(frame) -> None:
-    """Print a pandas DataFrame as CSV on stdout."""
-    click.echo(frame.to_csv(), nl=False)
+def write_csv(frame, index_label=None) -> None:
+    """Print a pandas DataFrame as CSV on stdout (``index_label``: the index's column
+    name(s) in the CSV, when they differ from the frame's index names)."""
+    click.echo(frame.to_csv(index_label=index_label), nl=False)

@@ -134,7 +134,7 @@ def _economics(case, result):
         return None, "no statistical model selected (worst case does not use the fallout target)"
     from ..economics import fallout_economics
 
-    return fallout_economics(case, result.requirement, statistical), ""
+    return fallout_economics(case, requirement=result.requirement, models=statistical), ""
 
 
 def _print_human(case, result, economics, economics_note) -> None:

@@ -209,7 +209,7 @@ def verify(case_file, tolerance_file, models, samples, seed, plot, centred, as_j
     if as_json:
         echo_json({"title": case.title, "tolerance_source": source, "model": model, **result.to_dict()})
     elif as_csv:
-        write_csv(result.to_frame())
+        write_csv(result.to_frame(), index_label="name")  # the CSV column keeps its name
     else:
         _print_human(case, result, source, plot)
     if result.status == "fail":  # the reason is in the output; stderr gets one short line

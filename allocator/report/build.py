@@ -14,6 +14,7 @@ from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from pathlib import Path
 
+from .. import status as _status
 from ..errors import UsageError
 from . import sections
 from .figures import contributions_svg, frontier_svg, inline_svg, verification_svg
@@ -102,19 +103,20 @@ class Report:
 
     @property
     def status(self) -> str:
-        """'ok', 'infeasible' (some model cannot meet a requirement), 'failed' or 'verification failed'."""
+        """'ok', 'infeasible' (some model cannot meet a requirement), 'failed' or
+        'verification failed' (:data:`allocator.status.REPORT`)."""
         statuses = {a.status for a in self.allocations.values()}
-        if "infeasible" in statuses:
-            return "infeasible"
-        if "failed" in statuses:
-            return "failed"
+        if _status.INFEASIBLE in statuses:
+            return _status.INFEASIBLE
+        if _status.FAILED in statuses:
+            return _status.FAILED
         if self.verification_basis == "allocation" and not self.verification.success:
-            return "verification failed"
-        return "ok"
+            return _status.VERIFICATION_FAILED
+        return _status.OK
 
     @property
     def success(self) -> bool:
-        return self.status == "ok"
+        return self.status == _status.OK
 
     @property
     def exit_code(self) -> int:
@@ -256,7 +258,7 @@ def build_report(
             basis = "current"
 
     with working_on("supplier"):
-        supplier = supplier_sheet(case, recommended, rec_alloc) if rec_alloc is not None else None
+        supplier = supplier_sheet(case, recommended, allocation=rec_alloc) if rec_alloc is not None else None
 
     return Report(
         case=case,

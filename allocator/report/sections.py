@@ -21,6 +21,7 @@ import shlex
 from importlib import resources
 from pathlib import Path
 
+from .. import status as _status
 from .html import (
     MODEL_LABELS,
     Row,
@@ -844,8 +845,8 @@ def _concession_table(report) -> str:
             f'<span class="nw">{esc(name)} {tol(before)} → '
             f'{cu.cell(tol(after), case.contributor_units(name))}</span>'
             for name, before, after in r.tightened
-        ) or ("none" if r.status == "solved" else "")
-        status = "" if r.status == "solved" else flag(r.status, "bad" if r.status in ("infeasible", "failed") else "")
+        ) or ("none" if r.status == _status.OPTIMAL else "")
+        status = "" if r.status == _status.OPTIMAL else flag(r.status, "bad" if r.status in ("infeasible", "failed") else "")
         rows.append(
             [
                 esc(r.contributor),
@@ -855,7 +856,7 @@ def _concession_table(report) -> str:
                 num(r.own_change, signed=True),
                 num(r.elsewhere_change, signed=True),
                 num(r.total_cost_change, signed=True),
-                tightened if r.status == "solved" else esc(r.message),
+                tightened if r.status == _status.OPTIMAL else esc(r.message),
             ]
         )
     return table(

@@ -13,9 +13,11 @@ from dataclasses import asdict, dataclass
 
 import numpy as np
 
+from .. import status as _status
+
 __all__ = ["Allocation", "RequirementResult", "STATUSES"]
 
-STATUSES = ("optimal", "infeasible", "failed")
+STATUSES = _status.SOLVE  # see allocator.status
 
 
 @dataclass(frozen=True)
@@ -187,7 +189,7 @@ class Allocation:
 
     @property
     def success(self) -> bool:
-        return self.status == "optimal"
+        return self.status == _status.OPTIMAL
 
     @property
     def savings(self) -> float | None:
@@ -269,16 +271,24 @@ class Allocation:
         return out
 
     def to_frame(self):
-        """Per-contributor DataFrame: current, allocated, bound, unit costs, count, limits."""
+        """Per-contributor DataFrame (index ``contributor``): current, allocated, bound,
+        unit costs, count, limits."""
         import pandas as pd
 
         return pd.DataFrame(self.rows()).set_index("contributor")
 
     def requirements_frame(self):
-        """Per-requirement DataFrame: ranges, σ, fallout vs target, shadow prices."""
+        """Per-requirement DataFrame (index ``requirement``): ranges, σ, fallout vs target,
+        shadow prices."""
         import pandas as pd
 
-        return pd.DataFrame([r.to_dict() for r in self.requirements]).set_index("name")
+        return pd.DataFrame([r.to_dict() for r in self.requirements]).set_index("name").rename_axis("requirement")
+
+    def _repr_html_(self) -> str:
+        from ..display import result_html
+
+        cost = "" if self.total_cost is None else f", total cost {self.total_cost:.6g} {self.currency}".rstrip()
+        return result_html(f"Allocation {self.model}: {self.status}{cost}", self.to_frame(), self.message)
 
     def to_dict(self) -> dict:
         """JSON-ready dict; the contract keys are model, status, total_cost, tolerances."""
