@@ -161,7 +161,9 @@ class StackAnalysis:
         return pd.DataFrame(rows).set_index(["requirement", "name"])
 
 
-def analyze(case, tolerances: Mapping[str, float] | None = None) -> StackAnalysis:
+def analyze(
+    case, tolerances: Mapping[str, float] | None = None, processes: Mapping[str, str] | None = None
+) -> StackAnalysis:
     """Worst case, RSS and mean-shift analysis of every requirement.
 
     Parameters
@@ -170,6 +172,10 @@ def analyze(case, tolerances: Mapping[str, float] | None = None) -> StackAnalysi
     tolerances : mapping name -> ± tolerance [length], optional
         Overrides for some or all contributors; the case's current ``tolerance``
         values are used for the rest.
+    processes : mapping name -> process name, optional
+        The process that makes each named contributor (e.g. ``Allocation.processes``); its
+        cp sets the contributor's σ. The others are made by the cheapest of their processes
+        that holds their tolerance (:meth:`allocator.model.Case.sigma_factors_at`).
 
     Returns
     -------
@@ -195,7 +201,7 @@ def analyze(case, tolerances: Mapping[str, float] | None = None) -> StackAnalysi
             raise KeyError(f"unknown contributor(s): {', '.join(sorted(unknown))}")
         t = np.array([float(tolerances.get(n, t[i])) for i, n in enumerate(case.names)])
     n = case.counts
-    f = case.sigma_factors
+    f = case.sigma_factors_at(t, processes)
     m = case.mean_shifts
     names = case.names
     contributor_units = [case.contributor_units(name) for name in names]
