@@ -171,7 +171,9 @@ class StackAnalysis:
         return result_html(f"Stack analysis: {self.title}", self.to_frame())
 
 
-def analyze(case: Case, tolerances: Mapping[str, float] | None = None) -> StackAnalysis:
+def analyze(
+    case: Case, tolerances: Mapping[str, float] | None = None, *, processes: Mapping[str, str] | None = None
+) -> StackAnalysis:
     """Worst case, RSS and mean-shift analysis of every requirement.
 
     Parameters
@@ -180,6 +182,10 @@ def analyze(case: Case, tolerances: Mapping[str, float] | None = None) -> StackA
     tolerances : mapping or pandas.Series, name -> ± tolerance [length], optional
         Overrides for some or all contributors (e.g. ``allocation.tolerances``); the
         case's current ``tolerance`` values are used for the rest.
+    processes : mapping name -> process name, optional
+        The process that makes each named contributor (e.g. ``Allocation.processes``); its
+        cp sets the contributor's σ. The others are made by the cheapest of their processes
+        that holds their tolerance (:meth:`allocator.model.Case.sigma_factors_at`).
 
     Returns
     -------
@@ -212,7 +218,7 @@ def analyze(case: Case, tolerances: Mapping[str, float] | None = None) -> StackA
             raise UsageError(f"tolerances: {problem}")
         t = np.array([float(given.get(n, t[i])) for i, n in enumerate(case.names)])
     n = case.counts
-    f = case.sigma_factors
+    f = case.sigma_factors_at(t, processes)
     m = case.mean_shifts
     names = case.names
     contributor_units = [case.contributor_units(name) for name in names]

@@ -217,6 +217,54 @@ class Contributor:
             out.append(k)
         return tuple(out)
 
+    def cheapest_option_holding(self, tolerance: float) -> int | None:
+        """The cheapest option that can make ± ``tolerance`` (a position in :meth:`options`).
+
+        The rule for a tolerance whose process nobody chose (the case's current
+        ``tolerance``, a plain tolerance map given to verify): among
+        :meth:`options_holding`, the lowest unit cost at ``tolerance`` (an option without a
+        cost curve costs 0); ties go to the option listed first.
+
+        Parameters
+        ----------
+        tolerance : float
+            ± tolerance [length].
+
+        Returns
+        -------
+        int or None
+            None when no option makes ``tolerance``.
+
+        Examples
+        --------
+        >>> shaft = Contributor(name="shaft", nominal=20.0, tolerance=0.03, processes=(
+        ...     Process("lathe", (0.01, 0.05), CostCurve("reciprocal", a=1.0, b=0.01)),
+        ...     Process("grinder", (0.005, 0.02), CostCurve("reciprocal", a=3.0, b=0.01))))
+        >>> shaft.cheapest_option_holding(0.015), shaft.cheapest_option_holding(0.008)
+        (0, 1)
+        >>> shaft.cheapest_option_holding(0.1) is None
+        True
+        """
+        from . import costs
+
+        makers = self.options_holding(tolerance)
+        if not makers:
+            return None
+        options = self.options()
+        best, best_cost = makers[0], math.inf
+        for k in makers:
+            curve = options[k].cost
+            if curve is None:
+                value = 0.0
+            else:
+                try:
+                    value = float(costs.cost_value(curve, float(tolerance)))
+                except ValueError:  # not defined there
+                    continue
+            if value < best_cost:
+                best, best_cost = k, value
+        return best
+
     def needs_choice(self, held: float | None = None) -> bool:
         """True when allocating this contributor is a discrete choice.
 
@@ -381,6 +429,90 @@ class Case:
         import numpy as np
 
         return np.array([c.sigma_factor for c in self.contributors], dtype=float)
+
+    def making_processes(self, tolerances, processes: Mapping[str, str] | None = None) -> tuple[str, ...]:
+        """The process that makes each contributor at ``tolerances``.
+
+        Parameters
+        ----------
+        tolerances : array_like
+            ± tolerance per contributor, in case order [length].
+        processes : mapping name -> process name, optional
+            Processes already chosen (e.g. :attr:`allocator.solve.Allocation.processes`).
+            A chosen process must be one of the contributor's and make its tolerance
+            (:meth:`Contributor.options_holding`). Contributors not named, or named with
+            ``""``, take the cheapest process that makes their tolerance
+            (:meth:`Contributor.cheapest_option_holding`).
+
+        Returns
+        -------
+        tuple of str
+            Process name per contributor; ``""`` for a contributor without processes and
+            for one that no process makes (it keeps its own cp).
+
+        Raises
+        ------
+        CaseError
+            Field ``processes.<name>``: an unknown contributor or process, or a process
+            whose range does not hold the tolerance.
+        """
+        from .errors import CaseError
+
+        chosen = dict(processes or {})
+        for name in chosen:
+            if name not in self._positions:
+                raise CaseError("unknown contributor", field=f"processes.{name}")
+        out = []
+        for c, t in zip(self.contributors, tolerances):
+            t = float(t)
+            name = chosen.get(c.name) or ""
+            if not c.processes:
+                if name:
+                    raise CaseError(
+                        f"{c.name!r} has no process entries, so it cannot be made by {name!r}",
+                        field=f"processes.{c.name}",
+                    )
+                out.append("")
+                continue
+            if name:
+                names = [p.name for p in c.processes]
+                if name not in names:
+                    raise CaseError(
+                        f"no process {name!r} (the processes of {c.name!r}: {', '.join(names)})",
+                        field=f"processes.{c.name}",
+                    )
+                if names.index(name) not in c.options_holding(t):
+                    lo, hi = c.processes[names.index(name)].limits
+                    raise CaseError(
+                        f"process {name!r} makes ±{lo:g} to ±{hi:g}, not ±{t:g}",
+                        field=f"processes.{c.name}",
+                    )
+                out.append(name)
+                continue
+            k = c.cheapest_option_holding(t)
+            out.append("" if k is None else c.processes[k].name)
+        return tuple(out)
+
+    def sigma_factors_at(self, tolerances, processes: Mapping[str, str] | None = None):
+        """σ / t per contributor when made by the processes of :meth:`making_processes`.
+
+        A contributor made by a process with its own ``cp`` takes that cp; every other
+        contributor its own (:attr:`sigma_factors`). Same parameters as
+        :meth:`making_processes`.
+
+        Returns
+        -------
+        numpy.ndarray
+            σ / t per contributor [-].
+        """
+        import numpy as np
+
+        made_by = self.making_processes(tolerances, processes)
+        out = []
+        for c, name in zip(self.contributors, made_by):
+            process = next((p for p in c.processes if p.name == name), None) if name else None
+            out.append(c.sigma_factor if process is None else c.process_sigma_factor(process))
+        return np.array(out, dtype=float)
 
     @property
     def mean_shifts(self):

@@ -1,8 +1,9 @@
 """Verification of a set of tolerances by Monte Carlo, with exact convolution for chains.
 
 :func:`verify` draws whole assemblies: every contributor instance independently from its
-own distribution (normal with σ = ``sigma_factor · t``, uniform or symmetric triangular on
-``±t``), a contributor's value being the sum of its ``count`` instances, and evaluates each
+own distribution (normal with σ = ``t / (3·cp)``, the cp of the process that makes it, see
+:meth:`allocator.model.Case.sigma_factors_at`; uniform or symmetric triangular on ``±t``),
+a contributor's value being the sum of its ``count`` instances, and evaluates each
 requirement's exact response (the expression itself, not its linearisation). It counts the
 assemblies outside the limits, gives an exact (Clopper–Pearson) confidence interval, and
 sets beside it the analytic predictions (RSS, estimated mean shift) and, for linear chains,
@@ -302,14 +303,14 @@ class _Sampler:
     triangular instance (the sum of two uniforms is triangular).
     """
 
-    def __init__(self, case, tolerances: np.ndarray):
+    def __init__(self, case, tolerances: np.ndarray, sigma_factors: np.ndarray):
         kinds = [c.distribution for c in case.contributors]
         counts = case.counts.astype(int)
         self.n = len(kinds)
         self.normal = np.array([i for i, k in enumerate(kinds) if k == "normal"], dtype=int)
         # σ of the sum of `count` normal instances is σ·√count: one draw per contributor
         self.normal_scale = (
-            case.sigma_factors[self.normal] * tolerances[self.normal] * np.sqrt(counts[self.normal])
+            sigma_factors[self.normal] * tolerances[self.normal] * np.sqrt(counts[self.normal])
         )
         owner, scale, offset = [], [], []
         for i, kind in enumerate(kinds):
@@ -409,10 +410,32 @@ def _tolerance_array(case, tolerances) -> np.ndarray:
     return t
 
 
-def _plan(case, requirement, t: np.ndarray, shift_means: bool) -> _Plan:
+def _unpack(tolerances, processes, allocated_with):
+    """``(tolerances, processes, allocated_with)``, taken from an Allocation when given one.
+
+    Explicit ``processes`` / ``allocated_with`` arguments win over the allocation's.
+    """
+    if hasattr(tolerances, "allocated_array") and hasattr(tolerances, "processes"):
+        allocation = tolerances
+        values = allocation.allocated_array()
+        if values is None:
+            raise CaseError(
+                f"the allocation has no tolerances to verify (status {allocation.status}: "
+                f"{allocation.message})",
+                field="tolerances",
+            )
+        if processes is None:
+            processes = allocation.processes
+        if allocated_with is None:
+            allocated_with = allocation.model
+        tolerances = dict(zip(allocation.names, (float(x) for x in values)))
+    return tolerances, processes, allocated_with
+
+
+def _plan(case, requirement, t: np.ndarray, sigma_factors: np.ndarray, shift_means: bool) -> _Plan:
     lin = linearise(case, requirement)
     counts = case.counts
-    sigma = stack.rss_sigma(lin.sensitivity, counts, case.sigma_factors * t)
+    sigma = stack.rss_sigma(lin.sensitivity, counts, sigma_factors * t)
     delta = stack.mean_shift_delta(lin.sensitivity, counts, case.mean_shifts, t) if shift_means else 0.0
     lower, upper = requirement.lower, requirement.upper
     rss_below, rss_above = stack.normal_fallout(lin.nominal, sigma, lower, upper)
@@ -472,13 +495,15 @@ class _Engine:
     :func:`sample_responses` so both see the same random stream.
     """
 
-    def __init__(self, case, t: np.ndarray, shift_means: bool, samples: int, seed: int, chunk_size):
+    def __init__(self, case, t: np.ndarray, shift_means: bool, samples: int, seed: int, chunk_size, processes=None):
         self.case = case
         self.t = t
         self.samples = samples
         self.seed = seed
-        plans = [_plan(case, r, t, shift_means) for r in case.requirements]
-        self.sampler = sampler = _Sampler(case, t)
+        # σ/t per contributor: the cp of the process that makes it (docs/verification.md)
+        self.sigma_factors = f = case.sigma_factors_at(t, processes)
+        plans = [_plan(case, r, t, f, shift_means) for r in case.requirements]
+        self.sampler = sampler = _Sampler(case, t, f)
         self.linear = [p for p in plans if p.linear]
         self.nonlinear = [p for p in plans if not p.linear]
         self.order = self.linear + self.nonlinear
@@ -539,10 +564,13 @@ class _Engine:
             yield y, spans
 
 
-def sample_responses(case, tolerances=None, *, samples: int = 10_000, seed: int = 0, shift_means: bool = True):
+def sample_responses(
+    case, tolerances=None, *, samples: int = 10_000, seed: int = 0, shift_means: bool = True, processes=None
+):
     """The simulated responses themselves, one array per requirement.
 
-    Uses exactly the random stream of :func:`verify` with the same ``seed``; holds all
+    Uses exactly the random stream of :func:`verify` with the same ``seed`` (and the same
+    ``tolerances`` and ``processes`` arguments, an Allocation included); holds all
     ``samples × requirements`` values in memory, so it is meant for modest sample counts
     (plots, tests, notebooks).
 
@@ -554,8 +582,9 @@ def sample_responses(case, tolerances=None, *, samples: int = 10_000, seed: int 
     samples = int(samples)
     if samples < 1:
         raise ValueError("samples must be at least 1")
+    tolerances, processes, _ = _unpack(tolerances, processes, None)
     t = _tolerance_array(case, tolerances)
-    engine = _Engine(case, t, shift_means, samples, int(seed), None)
+    engine = _Engine(case, t, shift_means, samples, int(seed), None, processes)
     parts = [np.array(y) + engine.centre for y, _ in engine.chunks()]
     data = np.concatenate(parts, axis=0)
     return {p.requirement.name: data[:, j] for j, p in enumerate(engine.order)}
@@ -572,15 +601,18 @@ def verify(
     shift_means: bool = True,
     bins: int = HISTOGRAM_BINS,
     allocated_with: str | None = None,
+    processes: Mapping[str, str] | None = None,
 ) -> Verification:
     """Check tolerances by Monte Carlo simulation of whole assemblies.
 
     Parameters
     ----------
     case : allocator.model.Case
-    tolerances : mapping name -> float, pandas Series, array_like or None
+    tolerances : Allocation, mapping name -> float, pandas Series, array_like or None
         ± tolerances to check [length]; a mapping may name only some contributors
         (the others keep their current tolerance). ``None``: the case's current ones.
+        An :class:`~allocator.solve.Allocation` gives its tolerances, the processes it
+        chose and its model (for ``allocated_with``).
     samples : int
         Assemblies to simulate [-], ≥ 1.
     seed : int or None
@@ -601,6 +633,12 @@ def verify(
         centred processes; simulated with the case's mean shifts in place it can miss its
         target for that reason alone, and :attr:`Verification.assumption_note` says so
         (see docs/verification.md, *Which assumptions are simulated*).
+    processes : mapping name -> process name, optional
+        The process that makes each named contributor (e.g. ``Allocation.processes``);
+        a normal contributor is simulated with that process's cp. Contributors not named
+        (or named with ``""``) are made by the cheapest of their processes that holds
+        their tolerance (:meth:`allocator.model.Case.making_processes`); see
+        docs/verification.md, *Which process makes a tolerance*.
 
     Returns
     -------
@@ -633,8 +671,9 @@ def verify(
         raise ValueError("seed must be a non-negative integer")
     if not case.requirements:
         raise CaseError("the case has no requirement to verify", field="requirement")
+    tolerances, processes, allocated_with = _unpack(tolerances, processes, allocated_with)
     t = _tolerance_array(case, tolerances)
-    engine = _Engine(case, t, shift_means, samples, seed, chunk_size)
+    engine = _Engine(case, t, shift_means, samples, seed, chunk_size, processes)
     order, centre, n_req = engine.order, engine.centre, len(engine.order)
     lower = np.array([p.lower for p in order])
     upper = np.array([p.upper for p in order])
@@ -698,7 +737,7 @@ def verify(
                 case.counts,
                 t,
                 [c.distribution for c in case.contributors],
-                case.sigma_factors,
+                engine.sigma_factors,
                 mean=plan.shifted_mean,
             )
             conv_below, conv_above = dist.fallout(req.lower, req.upper)

@@ -6,6 +6,8 @@
 - ``build_case``: random invented cases (used through Hypothesis in test_properties.py,
   with fixed seeds in test_scaling.py);
 - ``case_text``: an invented case written as case-file text.
+- ``PROCESS_TOML``: an invented part with two processes of different cp, and the exact
+  fallout of its chain (``gap_fallout_ppm``).
 
 Test modules import from here, never from each other.
 """
@@ -378,3 +380,52 @@ def case_text(case: Case) -> str:
         lines += [f"fallout_ppm = {r.fallout_ppm!r}", ""]
     lines += ["[allocation]", f"models = {_toml_value(list(case.allocation.models))}", ""]
     return "\n".join(lines)
+
+
+# --------------------------------------------------------------------------- a part with processes
+
+# Invented case: a bore that can be turned (no cp of its own: the contributor's cp 1.0) or
+# ground (cp 1.67), and a pin; the gap must stay within 0.1 ± 0.03.
+PROCESS_TOML = """
+title = "invented bore and pin (verification test)"
+
+[[contributor]]
+name = "bore"
+nominal = 20.0
+tolerance = 0.05
+
+[[contributor.process]]
+name = "turning"
+limits = [0.035, 0.2]
+cost = { curve = "reciprocal", a = 0.1, b = 0.01 }
+
+[[contributor.process]]
+name = "grinding"
+limits = [0.004, 0.04]
+cp = 1.67
+cost = { curve = "reciprocal", a = 0.5, b = 0.01 }
+
+[[contributor]]
+name = "pin"
+nominal = 19.9
+tolerance = 0.02
+limits = [0.01, 0.2]
+cost = { curve = "reciprocal", a = 0.0, b = 0.02 }
+
+[[requirement]]
+name = "gap"
+chain = { bore = 1, pin = -1 }
+lower = 0.07
+upper = 0.13
+fallout_ppm = 2700
+
+[allocation]
+models = ["rss"]
+"""
+GAP_HALF = 0.03  # the limits are 0.1 ± 0.03 around the nominal gap 0.1
+
+
+def gap_fallout_ppm(t_bore: float, cp_bore: float, t_pin: float) -> float:
+    """Exact fallout of the centred normal gap, from σ_i = t_i/(3·cp_i) (scipy.stats.norm)."""
+    sigma = math.hypot(t_bore / (3.0 * cp_bore), t_pin / 3.0)
+    return (stats.norm.cdf(-GAP_HALF, 0.0, sigma) + stats.norm.sf(GAP_HALF, 0.0, sigma)) * 1e6

@@ -612,3 +612,22 @@ def test_cli_samples_accepts_2e5_and_refuses_fractions_and_negatives(tmp_path):
                      "--samples", "2e5", "--seed", "1")
     assert result.exit_code in (0, 1), result.output  # written (1: a verification verdict)
     assert "200,000 assemblies" in out.read_text(encoding="utf-8")
+
+
+def test_verification_and_analysis_of_the_recommendation_use_the_processes_it_chose():
+    # invented bore (turning, or grinding with cp 1.67) and pin (tests/helpers.py); the exact
+    # fallout from scipy.stats.norm with σ_i = t_i/(3·cp_i) of the chosen process
+    from helpers import PROCESS_TOML, gap_fallout_ppm
+
+    case = loads_case(PROCESS_TOML)
+    report = build_report(case, ["rss"], samples=SAMPLES, seed=SEED, include_frontier=False, created=STAMP)
+    chosen = report.allocations["rss"]
+    assert chosen.processes["bore"] == "grinding"
+    t = dict(chosen.tolerances)
+
+    ground, default = gap_fallout_ppm(t["bore"], 1.67, t["pin"]), gap_fallout_ppm(t["bore"], 1.0, t["pin"])
+    assert default > 4 * ground
+    assert report.verification["gap"].convolution_ppm == pytest.approx(ground, rel=1e-9)
+    assert report.verification["gap"].predicted_ppm == pytest.approx(ground, rel=1e-9)
+    assert report.recommended_analysis.requirements[0].fallout_ppm == pytest.approx(ground, rel=1e-9)
+    assert _ppm_cell(report.verification["gap"].convolution_ppm) in section_html(report.to_html(), "verification")

@@ -27,7 +27,7 @@ from allocator.simulate import (
     sample_responses,
     verify,
 )
-from helpers import chain_requirement, contributor, make_case
+from helpers import GAP_HALF, PROCESS_TOML, chain_requirement, contributor, gap_fallout_ppm, make_case
 
 PNG_MAGIC = b"\x89PNG\r\n\x1a\n"
 
@@ -511,3 +511,123 @@ def test_report_and_verify_share_one_samples_type():
 def test_special_ndtr_is_the_normal_cdf_used():
     # guard for the reference itself: scipy.special.ndtr agrees with scipy.stats.norm
     assert special.ndtr(-6.1) == pytest.approx(stats.norm.cdf(-6.1), rel=1e-12)
+
+
+# ----------------------------------------------------------------- the process that makes a part
+# PROCESS_TOML (tests/helpers.py): an invented bore, turned (the contributor's cp 1.0) or
+# ground (cp 1.67), and a pin; references from scipy.stats.norm with σ_i = t_i/(3·cp_i).
+
+
+def process_case():
+    from allocator.case import loads_case
+
+    return loads_case(PROCESS_TOML)
+
+
+def test_verify_simulates_the_cp_of_the_process_it_is_told():
+    case = process_case()
+    t_bore, t_pin = 0.038, 0.02  # both processes make ±0.038; turning is the cheaper
+    ground = gap_fallout_ppm(t_bore, 1.67, t_pin)
+    default = gap_fallout_ppm(t_bore, 1.0, t_pin)
+    assert default > 10 * ground  # about 36 000 ppm against about 3 000 ppm
+    check = verify(case, {"bore": t_bore}, processes={"bore": "grinding"}, samples=200_000, seed=31)["gap"]
+    assert check.ci_low_ppm <= ground <= check.ci_high_ppm
+    assert not check.ci_low_ppm <= default <= check.ci_high_ppm
+    # an all-normal chain: the convolution and the rss prediction are exact
+    assert check.convolution_ppm == pytest.approx(ground, rel=1e-9)
+    assert check.rss_ppm == pytest.approx(ground, rel=1e-9)
+    assert check.sigma == pytest.approx(math.hypot(t_bore / (3 * 1.67), t_pin / 3), rel=1e-12)
+    # the same draws for sample_responses: its fallout is the verification's
+    y = sample_responses(case, {"bore": t_bore}, processes={"bore": "grinding"}, samples=20_000, seed=31)["gap"]
+    short = verify(case, {"bore": t_bore}, processes={"bore": "grinding"}, samples=20_000, seed=31)["gap"]
+    assert np.count_nonzero(np.abs(y - 0.1) > GAP_HALF) == short.failures
+
+
+def test_a_tolerance_no_process_was_chosen_for_is_made_by_the_cheapest_that_holds_it():
+    case = process_case()
+    # ±0.038: both make it, turning is cheaper there (0.1 + 0.01/0.038 < 0.5 + 0.01/0.038)
+    both = verify(case, {"bore": 0.038}, samples=1000, seed=1)["gap"]
+    assert both.convolution_ppm == pytest.approx(gap_fallout_ppm(0.038, 1.0, 0.02), rel=1e-9)
+    # ±0.012: only grinding makes it, so the part has grinding's cp
+    ground = verify(case, {"bore": 0.012}, samples=1000, seed=1)["gap"]
+    assert ground.convolution_ppm == pytest.approx(gap_fallout_ppm(0.012, 1.67, 0.02), rel=1e-9)
+    assert case.making_processes([0.038, 0.02]) == ("turning", "")
+    assert case.making_processes([0.012, 0.02]) == ("grinding", "")
+    # analyze follows the same rule and takes a chosen process too
+    from allocator.analysis import analyze
+
+    assert analyze(case, {"bore": 0.012}).requirements[0].fallout_ppm == pytest.approx(
+        gap_fallout_ppm(0.012, 1.67, 0.02), rel=1e-9
+    )
+    chosen = analyze(case, {"bore": 0.038}, processes={"bore": "grinding"}).requirements[0]
+    assert chosen.fallout_ppm == pytest.approx(gap_fallout_ppm(0.038, 1.67, 0.02), rel=1e-9)
+
+
+def test_verify_of_an_allocation_simulates_the_processes_it_chose():
+    from allocator.solve import allocate
+
+    case = process_case()
+    allocation = allocate(case, "rss")
+    assert allocation.success
+    # turning cannot go below ±0.035, which the 2700 ppm target needs: grinding is chosen
+    assert allocation.processes["bore"] == "grinding"
+    t = dict(allocation.tolerances)
+    ground = gap_fallout_ppm(t["bore"], 1.67, t["pin"])
+    default = gap_fallout_ppm(t["bore"], 1.0, t["pin"])
+    assert default > 4 * ground  # about 16 000 ppm against the 2700 ppm target
+    result = verify(case, allocation, samples=200_000, seed=5)
+    check = result["gap"]
+    assert result.allocated_with == "rss"
+    assert check.ci_low_ppm <= ground <= check.ci_high_ppm
+    assert not check.ci_low_ppm <= default <= check.ci_high_ppm
+    assert check.convolution_ppm == pytest.approx(ground, rel=1e-9)
+    # the same through the tolerances and processes given apart
+    apart = verify(case, t, processes=allocation.processes, samples=200_000, seed=5)["gap"]
+    assert apart.failures == check.failures
+
+
+def test_a_chosen_process_must_exist_and_make_the_tolerance():
+    case = process_case()
+    with pytest.raises(CaseError, match=r"processes\.bore: no process 'honing'"):
+        verify(case, {"bore": 0.038}, processes={"bore": "honing"}, samples=1000)
+    with pytest.raises(CaseError, match=r"processes\.bore: process 'grinding' makes ±0.004 to ±0.04, not ±0.05"):
+        verify(case, processes={"bore": "grinding"}, samples=1000)
+    with pytest.raises(CaseError, match=r"processes\.pin: 'pin' has no process entries"):
+        verify(case, processes={"pin": "turning"}, samples=1000)
+    with pytest.raises(CaseError, match=r"processes\.nut: unknown contributor"):
+        verify(case, processes={"nut": "turning"}, samples=1000)
+
+
+def test_cli_verify_reads_the_chosen_process_from_the_allocation(tmp_path):
+    path = tmp_path / "bore.toml"
+    path.write_text(PROCESS_TOML)
+    alloc = tmp_path / "alloc.json"
+    done = CliRunner().invoke(cli, ["allocate", str(path), "--model", "rss", "--json"])
+    assert done.exit_code == 0, done.output
+    alloc.write_text(done.stdout)
+    t = json.loads(done.stdout)["results"][0]["tolerances"]
+    ground = gap_fallout_ppm(t["bore"], 1.67, t["pin"])
+    for args in (["--tolerances", alloc], ["--model", "rss"]):
+        out = run(path, *args, "--samples", "1e4", "--seed", "2", "--json")
+        assert out.exit_code in (0, 1), out.output
+        doc = json.loads(out.stdout)
+        assert doc["processes"] == {"bore": "grinding"}
+        assert doc["requirements"][0]["convolution_ppm"] == pytest.approx(ground, rel=1e-9)
+    human = run(path, "--model", "rss", "--samples", "1e4", "--seed", "2")
+    assert "bore by grinding" in human.output
+
+    # a plain map carries no process: the cheapest that holds the tolerance (grinding here)
+    plain = tmp_path / "plain.json"
+    plain.write_text(json.dumps(t))
+    doc = json.loads(run(path, "--tolerances", plain, "--samples", "1e4", "--json").stdout)
+    assert doc["processes"] == {"bore": "grinding"}
+
+    # a process the file names that cannot make the tolerance: one line naming the field
+    document = json.loads(alloc.read_text())
+    document["results"][0]["tolerances"]["bore"] = 0.1
+    edited = tmp_path / "edited.json"
+    edited.write_text(json.dumps(document))
+    out = run(path, "--tolerances", edited, "--samples", "1e4")
+    assert out.exit_code == 2
+    assert out.stderr.count("\n") == 1 and "Traceback" not in out.output
+    assert "edited.json: results[0].contributors[0].process: process 'grinding' makes" in out.stderr

@@ -56,11 +56,43 @@ def _check_tolerances(mapping, names, file: str, prefix: str) -> dict[str, float
     return out
 
 
-def read_tolerance_file(path, names, model: str | None = None) -> tuple[dict[str, float], str | None]:
+def _read_processes(rows, names, file: str, prefix: str) -> dict[str, tuple[str, str]]:
+    """The processes of an ``allocate --json`` result: name -> (process, field path).
+
+    ``rows`` is the result's ``contributors`` list (each with ``contributor`` and
+    ``process``); missing or empty processes are left out (verify then applies its rule).
+    Whether a process is one of the contributor's and holds its tolerance is checked by
+    the library (:meth:`allocator.model.Case.making_processes`).
+    """
+    if rows is None:
+        return {}
+    if not isinstance(rows, list):
+        raise CaseError("must be a list of contributor rows", file=file, field=prefix)
+    out = {}
+    for j, row in enumerate(rows):
+        field = f"{prefix}[{j}]"
+        if not isinstance(row, dict):
+            raise CaseError("must be an object", file=file, field=field)
+        process = row.get("process")
+        if process is None or process == "":
+            continue
+        name = row.get("contributor")
+        if name not in names:
+            raise CaseError(f"unknown contributor {json.dumps(name)}", file=file, field=f"{field}.contributor")
+        if not isinstance(process, str):
+            raise CaseError(f"must be a process name, got {json.dumps(process)}", file=file, field=f"{field}.process")
+        out[name] = (process, f"{field}.process")
+    return out
+
+
+def read_tolerance_file(
+    path, names, model: str | None = None
+) -> tuple[dict[str, float], str | None, dict[str, tuple[str, str]]]:
     """Tolerances from ``allocate --json`` output or a plain ``{name: t}`` JSON object.
 
-    Returns the tolerances and the model they belong to (None for a plain map). Raises
-    :class:`CaseError` naming the file and field for anything wrong.
+    Returns the tolerances, the model they belong to (None for a plain map) and the
+    processes the allocation chose (name -> (process, field path in the file); empty for
+    a plain map). Raises :class:`CaseError` naming the file and field for anything wrong.
     """
     file = str(path)
     try:
@@ -79,7 +111,7 @@ def read_tolerance_file(path, names, model: str | None = None) -> tuple[dict[str
                 "--model picks one of several allocation results, but this file is a plain tolerance map",
                 file=file,
             )
-        return _check_tolerances(document, names, file, ""), None
+        return _check_tolerances(document, names, file, ""), None, {}
     results = document["results"]
     if not isinstance(results, list) or not results:
         raise CaseError("must be a non-empty list of allocation results", file=file, field="results")
@@ -105,10 +137,12 @@ def read_tolerance_file(path, names, model: str | None = None) -> tuple[dict[str
             file=file,
             field=f"results[{index}].tolerances",
         )
-    return _check_tolerances(tolerances, names, file, f"results[{index}].tolerances"), models[index]
+    checked = _check_tolerances(tolerances, names, file, f"results[{index}].tolerances")
+    processes = _read_processes(result.get("contributors"), names, file, f"results[{index}].contributors")
+    return checked, models[index], processes
 
 
-def _allocated_tolerances(case, model: str) -> dict[str, float]:
+def _allocated_tolerances(case, model: str) -> tuple[dict[str, float], dict[str, str]]:
     try:
         from ..solve import allocate
     except ImportError:
@@ -119,7 +153,8 @@ def _allocated_tolerances(case, model: str) -> dict[str, float]:
     allocation = allocate(case, model=model)
     if not getattr(allocation, "success", True):
         raise InfeasibleError(f"allocation with model {model} failed: {getattr(allocation, 'message', '')}")
-    return {str(k): float(v) for k, v in dict(allocation.tolerances).items()}
+    tolerances = {str(k): float(v) for k, v in dict(allocation.tolerances).items()}
+    return tolerances, dict(allocation.processes)
 
 
 def _check_plot_path(plot, protect) -> None:
@@ -189,29 +224,53 @@ def verify(case_file, tolerance_file, models, samples, seed, plot, centred, as_j
     if plot is not None:
         _check_plot_path(plot, (case_file, tolerance_file))
     case = load_case_or_exit(case_file)
+    fields = {}  # contributor -> where its process came from in the tolerance file
+    processes = None
     if tolerance_file is not None:
-        tolerances, model = read_tolerance_file(tolerance_file, case.names, model)
+        tolerances, model, chosen = read_tolerance_file(tolerance_file, case.names, model)
+        processes = {name: process for name, (process, _) in chosen.items()}
+        fields = {name: field for name, (_, field) in chosen.items()}
         source = f"from {tolerance_file}" + (f" (model {model})" if model else "")
     elif model is not None:
-        tolerances = _allocated_tolerances(case, model)
+        tolerances, processes = _allocated_tolerances(case, model)
         source = f"allocated with model {model}"
     else:
         tolerances = None
         source = "current tolerances of the case"
 
-    result = run_verify(
-        case, tolerances, samples=samples, seed=seed, progress=True, shift_means=not centred, allocated_with=model
-    )
+    try:
+        result = run_verify(
+            case,
+            tolerances,
+            processes=processes,
+            samples=samples,
+            seed=seed,
+            progress=True,
+            shift_means=not centred,
+            allocated_with=model,
+        )
+    except CaseError as err:
+        name = (err.field or "").partition("processes.")[2]
+        if err.file is None and name in fields:  # a process from the file: name it there
+            raise CaseError(err.problem, file=str(tolerance_file), field=fields[name]) from None
+        raise
+    made_by = {
+        c.name: p
+        for c, p in zip(case.contributors, case.making_processes(list(result.tolerances.values()), processes))
+        if c.processes
+    }
 
     if plot is not None:
         data = render_verification_plot(result, Path(plot).suffix)
         atomic_write(plot, data, protect=(case_file, tolerance_file))
     if as_json:
-        echo_json({"title": case.title, "tolerance_source": source, "model": model, **result.to_dict()})
+        echo_json(
+            {"title": case.title, "tolerance_source": source, "model": model, "processes": made_by, **result.to_dict()}
+        )
     elif as_csv:
         write_csv(result.to_frame(), index_label="name")  # the CSV column keeps its name
     else:
-        _print_human(case, result, source, plot)
+        _print_human(case, result, source, plot, made_by)
     if result.status == "fail":  # the reason is in the output; stderr gets one short line
         failing = ", ".join(c.name for c in result.requirements if c.status == "fail")
         exit_failed(f"verification: fallout above target for {failing}")
@@ -222,7 +281,7 @@ def _ppm(value) -> str:
     return format_ppm(value, unit=False)
 
 
-def _print_human(case, result, source: str, plot) -> None:
+def _print_human(case, result, source: str, plot, made_by: dict) -> None:
     click.echo(f"{case.title}  [{units_title(case)}]")
     click.echo(
         f"Monte Carlo: {result.samples:,} assemblies, seed {result.seed} "
@@ -276,6 +335,10 @@ def _print_human(case, result, source: str, plot) -> None:
             notes.append(f"{c.name}: no convolution (nonlinear expression)")
         if c.undefined:
             notes.append(f"{c.name}: {c.undefined:,} assemblies with an undefined response, counted as failures")
+    if made_by:
+        parts = [f"{name} by {p}" if p else f"{name} by none of its processes (own cp)" for name, p in made_by.items()]
+        shown = ", ".join(parts[:6]) + (f" and {len(parts) - 6} more (--json lists all)" if len(parts) > 6 else "")
+        notes.append(f"simulated with the cp of the process that makes each part: {shown}")
     if result.assumption_note:
         notes.append(f"note: {result.assumption_note}")
     elif any(c.shift_side for c in result.requirements):

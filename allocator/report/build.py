@@ -236,7 +236,9 @@ def build_report(
         analysis = analyze(case)
     rec_alloc = allocations.get(recommended)
     with working_on("allocation"):
-        recommended_analysis = analyze(case, dict(rec_alloc.tolerances)) if rec_alloc is not None else None
+        recommended_analysis = (
+            analyze(case, dict(rec_alloc.tolerances), processes=rec_alloc.processes) if rec_alloc is not None else None
+        )
 
     with working_on("shadow-prices"):
         unrounded = _unrounded_allocations(case, allocations)
@@ -249,9 +251,8 @@ def build_report(
 
     with working_on("verification"):
         if rec_alloc is not None:
-            verification = verify(
-                case, dict(rec_alloc.tolerances), samples=samples, seed=seed, allocated_with=recommended
-            )
+            # the allocation carries its processes: each part simulated with its process's cp
+            verification = verify(case, rec_alloc, samples=samples, seed=seed, allocated_with=recommended)
             basis = "allocation"
         else:
             verification = verify(case, None, samples=samples, seed=seed)

@@ -851,26 +851,24 @@ _FIX_RTOL = HOLD_RTOL
 def cheapest_unit_cost(contributor, tolerance: float) -> float:
     """Cost of one part made to ± ``tolerance`` by its cheapest option that can [currency].
 
-    The options are those of :meth:`~allocator.model.Contributor.options_holding`. When
-    none can make it: 0 for a ``fixed`` contributor (taken as it is), else the first
+    The option is :meth:`~allocator.model.Contributor.cheapest_option_holding` (the same
+    rule that picks the process, and so the cp, when verify checks such a tolerance).
+    When none can make it: 0 for a ``fixed`` contributor (taken as it is), else the first
     option's curve at ``tolerance`` (NaN where the curve does not define it).
     """
-    makers = contributor.options_holding(tolerance)
-    options = contributor.options()
-    if not makers:
+    k = contributor.cheapest_option_holding(tolerance)
+    if k is None:
         if contributor.fixed:
             return 0.0
-        makers = (0,)
-    best = math.inf
-    for k in makers:
-        curve = options[k].cost
-        if curve is None:
-            return 0.0
-        try:
-            best = min(best, float(costs.cost_value(curve, float(tolerance))))
-        except ValueError:
-            continue
-    return best if math.isfinite(best) else math.nan
+        k = 0
+    curve = contributor.options()[k].cost
+    if curve is None:
+        return 0.0
+    try:
+        value = float(costs.cost_value(curve, float(tolerance)))
+    except ValueError:
+        return math.nan
+    return value if math.isfinite(value) else math.nan
 
 
 def check_fix_values(case: Case, fix) -> dict[str, float]:
