@@ -17,7 +17,6 @@ can say, in plain words, what is wrong and what was found. See docs/case-file.md
 from __future__ import annotations
 
 import csv
-import difflib
 import hashlib
 import io
 import keyword
@@ -28,7 +27,7 @@ from pathlib import Path
 
 from . import chain as chain_module
 from .chain import ExpressionError, compile_expression
-from .errors import CaseError
+from .errors import CaseError, did_you_mean
 from .model import (
     CURVES,
     DEFAULT_FALLOUT_PPM,
@@ -118,18 +117,6 @@ def _show(value) -> str:
     return f"a {type(value).__name__}"  # TOML dates and times
 
 
-def _close(word: str, options) -> str | None:
-    """The option closest to a misspelt ``word``, if any is close."""
-    close = difflib.get_close_matches(str(word), list(options), n=1, cutoff=0.6)
-    return close[0] if close else None
-
-
-def _hint(word: str, options) -> str:
-    """``" (did you mean 'x'?)"`` when a close option exists, else ``""``."""
-    close = _close(word, options)
-    return f" (did you mean '{close}'?)" if close else ""
-
-
 def _number(value) -> float:
     """A finite float from a TOML int or float (bools are not numbers)."""
     if isinstance(value, bool):
@@ -209,8 +196,7 @@ def _choice(value, options) -> str:
     if not isinstance(value, str):
         raise _Problem(f"must be one of {', '.join(options)} (got {_show(value)})")
     if value not in options:
-        close = _close(value, options)
-        hint = f"; did you mean '{close}'?" if close else ""
+        hint = did_you_mean(value, options, clause=True)
         raise _Problem(f"must be one of {', '.join(options)} (got {value!r}{hint})")
     return value
 
@@ -275,7 +261,7 @@ class _Table:
     def check_keys(self, allowed) -> None:
         for key in self.data:
             if key not in allowed:
-                self.fail(None, f"unknown key {key!r}{_hint(key, allowed)}")
+                self.fail(None, f"unknown key {key!r}{did_you_mean(key, allowed)}")
 
     def get(self, key: str, convert, *, required: str | None = None, default=None):
         """``convert(value)`` with its :class:`_Problem` turned into a CaseError.
@@ -686,7 +672,7 @@ def _read_chain(item: _Table, names) -> dict[str, float]:
     chain = {}
     for name, value in table.data.items():
         if name not in names:
-            table.fail(name, f"unknown contributor {name!r}{_hint(name, names)}")
+            table.fail(name, f"unknown contributor {name!r}{did_you_mean(name, names)}")
         try:
             coeff = _number(value)
         except _Problem as problem:
@@ -765,8 +751,7 @@ def _read_allocation(table: _Table | None) -> AllocationSettings:
 def _rounding(value):
     if isinstance(value, str):
         if value != "iso286":
-            close = _close(value, ["iso286"])
-            hint = f"; did you mean '{close}'?" if close else ""
+            hint = did_you_mean(value, ["iso286"], clause=True)
             raise _Problem(f"must be a positive step or 'iso286' (got {value!r}{hint})")
         return value
     try:
@@ -792,7 +777,7 @@ def _read_frontier(table: _Table | None, requirements) -> FrontierSettings:
     by_name = {r.name: r for r in requirements}
     name = table.get("requirement", lambda v: _text(v, nonempty=True))
     if name is not None and name not in by_name:
-        table.fail("requirement", f"unknown requirement {name!r}{_hint(name, by_name)}")
+        table.fail("requirement", f"unknown requirement {name!r}{did_you_mean(name, by_name)}")
     vary = table.get("vary", lambda v: _choice(v, FRONTIER_VARY), default="upper")
     if name is not None and vary in ("lower", "upper") and getattr(by_name[name], vary) is None:
         table.fail("vary", f"requirement {name!r} has no {vary} limit to vary")

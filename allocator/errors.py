@@ -18,18 +18,46 @@ import difflib
 from typing import Iterable
 
 
-def did_you_mean(name: object, options: Iterable[str]) -> str:
-    """``" (did you mean 'x'?)"`` for the closest of ``options``, or ``""``.
+def closest(name: object, options: Iterable[str]) -> str | None:
+    """The one of ``options`` closest to a misspelt ``name``, or None if none is close.
+
+    The one similarity rule of every "did you mean" hint (``difflib`` ratio at least 0.6).
+
+    Examples
+    --------
+    >>> closest("housng", ["housing", "shim"]), closest("zzz", ["housing"])
+    ('housing', None)
+    """
+    close = difflib.get_close_matches(str(name), list(options), n=1, cutoff=0.6)
+    return close[0] if close else None
+
+
+def did_you_mean(name: object, options: Iterable[str], *, clause: bool = False) -> str:
+    """The hint for a misspelt ``name``: ``" (did you mean 'x'?)"``, or ``""`` if nothing is close.
+
+    Parameters
+    ----------
+    name : object
+        What was given.
+    options : iterable of str
+        The valid names.
+    clause : bool
+        ``"; did you mean 'x'?"`` instead, for a hint inside an existing parenthesis
+        such as ``(got 'wcx'; did you mean 'wc'?)``.
 
     Examples
     --------
     >>> did_you_mean("housng", ["housing", "shim"])
     " (did you mean 'housing'?)"
+    >>> did_you_mean("wcx", ["wc", "rss"], clause=True)
+    "; did you mean 'wc'?"
     >>> did_you_mean("zzz", ["housing"])
     ''
     """
-    close = difflib.get_close_matches(str(name), list(options), n=1, cutoff=0.6)
-    return f" (did you mean '{close[0]}'?)" if close else ""
+    close = closest(name, options)
+    if close is None:
+        return ""
+    return f"; did you mean '{close}'?" if clause else f" (did you mean '{close}'?)"
 
 
 def unknown_names(what: str, given: Iterable[object], known: Iterable[str]) -> str:

@@ -2,14 +2,13 @@
 
 from __future__ import annotations
 
-import difflib
 import json
 import math
 from pathlib import Path
 
 import click
 
-from ..errors import CaseError, InfeasibleError, UsageError
+from ..errors import CaseError, InfeasibleError, UsageError, did_you_mean
 from ..ppm import format_ppm
 from .common import (
     CASE_ARGUMENT,
@@ -49,9 +48,7 @@ def _check_tolerances(mapping, names, file: str, prefix: str) -> dict[str, float
     for name, value in mapping.items():
         field = f"{prefix}.{name}" if prefix else name
         if name not in names:
-            close = difflib.get_close_matches(name, names, n=1)
-            hint = f" (did you mean '{close[0]}'?)" if close else ""
-            raise CaseError(f"unknown contributor{hint}", file=file, field=field)
+            raise CaseError(f"unknown contributor{did_you_mean(name, names)}", file=file, field=field)
         out[name] = _check_value(value, file, field)
     return out
 

@@ -18,7 +18,6 @@ Nothing here imports cvxpy or pandas.
 
 from __future__ import annotations
 
-import difflib
 import math
 from dataclasses import dataclass, replace
 from typing import Mapping
@@ -28,7 +27,7 @@ from scipy import special
 
 from .. import costs, stack
 from ..chain import linearise
-from ..errors import CaseError, UsageError
+from ..errors import CaseError, UsageError, did_you_mean
 from ..model import HOLD_RTOL, MODELS, Case, CostCurve
 from .result import Allocation, RequirementResult
 
@@ -59,11 +58,6 @@ BOUND_RTOL = 1e-7
 
 class NeedsDiscrete(UsageError):
     """A free contributor needs a choice of process or of listed tolerances."""
-
-
-def _close(name: str, options) -> str:
-    match = difflib.get_close_matches(name, list(options), n=1)
-    return f" (did you mean '{match[0]}'?)" if match else ""
 
 
 def _g(x: float) -> str:
@@ -520,7 +514,7 @@ class AllocationProblem:
         known = {r.name for r in self.requirements}
         for name, change in overrides.items():
             if name not in known:
-                raise UsageError(f"overrides: unknown requirement {name!r}{_close(name, known)}")
+                raise UsageError(f"overrides: unknown requirement {name!r}{did_you_mean(name, known)}")
             bad = set(change) - {"lower", "upper", "fallout_ppm"}
             if bad:
                 raise UsageError(
@@ -884,7 +878,7 @@ def check_fix_values(case: Case, fix) -> dict[str, float]:
     out = {}
     for name, value in (fix or {}).items():
         if name not in case.names:
-            raise UsageError(f"fix: unknown contributor '{name}'{_close(name, case.names)}")
+            raise UsageError(f"fix: unknown contributor '{name}'{did_you_mean(name, case.names)}")
         try:
             value = float(value)
         except (TypeError, ValueError):
@@ -926,5 +920,5 @@ def prepare(case: Case, model: str, fix: Mapping[str, float] | None = None) -> A
         A ``table`` cost that is not convex and decreasing (named, with the reason).
     """
     if model not in MODELS:
-        raise UsageError(f"unknown model {model!r}{_close(model, MODELS)} (choose from {', '.join(MODELS)})")
+        raise UsageError(f"unknown model {model!r}{did_you_mean(model, MODELS)} (choose from {', '.join(MODELS)})")
     return AllocationProblem(case, model, check_fix_values(case, fix), check=True)
