@@ -12,6 +12,7 @@ from . import stack
 from .chain import linearise
 from .errors import UsageError, unknown_names
 from .model import per_unit
+from .ppm import fraction_to_ppm
 
 if TYPE_CHECKING:
     from .model import Case
@@ -261,12 +262,12 @@ def analyze(
                 worst_case_min=lo,
                 worst_case_max=hi,
                 sigma=sigma,
-                fallout_below_ppm=below * 1e6,
-                fallout_above_ppm=above * 1e6,
+                fallout_below_ppm=fraction_to_ppm(below),
+                fallout_above_ppm=fraction_to_ppm(above),
                 target_ppm=req.fallout_ppm,
                 mean_shift=delta,
-                mean_shift_below_ppm=ms_below * 1e6,
-                mean_shift_above_ppm=ms_above * 1e6,
+                mean_shift_below_ppm=fraction_to_ppm(ms_below),
+                mean_shift_above_ppm=fraction_to_ppm(ms_above),
                 contributions=contributions,
                 worst_case_below=wc_below,
                 worst_case_above=wc_above,

@@ -28,6 +28,7 @@ from pathlib import Path
 from . import chain as chain_module
 from .chain import ExpressionError, compile_expression
 from .errors import CaseError, did_you_mean
+from .ppm import PER_MILLION
 from .model import (
     CURVES,
     DEFAULT_FALLOUT_PPM,
@@ -59,7 +60,6 @@ MAX_COUNT = 1_000_000  # instances of one contributor per assembly
 MAX_TABLE_ROWS = 100_000  # points in one cost table (inline or CSV)
 MAX_FRONTIER_POINTS = 2000
 MAX_LABEL_CHARS = 24  # a units label is printed in table headers: short, one line
-PPM = 1_000_000.0
 
 # names an expression reserves for its functions and constant
 RESERVED_NAMES = frozenset(
@@ -714,7 +714,7 @@ def _read_requirement(item: _Table, seen: dict, names) -> Requirement:
         item.fail(None, "needs lower, upper or both")
     if lower is not None and upper is not None and not lower < upper:
         item.fail("upper", f"must be greater than lower (got lower {lower!r}, upper {upper!r})")
-    fallout_ppm = item.get("fallout_ppm", lambda v: _bounded(v, gt=0, lt=PPM), default=DEFAULT_FALLOUT_PPM)
+    fallout_ppm = item.get("fallout_ppm", lambda v: _bounded(v, gt=0, lt=PER_MILLION), default=DEFAULT_FALLOUT_PPM)
     units = item.get("units", _units_label)
     return Requirement(
         name=name, chain=chain, expression=expression, lower=lower, upper=upper, fallout_ppm=fallout_ppm,
@@ -785,7 +785,7 @@ def _read_frontier(table: _Table | None, requirements) -> FrontierSettings:
     if span is not None:
         if not span[0] < span[1]:
             table.fail("range", f"must be [from, to] with from < to (got {_fmt_pair(span)})")
-        if vary == "fallout_ppm" and not (0 < span[0] and span[1] < PPM):
+        if vary == "fallout_ppm" and not (0 < span[0] and span[1] < PER_MILLION):
             table.fail("range", f"fallout_ppm values must be > 0 and < 1000000 (got {_fmt_pair(span)})")
     points = table.get(
         "points", lambda v: _integer(v, minimum=2, maximum=MAX_FRONTIER_POINTS), default=25

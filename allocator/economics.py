@@ -34,6 +34,7 @@ import numpy as np
 from . import status as _status
 from .errors import UsageError
 from .model import Case
+from .ppm import PER_MILLION, ppm_to_fraction
 
 __all__ = [
     "scrap_cost_per_assembly",
@@ -50,7 +51,6 @@ DEFAULT_BOUNDS = (1e-3, 1e5)  # ppm: 1 in a billion to 10 %
 SCAN_PER_DECADE = 6  # where the whole scan is one batched dual solve
 SCAN_PER_DECADE_SLOW = 3  # where every scan point is a solver call of its own
 STATISTICAL = ("rss", "mean-shift")
-PPM = 1e-6
 
 
 def scrap_cost_per_assembly(fallout_ppm, scrap_cost):
@@ -79,7 +79,7 @@ def scrap_cost_per_assembly(fallout_ppm, scrap_cost):
     >>> print(round(scrap_cost_per_assembly(100.0, 55.0), 6))  # 55 · 100 · 1e-6
     0.0055
     """
-    return np.multiply(scrap_cost, np.multiply(fallout_ppm, PPM))
+    return np.multiply(scrap_cost, ppm_to_fraction(np.asarray(fallout_ppm, dtype=float)))
 
 
 def cost_per_assembly(manufacturing, fallout_ppm, scrap_cost):
@@ -451,7 +451,7 @@ def fallout_economics(
         raise UsageError(f"scrap_cost must be a finite number >= 0 (got {scrap:g})")
     volume = case.economics.volume if volume is None else volume
     lo, hi = (float(b) for b in bounds)
-    if not (0 < lo < hi < 1e6):
+    if not (0 < lo < hi < PER_MILLION):
         raise UsageError(f"bounds must satisfy 0 < from < to < 1000000 ppm (got {lo:g}, {hi:g})")
 
     notes = []
@@ -507,7 +507,7 @@ def fallout_economics(
 
 def _optimise(sweep, grid, scrap, volume, current_ppm, bounds) -> FalloutOptimum:
     """One model: scan, refine, check stationarity, compare with the current target."""
-    expected = -scrap * PPM
+    expected = -scrap_cost_per_assembly(1.0, scrap)  # minus the scrap cost of one more ppm
     cache: dict[float, object] = {}
 
     def allocation(p: float):

@@ -289,6 +289,8 @@ def economics_figure(economics):
     """
     import numpy as np
 
+    from .economics import scrap_cost_per_assembly
+
     fig = new_figure()
     ax = fig.subplots()
     money = economics.currency
@@ -297,7 +299,7 @@ def economics_figure(economics):
             continue
         ppm = np.asarray(result.curve_ppm, dtype=float)
         manufacturing = np.asarray(result.curve_manufacturing, dtype=float)
-        scrap = economics.scrap_cost * ppm * 1e-6
+        scrap = scrap_cost_per_assembly(ppm, economics.scrap_cost)
         style = series_style(result.model)
         marker, ink = style["marker"], style["color"]
         name = MODEL_LABELS.get(result.model, result.model)

@@ -1,6 +1,13 @@
-"""Fallout as people read it: the one way tables and reports print parts per million.
+"""Parts per million: the one conversion between a fraction and ppm, and the one way
+tables and reports print a fallout.
 
-Plain decimal notation, never an exponent: from 0.01 ppm up in ppm, below that in parts
+Conversion: a fraction ``p`` (0 .. 1) is ``p · PER_MILLION`` ppm
+(:func:`fraction_to_ppm`), and ``n`` ppm is the fraction ``n / PER_MILLION``
+(:func:`ppm_to_fraction`). Every fallout the tool stores or prints is in ppm; the normal
+tail and Monte Carlo counts are fractions. A fallout target is a number of ppm strictly
+between 0 and :data:`PER_MILLION` (all assemblies).
+
+Printing: plain decimal notation, never an exponent: from 0.01 ppm up in ppm, below that in parts
 per billion (1 ppm = 1000 ppb), and below 0.001 ppb (one assembly in 10¹²) as
 ``< 0.001 ppb``: a normal tail that far out says nothing a process can be held to. The
 JSON and CSV outputs keep the raw floats. See docs/methods.md, *How fallout is printed*.
@@ -10,8 +17,51 @@ from __future__ import annotations
 
 import math
 
+PER_MILLION = 1_000_000.0  # [ppm] in the whole: a fraction 1 is this many ppm
 PPB_BELOW = 0.01  # [ppm] smaller values are printed in ppb
 FLOOR_PPB = 0.001  # [ppb] smaller values are printed as "< 0.001 ppb"
+
+
+def fraction_to_ppm(fraction):
+    """A fraction [-] (0 .. 1) as parts per million [ppm].
+
+    Parameters
+    ----------
+    fraction : float or numpy.ndarray
+        Share of assemblies [-].
+
+    Returns
+    -------
+    float or numpy.ndarray
+        The same share [ppm].
+
+    Examples
+    --------
+    >>> fraction_to_ppm(0.0027)
+    2700.0
+    """
+    return fraction * 1e6
+
+
+def ppm_to_fraction(ppm):
+    """Parts per million [ppm] as a fraction [-] (0 .. 1).
+
+    Parameters
+    ----------
+    ppm : float or numpy.ndarray
+        Share of assemblies [ppm].
+
+    Returns
+    -------
+    float or numpy.ndarray
+        The same share [-].
+
+    Examples
+    --------
+    >>> round(ppm_to_fraction(2700.0), 12)
+    0.0027
+    """
+    return ppm * 1e-6
 
 
 def _plain(x: float, digits: int) -> str:

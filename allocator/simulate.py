@@ -42,6 +42,7 @@ from . import stack
 from .chain import compile_expression, linearise, nominal_values
 from .convolve import linear_sum_distribution
 from .errors import CaseError
+from .ppm import fraction_to_ppm
 
 __all__ = [
     "BLOCK_SIZE",
@@ -453,8 +454,8 @@ def _plan(case, requirement, t: np.ndarray, sigma_factors: np.ndarray, shift_mea
         side=side,
         shift=shift,
         shifted_mean=lin.nominal + side * delta,
-        rss_ppm=(rss_below + rss_above) * 1e6,
-        mean_shift_ppm=(shift_below + shift_above) * 1e6 if delta > 0 else None,
+        rss_ppm=fraction_to_ppm(rss_below + rss_above),
+        mean_shift_ppm=fraction_to_ppm(shift_below + shift_above) if delta > 0 else None,
         lower=-math.inf if lower is None else float(lower),
         upper=math.inf if upper is None else float(upper),
     )
@@ -728,8 +729,8 @@ def verify(
     checks = []
     for j, plan in enumerate(order):
         req = plan.requirement
-        fallout_ppm = failures[j] / samples * 1e6
-        lo_ppm, hi_ppm = float(ci_low[j]) * 1e6, float(ci_high[j]) * 1e6
+        fallout_ppm = fraction_to_ppm(failures[j] / samples)
+        lo_ppm, hi_ppm = fraction_to_ppm(float(ci_low[j])), fraction_to_ppm(float(ci_high[j]))
         predicted = plan.mean_shift_ppm if plan.mean_shift_ppm is not None else plan.rss_ppm
         if plan.linear:
             dist = linear_sum_distribution(
@@ -741,7 +742,7 @@ def verify(
                 mean=plan.shifted_mean,
             )
             conv_below, conv_above = dist.fallout(req.lower, req.upper)
-            convolution_ppm = (conv_below + conv_above) * 1e6
+            convolution_ppm = fraction_to_ppm(conv_below + conv_above)
             note = "exact distribution of the linear chain by numerical convolution"
         else:
             convolution_ppm = None

@@ -59,3 +59,46 @@ def test_table_cells_carry_a_unit_only_when_it_differs_from_the_header():
     assert format_ppm(None) == "-" and format_ppm(None, missing="—") == "—"
     assert format_ppm(math.nan) == "-"
     assert format_ppm(math.inf) == "inf ppm"
+
+
+def test_conversion_is_parts_per_million_both_ways():
+    # definition of ppm: one part in 10⁶; the two-sided normal tail beyond ±3σ is 2700 ppm
+    # to 2 significant figures (scipy.stats.norm, an independent reference)
+    from scipy import stats
+
+    from allocator.ppm import PER_MILLION, fraction_to_ppm, ppm_to_fraction
+
+    assert PER_MILLION == 10**6
+    assert fraction_to_ppm(1 / 10**6) == pytest.approx(1.0, rel=1e-15)
+    assert ppm_to_fraction(1.0) == pytest.approx(1 / 10**6, rel=1e-15)
+    tail = 2 * stats.norm.sf(3.0)
+    assert round(fraction_to_ppm(tail), -2) == 2700.0
+    assert ppm_to_fraction(fraction_to_ppm(tail)) == pytest.approx(tail, rel=1e-15)
+
+
+def _ppm_conversions_outside_ppm_module() -> list[str]:
+    """Places in the package that convert ppm by a bare 1e6 / 1e-6 factor."""
+    import ast
+    from pathlib import Path
+
+    package = Path(__file__).resolve().parent.parent / "allocator"
+    found = []
+    for path in sorted(package.rglob("*.py")):
+        if path.name == "ppm.py":
+            continue
+        for node in ast.walk(ast.parse(path.read_text(encoding="utf-8"))):
+            if not (isinstance(node, ast.BinOp) and isinstance(node.op, (ast.Mult, ast.Div))):
+                continue
+            sides = (node.left, node.right)
+            numbers = [s.value for s in sides if isinstance(s, ast.Constant) and isinstance(s.value, (int, float))]
+            text = ast.unparse(node).lower()
+            # 1e6 only ever converts ppm; 1e-6 is also a relative tolerance, so it counts
+            # only beside a fallout or a ppm quantity
+            if 1e6 in numbers or (1e-6 in numbers and ("ppm" in text or "fallout" in text)):
+                found.append(f"{path.relative_to(package.parent)}:{node.lineno}: {ast.unparse(node)}")
+    return found
+
+
+def test_ppm_conversions_use_the_one_conversion():
+    # one name per concept: a fraction becomes ppm through allocator.ppm, nowhere else
+    assert _ppm_conversions_outside_ppm_module() == []

@@ -29,6 +29,7 @@ from .. import costs, stack
 from ..chain import linearise
 from ..errors import CaseError, UsageError, did_you_mean
 from ..model import HOLD_RTOL, MODELS, Case, CostCurve
+from ..ppm import PER_MILLION, fraction_to_ppm, ppm_to_fraction
 from .result import Allocation, RequirementResult
 
 __all__ = [
@@ -213,7 +214,7 @@ class Limits:
 
     @property
     def fallout(self) -> float:
-        return self.fallout_ppm * 1e-6
+        return ppm_to_fraction(self.fallout_ppm)
 
     @property
     def two_sided(self) -> bool:
@@ -529,7 +530,7 @@ class AllocationProblem:
                 change.get("upper", r.upper),
                 float(change.get("fallout_ppm", r.fallout_ppm)),
             )
-            if not 0 < lim.fallout_ppm < 1e6:
+            if not 0 < lim.fallout_ppm < PER_MILLION:
                 raise UsageError(f"overrides: {r.name}: fallout_ppm must be in (0, 1e6)")
             if lim.two_sided and lim.lower >= lim.upper:
                 raise UsageError(f"overrides: {r.name}: lower must be below upper")
@@ -620,7 +621,7 @@ class AllocationProblem:
                 label = "worst case"
             else:
                 what = (
-                    f"fallout at tightest tolerances is {_g(s['fallout'] * 1e6)} ppm > target "
+                    f"fallout at tightest tolerances is {_g(fraction_to_ppm(s['fallout']))} ppm > target "
                     f"{_g(lim.fallout_ppm)} ppm"
                 )
                 if self.model == "mean-shift" and s["delta"] > 0:
@@ -747,7 +748,7 @@ class AllocationProblem:
                     worst_case_max=req.nominal + s["half_width"],
                     sigma=s["sigma"],
                     mean_shift=s["delta"],
-                    fallout_ppm=s["fallout"] * 1e6,
+                    fallout_ppm=fraction_to_ppm(s["fallout"]),
                     target_ppm=None if self.model == "worst-case" else lim.fallout_ppm,
                     linear=req.linear,
                     **prices,
@@ -826,7 +827,7 @@ def shadow_prices(model: str, req: RequirementData, lim: Limits, stats: dict, y:
             out["shadow_lower"] = -y * slopes["lower"]
         if lim.upper is not None:
             out["shadow_upper"] = -y * slopes["upper"]
-        out["shadow_ppm"] = -y * slopes["fallout"] * 1e-6
+        out["shadow_ppm"] = ppm_to_fraction(-y * slopes["fallout"])  # per fraction -> per ppm
     low, up = abs(out["shadow_lower"] or 0.0), abs(out["shadow_upper"] or 0.0)
     big = max(low, up)
     sides = [s for s, v in (("lower", low), ("upper", up)) if big > 0 and v >= 1e-3 * big]
