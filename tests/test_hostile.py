@@ -700,6 +700,31 @@ def test_no_command_overwrites_its_case(tmp_path, monkeypatch, args, how):
     assert files_in(tmp_path) == before
 
 
+def test_one_output_path_check_for_every_writer(tmp_path):
+    """The library's writers (atomic_write, write_report) and the commands share one check:
+    an input reached by another spelling (``sub/..``, a symlink) and a missing folder are
+    refused before anything is written, with the path as given."""
+    from allocator.errors import UsageError
+    from allocator.files import atomic_write, check_output_path
+
+    case = tmp_path / "case.toml"
+    case.write_bytes(GEARBOX.read_bytes())
+    (tmp_path / "sub").mkdir()
+    (tmp_path / "link.toml").symlink_to(case)
+    for spelling in (str(tmp_path / "sub" / ".." / "case.toml"), str(tmp_path / "link.toml")):
+        with pytest.raises(UsageError, match=r"^.*: refusing to overwrite the input case file$") as err:
+            check_output_path(spelling, protect=(None, case), input_name="input case file")
+        assert str(err.value).startswith(spelling + ": ")
+        with pytest.raises(UsageError, match="refusing to overwrite the input file$"):
+            atomic_write(spelling, "x", protect=(case,))
+    missing = tmp_path / "nowhere" / "out.svg"
+    with pytest.raises(UsageError, match=f"folder {re.escape(str(missing.parent))} does not exist$"):
+        check_output_path(missing)
+    assert check_output_path(tmp_path / "out.svg", protect=(case,)) == tmp_path / "out.svg"
+    assert case.read_bytes() == GEARBOX.read_bytes()
+    assert files_in(tmp_path) == ["case.toml", "link.toml", "sub"]
+
+
 def test_a_hard_link_to_the_case_is_replaced_not_written_through(tmp_path):
     """A second name for the case's inode: the rename replaces that name; the case's own
     bytes are untouched."""

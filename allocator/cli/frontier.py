@@ -33,16 +33,13 @@ LABELS = {"worst-case": "worst case", "rss": "rss", "mean-shift": "mean shift"}
 
 def _check_plot_paths(case_file, *paths) -> None:
     """Bad plot paths are usage errors, found before any work is done."""
+    from ..files import check_output_path
     from ..plots import format_for
 
     given = [p for p in paths if p]
     for p in given:
         format_for(p)
-        target = Path(p)
-        if target.resolve() == Path(case_file).resolve():
-            raise UsageError(f"{p}: refusing to overwrite the input case file")
-        if not target.parent.exists():
-            raise UsageError(f"{p}: folder {target.parent} does not exist")
+        check_output_path(p, protect=(case_file,), input_name="input case file")
     if len(given) == 2 and Path(given[0]).resolve() == Path(given[1]).resolve():
         raise UsageError(f"{given[0]}: --plot and --economics-plot name the same file")
 

@@ -9,6 +9,7 @@ from pathlib import Path
 import click
 
 from ..errors import CaseError, InfeasibleError, UsageError, did_you_mean
+from ..files import check_output_path
 from ..ppm import format_ppm
 from .common import (
     CASE_ARGUMENT,
@@ -158,11 +159,7 @@ def _check_plot_path(plot, protect) -> None:
     target = Path(plot)
     if target.suffix.lower() not in PLOT_FORMATS:
         raise UsageError(f"{plot}: --plot writes .png or .svg, not '{target.suffix or 'no extension'}'")
-    for p in protect:
-        if p is not None and target.resolve() == Path(p).resolve():
-            raise UsageError(f"{plot}: refusing to overwrite the input file")
-    if not target.parent.exists():
-        raise UsageError(f"{plot}: folder {target.parent} does not exist")
+    check_output_path(plot, protect=protect)
 
 
 def _verdict(check) -> str:

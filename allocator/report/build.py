@@ -289,13 +289,9 @@ def write_report(case, path, models=None, **kwargs) -> Report:
     Refuses to overwrite the case file itself (:class:`~allocator.errors.UsageError`),
     checked before any work is done. Returns the :class:`Report`.
     """
-    from ..files import atomic_write
+    from ..files import atomic_write, check_output_path
 
-    target = Path(path)
-    if case.path is not None and target.resolve() == Path(case.path).resolve():
-        raise UsageError(f"{target}: refusing to overwrite the input case file")
-    if not target.parent.exists():
-        raise UsageError(f"{target}: folder {target.parent} does not exist")
+    target = check_output_path(Path(path), protect=(case.path,), input_name="input case file")
     report = build_report(case, models, **kwargs)
     atomic_write(target, report.to_html(), protect=(case.path,))
     return report
