@@ -21,6 +21,8 @@ from typing import Literal, Mapping
 
 DISTRIBUTIONS = ("normal", "uniform", "triangular")
 MODELS = ("worst-case", "rss", "mean-shift")
+# how plots, reports and tables name each model in prose
+MODEL_LABELS = {"worst-case": "worst case", "rss": "RSS", "mean-shift": "mean shift"}
 CURVES = ("reciprocal", "reciprocal-power", "exponential", "table")
 DEFAULT_FALLOUT_PPM = 2700.0
 DEFAULT_MODELS = ("worst-case", "rss")

@@ -24,6 +24,7 @@ from pathlib import Path
 
 from .errors import UsageError
 from .files import atomic_write
+from .model import MODEL_LABELS
 
 __all__ = [
     "FORMATS",
@@ -45,7 +46,6 @@ __all__ = [
 
 FORMATS = {".png": "png", ".svg": "svg"}
 
-MODEL_LABELS = {"worst-case": "worst case", "rss": "RSS", "mean-shift": "mean shift"}
 
 # Greys from black to mid grey; every one stays visible on white when printed.
 _INK = ("0.0", "0.35", "0.55", "0.2", "0.45")

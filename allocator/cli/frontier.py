@@ -8,6 +8,7 @@ from pathlib import Path
 import click
 
 from ..errors import UsageError
+from ..model import MODEL_LABELS
 from .common import (
     CASE_ARGUMENT,
     csv_option,
@@ -28,7 +29,7 @@ SOURCES = {
     "automatic": "chosen automatically",
     "values": "as given",
 }
-LABELS = {"worst-case": "worst case", "rss": "rss", "mean-shift": "mean shift"}
+LABELS = {model: label.lower() for model, label in MODEL_LABELS.items()}  # table text is lower case
 
 
 def _check_plot_paths(case_file, *paths) -> None:

@@ -19,10 +19,8 @@ import html
 import math
 from dataclasses import dataclass
 
+from ..model import MODEL_LABELS
 from ..ppm import format_ppm
-
-# how a stack model's name reads in the report (and in the report's problem lines)
-MODEL_LABELS = {"worst-case": "worst case", "rss": "RSS", "mean-shift": "mean shift"}
 
 
 # --------------------------------------------------------------------------- numbers as text
