@@ -845,38 +845,6 @@ def _assumption_note(case, checks, allocated_with: str | None, shift_means: bool
 # --------------------------------------------------------------------------- plotting
 
 
-def _figure(result: Verification):
-    # a bare Figure renders through the Agg/SVG canvases without touching pyplot's backend
-    from matplotlib.figure import Figure
-    from scipy import stats
-
-    checks = result.requirements
-    fig = Figure(figsize=(7.0, 3.2 * len(checks)), layout="constrained")
-    axes = fig.subplots(len(checks), 1, squeeze=False)[:, 0]
-    for ax, c in zip(axes, checks):
-        edges = c.histogram_edges
-        width = edges[1] - edges[0]
-        density = c.histogram_counts / (c.samples * width)
-        ax.stairs(density, edges, fill=True, color="0.75", label=f"Monte Carlo ({c.samples:,} assemblies)")
-        lo_x, hi_x = edges[0], edges[-1]
-        for limit, label in ((c.lower, "limits"), (c.upper, "limits" if c.lower is None else "_nolegend_")):
-            if limit is not None:
-                ax.axvline(limit, color="black", linestyle="--", linewidth=1.2, label=label)
-                lo_x, hi_x = min(lo_x, limit), max(hi_x, limit)
-        if c.sigma > 0:
-            xs = np.linspace(lo_x, hi_x, 600)
-            label = "RSS normal" + (" at the worst mean shift" if c.shift_side else "")
-            ax.plot(xs, stats.norm.pdf(xs, c.shifted_mean, c.sigma), color="black", linewidth=1.2, label=label)
-        pad = 0.03 * (hi_x - lo_x)
-        ax.set_xlim(lo_x - pad, hi_x + pad)
-        ax.set_title(f"{c.name}: {c.fallout_ppm:.4g} ppm outside (target {c.target_ppm:g} ppm)")
-        # a units label is text from the case: never mathtext
-        ax.set_xlabel(f"{c.name} [{c.units}]" if c.units else f"{c.name} (response)", parse_math=False)
-        ax.set_ylabel("density")
-        ax.legend(fontsize="small", loc="upper right")
-    return fig
-
-
 def render_verification_plot(result: Verification, fmt: str = "png") -> bytes:
     """The histogram figure of ``result`` as PNG or SVG bytes (matplotlib, Agg)."""
     import io
@@ -884,8 +852,10 @@ def render_verification_plot(result: Verification, fmt: str = "png") -> bytes:
     fmt = fmt.lower().lstrip(".")
     if fmt not in ("png", "svg"):
         raise ValueError(f"plot format must be png or svg, got {fmt!r}")
+    from .plots import verification_figure
+
     buffer = io.BytesIO()
-    _figure(result).savefig(buffer, format=fmt, dpi=120)
+    verification_figure(result).savefig(buffer, format=fmt, dpi=120)
     return buffer.getvalue()
 
 

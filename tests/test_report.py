@@ -631,3 +631,23 @@ def test_verification_and_analysis_of_the_recommendation_use_the_processes_it_ch
     assert report.verification["gap"].predicted_ppm == pytest.approx(ground, rel=1e-9)
     assert report.recommended_analysis.requirements[0].fallout_ppm == pytest.approx(ground, rel=1e-9)
     assert _ppm_cell(report.verification["gap"].convolution_ppm) in section_html(report.to_html(), "verification")
+
+
+def test_the_contributions_figure_is_drawn_by_the_plotting_module():
+    # one module draws every figure (allocator.plots); the report only renders it as SVG.
+    # Each bar is a contributor's share of σ²: the shares of one requirement add up to 100 %.
+    from allocator.plots import contributions_figure
+
+    case = load_case(CASES / "gearbox_end_play.toml")
+    current = analyze(case)
+    allocated = analyze(case, dict(allocate(case, model="rss").tolerances))
+    figure = contributions_figure(current, allocated, allocation_label="rss allocation")
+    assert len(figure.axes) == len(current.requirements)
+    for ax, now, then in zip(figure.axes, current.requirements, allocated.requirements):
+        solid = [p.get_width() for p in ax.patches[: len(now.contributions)]]
+        hatched = [p.get_width() for p in ax.patches[len(now.contributions):]]
+        assert solid == pytest.approx([100.0 * c.variance_share for c in now.contributions], rel=1e-12)
+        assert hatched == pytest.approx([100.0 * c.variance_share for c in then.contributions], rel=1e-12)
+        if now.sigma > 0:
+            assert sum(solid) == pytest.approx(100.0, rel=1e-9) and sum(hatched) == pytest.approx(100.0, rel=1e-9)
+        assert [t.get_text() for t in ax.get_legend().get_texts()] == ["current design", "rss allocation"]

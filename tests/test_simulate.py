@@ -357,6 +357,25 @@ def test_histogram_and_plot(tmp_path):
         render_verification_plot(result, "jpg")
 
 
+
+def test_the_histogram_is_drawn_by_the_plotting_module():
+    # one module draws every figure: allocator.plots; the density bars integrate to the
+    # share of samples inside the histogram range (definition of a density)
+    from allocator.plots import verification_figure
+
+    mean, sigma = normal_chain_reference()
+    result = verify(normal_chain_case(mean - 3 * sigma, mean + 3 * sigma), samples=20_000, seed=4)
+    figure = verification_figure(result)
+    (ax,) = figure.axes
+    assert ax.get_title().startswith("gap: ")
+    check = result["gap"]
+    widths = np.diff(check.histogram_edges)
+    area = float(np.sum(check.histogram_counts / (check.samples * widths) * widths))
+    assert area == pytest.approx(1 - (check.underflow + check.overflow) / check.samples, rel=1e-12)
+    bars = ax.patches[0].get_path().vertices  # the stairs: its top edge is the density
+    assert bars[:, 1].max() == pytest.approx(float(np.max(check.histogram_counts / (check.samples * widths))))
+
+
 # ----------------------------------------------------------------- command line
 
 CASE_TOML = """\

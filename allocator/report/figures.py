@@ -10,7 +10,8 @@ from __future__ import annotations
 import io
 import re
 
-from .html import MODEL_LABELS, esc
+from ..model import MODEL_LABELS
+from .html import esc
 
 
 def svg_of(figure) -> str:
@@ -78,41 +79,10 @@ def verification_svg(report) -> str:
 
 
 def contributions_svg(report) -> str:
-    """Section 5: horizontal bars: share of σ² per contributor, current design and recommended allocation.
+    """Section 5: the shares of σ² per contributor (:func:`allocator.plots.contributions_figure`) as SVG."""
+    from .. import plots
 
-    Greyscale: solid dark bars for the current design, white hatched bars for the
-    allocation, told apart by fill pattern and legend, not by colour.
-    """
-    import numpy as np
-    from matplotlib.figure import Figure
-
-    current = report.analysis.requirements
-    allocated = report.recommended_analysis.requirements if report.recommended_analysis is not None else None
-    n_rows = [max(len(r.contributions), 1) for r in current]
-    height = sum(0.26 * n * (2 if allocated else 1) + 1.0 for n in n_rows)
+    allocated = report.recommended_analysis
+    label = f"{MODEL_LABELS.get(report.recommended)} allocation"
     with svg_context():
-        fig = Figure(figsize=(7.0, max(2.2, height)), layout="constrained")
-        axes = fig.subplots(len(current), 1, squeeze=False, height_ratios=n_rows)[:, 0]
-        for j, (ax, req) in enumerate(zip(axes, current)):
-            names = [c.name for c in req.contributions]
-            y = np.arange(len(names))
-            share_now = [100.0 * c.variance_share for c in req.contributions]
-            bar = 0.38 if allocated else 0.6
-            ax.barh(y - (bar / 2 if allocated else 0), share_now, height=bar, color="0.25", edgecolor="black",
-                    linewidth=0.6, label="current design")
-            if allocated:
-                by_name = {c.name: 100.0 * c.variance_share for c in allocated[j].contributions}
-                share_alloc = [by_name.get(n, 0.0) for n in names]
-                ax.barh(y + bar / 2, share_alloc, height=bar, color="white", edgecolor="black", hatch="////",
-                        linewidth=0.6, label=f"{MODEL_LABELS.get(report.recommended)} allocation")
-            ax.set_yticks(y, names)
-            ax.invert_yaxis()
-            ax.set_xlim(0, 100)
-            ax.set_xlabel("share of the response variance σ² [%]")
-            ax.set_title(f"{req.name}", loc="left", fontsize="medium")
-            ax.grid(axis="x", color="0.85", linewidth=0.6)
-            ax.set_axisbelow(True)
-            for side in ("top", "right"):
-                ax.spines[side].set_visible(False)
-            ax.legend(fontsize="small", loc="lower right", frameon=True)
-        return svg_of(fig)
+        return svg_of(plots.contributions_figure(report.analysis, allocated, allocation_label=label))
