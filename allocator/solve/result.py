@@ -159,8 +159,10 @@ class Allocation:
         self.names = tuple(names)
         self._current = np.asarray(current, dtype=float)
         self._counts = np.asarray(counts, dtype=float)
-        self._lower = np.asarray(lower_bounds, dtype=float)
-        self._upper = np.asarray(upper_bounds, dtype=float)
+        # each free contributor's tolerance range [tightest, loosest] (NaN when held):
+        # the contract's ``limits``, the JSON's "tightest" and "loosest"
+        self._tightest = np.asarray(lower_bounds, dtype=float)
+        self._loosest = np.asarray(upper_bounds, dtype=float)
         self._unit_current = np.asarray(unit_cost_current, dtype=float)
         self.current_cost = float(current_cost)
         self.processes = dict(processes)
@@ -183,7 +185,8 @@ class Allocation:
             None if unit_cost_allocated is None else np.asarray(unit_cost_allocated, dtype=float)
         )
         self.total_cost = None if total_cost is None else float(total_cost)
-        self._bounds = tuple(bounds) if bounds is not None else ("",) * len(self.names)
+        # 'tightest' | 'loosest' | 'fixed' | '' per contributor: the JSON's "bound"
+        self._bound_flags = tuple(bounds) if bounds is not None else ("",) * len(self.names)
 
     # ------------------------------------------------------------------ numbers
 
@@ -243,7 +246,7 @@ class Allocation:
 
     @property
     def active(self):
-        return self._series(list(self._bounds), "bound")
+        return self._series(list(self._bound_flags), "bound")
 
     # ------------------------------------------------------------------ plain views
 
@@ -258,9 +261,9 @@ class Allocation:
                     "count": int(self._counts[i]),
                     "current": float(self._current[i]),
                     "allocated": None if self._allocated is None else float(self._allocated[i]),
-                    "bound": self._bounds[i],
-                    "tightest": _finite(self._lower[i]),
-                    "loosest": _finite(self._upper[i]),
+                    "bound": self._bound_flags[i],
+                    "tightest": _finite(self._tightest[i]),
+                    "loosest": _finite(self._loosest[i]),
                     "unit_cost_current": _finite(self._unit_current[i]),
                     "unit_cost_allocated": (
                         None if self._unit_allocated is None else _finite(self._unit_allocated[i])
