@@ -58,9 +58,15 @@ class RequirementAnalysis:
     units: str = ""  # label of the response, its limits, worst case, σ and δ
 
     @property
-    def fallout_ppm(self) -> float:
-        """Total predicted rss fallout [ppm]."""
+    def rss_ppm(self) -> float:
+        """Predicted fallout of the rss model: normal response centred at ȳ [ppm]."""
         return self.fallout_below_ppm + self.fallout_above_ppm
+
+    @property
+    def fallout_ppm(self) -> float:
+        """The same as :attr:`rss_ppm` (the JSON key): the rss fallout, whatever model
+        the tolerances came from [ppm]."""
+        return self.rss_ppm
 
     @property
     def mean_shift_ppm(self) -> float:
@@ -136,7 +142,7 @@ class StackAnalysis:
             lines.append(
                 f"  {r.name}: nominal {r.nominal:.6g}, worst case "
                 f"[{r.worst_case_min:.6g}, {r.worst_case_max:.6g}], sigma {r.sigma:.4g}, "
-                f"fallout {r.fallout_ppm:.4g} ppm (target {r.target_ppm:g})"
+                f"fallout {r.rss_ppm:.4g} ppm (target {r.target_ppm:g})"
             )
         return "\n".join(lines)
 
@@ -264,7 +270,7 @@ def analyze(
                 sigma=sigma,
                 fallout_below_ppm=fraction_to_ppm(below),
                 fallout_above_ppm=fraction_to_ppm(above),
-                target_ppm=req.fallout_ppm,
+                target_ppm=req.target_ppm,
                 mean_shift=delta,
                 mean_shift_below_ppm=fraction_to_ppm(ms_below),
                 mean_shift_above_ppm=fraction_to_ppm(ms_above),

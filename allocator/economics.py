@@ -474,7 +474,7 @@ def fallout_economics(
         sweep = LimitSweep(case, model, req.name, "fallout_ppm", solver=solver)
         density = SCAN_PER_DECADE if sweep.batch is not None else SCAN_PER_DECADE_SLOW
         grid = np.geomspace(lo, hi, max(int(round(decades * density)) + 1, 3))
-        results.append(_optimise(sweep, grid, scrap, volume, float(req.fallout_ppm), (lo, hi)))
+        results.append(_optimise(sweep, grid, scrap, volume, float(req.target_ppm), (lo, hi)))
 
     statuses = [r.status for r in results]
     unmet = (_status.FAILED, _status.INFEASIBLE)
@@ -496,7 +496,7 @@ def fallout_economics(
         requirement=req.name,
         scrap_cost=scrap,
         volume=volume,
-        current_ppm=float(req.fallout_ppm),
+        current_ppm=float(req.target_ppm),
         bounds=(lo, hi),
         results=tuple(results),
         notes=tuple(notes),

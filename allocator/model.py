@@ -302,8 +302,18 @@ class Requirement:
     expression: str | None = None
     lower: float | None = None
     upper: float | None = None
-    fallout_ppm: float = DEFAULT_FALLOUT_PPM
+    fallout_ppm: float = DEFAULT_FALLOUT_PPM  # the case file's name for the target
     units: str | None = None  # label of the response and its limits; None: the case's ``units``
+
+    @property
+    def target_ppm(self) -> float:
+        """The fallout this requirement allows [ppm]: the case file's ``fallout_ppm``.
+
+        On a requirement ``fallout_ppm`` is a target; on every result it is a prediction
+        or a count (docs/results.md, *What fallout_ppm means*). The library says
+        ``target_ppm`` for the target, as the results do.
+        """
+        return self.fallout_ppm
 
     @property
     def is_linear(self) -> bool:

@@ -40,6 +40,21 @@ def test_analysis_by_hand_and_scipy():
     assert r.cpk == pytest.approx(0.15 / (3 * sigma))
 
 
+def test_fallout_ppm_is_a_target_on_a_requirement_and_the_rss_prediction_in_an_analysis():
+    # docs/results.md, "What fallout_ppm means": the case's fallout_ppm is the target; the
+    # analysis' fallout_ppm is the centred normal (rss) prediction, scipy.stats.norm here
+    case = end_play_case()
+    (req,) = case.requirements
+    assert req.target_ppm == req.fallout_ppm == 100
+    r = analyze(case).requirements[0]
+    sigma = math.sqrt((0.05 / 3) ** 2 + 2 * (0.02 / 3) ** 2 + (0.03 / math.sqrt(3)) ** 2)
+    rss = 1e6 * (stats.norm.cdf(0.05, 0.2, sigma) + stats.norm.sf(0.35, 0.2, sigma))
+    assert r.rss_ppm == pytest.approx(rss, rel=1e-10)
+    assert r.fallout_ppm == r.rss_ppm and r.to_dict()["fallout_ppm"] == r.rss_ppm
+    assert r.target_ppm == 100 and r.to_dict()["target_ppm"] == 100
+    assert "rss_ppm" not in r.to_dict()  # the JSON keeps its keys
+
+
 def test_tolerance_overrides_and_frames():
     case = end_play_case()
     res = analyze(case, {"housing": 0.01})

@@ -58,7 +58,7 @@ def analyze(case_file, as_json, as_csv):
             f"{fmt(r.worst_case_max, 6)}] {verdict}"
         )
         click.echo(
-            f"  rss sigma {fmt(r.sigma)}   Cpk {fmt(r.cpk, 3)}   fallout {format_ppm(r.fallout_ppm)} "
+            f"  rss sigma {fmt(r.sigma)}   Cpk {fmt(r.cpk, 3)}   fallout {format_ppm(r.rss_ppm)} "
             f"(below {format_ppm(r.fallout_below_ppm)}, above {format_ppm(r.fallout_above_ppm)}; "
             f"target {format_ppm(r.target_ppm)})"
         )

@@ -338,7 +338,7 @@ def _requirements_table(case) -> str:
     ru = Units(case.requirement_units(r.name) for r in case.requirements)
     req_rows = [
         [esc(r.name), _chain_text(r), ru.cell(given(r.lower), case.requirement_units(r.name)),
-         ru.cell(given(r.upper), case.requirement_units(r.name)), ppm(r.fallout_ppm)]
+         ru.cell(given(r.upper), case.requirement_units(r.name)), ppm(r.target_ppm)]
         for r in case.requirements
     ]
     return table(
@@ -416,12 +416,12 @@ def _analysis_table(result, caption: str) -> str:
         row("Worst case within limits", [_worst_case_flag(r) for r in reqs]),
         measured("RSS σ", [num(r.sigma) for r in reqs]),
         row("Cpk of the response", [num(r.cpk, 3) for r in reqs]),
-        row("Predicted fallout, RSS [ppm]", [ppm(r.fallout_ppm) for r in reqs]),
+        row("Predicted fallout, RSS [ppm]", [ppm(r.rss_ppm) for r in reqs]),
         row("  of which below / above [ppm]", [f"{ppm(r.fallout_below_ppm)} / {ppm(r.fallout_above_ppm)}" for r in reqs]),
         measured("Mean-shift band ±δ", [num(r.mean_shift) for r in reqs]),
         row("Predicted fallout, mean at worst place [ppm]", [ppm(r.mean_shift_ppm) for r in reqs]),
         row("Fallout target [ppm]", [ppm(r.target_ppm) for r in reqs]),
-        row("Meets target (RSS)", [flag("yes") if r.fallout_ppm <= r.target_ppm else flag("NO", "bad") for r in reqs]),
+        row("Meets target (RSS)", [flag("yes") if r.rss_ppm <= r.target_ppm else flag("NO", "bad") for r in reqs]),
         row("Response", ["linear chain" if r.linear else "expression, linearised" for r in reqs]),
     ]
     return table(headers, rows, numeric=[False] + [True] * len(reqs), caption=caption, cls="metrics")
