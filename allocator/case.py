@@ -285,13 +285,18 @@ class _Table:
         if not isinstance(value, list) or len(value) != 2:
             got = f"{len(value)} values" if isinstance(value, list) else _show(value)
             self.fail(key, f"must be a list of two numbers {what} (got {got})")
+        first, second = self.numbers(key, value)
+        return first, second
+
+    def numbers(self, key: str, items: list) -> list[float]:
+        """Every item of the list under ``key`` as a finite float; a bad one fails as ``key[i]``."""
         out = []
-        for i, item in enumerate(value, start=1):
+        for i, item in enumerate(items, start=1):
             try:
                 out.append(_number(item))
             except _Problem as problem:
                 self.fail(f"{key}[{i}]", str(problem))
-        return out[0], out[1]
+        return out
 
     def limits(self) -> tuple[float, float] | None:
         pair = self.pair("limits", "[tightest, loosest]")
@@ -438,13 +443,7 @@ def _read_table_lists(cost: _Table):
             cost.fail(key, f"must be a list of numbers (got {_show(value)})")
         if len(value) > MAX_TABLE_ROWS:
             cost.fail(key, f"too many points ({len(value)}; the limit is {MAX_TABLE_ROWS})")
-        numbers = []
-        for i, item in enumerate(value, start=1):
-            try:
-                numbers.append(_number(item))
-            except _Problem as problem:
-                cost.fail(f"{key}[{i}]", str(problem))
-        columns[key] = numbers
+        columns[key] = cost.numbers(key, value)
     tolerances, costs = columns["tolerance"], columns["cost"]
     if len(tolerances) != len(costs):
         cost.fail(
