@@ -265,9 +265,7 @@ def table_is_convex_decreasing(curve: CostCurve) -> bool:
     ...                                      points_cost=(5.0, 4.5, 2.0)))
     False
     """
-    if curve.curve != "table":
-        raise ValueError(f"not a table curve: {curve.curve!r}")
-    if curve.curve != "table":
+    if not family_of(curve).piecewise:
         raise ValueError(f"not a table curve: {curve.curve!r}")
     return table_problem(curve) is None
 

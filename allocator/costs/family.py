@@ -161,6 +161,10 @@ class CurveFamily:
         """d²C/dt² [currency/length²] (0 for piecewise-linear families)."""
         raise NotImplementedError
 
+    def kinks(self, curve) -> np.ndarray:
+        """Tolerances where the curve has a kink [length] (none for smooth families)."""
+        return np.empty(0)
+
     def at_breakpoint(self, p, t, rtol: float) -> np.ndarray:
         """True where a part sits on a kink of its curve."""
         return np.zeros(np.shape(t), dtype=bool)

@@ -275,6 +275,9 @@ class Table(CurveFamily):
     def curvature(self, p, t):
         return np.zeros(len(p))
 
+    def kinks(self, curve):
+        return np.asarray(curve.points_tolerance, dtype=float)
+
     def at_breakpoint(self, p, t, rtol):
         out = np.zeros(len(p), dtype=bool)
         for i, curve in enumerate(p):
