@@ -21,6 +21,7 @@ from __future__ import annotations
 import difflib
 import math
 from dataclasses import dataclass
+from functools import cached_property
 from typing import Mapping
 
 import numpy as np
@@ -155,45 +156,24 @@ class CurveSet:
     # The parameter arrays in the layout of sweep.BatchedDual (power group: both reciprocal
     # families, k = 1 for reciprocal; exponential group). Only that class reads them; they
     # go when the frontier uses the exact dual of solve/exact.py.
-    def _legacy(self, names, keys):
+    def _legacy(self, names, key):
         parts = [(idx, params) for fam, idx, params in self.groups if fam.name in names]
         if not parts:
-            return (np.array([], dtype=int),) + tuple(np.array([]) for _ in keys)
-        return (np.concatenate([idx for idx, _ in parts]),) + tuple(
-            np.concatenate([params[k] for _, params in parts]) for k in keys
-        )
+            return np.array([], dtype=int if key is None else float)
+        return np.concatenate([idx if key is None else params[key] for idx, params in parts])
 
-    @property
-    def power(self):
-        return self._legacy(("reciprocal", "reciprocal-power"), ())[0]
+    power = cached_property(lambda self: self._legacy(_POWER, None))
+    pa = cached_property(lambda self: self._legacy(_POWER, "a"))
+    pb = cached_property(lambda self: self._legacy(_POWER, "b"))
+    pk = cached_property(lambda self: self._legacy(_POWER, "k"))
+    expo = cached_property(lambda self: self._legacy(_EXPONENTIAL, None))
+    ea = cached_property(lambda self: self._legacy(_EXPONENTIAL, "a"))
+    eb = cached_property(lambda self: self._legacy(_EXPONENTIAL, "b"))
+    ec = cached_property(lambda self: self._legacy(_EXPONENTIAL, "c"))
 
-    @property
-    def pa(self):
-        return self._legacy(("reciprocal", "reciprocal-power"), ("a",))[1]
 
-    @property
-    def pb(self):
-        return self._legacy(("reciprocal", "reciprocal-power"), ("b",))[1]
-
-    @property
-    def pk(self):
-        return self._legacy(("reciprocal", "reciprocal-power"), ("k",))[1]
-
-    @property
-    def expo(self):
-        return self._legacy(("exponential",), ())[0]
-
-    @property
-    def ea(self):
-        return self._legacy(("exponential",), ("a",))[1]
-
-    @property
-    def eb(self):
-        return self._legacy(("exponential",), ("b",))[1]
-
-    @property
-    def ec(self):
-        return self._legacy(("exponential",), ("c",))[1]
+_POWER = ("reciprocal", "reciprocal-power")  # only for the sweep.BatchedDual layout above
+_EXPONENTIAL = ("exponential",)
 
 
 def scaled_curve(curve: CostCurve | None, length: float, cost: float) -> CostCurve | None:
