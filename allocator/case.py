@@ -27,10 +27,11 @@ from pathlib import Path
 
 from . import chain as chain_module
 from .chain import ExpressionError, compile_expression
+from .costs import CURVES, check_curve, family
+from .costs.table import BETWEEN as TABLE_BETWEEN
 from .errors import CaseError, did_you_mean
 from .ppm import PER_MILLION
 from .model import (
-    CURVES,
     DEFAULT_FALLOUT_PPM,
     DEFAULT_MODELS,
     DISTRIBUTIONS,
@@ -82,15 +83,9 @@ REQUIREMENT_KEYS = ("name", "chain", "expression", "lower", "upper", "fallout_pp
 ALLOCATION_KEYS = ("models", "rounding")
 ECONOMICS_KEYS = ("volume", "scrap_cost")
 FRONTIER_KEYS = ("requirement", "vary", "range", "points")
-# cost-curve keys: which parameters each curve takes
-CURVE_PARAMETERS = {
-    "reciprocal": ("a", "b"),
-    "reciprocal-power": ("a", "b", "k"),
-    "exponential": ("a", "b", "c"),
-    "table": ("tolerance", "cost", "file", "between"),
-}
-COST_KEYS = ("curve", "a", "b", "c", "k", "tolerance", "cost", "file", "between")
-TABLE_BETWEEN = ("interpolate", "choose")
+# cost-curve keys: which parameters each curve takes (from the curve registry)
+CURVE_PARAMETERS = {name: family(name).case_keys for name in CURVES}
+COST_KEYS = ("curve",) + tuple(dict.fromkeys(k for keys in CURVE_PARAMETERS.values() for k in keys))
 FRONTIER_VARY = ("lower", "upper", "fallout_ppm")
 
 
@@ -344,11 +339,7 @@ class _Table:
 
 
 def _curve_checker():
-    """costs.check_curve if that module provides it (it checks a curve over its limits)."""
-    try:
-        from .costs import check_curve
-    except (ImportError, AttributeError):
-        return None
+    """The check of a curve over its limits (:func:`allocator.costs.check_curve`)."""
     return check_curve
 
 
@@ -363,17 +354,17 @@ def _read_cost(cost: _Table, limits: tuple[float, float] | None):
     for key in cost.data:
         if key != "curve" and key not in CURVE_PARAMETERS[curve]:
             cost.fail(key, f"{key!r} is not a parameter of the {curve} curve")
-    if curve == "table":
+    fam = family(curve)
+    if fam.piecewise:
         return _read_table_cost(cost, limits)
-    a = cost.get("a", lambda v: _bounded(v, ge=0), default=0.0)
-    b = cost.get("b", lambda v: _bounded(v, gt=0), required=f"b > 0 for the {curve} curve")
-    c = k = None
-    if curve == "exponential":
-        c = cost.get("c", lambda v: _bounded(v, gt=0), required="c > 0 for the exponential curve")
-    if curve == "reciprocal-power":
-        k = cost.get("k", lambda v: _bounded(v, gt=0), required="k > 0 for the reciprocal-power curve")
-    result = CostCurve(curve=curve, a=a, b=b, c=c if c is not None else 0.0, k=k if k is not None else 1.0)
-    return result, limits
+    values = {}
+    for p in fam.parameters:
+        check = lambda v, p=p: _bounded(v, **p.bound_keywords)  # noqa: E731
+        if p.default is None:
+            values[p.name] = cost.get(p.name, check, required=f"{p.name} {p.bound} for the {curve} curve")
+        else:
+            values[p.name] = cost.get(p.name, check, default=p.default)
+    return CostCurve(curve=curve, **values), limits
 
 
 def _read_table_cost(cost: _Table, limits):

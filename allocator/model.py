@@ -19,11 +19,12 @@ from functools import cached_property
 from pathlib import Path
 from typing import Literal, Mapping
 
+from .costs import CURVES, CostCurve  # noqa: F401  (re-exported: the curve families live in the cost registry)
+
 DISTRIBUTIONS = ("normal", "uniform", "triangular")
 MODELS = ("worst-case", "rss", "mean-shift")
 # how plots, reports and tables name each model in prose
 MODEL_LABELS = {"worst-case": "worst case", "rss": "RSS", "mean-shift": "mean shift"}
-CURVES = ("reciprocal", "reciprocal-power", "exponential", "table")
 DEFAULT_FALLOUT_PPM = 2700.0
 DEFAULT_MODELS = ("worst-case", "rss")
 # A tolerance written equal to a limit (up to float noise) is inside it.
@@ -80,44 +81,6 @@ def per_unit(numerator: str, denominator: str) -> str:
     if any(ch in denominator for ch in "/*· "):
         denominator = f"({denominator})"
     return f"{numerator or '1'}/{denominator}"
-
-
-@dataclass(frozen=True)
-class CostCurve:
-    """Unit cost of one part as a function of its ± tolerance.
-
-    ``curve`` is one of :data:`CURVES`. Parameters not used by a curve keep their
-    defaults. For ``table``, ``points_tolerance`` is strictly increasing and
-    ``points_cost`` holds the cost at each point; ``between`` is ``"interpolate"``
-    (piecewise linear) or ``"choose"`` (only the listed tolerances exist).
-    The arithmetic lives in :mod:`allocator.costs`.
-    """
-
-    curve: str
-    a: float = 0.0
-    b: float = 0.0
-    c: float = 0.0
-    k: float = 1.0
-    points_tolerance: tuple[float, ...] = ()
-    points_cost: tuple[float, ...] = ()
-    between: str = "interpolate"
-
-    @property
-    def is_discrete(self) -> bool:
-        """True when only listed tolerances exist (a ``choose`` table)."""
-        return self.curve == "table" and self.between == "choose"
-
-    def value(self, tolerance):
-        """Cost at ``tolerance`` (scalar or array) [currency]."""
-        from . import costs
-
-        return costs.cost_value(self, tolerance)
-
-    def derivative(self, tolerance):
-        """d cost / d tolerance [currency/length]."""
-        from . import costs
-
-        return costs.cost_derivative(self, tolerance)
 
 
 @dataclass(frozen=True)

@@ -22,6 +22,7 @@ from importlib import resources
 from pathlib import Path
 
 from .. import status as _status
+from ..costs import FAMILIES
 from .html import (
     MODEL_LABELS,
     Row,
@@ -314,22 +315,9 @@ def _cost_text(curve) -> str:
     """The cost curve as HTML: its formula, then its parameters on a second line."""
     if curve is None:
         return "no cost (held)"
-    f = fmt_input
-    if curve.curve == "reciprocal":
-        formula, params = "a + b/t", f"a = {f(curve.a)}, b = {f(curve.b)}"
-    elif curve.curve == "reciprocal-power":
-        formula, params = "a + b/t^k", f"a = {f(curve.a)}, b = {f(curve.b)}, k = {f(curve.k)}"
-    elif curve.curve == "exponential":
-        formula, params = "a + b·exp(−c·t)", f"a = {f(curve.a)}, b = {f(curve.b)}, c = {f(curve.c)}"
-    elif curve.curve == "table":
-        points = curve.points_tolerance
-        if curve.is_discrete:
-            formula, params = "listed tolerances only", "±" + ", ".join(f(t) for t in points)
-        else:
-            formula = f"table of {len(points)} points, interpolated"
-            params = f"±{f(points[0])} to ±{f(points[-1])}"
-    else:
+    if curve.curve not in FAMILIES:
         return esc(curve.curve)
+    formula, params = FAMILIES[curve.curve].describe(curve, fmt_input)
     return f'<span class="nw">{esc(formula)}</span><div class="desc">{esc(params)}</div>'
 
 

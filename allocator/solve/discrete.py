@@ -140,10 +140,10 @@ def _cost_at(curve, t):
 def _geometric_grid(lo: float, hi: float, points: int, curve) -> np.ndarray:
     grid = np.geomspace(lo, hi, max(int(points), 2))
     grid[0], grid[-1] = lo, hi
-    if curve is not None and curve.curve == "table":
+    x = np.empty(0) if curve is None else costs.family_of(curve).kinks(curve)
+    if x.size:
         # breakpoints on the grid make the cost linear inside every cell, so its least
         # value in a cell is at an end (what the lower bound uses)
-        x = np.asarray(curve.points_tolerance, dtype=float)
         grid = np.union1d(grid, x[(x > lo) & (x < hi)])
     return grid
 
@@ -476,7 +476,7 @@ class DiscreteAllocation:
                     t, value = o.grid[:-1], o.grid[1:]
                     ends = _cost_at(o.curve, o.grid)
                     cost = np.minimum(ends[:-1], ends[1:])
-                    if o.curve.curve == "table":
+                    if costs.family_of(o.curve).piecewise:
                         # linear inside a cell: its breakpoints are on the grid
                         tangent, tangent_cost = t, ends[:-1]
                         slope = (ends[1:] - ends[:-1]) / (value - t)

@@ -19,7 +19,8 @@ Nothing here imports cvxpy or pandas.
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass, replace
+from dataclasses import dataclass
+from functools import cached_property
 from typing import Mapping
 
 import numpy as np
@@ -69,35 +70,30 @@ def _g(x: float) -> str:
 
 
 class CurveSet:
-    """Many cost curves evaluated at once (vectorised over contributors).
+    """Many cost curves evaluated at once, vectorised per curve family.
 
-    The formula families are grouped: ``reciprocal`` is ``reciprocal-power`` with
-    ``k = 1``, so two groups (power, exponential) cover them; tables (rare) are
-    evaluated one by one with :mod:`allocator.costs`. ``None`` costs nothing.
+    The curves are grouped by family once (:mod:`allocator.costs.registry`); each group
+    keeps its parts' positions and parameter arrays, and every method asks each family
+    for its vectorised formula. ``None`` costs nothing. Families with kinks (tables) are
+    listed in :attr:`tables`, the positions the solvers treat piece by piece.
     """
 
     def __init__(self, curves):
         self.curves = tuple(curves)
         self.size = len(self.curves)
-        power, pa, pb, pk, expo, ea, eb, ec, tables = ([] for _ in range(9))
+        members: dict[str, list[int]] = {}
         for i, c in enumerate(self.curves):  # one pass: cases may have thousands of parts
-            kind = None if c is None else c.curve
-            if kind == "reciprocal" or kind == "reciprocal-power":
-                power.append(i)
-                pa.append(c.a)
-                pb.append(c.b)
-                pk.append(1.0 if kind == "reciprocal" else c.k)
-            elif kind == "exponential":
-                expo.append(i)
-                ea.append(c.a)
-                eb.append(c.b)
-                ec.append(c.c)
-            elif kind == "table":
-                tables.append(i)
-        self.power, self.expo = np.array(power, dtype=int), np.array(expo, dtype=int)
-        self.pa, self.pb, self.pk = (np.array(v, dtype=float) for v in (pa, pb, pk))
-        self.ea, self.eb, self.ec = (np.array(v, dtype=float) for v in (ea, eb, ec))
-        self.tables = tables
+            if c is not None:
+                members.setdefault(c.curve, []).append(i)
+        self.groups = []  # (family, positions, parameters)
+        for name, index in members.items():
+            fam = costs.family(name)
+            params = fam.params([self.curves[i] for i in index])
+            self.groups.append((fam, np.array(index, dtype=int), params))
+        self._index_tables()
+
+    def _index_tables(self) -> None:
+        self.tables = sorted(int(i) for fam, idx, _ in self.groups if fam.piecewise for i in idx)
 
     def subset(self, index) -> "CurveSet":
         """The curves at positions ``index`` (increasing), without re-reading the curves."""
@@ -107,61 +103,72 @@ class CurveSet:
         out = CurveSet.__new__(CurveSet)
         out.curves = tuple(self.curves[i] for i in index)
         out.size = index.size
-        keep_p = position[self.power] >= 0
-        keep_e = position[self.expo] >= 0
-        out.power, out.expo = position[self.power][keep_p], position[self.expo][keep_e]
-        out.pa, out.pb, out.pk = self.pa[keep_p], self.pb[keep_p], self.pk[keep_p]
-        out.ea, out.eb, out.ec = self.ea[keep_e], self.eb[keep_e], self.ec[keep_e]
-        out.tables = [int(position[i]) for i in self.tables if position[i] >= 0]
+        out.groups = []
+        for fam, idx, params in self.groups:
+            keep = position[idx] >= 0
+            if keep.any():
+                out.groups.append((fam, position[idx][keep], fam.take(params, keep)))
+        out._index_tables()
+        return out
+
+    def _each(self, method: str, t, *extra, fill: float = 0.0, dtype=float) -> np.ndarray:
+        """``family.method(params, t[idx], extra[idx]...)`` per group, ``fill`` elsewhere."""
+        t = np.asarray(t, dtype=float)
+        out = np.full(self.size, fill, dtype=dtype)
+        for fam, idx, params in self.groups:
+            args = [None if e is None else np.asarray(e)[idx] for e in extra]
+            out[idx] = getattr(fam, method)(params, t[idx], *args)
         return out
 
     def value(self, t) -> np.ndarray:
         """Unit cost of each contributor at ``t`` [currency]; NaN where undefined."""
-        t = np.asarray(t, dtype=float)
-        out = np.zeros(self.size)
-        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-            tp = t[self.power]
-            out[self.power] = np.where(tp > 0, self.pa + self.pb * tp ** (-self.pk), np.nan)
-            te = t[self.expo]
-            out[self.expo] = np.where(te > 0, self.ea + self.eb * np.exp(-self.ec * te), np.nan)
-        for i in self.tables:
-            try:
-                out[i] = costs.cost_value(self.curves[i], float(t[i]))
-            except ValueError:
-                out[i] = np.nan  # e.g. a current tolerance outside the table
-        return out
+        return self._each("value", t)
 
     def derivative(self, t) -> np.ndarray:
         """d cost / d t of each contributor at ``t`` [currency/length]."""
-        t = np.asarray(t, dtype=float)
-        out = np.zeros(self.size)
-        tp = t[self.power]
-        out[self.power] = -self.pk * self.pb * tp ** (-self.pk - 1.0)
-        te = t[self.expo]
-        out[self.expo] = -self.eb * self.ec * np.exp(-self.ec * te)
-        for i in self.tables:
-            out[i] = costs.cost_derivative(self.curves[i], float(t[i]))
-        return out
-
+        return self._each("derivative", t)
 
     def curvature(self, t) -> np.ndarray:
         """d² cost / d t² of each contributor at ``t`` (0 for tables and None)."""
-        t = np.asarray(t, dtype=float)
-        out = np.zeros(self.size)
-        tp = t[self.power]
-        out[self.power] = self.pk * (self.pk + 1.0) * self.pb * tp ** (-self.pk - 2.0)
-        te = t[self.expo]
-        out[self.expo] = self.eb * self.ec**2 * np.exp(-self.ec * te)
-        return out
+        return self._each("curvature", t)
 
     def at_breakpoint(self, t, rtol: float = 1e-9) -> np.ndarray:
         """True where a table contributor sits on one of its listed tolerances (a kink)."""
         t = np.asarray(t, dtype=float)
         out = np.zeros(self.size, dtype=bool)
-        for i in self.tables:
-            x = np.asarray(self.curves[i].points_tolerance)
-            out[i] = bool(np.any(np.abs(x - t[i]) <= rtol * x[-1]))
+        for fam, idx, params in self.groups:
+            out[idx] = fam.at_breakpoint(params, t[idx], rtol)
         return out
+
+    def linear_minimiser(self, s) -> np.ndarray:
+        """Per part, the unclipped minimiser of ``C(t) + s t`` (inf where nothing pulls)."""
+        return self._each("linear_minimiser", s, fill=np.inf)
+
+    def quadratic_minimiser(self, q, lo, hi, shift=None) -> np.ndarray:
+        """Per part, the minimiser of ``C(t) + q t²/2 (+ shift·t)`` (clip to [lo, hi] after)."""
+        return self._each("quadratic_minimiser", q, lo, hi, shift, fill=np.inf)
+
+    # The parameter arrays in the layout of sweep.BatchedDual (power group: both reciprocal
+    # families, k = 1 for reciprocal; exponential group). Only that class reads them; they
+    # go when the frontier uses the exact dual of solve/exact.py.
+    def _legacy(self, names, key):
+        parts = [(idx, params) for fam, idx, params in self.groups if fam.name in names]
+        if not parts:
+            return np.array([], dtype=int if key is None else float)
+        return np.concatenate([idx if key is None else params[key] for idx, params in parts])
+
+    power = cached_property(lambda self: self._legacy(_POWER, None))
+    pa = cached_property(lambda self: self._legacy(_POWER, "a"))
+    pb = cached_property(lambda self: self._legacy(_POWER, "b"))
+    pk = cached_property(lambda self: self._legacy(_POWER, "k"))
+    expo = cached_property(lambda self: self._legacy(_EXPONENTIAL, None))
+    ea = cached_property(lambda self: self._legacy(_EXPONENTIAL, "a"))
+    eb = cached_property(lambda self: self._legacy(_EXPONENTIAL, "b"))
+    ec = cached_property(lambda self: self._legacy(_EXPONENTIAL, "c"))
+
+
+_POWER = ("reciprocal", "reciprocal-power")  # only for the sweep.BatchedDual layout above
+_EXPONENTIAL = ("exponential",)
 
 
 def scaled_curve(curve: CostCurve | None, length: float, cost: float) -> CostCurve | None:
@@ -172,20 +179,7 @@ def scaled_curve(curve: CostCurve | None, length: float, cost: float) -> CostCur
     """
     if curve is None:
         return None
-    kind = curve.curve
-    if kind == "reciprocal":
-        return replace(curve, a=curve.a / cost, b=curve.b / (cost * length))
-    if kind == "reciprocal-power":
-        return replace(curve, a=curve.a / cost, b=curve.b / (cost * length**curve.k))
-    if kind == "exponential":
-        return replace(curve, a=curve.a / cost, b=curve.b / cost, c=curve.c * length)
-    if kind == "table":
-        return replace(
-            curve,
-            points_tolerance=tuple(x / length for x in curve.points_tolerance),
-            points_cost=tuple(y / cost for y in curve.points_cost),
-        )
-    raise ValueError(f"unknown cost curve {kind!r}")
+    return costs.family_of(curve).scaled(curve, length, cost)
 
 
 # --------------------------------------------------------------------------- requirements
@@ -447,8 +441,8 @@ class AllocationProblem:
                     f"contributor '{c.name}' needs a choice of process or of listed tolerances; "
                     "that is the discrete allocation's job, not the continuous solver's"
                 )
-            if curve is not None and curve.curve == "table":
-                problem = costs.table_problem(curve)
+            if curve is not None:
+                problem = costs.table_problem(curve)  # None for the formula families
                 if problem:
                     raise CaseError(
                         f"contributor '{c.name}': its cost table cannot be used for continuous "
