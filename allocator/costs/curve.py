@@ -2,14 +2,17 @@
 
 It lives beside the registry (not in :mod:`allocator.model`) because its ``value`` and
 ``derivative`` ask the registry; :mod:`allocator.model` re-exports it, so the dependency
-runs one way only (model -> costs).
+runs one way only (model -> costs), and inside the package curve -> registry -> families.
 """
 
 from __future__ import annotations
 
 from dataclasses import dataclass
 
-from .evaluate import cost_derivative, cost_value
+import numpy as np
+
+from .family import as_float_or_array
+from .registry import family_of
 
 __all__ = ["CostCurve"]
 
@@ -40,9 +43,10 @@ class CostCurve:
         return self.curve == "table" and self.between == "choose"
 
     def value(self, tolerance):
-        """Cost at ``tolerance`` (scalar or array) [currency]."""
-        return cost_value(self, tolerance)
+        """Cost at ``tolerance`` (scalar or array) [currency]; see
+        :func:`allocator.costs.cost_value`."""
+        return as_float_or_array(family_of(self).value_at(self, np.asarray(tolerance, dtype=float)))
 
     def derivative(self, tolerance):
-        """d cost / d tolerance [currency/length]."""
-        return cost_derivative(self, tolerance)
+        """d cost / d tolerance [currency/length]; see :func:`allocator.costs.cost_derivative`."""
+        return as_float_or_array(family_of(self).derivative_at(self, np.asarray(tolerance, dtype=float)))

@@ -15,6 +15,7 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 
+from .family import as_float_or_array as _as_float_or_array
 from .family import fmt as _fmt
 from .registry import CURVES, family, family_of
 from .table import table_problem
@@ -31,11 +32,6 @@ __all__ = [
     "cvx_cost",
     "cvx_costs",
 ]
-
-
-def _as_float_or_array(values):
-    """Scalar in -> float out; array in -> array out."""
-    return float(values) if np.ndim(values) == 0 else values
 
 
 def cost_value(curve: CostCurve, t):
@@ -93,8 +89,7 @@ def cost_value(curve: CostCurve, t):
     >>> cost_value(CostCurve("table", points_tolerance=(0.01, 0.05), points_cost=(3.0, 1.0)), 0.03)
     2.0
     """
-    fam = family_of(curve)
-    return _as_float_or_array(fam.value_at(curve, np.asarray(t, dtype=float)))
+    return curve.value(t)
 
 
 def cost_derivative(curve: CostCurve, t):
@@ -151,8 +146,7 @@ def cost_derivative(curve: CostCurve, t):
     >>> cost_derivative(table, [0.015, 0.02, 0.03]).round(6)
     array([-200., -200.,  -20.])
     """
-    fam = family_of(curve)
-    return _as_float_or_array(fam.derivative_at(curve, np.asarray(t, dtype=float)))
+    return curve.derivative(t)
 
 
 def inverse_derivative(curve: CostCurve, slope, lo: float, hi: float):

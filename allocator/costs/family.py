@@ -18,6 +18,11 @@ from dataclasses import dataclass
 
 import numpy as np
 
+
+def as_float_or_array(values):
+    """Scalar in -> float out; array in -> array out."""
+    return float(values) if np.ndim(values) == 0 else values
+
 __all__ = ["Parameter", "CurveFamily", "SmoothFamily", "fmt"]
 
 # Relative slack for round-off: a solver may return a tolerance a hair outside a table's

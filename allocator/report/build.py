@@ -16,11 +16,10 @@ from pathlib import Path
 
 from .. import status as _status
 from ..errors import UsageError
-from . import sections
 from .figures import contributions_svg, frontier_svg, inline_svg, verification_svg
 from .html import MODEL_LABELS
 from .outline import SECTIONS, working_on
-from .sections import has_shadow_prices
+from .sections import document, has_shadow_prices
 
 # order of preference for the allocation the report recommends (most conservative first)
 _PREFERENCE = ("mean-shift", "rss", "worst-case")
@@ -154,14 +153,14 @@ class Report:
     # ------------------------------------------------------------------ html
 
     def to_html(self) -> str:
-        """The report as one self-contained HTML document (:func:`.sections.document`).
+        """The report as one self-contained HTML document (:func:`allocator.report.sections.document`).
 
         Raises
         ------
         InternalError
             Formatting a section failed unexpectedly (names the section).
         """
-        return sections.document(self, self.figures())
+        return document(self, self.figures())
 
 
 def recommended_model(allocations: dict) -> str | None:
