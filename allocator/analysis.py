@@ -4,12 +4,18 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
-from typing import Mapping
+from typing import TYPE_CHECKING, Mapping
 
 import numpy as np
 
 from . import stack
 from .chain import linearise
+from .errors import UsageError, unknown_names
+from .model import per_unit
+from .ppm import fraction_to_ppm
+
+if TYPE_CHECKING:
+    from .model import Case
 
 
 @dataclass(frozen=True)
@@ -22,6 +28,8 @@ class Contribution:
     tolerance: float  # ± [length]
     worst_case: float  # ± count·|a|·t [response]
     variance_share: float  # share of σ_y² [-], 0..1
+    units: str = ""  # label of the contributor's tolerance
+    sensitivity_units: str = ""  # label of ∂y/∂x: requirement units per contributor unit
 
 
 @dataclass(frozen=True)
@@ -43,11 +51,22 @@ class RequirementAnalysis:
     mean_shift_below_ppm: float
     mean_shift_above_ppm: float
     contributions: tuple[Contribution, ...] = field(default=())
+    # how far the worst case passes each limit [response]; 0.0 when it holds within the
+    # round-off margin of stack.limit_margin (the one comparison used for every verdict)
+    worst_case_below: float = 0.0
+    worst_case_above: float = 0.0
+    units: str = ""  # label of the response, its limits, worst case, σ and δ
+
+    @property
+    def rss_ppm(self) -> float:
+        """Predicted fallout of the rss model: normal response centred at ȳ [ppm]."""
+        return self.fallout_below_ppm + self.fallout_above_ppm
 
     @property
     def fallout_ppm(self) -> float:
-        """Total predicted rss fallout [ppm]."""
-        return self.fallout_below_ppm + self.fallout_above_ppm
+        """The same as :attr:`rss_ppm` (the JSON key): the rss fallout, whatever model
+        the tolerances came from [ppm]."""
+        return self.rss_ppm
 
     @property
     def mean_shift_ppm(self) -> float:
@@ -56,9 +75,9 @@ class RequirementAnalysis:
 
     @property
     def worst_case_ok(self) -> bool:
-        return (self.lower is None or self.worst_case_min >= self.lower) and (
-            self.upper is None or self.worst_case_max <= self.upper
-        )
+        """The worst-case range lies inside the limits (round-off excused, see
+        :func:`allocator.stack.limit_margin`)."""
+        return self.worst_case_below == 0.0 and self.worst_case_above == 0.0
 
     @property
     def cpk(self) -> float:
@@ -78,6 +97,8 @@ class RequirementAnalysis:
             "worst_case_min": self.worst_case_min,
             "worst_case_max": self.worst_case_max,
             "worst_case_ok": self.worst_case_ok,
+            "worst_case_below": self.worst_case_below,
+            "worst_case_above": self.worst_case_above,
             "sigma": self.sigma,
             "cpk": self.cpk,
             "fallout_ppm": self.fallout_ppm,
@@ -89,6 +110,7 @@ class RequirementAnalysis:
             "mean_shift_below_ppm": self.mean_shift_below_ppm,
             "mean_shift_above_ppm": self.mean_shift_above_ppm,
             "linear": self.linear,
+            "units": self.units,
             "contributors": [
                 {
                     "name": c.name,
@@ -97,6 +119,8 @@ class RequirementAnalysis:
                     "tolerance": c.tolerance,
                     "worst_case": c.worst_case,
                     "variance_percent": 100.0 * c.variance_share,
+                    "units": c.units,
+                    "sensitivity_units": c.sensitivity_units,
                 }
                 for c in self.contributions
             ],
@@ -108,7 +132,7 @@ class StackAnalysis:
     """Result of :func:`analyze`: one :class:`RequirementAnalysis` per requirement."""
 
     title: str
-    units: str
+    units: str  # the case's units (each requirement and contribution carries its own label)
     requirements: tuple[RequirementAnalysis, ...]
     tolerances: Mapping[str, float]
 
@@ -118,7 +142,7 @@ class StackAnalysis:
             lines.append(
                 f"  {r.name}: nominal {r.nominal:.6g}, worst case "
                 f"[{r.worst_case_min:.6g}, {r.worst_case_max:.6g}], sigma {r.sigma:.4g}, "
-                f"fallout {r.fallout_ppm:.4g} ppm (target {r.target_ppm:g})"
+                f"fallout {r.rss_ppm:.4g} ppm (target {r.target_ppm:g})"
             )
         return "\n".join(lines)
 
@@ -126,7 +150,7 @@ class StackAnalysis:
         return {"requirements": [r.to_dict() for r in self.requirements]}
 
     def to_frame(self):
-        """One row per requirement (pandas DataFrame)."""
+        """One row per requirement (pandas DataFrame, index ``requirement``)."""
         import pandas as pd
 
         rows = []
@@ -134,33 +158,50 @@ class StackAnalysis:
             d = r.to_dict()
             d.pop("contributors")
             rows.append(d)
-        return pd.DataFrame(rows).set_index("name")
+        return pd.DataFrame(rows).set_index("name").rename_axis("requirement")
 
     def contributions_frame(self):
-        """One row per (requirement, contributor) with a nonzero sensitivity."""
+        """One row per (requirement, contributor) with a nonzero sensitivity (index
+        ``requirement``, ``contributor``)."""
         import pandas as pd
 
         rows = [
-            {"requirement": r.name, **c}
+            {"requirement": r.name, **c, "requirement_units": r.units}
             for r in self.requirements
             for c in r.to_dict()["contributors"]
         ]
-        return pd.DataFrame(rows).set_index(["requirement", "name"])
+        return pd.DataFrame(rows).set_index(["requirement", "name"]).rename_axis(["requirement", "contributor"])
+
+    def _repr_html_(self) -> str:
+        from .display import result_html
+
+        return result_html(f"Stack analysis: {self.title}", self.to_frame())
 
 
-def analyze(case, tolerances: Mapping[str, float] | None = None) -> StackAnalysis:
+def analyze(
+    case: Case, tolerances: Mapping[str, float] | None = None, *, processes: Mapping[str, str] | None = None
+) -> StackAnalysis:
     """Worst case, RSS and mean-shift analysis of every requirement.
 
     Parameters
     ----------
     case : allocator.model.Case
-    tolerances : mapping name -> ± tolerance [length], optional
-        Overrides for some or all contributors; the case's current ``tolerance``
-        values are used for the rest.
+    tolerances : mapping or pandas.Series, name -> ± tolerance [length], optional
+        Overrides for some or all contributors (e.g. ``allocation.tolerances``); the
+        case's current ``tolerance`` values are used for the rest.
+    processes : mapping name -> process name, optional
+        The process that makes each named contributor (e.g. ``Allocation.processes``); its
+        cp sets the contributor's σ. The others are made by the cheapest of their processes
+        that holds their tolerance (:meth:`allocator.model.Case.sigma_factors_at`).
 
     Returns
     -------
     StackAnalysis
+
+    Raises
+    ------
+    UsageError
+        ``tolerances`` names a contributor the case does not have.
 
     Notes
     -----
@@ -169,24 +210,36 @@ def analyze(case, tolerances: Mapping[str, float] | None = None) -> StackAnalysi
     ``Φ((L − ȳ)/σ_y) + 1 − Φ((U − ȳ)/σ_y)``; mean-shift band ``δ = Σ n|a| m t`` with the
     fallout taken at the worst mean in ``ȳ ± δ`` (Greenwood & Chase 1987). Nonlinear
     expressions use their exact first-order sensitivities at the nominals.
+
+    The worst-case verdict (``worst_case_ok``, ``worst_case_below``/``_above``) is
+    :func:`allocator.stack.worst_case_excess`: a worst case within ``1e-9`` of the largest
+    of ``|ȳ|, |L|, |U|, W`` from a limit counts as on it, so binary round-off of decimal
+    inputs never turns a design that meets its limit exactly into a failure.
     """
     t = case.current_tolerances
-    if tolerances:
-        unknown = set(tolerances) - set(case.names)
-        if unknown:
-            raise KeyError(f"unknown contributor(s): {', '.join(sorted(unknown))}")
-        t = np.array([float(tolerances.get(n, t[i])) for i, n in enumerate(case.names)])
+    if tolerances is not None:
+        # dict(...) of a mapping or a pandas Series: never the truth value of the object
+        given = dict(tolerances.items())
+        problem = unknown_names("contributor", given, case.names)
+        if problem:
+            raise UsageError(f"tolerances: {problem}")
+        t = np.array([float(given.get(n, t[i])) for i, n in enumerate(case.names)])
     n = case.counts
-    f = case.sigma_factors
+    f = case.sigma_factors_at(t, processes)
     m = case.mean_shifts
+    names = case.names
+    contributor_units = [case.contributor_units(name) for name in names]
     results = []
     for req in case.requirements:
+        units = case.requirement_units(req.name)
         lin = linearise(case, req)
         a = lin.sensitivity
         wc = n * np.abs(a) * t
         var = n * (a * f * t) ** 2
         sigma = float(math.sqrt(var.sum()))
-        lo, hi = stack.worst_case_range(lin.nominal, a, n, t)
+        half = stack.worst_case_half_width(a, n, t)
+        lo, hi = lin.nominal - half, lin.nominal + half
+        wc_below, wc_above = stack.worst_case_excess(lin.nominal, half, req.lower, req.upper)
         below, above = stack.normal_fallout(lin.nominal, sigma, req.lower, req.upper)
         delta = stack.mean_shift_delta(a, n, m, t)
         ms_below, ms_above, _ = stack.worst_mean_fallout(lin.nominal, delta, sigma, req.lower, req.upper)
@@ -194,12 +247,14 @@ def analyze(case, tolerances: Mapping[str, float] | None = None) -> StackAnalysi
         total_var = var.sum()
         contributions = tuple(
             Contribution(
-                name=case.names[i],
+                name=names[i],
                 sensitivity=float(a[i]),
                 count=int(n[i]),
                 tolerance=float(t[i]),
                 worst_case=float(wc[i]),
                 variance_share=float(var[i] / total_var) if total_var > 0 else 0.0,
+                units=contributor_units[i],
+                sensitivity_units=per_unit(units, contributor_units[i]),
             )
             for i in involved
         )
@@ -213,13 +268,16 @@ def analyze(case, tolerances: Mapping[str, float] | None = None) -> StackAnalysi
                 worst_case_min=lo,
                 worst_case_max=hi,
                 sigma=sigma,
-                fallout_below_ppm=below * 1e6,
-                fallout_above_ppm=above * 1e6,
-                target_ppm=req.fallout_ppm,
+                fallout_below_ppm=fraction_to_ppm(below),
+                fallout_above_ppm=fraction_to_ppm(above),
+                target_ppm=req.target_ppm,
                 mean_shift=delta,
-                mean_shift_below_ppm=ms_below * 1e6,
-                mean_shift_above_ppm=ms_above * 1e6,
+                mean_shift_below_ppm=fraction_to_ppm(ms_below),
+                mean_shift_above_ppm=fraction_to_ppm(ms_above),
                 contributions=contributions,
+                worst_case_below=wc_below,
+                worst_case_above=wc_above,
+                units=units,
             )
         )
     return StackAnalysis(

@@ -17,7 +17,6 @@ can say, in plain words, what is wrong and what was found. See docs/case-file.md
 from __future__ import annotations
 
 import csv
-import difflib
 import hashlib
 import io
 import keyword
@@ -28,9 +27,11 @@ from pathlib import Path
 
 from . import chain as chain_module
 from .chain import ExpressionError, compile_expression
-from .errors import CaseError
+from .costs import CURVES, check_curve, family
+from .costs.table import BETWEEN as TABLE_BETWEEN
+from .errors import CaseError, did_you_mean
+from .ppm import PER_MILLION
 from .model import (
-    CURVES,
     DEFAULT_FALLOUT_PPM,
     DEFAULT_MODELS,
     DISTRIBUTIONS,
@@ -59,7 +60,7 @@ MAX_CONTRIBUTORS = 100_000
 MAX_COUNT = 1_000_000  # instances of one contributor per assembly
 MAX_TABLE_ROWS = 100_000  # points in one cost table (inline or CSV)
 MAX_FRONTIER_POINTS = 2000
-PPM = 1_000_000.0
+MAX_LABEL_CHARS = 24  # a units label is printed in table headers: short, one line
 
 # names an expression reserves for its functions and constant
 RESERVED_NAMES = frozenset(
@@ -75,22 +76,16 @@ TOP_KEYS = (
 )
 CONTRIBUTOR_KEYS = (
     "name", "description", "nominal", "tolerance", "limits", "cp", "mean_shift",
-    "distribution", "count", "fixed", "cost", "process",
+    "distribution", "count", "fixed", "cost", "process", "units",
 )
 PROCESS_KEYS = ("name", "limits", "cost", "cp")
-REQUIREMENT_KEYS = ("name", "chain", "expression", "lower", "upper", "fallout_ppm")
+REQUIREMENT_KEYS = ("name", "chain", "expression", "lower", "upper", "fallout_ppm", "units")
 ALLOCATION_KEYS = ("models", "rounding")
 ECONOMICS_KEYS = ("volume", "scrap_cost")
 FRONTIER_KEYS = ("requirement", "vary", "range", "points")
-# cost-curve keys: which parameters each curve takes
-CURVE_PARAMETERS = {
-    "reciprocal": ("a", "b"),
-    "reciprocal-power": ("a", "b", "k"),
-    "exponential": ("a", "b", "c"),
-    "table": ("tolerance", "cost", "file", "between"),
-}
-COST_KEYS = ("curve", "a", "b", "c", "k", "tolerance", "cost", "file", "between")
-TABLE_BETWEEN = ("interpolate", "choose")
+# cost-curve keys: which parameters each curve takes (from the curve registry)
+CURVE_PARAMETERS = {name: family(name).case_keys for name in CURVES}
+COST_KEYS = ("curve",) + tuple(dict.fromkeys(k for keys in CURVE_PARAMETERS.values() for k in keys))
 FRONTIER_VARY = ("lower", "upper", "fallout_ppm")
 
 
@@ -115,18 +110,6 @@ def _show(value) -> str:
     if isinstance(value, dict):
         return "a table"
     return f"a {type(value).__name__}"  # TOML dates and times
-
-
-def _close(word: str, options) -> str | None:
-    """The option closest to a misspelt ``word``, if any is close."""
-    close = difflib.get_close_matches(str(word), list(options), n=1, cutoff=0.6)
-    return close[0] if close else None
-
-
-def _hint(word: str, options) -> str:
-    """``" (did you mean 'x'?)"`` when a close option exists, else ``""``."""
-    close = _close(word, options)
-    return f" (did you mean '{close}'?)" if close else ""
 
 
 def _number(value) -> float:
@@ -182,12 +165,33 @@ def _text(value, *, nonempty: bool = False) -> str:
     return value
 
 
+def _units_label(value) -> str:
+    """A units label: text printed beside numbers, never used to convert them.
+
+    Refused, because no table or report can honour it: anything but text, an empty or
+    blank label, more than MAX_LABEL_CHARS characters, and line breaks, tabs or other
+    non-printable characters.
+    """
+    if not isinstance(value, str):
+        raise _Problem(f'must be a text label such as "mm" (got {_show(value)})')
+    value = value.strip(" ")  # spaces around a label are layout, not part of it
+    if not value:
+        raise _Problem('must not be empty (a label such as "mm"; lengths are never converted)')
+    if len(value) > MAX_LABEL_CHARS:
+        raise _Problem(
+            f'must be a short label such as "mm" (at most {MAX_LABEL_CHARS} characters, got {len(value)})'
+        )
+    if not value.isprintable():
+        bad = next(ch for ch in value if not ch.isprintable())
+        raise _Problem(f'must be one line of printable text such as "mm" (got the character {bad!r})')
+    return value
+
+
 def _choice(value, options) -> str:
     if not isinstance(value, str):
         raise _Problem(f"must be one of {', '.join(options)} (got {_show(value)})")
     if value not in options:
-        close = _close(value, options)
-        hint = f"; did you mean '{close}'?" if close else ""
+        hint = did_you_mean(value, options, clause=True)
         raise _Problem(f"must be one of {', '.join(options)} (got {value!r}{hint})")
     return value
 
@@ -252,7 +256,7 @@ class _Table:
     def check_keys(self, allowed) -> None:
         for key in self.data:
             if key not in allowed:
-                self.fail(None, f"unknown key {key!r}{_hint(key, allowed)}")
+                self.fail(None, f"unknown key {key!r}{did_you_mean(key, allowed)}")
 
     def get(self, key: str, convert, *, required: str | None = None, default=None):
         """``convert(value)`` with its :class:`_Problem` turned into a CaseError.
@@ -276,13 +280,18 @@ class _Table:
         if not isinstance(value, list) or len(value) != 2:
             got = f"{len(value)} values" if isinstance(value, list) else _show(value)
             self.fail(key, f"must be a list of two numbers {what} (got {got})")
+        first, second = self.numbers(key, value)
+        return first, second
+
+    def numbers(self, key: str, items: list) -> list[float]:
+        """Every item of the list under ``key`` as a finite float; a bad one fails as ``key[i]``."""
         out = []
-        for i, item in enumerate(value, start=1):
+        for i, item in enumerate(items, start=1):
             try:
                 out.append(_number(item))
             except _Problem as problem:
                 self.fail(f"{key}[{i}]", str(problem))
-        return out[0], out[1]
+        return out
 
     def limits(self) -> tuple[float, float] | None:
         pair = self.pair("limits", "[tightest, loosest]")
@@ -330,11 +339,7 @@ class _Table:
 
 
 def _curve_checker():
-    """costs.check_curve if that module provides it (it checks a curve over its limits)."""
-    try:
-        from .costs import check_curve
-    except (ImportError, AttributeError):
-        return None
+    """The check of a curve over its limits (:func:`allocator.costs.check_curve`)."""
     return check_curve
 
 
@@ -349,17 +354,17 @@ def _read_cost(cost: _Table, limits: tuple[float, float] | None):
     for key in cost.data:
         if key != "curve" and key not in CURVE_PARAMETERS[curve]:
             cost.fail(key, f"{key!r} is not a parameter of the {curve} curve")
-    if curve == "table":
+    fam = family(curve)
+    if fam.piecewise:
         return _read_table_cost(cost, limits)
-    a = cost.get("a", lambda v: _bounded(v, ge=0), default=0.0)
-    b = cost.get("b", lambda v: _bounded(v, gt=0), required=f"b > 0 for the {curve} curve")
-    c = k = None
-    if curve == "exponential":
-        c = cost.get("c", lambda v: _bounded(v, gt=0), required="c > 0 for the exponential curve")
-    if curve == "reciprocal-power":
-        k = cost.get("k", lambda v: _bounded(v, gt=0), required="k > 0 for the reciprocal-power curve")
-    result = CostCurve(curve=curve, a=a, b=b, c=c if c is not None else 0.0, k=k if k is not None else 1.0)
-    return result, limits
+    values = {}
+    for p in fam.parameters:
+        check = lambda v, p=p: _bounded(v, **p.bound_keywords)  # noqa: E731
+        if p.default is None:
+            values[p.name] = cost.get(p.name, check, required=f"{p.name} {p.bound} for the {curve} curve")
+        else:
+            values[p.name] = cost.get(p.name, check, default=p.default)
+    return CostCurve(curve=curve, **values), limits
 
 
 def _read_table_cost(cost: _Table, limits):
@@ -429,13 +434,7 @@ def _read_table_lists(cost: _Table):
             cost.fail(key, f"must be a list of numbers (got {_show(value)})")
         if len(value) > MAX_TABLE_ROWS:
             cost.fail(key, f"too many points ({len(value)}; the limit is {MAX_TABLE_ROWS})")
-        numbers = []
-        for i, item in enumerate(value, start=1):
-            try:
-                numbers.append(_number(item))
-            except _Problem as problem:
-                cost.fail(f"{key}[{i}]", str(problem))
-        columns[key] = numbers
+        columns[key] = cost.numbers(key, value)
     tolerances, costs = columns["tolerance"], columns["cost"]
     if len(tolerances) != len(costs):
         cost.fail(
@@ -592,6 +591,7 @@ def _read_contributor(item: _Table, seen: dict) -> Contributor:
     mean_shift = item.get("mean_shift", lambda v: _bounded(v, ge=0, le=1), default=0.0)
     count = item.get("count", lambda v: _integer(v, minimum=1, maximum=MAX_COUNT), default=1)
     fixed = item.get("fixed", _boolean, default=False)
+    units = item.get("units", _units_label)
 
     processes = ()
     limits = curve = None
@@ -642,6 +642,7 @@ def _read_contributor(item: _Table, seen: dict) -> Contributor:
         distribution=distribution,
         count=count,
         fixed=fixed,
+        units=units,
     )
 
 
@@ -661,7 +662,7 @@ def _read_chain(item: _Table, names) -> dict[str, float]:
     chain = {}
     for name, value in table.data.items():
         if name not in names:
-            table.fail(name, f"unknown contributor {name!r}{_hint(name, names)}")
+            table.fail(name, f"unknown contributor {name!r}{did_you_mean(name, names)}")
         try:
             coeff = _number(value)
         except _Problem as problem:
@@ -703,9 +704,11 @@ def _read_requirement(item: _Table, seen: dict, names) -> Requirement:
         item.fail(None, "needs lower, upper or both")
     if lower is not None and upper is not None and not lower < upper:
         item.fail("upper", f"must be greater than lower (got lower {lower!r}, upper {upper!r})")
-    fallout_ppm = item.get("fallout_ppm", lambda v: _bounded(v, gt=0, lt=PPM), default=DEFAULT_FALLOUT_PPM)
+    fallout_ppm = item.get("fallout_ppm", lambda v: _bounded(v, gt=0, lt=PER_MILLION), default=DEFAULT_FALLOUT_PPM)
+    units = item.get("units", _units_label)
     return Requirement(
-        name=name, chain=chain, expression=expression, lower=lower, upper=upper, fallout_ppm=fallout_ppm
+        name=name, chain=chain, expression=expression, lower=lower, upper=upper, fallout_ppm=fallout_ppm,
+        units=units,
     )
 
 
@@ -738,8 +741,7 @@ def _read_allocation(table: _Table | None) -> AllocationSettings:
 def _rounding(value):
     if isinstance(value, str):
         if value != "iso286":
-            close = _close(value, ["iso286"])
-            hint = f"; did you mean '{close}'?" if close else ""
+            hint = did_you_mean(value, ["iso286"], clause=True)
             raise _Problem(f"must be a positive step or 'iso286' (got {value!r}{hint})")
         return value
     try:
@@ -765,7 +767,7 @@ def _read_frontier(table: _Table | None, requirements) -> FrontierSettings:
     by_name = {r.name: r for r in requirements}
     name = table.get("requirement", lambda v: _text(v, nonempty=True))
     if name is not None and name not in by_name:
-        table.fail("requirement", f"unknown requirement {name!r}{_hint(name, by_name)}")
+        table.fail("requirement", f"unknown requirement {name!r}{did_you_mean(name, by_name)}")
     vary = table.get("vary", lambda v: _choice(v, FRONTIER_VARY), default="upper")
     if name is not None and vary in ("lower", "upper") and getattr(by_name[name], vary) is None:
         table.fail("vary", f"requirement {name!r} has no {vary} limit to vary")
@@ -773,7 +775,7 @@ def _read_frontier(table: _Table | None, requirements) -> FrontierSettings:
     if span is not None:
         if not span[0] < span[1]:
             table.fail("range", f"must be [from, to] with from < to (got {_fmt_pair(span)})")
-        if vary == "fallout_ppm" and not (0 < span[0] and span[1] < PPM):
+        if vary == "fallout_ppm" and not (0 < span[0] and span[1] < PER_MILLION):
             table.fail("range", f"fallout_ppm values must be > 0 and < 1000000 (got {_fmt_pair(span)})")
     points = table.get(
         "points", lambda v: _integer(v, minimum=2, maximum=MAX_FRONTIER_POINTS), default=25
@@ -788,18 +790,20 @@ def _build(data: dict, source: _Source, path: Path | None, sha256: str) -> Case:
     top = _Table(source, data, "")
     top.check_keys(TOP_KEYS)
     title = top.get("title", lambda v: _text(v, nonempty=True), required="a title for the case")
-    units = top.get("units", _text, default="mm")
+    units = top.get("units", _units_label, default="mm")
     currency = top.get("currency", _text, default="")
 
     seen: dict = {}
-    contributors = tuple(
-        _read_contributor(item, seen)
-        for item in top.array("contributor", header="contributor", at_least=1, at_most=MAX_CONTRIBUTORS)
-    )
+    contributor_tables = top.array("contributor", header="contributor", at_least=1, at_most=MAX_CONTRIBUTORS)
+    contributors = tuple(_read_contributor(item, seen) for item in contributor_tables)
     names = tuple(c.name for c in contributors)
     seen = {}
     requirement_tables = top.array("requirement", header="requirement", at_least=1, at_most=MAX_CONTRIBUTORS)
     requirements = tuple(_read_requirement(item, seen, names) for item in requirement_tables)
+
+    allocation = _read_allocation(top.sub("allocation"))
+    if allocation.rounding == "iso286":
+        _check_iso286_units(top, units, contributor_tables, contributors)
 
     case = Case(
         title=title,
@@ -807,7 +811,7 @@ def _build(data: dict, source: _Source, path: Path | None, sha256: str) -> Case:
         requirements=requirements,
         units=units,
         currency=currency,
-        allocation=_read_allocation(top.sub("allocation")),
+        allocation=allocation,
         economics=_read_economics(top.sub("economics")),
         frontier=_read_frontier(top.sub("frontier"), requirements),
         path=path,
@@ -821,6 +825,29 @@ def _build(data: dict, source: _Source, path: Path | None, sha256: str) -> Case:
             except ExpressionError as err:
                 table.fail("expression", str(err))
     return case
+
+
+def _check_iso286_units(top: _Table, units: str, tables, contributors) -> None:
+    """ISO 286 grades are tabulated in millimetres: the one place a units label is a scale.
+
+    Every contributor that is rounded (not ``fixed``) needs a length unit: its own
+    ``units``, else the case's; the error names the field that set the label.
+    """
+    from .grades import mm_per_unit
+
+    for table, c in zip(tables, contributors):
+        if c.fixed:
+            continue
+        label = units if c.units is None else c.units
+        try:
+            mm_per_unit(label)
+        except ValueError:
+            where, key = (top, "units") if c.units is None else (table, "units")
+            where.fail(
+                key,
+                f'{label!r} cannot be converted to millimetres for rounding = "iso286" '
+                "(use mm, m, um, μm, µm or in, or a numeric rounding step)",
+            )
 
 
 # a line that opens one more [[contributor]] / [[requirement]] table (spaces allowed)
@@ -944,8 +971,9 @@ def load_case(path) -> Case:
 
     Examples
     --------
-    >>> case = load_case("cases/gearbox_end_play.toml")  # doctest: +SKIP
-    >>> case.names  # doctest: +SKIP
+    >>> case = load_case("cases/gearbox_end_play.toml")
+    >>> case.names
+    ('housing_depth', 'gasket', 'bearing_width', 'retaining_ring', 'spacer', 'cover_spigot')
     """
     file = Path(path)
     src = _Source(str(path), file.parent)

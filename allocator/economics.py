@@ -27,12 +27,14 @@ from __future__ import annotations
 
 import math
 from dataclasses import asdict, dataclass, field
-from typing import Callable
+from typing import Callable, Sequence
 
 import numpy as np
 
+from . import status as _status
 from .errors import UsageError
 from .model import Case
+from .ppm import PER_MILLION, ppm_to_fraction
 from .progress import progress_bar
 
 __all__ = [
@@ -51,7 +53,6 @@ SCAN_PER_DECADE = 6  # where the whole scan is one batched dual solve
 SCAN_PER_DECADE_SLOW = 3  # where every scan point is a solver call of its own
 REFINE_ESTIMATE = 20  # allocations after the scan, per model (for the progress estimate)
 STATISTICAL = ("rss", "mean-shift")
-PPM = 1e-6
 
 
 def scrap_cost_per_assembly(fallout_ppm, scrap_cost):
@@ -77,10 +78,10 @@ def scrap_cost_per_assembly(fallout_ppm, scrap_cost):
 
     Examples
     --------
-    >>> scrap_cost_per_assembly(100.0, 55.0)
+    >>> print(round(scrap_cost_per_assembly(100.0, 55.0), 6))  # 55 · 100 · 1e-6
     0.0055
     """
-    return np.multiply(scrap_cost, np.multiply(fallout_ppm, PPM))
+    return np.multiply(scrap_cost, ppm_to_fraction(np.asarray(fallout_ppm, dtype=float)))
 
 
 def cost_per_assembly(manufacturing, fallout_ppm, scrap_cost):
@@ -107,7 +108,7 @@ def cost_per_assembly(manufacturing, fallout_ppm, scrap_cost):
 
     Examples
     --------
-    >>> round(cost_per_assembly(7.5, 100.0, 55.0), 6)
+    >>> print(round(cost_per_assembly(7.5, 100.0, 55.0), 6))  # 7.5 + 55 · 100 · 1e-6
     7.5055
     """
     return np.add(manufacturing, scrap_cost_per_assembly(fallout_ppm, scrap_cost))
@@ -207,9 +208,10 @@ def _finite_edge(func, bad: float, good: float) -> float:
 # --------------------------------------------------------------------------- results
 
 
-@dataclass
+@dataclass(frozen=True)
 class FalloutOptimum:
-    """The cheapest fallout target for one statistical model, and the current one.
+    """The cheapest fallout target for one statistical model, and the current one
+    (built complete by :func:`fallout_economics`, then never changed).
 
     Attributes
     ----------
@@ -240,7 +242,7 @@ class FalloutOptimum:
         dM/dp by a central finite difference of re-solved allocations [currency/ppm].
     slope_expected : float
         ``−scrap_cost · 1e-6``: what both slopes equal at an interior optimum.
-    curve_ppm, curve_manufacturing : list of float
+    curve_ppm, curve_manufacturing : tuple of float
         The coarse scan (for plots); NaN where the target cannot be met.
     """
 
@@ -265,12 +267,12 @@ class FalloutOptimum:
     annual_saving: float | None = None
     slope_shadow: float | None = None
     slope_numeric: float | None = None
-    curve_ppm: list = field(default_factory=list, repr=False)
-    curve_manufacturing: list = field(default_factory=list, repr=False)
+    curve_ppm: tuple = field(default=(), repr=False)
+    curve_manufacturing: tuple = field(default=(), repr=False)
 
     @property
     def success(self) -> bool:
-        return self.status in ("optimal", "boundary")
+        return self.status in (_status.OPTIMAL, _status.BOUNDARY)
 
     def to_dict(self, *, curve: bool = False) -> dict:
         out = asdict(self)
@@ -278,11 +280,12 @@ class FalloutOptimum:
             out.pop("curve_ppm")
             out.pop("curve_manufacturing")
         else:
+            out["curve_ppm"] = list(self.curve_ppm)
             out["curve_manufacturing"] = [None if not math.isfinite(x) else x for x in self.curve_manufacturing]
         return out
 
 
-@dataclass
+@dataclass(frozen=True)
 class FalloutEconomics:
     """Cost-optimal fallout targets per statistical model for one requirement.
 
@@ -302,7 +305,7 @@ class FalloutEconomics:
         The requirement's target in the case [ppm].
     bounds : (float, float)
         Search interval of the target [ppm].
-    results : list of FalloutOptimum
+    results : tuple of FalloutOptimum
     notes : tuple of str
     """
 
@@ -313,14 +316,14 @@ class FalloutEconomics:
     volume: float | None
     current_ppm: float
     bounds: tuple
-    results: list
+    results: tuple
     notes: tuple = ()
     status: str = "optimal"
     message: str = ""
 
     @property
     def success(self) -> bool:
-        return self.status == "optimal"
+        return self.status == _status.OPTIMAL
 
     def result(self, model: str) -> FalloutOptimum:
         for r in self.results:
@@ -333,6 +336,11 @@ class FalloutEconomics:
         import pandas as pd
 
         return pd.DataFrame([r.to_dict() for r in self.results]).set_index("model")
+
+    def _repr_html_(self) -> str:
+        from .display import result_html
+
+        return result_html(f"Fallout economics of {self.requirement}: {self.status}", self.to_frame(), self.message)
 
     def curve_frame(self):
         """The coarse scan as a tidy frame: ppm, model, manufacturing, scrap, total."""
@@ -388,12 +396,12 @@ def _economics_solver(case: Case, model: str):
 
 def fallout_economics(
     case: Case,
-    requirement: str | None = None,
-    models=None,
     *,
+    requirement: str | None = None,
+    models: Sequence[str] | None = None,
     scrap_cost: float | None = None,
     volume: float | None = None,
-    bounds=DEFAULT_BOUNDS,
+    bounds: tuple[float, float] = DEFAULT_BOUNDS,
     progress: bool = False,
 ) -> FalloutEconomics:
     """The fallout target that minimises manufacturing plus scrap cost per assembly.
@@ -450,7 +458,7 @@ def fallout_economics(
         raise UsageError(f"scrap_cost must be a finite number >= 0 (got {scrap:g})")
     volume = case.economics.volume if volume is None else volume
     lo, hi = (float(b) for b in bounds)
-    if not (0 < lo < hi < 1e6):
+    if not (0 < lo < hi < PER_MILLION):
         raise UsageError(f"bounds must satisfy 0 < from < to < 1000000 ppm (got {lo:g}, {hi:g})")
 
     notes = []
@@ -481,7 +489,7 @@ def fallout_economics(
         planned = 0
         for sweep, grid in sweeps:
             bar.describe(sweep.model)
-            results.append(_optimise(sweep, grid, scrap, volume, float(req.fallout_ppm), (lo, hi), bar))
+            results.append(_optimise(sweep, grid, scrap, volume, float(req.target_ppm), (lo, hi), bar))
             planned += grid.size + REFINE_ESTIMATE
             if bar.done < planned:  # fewer refinement steps than estimated: drop the rest
                 bar.grow(bar.done - planned)
@@ -490,16 +498,17 @@ def fallout_economics(
         bar.close()
 
     statuses = [r.status for r in results]
-    if all(s == "infeasible" for s in statuses):
-        status = "infeasible"
+    unmet = (_status.FAILED, _status.INFEASIBLE)
+    if all(s == _status.INFEASIBLE for s in statuses):
+        status = _status.INFEASIBLE
         message = results[0].message
-    elif any(s in ("failed", "infeasible") for s in statuses):
-        status = "failed"
-        message = "; ".join(f"{r.model}: {r.message}" for r in results if r.status in ("failed", "infeasible"))
+    elif any(s in unmet for s in statuses):
+        status = _status.FAILED
+        message = "; ".join(f"{r.model}: {r.message}" for r in results if r.status in unmet)
     else:
-        status = "optimal"
+        status = _status.OPTIMAL
         message = "; ".join(
-            f"{r.model}: {r.optimal_ppm:.4g} ppm" + (" (boundary)" if r.status == "boundary" else "")
+            f"{r.model}: {r.optimal_ppm:.4g} ppm" + (" (boundary)" if r.status == _status.BOUNDARY else "")
             for r in results
         )
     return FalloutEconomics(
@@ -508,9 +517,9 @@ def fallout_economics(
         requirement=req.name,
         scrap_cost=scrap,
         volume=volume,
-        current_ppm=float(req.fallout_ppm),
+        current_ppm=float(req.target_ppm),
         bounds=(lo, hi),
-        results=results,
+        results=tuple(results),
         notes=tuple(notes),
         status=status,
         message=message,
@@ -522,7 +531,7 @@ def _optimise(sweep, grid, scrap, volume, current_ppm, bounds, bar=None) -> Fall
 
     ``bar`` (see :func:`allocator.progress.progress_bar`) is told of every allocation.
     """
-    expected = -scrap * PPM
+    expected = -scrap_cost_per_assembly(1.0, scrap)  # minus the scrap cost of one more ppm
     cache: dict[float, object] = {}
     tick = bar.update if bar is not None else (lambda k=1: None)
 
@@ -551,63 +560,71 @@ def _optimise(sweep, grid, scrap, volume, current_ppm, bounds, bar=None) -> Fall
             return float(cost_per_assembly(m, p, scrap)) if math.isfinite(m) else math.inf
         return total(p)
 
-    base = FalloutOptimum(
-        model=sweep.model, status="optimal", message="", current_ppm=current_ppm,
-        slope_expected=expected, curve_ppm=grid.tolist(), curve_manufacturing=manufacturing.tolist(),
-    )
+    common = dict(model=sweep.model, current_ppm=current_ppm, slope_expected=expected,
+                  curve_ppm=tuple(grid.tolist()), curve_manufacturing=tuple(manufacturing.tolist()))
     current = allocation(current_ppm)
-    if current.status == "optimal":
-        base.current_manufacturing = current.total_cost
-        base.current_scrap = float(scrap_cost_per_assembly(current_ppm, scrap))
-        base.current_total = base.current_manufacturing + base.current_scrap
-        base.annual_current_total = annual_cost(base.current_total, volume)
+    at_current = {}
+    if current.status == _status.OPTIMAL:
+        current_scrap = float(scrap_cost_per_assembly(current_ppm, scrap))
+        current_total = current.total_cost + current_scrap
+        at_current = dict(current_manufacturing=current.total_cost, current_scrap=current_scrap,
+                          current_total=current_total, annual_current_total=annual_cost(current_total, volume))
 
     if not np.isfinite(manufacturing).any():
-        base.status = "failed" if failed else "infeasible"
-        base.message = failed[0] if failed else (
+        message = failed[0] if failed else (
             f"no fallout target in [{bounds[0]:g}, {bounds[1]:g}] ppm can be met"
             + (f": {points[-1].message}" if points and points[-1].message else "")
         )
-        return base
+        return FalloutOptimum(status=_status.FAILED if failed else _status.INFEASIBLE, message=message,
+                              **common, **at_current)
 
     p_opt, k_opt, _ = minimise_log(total_scanned, grid)
     alloc = allocation(p_opt)
     req_result = next(r for r in alloc.requirements if r.name == sweep.requirement)
-    base.optimal_ppm = p_opt
-    base.predicted_ppm = req_result.fallout_ppm
-    base.manufacturing_cost = alloc.total_cost
-    base.scrap_cost = float(scrap_cost_per_assembly(p_opt, scrap))
-    base.total_cost = base.manufacturing_cost + base.scrap_cost
-    base.annual_manufacturing = annual_cost(base.manufacturing_cost, volume)
-    base.annual_scrap = annual_cost(base.scrap_cost, volume)
-    base.annual_total = annual_cost(base.total_cost, volume)
-    if base.current_total is not None:
-        base.saving_per_assembly = base.current_total - base.total_cost
-        base.annual_saving = annual_cost(base.saving_per_assembly, volume)
-    base.slope_shadow = req_result.shadow_ppm
-    base.slope_numeric = _slope(lambda p: allocation(p), p_opt)
+    predicted = req_result.fallout_ppm
+    manufacturing_cost = alloc.total_cost
+    scrap_cost = float(scrap_cost_per_assembly(p_opt, scrap))
+    total_cost = manufacturing_cost + scrap_cost
+    optimum = dict(
+        optimal_ppm=p_opt,
+        predicted_ppm=predicted,
+        manufacturing_cost=manufacturing_cost,
+        scrap_cost=scrap_cost,
+        total_cost=total_cost,
+        annual_manufacturing=annual_cost(manufacturing_cost, volume),
+        annual_scrap=annual_cost(scrap_cost, volume),
+        annual_total=annual_cost(total_cost, volume),
+        slope_shadow=req_result.shadow_ppm,
+        slope_numeric=_slope(lambda p: allocation(p), p_opt),
+    )
+    if at_current:
+        saving = at_current["current_total"] - total_cost
+        optimum.update(saving_per_assembly=saving, annual_saving=annual_cost(saving, volume))
 
     # where does the optimum sit?
     at_bound = p_opt <= bounds[0] * (1 + 1e-6) or p_opt >= bounds[1] * (1 - 1e-6)
     tight_edge = not math.isfinite(total(p_opt * (1 - 1e-4)))
-    slack = base.predicted_ppm < p_opt * (1 - 1e-6)  # the target does not bind
+    slack = predicted < p_opt * (1 - 1e-6)  # the target does not bind
+    status = _status.BOUNDARY
     if at_bound:
-        base.status = "boundary"
-        base.message = f"the optimum sits at the search bound {p_opt:.4g} ppm"
+        message = f"the optimum sits at the search bound {p_opt:.4g} ppm"
     elif tight_edge:
-        base.status = "boundary"
-        base.message = (f"the optimum sits at the tightest target the tolerances can meet ({p_opt:.4g} ppm): "
-                        "scrap outweighs any saving from looser tolerances")
+        message = (f"the optimum sits at the tightest target the tolerances can meet ({p_opt:.4g} ppm): "
+                   "scrap outweighs any saving from looser tolerances")
     elif slack:
-        base.status = "boundary"
-        base.message = (f"the target does not bind at {p_opt:.4g} ppm (predicted {base.predicted_ppm:.4g} ppm): "
-                        "a looser target buys nothing more")
+        message = (f"the target does not bind at {p_opt:.4g} ppm (predicted {predicted:.4g} ppm): "
+                   "a looser target buys nothing more")
     else:
-        slope = base.slope_numeric if base.slope_numeric is not None else base.slope_shadow
+        status = _status.OPTIMAL
+        numeric = optimum["slope_numeric"]
+        slope = numeric if numeric is not None else optimum["slope_shadow"]
         error = abs(slope - expected) / abs(expected) if expected else abs(slope)
-        base.message = (f"interior optimum; dM/dp = {slope:.4g} against -scrap_cost*1e-6 = {expected:.4g} "
-                        f"(relative difference {error:.1e})")
-    return base
+        # in words: −dM/dp (manufacturing saved) against s·1e-6 (scrap added), per 1000 ppm
+        balance = "the two balance" if error <= 1e-3 else f"they differ by {100 * error:.2g} %"
+        message = (f"interior optimum: there each further 1000 ppm of fallout saves {-1000 * slope:.4g} "
+                   f"of manufacturing cost per assembly and adds {-1000 * expected:.4g} of scrap cost; "
+                   f"{balance}")
+    return FalloutOptimum(status=status, message=message, **common, **at_current, **optimum)
 
 
 def _slope(allocation, p: float, rel_step: float = 1e-4):

@@ -1,4 +1,9 @@
-"""Writing output files safely: whole or not at all, never over an input."""
+"""Writing output files safely: whole or not at all, never over an input.
+
+:func:`check_output_path` is the one check of an output path (not an input, in a folder
+that exists); commands call it for every output before any work is done, and
+:func:`atomic_write` calls it again just before writing.
+"""
 
 from __future__ import annotations
 
@@ -8,7 +13,42 @@ from pathlib import Path
 
 from .errors import UsageError
 
-__all__ = ["atomic_write"]
+__all__ = ["atomic_write", "check_output_path"]
+
+
+def check_output_path(path, *, protect=(), input_name: str = "input file") -> Path:
+    """Refuse (UsageError) an output ``path`` that is one of the inputs or whose folder is missing.
+
+    Parameters
+    ----------
+    path : str or pathlib.Path
+        The output file; messages show it as given.
+    protect : iterable of str or pathlib.Path or None
+        Input files never to overwrite (None entries are skipped). Paths are compared
+        after resolving, so a symlink or ``sub/..`` to an input is caught too.
+    input_name : str
+        What the message calls a protected file: ``"<path>: refusing to overwrite the
+        <input_name>"``.
+
+    Returns
+    -------
+    pathlib.Path
+        ``Path(path)``.
+
+    Examples
+    --------
+    >>> check_output_path("case.toml", protect=["case.toml"], input_name="input case file")
+    Traceback (most recent call last):
+    ...
+    allocator.errors.UsageError: case.toml: refusing to overwrite the input case file
+    """
+    target = Path(path)
+    for p in protect:
+        if p is not None and target.resolve() == Path(p).resolve():
+            raise UsageError(f"{path}: refusing to overwrite the {input_name}")
+    if not target.parent.exists():
+        raise UsageError(f"{path}: folder {target.parent} does not exist")
+    return target
 
 
 def atomic_write(path, data: bytes | str, *, protect=()) -> Path:
@@ -19,12 +59,7 @@ def atomic_write(path, data: bytes | str, *, protect=()) -> Path:
     partial file and no temporary behind, keeps any previous file, and becomes a one-line
     UsageError naming the target.
     """
-    target = Path(path)
-    for p in protect:
-        if p is not None and target.resolve() == Path(p).resolve():
-            raise UsageError(f"{target}: refusing to overwrite the input file")
-    if not target.parent.exists():
-        raise UsageError(f"{target}: folder {target.parent} does not exist")
+    target = check_output_path(Path(path), protect=protect)
     mode = "wb" if isinstance(data, bytes) else "w"
     try:
         fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=target.parent)

@@ -19,11 +19,16 @@ from functools import cached_property
 from pathlib import Path
 from typing import Literal, Mapping
 
+from .costs import CURVES, CostCurve  # noqa: F401  (re-exported: the curve families live in the cost registry)
+
 DISTRIBUTIONS = ("normal", "uniform", "triangular")
 MODELS = ("worst-case", "rss", "mean-shift")
-CURVES = ("reciprocal", "reciprocal-power", "exponential", "table")
+# how plots, reports and tables name each model in prose
+MODEL_LABELS = {"worst-case": "worst case", "rss": "RSS", "mean-shift": "mean shift"}
 DEFAULT_FALLOUT_PPM = 2700.0
 DEFAULT_MODELS = ("worst-case", "rss")
+# A tolerance written equal to a limit (up to float noise) is inside it.
+HOLD_RTOL = 1e-9
 
 Distribution = Literal["normal", "uniform", "triangular"]
 ModelName = Literal["worst-case", "rss", "mean-shift"]
@@ -53,42 +58,29 @@ def sigma_factor(distribution: str, cp: float = 1.0) -> float:
     raise ValueError(f"unknown distribution {distribution!r}")
 
 
-@dataclass(frozen=True)
-class CostCurve:
-    """Unit cost of one part as a function of its ± tolerance.
+def per_unit(numerator: str, denominator: str) -> str:
+    """Label of a ratio of two labelled quantities, e.g. ``per_unit("N", "mm") == "N/mm"``.
 
-    ``curve`` is one of :data:`CURVES`. Parameters not used by a curve keep their
-    defaults. For ``table``, ``points_tolerance`` is strictly increasing and
-    ``points_cost`` holds the cost at each point; ``between`` is ``"interpolate"``
-    (piecewise linear) or ``"choose"`` (only the listed tolerances exist).
-    The arithmetic lives in :mod:`allocator.costs`.
+    Labels are text only (no conversion): equal labels give ``"-"`` (a pure number),
+    an empty denominator gives the numerator, an empty numerator ``"1/mm"``; ``N``
+    per ``N/mm`` is ``mm``; any other denominator that is itself a ratio or a product
+    is put in parentheses.
+
+    Examples
+    --------
+    >>> per_unit("EUR", "N"), per_unit("mm", "mm"), per_unit("EUR", "N/mm"), per_unit("N", "N/mm")
+    ('EUR/N', '-', 'EUR/(N/mm)', 'mm')
     """
-
-    curve: str
-    a: float = 0.0
-    b: float = 0.0
-    c: float = 0.0
-    k: float = 1.0
-    points_tolerance: tuple[float, ...] = ()
-    points_cost: tuple[float, ...] = ()
-    between: str = "interpolate"
-
-    @property
-    def is_discrete(self) -> bool:
-        """True when only listed tolerances exist (a ``choose`` table)."""
-        return self.curve == "table" and self.between == "choose"
-
-    def value(self, tolerance):
-        """Cost at ``tolerance`` (scalar or array) [currency]."""
-        from . import costs
-
-        return costs.cost_value(self, tolerance)
-
-    def derivative(self, tolerance):
-        """d cost / d tolerance [currency/length]."""
-        from . import costs
-
-        return costs.cost_derivative(self, tolerance)
+    if numerator == denominator:
+        return "-"
+    if not denominator:
+        return numerator
+    head, slash, rest = denominator.partition("/")
+    if slash and head == numerator and rest and "/" not in rest:
+        return rest  # N per (N/mm) is mm
+    if any(ch in denominator for ch in "/*· "):
+        denominator = f"({denominator})"
+    return f"{numerator or '1'}/{denominator}"
 
 
 @dataclass(frozen=True)
@@ -117,6 +109,7 @@ class Contributor:
     distribution: str = "normal"
     count: int = 1
     fixed: bool = False
+    units: str | None = None  # label of nominal and tolerance; None: the case's ``units``
 
     @property
     def sigma_factor(self) -> float:
@@ -142,9 +135,118 @@ class Contributor:
 
     @property
     def is_discrete(self) -> bool:
-        """True when allocation needs a discrete choice (processes or a ``choose`` table)."""
-        if self.fixed:
-            return False
+        """True when allocation needs a discrete choice for this contributor.
+
+        Free: several processes or a ``choose`` table. Fixed: several processes can make
+        its ``tolerance`` (see :meth:`needs_choice`).
+        """
+        return self.needs_choice(self.tolerance if self.fixed else None)
+
+    def options_holding(self, tolerance: float) -> tuple[int, ...]:
+        """The options (positions in :meth:`options`) that can make ± ``tolerance``.
+
+        An option can make ``t`` when its ``limits`` hold it (up to :data:`HOLD_RTOL`
+        relative) and its cost is defined there: a ``choose`` table must list ``t``.
+        Holding a tolerance does not choose the process: each of these makes ``t`` at its
+        own cost and with its own cp (so its own σ).
+
+        Parameters
+        ----------
+        tolerance : float
+            ± tolerance [length].
+
+        Returns
+        -------
+        tuple of int
+            Empty when no option makes ``tolerance``.
+
+        Examples
+        --------
+        >>> shaft = Contributor(name="shaft", nominal=20.0, tolerance=0.03, processes=(
+        ...     Process("lathe", (0.01, 0.05), CostCurve("reciprocal", a=1.0, b=0.01)),
+        ...     Process("grinder", (0.005, 0.02), CostCurve("reciprocal", a=3.0, b=0.01))))
+        >>> shaft.options_holding(0.015), shaft.options_holding(0.03), shaft.options_holding(0.1)
+        ((0, 1), (0,), ())
+        """
+        t = float(tolerance)
+        out = []
+        for k, p in enumerate(self.options()):
+            lo, hi = p.limits
+            if not lo * (1.0 - HOLD_RTOL) <= t <= hi * (1.0 + HOLD_RTOL):
+                continue
+            if p.cost is not None and p.cost.is_discrete:
+                try:
+                    p.cost.value(t)
+                except ValueError:  # not one of the listed tolerances
+                    continue
+            out.append(k)
+        return tuple(out)
+
+    def cheapest_option_holding(self, tolerance: float) -> int | None:
+        """The cheapest option that can make ± ``tolerance`` (a position in :meth:`options`).
+
+        The rule for a tolerance whose process nobody chose (the case's current
+        ``tolerance``, a plain tolerance map given to verify): among
+        :meth:`options_holding`, the lowest unit cost at ``tolerance`` (an option without a
+        cost curve costs 0); ties go to the option listed first.
+
+        Parameters
+        ----------
+        tolerance : float
+            ± tolerance [length].
+
+        Returns
+        -------
+        int or None
+            None when no option makes ``tolerance``.
+
+        Examples
+        --------
+        >>> shaft = Contributor(name="shaft", nominal=20.0, tolerance=0.03, processes=(
+        ...     Process("lathe", (0.01, 0.05), CostCurve("reciprocal", a=1.0, b=0.01)),
+        ...     Process("grinder", (0.005, 0.02), CostCurve("reciprocal", a=3.0, b=0.01))))
+        >>> shaft.cheapest_option_holding(0.015), shaft.cheapest_option_holding(0.008)
+        (0, 1)
+        >>> shaft.cheapest_option_holding(0.1) is None
+        True
+        """
+        from . import costs
+
+        makers = self.options_holding(tolerance)
+        if not makers:
+            return None
+        options = self.options()
+        best, best_cost = makers[0], math.inf
+        for k in makers:
+            curve = options[k].cost
+            if curve is None:
+                value = 0.0
+            else:
+                try:
+                    value = float(costs.cost_value(curve, float(tolerance)))
+                except ValueError:  # not defined there
+                    continue
+            if value < best_cost:
+                best, best_cost = k, value
+        return best
+
+    def needs_choice(self, held: float | None = None) -> bool:
+        """True when allocating this contributor is a discrete choice.
+
+        Parameters
+        ----------
+        held : float, optional
+            The ± tolerance it is held at [length] (a ``fix`` entry, or ``tolerance`` when
+            it is ``fixed``); None when it is free.
+
+        Returns
+        -------
+        bool
+            Free: several processes or a ``choose`` table. Held at ``t``: several options
+            can make ``t`` (:meth:`options_holding`); with one it is fully determined.
+        """
+        if held is not None:
+            return len(self.options_holding(held)) > 1
         return len(self.processes) > 1 or any(
             p.cost is not None and p.cost.is_discrete for p in self.options()
         )
@@ -163,7 +265,18 @@ class Requirement:
     expression: str | None = None
     lower: float | None = None
     upper: float | None = None
-    fallout_ppm: float = DEFAULT_FALLOUT_PPM
+    fallout_ppm: float = DEFAULT_FALLOUT_PPM  # the case file's name for the target
+    units: str | None = None  # label of the response and its limits; None: the case's ``units``
+
+    @property
+    def target_ppm(self) -> float:
+        """The fallout this requirement allows [ppm]: the case file's ``fallout_ppm``.
+
+        On a requirement ``fallout_ppm`` is a target; on every result it is a prediction
+        or a count (docs/results.md, *What fallout_ppm means*). The library says
+        ``target_ppm`` for the target, as the results do.
+        """
+        return self.fallout_ppm
 
     @property
     def is_linear(self) -> bool:
@@ -201,7 +314,11 @@ class FrontierSettings:
 
 @dataclass(frozen=True)
 class Case:
-    """A whole validated case: contributors, requirements and settings."""
+    """A whole validated case: contributors, requirements and settings.
+
+    ``units`` labels every contributor and requirement that has no ``units`` of its own;
+    :meth:`contributor_units` and :meth:`requirement_units` give the label in force.
+    """
 
     title: str
     contributors: tuple[Contributor, ...]
@@ -230,11 +347,43 @@ class Case:
     def contributor(self, name: str) -> Contributor:
         return self.contributors[self.index(name)]
 
-    def requirement(self, name: str) -> Requirement:
+    @cached_property
+    def _requirements_by_name(self) -> dict[str, Requirement]:
+        # built once per case: problem and result code look requirements up per solve
+        out: dict[str, Requirement] = {}
         for r in self.requirements:
-            if r.name == name:
-                return r
-        raise KeyError(name)
+            out.setdefault(r.name, r)  # the first of a name, as a scan would find it
+        return out
+
+    def requirement(self, name: str) -> Requirement:
+        return self._requirements_by_name[name]
+
+    def contributor_units(self, name: str) -> str:
+        """Units label of contributor ``name``: its own ``units``, else the case's."""
+        own = self.contributor(name).units
+        return self.units if own is None else own
+
+    @cached_property
+    def own_contributor_units(self) -> dict[str, str]:
+        """Contributor name -> units label, only for contributors with their own label."""
+        return {c.name: c.units for c in self.contributors if c.units is not None}
+
+    def requirement_units(self, name: str) -> str:
+        """Units label of requirement ``name`` (its response and limits): its own, else the case's."""
+        own = self.requirement(name).units
+        return self.units if own is None else own
+
+    def sensitivity_units(self, requirement: str, contributor: str) -> str:
+        """Label of ∂y/∂x: requirement units per contributor unit (``"N/mm"``), see :func:`per_unit`."""
+        return per_unit(self.requirement_units(requirement), self.contributor_units(contributor))
+
+    @property
+    def unit_labels(self) -> tuple[str, ...]:
+        """The distinct units labels in use, the case's first (for a one-line summary)."""
+        items = (*self.contributors, *self.requirements)
+        used = {self.units if x.units is None else x.units for x in items}
+        labels = dict.fromkeys([self.units] + [x.units for x in items if x.units is not None])
+        return tuple(label for label in labels if label and label in used)
 
     @property
     def current_tolerances(self):
@@ -256,6 +405,90 @@ class Case:
 
         return np.array([c.sigma_factor for c in self.contributors], dtype=float)
 
+    def making_processes(self, tolerances, processes: Mapping[str, str] | None = None) -> tuple[str, ...]:
+        """The process that makes each contributor at ``tolerances``.
+
+        Parameters
+        ----------
+        tolerances : array_like
+            ± tolerance per contributor, in case order [length].
+        processes : mapping name -> process name, optional
+            Processes already chosen (e.g. :attr:`allocator.solve.Allocation.processes`).
+            A chosen process must be one of the contributor's and make its tolerance
+            (:meth:`Contributor.options_holding`). Contributors not named, or named with
+            ``""``, take the cheapest process that makes their tolerance
+            (:meth:`Contributor.cheapest_option_holding`).
+
+        Returns
+        -------
+        tuple of str
+            Process name per contributor; ``""`` for a contributor without processes and
+            for one that no process makes (it keeps its own cp).
+
+        Raises
+        ------
+        CaseError
+            Field ``processes.<name>``: an unknown contributor or process, or a process
+            whose range does not hold the tolerance.
+        """
+        from .errors import CaseError
+
+        chosen = dict(processes or {})
+        for name in chosen:
+            if name not in self._positions:
+                raise CaseError("unknown contributor", field=f"processes.{name}")
+        out = []
+        for c, t in zip(self.contributors, tolerances):
+            t = float(t)
+            name = chosen.get(c.name) or ""
+            if not c.processes:
+                if name:
+                    raise CaseError(
+                        f"{c.name!r} has no process entries, so it cannot be made by {name!r}",
+                        field=f"processes.{c.name}",
+                    )
+                out.append("")
+                continue
+            if name:
+                names = [p.name for p in c.processes]
+                if name not in names:
+                    raise CaseError(
+                        f"no process {name!r} (the processes of {c.name!r}: {', '.join(names)})",
+                        field=f"processes.{c.name}",
+                    )
+                if names.index(name) not in c.options_holding(t):
+                    lo, hi = c.processes[names.index(name)].limits
+                    raise CaseError(
+                        f"process {name!r} makes ±{lo:g} to ±{hi:g}, not ±{t:g}",
+                        field=f"processes.{c.name}",
+                    )
+                out.append(name)
+                continue
+            k = c.cheapest_option_holding(t)
+            out.append("" if k is None else c.processes[k].name)
+        return tuple(out)
+
+    def sigma_factors_at(self, tolerances, processes: Mapping[str, str] | None = None):
+        """σ / t per contributor when made by the processes of :meth:`making_processes`.
+
+        A contributor made by a process with its own ``cp`` takes that cp; every other
+        contributor its own (:attr:`sigma_factors`). Same parameters as
+        :meth:`making_processes`.
+
+        Returns
+        -------
+        numpy.ndarray
+            σ / t per contributor [-].
+        """
+        import numpy as np
+
+        made_by = self.making_processes(tolerances, processes)
+        out = []
+        for c, name in zip(self.contributors, made_by):
+            process = next((p for p in c.processes if p.name == name), None) if name else None
+            out.append(c.sigma_factor if process is None else c.process_sigma_factor(process))
+        return np.array(out, dtype=float)
+
     @property
     def mean_shifts(self):
         import numpy as np
@@ -266,9 +499,12 @@ class Case:
         """A copy whose current tolerances are replaced by ``tolerances`` (by name)."""
         from dataclasses import replace
 
-        unknown = set(tolerances) - set(self.names)
-        if unknown:
-            raise KeyError(f"unknown contributor(s): {', '.join(sorted(unknown))}")
+        from .errors import UsageError, unknown_names
+
+        tolerances = dict(tolerances.items())
+        problem = unknown_names("contributor", tolerances, self.names)
+        if problem:
+            raise UsageError(f"tolerances: {problem}")
         return replace(
             self,
             contributors=tuple(

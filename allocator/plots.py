@@ -12,8 +12,10 @@ when a figure is drawn.
 - :func:`render` turns a figure into PNG or SVG bytes (SVG text stays text);
 - :func:`save` writes them by the file's extension through a temporary file and an
   atomic rename, refusing to overwrite protected paths (the input case);
-- :func:`frontier_figure` and :func:`economics_figure` draw the results of
-  :mod:`allocator.sweep` and :mod:`allocator.economics`.
+- :func:`frontier_figure`, :func:`economics_figure`, :func:`verification_figure` and
+  :func:`contributions_figure` draw the results of :mod:`allocator.sweep`,
+  :mod:`allocator.economics`, :mod:`allocator.simulate` and :mod:`allocator.analysis`
+  (the report's figures, :mod:`allocator.report.figures`, are these drawn as inline SVG).
 """
 
 from __future__ import annotations
@@ -24,6 +26,7 @@ from pathlib import Path
 
 from .errors import UsageError
 from .files import atomic_write
+from .model import MODEL_LABELS
 
 __all__ = [
     "FORMATS",
@@ -37,6 +40,8 @@ __all__ = [
     "save",
     "frontier_figure",
     "economics_figure",
+    "verification_figure",
+    "contributions_figure",
     "render_frontier_plot",
     "render_economics_plot",
     "plot_frontier",
@@ -45,7 +50,6 @@ __all__ = [
 
 FORMATS = {".png": "png", ".svg": "svg"}
 
-MODEL_LABELS = {"worst-case": "worst case", "rss": "RSS", "mean-shift": "mean shift"}
 
 # Greys from black to mid grey; every one stays visible on white when printed.
 _INK = ("0.0", "0.35", "0.55", "0.2", "0.45")
@@ -257,7 +261,7 @@ def frontier_figure(frontier):
     x_label = _value_label(frontier.vary, frontier.requirement, frontier.units)
     if frontier.vary == "lower":
         x_label += "  (looser to the right)"
-    ax.set_xlabel(x_label)
+    ax.set_xlabel(x_label, parse_math=False)  # the units label is text from the case, never mathtext
     ax.set_ylabel(f"least cost per assembly{_money(frontier.currency)}")
     what = "fallout target" if log else f"{frontier.vary} limit"
     ax.set_title(f"{frontier.title}\ncost against the {what} of {frontier.requirement}", fontsize="medium")
@@ -289,6 +293,8 @@ def economics_figure(economics):
     """
     import numpy as np
 
+    from .economics import scrap_cost_per_assembly
+
     fig = new_figure()
     ax = fig.subplots()
     money = economics.currency
@@ -297,7 +303,7 @@ def economics_figure(economics):
             continue
         ppm = np.asarray(result.curve_ppm, dtype=float)
         manufacturing = np.asarray(result.curve_manufacturing, dtype=float)
-        scrap = economics.scrap_cost * ppm * 1e-6
+        scrap = scrap_cost_per_assembly(ppm, economics.scrap_cost)
         style = series_style(result.model)
         marker, ink = style["marker"], style["color"]
         name = MODEL_LABELS.get(result.model, result.model)
@@ -325,6 +331,104 @@ def economics_figure(economics):
         fontsize="medium",
     )
     finish_axes(ax)
+    return fig
+
+
+def verification_figure(verification):
+    """Response histograms of a Monte Carlo verification (:func:`allocator.simulate.verify`).
+
+    Parameters
+    ----------
+    verification : allocator.simulate.Verification
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+        One panel per requirement: the simulated density (grey), the limits (dashed) and
+        the RSS normal approximation at the shifted mean (solid) [density against the
+        response in the requirement's units].
+    """
+    # a bare Figure renders through the Agg/SVG canvases without touching pyplot's backend
+    import numpy as np
+    from matplotlib.figure import Figure
+    from scipy import stats
+
+    checks = verification.requirements
+    fig = Figure(figsize=(7.0, 3.2 * len(checks)), layout="constrained")
+    axes = fig.subplots(len(checks), 1, squeeze=False)[:, 0]
+    for ax, c in zip(axes, checks):
+        edges = c.histogram_edges
+        width = edges[1] - edges[0]
+        density = c.histogram_counts / (c.samples * width)
+        ax.stairs(density, edges, fill=True, color="0.75", label=f"Monte Carlo ({c.samples:,} assemblies)")
+        lo_x, hi_x = edges[0], edges[-1]
+        for limit, label in ((c.lower, "limits"), (c.upper, "limits" if c.lower is None else "_nolegend_")):
+            if limit is not None:
+                ax.axvline(limit, color="black", linestyle="--", linewidth=1.2, label=label)
+                lo_x, hi_x = min(lo_x, limit), max(hi_x, limit)
+        if c.sigma > 0:
+            xs = np.linspace(lo_x, hi_x, 600)
+            label = "RSS normal" + (" at the worst mean shift" if c.shift_side else "")
+            ax.plot(xs, stats.norm.pdf(xs, c.shifted_mean, c.sigma), color="black", linewidth=1.2, label=label)
+        pad = 0.03 * (hi_x - lo_x)
+        ax.set_xlim(lo_x - pad, hi_x + pad)
+        ax.set_title(f"{c.name}: {c.fallout_ppm:.4g} ppm outside (target {c.target_ppm:g} ppm)")
+        # a units label is text from the case: never mathtext
+        ax.set_xlabel(f"{c.name} [{c.units}]" if c.units else f"{c.name} (response)", parse_math=False)
+        ax.set_ylabel("density")
+        ax.legend(fontsize="small", loc="upper right")
+    return fig
+
+
+def contributions_figure(analysis, allocated_analysis=None, *, allocation_label: str = "allocation"):
+    """Horizontal bars: each contributor's share of the response variance σ², per requirement.
+
+    Parameters
+    ----------
+    analysis : allocator.analysis.Analysis
+        The current design: solid dark bars.
+    allocated_analysis : allocator.analysis.Analysis, optional
+        The same case at allocated tolerances: white hatched bars beside the current ones,
+        told apart by fill pattern and legend, not by colour.
+    allocation_label : str
+        Legend text of the hatched bars.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+        One panel per requirement [share of σ² in %].
+    """
+    import numpy as np
+    from matplotlib.figure import Figure
+
+    current = analysis.requirements
+    allocated = allocated_analysis.requirements if allocated_analysis is not None else None
+    n_rows = [max(len(r.contributions), 1) for r in current]
+    height = sum(0.26 * n * (2 if allocated else 1) + 1.0 for n in n_rows)
+    fig = Figure(figsize=(7.0, max(2.2, height)), layout="constrained")
+    axes = fig.subplots(len(current), 1, squeeze=False, height_ratios=n_rows)[:, 0]
+    for j, (ax, req) in enumerate(zip(axes, current)):
+        names = [c.name for c in req.contributions]
+        y = np.arange(len(names))
+        share_now = [100.0 * c.variance_share for c in req.contributions]
+        bar = 0.38 if allocated else 0.6
+        ax.barh(y - (bar / 2 if allocated else 0), share_now, height=bar, color="0.25", edgecolor="black",
+                linewidth=0.6, label="current design")
+        if allocated:
+            by_name = {c.name: 100.0 * c.variance_share for c in allocated[j].contributions}
+            share_alloc = [by_name.get(n, 0.0) for n in names]
+            ax.barh(y + bar / 2, share_alloc, height=bar, color="white", edgecolor="black", hatch="////",
+                    linewidth=0.6, label=allocation_label)
+        ax.set_yticks(y, names)
+        ax.invert_yaxis()
+        ax.set_xlim(0, 100)
+        ax.set_xlabel("share of the response variance σ² [%]")
+        ax.set_title(f"{req.name}", loc="left", fontsize="medium")
+        ax.grid(axis="x", color="0.85", linewidth=0.6)
+        ax.set_axisbelow(True)
+        for side in ("top", "right"):
+            ax.spines[side].set_visible(False)
+        ax.legend(fontsize="small", loc="lower right", frameon=True)
     return fig
 
 

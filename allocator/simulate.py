@@ -1,8 +1,9 @@
 """Verification of a set of tolerances by Monte Carlo, with exact convolution for chains.
 
 :func:`verify` draws whole assemblies: every contributor instance independently from its
-own distribution (normal with σ = ``sigma_factor · t``, uniform or symmetric triangular on
-``±t``), a contributor's value being the sum of its ``count`` instances, and evaluates each
+own distribution (normal with σ = ``t / (3·cp)``, the cp of the process that makes it, see
+:meth:`allocator.model.Case.sigma_factors_at`; uniform or symmetric triangular on ``±t``),
+a contributor's value being the sum of its ``count`` instances, and evaluates each
 requirement's exact response (the expression itself, not its linearisation). It counts the
 assemblies outside the limits, gives an exact (Clopper–Pearson) confidence interval, and
 sets beside it the analytic predictions (RSS, estimated mean shift) and, for linear chains,
@@ -41,6 +42,7 @@ from . import stack
 from .chain import compile_expression, linearise, nominal_values
 from .convolve import linear_sum_distribution
 from .errors import CaseError
+from .ppm import fraction_to_ppm
 
 __all__ = [
     "BLOCK_SIZE",
@@ -109,7 +111,7 @@ def clopper_pearson(failures, trials, confidence: float = CONFIDENCE):
     return low, high
 
 
-@dataclass
+@dataclass(frozen=True)
 class RequirementCheck:
     """Verification of one requirement (see :class:`Verification`).
 
@@ -148,6 +150,7 @@ class RequirementCheck:
     histogram_counts: np.ndarray = field(repr=False)
     underflow: int = 0
     overflow: int = 0
+    units: str = ""  # label of the response, its limits, mean, std and histogram edges
 
     @property
     def failures(self) -> int:
@@ -181,6 +184,7 @@ class RequirementCheck:
             "shifted_mean": self.shifted_mean,
             "mean": self.mean,
             "std": self.std,
+            "units": self.units,
         }
         if histogram:
             out["histogram"] = {
@@ -192,7 +196,7 @@ class RequirementCheck:
         return out
 
 
-@dataclass
+@dataclass(frozen=True)
 class Verification:
     """Result of :func:`verify`, read like :class:`scipy.optimize.OptimizeResult`.
 
@@ -214,6 +218,12 @@ class Verification:
     tolerances : dict
         ± tolerance per contributor used [length].
     requirements : list of RequirementCheck
+    allocated_with : str or None
+        The stack model the tolerances were allocated with, when the caller said so.
+    assumption_note : str
+        One line, empty when there is nothing to say: set when the simulation assumes
+        something the allocation did not (an ``rss`` allocation simulated with the
+        case's mean shifts in place), with what to run instead.
     """
 
     status: str
@@ -227,6 +237,8 @@ class Verification:
     shift_means: bool
     tolerances: dict
     requirements: list
+    allocated_with: str | None = None
+    assumption_note: str = ""
 
     def __getitem__(self, name: str) -> RequirementCheck:
         for check in self.requirements:
@@ -246,21 +258,31 @@ class Verification:
             "confidence": self.confidence,
             "shift_means": self.shift_means,
             "tolerances": dict(self.tolerances),
+            "allocated_with": self.allocated_with,
+            "assumption_note": self.assumption_note,
             "requirements": [c.to_dict(histogram) for c in self.requirements],
         }
 
     def to_frame(self):
-        """One row per requirement (pandas DataFrame, index = requirement name)."""
+        """One row per requirement (pandas DataFrame, index ``requirement``)."""
         import pandas as pd
 
         rows = [c.to_dict(histogram=False) for c in self.requirements]
-        return pd.DataFrame(rows).set_index("name")
+        return pd.DataFrame(rows).set_index("name").rename_axis("requirement")
+
+    def _repr_html_(self) -> str:
+        from .display import result_html
+
+        return result_html(f"Verification: {self.status} ({self.samples} samples, seed {self.seed})",
+                           self.to_frame(), self.message)
 
     def __repr__(self) -> str:
         lines = [
             f"Verification(status={self.status!r}, samples={self.samples}, seed={self.seed})",
             f"  message: {self.message}",
         ]
+        if self.assumption_note:
+            lines.append(f"  note: {self.assumption_note}")
         for c in self.requirements:
             conv = "—" if c.convolution_ppm is None else f"{c.convolution_ppm:.4g}"
             lines.append(
@@ -282,14 +304,14 @@ class _Sampler:
     triangular instance (the sum of two uniforms is triangular).
     """
 
-    def __init__(self, case, tolerances: np.ndarray):
+    def __init__(self, case, tolerances: np.ndarray, sigma_factors: np.ndarray):
         kinds = [c.distribution for c in case.contributors]
         counts = case.counts.astype(int)
         self.n = len(kinds)
         self.normal = np.array([i for i, k in enumerate(kinds) if k == "normal"], dtype=int)
         # σ of the sum of `count` normal instances is σ·√count: one draw per contributor
         self.normal_scale = (
-            case.sigma_factors[self.normal] * tolerances[self.normal] * np.sqrt(counts[self.normal])
+            sigma_factors[self.normal] * tolerances[self.normal] * np.sqrt(counts[self.normal])
         )
         owner, scale, offset = [], [], []
         for i, kind in enumerate(kinds):
@@ -389,10 +411,32 @@ def _tolerance_array(case, tolerances) -> np.ndarray:
     return t
 
 
-def _plan(case, requirement, t: np.ndarray, shift_means: bool) -> _Plan:
+def _unpack(tolerances, processes, allocated_with):
+    """``(tolerances, processes, allocated_with)``, taken from an Allocation when given one.
+
+    Explicit ``processes`` / ``allocated_with`` arguments win over the allocation's.
+    """
+    if hasattr(tolerances, "allocated_array") and hasattr(tolerances, "processes"):
+        allocation = tolerances
+        values = allocation.allocated_array()
+        if values is None:
+            raise CaseError(
+                f"the allocation has no tolerances to verify (status {allocation.status}: "
+                f"{allocation.message})",
+                field="tolerances",
+            )
+        if processes is None:
+            processes = allocation.processes
+        if allocated_with is None:
+            allocated_with = allocation.model
+        tolerances = dict(zip(allocation.names, (float(x) for x in values)))
+    return tolerances, processes, allocated_with
+
+
+def _plan(case, requirement, t: np.ndarray, sigma_factors: np.ndarray, shift_means: bool) -> _Plan:
     lin = linearise(case, requirement)
     counts = case.counts
-    sigma = stack.rss_sigma(lin.sensitivity, counts, case.sigma_factors * t)
+    sigma = stack.rss_sigma(lin.sensitivity, counts, sigma_factors * t)
     delta = stack.mean_shift_delta(lin.sensitivity, counts, case.mean_shifts, t) if shift_means else 0.0
     lower, upper = requirement.lower, requirement.upper
     rss_below, rss_above = stack.normal_fallout(lin.nominal, sigma, lower, upper)
@@ -410,8 +454,8 @@ def _plan(case, requirement, t: np.ndarray, shift_means: bool) -> _Plan:
         side=side,
         shift=shift,
         shifted_mean=lin.nominal + side * delta,
-        rss_ppm=(rss_below + rss_above) * 1e6,
-        mean_shift_ppm=(shift_below + shift_above) * 1e6 if delta > 0 else None,
+        rss_ppm=fraction_to_ppm(rss_below + rss_above),
+        mean_shift_ppm=fraction_to_ppm(shift_below + shift_above) if delta > 0 else None,
         lower=-math.inf if lower is None else float(lower),
         upper=math.inf if upper is None else float(upper),
     )
@@ -452,13 +496,15 @@ class _Engine:
     :func:`sample_responses` so both see the same random stream.
     """
 
-    def __init__(self, case, t: np.ndarray, shift_means: bool, samples: int, seed: int, chunk_size):
+    def __init__(self, case, t: np.ndarray, shift_means: bool, samples: int, seed: int, chunk_size, processes=None):
         self.case = case
         self.t = t
         self.samples = samples
         self.seed = seed
-        plans = [_plan(case, r, t, shift_means) for r in case.requirements]
-        self.sampler = sampler = _Sampler(case, t)
+        # σ/t per contributor: the cp of the process that makes it (docs/verification.md)
+        self.sigma_factors = f = case.sigma_factors_at(t, processes)
+        plans = [_plan(case, r, t, f, shift_means) for r in case.requirements]
+        self.sampler = sampler = _Sampler(case, t, f)
         self.linear = [p for p in plans if p.linear]
         self.nonlinear = [p for p in plans if not p.linear]
         self.order = self.linear + self.nonlinear
@@ -519,10 +565,13 @@ class _Engine:
             yield y, spans
 
 
-def sample_responses(case, tolerances=None, *, samples: int = 10_000, seed: int = 0, shift_means: bool = True):
+def sample_responses(
+    case, tolerances=None, *, samples: int = 10_000, seed: int = 0, shift_means: bool = True, processes=None
+):
     """The simulated responses themselves, one array per requirement.
 
-    Uses exactly the random stream of :func:`verify` with the same ``seed``; holds all
+    Uses exactly the random stream of :func:`verify` with the same ``seed`` (and the same
+    ``tolerances`` and ``processes`` arguments, an Allocation included); holds all
     ``samples × requirements`` values in memory, so it is meant for modest sample counts
     (plots, tests, notebooks).
 
@@ -534,8 +583,9 @@ def sample_responses(case, tolerances=None, *, samples: int = 10_000, seed: int 
     samples = int(samples)
     if samples < 1:
         raise ValueError("samples must be at least 1")
+    tolerances, processes, _ = _unpack(tolerances, processes, None)
     t = _tolerance_array(case, tolerances)
-    engine = _Engine(case, t, shift_means, samples, int(seed), None)
+    engine = _Engine(case, t, shift_means, samples, int(seed), None, processes)
     parts = [np.array(y) + engine.centre for y, _ in engine.chunks()]
     data = np.concatenate(parts, axis=0)
     return {p.requirement.name: data[:, j] for j, p in enumerate(engine.order)}
@@ -551,15 +601,19 @@ def verify(
     progress: bool = False,
     shift_means: bool = True,
     bins: int = HISTOGRAM_BINS,
+    allocated_with: str | None = None,
+    processes: Mapping[str, str] | None = None,
 ) -> Verification:
     """Check tolerances by Monte Carlo simulation of whole assemblies.
 
     Parameters
     ----------
     case : allocator.model.Case
-    tolerances : mapping name -> float, pandas Series, array_like or None
+    tolerances : Allocation, mapping name -> float, pandas Series, array_like or None
         ± tolerances to check [length]; a mapping may name only some contributors
         (the others keep their current tolerance). ``None``: the case's current ones.
+        An :class:`~allocator.solve.Allocation` gives its tolerances, the processes it
+        chose and its model (for ``allocated_with``).
     samples : int
         Assemblies to simulate [-], ≥ 1.
     seed : int or None
@@ -574,6 +628,18 @@ def verify(
         ``False`` simulates centred processes.
     bins : int
         Histogram bins kept per requirement.
+    allocated_with : str or None
+        The stack model the tolerances come from (``'worst-case'``, ``'rss'``,
+        ``'mean-shift'``), if they are an allocation. An ``'rss'`` allocation assumes
+        centred processes; simulated with the case's mean shifts in place it can miss its
+        target for that reason alone, and :attr:`Verification.assumption_note` says so
+        (see docs/verification.md, *Which assumptions are simulated*).
+    processes : mapping name -> process name, optional
+        The process that makes each named contributor (e.g. ``Allocation.processes``);
+        a normal contributor is simulated with that process's cp. Contributors not named
+        (or named with ``""``) are made by the cheapest of their processes that holds
+        their tolerance (:meth:`allocator.model.Case.making_processes`); see
+        docs/verification.md, *Which process makes a tolerance*.
 
     Returns
     -------
@@ -606,8 +672,9 @@ def verify(
         raise ValueError("seed must be a non-negative integer")
     if not case.requirements:
         raise CaseError("the case has no requirement to verify", field="requirement")
+    tolerances, processes, allocated_with = _unpack(tolerances, processes, allocated_with)
     t = _tolerance_array(case, tolerances)
-    engine = _Engine(case, t, shift_means, samples, seed, chunk_size)
+    engine = _Engine(case, t, shift_means, samples, seed, chunk_size, processes)
     order, centre, n_req = engine.order, engine.centre, len(engine.order)
     lower = np.array([p.lower for p in order])
     upper = np.array([p.upper for p in order])
@@ -662,8 +729,8 @@ def verify(
     checks = []
     for j, plan in enumerate(order):
         req = plan.requirement
-        fallout_ppm = failures[j] / samples * 1e6
-        lo_ppm, hi_ppm = float(ci_low[j]) * 1e6, float(ci_high[j]) * 1e6
+        fallout_ppm = fraction_to_ppm(failures[j] / samples)
+        lo_ppm, hi_ppm = fraction_to_ppm(float(ci_low[j])), fraction_to_ppm(float(ci_high[j]))
         predicted = plan.mean_shift_ppm if plan.mean_shift_ppm is not None else plan.rss_ppm
         if plan.linear:
             dist = linear_sum_distribution(
@@ -671,11 +738,11 @@ def verify(
                 case.counts,
                 t,
                 [c.distribution for c in case.contributors],
-                case.sigma_factors,
+                engine.sigma_factors,
                 mean=plan.shifted_mean,
             )
             conv_below, conv_above = dist.fallout(req.lower, req.upper)
-            convolution_ppm = (conv_below + conv_above) * 1e6
+            convolution_ppm = fraction_to_ppm(conv_below + conv_above)
             note = "exact distribution of the linear chain by numerical convolution"
         else:
             convolution_ppm = None
@@ -696,7 +763,7 @@ def verify(
                 fallout_ppm=float(fallout_ppm),
                 ci_low_ppm=lo_ppm,
                 ci_high_ppm=hi_ppm,
-                target_ppm=float(req.fallout_ppm),
+                target_ppm=float(req.target_ppm),
                 rss_ppm=float(plan.rss_ppm),
                 mean_shift_ppm=None if plan.mean_shift_ppm is None else float(plan.mean_shift_ppm),
                 predicted_ppm=float(predicted),
@@ -709,12 +776,13 @@ def verify(
                 mean=float(mean),
                 std=float(math.sqrt(max(var, 0.0))) if math.isfinite(var) else math.nan,
                 model_disagrees=bool(predicted < lo_ppm or predicted > hi_ppm),
-                status="fail" if lo_ppm > req.fallout_ppm else "pass",
-                decided=bool(lo_ppm > req.fallout_ppm or hi_ppm <= req.fallout_ppm),
+                status="fail" if lo_ppm > req.target_ppm else "pass",
+                decided=bool(lo_ppm > req.target_ppm or hi_ppm <= req.target_ppm),
                 histogram_edges=edges,
                 histogram_counts=hist[j, 1:-1].copy(),
                 underflow=int(hist[j, 0]),
                 overflow=int(hist[j, -1]),
+                units=case.requirement_units(req.name),
             )
         )
     by_name = {c.name: c for c in checks}
@@ -734,6 +802,7 @@ def verify(
     if disagree:
         message += f"; analytic prediction outside the interval for {', '.join(disagree)}"
     status = "fail" if failed else "pass"
+    note = _assumption_note(case, checks, allocated_with, shift_means)
     return Verification(
         status=status,
         success=status == "pass",
@@ -746,41 +815,34 @@ def verify(
         shift_means=shift_means,
         tolerances=dict(zip(case.names, (float(x) for x in t))),
         requirements=checks,
+        allocated_with=allocated_with,
+        assumption_note=note,
+    )
+
+
+def _assumption_note(case, checks, allocated_with: str | None, shift_means: bool) -> str:
+    """One line when the simulation places mean shifts that an rss allocation left out.
+
+    The rss model takes every process as centred (Evans 1974); the case's ``mean_shift``
+    is the mean-shift model's input (Greenwood & Chase 1987). Verifying an rss allocation
+    with the shifts in place tests it against an assumption it was not designed for.
+    """
+    if allocated_with != "rss" or not shift_means:
+        return ""
+    shifted = [c.name for c in checks if c.shift_side != 0]
+    if not shifted:
+        return ""
+    movers = [c.name for c in case.contributors if c.mean_shift > 0]
+    shown = ", ".join(movers[:4]) + (f" and {len(movers) - 4} more" if len(movers) > 4 else "")
+    return (
+        f"the simulation places the case's mean shifts ({shown}) on the worse side of "
+        f"{', '.join(shifted)}, which the rss allocation did not assume (rss takes centred "
+        "processes); verify it with --centred to check it under its own assumption, or "
+        "allocate with --model mean-shift to allow for the shifts"
     )
 
 
 # --------------------------------------------------------------------------- plotting
-
-
-def _figure(result: Verification):
-    # a bare Figure renders through the Agg/SVG canvases without touching pyplot's backend
-    from matplotlib.figure import Figure
-    from scipy import stats
-
-    checks = result.requirements
-    fig = Figure(figsize=(7.0, 3.2 * len(checks)), layout="constrained")
-    axes = fig.subplots(len(checks), 1, squeeze=False)[:, 0]
-    for ax, c in zip(axes, checks):
-        edges = c.histogram_edges
-        width = edges[1] - edges[0]
-        density = c.histogram_counts / (c.samples * width)
-        ax.stairs(density, edges, fill=True, color="0.75", label=f"Monte Carlo ({c.samples:,} assemblies)")
-        lo_x, hi_x = edges[0], edges[-1]
-        for limit, label in ((c.lower, "limits"), (c.upper, "limits" if c.lower is None else "_nolegend_")):
-            if limit is not None:
-                ax.axvline(limit, color="black", linestyle="--", linewidth=1.2, label=label)
-                lo_x, hi_x = min(lo_x, limit), max(hi_x, limit)
-        if c.sigma > 0:
-            xs = np.linspace(lo_x, hi_x, 600)
-            label = "RSS normal" + (" at the worst mean shift" if c.shift_side else "")
-            ax.plot(xs, stats.norm.pdf(xs, c.shifted_mean, c.sigma), color="black", linewidth=1.2, label=label)
-        pad = 0.03 * (hi_x - lo_x)
-        ax.set_xlim(lo_x - pad, hi_x + pad)
-        ax.set_title(f"{c.name}: {c.fallout_ppm:.4g} ppm outside (target {c.target_ppm:g} ppm)")
-        ax.set_xlabel(f"{c.name} (response)")
-        ax.set_ylabel("density")
-        ax.legend(fontsize="small", loc="upper right")
-    return fig
 
 
 def render_verification_plot(result: Verification, fmt: str = "png") -> bytes:
@@ -790,8 +852,10 @@ def render_verification_plot(result: Verification, fmt: str = "png") -> bytes:
     fmt = fmt.lower().lstrip(".")
     if fmt not in ("png", "svg"):
         raise ValueError(f"plot format must be png or svg, got {fmt!r}")
+    from .plots import verification_figure
+
     buffer = io.BytesIO()
-    _figure(result).savefig(buffer, format=fmt, dpi=120)
+    verification_figure(result).savefig(buffer, format=fmt, dpi=120)
     return buffer.getvalue()
 
 

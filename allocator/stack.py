@@ -13,6 +13,10 @@ import numpy as np
 from scipy import optimize, special
 
 __all__ = [
+    "LIMIT_RTOL",
+    "limit_margin",
+    "beyond_limits",
+    "worst_case_excess",
     "worst_case_half_width",
     "worst_case_range",
     "rss_sigma",
@@ -22,6 +26,106 @@ __all__ = [
     "sigma_limit",
     "mean_shift_sigma_limit",
 ]
+
+
+#: Relative round-off margin for judging a stack against a limit [-] (see
+#: :func:`limit_margin`).
+LIMIT_RTOL = 1e-9
+
+
+def limit_margin(*magnitudes) -> float:
+    """Round-off margin for comparing a stack value with a limit [response].
+
+    Parameters
+    ----------
+    *magnitudes : float or None
+        The numbers the comparison is made of: nominal response, lower and upper limit,
+        worst-case half-width (or any other spread) [response]. ``None`` and non-finite
+        values are ignored.
+
+    Returns
+    -------
+    float
+        ``LIMIT_RTOL · max |magnitude|`` (0 when every magnitude is 0).
+
+    Notes
+    -----
+    A worst-case end ``ȳ − Σ n|a|t`` is computed in binary floating point from decimal
+    inputs that are not exact binary fractions (0.05, 0.6, ...). Its error is a few
+    units in the last place of the largest number involved, about ``1e-16`` relative per
+    operation. Every judgement of a stack against a limit in the package (analysis
+    verdicts, the CLI and the report, a response whose spread is zero) counts a value
+    within ``LIMIT_RTOL = 1e-9`` of the largest magnitude involved as *at* the limit,
+    i.e. inside it. The margin is ten million times the round-off of a single operation
+    and far below anything measurable: 1 nm on a 1 m nominal. A value beyond a limit by
+    more than this is outside, and the excess is reported. The allocation solvers accept
+    a worst case at most ``1e-9`` of the room ``min(ȳ − L, U − ȳ)`` beyond its limit,
+    which is inside this margin, so an allocation they call feasible is judged inside.
+
+    Examples
+    --------
+    >>> limit_margin(0.3, 0.05, 0.6, 0.25)
+    6e-10
+    """
+    finite = [abs(float(v)) for v in magnitudes if v is not None and math.isfinite(v)]
+    return LIMIT_RTOL * max(finite, default=0.0)
+
+
+def beyond_limits(low: float, high: float, lower=None, upper=None, *, margin: float = 0.0) -> tuple[float, float]:
+    """How far a range ``[low, high]`` reaches past each limit [response].
+
+    Parameters
+    ----------
+    low, high : float
+        Ends of the range (``low <= high``) [response].
+    lower, upper : float or None
+        Limits; a missing limit is never passed.
+    margin : float
+        Round-off margin (:func:`limit_margin`) [response], ≥ 0.
+
+    Returns
+    -------
+    (float, float)
+        ``(lower − low, high − upper)`` where that exceeds ``margin``, else 0.0 per side:
+        ``(0.0, 0.0)`` means the range is inside the limits.
+
+    Examples
+    --------
+    >>> beyond_limits(0.04999999999999982, 0.55, 0.05, 0.6, margin=6e-10)
+    (0.0, 0.0)
+    >>> beyond_limits(0.0499, 0.55, 0.05, 0.6, margin=6e-10)[0] > 0
+    True
+    """
+    below = lower - low if lower is not None and low < lower - margin else 0.0
+    above = high - upper if upper is not None and high > upper + margin else 0.0
+    return float(below), float(above)
+
+
+def worst_case_excess(nominal: float, half_width: float, lower=None, upper=None) -> tuple[float, float]:
+    """How far the worst-case range ``ȳ ± W`` passes each limit, round-off excused.
+
+    Parameters
+    ----------
+    nominal : float
+        Nominal response ȳ [response].
+    half_width : float
+        Worst-case half-width W (:func:`worst_case_half_width`) [response].
+    lower, upper : float or None
+        Limits.
+
+    Returns
+    -------
+    (float, float)
+        Amount below ``lower`` and above ``upper`` [response]; 0.0 on a side that holds,
+        including a side met within :func:`limit_margin` of ``(ȳ, L, U, W)``.
+
+    Examples
+    --------
+    >>> worst_case_excess(0.3, 0.25, 0.05, 0.6)   # 0.3 − 0.25 is 0.04999999999999999
+    (0.0, 0.0)
+    """
+    margin = limit_margin(nominal, lower, upper, half_width)
+    return beyond_limits(nominal - half_width, nominal + half_width, lower, upper, margin=margin)
 
 
 def _norm_cdf(z):
@@ -145,7 +249,8 @@ def normal_fallout(mean: float, sigma: float, lower=None, upper=None) -> tuple[f
 
     Notes
     -----
-    With σ = 0 the response is the mean itself: fallout 1 on a side the mean violates.
+    With σ = 0 the response is the mean itself: fallout 1 on a side the mean passes by
+    more than the round-off margin :func:`limit_margin`.
 
     References
     ----------
@@ -160,11 +265,8 @@ def normal_fallout(mean: float, sigma: float, lower=None, upper=None) -> tuple[f
     """
     below = above = 0.0
     if sigma <= 0:
-        if lower is not None and mean < lower:
-            below = 1.0
-        if upper is not None and mean > upper:
-            above = 1.0
-        return below, above
+        out_below, out_above = beyond_limits(mean, mean, lower, upper, margin=limit_margin(mean, lower, upper))
+        return float(out_below > 0), float(out_above > 0)
     if lower is not None:
         below = float(_norm_cdf((lower - mean) / sigma))
     if upper is not None:

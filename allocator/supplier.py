@@ -15,8 +15,17 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
+from typing import TYPE_CHECKING
 
 import numpy as np
+
+from . import status as _status
+from .errors import UsageError, did_you_mean
+from .model import MODELS
+
+if TYPE_CHECKING:
+    from .model import Case
+    from .solve.result import Allocation
 
 __all__ = ["DEFAULT_STEP", "Loosening", "SupplierSheet", "looser_tolerance", "supplier_sheet"]
 
@@ -56,9 +65,11 @@ def looser_tolerance(contributor, tolerance: float, *, step: float = DEFAULT_STE
     Returns
     -------
     float or None
-        ``min(t·(1 + step) rounded up to the rounding step, loosest)`` [length]; for a
-        contributor whose tolerances come from ``choose`` tables, the next listed tolerance
-        above ``t``. None when ``t`` already is the loosest achievable value.
+        ``min(t·(1 + step) rounded up to the rounding step, loosest)`` [length], moved up
+        to the next value an option can make when it falls between the ranges of the
+        processes (or between the listed tolerances of a ``choose`` table there); for a
+        contributor whose tolerances come from ``choose`` tables only, the next listed
+        tolerance above ``t``. None when ``t`` already is the loosest achievable value.
 
     Examples
     --------
@@ -84,7 +95,27 @@ def looser_tolerance(contributor, tolerance: float, *, step: float = DEFAULT_STE
         looser = round(looser, 12)
         if looser <= t:
             looser = t + rounding
-    return float(min(looser, loosest))
+    looser = float(min(looser, loosest))
+    if not contributor.options_holding(looser):
+        looser = _next_achievable(contributor, looser)
+    return looser
+
+
+def _next_achievable(contributor, t: float) -> float:
+    """The least tolerance ≥ ``t`` one of the contributor's options can make [length].
+
+    ``t`` is at most the loosest limit of some option, so there is one.
+    """
+    best = []
+    for p in contributor.options():
+        lo, hi = p.limits
+        if p.cost is not None and p.cost.is_discrete:
+            x = np.asarray(p.cost.points_tolerance, dtype=float)
+            x = x[(x >= max(t, lo) * (1.0 - 1e-9)) & (x <= hi * (1.0 + 1e-9))]
+            best.extend(x.tolist())
+        elif t <= hi * (1.0 + 1e-9):
+            best.append(max(t, lo))
+    return float(min(best))
 
 
 @dataclass(frozen=True)
@@ -104,8 +135,9 @@ class Loosening:
     looser : float or None
         The ± tolerance tried (see :func:`looser_tolerance`) [length].
     status : str
-        'solved', 'infeasible' / 'failed' (the re-solve's status), 'fixed' (held by the
-        case), 'at loosest' (nothing looser exists) or 'error'.
+        'optimal', 'infeasible' or 'failed' (the re-solve's status, see
+        :mod:`allocator.status`); 'fixed' (held by the case) or 'at loosest' (nothing
+        looser exists) when there was nothing to re-solve.
     total_cost_change : float or None
         Total cost with the looser tolerance minus the optimum's [currency per assembly];
         never negative up to solver accuracy, since the optimum was the least cost.
@@ -115,8 +147,11 @@ class Loosening:
     elsewhere_change : float or None
         ``total_cost_change − own_change``: what the other parts cost more [currency].
     tightened : tuple of (name, from, to)
-        Other contributors whose tolerance tightened, largest relative change first.
+        Other contributors whose tolerance tightened, largest relative change first
+        (each in its own contributor's units).
     message : str
+    units : str
+        Units label of ``tolerance`` and ``looser`` (the contributor's).
     """
 
     contributor: str
@@ -131,6 +166,7 @@ class Loosening:
     elsewhere_change: float | None = None
     tightened: tuple = field(default=())
     message: str = ""
+    units: str = ""
 
     def to_dict(self) -> dict:
         return {
@@ -146,6 +182,7 @@ class Loosening:
             "elsewhere_change": self.elsewhere_change,
             "tightened": [{"name": n, "from": a, "to": b} for n, a, b in self.tightened],
             "message": self.message,
+            "units": self.units,
         }
 
 
@@ -157,7 +194,8 @@ class SupplierSheet:
     ----------
     model : str
     status : str
-        'ok', or the base allocation's status when that is not optimal (no rows then).
+        'optimal' (every row computed), or the base allocation's status when that is
+        not optimal (no rows then); see :mod:`allocator.status`.
     success : bool
     message : str
     step : float
@@ -176,7 +214,7 @@ class SupplierSheet:
 
     @property
     def success(self) -> bool:
-        return self.status == "ok"
+        return self.status == _status.OPTIMAL
 
     def __getitem__(self, name: str) -> Loosening:
         for row in self.rows:
@@ -205,6 +243,11 @@ class SupplierSheet:
         columns = list(Loosening.__dataclass_fields__)
         return pd.DataFrame(rows, columns=columns).set_index("contributor")
 
+    def _repr_html_(self) -> str:
+        from .display import result_html
+
+        return result_html(f"Supplier sheet {self.model}: {self.status}", self.to_frame(), self.message)
+
     def __repr__(self) -> str:
         lines = [f"SupplierSheet(model={self.model!r}, status={self.status!r}, step={self.step:g})"]
         for r in self.rows:
@@ -213,7 +256,8 @@ class SupplierSheet:
         return "\n".join(lines)
 
 
-def supplier_sheet(case, model: str, allocation=None, *, step: float = DEFAULT_STEP) -> SupplierSheet:
+def supplier_sheet(case: Case, model: str, *, allocation: Allocation | None = None,
+                   step: float = DEFAULT_STEP) -> SupplierSheet:
     """Per contributor: the cost elsewhere of loosening its allocated tolerance by one step.
 
     Parameters
@@ -229,6 +273,11 @@ def supplier_sheet(case, model: str, allocation=None, *, step: float = DEFAULT_S
     -------
     SupplierSheet
 
+    Raises
+    ------
+    UsageError
+        Unknown model, a step that is not > 0.
+
     Notes
     -----
     For contributor ``k`` with optimum ``t*`` and total cost ``C*``, the re-solve holds
@@ -241,8 +290,10 @@ def supplier_sheet(case, model: str, allocation=None, *, step: float = DEFAULT_S
     """
     from .solve import allocate
 
+    if model not in MODELS:
+        raise UsageError(f"unknown model {model!r}{did_you_mean(model, MODELS)} (choose from {', '.join(MODELS)})")
     if not step > 0:
-        raise ValueError(f"step must be > 0 (got {step!r})")
+        raise UsageError(f"step must be > 0 (got {step!r})")
     base = allocation if allocation is not None else allocate(case, model)
     if not base.success:
         return SupplierSheet(
@@ -261,21 +312,20 @@ def supplier_sheet(case, model: str, allocation=None, *, step: float = DEFAULT_S
     for c in case.contributors:
         t = float(t_base[c.name])
         unit = _maybe(unit_base[c.name])
-        common = dict(contributor=c.name, count=c.count, tolerance=t, unit_cost=unit, bound=str(bounds[c.name]))
+        common = dict(contributor=c.name, count=c.count, tolerance=t, unit_cost=unit, bound=str(bounds[c.name]),
+                      units=case.contributor_units(c.name))
         if c.fixed:
-            rows.append(Loosening(**common, looser=None, status="fixed", message="held by the case"))
+            rows.append(Loosening(**common, looser=None, status=_status.FIXED, message="held by the case"))
             continue
         looser = looser_tolerance(c, t, step=step, rounding=case.allocation.rounding)
         if looser is None:
             rows.append(
-                Loosening(**common, looser=None, status="at loosest", message="already at its loosest achievable value")
+                Loosening(**common, looser=None, status=_status.AT_LOOSEST, message="already at its loosest achievable value")
             )
             continue
-        try:
-            trial = allocate(case, model, fix={c.name: looser})
-        except Exception as err:  # a hold the solver refuses is a row, not a crash of the sheet
-            rows.append(Loosening(**common, looser=looser, status="error", message=str(err)))
-            continue
+        # an exception here is a failure of the sheet, never a row: the looser value lies
+        # inside the contributor's limits (and cost table), so the hold is always valid
+        trial = allocate(case, model, fix={c.name: looser})
         if not trial.success:
             rows.append(Loosening(**common, looser=looser, status=trial.status, message=trial.message))
             continue
@@ -293,7 +343,7 @@ def supplier_sheet(case, model: str, allocation=None, *, step: float = DEFAULT_S
             Loosening(
                 **common,
                 looser=looser,
-                status="solved",
+                status=_status.OPTIMAL,
                 total_cost_change=delta,
                 own_change=own,
                 elsewhere_change=elsewhere,
@@ -303,7 +353,7 @@ def supplier_sheet(case, model: str, allocation=None, *, step: float = DEFAULT_S
         )
     return SupplierSheet(
         model=model,
-        status="ok",
+        status=_status.OPTIMAL,
         message=f"each contributor loosened by one step ({step:.0%}, then the rounding step) and re-solved",
         step=step,
         base=base,

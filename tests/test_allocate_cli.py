@@ -10,6 +10,8 @@ from __future__ import annotations
 import csv
 import io
 import json
+import math
+import re
 from pathlib import Path
 
 import pytest
@@ -17,6 +19,7 @@ from click.testing import CliRunner
 
 from allocator.case import load_case
 from allocator.cli.main import cli
+from allocator.errors import UsageError
 from allocator.solve import allocate
 
 CASES = Path(__file__).resolve().parents[1] / "cases"
@@ -87,7 +90,7 @@ def test_human_output_shows_every_model_contributor_and_requirement(tmp_path):
         assert f"total cost {library.total_cost:.6g} EUR" in out
     for name in ("plate", "washer", "boss", "requirement clearance"):
         assert name in out
-    assert "ppm (target 100)" in out and "shadow prices" in out
+    assert "ppm (target 100 ppm)" in out and "shadow prices" in out
 
 
 def test_json_keeps_the_contract_and_matches_the_library(tmp_path):
@@ -150,6 +153,43 @@ def test_bad_fix_is_one_line_and_exit_2(tmp_path, fix, message):
     assert result.stdout == ""
 
 
+@pytest.mark.parametrize("value", ["0.5", "0.009", "1e-9"])
+def test_fix_outside_the_limits_is_refused_naming_them(tmp_path, value):
+    # plate can be made to ±0.01 .. ±0.2; a hold outside that is not a tolerance it has
+    path = _write(tmp_path)
+    expected = f"fix: plate: tolerance {float(value):g} is outside its limits [0.01, 0.2]"
+    result = run(path, "--fix", f"plate={value}")
+    assert result.exit_code == 2, result.output
+    assert result.stderr.strip() == f"error: {expected}"
+    assert result.stdout == "" and "Traceback" not in result.output
+    with pytest.raises(UsageError) as info:  # the library says the same
+        allocate(load_case(path), "rss", fix={"plate": float(value)})
+    assert str(info.value) == expected
+
+
+def test_fix_at_a_limit_is_accepted(tmp_path):
+    path = tmp_path / "loose.toml"  # limits wide enough for plate at its loosest
+    path.write_text(BRACKET.replace("{lower}", "-1.0").replace("upper = 0.35", "upper = 1.5"))
+    for value in ("0.01", "0.2"):
+        result = run(path, "--model", "rss", "--fix", f"plate={value}", "--json")
+        assert result.exit_code == 0, result.output
+        assert json.loads(result.stdout)["results"][0]["tolerances"]["plate"] == float(value)
+
+
+def test_fix_outside_every_process_names_each_range():
+    path = CASES / "pump_shim.toml"
+    result = run(path, "--model", "rss", "--fix", "body_depth=0.5")
+    assert result.exit_code == 2, result.output
+    line = result.stderr.strip()
+    assert len(line.splitlines()) == 1
+    assert line == (
+        "error: fix: body_depth: tolerance 0.5 is outside the limits of every process "
+        "(turning [0.02, 0.1], fine boring [0.008, 0.03], grinding [0.002, 0.01])"
+    )
+    with pytest.raises(UsageError, match="outside the limits of every process"):
+        allocate(load_case(path), "worst-case", fix={"body_depth": 0.5})
+
+
 def test_json_and_csv_together_is_a_usage_error(tmp_path):
     result = run(_write(tmp_path), "--json", "--csv")
     assert result.exit_code == 2 and "cannot be used together" in result.stderr
@@ -162,10 +202,104 @@ def test_infeasible_requirement_exits_1_with_its_name(tmp_path):
     path.write_text(BRACKET.replace("{lower}", "0.18").replace("upper = 0.35", "upper = 0.21"))
     result = run(path, "--model", "worst-case")
     assert result.exit_code == 1
-    assert "clearance" in result.stderr and "infeasible" in result.stderr
     assert "exceeds upper 0.21 by 0.02" in result.stdout and "below lower 0.18 by 0.01" in result.stdout
-    doc = json.loads(run(path, "--model", "worst-case", "--json").stdout)
+    # the reason is printed once (stdout); stderr only says which model failed, in one line
+    assert "requirement 'clearance'" in result.stdout
+    assert result.stderr == "error: allocation with model worst-case: infeasible\n"
+    as_json = run(path, "--model", "worst-case", "--json")
+    doc = json.loads(as_json.stdout)
     assert doc["results"][0]["status"] == "infeasible" and doc["results"][0]["total_cost"] is None
+    assert as_json.stderr == "error: allocation with model worst-case: infeasible\n"
+
+
+@pytest.mark.parametrize("output", ["human", "--json"])
+def test_one_model_crashing_does_not_hide_the_models_that_solved(tmp_path, monkeypatch, output):
+    # mean shift once raised inside its solver: nothing was printed, not even rss's answer
+    import allocator.solve
+
+    path = _write(tmp_path)
+    expected = allocate(load_case(path), "rss")
+    original = allocator.solve.allocate
+
+    def spoiled(case, model=None, **kwargs):
+        if model == "mean-shift":
+            raise ValueError("zero-size array to reduction operation maximum which has no identity")
+        return original(case, model, **kwargs)
+
+    monkeypatch.setattr(allocator.solve, "allocate", spoiled)
+    args = [path, "--model", "rss", "--model", "mean-shift"] + ([output] if output != "human" else [])
+    result = run(*args)
+    assert result.exit_code == 3
+    assert "Traceback" not in result.output
+    lines = result.stderr.splitlines()
+    assert len(lines) == 1
+    assert lines[0].startswith("error: internal error in model mean-shift: ValueError: zero-size array")
+    if output == "--json":
+        doc = json.loads(result.stdout)
+        assert [r["model"] for r in doc["results"]] == ["rss"]
+        assert doc["results"][0]["total_cost"] == pytest.approx(expected.total_cost, rel=1e-12)
+    else:
+        assert "model rss: optimal" in result.stdout
+        assert f"total cost {expected.total_cost:.6g}" in result.stdout
+
+
+def _table_rows(block: str) -> list[dict[str, str]]:
+    """The rows of one plain-text table (header, dashes, rows) as {header: cell}."""
+    lines = block.splitlines()
+    at = next(i for i, line in enumerate(lines) if line.startswith("---"))
+    spans = [m.span() for m in re.finditer(r"-+", lines[at])]
+    cut = lambda line: [line[a:b if k + 1 < len(spans) else None].strip()  # noqa: E731
+                        for k, (a, b) in enumerate(spans)]
+    header = cut(lines[at - 1])
+    rows = []
+    for line in lines[at + 1:]:
+        if not line.strip() or line.startswith("total cost"):
+            break
+        rows.append(dict(zip(header, cut(line))))
+    return rows
+
+
+def test_a_dearer_allocation_says_what_it_costs_more(tmp_path):
+    # with lower = 0.1 the current design misses the worst case (0.2 ± (0.05 + 2·0.02 + 0.04)
+    # = [0.07, 0.33]), so the worst-case allocation must tighten and costs more than today
+    path = _write(tmp_path, lower=0.1)
+    result = run(path, "--model", "worst-case")
+    assert result.exit_code == 0, result.output
+    # the current cost from the cost curves by hand: plate 0.5 + 0.01/0.05, washer
+    # 2 × (0.05 + 0.4·exp(−30·0.02)), boss 1 + 0.0002/0.04²
+    current = (0.5 + 0.01 / 0.05) + 2 * (0.05 + 0.4 * math.exp(-0.6)) + (1.0 + 0.0002 / 0.04**2)
+    total = allocate(load_case(path), "worst-case").total_cost
+    assert total > current
+    more, share = total - current, 100 * (total - current) / current
+    assert f"current {current:.6g}; costs {more:.4g} more ({share:.1f} %))" in result.stdout
+    assert "saves -" not in result.stdout and "-%" not in result.stdout
+
+
+def test_process_and_grade_columns_and_iteration_count():
+    # the gear hub case: two parts choose a process, the washer has none; every
+    # tolerance is rounded to an ISO 286 grade
+    gear_hub = CASES / "gear_hub_end_play.toml"
+    result = run(gear_hub, "--model", "worst-case")
+    assert result.exit_code == 0, result.output
+    library = allocate(load_case(gear_hub), "worst-case")
+    rows = {r["contributor"]: r for r in _table_rows(result.stdout)}
+    assert set(rows) == set(dict(library.tolerances))
+    for row in library.rows():
+        name = row["contributor"]
+        assert rows[name]["process"] == (row["process"] or ""), name
+        assert rows[name]["grade"] == library.grades.get(name, ""), name
+    assert rows["washer"]["process"] == "" and rows["washer"]["grade"].startswith("IT")
+    # an iteration count reads "1 iteration", "2 iterations"
+    counts = re.findall(r"(\d+) (iterations?)\b", result.stdout)
+    assert counts
+    for n, word in counts:
+        assert word == ("iteration" if n == "1" else "iterations")
+
+
+def test_no_process_or_grade_column_where_none_applies(tmp_path):
+    result = run(_write(tmp_path), "--model", "rss")
+    header = _table_rows(result.stdout)[0]
+    assert "process" not in header and "grade" not in header
 
 
 @pytest.mark.skipif(__import__("sys").platform == "win32", reason="needs a POSIX pseudo-terminal")

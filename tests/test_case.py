@@ -256,6 +256,57 @@ def test_cost_curve_check_is_consulted(monkeypatch):
     assert seen == [("reciprocal", (0.05, 0.2))]
 
 
+# --------------------------------------------------------------------------- units labels
+
+
+def test_units_per_contributor_and_requirement_default_to_the_case():
+    text = MINIMAL.replace('name = "a"\n', 'name = "a"\nunits = "N/mm"\n').replace(
+        'name = "gap"\n', 'name = "gap"\nunits = " N "\n'
+    )
+    case = loads_case(text)
+    assert case.contributor("a").units == "N/mm" and case.contributor("b").units is None
+    assert case.contributor_units("a") == "N/mm" and case.contributor_units("b") == "mm"
+    assert case.requirement("gap").units == "N"  # a label, spaces around it dropped
+    assert case.requirement_units("gap") == "N"
+    assert case.sensitivity_units("gap", "b") == "N/mm"
+    assert case.sensitivity_units("gap", "a") == "mm"  # N per (N/mm)
+    assert case.unit_labels == ("mm", "N/mm", "N")
+    plain = loads_case(MINIMAL)
+    assert plain.contributor_units("a") == plain.requirement_units("gap") == "mm"
+    # a label only: the numbers the case holds are the same
+    assert linearise(case, case.requirement("gap")).nominal == linearise(plain, plain.requirement("gap")).nominal
+
+
+@pytest.mark.parametrize(
+    "where, value, problem",
+    [
+        ("a", '""', "contributor[1] (a).units: must not be empty"),
+        ("a", "5", "contributor[1] (a).units: must be a text label such as \"mm\" (got 5)"),
+        ("gap", '"N\\nm"', "requirement[1] (gap).units: must be one line of printable text"),
+        ("gap", '"' + "x" * 25 + '"', "requirement[1] (gap).units: must be a short label such as \"mm\" (at most 24"),
+    ],
+)
+def test_bad_units_label_is_one_line_naming_the_field(where, value, problem):
+    text = MINIMAL.replace(f'name = "{where}"\n', f'name = "{where}"\nunits = {value}\n')
+    assert problem in str(_error(text))
+
+
+def test_misspelt_units_key_gets_a_hint():
+    err = _error(MINIMAL.replace('name = "gap"\n', 'name = "gap"\nunit = "N"\n'))
+    assert err.field == "requirement[1] (gap)"
+    assert err.problem == "unknown key 'unit' (did you mean 'units'?)"
+
+
+def test_ratio_labels():
+    from allocator.model import per_unit
+
+    assert per_unit("EUR", "N") == "EUR/N"
+    assert per_unit("mm", "mm") == "-"
+    assert per_unit("EUR", "N/mm") == "EUR/(N/mm)"
+    assert per_unit("N", "N/mm") == "mm"
+    assert per_unit("EUR", "") == "EUR" and per_unit("", "mm") == "1/mm"
+
+
 # --------------------------------------------------------------------------- CSV tables
 
 
@@ -338,3 +389,98 @@ def test_init_refuses_to_overwrite_without_force(tmp_path):
     result = CliRunner().invoke(cli, ["init", str(target), "--force"])
     assert result.exit_code == 0
     load_case(target)
+
+
+# --------------------------------------------------------------------------- units label
+
+
+@pytest.mark.parametrize("label", ["inch", "in", "µm", "N·m", "arc minutes", "x" * 24])
+def test_units_is_a_label_kept_as_written_and_never_a_scale(label):
+    from allocator.analysis import analyze
+
+    case = loads_case(MINIMAL.replace('title = "minimal"', f'title = "minimal"\nunits = "{label}"'))
+    assert case.units == label
+    # a label changes no number: the same analysis as the default "mm"
+    def numbers(analysis):
+        """The analysis without its units labels."""
+        d = analysis.requirements[0].to_dict()
+        d["contributors"] = [{k: v for k, v in c.items() if "units" not in k} for c in d["contributors"]]
+        return {k: v for k, v in d.items() if "units" not in k}
+
+    assert analyze(case).requirements[0].units == label
+    assert numbers(analyze(case)) == numbers(analyze(loads_case(MINIMAL)))
+
+
+@pytest.mark.parametrize(
+    "value, fragment",
+    [
+        ('""', "units: must not be empty"),
+        ('"   "', "units: must not be empty"),
+        ('"""mm\ninch"""', "units: must be one line of printable text such as \"mm\" (got the character '\\n')"),
+        ('"mm\t"', "units: must be one line of printable text"),
+        ('"' + "x" * 25 + '"', "units: must be a short label such as \"mm\" (at most 24 characters, got 25)"),
+        ("25.4", "units: must be a text label such as \"mm\" (got 25.4)"),
+    ],
+    ids=["empty", "blank", "two-lines", "tab", "too-long", "number"],
+)
+def test_units_that_cannot_be_shown_as_a_label_are_refused(value, fragment):
+    err = _error(MINIMAL.replace('title = "minimal"', f'title = "minimal"\nunits = {value}'))
+    assert fragment in str(err) and str(err).startswith("t.toml: units: ")
+
+
+def test_iso286_rounding_refuses_units_it_cannot_convert_to_millimetres():
+    text = MINIMAL + '\n[allocation]\nrounding = "iso286"\n'
+    err = _error(text.replace('title = "minimal"', 'title = "minimal"\nunits = "inch"'))
+    assert "units: 'inch' cannot be converted to millimetres for rounding = \"iso286\"" in str(err)
+    assert loads_case(text.replace('title = "minimal"', 'title = "minimal"\nunits = "in"')).units == "in"
+    # with a numeric step the label is only a label
+    step = MINIMAL.replace('title = "minimal"', 'title = "minimal"\nunits = "inch"') + "\n[allocation]\nrounding = 0.001\n"
+    assert loads_case(step).units == "inch"
+
+
+def test_starter_template_says_units_is_a_label():
+    from allocator.cli.init import starter_text
+
+    line = next(l for l in starter_text().splitlines() if l.startswith("units"))
+    assert "a label, not a scale" in line and "nothing is converted" in starter_text()
+
+
+# --------------------------------------------------------------------------- rising cost tables
+
+
+def test_interpolated_cost_table_that_rises_is_refused_naming_the_points():
+    table = 'cost = { curve = "table", tolerance = [0.05, 0.1, 0.2], cost = [3.0, 1.0, 1.5] }'
+    text = MINIMAL.replace('cost = { curve = "reciprocal", b = 0.5 }', table)
+    err = _error(text)
+    assert str(err).startswith("t.toml: contributor[1] (a).cost: cost rises between tolerance 0.1 and 0.2 (from 1 to 1.5)")
+    assert 'between = "choose"' in str(err)
+
+
+def test_interpolated_csv_cost_table_that_rises_is_refused(tmp_path):
+    (tmp_path / "rising.csv").write_text("tolerance,cost\n0.05,3.0\n0.1,1.0\n0.2,1.2\n", encoding="utf-8")
+    path = _csv_case(tmp_path, "rising.csv")
+    with pytest.raises(CaseError) as info:
+        load_case(path)
+    assert str(info.value).startswith(f"{path}: contributor[1] (a).cost: cost rises between tolerance 0.1 and 0.2")
+
+
+def test_choose_cost_table_may_list_a_dominated_entry():
+    # a looser class that costs more is never worth choosing, but it is not an error
+    table = 'cost = { curve = "table", between = "choose", tolerance = [0.05, 0.1, 0.2], cost = [3.0, 1.0, 1.5] }'
+    case = loads_case(MINIMAL.replace('cost = { curve = "reciprocal", b = 0.5 }', table))
+    assert case.contributor("a").cost.points_cost == (3.0, 1.0, 1.5)
+    # flat stretches and round-off are no rise either
+    flat = 'cost = { curve = "table", tolerance = [0.05, 0.1, 0.2], cost = [3.0, 1.0, 1.0000000000000002] }'
+    assert loads_case(MINIMAL.replace('cost = { curve = "reciprocal", b = 0.5 }', flat))
+
+
+def test_iso286_rounding_checks_each_rounded_contributors_own_units():
+    text = MINIMAL + '\n[allocation]\nrounding = "iso286"\n'
+    # a rounded contributor labelled in a unit that is not a length: refused on its own field
+    err = _error(text.replace('name = "a"\n', 'name = "a"\nunits = "N"\n'))
+    assert str(err).startswith("t.toml: contributor[1] (a).units: 'N' cannot be converted to millimetres")
+    # a fixed contributor is not rounded, and a length label of its own is honoured
+    assert loads_case(text.replace('name = "b"\n', 'name = "b"\nunits = "N"\n')).contributor_units("b") == "N"
+    case = loads_case(text.replace('title = "minimal"', 'title = "minimal"\nunits = "N"')
+                      .replace('name = "a"\n', 'name = "a"\nunits = "mm"\n'))
+    assert case.units == "N" and case.contributor_units("a") == "mm"

@@ -59,3 +59,70 @@ def test_python_dash_m_allocator(tmp_path):
     done = subprocess.run([sys.executable, "-m", "allocator", "--version"], cwd=tmp_path, capture_output=True, text=True,
                           env=dict(os.environ, PYTHONPATH=str(ROOT)), timeout=60)
     assert done.returncode == 0 and "allocator" in done.stdout
+
+
+def test_a_reader_that_goes_away_ends_the_command_quietly(tmp_path):
+    # `allocator allocate CASE | head -1` where head has already gone: the pipe's read end
+    # is closed before the command writes, so its first write fails (deterministically)
+    path = os.pathsep.join([str(ROOT), *site.getsitepackages()])
+    read_end, write_end = os.pipe()
+    os.close(read_end)
+    try:
+        done = subprocess.run(
+            [sys.executable, "-S", "-c", "import sys; from allocator.cli.main import main; main(sys.argv[1:])",
+             "allocate", str(DEMO), "--model", "rss"],
+            cwd=tmp_path, env=dict(os.environ, PYTHONPATH=path), stdout=write_end, stderr=subprocess.PIPE,
+            text=True, timeout=120,
+        )
+    finally:
+        os.close(write_end)
+    assert done.stderr == ""  # no "error: broken pipe", no "Exception ignored ..."
+    assert done.returncode == 141  # 128 + SIGPIPE, as a shell reports a command stopped by it
+
+
+def test_head_of_a_pipe_in_a_shell(tmp_path):
+    command = (f"{sys.executable} -S -c 'import sys; from allocator.cli.main import main; main(sys.argv[1:])' "
+               f"allocate {DEMO} --model rss | head -1")
+    path = os.pathsep.join([str(ROOT), *site.getsitepackages()])
+    done = subprocess.run(["sh", "-c", command], cwd=tmp_path, env=dict(os.environ, PYTHONPATH=path),
+                          capture_output=True, text=True, timeout=120)
+    assert done.returncode == 0
+    assert done.stdout.startswith("Gearbox") and done.stdout.count("\n") == 1
+    assert done.stderr == ""
+
+
+@pytest.mark.parametrize(
+    "args",
+    [
+        ["analyze", "missing.toml"],
+        ["analyze", "."],
+        ["allocate", str(DEMO), "--fix", "x"],
+        ["verify", str(DEMO), "--samples", "2.5"],
+        ["report", str(DEMO), "-o", "."],
+    ],
+    ids=["missing", "folder", "bad-fix", "bad-samples", "output-folder"],
+)
+def test_one_line_errors_end_with_a_newline(tmp_path, args):
+    done = run(*args, cwd=tmp_path)
+    assert done.returncode == 2
+    assert done.stderr.startswith("error: ") and done.stderr.endswith("\n")
+    assert done.stderr.count("\n") == 1, done.stderr
+    assert done.stdout == ""
+
+
+def test_help_lists_every_command_with_a_whole_summary(tmp_path):
+    done = run("--help", cwd=tmp_path)
+    assert done.returncode == 0
+    listing = done.stdout.split("Commands:", 1)[1].splitlines()
+    names = [line.split()[0] for line in listing if line.startswith("  ") and not line.startswith("   ")]
+    assert names == ["init", "analyze", "allocate", "frontier", "verify", "report"]
+    for line in listing:  # no summary cut off
+        assert not line.rstrip().endswith("..."), line
+    # and the same with a narrow terminal: a long summary wraps, it is never cut
+    narrow = subprocess.run(
+        [sys.executable, "-c", "from allocator.cli.main import main; main(['--help'])"],
+        cwd=tmp_path, env=dict(os.environ, PYTHONPATH=str(ROOT), COLUMNS="52"),
+        capture_output=True, text=True, timeout=60,
+    )
+    for line in narrow.stdout.split("Commands:", 1)[1].splitlines():
+        assert not line.rstrip().endswith("..."), line

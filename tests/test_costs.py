@@ -298,7 +298,7 @@ def test_convexity_detection():
 
     rising = CostCurve("table", points_tolerance=(0.01, 0.02, 0.05), points_cost=(5.0, 3.0, 3.5))
     assert not table_is_convex_decreasing(rising)
-    assert table_problem(rising) == "cost rises between tolerance 0.02 and 0.05"
+    assert table_problem(rising).startswith("cost rises between tolerance 0.02 and 0.05 (from 3 to 3.5)")
 
     bent = CostCurve("table", points_tolerance=(0.01, 0.02, 0.05), points_cost=(5.0, 4.5, 2.0))
     assert not table_is_convex_decreasing(bent)
@@ -354,3 +354,158 @@ def test_check_curve_accepts_valid(curve):
 def test_model_costcurve_delegates_here():
     assert RECIPROCAL.value(0.05) == cost_value(RECIPROCAL, 0.05)
     assert RECIPROCAL.derivative(0.05) == cost_derivative(RECIPROCAL, 0.05)
+
+
+# --------------------------------------------------------------------------- the registry
+#
+# Every registered family is checked here through the registry, so a new family is covered
+# as soon as it has an example curve below (test_every_family_has_an_example fails until
+# it has). References: central finite differences, scipy.optimize.minimize_scalar, a dense
+# grid (exact enumeration) and cvxpy's own evaluation of the solver form.
+
+from allocator.costs import FAMILIES, family  # noqa: E402
+from allocator.solve.exact import minimise_linear_price, minimise_quadratic_price  # noqa: E402
+from allocator.solve.problem import CurveSet, scaled_curve  # noqa: E402
+
+EXAMPLES = {
+    "reciprocal": RECIPROCAL,
+    "reciprocal-power": POWER,
+    "exponential": EXPONENTIAL,
+    "table": TABLE,
+}
+REGISTERED = sorted(FAMILIES)
+
+
+def test_every_family_has_an_example():
+    assert set(EXAMPLES) == set(FAMILIES)
+
+
+def family_curves(name: str, count: int = 6, seed: int = 3):
+    """The example and, for formula families, random variants (each parameter times
+    e^u, u uniform on [-1, 1]: the signs and so the checks stay satisfied)."""
+    example = EXAMPLES[name]
+    fam = family(name)
+    if fam.piecewise:
+        return [example]
+    rng = np.random.default_rng(seed)
+    out = [example]
+    for _ in range(count - 1):
+        scaled = {q.name: getattr(example, q.name) * math.exp(rng.uniform(-1, 1))
+                  for q in fam.parameters}
+        out.append(CostCurve(name, **scaled))
+    return out
+
+
+def sample_points(curve, count: int = 7, seed: int = 5) -> np.ndarray:
+    """Random tolerances inside a table's range (away from its kinks) or on [0.004, 0.2]."""
+    rng = np.random.default_rng(seed)
+    if family(curve.curve).piecewise:
+        x = np.asarray(curve.points_tolerance)
+        seg = rng.integers(0, x.size - 1, count)
+        return x[seg] + rng.uniform(0.1, 0.9, count) * (x[seg + 1] - x[seg])
+    return np.exp(rng.uniform(math.log(0.004), math.log(0.2), count))
+
+
+@pytest.mark.parametrize("name", REGISTERED)
+def test_family_slope_and_curvature_match_finite_differences(name):
+    fam = family(name)
+    for curve in family_curves(name):
+        p = fam.params([curve])
+        for t in sample_points(curve):
+            h = 1e-6 * t
+            slope = cost_derivative(curve, t)
+            assert slope == pytest.approx(
+                central_difference(lambda x: cost_value(curve, x), t, h), rel=1e-6, abs=1e-9)
+            assert slope < 0  # decreasing
+            bend = fam.curvature(p, np.array([t]))[0]
+            assert bend == pytest.approx(
+                central_difference(lambda x: cost_derivative(curve, x), t, h), rel=1e-5, abs=1e-6)
+            assert bend >= 0  # convex
+
+
+@pytest.mark.parametrize("name", REGISTERED)
+def test_family_inverse_slope_minimises_linearised_cost(name):
+    """inverse_derivative(C'(t)) gives back t (formulas), and for every family it is the
+    minimiser of C(t) − s·t on the limits (checked on a dense grid)."""
+    for curve in family_curves(name):
+        t = sample_points(curve)
+        lo, hi = float(t.min()) * 0.5, float(t.max()) * 1.5
+        if family(name).piecewise:
+            lo = max(lo, curve.points_tolerance[0])
+            hi = min(hi, curve.points_tolerance[-1])
+        else:
+            back = inverse_derivative(curve, cost_derivative(curve, t), lo, hi)
+            assert back == pytest.approx(t, rel=1e-10)
+        grid = np.geomspace(lo, hi, 20001)
+        for s in cost_derivative(curve, t):
+            best = inverse_derivative(curve, s, lo, hi)
+            reached = cost_value(curve, best) - s * best
+            assert reached <= np.min(cost_value(curve, grid) - s * grid) + 1e-12 * abs(reached)
+
+
+@pytest.mark.parametrize("name", REGISTERED)
+def test_family_vectorised_evaluation_and_minimisers(name):
+    """CurveSet (what the solvers use) against the one-curve functions, and the per-part
+    minimisers of the exact dual against scipy's bounded minimiser, all parts at once."""
+    curves = family_curves(name)
+    parts = [c for c in curves for _ in range(3)]
+    t = np.concatenate([sample_points(c, 3, seed=i) for i, c in enumerate(curves)])
+    cs = CurveSet(parts)
+    assert cs.value(t) == pytest.approx([cost_value(c, x) for c, x in zip(parts, t)], rel=1e-14)
+    assert cs.derivative(t) == pytest.approx(
+        [cost_derivative(c, x) for c, x in zip(parts, t)], rel=1e-14)
+    assert list(cs.subset(np.arange(1, len(parts), 2)).value(t[1::2])) == list(cs.value(t)[1::2])
+
+    rng = np.random.default_rng(11)
+    lo = np.array([c.points_tolerance[0] if c.points_tolerance else 0.003 for c in parts])
+    hi = np.array([c.points_tolerance[-1] if c.points_tolerance else 0.3 for c in parts])
+    s = -cs.derivative(t) * rng.uniform(0.5, 2.0, t.size)
+    q = s / t
+    shift = s * rng.uniform(0.0, 1.0, t.size)
+    answers = {
+        "linear": (minimise_linear_price(cs, s, lo, hi), np.zeros_like(q), s),
+        "quadratic": (minimise_quadratic_price(cs, q, lo, hi), q, np.zeros_like(s)),
+        "shifted": (minimise_quadratic_price(cs, q, lo, hi, shift), q, shift),
+    }
+    for kind, (found, qq, ss) in answers.items():
+        for i, curve in enumerate(parts):
+            def f(x, i=i, curve=curve):
+                return cost_value(curve, x) + 0.5 * qq[i] * x * x + ss[i] * x
+            ref = minimize_scalar(f, bounds=(lo[i], hi[i]), method="bounded",
+                                  options={"xatol": 1e-12 * hi[i]})
+            assert lo[i] <= found[i] <= hi[i]
+            assert f(found[i]) <= f(ref.x) + 1e-9 * abs(f(ref.x)), (kind, i)
+
+
+@pytest.mark.parametrize("name", REGISTERED)
+def test_family_cvx_form_equals_value(name):
+    curves = family_curves(name)
+    t = np.array([sample_points(c, 1, seed=i)[0] for i, c in enumerate(curves)])
+    counts = np.arange(1, len(curves) + 1, dtype=float)
+    tv = cp.Variable(len(curves))
+    total = cvx_costs(curves, tv, counts)
+    tv.value = t
+    expected = sum(n * cost_value(c, x) for n, c, x in zip(counts, curves, t))
+    assert float(total.value) == pytest.approx(expected, rel=1e-12)
+    assert total.is_convex()
+    for curve, x in zip(curves, t):
+        one = cp.Variable()
+        expr = cvx_cost(curve, one, count=2.0)
+        one.value = x
+        assert float(expr.value) == pytest.approx(2.0 * cost_value(curve, x), rel=1e-12)
+
+
+@pytest.mark.parametrize("name", REGISTERED)
+def test_family_scaling_parameter_checks_and_text(name):
+    fam = family(name)
+    for curve in family_curves(name):
+        for t in sample_points(curve, 3):
+            scaled = scaled_curve(curve, 0.01, 7.0)
+            assert cost_value(scaled, t / 0.01) == pytest.approx(cost_value(curve, t) / 7.0, rel=1e-13)
+        formula, params = fam.describe(curve, lambda v: f"{v:g}")
+        assert formula and "\n" not in formula + params
+        for q in fam.parameters:
+            assert f"{q.name} = " in params
+            bad = CostCurve(name, **{**fam.one(curve), q.name: q.lower - 1.0})
+            assert check_curve(bad) == f"{q.name} must be {q.bound} (got {q.lower - 1.0:g})"
+    assert set(fam.case_keys) >= {q.name for q in fam.parameters}

@@ -152,6 +152,28 @@ def test_seven_by_six_choose_tables_match_enumeration(model):
     assert result.total_cost == pytest.approx(cost[ok].min(), rel=1e-9)
 
 
+def test_choose_table_with_a_dominated_entry_matches_enumeration():
+    # x0 lists 0.04 at 2.5, dearer than 0.02 at 2.0: accepted by the loader, never worth taking
+    x0 = Contributor(name="x0", nominal=10.0, tolerance=0.02, limits=(0.01, 0.04),
+                     cost=_choose([0.01, 0.02, 0.04], [4.0, 2.0, 2.5]))
+    x1 = Contributor(name="x1", nominal=6.0, tolerance=0.03, limits=(0.01, 0.05),
+                     cost=_choose([0.01, 0.03, 0.05], [3.0, 1.5, 1.0]))
+    req = Requirement(name="gap", chain={"x0": 1.0, "x1": -1.0}, lower=3.93, upper=4.07)
+    case = _case([x0, x1], [req])
+    result = allocate(case, "worst-case")
+    # exact enumeration of the 3 x 3 choices (worst case: t0 + t1 <= 0.07)
+    best = min(
+        (c0 + c1, t0, t1)
+        for (t0, c0), (t1, c1) in itertools.product(
+            zip(x0.cost.points_tolerance, x0.cost.points_cost), zip(x1.cost.points_tolerance, x1.cost.points_cost)
+        )
+        if t0 + t1 <= 0.07 + 1e-12
+    )
+    assert best == (3.0, 0.02, 0.05)
+    assert result.success and result.total_cost == pytest.approx(best[0], rel=1e-12)
+    assert result.tolerances["x0"] == 0.02
+
+
 def test_dispatch_and_shadow_prices_of_a_discrete_choice():
     case = _choose_case(4, 3, "rss", seed=3)
     assert needs_discrete(case)
@@ -321,6 +343,357 @@ def test_held_contributor_with_processes_still_chooses_its_process():
     assert result.tolerances["shaft"] == 0.03
 
 
+# --------------------------------------------------------------------------- mean shift, δ fixed
+
+
+def _sigma_factor_reference(distribution, cp):
+    """σ / t written out: ±t = ±3·cp·σ (normal), σ² = t²/6 (symmetric triangle on ±t)."""
+    return 1.0 / (3.0 * cp) if distribution == "normal" else 1.0 / np.sqrt(6.0)
+
+
+def _enumerate(case, model):
+    """Cheapest combination of options meeting every requirement, by itertools.product.
+
+    Fallout with scipy.stats.norm at the worst end of the mean band ȳ ± δ,
+    δ = Σ n|a|·mean_shift·t (δ = 0 under rss); returns (cost, {name: (process, t)}, second
+    cheapest feasible cost).
+    """
+    options = []
+    for c in case.contributors:
+        rows = []
+        for p in c.options():
+            f = _sigma_factor_reference(c.distribution, p.cp if p.cp is not None else c.cp)
+            if c.fixed:
+                rows.append((p.name, c.tolerance, f, 0.0))
+                continue
+            for t, price in zip(p.cost.points_tolerance, p.cost.points_cost):
+                rows.append((p.name, t, f, price))
+        options.append(rows)
+    n = np.array([c.count for c in case.contributors], dtype=float)
+    m = np.array([c.mean_shift for c in case.contributors]) if model == "mean-shift" else 0.0
+    found = []
+    for combo in itertools.product(*options):
+        t = np.array([o[1] for o in combo])
+        f = np.array([o[2] for o in combo])
+        ok = True
+        for req in case.requirements:
+            a = np.array([req.chain.get(c.name, 0.0) for c in case.contributors])
+            nominal = sum(a_i * n_i * c.nominal for a_i, n_i, c in zip(a, n, case.contributors))
+            sigma = np.sqrt(np.sum(n * (a * f * t) ** 2))
+            delta = np.sum(n * np.abs(a) * m * t)
+            fallout = max(stats.norm.cdf(req.lower, mu, sigma) + stats.norm.sf(req.upper, mu, sigma)
+                          for mu in (nominal - delta, nominal + delta))
+            ok &= fallout <= req.fallout_ppm * 1e-6
+        if ok:
+            found.append((float(n @ [o[3] for o in combo]), {c.name: o[:2] for c, o in zip(case.contributors, combo)}))
+    found.sort(key=lambda x: x[0])
+    return found[0][0], found[0][1], found[1][0]
+
+
+def _shifted_case(mean_shifts=None, held_shift=None):
+    """Invented: choose tables and a part made by one of two processes, no mean shifts
+    unless given; with ``held_shift`` a second requirement over parts without a free
+    mean-shift contributor (one held part with that mean shift)."""
+    ms = mean_shifts or {}
+    contributors = [
+        Contributor(name="a", nominal=10.0, tolerance=0.02, limits=(0.01, 0.04), mean_shift=ms.get("a", 0.0),
+                    cost=_choose([0.01, 0.02, 0.04], [3.0, 1.6, 1.0])),
+        Contributor(name="b", nominal=4.0, tolerance=0.015, limits=(0.005, 0.03), distribution="triangular",
+                    mean_shift=ms.get("b", 0.0), cost=_choose([0.005, 0.015, 0.03], [4.0, 2.0, 1.2])),
+        Contributor(name="c", nominal=3.0, tolerance=0.02, processes=(
+            Process("mill", (0.02, 0.05), _choose([0.02, 0.05], [1.5, 0.8]), cp=0.8),
+            Process("grind", (0.005, 0.01), _choose([0.005, 0.01], [3.5, 2.5]), cp=1.67),
+        )),
+        Contributor(name="d", nominal=1.0, tolerance=0.03, limits=(0.01, 0.03), count=2, cp=1.33,
+                    cost=_choose([0.01, 0.03], [1.0, 0.4])),
+    ]
+    # y = a − b + 2c − 2·d (d twice) = 10 − 4 + 6 − 2 = 10
+    requirements = [Requirement(name="gap", chain={"a": 1, "b": -1, "c": 2, "d": -1},
+                                lower=9.94, upper=10.06, fallout_ppm=100)]
+    if held_shift is not None:
+        contributors.append(Contributor(name="e", nominal=5.0, tolerance=0.01, fixed=True,
+                                        mean_shift=held_shift))
+        # y = c + e = 3 + 5 = 8; its only mean shift is the held part's
+        requirements.append(Requirement(name="stack", chain={"c": 1, "e": 1},
+                                        lower=7.9835, upper=8.0165, fallout_ppm=1000))
+    return _case(contributors, requirements, models=("rss", "mean-shift"))
+
+
+def test_mean_shift_without_mean_shifts_equals_rss_and_enumeration():
+    # with every mean shift 0 the band ȳ ± δ is ȳ: mean shift is rss (CASE-FORMAT "The models")
+    case = _shifted_case()
+    expected, choice, runner_up = _enumerate(case, "rss")
+    assert runner_up > expected * (1 + 1e-6)  # one optimum: the choices are comparable
+    results = {model: DiscreteAllocation(case, model).solve() for model in ("rss", "mean-shift")}
+    for model, result in results.items():
+        assert result.status == "optimal", (model, result.message)
+        assert result.total_cost == pytest.approx(expected, rel=1e-9)
+        assert {k: (result.processes[k], result.tolerances[k]) for k in choice} == choice
+    assert results["mean-shift"].total_cost == pytest.approx(results["rss"].total_cost, rel=1e-9)
+
+
+@pytest.mark.parametrize("held_shift", [0.0, 0.5])
+def test_mean_shift_with_one_requirement_without_free_mean_shifts(held_shift):
+    # "gap" has mean-shift contributors; "stack" has none that is free (δ = 0, or the
+    # held part's constant n|a|·m·t): each against enumeration of the true fallout
+    case = _shifted_case({"a": 0.3, "b": 0.2}, held_shift=held_shift)
+    expected, choice, _ = _enumerate(case, "mean-shift")
+    result = DiscreteAllocation(case, "mean-shift").solve()
+    assert result.status == "optimal", result.message
+    assert result.total_cost == pytest.approx(expected, rel=1e-9)
+    assert {k: (result.processes[k], result.tolerances[k]) for k in choice} == choice
+
+
+@pytest.mark.parametrize("name", ["divider_output.toml", "pump_shim.toml"])
+def test_demos_without_mean_shifts_allocate_under_mean_shift_as_under_rss(name):
+    from allocator.case import load_case
+
+    case = load_case(CASES / name)
+    assert not case.mean_shifts.any()
+    shifted = allocate(case, "mean-shift")
+    plain = allocate(case, "rss")
+    assert shifted.status == "optimal", shifted.message
+    assert shifted.total_cost == pytest.approx(plain.total_cost, rel=1e-9)
+    assert shifted.processes == plain.processes
+
+
+# --------------------------------------------------------------------------- held at T
+
+
+def _held_case(lower, upper, *, mean_shift=0.0, fixed_at=None, hub_cast=True):
+    """Invented: a bore turned, bored or ground (turning listed first, cheapest at ±0.025
+    but cp 1; boring dearer there but cp 2; grinding cannot make ±0.025), a hub cast or
+    machined (``hub_cast=False``: machined only) and a plate. ``fixed_at``: the bore is
+    ``fixed = true`` at that tolerance."""
+    body = Contributor(
+        name="body", nominal=40.0, tolerance=fixed_at or 0.03, fixed=fixed_at is not None,
+        mean_shift=mean_shift,
+        processes=(
+            Process("turning", (0.02, 0.10), CostCurve("reciprocal", a=3.0, b=0.05)),
+            Process("boring", (0.008, 0.03), CostCurve("reciprocal", a=4.5, b=0.02), cp=2.0),
+            Process("grinding", (0.002, 0.01), CostCurve("reciprocal", a=9.0, b=0.02), cp=1.33),
+        ),
+    )
+    hub = Contributor(
+        name="hub", nominal=25.0, tolerance=0.05, mean_shift=mean_shift,
+        processes=(
+            Process("cast", (0.03, 0.12), CostCurve("reciprocal", a=0.8, b=0.04)),
+            Process("machined", (0.005, 0.08), CostCurve("reciprocal", a=1.2, b=0.02), cp=1.33),
+        )[0 if hub_cast else 1:],
+    )
+    plate = Contributor(name="plate", nominal=12.7, tolerance=0.03, limits=(0.01, 0.1),
+                        distribution="triangular", mean_shift=mean_shift,
+                        cost=CostCurve("reciprocal", a=0.8, b=0.01))
+    req = Requirement(name="clearance", chain={"body": 1, "hub": -1, "plate": -1},
+                      lower=lower, upper=upper, fallout_ppm=100)
+    return _case([body, hub, plate], [req], models=("worst-case", "rss", "mean-shift"))
+
+
+def _sigma_over_t(c, process):
+    """σ/t from the contract: normal t/(3·cp), uniform t/√3, triangular t/√6."""
+    if c.distribution == "uniform":
+        return 1 / np.sqrt(3)
+    if c.distribution == "triangular":
+        return 1 / np.sqrt(6)
+    cp = process.cp if process is not None and process.cp is not None else c.cp
+    return 1 / (3 * cp)
+
+
+def _lagrange_reciprocal(n, w, power, a, b, lo, hi, budget):
+    """min Σ n (a + b/t) s.t. Σ n w t^power ≤ budget, lo ≤ t ≤ hi.
+
+    Closed form per multiplier λ (Chase, Greenwood, Loosli & Hauglund 1990, Least cost
+    tolerance allocation for mechanical assemblies with automated process selection):
+    n b / t² = λ n w power t^(power−1) gives t = (b / (λ w power))^(1/(power+1)), clipped to
+    the limits; λ by brentq on the budget.
+    """
+    cost = lambda t: float(np.sum(n * (a + b / t)))  # noqa: E731
+    if budget <= 0 or np.sum(n * w * lo**power) > budget * (1 + 1e-12):
+        return np.inf
+    if np.sum(n * w * hi**power) <= budget:
+        return cost(hi)
+    t_of = lambda L: np.clip((b / (np.exp(L) * w * power)) ** (1 / (power + 1)), lo, hi)  # noqa: E731
+    L = optimize.brentq(lambda L: np.sum(n * w * t_of(L) ** power) - budget, -200, 200, xtol=1e-14)
+    return cost(t_of(L))
+
+
+def _continuous_reference(model, free, held, nominal, lower, upper, p):
+    """Least cost of the free (reciprocal) parts with the held ones as constants.
+
+    Worst case and rss by the closed-form Lagrange optimum above (σ_max of the two-sided
+    normal fallout by brentq on scipy.stats.norm); mean shift by scipy.optimize.minimize
+    (SLSQP, several starts) on the true constraint: the fallout at the worse end of ȳ ± δ.
+    """
+    col = lambda rows, k: np.array([r[k] for r in rows], dtype=float)  # noqa: E731
+    n, a, f, m = (col(free, k) for k in ("n", "a", "f", "m"))
+    ca, cb, lo, hi = (col(free, k) for k in ("ca", "cb", "lo", "hi"))
+    hn, ha, hf, hm, ht = (col(held, k) for k in ("n", "a", "f", "m", "t"))
+    held_cost = float(np.sum(hn * col(held, "cost")))
+    if model == "worst-case":
+        room = min(nominal - lower, upper - nominal) - float(np.sum(hn * np.abs(ha) * ht))
+        return held_cost + _lagrange_reciprocal(n, np.abs(a), 1, ca, cb, lo, hi, room)
+    if model == "rss":
+        sigma = _sigma_max_reference(nominal, p, lower, upper)
+        budget = sigma**2 - float(np.sum(hn * (ha * hf * ht) ** 2))
+        return held_cost + _lagrange_reciprocal(n, (a * f) ** 2, 2, ca, cb, lo, hi, budget)
+
+    def worst(t):
+        sigma = np.sqrt(np.sum(n * (a * f * t) ** 2) + np.sum(hn * (ha * hf * ht) ** 2))
+        delta = np.sum(n * np.abs(a) * m * t) + np.sum(hn * np.abs(ha) * hm * ht)
+        return max(stats.norm.cdf(lower, mu, sigma) + stats.norm.sf(upper, mu, sigma)
+                   for mu in (nominal - delta, nominal + delta))
+
+    cost = lambda x: float(np.sum(n * (ca + cb / np.exp(x))))  # noqa: E731
+    rule = {"type": "ineq", "fun": lambda x: np.log(p) - np.log(max(worst(np.exp(x)), 1e-300))}
+    rng = np.random.default_rng(0)
+    best = np.inf
+    for x0 in [np.log(lo)] + [rng.uniform(np.log(lo), np.log(hi)) for _ in range(5)]:
+        out = optimize.minimize(cost, x0, method="SLSQP", bounds=list(zip(np.log(lo), np.log(hi))),
+                                constraints=[rule], options={"ftol": 1e-14, "maxiter": 500})
+        x = np.clip(out.x, np.log(lo), np.log(hi))
+        if worst(np.exp(x)) <= p * (1 + 1e-7):
+            best = min(best, cost(x))
+    return held_cost + best
+
+
+def _enumerate_processes(case, model, held_at):
+    """Cheapest combination over every process of every free and held contributor
+    (itertools.product), the tolerances of each combination solved independently.
+
+    A held contributor at ``T`` with a process whose range does not hold ``T`` is not a
+    combination. Returns (least cost, {contributor: process}).
+    """
+    req = case.requirements[0]
+    nominal = sum(k * case.contributor(name).count * case.contributor(name).nominal
+                  for name, k in req.chain.items())
+    best = (np.inf, None)
+    for combo in itertools.product(*[c.processes or (None,) for c in case.contributors]):
+        free, held = [], []
+        for c, p in zip(case.contributors, combo):
+            limits, curve = (p.limits, p.cost) if p is not None else (c.limits, c.cost)
+            row = dict(n=c.count, a=req.chain.get(c.name, 0.0), f=_sigma_over_t(c, p), m=c.mean_shift)
+            if c.name in held_at:
+                t = held_at[c.name]
+                if not limits[0] <= t <= limits[1]:
+                    break
+                held.append(dict(row, t=t, cost=curve.a + curve.b / t))
+            else:
+                assert curve.curve == "reciprocal"
+                free.append(dict(row, ca=curve.a, cb=curve.b, lo=limits[0], hi=limits[1]))
+        else:
+            cost = _continuous_reference(model, free, held, nominal, req.lower, req.upper,
+                                         req.fallout_ppm * 1e-6)
+            if cost < best[0]:
+                best = (cost, {c.name: p.name for c, p in zip(case.contributors, combo) if p})
+    return best
+
+
+@pytest.mark.parametrize("hold, hub_cast", [("fix", False), ("fixed", False), ("fix", True)],
+                         ids=["fix", "fixed", "fix-hub-cast-or-machined"])
+@pytest.mark.parametrize("model, limits, held", [
+    ("worst-case", (2.2, 2.4), 0.025),  # turning or boring make ±0.025: cp plays no part
+    ("worst-case", (2.2, 2.4), 0.015),  # only boring makes ±0.015 (turning is listed first)
+    ("rss", (2.27, 2.33), 0.025),  # boring's cp 2 pays for its higher price
+    ("mean-shift", (2.25, 2.35), 0.025),
+])
+def test_held_contributor_with_several_processes_matches_enumeration(model, limits, held, hold, hub_cast):
+    # holding a tolerance does not choose the process: every process whose range holds it
+    # can make it, at its own cost and cp (regression: with no other choice in the case,
+    # the held bore was priced and its σ taken from the first process listed)
+    shift = 0.3 if model == "mean-shift" else 0.0
+    if hold == "fix":
+        case = _held_case(*limits, mean_shift=shift, hub_cast=hub_cast)
+        result = allocate(case, model, fix={"body": held})
+    else:
+        case = _held_case(*limits, mean_shift=shift, fixed_at=held, hub_cast=hub_cast)
+        result = allocate(case, model)
+    best, processes = _enumerate_processes(case, model, {"body": held})
+    assert result.status == "optimal", result.message
+    assert result.tolerances["body"] == held
+    assert {k: result.processes[k] for k in processes} == processes
+    gap = result.gap or 0.0
+    assert result.total_cost == pytest.approx(best, rel=gap + 1e-8)
+    assert result.total_cost >= best * (1 - 1e-8)
+
+
+def test_frontier_with_a_fixed_part_several_processes_make_matches_enumeration():
+    # the frontier holds the case's fixed parts like allocate does: the process of the
+    # fixed bore (±0.025: turning or boring) is still chosen at every point
+    from allocator.sweep import frontier
+
+    case = _held_case(2.27, 2.33, fixed_at=0.025, hub_cast=False)
+    values = [2.335, 2.36]
+    sweep = frontier(case, "clearance", "upper", values=values, models=["rss"])
+    costs = [row["total_cost"] for row in sweep.rows()]
+    for value, cost in zip(values, costs):
+        moved = replace(case, requirements=(replace(case.requirements[0], upper=value),))
+        best, _ = _enumerate_processes(moved, "rss", {"body": 0.025})
+        assert cost == pytest.approx(best, rel=1e-6)
+
+
+def test_held_bore_costs_what_its_process_charges():
+    # the pump-clearance demo case held at ±0.015: only fine boring [0.008, 0.03] makes
+    # it (turning [0.02, 0.1] is listed first); the unrounded optimum is the least cost of
+    # all tolerances, so rounding can only cost (regression: it was priced by turning,
+    # called optimal and reported a negative cost of rounding)
+    from allocator.case import load_case
+
+    case = load_case(CASES / "pump_shim.toml")
+    plain = replace(case, allocation=replace(case.allocation, rounding=None))
+    boring = case.contributor("body_depth").processes[1]
+    assert boring.name == "fine boring"
+    for model in ("worst-case", "rss"):
+        rounded = allocate(case, model, fix={"body_depth": 0.015})
+        unrounded = allocate(plain, model, fix={"body_depth": 0.015})
+        assert rounded.success and unrounded.success
+        for result in (rounded, unrounded):
+            assert result.processes["body_depth"] == "fine boring"
+            # Sutherland & Roth (1975) reciprocal-power curve a + b/t^k at t = 0.015
+            assert result.unit_cost["body_depth"] == pytest.approx(
+                boring.cost.a + boring.cost.b / 0.015**boring.cost.k, rel=1e-12)
+        assert unrounded.total_cost <= rounded.total_cost * (1 + 1e-9)
+        assert rounded.unrounded_cost == pytest.approx(unrounded.total_cost, rel=1e-7)
+        assert rounded.rounding_cost >= -1e-9 * rounded.total_cost
+
+
+def test_fixed_part_no_process_makes_is_taken_as_it_is():
+    # contract: a fixed contributor needs neither limits nor cost (it then adds no cost);
+    # limits and costs that do not reach its tolerance are not extrapolated
+    part = Contributor(name="part", nominal=10.0, tolerance=0.05, fixed=True, processes=(
+        Process("lathe", (0.01, 0.02), CostCurve("reciprocal", a=1.0, b=0.01)),
+        Process("grinder", (0.002, 0.01), CostCurve("reciprocal", a=3.0, b=0.01), cp=2.0)))
+    free = Contributor(name="free", nominal=5.0, tolerance=0.05, limits=(0.005, 0.2),
+                       cost=CostCurve("reciprocal", a=0.2, b=0.002))
+    req = Requirement(name="r", chain={"part": 1, "free": 1}, lower=14.85, upper=15.15, fallout_ppm=100)
+    case = _case([part, free], [req], models=("worst-case", "rss"))
+    # worst case: the free part takes the rest of ±0.15, cost 0.2 + 0.002/0.1
+    wc = allocate(case, "worst-case")
+    assert wc.success and wc.total_cost == pytest.approx(0.2 + 0.002 / 0.1, rel=1e-9)
+    # rss with the part's own cp 1 (σ = 0.05/3): σ_free² = σ_max² − (0.05/3)²
+    s_free = np.sqrt(_sigma_max_reference(15.0, 1e-4, 14.85, 15.15) ** 2 - (0.05 / 3) ** 2)
+    rss = allocate(case, "rss")
+    assert rss.success and rss.total_cost == pytest.approx(0.2 + 0.002 / (3 * s_free), rel=1e-7)
+    # the same when rounding sends the case to the discrete solver (0.1 is a multiple)
+    rounded = allocate(replace(case, allocation=AllocationSettings(models=("worst-case",), rounding=0.01)),
+                       "worst-case")
+    assert rounded.success and rounded.total_cost == pytest.approx(0.2 + 0.002 / 0.1, rel=1e-9)
+
+
+def test_fix_on_a_choose_table_must_be_a_listed_tolerance():
+    sleeve = Contributor(name="sleeve", nominal=10.0, tolerance=0.02, limits=(0.005, 0.05),
+                         cost=_choose([0.005, 0.02, 0.05], [4.0, 2.0, 1.0]))
+    other = Contributor(name="other", nominal=5.0, tolerance=0.05, limits=(0.005, 0.2),
+                        cost=CostCurve("reciprocal", a=0.2, b=0.002))
+    req = Requirement(name="r", chain={"sleeve": 1, "other": -1}, lower=4.85, upper=5.15)
+    case = _case([sleeve, other], [req])
+    with pytest.raises(UsageError, match=r"fix: sleeve: tolerance 0\.03 is not one of the listed "
+                                         r"tolerances \(0\.005, 0\.02, 0\.05\)"):
+        allocate(case, "worst-case", fix={"sleeve": 0.03})
+    # a listed one is held at its listed price: 2.0 + the other part at the rest of ±0.15
+    result = allocate(case, "worst-case", fix={"sleeve": 0.02})
+    assert result.success and result.total_cost == pytest.approx(2.0 + 0.2 + 0.002 / 0.13, rel=1e-9)
+
+
 # --------------------------------------------------------------------------- rounding
 
 
@@ -343,6 +716,32 @@ def test_iso286_rounding_gives_standard_grades_and_costs_at_least_the_unrounded(
             assert t == pytest.approx(grades.it_tolerance_um(grade, sizes[name]) / 2000.0, rel=1e-12)
         assert result.total_cost >= result.unrounded_cost * (1 - 1e-9)
         assert result.rounding_cost == pytest.approx(result.total_cost - result.unrounded_cost)
+
+
+def test_iso286_rounding_reads_the_size_in_the_contributors_own_units():
+    # a 1.0 in sleeve in a mm case: its ISO 286 size is 25.4 mm (>18-30 mm row), not 1 mm
+    sleeve = Contributor(name="sleeve", nominal=1.0, tolerance=0.002, limits=(0.0001, 0.004),
+                         cost=CostCurve("reciprocal", a=0.5, b=0.0001), units="in")
+    shaft = Contributor(name="shaft", nominal=25.0, tolerance=0.05, limits=(0.004, 0.2),
+                        cost=CostCurve("reciprocal", a=0.5, b=0.003))
+    req = Requirement(name="fit", expression="25.4 * sleeve - shaft", lower=0.3, upper=0.5)
+    case = _case([sleeve, shaft], [req], rounding="iso286")
+    result = allocate(case, "worst-case")
+    assert result.success, result.message
+    grade = result.grades["sleeve"]
+    # ISO 286-1 Table 1 (as typed in allocator.grades, checked in tests/reference): t = IT/2
+    it_inches = grades.it_tolerance_um(grade, 25.4) / 1000.0 / 25.4
+    assert result.tolerances["sleeve"] == pytest.approx(it_inches / 2.0, rel=1e-9)
+    assert result.tolerances["shaft"] == pytest.approx(grades.it_tolerance_um(result.grades["shaft"], 25.0) / 2000.0)
+
+
+def test_iso286_rounding_refuses_a_contributor_labelled_in_a_non_length_unit():
+    rate = Contributor(name="spring_rate", nominal=20.0, tolerance=1.0, limits=(0.2, 2.0),
+                       cost=CostCurve("reciprocal", a=0.5, b=0.4), units="N/mm")
+    req = Requirement(name="load", expression="spring_rate * 2.0", lower=34.0, upper=46.0)
+    with pytest.raises(CaseError) as err:
+        allocate(_case([rate], [req], rounding="iso286"), "worst-case")
+    assert "contributor 'spring_rate': unknown length unit 'N/mm'" in str(err.value)
 
 
 def test_rounding_with_no_value_inside_the_limits_names_the_contributor():

@@ -24,6 +24,7 @@ What each check compares against (outside the code under test):
 from __future__ import annotations
 
 import math
+import re
 import xml.etree.ElementTree as ET
 from dataclasses import replace
 from itertools import product
@@ -326,6 +327,30 @@ def test_infeasible_values_are_flagged_not_solved():
     assert nothing.status == "infeasible" and not nothing.success
 
 
+def test_a_span_of_one_infeasible_value_is_that_value():
+    # the tightest worst case is 0.2 + (0.01 + 0.01 + 0.005) = 0.225 > 0.08: only 0.08 fails
+    front = frontier(_small_case(), vary="upper", values=[0.08, 0.3, 0.4])
+    assert front.status == "partial"
+    assert "worst-case at 1 of 3 values (0.08)" in front.message, front.message
+    assert ".." not in front.message
+
+
+def test_solver_descriptions_are_words_not_class_names():
+    # one contributor with a mean shift: the mean-shift model is solved without a conic
+    # solver; each model's description must say in words what is done at each value
+    cs = [contributor("a", nominal=20.0, tolerance=0.05, limits=(0.01, 0.2), mean_shift=0.2,
+                      cost=CostCurve("reciprocal", a=1.0, b=0.02)),
+          contributor("b", nominal=15.0, tolerance=0.05, limits=(0.01, 0.2), cost=CostCurve("reciprocal", a=0.5, b=0.01)),
+          contributor("c", nominal=4.8, tolerance=0.02, limits=(0.005, 0.1), cost=CostCurve("reciprocal", a=0.2, b=0.005))]
+    req = chain_requirement("gap", {"a": 1, "b": -1, "c": -1}, lower=0.05, upper=0.4, fallout_ppm=100)
+    case = make_case(cs, [req], models=("worst-case", "rss", "mean-shift"))
+    front = frontier(case, vary="upper", values=[0.3, 0.4])
+    assert set(front.solvers) == {"worst-case", "rss", "mean-shift"}
+    for model, text in front.solvers.items():
+        assert text and not re.search(r"[a-z][A-Z]", text), (model, text)  # no CamelCase name
+        assert "per point" not in text and "Exact" not in text, (model, text)
+
+
 def test_defaults_come_from_the_frontier_table():
     case = _small_case(frontier=FrontierSettings(requirement="gap", vary="lower", range=(-0.2, 0.0), points=4))
     front = frontier(case)
@@ -350,12 +375,25 @@ def test_defaults_come_from_the_frontier_table():
         ({"points": 2001}, "2 to 2000"),
         ({"vary": "fallout_ppm", "range": (0.0, 10.0)}, "> 0"),
         ({"vary": "upper", "range": (0.0, 0.3)}, "above the lower limit"),
-        ({"models": ("rs",)}, "unknown model"),
+        ({"models": ("rs",)}, "unknown model 'rs' \\(did you mean 'rss'\\?\\)"),
     ],
 )
 def test_bad_arguments(kwargs, fragment):
     with pytest.raises(UsageError, match=fragment):
         frontier(_small_case(), **kwargs)
+
+
+@pytest.mark.parametrize(
+    "kwargs, fragment",
+    [
+        ({"requirement": "gpa"}, "unknown requirement 'gpa' \\(did you mean 'gap'\\?\\)"),
+        ({"models": ("rs",)}, "unknown model 'rs' \\(did you mean 'rss'\\?\\)"),
+    ],
+)
+def test_fallout_economics_names_unknown_names_like_frontier(kwargs, fragment):
+    with pytest.raises(ValueError, match=fragment) as err:  # a UsageError is a ValueError
+        fallout_economics(_small_case(), scrap_cost=10.0, **kwargs)
+    assert isinstance(err.value, UsageError)
 
 
 def test_missing_limit_cannot_be_varied():
@@ -399,6 +437,23 @@ def _economics_case(scrap=40.0, volume=10000):
                      economics=Economics(volume=volume, scrap_cost=scrap)), b, coeff
 
 
+def test_economics_results_are_complete_and_frozen():
+    import dataclasses
+
+    econ = fallout_economics(_economics_case()[0])
+    r = econ.result("rss")
+    # complete when built: the optimum, the current target and the saving between them
+    assert r.status == "optimal" and r.success
+    assert r.saving_per_assembly == pytest.approx(r.current_total - r.total_cost, rel=1e-12)
+    assert r.annual_saving == pytest.approx(r.saving_per_assembly * 10000, rel=1e-12)
+    for result, name in ((r, "status"), (r, "total_cost"), (econ, "status"), (econ, "results")):
+        with pytest.raises(dataclasses.FrozenInstanceError):
+            setattr(result, name, None)
+    assert econ.to_frame().index.name == "model" and "<table" in econ._repr_html_()
+    d = econ.to_dict(curve=True)["models"][0]
+    assert isinstance(d["curve_ppm"], list) and len(d["curve_ppm"]) == len(d["curve_manufacturing"])
+
+
 def test_economic_optimum_against_closed_form_brute_force_and_stationarity():
     case, b, coeff = _economics_case()
     econ = fallout_economics(case)
@@ -439,6 +494,11 @@ def test_economic_optimum_against_closed_form_brute_force_and_stationarity():
     assert slope == pytest.approx(-40.0 * 1e-6, rel=1e-3)
     assert r.slope_numeric == pytest.approx(-40.0 * 1e-6, rel=1e-3)
     assert r.slope_shadow == pytest.approx(-40.0 * 1e-6, rel=1e-3)
+    # the message says it in words, per 1000 ppm: the manufacturing saved and the scrap
+    # added (40 · 1e-6 · 1000 = 0.04), with no derivative notation
+    assert "dM/dp" not in r.message and "relative difference" not in r.message
+    assert f"saves {-1000 * r.slope_numeric:.4g} of manufacturing cost" in r.message
+    assert "adds 0.04 of scrap cost; the two balance" in r.message
 
 
 def test_economics_needs_scrap_cost_and_a_statistical_model():
@@ -616,6 +676,17 @@ def test_cli_exit_1_when_no_value_can_be_met(case_file):
     result = _invoke(case_file, "--range", "0.06", "0.07", "--points", "2")
     assert result.exit_code == 1
     assert "infeasible" in result.output
+    # the reason once, in the output; stderr only one short line
+    assert "status: infeasible: no model meets the requirement" in result.stdout
+    assert result.stderr == "error: frontier of gap: infeasible\n"
+
+
+def test_cli_human_output_names_no_internals(case_file):
+    result = _invoke(case_file, "--points", "3", "--range", "0.21", "0.5")
+    assert result.exit_code == 0, result.output
+    assert not re.search(r"\b[A-Z][a-z]+[A-Z]\w*", result.output), result.output  # no class names
+    assert "per point" not in result.output and "dM/dp" not in result.output
+    assert "(0.21)" in result.output and "0.21 .. 0.21" not in result.output
 
 
 # --------------------------------------------------------------------------- long work: progress, files
@@ -756,7 +827,7 @@ def test_discrete_frontier_points_equal_independent_allocations(tmp_path, model,
     # loosens (Boyd & Vandenberghe 2004, §5.6.1).
     case = _discrete_case(tmp_path)
     front = frontier(case, vary=vary, values=values, models=(model,))
-    assert front.solvers[model].startswith("discrete")
+    assert front.solvers[model].startswith("mixed-integer")
     costs = front.costs[model]
     for value, cost, status in zip(front.values, costs, front.statuses[model]):
         single = allocate(case, model, overrides={"gap": {vary: float(value)}})

@@ -201,7 +201,7 @@ def test_the_same_case_with_a_plain_expression_loads(tmp_path):
         ("title = " + "[" * 100_000 + "]" * 100_000 + "\n", "not valid TOML"),
         ("title = " + "{a = " * 10_000 + "1" + "}" * 10_000 + "\n", "not valid TOML"),
         ('title = "t"\n' + "[" + "a." * 10_000 + "a]\nb = 1\n", "unknown key 'a'"),
-        ('title = "t"\nunits = "' + "\\u0000" * 1000 + '"\n', "contributor: missing"),
+        ('title = "t"\nunits = "' + "\\u0000" * 1000 + '"\n', "units: must be a short label"),
     ],
     ids=["arrays-1e5-deep", "inline-tables-1e4-deep", "dotted-key-1e4-long", "nul-characters"],
 )
@@ -289,6 +289,9 @@ def test_reading_a_small_case_does_not_reserve_the_cap():
     assert peak < 2**20, f"peak {peak / 2**20:.1f} MB for a {path.stat().st_size} byte case"
 
 
+# slow (writes 15 MB); the header count has a fast check in
+# test_header_count_accepts_spaced_headers_and_ignores_commented_ones
+@pytest.mark.slow
 def test_a_million_contributor_headers_are_refused_before_parsing(tmp_path, monkeypatch):
     """10^6 ``[[contributor]]`` tables fit in 15 MB, under the size cap; parsing them
     would build 10^6 tables (seconds, ~100 MB), so the loader counts the headers first."""
@@ -325,6 +328,8 @@ def test_header_count_accepts_spaced_headers_and_ignores_commented_ones():
     assert case.names == ("x", "y")
 
 
+# slow (parses under tracemalloc); fast check of the count refusal: test_bad_input.py
+@pytest.mark.slow
 def test_many_inline_contributors_are_refused_in_bounded_memory():
     """``contributor = [{}, {}, ...]`` is parsed, then refused by count. 3·10^5 tables
     here (tracemalloc slows the parse); 5.5·10^6 of them fill the 16 MB cap and peak at
@@ -514,12 +519,34 @@ def test_unusable_case_paths_are_one_line(tmp_path, make, fragment):
     with pytest.raises(CaseError, match=re.escape(fragment)):
         load_case(path)
     for command in COMMANDS:
-        result = run_cli([command, str(path)])
-        if fragment == "is a folder, not a case file":
-            # click's own path check answers first (still exit 2, no traceback)
-            assert result.exit_code == 2 and "Traceback" not in result.output
-            continue
-        assert_one_line_exit_2(result, fragment)
+        assert_one_line_exit_2(run_cli([command, str(path)]), fragment)
+
+
+@pytest.mark.parametrize("command", ["analyze", "allocate", "frontier", "verify", "report"])
+def test_a_folder_as_the_case_is_one_line_in_every_command(tmp_path, command):
+    # `allocator analyze .`: the folder exactly as given, then the problem
+    extra = ["-o", str(tmp_path / "r.html")] if command == "report" else []
+    line = assert_one_line_exit_2(run_cli([command, ".", *extra], tmp_path), "is a folder, not a case file")
+    assert line == "error: .: is a folder, not a case file"
+
+
+@pytest.mark.parametrize(
+    "args, line",
+    [
+        (["init", "{tmp}"], "error: {tmp}: is a folder, not a file"),
+        (["report", "{case}", "-o", "{tmp}"], "error: {tmp}: --output: is a folder, not a file"),
+        (["verify", "{case}", "--tolerances", "{tmp}"], "error: {tmp}: --tolerances: is a folder, not a file"),
+        (["verify", "{case}", "--plot", "{tmp}"], "error: {tmp}: --plot: is a folder, not a file"),
+    ],
+    ids=["init", "report-output", "verify-tolerances", "verify-plot"],
+)
+def test_a_folder_where_a_file_is_expected_is_one_line(tmp_path, args, line):
+    case = tmp_path / "case.toml"
+    case.write_text(case_text(), encoding="utf-8")
+    before = files_in(tmp_path)
+    fill = lambda text: text.format(tmp=tmp_path, case=case)  # noqa: E731
+    assert assert_one_line_exit_2(run_cli([fill(a) for a in args])) == fill(line)
+    assert files_in(tmp_path) == before
 
 
 # --------------------------------------------------------------------------- the corpus through allocate
@@ -671,6 +698,31 @@ def test_no_command_overwrites_its_case(tmp_path, monkeypatch, args, how):
     assert line.startswith(f"error: {out}: ")
     assert case.read_bytes() == GEARBOX.read_bytes()
     assert files_in(tmp_path) == before
+
+
+def test_one_output_path_check_for_every_writer(tmp_path):
+    """The library's writers (atomic_write, write_report) and the commands share one check:
+    an input reached by another spelling (``sub/..``, a symlink) and a missing folder are
+    refused before anything is written, with the path as given."""
+    from allocator.errors import UsageError
+    from allocator.files import atomic_write, check_output_path
+
+    case = tmp_path / "case.toml"
+    case.write_bytes(GEARBOX.read_bytes())
+    (tmp_path / "sub").mkdir()
+    (tmp_path / "link.toml").symlink_to(case)
+    for spelling in (str(tmp_path / "sub" / ".." / "case.toml"), str(tmp_path / "link.toml")):
+        with pytest.raises(UsageError, match=r"^.*: refusing to overwrite the input case file$") as err:
+            check_output_path(spelling, protect=(None, case), input_name="input case file")
+        assert str(err.value).startswith(spelling + ": ")
+        with pytest.raises(UsageError, match="refusing to overwrite the input file$"):
+            atomic_write(spelling, "x", protect=(case,))
+    missing = tmp_path / "nowhere" / "out.svg"
+    with pytest.raises(UsageError, match=f"folder {re.escape(str(missing.parent))} does not exist$"):
+        check_output_path(missing)
+    assert check_output_path(tmp_path / "out.svg", protect=(case,)) == tmp_path / "out.svg"
+    assert case.read_bytes() == GEARBOX.read_bytes()
+    assert files_in(tmp_path) == ["case.toml", "link.toml", "sub"]
 
 
 def test_a_hard_link_to_the_case_is_replaced_not_written_through(tmp_path):

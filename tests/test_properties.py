@@ -5,8 +5,8 @@ contributors (coefficients ±[0.2, 3], limits placed around the nominal response
 cost curves (reciprocal, reciprocal-power with k in [0.5, 3], exponential, convex tables),
 limits, counts 1-4, distributions, fixed contributors, the three stack models (mean
 shift 0-0.5) and fallout targets of 1-10000 ppm. For every 'optimal' allocation the test
-checks, with its own numpy code and ``scipy.stats.norm`` (never the project's
-``stack.py`` or checker):
+checks, with the tests' own numpy code and ``scipy.stats.norm`` (``Reference`` in
+tests/helpers.py; never the project's ``stack.py`` or checker):
 
 - every tolerance lies within its limits and fixed ones are held;
 - worst case: ``ȳ ± Σ n|a|t`` inside the limits; rss: the normal fallout at ``ȳ`` is at
@@ -35,7 +35,6 @@ from __future__ import annotations
 import math
 import os
 import zlib
-from dataclasses import dataclass, replace
 
 import numpy as np
 import pytest
@@ -45,8 +44,10 @@ from scipy import optimize, special, stats
 
 from allocator import stack
 from allocator.case import loads_case
-from allocator.model import AllocationSettings, Case, Contributor, CostCurve, Requirement
+from allocator.model import Case
 from allocator.solve import allocate
+
+from helpers import Invented, Reference, build_case, case_text, rtol_for, unit_cost_slope
 
 # --------------------------------------------------------------------------- run settings
 
@@ -63,16 +64,21 @@ EXAMPLES = {
     "infeasible": 200,
     "text": 50,
 }
+# The three longest properties also run on a few examples in the fast loop
+# (``pytest -m "not slow"``, see DEVELOPERS.md); the full counts above are marked slow.
+QUICK_EXAMPLES = {"single": 60, "several": 30, "slsqp": 12}
+SIZES = pytest.mark.parametrize("size", ["quick", pytest.param("full", marks=pytest.mark.slow)])
 
 
-def _examples(key: str) -> int:
-    return max(1, int(round(EXAMPLES[key] * SCALE)))
+def _examples(key: str, size: str = "full") -> int:
+    counts = QUICK_EXAMPLES if size == "quick" else EXAMPLES
+    return max(1, int(round(counts[key] * SCALE)))
 
 
-def _settings(key: str):
+def _settings(key: str, size: str = "full"):
     """Per-test settings: fixed example count, no deadline, reproducible examples."""
     return settings(
-        max_examples=_examples(key),
+        max_examples=_examples(key, size),
         deadline=None,
         derandomize=SEED is None,
         database=None,
@@ -98,7 +104,7 @@ class Counter:
             self.events[label] = self.events.get(label, 0) + 1
 
 
-def _run(key: str, inner, counter: Counter) -> None:
+def _run(key: str, inner, counter: Counter, size: str = "full") -> None:
     """Run a Hypothesis property, then report how many examples ran and how to rerun it."""
     mode = f"seed {SEED}" if SEED is not None else "derandomized"
     try:
@@ -111,151 +117,7 @@ def _run(key: str, inner, counter: Counter) -> None:
         ) from err
     summary = ", ".join(f"{k} {v}" for k, v in sorted(counter.events.items()))
     print(f"[property {key}] {counter.runs} examples ({mode}); {summary}")
-    assert counter.runs >= _examples(key), f"only {counter.runs} of {_examples(key)} examples ran"
-
-
-# --------------------------------------------------------------------------- independent math
-# Everything below is written for these tests from the case-file contract
-# (/work/shared/CASE-FORMAT.md), with scipy.stats.norm as the normal reference.
-
-
-def sigma_over_t(c: Contributor) -> float:
-    """σ/t: normal t/(3 cp), uniform t/√3, triangular t/√6 (contract conventions)."""
-    return {"normal": 1.0 / (3.0 * c.cp), "uniform": 1.0 / math.sqrt(3.0),
-            "triangular": 1.0 / math.sqrt(6.0)}[c.distribution]
-
-
-def unit_cost(curve: CostCurve | None, t):
-    """Unit cost from the published formulas (Chase et al. 1990; Sutherland & Roth 1975;
-    Speckhart 1972) or piecewise-linear interpolation of a table; t is an array."""
-    t = np.asarray(t, dtype=float)
-    if curve is None:
-        return np.zeros_like(t)
-    if curve.curve == "reciprocal":
-        return curve.a + curve.b / t
-    if curve.curve == "reciprocal-power":
-        return curve.a + curve.b / t**curve.k
-    if curve.curve == "exponential":
-        return curve.a + curve.b * np.exp(-curve.c * t)
-    return np.interp(t, curve.points_tolerance, curve.points_cost)
-
-
-def unit_cost_slope(curve: CostCurve | None, t):
-    t = np.asarray(t, dtype=float)
-    if curve is None:
-        return np.zeros_like(t)
-    if curve.curve == "reciprocal":
-        return -curve.b / t**2
-    if curve.curve == "reciprocal-power":
-        return -curve.k * curve.b / t ** (curve.k + 1)
-    if curve.curve == "exponential":
-        return -curve.b * curve.c * np.exp(-curve.c * t)
-    x, y = np.asarray(curve.points_tolerance), np.asarray(curve.points_cost)
-    j = np.clip(np.searchsorted(x, t, side="right") - 1, 0, len(x) - 2)
-    return (y[j + 1] - y[j]) / (x[j + 1] - x[j])
-
-
-class Reference:
-    """The case as plain arrays, with vectorised checks over many tolerance vectors."""
-
-    def __init__(self, case: Case, model: str):
-        self.case, self.model = case, model
-        cs = case.contributors
-        self.names = [c.name for c in cs]
-        self.n = np.array([c.count for c in cs], dtype=float)
-        self.f = np.array([sigma_over_t(c) for c in cs])
-        self.m = np.array([c.mean_shift for c in cs]) if model == "mean-shift" else np.zeros(len(cs))
-        self.fixed = np.array([c.fixed for c in cs])
-        self.held = np.array([c.tolerance for c in cs])
-        self.lo = np.array([c.tolerance if c.fixed else c.limits[0] for c in cs])
-        self.hi = np.array([c.tolerance if c.fixed else c.limits[1] for c in cs])
-        self.curves = [c.cost for c in cs]
-        index = {name: i for i, name in enumerate(self.names)}
-        self.a = np.zeros((len(case.requirements), len(cs)))
-        for r, req in enumerate(case.requirements):
-            for name, coeff in req.chain.items():
-                self.a[r, index[name]] = coeff
-        nominal_sum = np.array([c.count * c.nominal for c in cs])  # a name stands for Σ of its count
-        self.y0 = self.a @ nominal_sum
-        self.lower = [req.lower for req in case.requirements]
-        self.upper = [req.upper for req in case.requirements]
-        self.p = np.array([req.fallout_ppm * 1e-6 for req in case.requirements])
-
-    def cost(self, t) -> np.ndarray:
-        """Σ n·cost(t) for each row of ``t`` (shape (k, n) or (n,))."""
-        t = np.atleast_2d(t)
-        total = np.zeros(t.shape[0])
-        for i, curve in enumerate(self.curves):
-            total += self.n[i] * unit_cost(curve, t[:, i])
-        return total
-
-    def spreads(self, t):
-        """Worst-case half-width W, σ and mean band δ per requirement and row."""
-        t = np.atleast_2d(t)
-        abs_a = np.abs(self.a)
-        half = (t * self.n) @ abs_a.T
-        sigma = np.sqrt((t * self.f) ** 2 * self.n @ (self.a**2).T)
-        delta = (t * self.n * self.m) @ abs_a.T
-        return half, sigma, delta
-
-    def fallout(self, t, band_points: int = 9) -> np.ndarray:
-        """Largest normal fallout over means across ȳ ± δ (rows × requirements)."""
-        _, sigma, delta = self.spreads(t)
-        shifts = np.linspace(-1.0, 1.0, band_points) if self.model == "mean-shift" else np.zeros(1)
-        worst = np.zeros_like(sigma)
-        for r in range(self.a.shape[0]):
-            mean = self.y0[r] + delta[:, r, None] * shifts[None, :]
-            s = sigma[:, r, None]
-            total = np.zeros_like(mean)
-            if self.lower[r] is not None:
-                total = total + stats.norm.cdf((self.lower[r] - mean) / s)
-            if self.upper[r] is not None:
-                total = total + stats.norm.sf((self.upper[r] - mean) / s)
-            worst[:, r] = total.max(axis=1)
-        return worst
-
-    def room(self) -> np.ndarray:
-        """Worst-case allowance min(ȳ − L, U − ȳ) per requirement."""
-        out = []
-        for r in range(len(self.y0)):
-            lo = math.inf if self.lower[r] is None else self.y0[r] - self.lower[r]
-            up = math.inf if self.upper[r] is None else self.upper[r] - self.y0[r]
-            out.append(min(lo, up))
-        return np.array(out)
-
-    def excess(self, t) -> np.ndarray:
-        """Relative violation per row and requirement (≤ 0: met)."""
-        t = np.atleast_2d(t)
-        if self.model == "worst-case":
-            half, _, _ = self.spreads(t)
-            return half / self.room() - 1.0
-        return self.fallout(t) / self.p - 1.0
-
-    def feasible(self, t, rtol: float = 0.0) -> np.ndarray:
-        return np.all(self.excess(t) <= rtol, axis=1)
-
-    def within_limits(self, t) -> bool:
-        t = np.asarray(t, dtype=float)
-        slack = 1e-12 * self.hi
-        free = ~self.fixed
-        ok = np.all(t[free] >= self.lo[free] - slack[free]) and np.all(t[free] <= self.hi[free] + slack[free])
-        return bool(ok and np.allclose(t[self.fixed], self.held[self.fixed], rtol=1e-12, atol=0))
-
-    def tightest(self) -> np.ndarray:
-        return self.lo.copy()
-
-    def random_points(self, rng, k: int) -> np.ndarray:
-        """``k`` points inside the limits, from near the tightest to near the loosest."""
-        span = np.log(self.hi / self.lo)
-        level = rng.uniform(0.0, 1.0, size=(k, 1))  # how loose this point is overall
-        jitter = rng.uniform(0.0, 1.0, size=(k, len(self.lo)))
-        u = np.clip(level * (0.5 + jitter), 0.0, 1.0)
-        return self.lo * np.exp(u * span)
-
-
-def rtol_for(model: str) -> float:
-    # what 'meets the requirement' may mean after floating-point round-off
-    return 1e-9 if model == "worst-case" else 1e-6
+    assert counter.runs >= _examples(key, size), f"only {counter.runs} of {_examples(key, size)} examples ran"
 
 
 # --------------------------------------------------------------------------- strategies
@@ -264,139 +126,6 @@ def rtol_for(model: str) -> float:
 # contributors' dozen parameters through Hypothesis costs ~4 ms each, which would eat the
 # time budget; a shrunk failure is still small (fewer contributors and requirements) and
 # its full case is printed by note().
-
-
-def _pick(rng, options, weights=None):
-    return options[int(rng.choice(len(options), p=weights))]
-
-
-def _log_uniform(rng, low: float, high: float) -> float:
-    return float(math.exp(rng.uniform(math.log(low), math.log(high))))
-
-
-def random_cost_curve(rng, lo: float, hi: float) -> CostCurve:
-    """A convex, decreasing cost over [lo, hi] (variable part 1e-2..1e2 at mid)."""
-    kind = _pick(rng, ["reciprocal", "reciprocal-power", "exponential", "table"])
-    mid = math.sqrt(lo * hi)
-    level = _log_uniform(rng, 1e-2, 1e2)
-    a = _pick(rng, [0.0, 0.1, 1.0, 5.0]) * level
-    if kind == "reciprocal":
-        return CostCurve("reciprocal", a=a, b=level * mid)
-    if kind == "reciprocal-power":
-        k = _pick(rng, [0.5, 1.0, 2.0, 3.0, float(rng.uniform(0.5, 3.0))])
-        return CostCurve("reciprocal-power", a=a, b=level * mid**k, k=k)
-    if kind == "exponential":
-        c = float(rng.uniform(0.3, 6.0)) / mid
-        return CostCurve("exponential", a=a, b=level * math.exp(c * mid), c=c)
-    # convex table: slopes negative and rising toward 0 from the tightest point
-    inner = np.unique(np.round(rng.uniform(0.05, 0.95, size=int(rng.integers(0, 5))), 3))
-    xs = np.concatenate([[lo], lo * (hi / lo) ** inner, [hi]])
-    magnitudes = np.sort(rng.uniform(0.05, 5.0, size=len(xs) - 1))[::-1]
-    if rng.random() < 0.2:
-        magnitudes[:] = magnitudes[0]  # a straight line (convex, not strictly)
-    ys = [float(rng.uniform(0.0, 2.0)) * level]
-    for j in range(len(xs) - 2, -1, -1):  # walk back from the loosest point
-        ys.insert(0, ys[0] + magnitudes[j] * level / mid * (xs[j + 1] - xs[j]))
-    return CostCurve("table", points_tolerance=tuple(float(x) for x in xs),
-                     points_cost=tuple(float(y) for y in ys))
-
-
-def random_contributor(rng, index: int, model: str) -> Contributor:
-    lo = _log_uniform(rng, 1e-3, 5e-2)
-    hi = lo * _log_uniform(rng, 1.5, 40.0)
-    cost = random_cost_curve(rng, lo, hi)
-    fixed = rng.random() < 0.1
-    tolerance = lo * (hi / lo) ** _pick(rng, [0.0, 1.0, float(rng.random())], [0.1, 0.1, 0.8])
-    distribution = _pick(rng, ["normal", "uniform", "triangular"], [0.6, 0.2, 0.2])
-    cp = _pick(rng, [1.0, 0.8, 1.33, 2.0]) if distribution == "normal" else 1.0
-    mean_shift = 0.0
-    if model == "mean-shift":
-        mean_shift = _pick(rng, [0.0, 0.1, 0.25, 0.5, float(rng.uniform(0.0, 0.5))])
-    limits = (lo, hi)
-    if fixed and rng.random() < 0.5:
-        limits, cost = None, None  # a bought-in part: fixed, no cost
-    return Contributor(
-        name=f"c{index}",
-        nominal=round(float(rng.uniform(-50.0, 50.0)), 3),
-        tolerance=tolerance,
-        limits=limits,
-        cost=cost,
-        cp=cp,
-        mean_shift=mean_shift,
-        distribution=distribution,
-        count=int(rng.integers(1, 5)),
-        fixed=fixed,
-    )
-
-
-@dataclass(frozen=True)
-class Invented:
-    case: Case
-    model: str
-    broken: str | None  # the requirement built to be infeasible, if any
-
-
-def _reference_spread(ref: Reference, r: int, t, one_sided: bool) -> float:
-    """Half-width the limits need at tolerances ``t`` for requirement ``r``.
-
-    worst case: Σ n|a|t; statistical: z·σ (+ δ), z for the target on one side (a sure
-    bound for infeasibility) or split over two sides (a sure bound for feasibility).
-    """
-    half, sigma, delta = (x[0, r] for x in ref.spreads(t))
-    if ref.model == "worst-case":
-        return half
-    p = ref.p[r]
-    z = stats.norm.isf(p if one_sided else p / 2.0)
-    return z * sigma + (delta if ref.model == "mean-shift" else 0.0)
-
-
-def build_case(rng, model: str, size: int, count: int, broken: int | None) -> Invented:
-    """An invented case: ``size`` contributors, ``count`` requirements sharing them.
-
-    Requirement limits sit around the nominal response: wide enough for the tightest
-    tolerances (feasible), up to beyond what the loosest need (not binding); the
-    ``broken`` requirement's limits are narrower than the tightest tolerances' spread.
-    """
-    people = [random_contributor(rng, i, model) for i in range(size)]
-    if all(c.fixed for c in people):
-        c = people[0]
-        lo, hi = c.limits or (0.005, 0.05)
-        people[0] = replace(c, fixed=False, limits=(lo, hi), tolerance=min(max(c.tolerance, lo), hi),
-                            cost=c.cost or CostCurve("reciprocal", a=0.0, b=0.01))
-    shapes = []
-    for r in range(count):
-        members = rng.choice(size, size=int(rng.integers(1, min(size, 12) + 1)), replace=False)
-        chain = {f"c{i}": float(rng.uniform(0.2, 3.0) * rng.choice([-1.0, 1.0])) for i in sorted(members)}
-        sides = _pick(rng, ["both", "upper", "lower"], [0.6, 0.2, 0.2])
-        ppm = _log_uniform(rng, 1.0, 1e4)
-        shapes.append((chain, sides, ppm))
-    provisional = Case(
-        title="invented", contributors=tuple(people),
-        requirements=tuple(Requirement(f"r{r}", chain=chain, lower=-1.0, upper=1.0, fallout_ppm=ppm)
-                           for r, (chain, _, ppm) in enumerate(shapes)),
-    )
-    ref = Reference(provisional, model)
-    tight = np.where(ref.fixed, ref.held, ref.lo)
-    loose = np.where(ref.fixed, ref.held, ref.hi)
-    requirements = []
-    for r, (chain, sides, ppm) in enumerate(shapes):
-        if r == broken:
-            room = _reference_spread(ref, r, tight, one_sided=True) * rng.uniform(0.1, 0.95)
-        else:
-            need_tight = _reference_spread(ref, r, tight, one_sided=False)
-            need_loose = _reference_spread(ref, r, loose, one_sided=False)
-            room = need_tight * 1.02 + _pick(rng, [0.0, float(rng.uniform(0, 1.3))], [0.1, 0.9]) * (need_loose - need_tight)
-        wider = room * (1.0 + _pick(rng, [0.0, float(rng.uniform(0.0, 1.0))], [0.3, 0.7]))
-        y0, room, wider = float(ref.y0[r]), float(room), float(wider)
-        lower, upper = (y0 - wider, y0 + room) if rng.random() < 0.5 else (y0 - room, y0 + wider)
-        if sides == "upper":
-            lower, upper = None, y0 + room
-        elif sides == "lower":
-            lower, upper = y0 - room, None
-        requirements.append(Requirement(f"r{r}", chain=chain, lower=lower, upper=upper, fallout_ppm=ppm))
-    case = replace(provisional, requirements=tuple(requirements),
-                   allocation=AllocationSettings(models=(model,)))
-    return Invented(case, model, f"r{broken}" if broken is not None else None)
 
 
 @st.composite
@@ -629,11 +358,12 @@ def test_sigma_limit_meets_the_target_exactly():
     _run("sigma_limit", inner, counter)
 
 
-def test_single_requirement_allocations_are_verified_optima():
+@SIZES
+def test_single_requirement_allocations_are_verified_optima(size):
     """One requirement, any model, 2-40 contributors (mostly the exact dual)."""
     counter = Counter()
 
-    @_settings("single")
+    @_settings("single", size)
     @_seeded
     @given(invented_cases(max_requirements=1))
     def inner(invented):
@@ -644,16 +374,17 @@ def test_single_requirement_allocations_are_verified_optima():
         if not is_honest_failure(invented, result, counter):
             check_optimal(invented, result)
 
-    _run("single", inner, counter)
+    _run("single", inner, counter, size)
     check_failures_are_rare(counter)
 
 
-def test_several_requirements_allocations_are_verified_optima():
+@SIZES
+def test_several_requirements_allocations_are_verified_optima(size):
     """2-5 requirements sharing contributors (the conic solver, with cutting planes for
     mean shift); small cases so that many examples run quickly."""
     counter = Counter()
 
-    @_settings("several")
+    @_settings("several", size)
     @_seeded
     @given(invented_cases(max_contributors=10, min_requirements=2, max_requirements=5))
     def inner(invented):
@@ -664,16 +395,17 @@ def test_several_requirements_allocations_are_verified_optima():
         if not is_honest_failure(invented, result, counter):
             check_optimal(invented, result)
 
-    _run("several", inner, counter)
+    _run("several", inner, counter, size)
     check_failures_are_rare(counter)
 
 
-def test_allocations_are_no_dearer_than_slsqp():
+@SIZES
+def test_allocations_are_no_dearer_than_slsqp(size):
     """The expensive property: an independent SLSQP solve never finds a cheaper
     feasible point (scipy.optimize.minimize, method SLSQP, three starts)."""
     counter = Counter()
 
-    @_settings("slsqp")
+    @_settings("slsqp", size)
     @_seeded
     @given(invented_cases(max_contributors=16, max_requirements=5))
     def inner(invented):
@@ -693,7 +425,7 @@ def test_allocations_are_no_dearer_than_slsqp():
             f"SLSQP found {reference!r} < {result.total_cost!r} ({result.solver})"
         )
 
-    _run("slsqp", inner, counter)
+    _run("slsqp", inner, counter, size)
     check_failures_are_rare(counter)
     compared = counter.events.get("compared with slsqp", 0)
     assert compared >= 0.5 * counter.runs, f"SLSQP converged in only {compared} of {counter.runs} examples"
@@ -719,58 +451,6 @@ def test_infeasible_cases_name_the_requirement():
 
 
 # --------------------------------------------------------------------------- through case text
-
-
-def _toml_value(x) -> str:
-    if isinstance(x, bool):
-        return "true" if x else "false"
-    if isinstance(x, (int,)):
-        return str(x)
-    if isinstance(x, float):
-        return repr(x)
-    if isinstance(x, str):
-        return '"' + x + '"'
-    if isinstance(x, (list, tuple)):
-        return "[" + ", ".join(_toml_value(v) for v in x) + "]"
-    raise TypeError(type(x))
-
-
-def case_text(case: Case) -> str:
-    """The case as case-file text (the format in docs/case-file.md)."""
-    lines = [f'title = "{case.title}"', ""]
-    for c in case.contributors:
-        lines += ["[[contributor]]", f'name = "{c.name}"', f"nominal = {c.nominal!r}",
-                  f"tolerance = {c.tolerance!r}", f'distribution = "{c.distribution}"',
-                  f"count = {c.count}", f"fixed = {_toml_value(c.fixed)}",
-                  f"mean_shift = {c.mean_shift!r}"]
-        if c.distribution == "normal":
-            lines.append(f"cp = {c.cp!r}")
-        if c.cost is not None and c.cost.curve != "table":
-            lines.append(f"limits = {_toml_value(c.limits)}")
-        if c.cost is not None:
-            cur = c.cost
-            if cur.curve == "table":
-                parts = ["curve = \"table\"", f"tolerance = {_toml_value(cur.points_tolerance)}",
-                         f"cost = {_toml_value(cur.points_cost)}"]
-            else:
-                parts = [f'curve = "{cur.curve}"', f"a = {cur.a!r}", f"b = {cur.b!r}"]
-                if cur.curve == "exponential":
-                    parts.append(f"c = {cur.c!r}")
-                if cur.curve == "reciprocal-power":
-                    parts.append(f"k = {cur.k!r}")
-            lines.append("cost = { " + ", ".join(parts) + " }")
-        lines.append("")
-    for r in case.requirements:
-        chain = ", ".join(f"{k} = {v!r}" for k, v in r.chain.items())
-        lines += ["[[requirement]]", f'name = "{r.name}"', "chain = { " + chain + " }"]
-        if r.lower is not None:
-            lines.append(f"lower = {r.lower!r}")
-        if r.upper is not None:
-            lines.append(f"upper = {r.upper!r}")
-        lines += [f"fallout_ppm = {r.fallout_ppm!r}", ""]
-    lines += ["[allocation]", f"models = {_toml_value(list(case.allocation.models))}", ""]
-    return "\n".join(lines)
-
 
 def test_cases_written_as_text_load_and_allocate_the_same():
     """A few invented cases go through loads_case: the loaded case allocates to the same

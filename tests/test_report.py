@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import html as html_module
 import re
+import shlex
 from dataclasses import replace
 from datetime import datetime, timezone
 from html.parser import HTMLParser
@@ -21,6 +22,7 @@ from click.testing import CliRunner
 from allocator.analysis import analyze
 from allocator.case import load_case, loads_case
 from allocator.cli.main import cli
+from allocator.ppm import format_ppm
 from allocator.report import CAUTIONS, SECTIONS, build_report, fmt_input, fmt_number, fmt_tolerance
 from allocator.simulate import verify
 from allocator.solve import allocate
@@ -99,11 +101,10 @@ def _heavy(case) -> bool:
     return case.allocation.rounding == "iso286" or any(len(c.processes) > 1 for c in case.contributors)
 
 
-@pytest.fixture(scope="module")
-def reports():
-    """One small report per demo case (built once for the module)."""
-    out = {}
-    for name in DEMOS:
+class _Reports(dict):
+    """Demo name -> (case, report, html), each built when first asked for."""
+
+    def __missing__(self, name):
         case = load_case(CASES / f"{name}.toml")
         heavy = _heavy(case)
         models = [m for m in case.allocation.models if m != "mean-shift"] or None if heavy else None
@@ -111,11 +112,22 @@ def reports():
             case, models, samples=SAMPLES, seed=SEED, frontier_points=POINTS, created=STAMP,
             include_frontier=not heavy,
         )
-        out[name] = (case, report, report.to_html())
-    return out
+        self[name] = (case, report, report.to_html())
+        return self[name]
 
 
-@pytest.mark.parametrize("name", DEMOS)
+@pytest.fixture(scope="module")
+def reports():
+    """One small report per demo case (built once for the module, when a test first needs it)."""
+    return _Reports()
+
+
+# a heavy demo's report takes seconds (mixed-integer solves): those run in CI, not the fast loop
+DEMO_PARAMS = [pytest.param(name, marks=pytest.mark.slow) if _heavy(load_case(CASES / f"{name}.toml")) else name
+               for name in DEMOS]
+
+
+@pytest.mark.parametrize("name", DEMO_PARAMS)
 def test_every_section_heading_and_plot(reports, name):
     case, report, text = reports[name]
     doc = outline(text)
@@ -133,7 +145,7 @@ def test_every_section_heading_and_plot(reports, name):
         assert "left out of this report on request" in section_html(text, "frontier")
 
 
-@pytest.mark.parametrize("name", DEMOS)
+@pytest.mark.parametrize("name", DEMO_PARAMS)
 def test_self_contained(reports, name):
     _, _, text = reports[name]
     doc = outline(text)
@@ -175,6 +187,11 @@ def test_case_text_is_escaped():
     assert "<script>alert(1)</script>" in "".join(doc.text)  # shown as text, as written
 
 
+def _ppm_cell(value) -> str:
+    """A fallout as a [ppm] column shows it: the one ppm format of tables and report."""
+    return f">{html_module.escape(format_ppm(value, unit=False))}<"
+
+
 def test_numbers_equal_the_library(reports):
     case, report, text = reports["gearbox_end_play"]
     alloc_html = section_html(text, "allocation")
@@ -192,7 +209,7 @@ def test_numbers_equal_the_library(reports):
             assert fmt_tolerance(t) in supplier_html, (model, name)
         for rr in result.requirements:
             assert fmt_number(rr.sigma) in alloc_html
-            assert fmt_number(rr.fallout_ppm) in alloc_html
+            assert _ppm_cell(rr.fallout_ppm) in alloc_html
         # a rounded allocation has no shadow prices; the report shows the unrounded optimum's
         priced = result
         if all(rr.shadow_upper is None and rr.shadow_lower is None for rr in result.requirements):
@@ -213,8 +230,10 @@ def test_numbers_equal_the_library(reports):
     current = analyze(case)
     analysis_html = section_html(text, "analysis")
     for r in current.requirements:
-        for value in (r.sigma, r.fallout_ppm, r.mean_shift_ppm, r.mean_shift):
+        for value in (r.sigma, r.mean_shift):
             assert fmt_number(value) in analysis_html
+        for value in (r.fallout_ppm, r.mean_shift_ppm):
+            assert _ppm_cell(value) in analysis_html
         assert fmt_number(r.cpk, 3) in analysis_html
         assert fmt_number(r.worst_case_min, 6, strip=True) in analysis_html
         assert fmt_number(r.worst_case_max, 6, strip=True) in analysis_html
@@ -225,9 +244,10 @@ def test_numbers_equal_the_library(reports):
     verification_html = section_html(text, "verification")
     assert f"{SAMPLES:,}" in verification_html and f"seed {SEED}" in verification_html
     for c in checked.requirements:
-        assert fmt_number(c.fallout_ppm) in verification_html
-        assert f"{fmt_number(c.ci_low_ppm)} to {fmt_number(c.ci_high_ppm)}" in verification_html
-        assert fmt_number(c.predicted_ppm) in verification_html
+        assert _ppm_cell(c.fallout_ppm) in verification_html
+        interval = f"{format_ppm(c.ci_low_ppm, unit=False)} to {format_ppm(c.ci_high_ppm, unit=False)}"
+        assert f">{html_module.escape(interval)}<" in verification_html
+        assert _ppm_cell(c.predicted_ppm) in verification_html
 
     # the sweep and the supplier sheet are the slow parts: their numbers are read from the
     # results the report holds, after checking that it asked the library the right question
@@ -245,7 +265,7 @@ def test_numbers_equal_the_library(reports):
     assert sheet.model == report.recommended and sheet.base is report.allocations[report.recommended]
     assert [r.contributor for r in sheet.rows] == list(case.names)
     for row in sheet.rows:
-        if row.status == "solved":
+        if row.status == "optimal":
             assert fmt_number(row.total_cost_change, signed=True) in supplier_html
             assert fmt_number(row.own_change, signed=True) in supplier_html
             assert fmt_number(row.elsewhere_change, signed=True) in supplier_html
@@ -294,6 +314,27 @@ def test_print_and_greyscale_rules_are_in_the_stylesheet(reports):
     # numbers are right-aligned: every numeric header has the class that aligns them
     assert ".num { text-align: right" in css
     assert '<th scope="col" class=num>' in text
+
+
+def test_the_stylesheet_ships_with_the_package(reports):
+    # a wheel (a non-editable install) carries only the .py files and the data files that
+    # pyproject's package-data lists: the stylesheet is read from the installed package
+    import fnmatch
+    import tomllib
+    from importlib import resources
+
+    patterns = tomllib.loads((ROOT / "pyproject.toml").read_text(encoding="utf-8"))["tool"]["setuptools"][
+        "package-data"]["allocator"]
+    package = ROOT / "allocator"
+    data = [path.relative_to(package).as_posix() for path in package.rglob("*")
+            if path.is_file() and path.suffix not in (".py", ".pyc")]
+    assert "report/style.css" in data
+    unlisted = [name for name in data if not any(fnmatch.fnmatch(name, p) for p in patterns)]
+    assert not unlisted, f"add to [tool.setuptools.package-data] in pyproject.toml: {unlisted}"
+    # and the page carries that file, unchanged, as its stylesheet
+    css = resources.files("allocator.report").joinpath("style.css").read_text(encoding="utf-8")
+    _, _, text = reports["gearbox_end_play"]
+    assert f"<style>\n{css}</style>" in text
 
 
 def test_infeasible_model_is_shown_and_exit_code_is_one(tmp_path):
@@ -381,3 +422,232 @@ def test_same_seed_same_report():
     first = build_report(case, ["rss"], **options).to_html()
     second = build_report(case, ["rss"], **options).to_html()
     assert first == second
+
+
+# --------------------------------------------------------------------------- failures
+
+
+def _spoil_the_held_resolve(monkeypatch):
+    """Make every allocation with a held tolerance (the supplier sheet's re-solve) raise."""
+    import allocator.solve
+
+    original = allocator.solve.allocate
+
+    def spoiled(case, model=None, *, fix=None, **kwargs):
+        if fix:
+            raise ValueError("zero-size array to reduction operation\nmaximum which has no identity")
+        return original(case, model, fix=fix, **kwargs)
+
+    monkeypatch.setattr(allocator.solve, "allocate", spoiled)
+
+
+def _assert_one_line_failure(result, out, exit_code, *words):
+    assert result.exit_code == exit_code, result.output
+    assert isinstance(result.exception, SystemExit)  # handled, not a crash of the command
+    assert "Traceback" not in result.output
+    assert result.stdout == ""  # no "wrote ...: ok"
+    lines = result.stderr.splitlines()
+    assert len(lines) == 1 and lines[0].startswith("error: "), result.stderr
+    for word in words:
+        assert word in lines[0]
+    assert not out.exists()
+    assert list(out.parent.iterdir()) == []
+
+
+def test_cli_an_error_inside_a_section_fails_the_run_and_writes_nothing(tmp_path, monkeypatch):
+    # the supplier sheet once printed an exception's text in a cell while the command said "ok"
+    _spoil_the_held_resolve(monkeypatch)
+    out = tmp_path / "review.html"
+    result = _invoke(CASES / "gearbox_end_play.toml", "-o", out, "--model", "rss", "--samples", 1000,
+                     "--no-frontier")
+    _assert_one_line_failure(result, out, 3, "internal error", "8 Supplier sheet", "ValueError",
+                             "zero-size array to reduction operation maximum")
+
+
+def test_cli_an_error_while_formatting_a_section_fails_the_run(tmp_path, monkeypatch):
+    import allocator.report.sections
+
+    def broken(report):
+        raise KeyError("missing")
+
+    monkeypatch.setattr(allocator.report.sections, "shadow_prices", broken)
+    out = tmp_path / "review.html"
+    result = _invoke(CASES / "gearbox_end_play.toml", "-o", out, "--model", "rss", "--samples", 1000,
+                     "--no-frontier")
+    _assert_one_line_failure(result, out, 3, "internal error", "7 Shadow prices", "KeyError")
+
+
+def test_cli_a_frontier_range_the_requirement_cannot_take_is_bad_input(tmp_path):
+    # [frontier] sweeps the upper limit from 0.01, below the lower limit 0.05: the case is
+    # read without complaint, the sweep refuses it; once a note in section 4 of an "ok" report
+    text = (CASES / "gearbox_end_play.toml").read_text(encoding="utf-8").replace(
+        "range = [0.25, 0.60]", "range = [0.01, 0.60]")
+    case_dir = tmp_path / "case"
+    case_dir.mkdir()
+    path = case_dir / "sweep.toml"
+    path.write_text(text, encoding="utf-8")
+    out_dir = tmp_path / "out"
+    out_dir.mkdir()
+    out = out_dir / "review.html"
+    result = _invoke(path, "-o", out, "--model", "rss", "--samples", 1000, "--frontier-points", POINTS)
+    _assert_one_line_failure(result, out, 2, "4 Cost frontier", "upper values must stay above the lower limit")
+
+
+# --------------------------------------------------------------------------- wording
+
+
+def _visible_text(text: str) -> str:
+    """The report's words as a reader sees them (no stylesheet, no drawn plots)."""
+    text = re.sub(r"<style>.*?</style>|<svg.*?</svg>", " ", text, flags=re.S)
+    return html_module.unescape(re.sub(r"<[^>]+>", " ", text))
+
+
+@pytest.mark.parametrize("name", DEMOS)
+def test_no_internal_names_in_the_report(reports, name):
+    words = _visible_text(reports[name][2])
+    camel = set(re.findall(r"\b[A-Z][a-z0-9]+[A-Z]\w*", words)) - {"HiGHS"}  # the MILP solver's own name
+    assert not camel  # a class name of ours
+    assert "Result." not in words and "per point" not in words and "shadow_" not in words
+
+
+@pytest.mark.parametrize("name", DEMOS)
+def test_top_caution_matches_the_case_mean_shifts(reports, name):
+    case, _, text = reports[name]
+    brief = text[text.find('class="caution-brief"'):]
+    brief = brief[: brief.find("</aside>")]
+    if any(c.mean_shift > 0 for c in case.contributors):
+        assert "centred" not in brief and "within the mean shifts the case states" in brief
+    else:
+        assert "centred on their nominals" in brief
+
+
+def test_tiny_fallout_is_printed_in_ppb_not_as_an_exponent(reports):
+    case, _, text = reports["gear_hub_end_play"]
+    analysis_html = section_html(text, "analysis")
+    above = analyze(case).requirements[0].fallout_above_ppm
+    assert above < 0.01  # the demo's upper tail: far below 0.01 ppm
+    cell = format_ppm(above, unit=False)
+    assert cell.endswith(" ppb") and html_module.escape(cell) in analysis_html
+    for row in re.findall(r"<tr>.*?</tr>", analysis_html, flags=re.S):
+        if "[ppm]" in row:
+            assert not re.search(r"\d[eE][-+]\d", row), row
+
+
+def test_same_report_command_keeps_the_path_as_given(tmp_path, monkeypatch):
+    folder = tmp_path / "my cases"
+    folder.mkdir()
+    (folder / "gear box.toml").write_bytes((CASES / "gearbox_end_play.toml").read_bytes())
+    monkeypatch.chdir(tmp_path)
+    given = "my cases/gear box.toml"  # relative, with a folder and a space
+    report = build_report(load_case(given), ["rss"], samples=2000, seed=1, include_frontier=False, created=STAMP)
+    footer = section_html(report.to_html(), "reproducibility")
+    command = html_module.unescape(re.search(r"Same report again</dt><dd><code>(.*?)</code>", footer).group(1))
+    words = shlex.split(command)
+    assert words[:3] == ["allocator", "report", given]
+    assert words[words.index("--samples") + 1] == "2000"
+
+
+# Invented for this test: the current design misses its worst case (0.2 ± 0.13 against a
+# lower limit of 0.1), so the worst-case allocation must tighten and costs more than today.
+DEARER = """\
+# Invented test case, not real product data.
+title = "Invented bracket stack"
+units = "mm"
+currency = "EUR"
+
+[[contributor]]
+name = "plate"
+nominal = 12.0
+tolerance = 0.05
+limits = [0.01, 0.2]
+cost = { curve = "reciprocal", a = 0.5, b = 0.01 }
+
+[[contributor]]
+name = "washer"
+nominal = 1.5
+tolerance = 0.02
+limits = [0.005, 0.1]
+count = 2
+cost = { curve = "exponential", a = 0.05, b = 0.4, c = 30.0 }
+
+[[contributor]]
+name = "boss"
+nominal = 8.8
+tolerance = 0.04
+limits = [0.01, 0.15]
+cost = { curve = "reciprocal-power", a = 1.0, b = 0.0002, k = 2.0 }
+
+[[requirement]]
+name = "clearance"
+chain = { plate = 1, washer = -1, boss = -1 }
+lower = 0.1
+upper = 0.35
+fallout_ppm = 100
+"""
+
+
+def test_a_dearer_allocation_reads_costs_more():
+    case = loads_case(DEARER)
+    result = allocate(case, "worst-case")
+    assert result.success and result.total_cost > result.current_cost
+    text = build_report(case, ["worst-case"], samples=2000, seed=1, include_frontier=False,
+                        created=STAMP).to_html()
+    more, share = -result.savings, -result.savings_percent
+    header = text.split("<main>", 1)[0]
+    assert f"it costs <strong>{fmt_number(more)}</strong> more ({fmt_number(share, 3)} %)" in header
+    alloc_html = section_html(text, "allocation")
+    assert f"costs {fmt_number(more)} more" in alloc_html
+    assert f"costs {fmt_number(share, 3)} % more" in alloc_html
+    for html_text in (header, alloc_html):
+        assert "saving <strong>-" not in html_text and ">-" + fmt_number(more) not in html_text
+
+
+def test_cli_samples_accepts_2e5_and_refuses_fractions_and_negatives(tmp_path):
+    out = tmp_path / "r.html"
+    for bad in ("2.5", "-1"):
+        result = _invoke(CASES / "gearbox_end_play.toml", "-o", out, "--samples", bad)
+        assert result.exit_code == 2 and result.stderr.startswith("error: --samples:"), result.output
+        assert result.stderr.count("\n") == 1 and not out.exists()
+    result = _invoke(CASES / "gearbox_end_play.toml", "-o", out, "--model", "rss", "--no-frontier",
+                     "--samples", "2e5", "--seed", "1")
+    assert result.exit_code in (0, 1), result.output  # written (1: a verification verdict)
+    assert "200,000 assemblies" in out.read_text(encoding="utf-8")
+
+
+def test_verification_and_analysis_of_the_recommendation_use_the_processes_it_chose():
+    # invented bore (turning, or grinding with cp 1.67) and pin (tests/helpers.py); the exact
+    # fallout from scipy.stats.norm with σ_i = t_i/(3·cp_i) of the chosen process
+    from helpers import PROCESS_TOML, gap_fallout_ppm
+
+    case = loads_case(PROCESS_TOML)
+    report = build_report(case, ["rss"], samples=SAMPLES, seed=SEED, include_frontier=False, created=STAMP)
+    chosen = report.allocations["rss"]
+    assert chosen.processes["bore"] == "grinding"
+    t = dict(chosen.tolerances)
+
+    ground, default = gap_fallout_ppm(t["bore"], 1.67, t["pin"]), gap_fallout_ppm(t["bore"], 1.0, t["pin"])
+    assert default > 4 * ground
+    assert report.verification["gap"].convolution_ppm == pytest.approx(ground, rel=1e-9)
+    assert report.verification["gap"].predicted_ppm == pytest.approx(ground, rel=1e-9)
+    assert report.recommended_analysis.requirements[0].fallout_ppm == pytest.approx(ground, rel=1e-9)
+    assert _ppm_cell(report.verification["gap"].convolution_ppm) in section_html(report.to_html(), "verification")
+
+
+def test_the_contributions_figure_is_drawn_by_the_plotting_module():
+    # one module draws every figure (allocator.plots); the report only renders it as SVG.
+    # Each bar is a contributor's share of σ²: the shares of one requirement add up to 100 %.
+    from allocator.plots import contributions_figure
+
+    case = load_case(CASES / "gearbox_end_play.toml")
+    current = analyze(case)
+    allocated = analyze(case, dict(allocate(case, model="rss").tolerances))
+    figure = contributions_figure(current, allocated, allocation_label="rss allocation")
+    assert len(figure.axes) == len(current.requirements)
+    for ax, now, then in zip(figure.axes, current.requirements, allocated.requirements):
+        solid = [p.get_width() for p in ax.patches[: len(now.contributions)]]
+        hatched = [p.get_width() for p in ax.patches[len(now.contributions):]]
+        assert solid == pytest.approx([100.0 * c.variance_share for c in now.contributions], rel=1e-12)
+        assert hatched == pytest.approx([100.0 * c.variance_share for c in then.contributions], rel=1e-12)
+        if now.sigma > 0:
+            assert sum(solid) == pytest.approx(100.0, rel=1e-9) and sum(hatched) == pytest.approx(100.0, rel=1e-9)
+        assert [t.get_text() for t in ax.get_legend().get_texts()] == ["current design", "rss allocation"]

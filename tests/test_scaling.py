@@ -3,8 +3,13 @@
 - Lengths: the same invented case written in mm, in m (×1e-3) and in μm (×1e3) -- and,
   to show that this is the solvers' internal scaling and not luck, in km (×1e-6) and nm
   (×1e6) -- gives the same allocation, scaled (1e-6 relative), the same total cost
-  (1e-9 relative) and the same status, for all three models, on the exact single-
-  requirement paths and on the conic multi-requirement path.
+  (1e-9 relative), the same status and a certified gap within the one 'optimal'
+  requires, for all three models, on the exact single-requirement paths and on the
+  conic multi-requirement path. Which solver attempt answered is not compared: it can
+  change with the last bit of the data (docs/allocation.md).
+- The formulation itself: the arrays handed to Clarabel for the conic cases are the same
+  in every unit and currency to 1e-12 relative, also for a requirement whose limits are
+  removed (checked without solving).
 - Money: parts whose costs range from 1e-3 to 1e4 per part, all multiplied by one
   constant, give the same tolerances (the argmin of Σ n·C_i(t_i) is invariant under
   C → k·C for k > 0) and a total cost multiplied by that constant.
@@ -15,7 +20,7 @@ each part is unchanged: reciprocal ``b → s·b``; reciprocal-power ``b → s^k�
 exponential ``c → c/s``; table tolerances ``→ s·t``. Cost tables are replaced by
 reciprocal curves where tolerances are compared, since a piecewise-linear cost can have
 many optima. Every answer is also re-checked with the independent code of
-tests/test_properties.py.
+tests/helpers.py.
 """
 
 from __future__ import annotations
@@ -28,8 +33,9 @@ import pytest
 
 from allocator.model import Case, Contributor, CostCurve, Requirement
 from allocator.solve import allocate
+from allocator.solve.continuous import GAP_RTOL, CompiledAllocation
 
-from test_properties import Reference, build_case, rtol_for
+from helpers import Reference, build_case, rtol_for
 
 MODELS = ("worst-case", "rss", "mean-shift")
 LENGTH_SCALES = {"m": 1e-3, "um": 1e3, "km": 1e-6, "nm": 1e6}
@@ -144,9 +150,14 @@ UNITS_XFAIL: dict[str, str] = {}
 COSTS_XFAIL: dict[str, str] = {}
 
 
+# the five-requirement shape runs in CI only; 4x2 and 8x3 keep the conic path in the fast loop
+SLOW_SHAPES = ("-12x5",)
+
+
 def params(known: dict):
     return [
-        pytest.param(*c, id=c[0], marks=[pytest.mark.xfail(strict=True, reason=known[c[0]])] if c[0] in known else [])
+        pytest.param(*c, id=c[0], marks=([pytest.mark.xfail(strict=True, reason=known[c[0]])] if c[0] in known else [])
+                     + ([pytest.mark.slow] if c[0].endswith(SLOW_SHAPES) else []))
         for c in CASES
     ]
 
@@ -177,11 +188,16 @@ def solve_in_units(case: Case, model: str):
 
 
 @pytest.mark.parametrize("label, case, model", params({}))
-def test_units_do_not_change_the_cost_or_the_path(label, case, model):
+def test_units_do_not_change_the_status_the_cost_or_the_certificate(label, case, model):
+    """Same status and total cost in every unit, each answer re-checked independently
+    (:func:`solve_in_units`) and certified within the gap 'optimal' requires
+    (docs/allocation.md). Which solver attempt answered is not part of the contract."""
     base, scaled = solve_in_units(case, model)
+    for result in [base] + [r for _, r in scaled.values()]:
+        assert result.gap is not None and 0.0 <= result.gap <= GAP_RTOL, (result.units, result.gap)
     for units, (s, result) in scaled.items():
+        assert result.status == base.status, units
         assert result.total_cost == pytest.approx(base.total_cost, rel=1e-8), units
-        assert result.solver == base.solver, units
 
 
 @pytest.mark.parametrize("label, case, model", params(UNITS_XFAIL))
@@ -236,3 +252,50 @@ def test_the_scaled_cases_really_are_the_same_case():
                 np.testing.assert_allclose(d.cost.value(t * s), c.cost.value(t), rtol=1e-12)
             for r, q in zip(case.requirements, scaled.requirements):
                 assert linearise(scaled, q).nominal == pytest.approx(s * linearise(case, r).nominal, rel=1e-12)
+
+
+# --------------------------------------------------------------------------- what the solver sees
+
+# the cases that go through the conic solver (several requirements, or an expression)
+CONIC = [c for c in CASES if not c[0].endswith("x1")]
+
+
+def solver_arrays(case: Case, model: str, overrides=None) -> dict[str, np.ndarray]:
+    """``A``, ``b``, ``c`` handed to Clarabel in the first solve (dense)."""
+    data = CompiledAllocation(case, model).solver_data(overrides)
+    return {key: np.asarray(data[key].todense() if hasattr(data[key], "todense") else data[key], dtype=float)
+            for key in ("A", "b", "c")}
+
+
+def limits_removed(case: Case) -> dict:
+    """Overrides that take both limits off the first requirement (an API-only case)."""
+    return {case.requirements[0].name: {"lower": None, "upper": None}}
+
+
+def assert_same_arrays(base: dict, other: dict, rtol: float, what: str) -> None:
+    for key in base:
+        assert other[key].shape == base[key].shape, (what, key)
+        size = max(float(np.max(np.abs(base[key]), initial=0.0)), 1e-300)
+        error = float(np.max(np.abs(other[key] - base[key]), initial=0.0)) / size
+        assert error <= rtol, f"{what}: {key} differs by {error:.1e} (relative to its largest entry)"
+
+
+@pytest.mark.parametrize("label, case, model", [pytest.param(*c, id=c[0]) for c in CONIC])
+@pytest.mark.parametrize("overrides", [False, True], ids=["case-limits", "first-unlimited"])
+def test_the_solver_is_handed_the_same_numbers_in_every_unit(label, case, model, overrides):
+    """The scaled formulation does not depend on the length unit or the currency: the
+    arrays Clarabel gets for the case in m, um, km and nm (or with every cost × 1e±4)
+    equal those in mm to 1e-12 relative. The rescaled case carries its own round-off
+    (limits and nominals are rounded separately, and the room ``U - y`` amplifies that
+    by ``|y|/room``): measured up to 1.5e-13 here. Checked without solving, so it holds
+    whichever solver attempt would succeed. With both limits of a requirement removed
+    (overrides, API only) the never-binding right-hand side once carried an absolute
+    ``+1`` (500 times the largest entry of b in m, 1e6 times too large in km)."""
+    change = limits_removed(case) if overrides else None
+    base = solver_arrays(case, model, change)
+    for units, s in LENGTH_SCALES.items():
+        other = solver_arrays(scale_lengths(case, s, units), model, change)
+        assert_same_arrays(base, other, 1e-12, f"{label} in {units}")
+    for k in (1e-4, 1e4):  # and the currency: costs are divided by a cost scale
+        other = solver_arrays(scale_costs(case, k), model, change)
+        assert_same_arrays(base, other, 1e-12, f"{label}, costs x {k:g}")

@@ -27,7 +27,7 @@ from allocator.simulate import (
     sample_responses,
     verify,
 )
-from helpers import chain_requirement, contributor, make_case
+from helpers import GAP_HALF, PROCESS_TOML, chain_requirement, contributor, gap_fallout_ppm, make_case
 
 PNG_MAGIC = b"\x89PNG\r\n\x1a\n"
 
@@ -228,6 +228,44 @@ def test_mean_shift_side_follows_the_nearer_limit_and_can_be_turned_off():
     assert centred.shifted_mean == pytest.approx(mean)
 
 
+def test_rss_allocation_verified_with_mean_shifts_says_why_and_what_to_run():
+    from allocator.solve import allocate
+
+    mean, sigma = normal_chain_reference()
+    case = normal_chain_case(mean - 0.2, mean + 0.2, mean_shift=0.5, fallout_ppm=100.0)
+    alloc = allocate(case, "rss")
+    assert alloc.success
+    t = dict(alloc.tolerances)
+    shifted = verify(case, t, samples=20_000, seed=5, allocated_with="rss")
+    check = shifted["gap"]
+    # why it can fail: the rss allocation meets 100 ppm with centred means (scipy.stats.norm at
+    # ȳ), but the simulated means sit δ = Σ n|a| m t off, where the fallout is far larger
+    a, n = np.array([1.0, -1.0, -1.0, 0.5]), np.array([1, 2, 1, 1])
+    tv = np.array([t[k] for k in "abcd"])
+    cp = np.array([1.0, 1.33, 1.0, 0.8])
+    sigma_y = math.sqrt(np.sum(n * (a * tv / (3 * cp)) ** 2))
+    delta = float(np.sum(n * np.abs(a) * 0.5 * tv))
+    centred_ppm = (stats.norm.cdf(mean - 0.2, mean, sigma_y) + stats.norm.sf(mean + 0.2, mean, sigma_y)) * 1e6
+    shifted_ppm = (stats.norm.cdf(mean - 0.2, mean + check.shift_side * delta, sigma_y)
+                   + stats.norm.sf(mean + 0.2, mean + check.shift_side * delta, sigma_y)) * 1e6
+    assert centred_ppm == pytest.approx(100.0, rel=1e-4)
+    assert check.rss_ppm == pytest.approx(centred_ppm, rel=1e-6)
+    assert check.mean_shift_ppm == pytest.approx(shifted_ppm, rel=1e-6) and shifted_ppm > 10 * 100.0
+    # ... and the result says so, in a field every output can show
+    note = shifted.assumption_note
+    assert "places the case's mean shifts (a, b, c, d)" in note and "gap" in note
+    assert "rss allocation did not assume" in note
+    assert "--centred" in note and "--model mean-shift" in note
+    assert shifted.to_dict()["assumption_note"] == note and "\n" not in note
+    assert "note:" in repr(shifted)
+    # nothing to say when the simulation matches the model's assumptions
+    assert verify(case, t, samples=2_000, seed=5, allocated_with="rss", shift_means=False).assumption_note == ""
+    assert verify(case, t, samples=2_000, seed=5, allocated_with="mean-shift").assumption_note == ""
+    assert verify(case, t, samples=2_000, seed=5).assumption_note == ""
+    no_shift = normal_chain_case(mean - 0.2, mean + 0.2, fallout_ppm=100.0)
+    assert verify(no_shift, t, samples=2_000, seed=5, allocated_with="rss").assumption_note == ""
+
+
 # ----------------------------------------------------------------- reproducibility, memory
 
 
@@ -252,6 +290,18 @@ def test_same_seed_same_numbers_and_chunk_size_does_not_matter():
         assert other == base
     different = verify(case, samples=samples, seed=43).to_dict()
     assert different["requirements"][0]["mean"] != base["requirements"][0]["mean"]
+
+
+def test_verification_results_are_frozen():
+    import dataclasses
+
+    cs = [contributor("a", nominal=10.0, tolerance=0.03), contributor("b", nominal=5.0, tolerance=0.03)]
+    case = make_case(cs, [chain_requirement("gap", {"a": 1, "b": -1}, lower=4.9, upper=5.1)])
+    result = verify(case, samples=2000, seed=3)
+    for obj, name in ((result, "status"), (result, "requirements"), (result["gap"], "status"),
+                      (result["gap"], "fallout_ppm")):
+        with pytest.raises(dataclasses.FrozenInstanceError):
+            setattr(obj, name, None)
 
 
 def test_seed_is_generated_and_reported_when_not_given():
@@ -297,13 +347,33 @@ def test_histogram_and_plot(tmp_path):
     assert check.histogram_counts.sum() + check.underflow + check.overflow == 20_000
     assert len(check.histogram_edges) == len(check.histogram_counts) + 1
     frame = result.to_frame()
-    assert list(frame.index) == ["gap"]
+    assert list(frame.index) == ["gap"] and frame.index.name == "requirement"
+    assert "<table" in result._repr_html_()
     png = plot_verification(result, tmp_path / "h.png")
     assert png.read_bytes().startswith(PNG_MAGIC)
     svg = render_verification_plot(result, "svg")
     assert b"<svg" in svg[:500]
     with pytest.raises(ValueError):
         render_verification_plot(result, "jpg")
+
+
+
+def test_the_histogram_is_drawn_by_the_plotting_module():
+    # one module draws every figure: allocator.plots; the density bars integrate to the
+    # share of samples inside the histogram range (definition of a density)
+    from allocator.plots import verification_figure
+
+    mean, sigma = normal_chain_reference()
+    result = verify(normal_chain_case(mean - 3 * sigma, mean + 3 * sigma), samples=20_000, seed=4)
+    figure = verification_figure(result)
+    (ax,) = figure.axes
+    assert ax.get_title().startswith("gap: ")
+    check = result["gap"]
+    widths = np.diff(check.histogram_edges)
+    area = float(np.sum(check.histogram_counts / (check.samples * widths) * widths))
+    assert area == pytest.approx(1 - (check.underflow + check.overflow) / check.samples, rel=1e-12)
+    bars = ax.patches[0].get_path().vertices  # the stairs: its top edge is the density
+    assert bars[:, 1].max() == pytest.approx(float(np.max(check.histogram_counts / (check.samples * widths))))
 
 
 # ----------------------------------------------------------------- command line
@@ -412,6 +482,28 @@ def test_cli_exit_1_when_target_exceeded(tmp_path):
     out = run(path, "--samples", "2e4", "--seed", "1")
     assert out.exit_code == 1
     assert "fail" in out.output
+    # the verdict and its reason once, in the output; stderr one short line
+    assert "result: fail - fallout above target" in out.stdout
+    assert out.stderr == "error: verification: fallout above target for clearance\n"
+
+
+def test_cli_rss_allocation_with_mean_shifts_explains_itself(tmp_path):
+    path = tmp_path / "shifted.toml"
+    text = CASE_TOML.format(lower=0.05).replace(
+        'name = "rail"\nnominal = 40.0\n', 'name = "rail"\nnominal = 40.0\nmean_shift = 0.8\n'
+    )
+    assert "mean_shift = 0.8" in text
+    path.write_text(text)
+    out = run(path, "--model", "rss", "--samples", "2e4", "--seed", "4")
+    assert out.exit_code in (0, 1), out.output
+    assert "note: the simulation places the case's mean shifts (rail)" in out.output
+    assert "rss allocation did not assume" in out.output and "--centred" in out.output
+    doc = json.loads(run(path, "--model", "rss", "--samples", "2e4", "--seed", "4", "--json").stdout)
+    assert "--centred" in doc["assumption_note"] and doc["allocated_with"] == "rss"
+    centred = run(path, "--model", "rss", "--samples", "2e4", "--seed", "4", "--centred")
+    assert "note:" not in centred.output
+    own = run(path, "--model", "mean-shift", "--samples", "2e4", "--seed", "4")
+    assert "note:" not in own.output and "mean shifts placed on the worse side" in own.output
 
 
 def test_cli_sample_bounds(case_file):
@@ -419,8 +511,142 @@ def test_cli_sample_bounds(case_file):
     assert run(case_file, "--samples", "2e9").exit_code == 2
     assert run(case_file, "--samples", "abc").exit_code == 2
     assert run(case_file, "--seed", "-4", "--samples", "1e3").exit_code == 2
+    for bad in ("2.5", "-1"):
+        out = run(case_file, "--samples", bad)
+        assert out.exit_code == 2 and out.stderr.startswith("error: --samples: ") and out.stderr.count("\n") == 1
+
+
+def test_report_and_verify_share_one_samples_type():
+    from allocator.cli.common import SampleCount
+    from allocator.cli.report import report
+    from allocator.cli.verify import verify as verify_command
+
+    for command in (report, verify_command):
+        option = next(p for p in command.params if p.name == "samples")
+        assert isinstance(option.type, SampleCount)
+    assert SampleCount().convert("2e5", None, None) == 200_000
 
 
 def test_special_ndtr_is_the_normal_cdf_used():
     # guard for the reference itself: scipy.special.ndtr agrees with scipy.stats.norm
     assert special.ndtr(-6.1) == pytest.approx(stats.norm.cdf(-6.1), rel=1e-12)
+
+
+# ----------------------------------------------------------------- the process that makes a part
+# PROCESS_TOML (tests/helpers.py): an invented bore, turned (the contributor's cp 1.0) or
+# ground (cp 1.67), and a pin; references from scipy.stats.norm with σ_i = t_i/(3·cp_i).
+
+
+def process_case():
+    from allocator.case import loads_case
+
+    return loads_case(PROCESS_TOML)
+
+
+def test_verify_simulates_the_cp_of_the_process_it_is_told():
+    case = process_case()
+    t_bore, t_pin = 0.038, 0.02  # both processes make ±0.038; turning is the cheaper
+    ground = gap_fallout_ppm(t_bore, 1.67, t_pin)
+    default = gap_fallout_ppm(t_bore, 1.0, t_pin)
+    assert default > 10 * ground  # about 36 000 ppm against about 3 000 ppm
+    check = verify(case, {"bore": t_bore}, processes={"bore": "grinding"}, samples=200_000, seed=31)["gap"]
+    assert check.ci_low_ppm <= ground <= check.ci_high_ppm
+    assert not check.ci_low_ppm <= default <= check.ci_high_ppm
+    # an all-normal chain: the convolution and the rss prediction are exact
+    assert check.convolution_ppm == pytest.approx(ground, rel=1e-9)
+    assert check.rss_ppm == pytest.approx(ground, rel=1e-9)
+    assert check.sigma == pytest.approx(math.hypot(t_bore / (3 * 1.67), t_pin / 3), rel=1e-12)
+    # the same draws for sample_responses: its fallout is the verification's
+    y = sample_responses(case, {"bore": t_bore}, processes={"bore": "grinding"}, samples=20_000, seed=31)["gap"]
+    short = verify(case, {"bore": t_bore}, processes={"bore": "grinding"}, samples=20_000, seed=31)["gap"]
+    assert np.count_nonzero(np.abs(y - 0.1) > GAP_HALF) == short.failures
+
+
+def test_a_tolerance_no_process_was_chosen_for_is_made_by_the_cheapest_that_holds_it():
+    case = process_case()
+    # ±0.038: both make it, turning is cheaper there (0.1 + 0.01/0.038 < 0.5 + 0.01/0.038)
+    both = verify(case, {"bore": 0.038}, samples=1000, seed=1)["gap"]
+    assert both.convolution_ppm == pytest.approx(gap_fallout_ppm(0.038, 1.0, 0.02), rel=1e-9)
+    # ±0.012: only grinding makes it, so the part has grinding's cp
+    ground = verify(case, {"bore": 0.012}, samples=1000, seed=1)["gap"]
+    assert ground.convolution_ppm == pytest.approx(gap_fallout_ppm(0.012, 1.67, 0.02), rel=1e-9)
+    assert case.making_processes([0.038, 0.02]) == ("turning", "")
+    assert case.making_processes([0.012, 0.02]) == ("grinding", "")
+    # analyze follows the same rule and takes a chosen process too
+    from allocator.analysis import analyze
+
+    assert analyze(case, {"bore": 0.012}).requirements[0].fallout_ppm == pytest.approx(
+        gap_fallout_ppm(0.012, 1.67, 0.02), rel=1e-9
+    )
+    chosen = analyze(case, {"bore": 0.038}, processes={"bore": "grinding"}).requirements[0]
+    assert chosen.fallout_ppm == pytest.approx(gap_fallout_ppm(0.038, 1.67, 0.02), rel=1e-9)
+
+
+def test_verify_of_an_allocation_simulates_the_processes_it_chose():
+    from allocator.solve import allocate
+
+    case = process_case()
+    allocation = allocate(case, "rss")
+    assert allocation.success
+    # turning cannot go below ±0.035, which the 2700 ppm target needs: grinding is chosen
+    assert allocation.processes["bore"] == "grinding"
+    t = dict(allocation.tolerances)
+    ground = gap_fallout_ppm(t["bore"], 1.67, t["pin"])
+    default = gap_fallout_ppm(t["bore"], 1.0, t["pin"])
+    assert default > 4 * ground  # about 16 000 ppm against the 2700 ppm target
+    result = verify(case, allocation, samples=200_000, seed=5)
+    check = result["gap"]
+    assert result.allocated_with == "rss"
+    assert check.ci_low_ppm <= ground <= check.ci_high_ppm
+    assert not check.ci_low_ppm <= default <= check.ci_high_ppm
+    assert check.convolution_ppm == pytest.approx(ground, rel=1e-9)
+    # the same through the tolerances and processes given apart
+    apart = verify(case, t, processes=allocation.processes, samples=200_000, seed=5)["gap"]
+    assert apart.failures == check.failures
+
+
+def test_a_chosen_process_must_exist_and_make_the_tolerance():
+    case = process_case()
+    with pytest.raises(CaseError, match=r"processes\.bore: no process 'honing'"):
+        verify(case, {"bore": 0.038}, processes={"bore": "honing"}, samples=1000)
+    with pytest.raises(CaseError, match=r"processes\.bore: process 'grinding' makes ±0.004 to ±0.04, not ±0.05"):
+        verify(case, processes={"bore": "grinding"}, samples=1000)
+    with pytest.raises(CaseError, match=r"processes\.pin: 'pin' has no process entries"):
+        verify(case, processes={"pin": "turning"}, samples=1000)
+    with pytest.raises(CaseError, match=r"processes\.nut: unknown contributor"):
+        verify(case, processes={"nut": "turning"}, samples=1000)
+
+
+def test_cli_verify_reads_the_chosen_process_from_the_allocation(tmp_path):
+    path = tmp_path / "bore.toml"
+    path.write_text(PROCESS_TOML)
+    alloc = tmp_path / "alloc.json"
+    done = CliRunner().invoke(cli, ["allocate", str(path), "--model", "rss", "--json"])
+    assert done.exit_code == 0, done.output
+    alloc.write_text(done.stdout)
+    t = json.loads(done.stdout)["results"][0]["tolerances"]
+    ground = gap_fallout_ppm(t["bore"], 1.67, t["pin"])
+    for args in (["--tolerances", alloc], ["--model", "rss"]):
+        out = run(path, *args, "--samples", "1e4", "--seed", "2", "--json")
+        assert out.exit_code in (0, 1), out.output
+        doc = json.loads(out.stdout)
+        assert doc["processes"] == {"bore": "grinding"}
+        assert doc["requirements"][0]["convolution_ppm"] == pytest.approx(ground, rel=1e-9)
+    human = run(path, "--model", "rss", "--samples", "1e4", "--seed", "2")
+    assert "bore by grinding" in human.output
+
+    # a plain map carries no process: the cheapest that holds the tolerance (grinding here)
+    plain = tmp_path / "plain.json"
+    plain.write_text(json.dumps(t))
+    doc = json.loads(run(path, "--tolerances", plain, "--samples", "1e4", "--json").stdout)
+    assert doc["processes"] == {"bore": "grinding"}
+
+    # a process the file names that cannot make the tolerance: one line naming the field
+    document = json.loads(alloc.read_text())
+    document["results"][0]["tolerances"]["bore"] = 0.1
+    edited = tmp_path / "edited.json"
+    edited.write_text(json.dumps(document))
+    out = run(path, "--tolerances", edited, "--samples", "1e4")
+    assert out.exit_code == 2
+    assert out.stderr.count("\n") == 1 and "Traceback" not in out.output
+    assert "edited.json: results[0].contributors[0].process: process 'grinding' makes" in out.stderr

@@ -100,7 +100,7 @@ def test_changes_are_never_negative_on_a_demo_case():
     # the base is the least cost, so holding anything elsewhere cannot be cheaper
     case = load_case(CASES / "gearbox_end_play.toml")
     sheet = supplier_sheet(case, "rss")
-    solved = [r for r in sheet.rows if r.status == "solved"]
+    solved = [r for r in sheet.rows if r.status == "optimal"]
     assert solved
     for r in solved:
         assert r.total_cost_change >= -1e-7 * sheet.base.total_cost
@@ -110,7 +110,8 @@ def test_changes_are_never_negative_on_a_demo_case():
         )
     assert sheet["bearing_width"].status == "fixed"
     frame = sheet.to_frame()
-    assert list(frame.index) == list(case.names)
+    assert list(frame.index) == list(case.names) and frame.index.name == "contributor"
+    assert "<table" in sheet._repr_html_()
 
 
 def test_looser_tolerance_steps_rounding_and_lists():
@@ -137,3 +138,79 @@ def test_at_loosest_and_infeasible_base():
     sheet = supplier_sheet(impossible, "worst-case")
     assert sheet.status == "infeasible" and not sheet.success
     assert sheet.rows == []
+
+
+def test_unknown_model_is_a_usage_error_even_with_an_allocation_given():
+    from allocator.errors import UsageError
+
+    case = _case()
+    base = allocate(case, "rss")
+    for given in (None, base):
+        with pytest.raises(UsageError, match="unknown model 'rs' \\(did you mean 'rss'\\?\\)"):
+            supplier_sheet(case, "rs", allocation=given)
+    with pytest.raises(UsageError, match="step must be > 0"):
+        supplier_sheet(case, "rss", allocation=base, step=0.0)
+
+
+def test_an_error_in_a_re_solve_is_raised_not_written_into_a_row(monkeypatch):
+    # a row once held the exception's text as its message (status 'error')
+    import allocator.solve
+
+    case = load_case(CASES / "gearbox_end_play.toml")
+    base = allocate(case, "rss")
+
+    def spoiled(*args, **kwargs):
+        raise ValueError("zero-size array to reduction operation maximum which has no identity")
+
+    monkeypatch.setattr(allocator.solve, "allocate", spoiled)
+    with pytest.raises(ValueError, match="zero-size array"):
+        supplier_sheet(case, "rss", allocation=base)
+
+
+def _two_process_case():
+    """Invented: p1, p2 as above plus p3 made by a fine process (listed first, [0.01, 0.06])
+    or a coarse one ([0.05, 0.2]); worst case ``t1 + t2 + t3 ≤ 0.3``."""
+    from allocator.model import Process
+
+    parts = [contributor(f"p{i}", nominal=10.0, tolerance=0.05, limits=(0.001, 1.0), cost=reciprocal(a=a, b=b))
+             for i, (a, b) in enumerate(zip(A[:2], B[:2]), start=1)]
+    parts.append(Contributor(name="p3", nominal=19.8, tolerance=0.05, processes=(
+        Process("fine", (0.01, 0.06), reciprocal(a=0.4, b=0.004), cp=2.0),
+        Process("coarse", (0.05, 0.2), reciprocal(a=0.1, b=0.009)),
+    )))
+    req = chain_requirement("gap", {"p1": 1, "p2": 1, "p3": -1}, upper=UPPER, fallout_ppm=FALLOUT_PPM)
+    return make_case(parts, [req], models=("worst-case",))
+
+
+def test_loosening_a_part_with_processes_is_costed_by_the_process_that_makes_it():
+    # closed forms of the module docstring (Chase et al. 1990). Coarse: Σ√b over p1, p2,
+    # p3 gives t3 = 0.3·√0.009/Σ√b = 0.15, inside [0.05, 0.2], cost Σa + (Σ√b)²/0.3; fine
+    # cannot reach its own optimum (0.12 > 0.06) and costs more anyway. Loosened to 0.165
+    # only coarse makes p3: the others share 0.3 − 0.165 (regression: p3 was priced by
+    # 'fine', the first process listed, which cannot make ±0.165)
+    sheet = supplier_sheet(_two_process_case(), "worst-case")
+    assert sheet.success
+    assert sheet.base.processes["p3"] == "coarse"
+    root = np.sqrt([B[0], B[1], 0.009])
+    base = A[0] + A[1] + 0.1 + root.sum() ** 2 / 0.3
+    assert sheet.base.total_cost == pytest.approx(base, rel=1e-9)
+    row = sheet["p3"]
+    assert row.tolerance == pytest.approx(0.15, rel=1e-6)
+    assert row.looser == pytest.approx(0.165, rel=1e-6)
+    held = A[0] + A[1] + 0.1 + 0.009 / row.looser + root[:2].sum() ** 2 / (0.3 - row.looser)
+    assert row.status == "optimal"
+    assert row.total_cost_change == pytest.approx(held - base, rel=1e-5, abs=1e-9)
+    assert row.total_cost_change >= 0
+
+
+def test_looser_tolerance_skips_the_gap_between_process_ranges():
+    from allocator.model import Process
+
+    part = Contributor(name="p", nominal=10.0, tolerance=0.008, processes=(
+        Process("grinding", (0.002, 0.01), reciprocal(a=2.0, b=0.001)),
+        Process("turning", (0.02, 0.1), reciprocal(a=1.0, b=0.01)),
+    ))
+    # 0.0095·1.1 = 0.01045 lies between the ranges: the next tolerance a process makes
+    assert looser_tolerance(part, 0.0095) == pytest.approx(0.02)
+    assert looser_tolerance(part, 0.005) == pytest.approx(0.0055)
+    assert looser_tolerance(part, 0.1) is None

@@ -6,22 +6,29 @@ import sys
 
 import click
 
-from ..errors import UsageError
+from ..errors import AllocatorError, InternalError, UsageError
+from ..ppm import format_ppm
 from .common import (
     CASE_ARGUMENT,
     csv_option,
+    echo_error,
     echo_json,
+    exit_failed,
     fmt,
     handle_errors,
+    unit_header,
     json_option,
+    labelled,
     load_case_or_exit,
     model_option,
+    shared_label,
     text_table,
+    units_title,
 )
 
 CSV_COLUMNS = (
     "model", "status", "contributor", "process", "count", "current", "allocated", "bound",
-    "tightest", "loosest", "unit_cost_current", "unit_cost_allocated",
+    "tightest", "loosest", "unit_cost_current", "unit_cost_allocated", "units",
 )
 
 
@@ -63,7 +70,8 @@ def allocate(case_file, models, fixes, as_json, as_csv):
 
     Exit code 1 when a model's requirements cannot be met (the reason names the
     requirement, by how much the tightest tolerances miss it and the largest
-    contributors) or no verified optimum was found.
+    contributors) or no verified optimum was found; 3 when a model's solver failed
+    unexpectedly (a bug: the models that solved are still shown, then the error).
     """
     from ..solve import allocate as run
 
@@ -72,7 +80,7 @@ def allocate(case_file, models, fixes, as_json, as_csv):
     fix = _parse_fix(fixes)
     case = load_case_or_exit(case_file)
     models = tuple(models) or tuple(case.allocation.models)
-    results, baselines = _run_models(case, models, fix, run)
+    results, baselines, crashed = _run_models(case, models, fix, run)
 
     if as_json:
         documents = []
@@ -90,32 +98,45 @@ def allocate(case_file, models, fixes, as_json, as_csv):
         _print_human(case, results, baselines)
 
     failed = [r for r in results if not r.success]
-    for r in failed:
-        click.echo(f"error: {r.model}: {r.status}: {r.message}", err=True)
+    if crashed:
+        # the models that solved are printed above; the crash gets one line
+        echo_error(crashed[0])
+        sys.exit(crashed[0].exit_code)
     if failed:
-        sys.exit(1)
+        # the reason is in the output above (table or JSON); stderr gets one short line
+        exit_failed("allocation with " + "; ".join(f"model {r.model}: {r.status}" for r in failed))
 
 
 def _run_models(case, models, fix, run):
-    """Each model's allocation (and without ``fix``, when holding), with a progress bar
-    per model on a terminal (drawn at once when the models are mixed-integer solves)."""
+    """Each model's allocation (and, when holding, without ``fix``), with a progress bar
+    per model on a terminal (drawn at once when the models are mixed-integer solves).
+
+    Returns (results, baselines, crashed): a bug in one model must not hide the others.
+    """
     from ..progress import progress_bar
     from ..solve.discrete import needs_discrete
 
-    jobs = [(m, fix) for m in models] + ([(m, {}) for m in models] if fix else [])
-    bar = progress_bar(len(jobs), desc="allocate", unit="model", enabled=sys.stderr.isatty(),
-                       slow=needs_discrete(case, fix) or needs_discrete(case))
-    done = []
+    results, baselines, crashed = [], [], []
+    bar = progress_bar(len(models) * (2 if fix else 1), desc="allocate", unit="model",
+                       enabled=sys.stderr.isatty(), slow=needs_discrete(case, fix) or needs_discrete(case))
     try:
-        for model, held in jobs:
-            bar.describe(model)
-            done.append(run(case, model, fix=held))
-            bar.update(1)
+        for m in models:
+            bar.describe(m)
+            try:
+                result = run(case, m, fix=fix)
+                bar.update(1)
+                base = run(case, m) if fix else None
+                bar.update(1 if fix else 0)
+            except AllocatorError:
+                raise  # bad input: one line, exit 2, nothing else
+            except Exception as err:  # a bug in one model must not hide the others
+                crashed.append(InternalError(f"model {m}", err))
+                continue
+            results.append(result)
+            baselines.append(base)
     finally:
         bar.close()
-    results = done[: len(models)]
-    baselines = done[len(models):] if fix else [None] * len(models)
-    return results, baselines
+    return results, baselines, crashed
 
 
 def _write_csv(results) -> None:
@@ -132,15 +153,31 @@ def _write_csv(results) -> None:
     click.echo(buffer.getvalue(), nl=False)
 
 
+def _count(n, noun: str) -> str:
+    """``1 iteration``, ``3 iterations``."""
+    return f"{n} {noun}" if n == 1 else f"{n} {noun}s"
+
+
+def _saving(savings, percent) -> str:
+    """``saves 1.18 (12.6 %)``, or for a dearer result ``costs 5.096 more (47.0 %)``."""
+    if savings is None:
+        return "saving unknown"
+    share = f" ({abs(percent):.1f} %)" if percent is not None else ""
+    if savings < 0:
+        return f"costs {fmt(-savings, 4)} more{share}"
+    return f"saves {fmt(savings, 4)}{share}"
+
+
 def _print_human(case, results, baselines) -> None:
-    u = case.units
+    from ..model import per_unit
+
     money = f" {case.currency}" if case.currency else ""
-    click.echo(f"{case.title}  [{u}{',' + money if money else ''}]")
+    click.echo(f"{case.title}  [{units_title(case)}{',' + money if money else ''}]")
     for result, base in zip(results, baselines):
         click.echo("")
         head = f"model {result.model}: {result.status}"
         if result.solver:
-            head += f" ({result.solver}, {result.iterations} iterations"
+            head += f" ({result.solver}, {_count(result.iterations, 'iteration')}"
             head += f", gap {result.gap:.1e})" if result.gap is not None else ")"
         click.echo(head)
         if result.total_cost is None:
@@ -149,29 +186,31 @@ def _print_human(case, results, baselines) -> None:
         if not result.success:
             click.echo(f"  warning: {result.message}")
         rows = []
+        # a process column only where the case offers processes, a grade column only where
+        # the tolerances are rounded to ISO 286 grades; a part without one has an empty cell
         with_process = any(r["process"] for r in result.rows())
+        with_grade = bool(result.grades)
+        u = shared_label(r["units"] for r in result.rows())
         for r in result.rows():
             name = r["contributor"]
             rows.append([
                 name,
-                *([r["process"] + (f" {result.grades[name]}" if name in result.grades else "")]
-                  if with_process else []),
-                f"±{fmt(r['current'])}",
-                f"±{fmt(r['allocated'])}",
+                *([r["process"] or ""] if with_process else []),
+                *([result.grades.get(name, "")] if with_grade else []),
+                labelled(f"±{fmt(r['current'])}", r["units"], u),
+                labelled(f"±{fmt(r['allocated'])}", r["units"], u),
                 r["bound"],
                 f"{fmt(r['unit_cost_current'])} -> {fmt(r['unit_cost_allocated'])}",
                 r["count"],
             ])
         click.echo(text_table(
             rows,
-            ["contributor", *(["process"] if with_process else []), f"current [{u}]",
-             f"allocated [{u}]", "bound", f"unit cost{money}", "count"],
+            ["contributor", *(["process"] if with_process else []), *(["grade"] if with_grade else []),
+             unit_header("current", u), unit_header("allocated", u), "bound", f"unit cost{money}", "count"],
         ))
-        savings = result.savings_percent
         click.echo(
             f"total cost {fmt(result.total_cost, 6)}{money} per assembly "
-            f"(current {fmt(result.current_cost, 6)}; saves {fmt(result.savings, 4)}"
-            + (f", {savings:.1f} %)" if savings is not None else ")")
+            f"(current {fmt(result.current_cost, 6)}; {_saving(result.savings, result.savings_percent)})"
         )
         if result.rounding:
             line = f"rounded to {result.rounding}"
@@ -191,23 +230,25 @@ def _print_human(case, results, baselines) -> None:
                 )
             click.echo(line)
         for r in result.requirements:
-            click.echo(f"requirement {r.name}: limits [{fmt(r.lower, 6)}, {fmt(r.upper, 6)}]"
+            name = f"{r.name} [{r.units}]" if r.units else r.name
+            click.echo(f"requirement {name}: limits [{fmt(r.lower, 6)}, {fmt(r.upper, 6)}]"
                        + ("" if r.linear else " (linearised expression)"))
             text = (
                 f"  worst case [{fmt(r.worst_case_min, 6)}, {fmt(r.worst_case_max, 6)}]   "
-                f"sigma {fmt(r.sigma)}   fallout {fmt(r.fallout_ppm)} ppm"
+                f"sigma {fmt(r.sigma)}   fallout {format_ppm(r.fallout_ppm)}"
             )
             if r.target_ppm is not None:
-                text += f" (target {fmt(r.target_ppm)})"
+                text += f" (target {format_ppm(r.target_ppm)})"
             if r.mean_shift:
                 text += f"   mean shift ±{fmt(r.mean_shift)}"
             click.echo(text)
             if r.binding:
                 parts = []
+                per_limit = per_unit(case.currency or "cost", r.units)
                 if r.shadow_lower:
-                    parts.append(f"{fmt(r.shadow_lower)}{money}/{u} per lower")
+                    parts.append(f"{fmt(r.shadow_lower)} {per_limit} per lower")
                 if r.shadow_upper:
-                    parts.append(f"{fmt(r.shadow_upper)}{money}/{u} per upper")
+                    parts.append(f"{fmt(r.shadow_upper)} {per_limit} per upper")
                 if r.shadow_ppm:
                     parts.append(f"{fmt(r.shadow_ppm)}{money}/ppm of target")
                 click.echo(f"  binding ({r.binding}); shadow prices: {', '.join(parts)}")

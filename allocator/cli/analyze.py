@@ -4,15 +4,20 @@ from __future__ import annotations
 
 import click
 
+from ..ppm import format_ppm
 from .common import (
     CASE_ARGUMENT,
     csv_option,
     echo_json,
     fmt,
     handle_errors,
+    unit_header,
     json_option,
+    labelled,
     load_case_or_exit,
+    shared_label,
     text_table,
+    units_title,
     write_csv,
 )
 
@@ -38,36 +43,51 @@ def analyze(case_file, as_json, as_csv):
         echo_json({"title": case.title, "units": case.units, **result.to_dict()})
         return
     if as_csv:
-        write_csv(result.contributions_frame())
+        # the CSV columns keep the names they always had
+        write_csv(result.contributions_frame(), index_label=["requirement", "name"])
         return
-    u = case.units
-    click.echo(f"{case.title}  [{u}]")
+    click.echo(f"{case.title}  [{units_title(case)}]")
     for r in result.requirements:
         limits = f"[{fmt(r.lower, 6)}, {fmt(r.upper, 6)}]"
         click.echo("")
-        click.echo(f"requirement {r.name}: limits {limits}" + ("" if r.linear else "  (linearised expression)"))
-        verdict = "inside limits" if r.worst_case_ok else "OUTSIDE limits"
+        name = f"{r.name} [{r.units}]" if r.units else r.name
+        click.echo(f"requirement {name}: limits {limits}" + ("" if r.linear else "  (linearised expression)"))
+        verdict = "inside limits" if r.worst_case_ok else "OUTSIDE limits: " + _misses(r)
         click.echo(
             f"  nominal {fmt(r.nominal, 6)}   worst case [{fmt(r.worst_case_min, 6)}, "
             f"{fmt(r.worst_case_max, 6)}] {verdict}"
         )
         click.echo(
-            f"  rss sigma {fmt(r.sigma)}   Cpk {fmt(r.cpk, 3)}   fallout {fmt(r.fallout_ppm)} ppm "
-            f"(below {fmt(r.fallout_below_ppm)}, above {fmt(r.fallout_above_ppm)}; "
-            f"target {fmt(r.target_ppm)})"
+            f"  rss sigma {fmt(r.sigma)}   Cpk {fmt(r.cpk, 3)}   fallout {format_ppm(r.rss_ppm)} "
+            f"(below {format_ppm(r.fallout_below_ppm)}, above {format_ppm(r.fallout_above_ppm)}; "
+            f"target {format_ppm(r.target_ppm)})"
         )
         if r.mean_shift > 0:
             click.echo(
-                f"  mean shift ±{fmt(r.mean_shift)}: fallout {fmt(r.mean_shift_ppm)} ppm "
-                f"(below {fmt(r.mean_shift_below_ppm)}, above {fmt(r.mean_shift_above_ppm)})"
+                f"  mean shift ±{fmt(r.mean_shift)}: fallout {format_ppm(r.mean_shift_ppm)} "
+                f"(below {format_ppm(r.mean_shift_below_ppm)}, above {format_ppm(r.mean_shift_above_ppm)})"
             )
+        per = shared_label(c.sensitivity_units for c in r.contributions)
+        tol = shared_label(c.units for c in r.contributions)
         rows = [
-            [c.name, fmt(c.sensitivity), c.count, fmt(c.tolerance), fmt(c.worst_case), f"{100 * c.variance_share:.1f}"]
+            [c.name, labelled(fmt(c.sensitivity), c.sensitivity_units, per), c.count,
+             labelled(fmt(c.tolerance), c.units, tol), fmt(c.worst_case), f"{100 * c.variance_share:.1f}"]
             for c in r.contributions
         ]
         click.echo(
             text_table(
                 rows,
-                ["contributor", "sensitivity", "count", f"± tol [{u}]", "± worst case", "% variance"],
+                ["contributor", unit_header("sensitivity", per), "count", unit_header("± tol", tol),
+                 unit_header("± worst case", r.units), "% variance"],
             )
         )
+
+
+def _misses(r) -> str:
+    """Which limit the worst case passes and by how much (the amounts the analysis judged)."""
+    parts = []
+    if r.worst_case_below:
+        parts.append(f"{fmt(r.worst_case_below, 3)} below lower {fmt(r.lower, 6)}")
+    if r.worst_case_above:
+        parts.append(f"{fmt(r.worst_case_above, 3)} above upper {fmt(r.upper, 6)}")
+    return " and ".join(parts)

@@ -8,16 +8,19 @@ from pathlib import Path
 import click
 
 from ..errors import UsageError
+from ..model import MODEL_LABELS
 from .common import (
     CASE_ARGUMENT,
     csv_option,
     echo_json,
+    exit_failed,
     fmt,
     handle_errors,
     json_option,
     load_case_or_exit,
     model_option,
     text_table,
+    units_title,
 )
 
 SOURCES = {
@@ -26,21 +29,18 @@ SOURCES = {
     "automatic": "chosen automatically",
     "values": "as given",
 }
-LABELS = {"worst-case": "worst case", "rss": "rss", "mean-shift": "mean shift"}
+LABELS = {model: label.lower() for model, label in MODEL_LABELS.items()}  # table text is lower case
 
 
 def _check_plot_paths(case_file, *paths) -> None:
     """Bad plot paths are usage errors, found before any work is done."""
+    from ..files import check_output_path
     from ..plots import format_for
 
     given = [p for p in paths if p]
     for p in given:
         format_for(p)
-        target = Path(p)
-        if target.resolve() == Path(case_file).resolve():
-            raise UsageError(f"{p}: refusing to overwrite the input case file")
-        if not target.parent.exists():
-            raise UsageError(f"{p}: folder {target.parent} does not exist")
+        check_output_path(p, protect=(case_file,), input_name="input case file")
     if len(given) == 2 and Path(given[0]).resolve() == Path(given[1]).resolve():
         raise UsageError(f"{given[0]}: --plot and --economics-plot name the same file")
 
@@ -118,7 +118,8 @@ def frontier(case_file, requirement, vary, span, points, models, plot, economics
             document["economics_note"] = economics_note
         echo_json(document)
     elif as_csv:
-        click.echo(result.to_frame().to_csv(index=False), nl=False)
+        value_units = "ppm" if result.vary == "fallout_ppm" else result.units
+        click.echo(result.to_frame().assign(value_units=value_units).to_csv(index=False), nl=False)
     else:
         _print_human(case, result, economics, economics_note)
     for line in written:
@@ -126,9 +127,8 @@ def frontier(case_file, requirement, vary, span, points, models, plot, economics
 
     if economics_plot and economics is None:
         click.echo(f"warning: no economics plot written: {economics_note}", err=True)
-    if not result.success:
-        click.echo(f"error: {result.status}: {result.message}", err=True)
-        sys.exit(1)
+    if not result.success:  # the reason is in the output; stderr gets one short line
+        exit_failed(f"frontier of {result.requirement}: {result.status}")
 
 
 def _economics(case, result, progress=False):
@@ -140,17 +140,16 @@ def _economics(case, result, progress=False):
         return None, "no statistical model selected (worst case does not use the fallout target)"
     from ..economics import fallout_economics
 
-    return fallout_economics(case, result.requirement, statistical, progress=progress), ""
+    return fallout_economics(case, requirement=result.requirement, models=statistical, progress=progress), ""
 
 
 def _print_human(case, result, economics, economics_note) -> None:
-    u = case.units
     money = f" {case.currency}" if case.currency else ""
-    click.echo(f"{case.title}  [{u}{',' + money if money else ''}]")
+    click.echo(f"{case.title}  [{units_title(case)}{',' + money if money else ''}]")
     if result.vary == "fallout_ppm":
         what, unit = "fallout target", "ppm"
     else:
-        what, unit = f"{result.vary} limit", u
+        what, unit = f"{result.vary} limit", result.units  # the swept requirement's units
     values = result.values
     click.echo(
         f"frontier of {result.requirement}: least cost per assembly against its {what}, "
@@ -200,6 +199,8 @@ def _print_human(case, result, economics, economics_note) -> None:
 
 
 def _print_economics(economics, money) -> None:
+    from ..ppm import format_ppm
+
     click.echo("")
     volume = economics.volume
     head = (
@@ -224,7 +225,7 @@ def _print_economics(economics, money) -> None:
             (f"{LABELS[r.model]}: current target", r.current_ppm, r.current_manufacturing,
              r.current_scrap, r.current_total, r.annual_current_total),
         ):
-            row = [label, fmt(ppm, 4), fmt(m, 6), fmt(s, 4), fmt(t, 6)]
+            row = [label, format_ppm(ppm, unit=False), fmt(m, 6), fmt(s, 4), fmt(t, 6)]
             if volume is not None:
                 row.append(fmt(year, 8))
             rows.append(row)

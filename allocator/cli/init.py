@@ -9,7 +9,7 @@ import click
 
 from ..errors import UsageError
 from ..files import atomic_write
-from .common import handle_errors
+from .common import FilePath, handle_errors
 
 
 def starter_text() -> str:
@@ -18,7 +18,7 @@ def starter_text() -> str:
 
 
 @click.command()
-@click.argument("path", type=click.Path(dir_okay=False))
+@click.argument("path", type=FilePath())
 @click.option("--force", is_flag=True, help="Overwrite PATH if it already exists.")
 @handle_errors
 def init(path, force):

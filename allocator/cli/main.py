@@ -18,10 +18,31 @@ COMMANDS = {
     "report": ("allocator.cli.report", "report"),
 }
 
+# the one-line summaries `allocator --help` lists (whole, never cut off with "..."; listing
+# them needs no command module imported)
+SUMMARIES = {
+    "init": "Write a commented starter case file.",
+    "analyze": "Analyse the stack at the current tolerances.",
+    "allocate": "Find the least-cost tolerances.",
+    "frontier": "Least cost against a limit or fallout target.",
+    "verify": "Check tolerances by Monte Carlo simulation.",
+    "report": "Write an HTML report for a design review.",
+}
+
 
 class LazyGroup(click.Group):
     def list_commands(self, ctx):
         return list(COMMANDS)
+
+    def format_commands(self, ctx, formatter):
+        with formatter.section("Commands"):
+            formatter.write_dl([(name, self._summary(ctx, name)) for name in COMMANDS])
+
+    def _summary(self, ctx, name):
+        if name in SUMMARIES:
+            return SUMMARIES[name]
+        # a command without a summary here: its docstring's first sentence, whole
+        return self.get_command(ctx, name).get_short_help_str(limit=10_000)
 
     def get_command(self, ctx, name):
         if name not in COMMANDS:
@@ -41,5 +62,14 @@ def cli():
 
 
 def main(argv=None):
-    """Console-script entry point."""
-    cli.main(args=argv, prog_name="allocator")
+    """Console-script entry point.
+
+    A reader of stdout that goes away early (``allocator allocate CASE | head -1``) ends the
+    command quietly (see :func:`~allocator.cli.common.exit_quietly_on_broken_pipe`).
+    """
+    try:
+        cli.main(args=argv, prog_name="allocator")
+    except BrokenPipeError:
+        from .common import exit_quietly_on_broken_pipe
+
+        exit_quietly_on_broken_pipe()

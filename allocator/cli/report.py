@@ -6,7 +6,7 @@ import sys
 
 import click
 
-from .common import CASE_ARGUMENT, handle_errors, load_case_or_exit, model_option
+from .common import CASE_ARGUMENT, FilePath, SampleCount, handle_errors, load_case_or_exit, model_option
 
 
 @click.command()
@@ -16,16 +16,16 @@ from .common import CASE_ARGUMENT, handle_errors, load_case_or_exit, model_optio
     "--output",
     "output",
     required=True,
-    type=click.Path(dir_okay=False),
+    type=FilePath(),
     help="HTML file to write (never the case file itself).",
 )
 @model_option
 @click.option(
     "--samples",
-    type=click.IntRange(min=1000, max=1_000_000_000),
+    type=SampleCount(),
     default=200_000,
     show_default=True,
-    help="Monte Carlo assemblies for the verification section.",
+    help="Monte Carlo assemblies for the verification section (1e3..1e9; 2e5 style accepted).",
 )
 @click.option(
     "--seed",
@@ -56,7 +56,8 @@ def report(case_file, output, models, samples, seed, frontier_points, no_frontie
 
     Exit codes: 0 written and every allocation optimal (and its verification passes);
     1 written, but a model cannot meet a requirement (or the verification fails): the
-    report says which, at the top; 2 bad input or usage: nothing written.
+    report says which, at the top; 2 bad input or usage: nothing written; 3 a section
+    failed unexpectedly (a bug; the message names the section): nothing written.
     """
     from ..report import write_report
 

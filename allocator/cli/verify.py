@@ -2,19 +2,24 @@
 
 from __future__ import annotations
 
-import difflib
 import json
 import math
-import sys
 from pathlib import Path
 
 import click
 
-from ..errors import CaseError, InfeasibleError, UsageError
+from ..errors import CaseError, InfeasibleError, UsageError, did_you_mean
+from ..files import check_output_path
+from ..ppm import format_ppm
 from .common import (
     CASE_ARGUMENT,
+    MAX_SAMPLES,
+    MIN_SAMPLES,
+    FilePath,
+    SampleCount,
     csv_option,
     echo_json,
+    exit_failed,
     fmt,
     handle_errors,
     json_option,
@@ -22,34 +27,11 @@ from .common import (
     model_option,
     seed_option,
     text_table,
+    units_title,
     write_csv,
 )
 
-MIN_SAMPLES = 1_000
-MAX_SAMPLES = 1_000_000_000
 PLOT_FORMATS = (".png", ".svg")
-
-
-class SampleCount(click.ParamType):
-    """A whole number of assemblies; accepts ``200000``, ``2e5`` and ``200_000``."""
-
-    name = "N"
-
-    def convert(self, value, param, ctx):
-        if isinstance(value, int):
-            number = value
-        else:
-            text = str(value).strip().replace("_", "")
-            try:
-                as_float = float(text)
-            except ValueError:
-                self.fail(f"{value!r} is not a number", param, ctx)
-            if not math.isfinite(as_float) or as_float != int(as_float):
-                self.fail(f"{value!r} is not a whole number", param, ctx)
-            number = int(as_float)
-        if not MIN_SAMPLES <= number <= MAX_SAMPLES:
-            self.fail(f"{number} is outside {MIN_SAMPLES:.0e}..{MAX_SAMPLES:.0e}", param, ctx)
-        return number
 
 
 def _check_value(value, file: str, field: str) -> float:
@@ -67,18 +49,48 @@ def _check_tolerances(mapping, names, file: str, prefix: str) -> dict[str, float
     for name, value in mapping.items():
         field = f"{prefix}.{name}" if prefix else name
         if name not in names:
-            close = difflib.get_close_matches(name, names, n=1)
-            hint = f" (did you mean '{close[0]}'?)" if close else ""
-            raise CaseError(f"unknown contributor{hint}", file=file, field=field)
+            raise CaseError(f"unknown contributor{did_you_mean(name, names)}", file=file, field=field)
         out[name] = _check_value(value, file, field)
     return out
 
 
-def read_tolerance_file(path, names, model: str | None = None) -> tuple[dict[str, float], str | None]:
+def _read_processes(rows, names, file: str, prefix: str) -> dict[str, tuple[str, str]]:
+    """The processes of an ``allocate --json`` result: name -> (process, field path).
+
+    ``rows`` is the result's ``contributors`` list (each with ``contributor`` and
+    ``process``); missing or empty processes are left out (verify then applies its rule).
+    Whether a process is one of the contributor's and holds its tolerance is checked by
+    the library (:meth:`allocator.model.Case.making_processes`).
+    """
+    if rows is None:
+        return {}
+    if not isinstance(rows, list):
+        raise CaseError("must be a list of contributor rows", file=file, field=prefix)
+    out = {}
+    for j, row in enumerate(rows):
+        field = f"{prefix}[{j}]"
+        if not isinstance(row, dict):
+            raise CaseError("must be an object", file=file, field=field)
+        process = row.get("process")
+        if process is None or process == "":
+            continue
+        name = row.get("contributor")
+        if name not in names:
+            raise CaseError(f"unknown contributor {json.dumps(name)}", file=file, field=f"{field}.contributor")
+        if not isinstance(process, str):
+            raise CaseError(f"must be a process name, got {json.dumps(process)}", file=file, field=f"{field}.process")
+        out[name] = (process, f"{field}.process")
+    return out
+
+
+def read_tolerance_file(
+    path, names, model: str | None = None
+) -> tuple[dict[str, float], str | None, dict[str, tuple[str, str]]]:
     """Tolerances from ``allocate --json`` output or a plain ``{name: t}`` JSON object.
 
-    Returns the tolerances and the model they belong to (None for a plain map). Raises
-    :class:`CaseError` naming the file and field for anything wrong.
+    Returns the tolerances, the model they belong to (None for a plain map) and the
+    processes the allocation chose (name -> (process, field path in the file); empty for
+    a plain map). Raises :class:`CaseError` naming the file and field for anything wrong.
     """
     file = str(path)
     try:
@@ -97,7 +109,7 @@ def read_tolerance_file(path, names, model: str | None = None) -> tuple[dict[str
                 "--model picks one of several allocation results, but this file is a plain tolerance map",
                 file=file,
             )
-        return _check_tolerances(document, names, file, ""), None
+        return _check_tolerances(document, names, file, ""), None, {}
     results = document["results"]
     if not isinstance(results, list) or not results:
         raise CaseError("must be a non-empty list of allocation results", file=file, field="results")
@@ -123,10 +135,12 @@ def read_tolerance_file(path, names, model: str | None = None) -> tuple[dict[str
             file=file,
             field=f"results[{index}].tolerances",
         )
-    return _check_tolerances(tolerances, names, file, f"results[{index}].tolerances"), models[index]
+    checked = _check_tolerances(tolerances, names, file, f"results[{index}].tolerances")
+    processes = _read_processes(result.get("contributors"), names, file, f"results[{index}].contributors")
+    return checked, models[index], processes
 
 
-def _allocated_tolerances(case, model: str) -> dict[str, float]:
+def _allocated_tolerances(case, model: str) -> tuple[dict[str, float], dict[str, str]]:
     try:
         from ..solve import allocate
     except ImportError:
@@ -137,18 +151,15 @@ def _allocated_tolerances(case, model: str) -> dict[str, float]:
     allocation = allocate(case, model=model)
     if not getattr(allocation, "success", True):
         raise InfeasibleError(f"allocation with model {model} failed: {getattr(allocation, 'message', '')}")
-    return {str(k): float(v) for k, v in dict(allocation.tolerances).items()}
+    tolerances = {str(k): float(v) for k, v in dict(allocation.tolerances).items()}
+    return tolerances, dict(allocation.processes)
 
 
 def _check_plot_path(plot, protect) -> None:
     target = Path(plot)
     if target.suffix.lower() not in PLOT_FORMATS:
         raise UsageError(f"{plot}: --plot writes .png or .svg, not '{target.suffix or 'no extension'}'")
-    for p in protect:
-        if p is not None and target.resolve() == Path(p).resolve():
-            raise UsageError(f"{plot}: refusing to overwrite the input file")
-    if not target.parent.exists():
-        raise UsageError(f"{plot}: folder {target.parent} does not exist")
+    check_output_path(plot, protect=protect)
 
 
 def _verdict(check) -> str:
@@ -160,7 +171,7 @@ def _verdict(check) -> str:
 @click.option(
     "--tolerances",
     "tolerance_file",
-    type=click.Path(dir_okay=False),
+    type=FilePath(),
     default=None,
     metavar="FILE.json",
     help="Tolerances to check: the output of `allocate --json` or a plain {name: t} object.",
@@ -174,7 +185,7 @@ def _verdict(check) -> str:
     help=f"Assemblies to simulate ({MIN_SAMPLES:.0e}..{MAX_SAMPLES:.0e}; 2e5 style accepted).",
 )
 @seed_option
-@click.option("--plot", type=click.Path(dir_okay=False), default=None, metavar="FILE", help="Write response histograms (.png or .svg).")
+@click.option("--plot", type=FilePath(), default=None, metavar="FILE", help="Write response histograms (.png or .svg).")
 @click.option(
     "--centred",
     is_flag=True,
@@ -207,33 +218,65 @@ def verify(case_file, tolerance_file, models, samples, seed, plot, centred, as_j
     if plot is not None:
         _check_plot_path(plot, (case_file, tolerance_file))
     case = load_case_or_exit(case_file)
+    fields = {}  # contributor -> where its process came from in the tolerance file
+    processes = None
     if tolerance_file is not None:
-        tolerances, model = read_tolerance_file(tolerance_file, case.names, model)
+        tolerances, model, chosen = read_tolerance_file(tolerance_file, case.names, model)
+        processes = {name: process for name, (process, _) in chosen.items()}
+        fields = {name: field for name, (_, field) in chosen.items()}
         source = f"from {tolerance_file}" + (f" (model {model})" if model else "")
     elif model is not None:
-        tolerances = _allocated_tolerances(case, model)
+        tolerances, processes = _allocated_tolerances(case, model)
         source = f"allocated with model {model}"
     else:
         tolerances = None
         source = "current tolerances of the case"
 
-    result = run_verify(case, tolerances, samples=samples, seed=seed, progress=True, shift_means=not centred)
+    try:
+        result = run_verify(
+            case,
+            tolerances,
+            processes=processes,
+            samples=samples,
+            seed=seed,
+            progress=True,
+            shift_means=not centred,
+            allocated_with=model,
+        )
+    except CaseError as err:
+        name = (err.field or "").partition("processes.")[2]
+        if err.file is None and name in fields:  # a process from the file: name it there
+            raise CaseError(err.problem, file=str(tolerance_file), field=fields[name]) from None
+        raise
+    made_by = {
+        c.name: p
+        for c, p in zip(case.contributors, case.making_processes(list(result.tolerances.values()), processes))
+        if c.processes
+    }
 
     if plot is not None:
         data = render_verification_plot(result, Path(plot).suffix)
         atomic_write(plot, data, protect=(case_file, tolerance_file))
     if as_json:
-        echo_json({"title": case.title, "tolerance_source": source, "model": model, **result.to_dict()})
+        echo_json(
+            {"title": case.title, "tolerance_source": source, "model": model, "processes": made_by, **result.to_dict()}
+        )
     elif as_csv:
-        write_csv(result.to_frame())
+        write_csv(result.to_frame(), index_label="name")  # the CSV column keeps its name
     else:
-        _print_human(case, result, source, plot)
-    if result.status == "fail":
-        sys.exit(1)
+        _print_human(case, result, source, plot, made_by)
+    if result.status == "fail":  # the reason is in the output; stderr gets one short line
+        failing = ", ".join(c.name for c in result.requirements if c.status == "fail")
+        exit_failed(f"verification: fallout above target for {failing}")
 
 
-def _print_human(case, result, source: str, plot) -> None:
-    click.echo(f"{case.title}  [{case.units}]")
+def _ppm(value) -> str:
+    """A table cell under a [ppm] header (ppb values say so)."""
+    return format_ppm(value, unit=False)
+
+
+def _print_human(case, result, source: str, plot, made_by: dict) -> None:
+    click.echo(f"{case.title}  [{units_title(case)}]")
     click.echo(
         f"Monte Carlo: {result.samples:,} assemblies, seed {result.seed} "
         f"(repeat with --seed {result.seed}); {source}"
@@ -244,12 +287,13 @@ def _print_human(case, result, source: str, plot) -> None:
         rows.append(
             [
                 c.name,
+                f"[{fmt(c.lower, 6)}, {fmt(c.upper, 6)}]" + (f" {c.units}" if c.units else ""),
                 f"{c.samples:,}",
-                f"{fmt(c.fallout_ppm)} [{fmt(c.ci_low_ppm)}, {fmt(c.ci_high_ppm)}]",
-                fmt(c.rss_ppm),
-                fmt(c.mean_shift_ppm),
-                fmt(c.convolution_ppm),
-                fmt(c.target_ppm),
+                f"{_ppm(c.fallout_ppm)} [{_ppm(c.ci_low_ppm)}, {_ppm(c.ci_high_ppm)}]",
+                _ppm(c.rss_ppm),
+                _ppm(c.mean_shift_ppm),
+                _ppm(c.convolution_ppm),
+                _ppm(c.target_ppm),
                 _verdict(c),
             ]
         )
@@ -259,6 +303,7 @@ def _print_human(case, result, source: str, plot) -> None:
             rows,
             [
                 "requirement",
+                "limits",
                 "samples",
                 f"fallout ppm [{level} CI]",
                 "rss ppm",
@@ -277,14 +322,20 @@ def _print_human(case, result, source: str, plot) -> None:
             model = "mean-shift" if c.mean_shift_ppm is not None else "rss"
             why = "linearised, normal" if not c.linear else "normal"
             notes.append(
-                f"{c.name}: the {model} prediction {fmt(c.predicted_ppm)} ppm lies outside the interval "
+                f"{c.name}: the {model} prediction {format_ppm(c.predicted_ppm)} lies outside the interval "
                 f"(the {why} model may not fit; ~5 % of runs by chance)"
             )
         if not c.linear:
             notes.append(f"{c.name}: no convolution (nonlinear expression)")
         if c.undefined:
             notes.append(f"{c.name}: {c.undefined:,} assemblies with an undefined response, counted as failures")
-    if any(c.shift_side for c in result.requirements):
+    if made_by:
+        parts = [f"{name} by {p}" if p else f"{name} by none of its processes (own cp)" for name, p in made_by.items()]
+        shown = ", ".join(parts[:6]) + (f" and {len(parts) - 6} more (--json lists all)" if len(parts) > 6 else "")
+        notes.append(f"simulated with the cp of the process that makes each part: {shown}")
+    if result.assumption_note:
+        notes.append(f"note: {result.assumption_note}")
+    elif any(c.shift_side for c in result.requirements):
         notes.append("mean shifts placed on the worse side of each requirement")
     notes.append(
         "statistical results assume stable, capable processes with the stated distributions; "

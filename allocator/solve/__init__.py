@@ -16,14 +16,16 @@ called 'optimal' (see :mod:`.problem`).
 from __future__ import annotations
 
 import importlib.util
+from typing import Mapping, Sequence
 
-from ..model import Case
+from ..errors import UsageError, did_you_mean
+from ..model import MODELS, Case
 from .result import Allocation, RequirementResult
 
 __all__ = ["allocate", "allocate_all", "solver_for", "prepare", "Allocation", "RequirementResult"]
 
 
-def prepare(case: Case, model: str, fix=None):
+def prepare(case: Case, model: str, fix: Mapping[str, float] | None = None):
     """The checked :class:`~allocator.solve.problem.AllocationProblem` for ``case``."""
     from .problem import prepare as _prepare
 
@@ -43,7 +45,7 @@ def _default_model(case: Case) -> str:
     return case.allocation.models[0] if case.allocation.models else "worst-case"
 
 
-def solver_for(case: Case, model: str | None = None, *, fix=None):
+def solver_for(case: Case, model: str | None = None, *, fix: Mapping[str, float] | None = None):
     """A solver object with ``.solve(overrides=None) -> Allocation`` for repeated use.
 
     The exact dual when it applies, else a compiled conic problem
@@ -54,6 +56,9 @@ def solver_for(case: Case, model: str | None = None, *, fix=None):
     from .problem import NeedsDiscrete
 
     model = model or _default_model(case)
+    if model not in MODELS:
+        # checked here, before the dispatch, so every solver path says the same
+        raise UsageError(f"unknown model {model!r}{did_you_mean(model, MODELS)} (choose from {', '.join(MODELS)})")
     discrete = _discrete_module() if case.allocation.rounding is not None else None
     if discrete is not None and hasattr(discrete, "solver_for"):
         return discrete.solver_for(case, model, fix=fix)
@@ -75,7 +80,13 @@ def solver_for(case: Case, model: str | None = None, *, fix=None):
     return CompiledAllocation.from_problem(problem)
 
 
-def allocate(case: Case, model: str | None = None, *, fix=None, overrides=None) -> Allocation:
+def allocate(
+    case: Case,
+    model: str | None = None,
+    *,
+    fix: Mapping[str, float] | None = None,
+    overrides: Mapping[str, Mapping[str, float]] | None = None,
+) -> Allocation:
     """Least-cost ± tolerances for ``case`` under one stack model.
 
     Parameters
@@ -114,7 +125,9 @@ def allocate(case: Case, model: str | None = None, *, fix=None, overrides=None) 
     return solver_for(case, model, fix=fix).solve(overrides)
 
 
-def allocate_all(case: Case, models=None, fix=None) -> list[Allocation]:
+def allocate_all(
+    case: Case, models: Sequence[str] | None = None, *, fix: Mapping[str, float] | None = None
+) -> list[Allocation]:
     """:func:`allocate` for each model (default: the case's ``[allocation].models``)."""
     models = tuple(models) if models else tuple(case.allocation.models)
     return [allocate(case, m, fix=fix) for m in models]

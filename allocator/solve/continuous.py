@@ -1,8 +1,9 @@
 """Least-cost allocation as one convex conic problem (cvxpy), for any number of requirements.
 
 Formulation in scaled variables ``τ = t / ℓ`` (ℓ: geometric mean of the free limits) and
-costs divided by a cost scale, so that a case in mm, m or μm gives the solver the same
-numbers:
+costs divided by a cost scale, so that a case in any length unit or currency gives the
+solver the same numbers (up to the case's own round-off; no absolute constant enters,
+see :meth:`CompiledAllocation.solver_data`):
 
 - objective ``Σ n_i C_i(ℓ τ_i) / c`` with exact cones (:func:`allocator.costs.cvx_costs`:
   ``inv_pos``, ``power``, ``exp``, piecewise-linear maxima), vectorised per family;
@@ -80,8 +81,14 @@ class CompiledAllocation:
 
     Examples
     --------
-    >>> compiled = CompiledAllocation(case, "rss")  # doctest: +SKIP
-    >>> [compiled.solve({"end_play": {"upper": u}}).total_cost for u in (0.3, 0.35)]  # doctest: +SKIP
+    >>> from allocator.case import load_case
+    >>> case = load_case("cases/gearbox_end_play.toml")
+    >>> compiled = CompiledAllocation(case, "rss")
+    >>> tight, loose = (compiled.solve({"end_play": {"upper": u}}) for u in (0.3, 0.35))
+    >>> tight.status, loose.status
+    ('optimal', 'optimal')
+    >>> bool(loose.total_cost < tight.total_cost)  # the looser upper limit costs less
+    True
     """
 
     def __init__(self, case, model: str, fix=None, *, solvers=None):
@@ -195,12 +202,12 @@ class CompiledAllocation:
                     math.inf if lim.upper is None else lim.upper - req.nominal,
                 )
                 room -= stack.worst_case_half_width(a, p.counts, t_held)
-                if not math.isfinite(room):  # no limit: never binding
-                    room = 2.0 * stack.worst_case_half_width(a, p.counts, t_loose) + 1.0
+                if not math.isfinite(room):  # no limit: never binding (twice the loosest spread)
+                    room = 2.0 * stack.worst_case_half_width(a, p.counts, t_loose)
                 row.rhs.value = room / row.scale
             elif row.kind == "rss":
-                if unbounded:
-                    sigma_max = 2.0 * stack.rss_sigma(a, p.counts, p.sigma_factors * t_loose) + 1.0
+                if unbounded:  # never binding; relative, so the same in every unit
+                    sigma_max = 2.0 * stack.rss_sigma(a, p.counts, p.sigma_factors * t_loose)
                 else:
                     sigma_max = stack.sigma_limit(req.nominal, lim.fallout, lim.lower, lim.upper)
                 row.rhs.value = sigma_max / row.scale
@@ -228,6 +235,17 @@ class CompiledAllocation:
             g.value = slope
         row.points = np.asarray(points, dtype=float)
 
+    def _first_cuts(self, shifting):
+        """The first tangents of every mean-shift row: evenly over the reachable δ."""
+        p = self.problem
+        for req, lim, row in shifting:
+            low = stack.mean_shift_delta(req.sensitivity, p.counts, p.mean_shifts, p.tightest)
+            high = stack.mean_shift_delta(req.sensitivity, p.counts, p.mean_shifts, p.loosest)
+            high = min(high, self._domain(req, lim) * (1 - 1e-9))
+            points = np.full(len(row.cuts), np.nan)
+            points[:FIRST_CUTS] = np.linspace(low, max(low, high), FIRST_CUTS)
+            self._place_cuts(req, lim, row, points)
+
     def _domain(self, req, lim):
         """Largest δ for which the worst mean is still inside the limits."""
         d_low = math.inf if lim.lower is None else req.nominal - lim.lower
@@ -235,6 +253,32 @@ class CompiledAllocation:
         return min(d_low, d_up)
 
     # ------------------------------------------------------------------ solve
+
+    def solver_data(self, overrides=None, solver: str = "CLARABEL"):
+        """The arrays the conic solver is handed in the first solve with these limits.
+
+        Parameters
+        ----------
+        overrides : dict, optional
+            As for :meth:`solve`.
+        solver : str
+            cvxpy solver name.
+
+        Returns
+        -------
+        dict or None
+            cvxpy's problem data (``A``, ``b``, ``c``, cone dimensions) with every
+            right-hand side and the first tangent planes set as :meth:`solve` sets them;
+            None when every contributor is held. In the scaled variables the same case
+            in any length unit or currency gives the same arrays (what the scaling
+            tests check).
+        """
+        if self.cvx is None:
+            return None
+        p = self.problem
+        self._first_cuts(self._set_rhs(p.limits(overrides), p.loosest))
+        data, _, _ = self.cvx.get_problem_data(solver.split("-")[0])
+        return data
 
     def solve(self, overrides=None):
         """Allocate with the case's limits, or with ``overrides``.
@@ -359,13 +403,7 @@ class CompiledAllocation:
 
         p = self.problem
         length, money = p.length_scale, p.cost_scale
-        for req, lim, row in shifting:
-            low = stack.mean_shift_delta(req.sensitivity, p.counts, p.mean_shifts, p.tightest)
-            high = stack.mean_shift_delta(req.sensitivity, p.counts, p.mean_shifts, p.loosest)
-            high = min(high, self._domain(req, lim) * (1 - 1e-9))
-            points = np.full(len(row.cuts), np.nan)
-            points[:FIRST_CUTS] = np.linspace(low, max(low, high), FIRST_CUTS)
-            self._place_cuts(req, lim, row, points)
+        self._first_cuts(shifting)
         iterations = 0
         note = ""
         for round_ in range(1, MAX_CUT_ROUNDS + 1):

@@ -18,6 +18,8 @@ one-hot binaries ``x_ij`` (Chase, Greenwood, Loosli & Hauglund 1990):
   by one binary per interval of δ (``V ≤ g(δ_k)²`` on ``[δ_k, δ_(k+1)]``), then made exact
   by lazy cuts: solve, check the true constraint in numpy, add cuts that remove the
   violating choice and no feasible one, repeat (see :meth:`DiscreteAllocation._cuts`).
+  A requirement whose δ no choice moves (no free contributor with a mean shift) is the
+  rss row with ``σ_max = g(δ)``, as in the continuous solvers (``g(0)`` is rss's σ_max).
 
 Every MILP is solved by HiGHS (``scipy.optimize.milp``) to a proven optimum (relative and
 absolute MIP gap 0). Each choice is re-checked in numpy against the exact constraint, and
@@ -75,6 +77,7 @@ from .problem import (
     WORST_CASE_RTOL,
     AllocationProblem,
     check_fix_values,
+    cheapest_unit_cost,
     Limits,
     mean_shift_allowance,
 )
@@ -146,11 +149,6 @@ class _Option:
         self.base_grid = self.grid
 
 
-def _within(t: float, limits) -> bool:
-    lo, hi = limits
-    return lo * (1 - _SLACK) <= t <= hi * (1 + _SLACK)
-
-
 def _cost_at(curve, t):
     """Unit cost at ``t`` (array), or None where the curve does not define it."""
     if curve is None:
@@ -164,10 +162,10 @@ def _cost_at(curve, t):
 def _geometric_grid(lo: float, hi: float, points: int, curve) -> np.ndarray:
     grid = np.geomspace(lo, hi, max(int(points), 2))
     grid[0], grid[-1] = lo, hi
-    if curve is not None and curve.curve == "table":
+    x = np.empty(0) if curve is None else costs.family_of(curve).kinks(curve)
+    if x.size:
         # breakpoints on the grid make the cost linear inside every cell, so its least
         # value in a cell is at an end (what the lower bound uses)
-        x = np.asarray(curve.points_tolerance, dtype=float)
         grid = np.union1d(grid, x[(x > lo) & (x < hi)])
     return grid
 
@@ -175,13 +173,17 @@ def _geometric_grid(lo: float, hi: float, points: int, curve) -> np.ndarray:
 def needs_discrete(case: Case, fix=None) -> bool:
     """True when allocating ``case`` needs this module.
 
-    A free contributor with several processes or a ``choose`` table, or a rounding
-    setting.
+    A rounding setting; a free contributor with several processes or a ``choose`` table;
+    or a held one (``fixed``, or in ``fix``) at a tolerance several of its processes can
+    make (holding ``t`` leaves the choice among the processes whose range holds ``t``).
     """
     fix = fix or {}
     if case.allocation.rounding is not None:
         return True
-    return any(c.is_discrete and not c.fixed and c.name not in fix for c in case.contributors)
+    return any(
+        c.needs_choice(c.tolerance if c.fixed else (float(fix[c.name]) if c.name in fix else None))
+        for c in case.contributors
+    )
 
 
 # --------------------------------------------------------------------------- candidates
@@ -384,7 +386,7 @@ class _LagrangianTerms:
                     points.append(k)
                 elif o.curve is None:
                     free.append(k)
-                elif o.curve.curve == "table":
+                elif costs.family_of(o.curve).piecewise:
                     tables.append(k)
                 else:
                     formula.append(k)
@@ -395,9 +397,9 @@ class _LagrangianTerms:
         self.formula, self.free = np.array(formula, dtype=int), np.array(free, dtype=int)
         self.curves = CurveSet([self.opts[k].curve for k in formula])
         self.tables = []
-        for k in tables:  # breakpoints inside the limits, with the ends
+        for k in tables:  # linear between breakpoints: those inside the limits, and the ends
             o = self.opts[k]
-            x = np.asarray(o.curve.points_tolerance, dtype=float)
+            x = np.asarray(costs.family_of(o.curve).kinks(o.curve), dtype=float)
             x = np.union1d(x[(x > o.limits[0]) & (x < o.limits[1])], o.limits)
             self.tables.append((k, x, np.nan_to_num(_cost_at(o.curve, x))))
         self.points = [(k, self.opts[k].points, np.nan_to_num(self.opts[k].point_costs)) for k in points]
@@ -501,10 +503,15 @@ class DiscreteAllocation:
 
     Examples
     --------
-    >>> from allocator.case import load_case  # doctest: +SKIP
-    >>> case = load_case("cases/pump_shim.toml")  # doctest: +SKIP
-    >>> result = DiscreteAllocation(case, "rss").solve()  # doctest: +SKIP
-    >>> result.processes["body_depth"], result.unrounded_cost, result.rounding_cost  # doctest: +SKIP
+    >>> from allocator.case import load_case
+    >>> case = load_case("cases/pump_shim.toml")
+    >>> result = DiscreteAllocation(case, "rss").solve()
+    >>> result.status, result.gap
+    ('optimal', 0.0)
+    >>> result.processes["body_depth"] in ("turning", "fine boring", "grinding")
+    True
+    >>> bool(result.rounding_cost >= 0.0)  # rounded tolerances never beat the unrounded optimum
+    True
     """
 
     def __init__(self, case: Case, model: str, fix=None, *, grid_points: int = GRID_POINTS,
@@ -547,23 +554,22 @@ class DiscreteAllocation:
 
     def _contributor_options(self, i, c) -> list[_Option]:
         held = self._held_value(c)
-        factor = lambda p: c.process_sigma_factor(p) if c.processes else c.sigma_factor  # noqa: E731
+        factor = lambda p: c.process_sigma_factor(p)  # noqa: E731
         options = []
         if held is not None:
-            for k, p in enumerate(c.options()):
-                if not _within(held, p.limits):
-                    continue
+            # held at t: one candidate (p, t) per option p that can make t, at p's cost
+            # and with p's cp
+            all_options = c.options()
+            for k in c.options_holding(held):
+                p = all_options[k]
                 cost = _cost_at(p.cost, np.array([held]))
-                if cost is None:  # e.g. not a listed tolerance of a choose table
-                    continue
                 options.append(_Option(i, k, p.name, p.limits, p.cost, factor(p), "points",
                                        np.array([held]), cost, ("",)))
             if not options:
-                # held outside every process: like the continuous solver, the first option
-                p = c.options()[0]
-                cost = _cost_at(p.cost, np.array([held]))
-                options.append(_Option(i, 0, p.name, p.limits, p.cost, factor(p), "points",
-                                       np.array([held]), np.zeros(1) if cost is None else cost, ("",)))
+                # a fixed part no option makes (a held `fix` value was refused by
+                # check_fix_values): taken as it is, no cost and its own cp
+                options.append(_Option(i, -1, "", (held, held), None, c.sigma_factor, "points",
+                                       np.array([held]), np.zeros(1), ("",)))
             return options
         ranges = []
         for k, p in enumerate(c.options()):
@@ -588,7 +594,9 @@ class DiscreteAllocation:
             options.append(_Option(i, k, p.name, p.limits, curve, factor(p), "points",
                                    points, _cost_at(curve, points), labels))
         if not options:
-            problem = rounding_values.no_value_problem(self.rounding, c.nominal, self.case.units, ranges)
+            problem = rounding_values.no_value_problem(
+                self.rounding, c.nominal, self.case.contributor_units(c.name), ranges
+            )
             raise CaseError(
                 f"contributor '{c.name}': {problem}",
                 file=str(self.case.path) if self.case.path is not None else None,
@@ -599,7 +607,7 @@ class DiscreteAllocation:
     def _rounded(self, c, lo, hi):
         if self.rounding == "iso286":
             try:
-                return rounding_values.iso286_values(c.nominal, self.case.units, lo, hi)
+                return rounding_values.iso286_values(c.nominal, self.case.contributor_units(c.name), lo, hi)
             except ValueError as err:
                 raise CaseError(
                     f"contributor '{c.name}': {err}",
@@ -631,7 +639,7 @@ class DiscreteAllocation:
                     t, value = o.grid[:-1], o.grid[1:]
                     ends = _cost_at(o.curve, o.grid)
                     cost = np.minimum(ends[:-1], ends[1:])
-                    if o.curve.curve == "table":
+                    if costs.family_of(o.curve).piecewise:
                         # linear inside a cell: its breakpoints are on the grid
                         tangent, tangent_cost = t, ends[:-1]
                         slope = (ends[1:] - ends[:-1]) / (value - t)
@@ -762,14 +770,26 @@ class DiscreteAllocation:
                 base.add(variance(unit_v[r]) / sigma_max**2, 1.0)
                 checks.append((r, "rss", sigma_max, lim))
             else:
+                # δ's least and largest value over the choices; equal when no choice moves
+                # the mean band (no contributor with a mean shift, or none free)
+                low = float(np.sum(np.minimum.reduceat(unit_d[r] * t, cand.starts)))
+                high = float(np.sum(np.maximum.reduceat(unit_d[r] * cand.value, cand.starts)))
+                if not low < room:
+                    # every choice puts the worst mean on or past a limit: fallout ≥ 50 %
+                    return _MilpOutcome("infeasible", None, None, None, None, 0, 0, 0,
+                                        f"requirement '{req.name}': the mean band reaches a limit")
+                if not high > low:
+                    # δ is the same constant for every choice (0 without mean shifts): the
+                    # requirement is rss with σ_max = g(δ), as in the continuous solvers
+                    sigma_max = mean_shift_allowance(req.nominal, low, lim)[0]
+                    base.add(variance(unit_v[r]) / sigma_max**2, 1.0)
+                    checks.append((r, "rss", sigma_max, lim))
+                    continue
                 # the worst mean must stay inside the limits (fallout ≥ 50 % otherwise)
                 base.add(linear(unit_d[r]) / room, 1.0)
                 checks.append((r, "mean-shift", room, lim))
                 key = (r, n_tau > 0)
                 if key not in self._breaks:
-                    d_lo = unit_d[r] * t
-                    low = float(np.sum(np.minimum.reduceat(d_lo, cand.starts)))
-                    high = float(np.sum(np.maximum.reduceat(unit_d[r] * cand.value, cand.starts)))
                     # fine intervals make the points MILP exact in one solve as a rule; the
                     # lower bound's MILP (continuous columns too) is faster with fewer
                     involved = int(np.count_nonzero(np.maximum.reduceat(unit_d[r] + unit_s[r], cand.starts)))
@@ -971,6 +991,9 @@ class DiscreteAllocation:
         """The case with each contributor's chosen process as its only option."""
         contributors = []
         for c, o in zip(self.case.contributors, chosen_options):
+            if o.index < 0:  # a fixed part no option makes: taken as it is
+                contributors.append(replace(c, processes=(), limits=None, cost=None))
+                continue
             if not c.processes:
                 contributors.append(c)
                 continue
@@ -987,20 +1010,7 @@ class DiscreteAllocation:
 
     def _baseline_unit_costs(self) -> np.ndarray:
         """Cost of one part at the current tolerance: the cheapest option that offers it."""
-        out = np.full(len(self.case.contributors), np.nan)
-        for i, c in enumerate(self.case.contributors):
-            best = math.inf
-            for p in c.options():
-                if p.cost is None:
-                    best = min(best, 0.0)
-                    continue
-                if not _within(c.tolerance, p.limits) and c.processes:
-                    continue
-                value = _cost_at(p.cost, np.array([c.tolerance]))
-                if value is not None and math.isfinite(value[0]):
-                    best = min(best, float(value[0]))
-            out[i] = best if math.isfinite(best) else np.nan
-        return out
+        return np.array([cheapest_unit_cost(c, c.tolerance) for c in self.case.contributors], dtype=float)
 
     def _result(self, chosen_options, t, limits, *, status, message, gap, iterations,
                 labels=None, requirements=None, solver=SOLVER_NAME):
@@ -1095,8 +1105,8 @@ class DiscreteAllocation:
         keep = np.zeros(base.size, dtype=bool)
         keep[::SWEEP_STRIDE] = True
         keep[[0, -1]] = True
-        if o.curve is not None and o.curve.curve == "table":
-            keep |= np.isin(base, np.asarray(o.curve.points_tolerance, dtype=float))
+        if o.curve is not None:  # a table's breakpoints stay on the grid (cells linear)
+            keep |= np.isin(base, costs.family_of(o.curve).kinks(o.curve))
         chosen, _ = self._last_choice
         t = self._last_t[o.owner]
         if chosen[o.owner] is o and np.isfinite(t):

@@ -27,9 +27,8 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from scipy import special
 
-from .. import costs, stack
+from .. import stack
 from .problem import AllocationProblem, allowance_with_curvature, mean_shift_allowance
 
 __all__ = [
@@ -46,6 +45,7 @@ __all__ = [
 
 SOLVER_NAME = "lagrange-dual"
 GAP_LIMIT = 1e-8  # Newton's answer counts only with a dual bound this close (else: conic)
+_LOG_FLOAT_MAX = math.log(np.finfo(float).max)  # exp() of more overflows
 
 
 def separable(problem: AllocationProblem) -> bool:
@@ -267,6 +267,10 @@ class ExactAllocation:
         for _ in range(400):
             if at(x_hi) <= 0:
                 break
+            if x_hi + decade >= _LOG_FLOAT_MAX:
+                # no finite λ meets it: the requirement leaves exactly the tightest
+                # tolerances (diagnose() let them pass up to round-off)
+                return dual.lo.copy(), math.inf, None
             x_hi += decade
         else:
             return dual.lo.copy(), math.inf, None
@@ -730,105 +734,26 @@ def _bracket_root(f, a: float, b: float, *, xtol: float = 1e-13, maxiter: int = 
 def minimise_linear_price(cs, s, lo, hi) -> np.ndarray:
     """Per part, the minimiser of ``C(t) + s t`` on ``[lo, hi]`` (``C'(t) = −s``).
 
+    Each curve family gives its own (:meth:`allocator.costs.CurveFamily.linear_minimiser`):
     ``a + b/t^k``: ``(k b / s)^(1/(k+1))``; ``a + b e^(−ct)``: ``ln(b c / s) / c``; a convex
-    table: :func:`allocator.costs.inverse_derivative`. ``s <= 0``: the loosest limit.
+    table: the breakpoint whose subgradient holds ``−s``. ``s <= 0``: the loosest limit.
     """
     s = np.broadcast_to(np.asarray(s, dtype=float), np.shape(lo))
-    t = _linear_root(cs, s)
-    for j in cs.tables:
-        t[j] = costs.inverse_derivative(cs.curves[j], -s[j], lo[j], hi[j])
-    return np.clip(t, lo, hi)
-
-
-def _linear_root(cs, s) -> np.ndarray:
-    """Unclipped root of ``C'(t) = −s`` for the formula curves (inf elsewhere)."""
-    p, e = cs.power, cs.expo
-    t = np.full(np.shape(s), np.inf)
-    with np.errstate(divide="ignore", over="ignore", invalid="ignore"):
-        t[p] = (cs.pk * cs.pb / s[p]) ** (1.0 / (cs.pk + 1.0))
-        t[e] = np.log(cs.eb * cs.ec / s[e]) / cs.ec
-    t[np.isnan(t) | (s <= 0)] = np.inf  # nothing pulls the tolerance tighter
-    return t
+    return np.clip(cs.linear_minimiser(s), lo, hi)
 
 
 def minimise_quadratic_price(cs, q, lo, hi, shift=None) -> np.ndarray:
     """Per part, the minimiser of ``C(t) + q t²/2 (+ shift·t)`` on ``[lo, hi]``.
 
-    Without ``shift`` in closed form: ``a + b/t^k`` gives ``(k b / q)^(1/(k+2))``,
-    ``a + b e^(−ct)`` gives ``W₀(b c² / q) / c``. With ``shift`` (``C'(t) + q t + shift =
-    0``, the mean-shift stationarity) the root is bracketed by these one-term closed forms
-    and found by safeguarded Newton steps in ``log t`` (vectorised). Tables: the last
-    piece whose left end has a non-positive slope of the whole expression.
+    Each curve family gives its own
+    (:meth:`allocator.costs.CurveFamily.quadratic_minimiser`). Without ``shift`` in closed
+    form: ``a + b/t^k`` gives ``(k b / q)^(1/(k+2))``, ``a + b e^(−ct)`` gives
+    ``W₀(b c² / q) / c``. With ``shift`` (``C'(t) + q t + shift = 0``, the mean-shift
+    stationarity) the root is bracketed by these one-term closed forms and found by
+    safeguarded Newton steps in ``log t`` (vectorised). Tables: the last piece whose left
+    end has a non-positive slope of the whole expression.
     """
     q = np.broadcast_to(np.asarray(q, dtype=float), np.shape(lo))
-    p, e = cs.power, cs.expo
-
-    def closed(q):
-        t = np.full(np.shape(lo), np.inf)
-        with np.errstate(divide="ignore", over="ignore", invalid="ignore"):
-            t[p] = (cs.pk * cs.pb / q[p]) ** (1.0 / (cs.pk + 2.0))
-            t[e] = special.lambertw(cs.eb * cs.ec**2 / q[e]).real / cs.ec
-        t[np.isnan(t) | (q <= 0)] = np.inf
-        return t
-
-    if shift is None:
-        t = closed(q)
-    else:
+    if shift is not None:
         shift = np.broadcast_to(np.asarray(shift, dtype=float), np.shape(lo))
-        # C' + q t + r = 0 lies between the roots of C' + q t = 0, C' + r = 0 (upper: either
-        # term alone stops earlier) and those of C' + 2 q t = 0, C' + 2 r = 0 (lower)
-        up = np.minimum(closed(q), _linear_root(cs, shift))
-        low = np.minimum(closed(2.0 * q), _linear_root(cs, 2.0 * shift))
-        up = np.clip(up, lo, hi)  # a root below lo (or above hi) ends at that limit
-        low = np.clip(np.minimum(low, up), lo, up)
-        formula = np.zeros(np.shape(lo), dtype=bool)
-        formula[p] = formula[e] = True
-        h_up = cs.derivative(up) + q * up + shift
-        h_low = cs.derivative(low) + q * low + shift
-        # a root beyond a limit (h < 0 at hi, or h > 0 at lo) ends at that limit at once
-        t = np.where(h_up <= 0, up, np.where(h_low >= 0, low, np.sqrt(low * up)))
-        live = formula & (low < up) & (h_up > 0) & (h_low < 0)
-        for _ in range(60):
-            if not live.any():
-                break
-            h = cs.derivative(t) + q * t + shift
-            slope = t * (cs.curvature(t) + q)  # dh / d ln t
-            low = np.where(live & (h < 0), t, low)
-            up = np.where(live & (h > 0), t, up)
-            with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-                step = np.exp(np.log(t) - h / slope)
-            # a converged step lands on the bracket end just set to t: closed bounds
-            inside = (step >= low) & (step <= up) & np.isfinite(step)
-            new = np.where(inside, step, np.sqrt(low * up))
-            # quadratic convergence: after a Newton step this small the new point is exact
-            # to round-off (demanding less than ~1e-13 only spins in the last bits)
-            done = (np.abs(new / t - 1.0) <= 1e-13) & inside
-            done |= up <= low * (1.0 + 1e-15)
-            t = np.where(live, new, t)
-            live &= ~done & (h != 0)
-    for j in cs.tables:
-        r = 0.0 if shift is None else float(shift[j])
-        if q[j] > 0:
-            t[j] = _table_squared_minimiser(cs.curves[j], float(q[j]), r)
-        else:
-            t[j] = costs.inverse_derivative(cs.curves[j], -r, lo[j], hi[j])
-    return np.clip(t, lo, hi)
-
-
-def _table_squared_minimiser(curve, q: float, shift: float = 0.0) -> float:
-    """Minimiser of ``C(t) + q t²/2 + shift·t`` over a convex piecewise-linear table's range.
-
-    ``h(t) = C'(t) + q t + shift`` is increasing; the answer is
-    ``clip(−(s_j + shift)/q, x_j, x_{j+1})`` for the last segment j with ``h(x_j) ≤ 0``
-    (the first breakpoint when none has).
-    """
-    x = np.asarray(curve.points_tolerance, dtype=float)
-    y = np.asarray(curve.points_cost, dtype=float)
-    s = np.diff(y) / np.diff(x) + shift
-    if q <= 0:
-        return float(x[-1])
-    ok = np.flatnonzero(s + q * x[:-1] <= 0)
-    if ok.size == 0:
-        return float(x[0])
-    j = ok[-1]
-    return float(np.clip(-s[j] / q, x[j], x[j + 1]))
+    return np.clip(cs.quadratic_minimiser(q, lo, hi, shift), lo, hi)

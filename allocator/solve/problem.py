@@ -18,9 +18,9 @@ Nothing here imports cvxpy or pandas.
 
 from __future__ import annotations
 
-import difflib
 import math
-from dataclasses import dataclass, replace
+from dataclasses import dataclass
+from functools import cached_property
 from typing import Mapping
 
 import numpy as np
@@ -28,8 +28,9 @@ from scipy import special
 
 from .. import costs, stack
 from ..chain import linearise
-from ..errors import CaseError, UsageError
-from ..model import MODELS, Case, CostCurve
+from ..errors import CaseError, UsageError, did_you_mean
+from ..model import HOLD_RTOL, MODELS, Case, CostCurve
+from ..ppm import PER_MILLION, fraction_to_ppm, ppm_to_fraction
 from .result import Allocation, RequirementResult
 
 __all__ = [
@@ -39,6 +40,8 @@ __all__ = [
     "RequirementData",
     "Limits",
     "prepare",
+    "check_fix_values",
+    "cheapest_unit_cost",
     "sigma_limit_slopes",
     "mean_shift_allowance",
     "shadow_prices",
@@ -46,7 +49,10 @@ __all__ = [
 
 # A solution may sit this far (relative) outside a requirement before it is polished;
 # polishing always aims at exact feasibility, this is only what still counts as met.
-WORST_CASE_RTOL = 1e-9
+# Worst case: W <= room·(1 + rtol) with room = min(ȳ − L, U − ȳ) <= W; the excess rtol·room
+# then lies within stack.limit_margin (rtol·max(|ȳ|, |L|, |U|, W)), so the analysis of an
+# accepted allocation calls it inside its limits.
+WORST_CASE_RTOL = stack.LIMIT_RTOL
 FALLOUT_RTOL = 1e-6
 # A tolerance within this fraction of its range from a bound is reported at that bound.
 BOUND_RTOL = 1e-7
@@ -54,11 +60,6 @@ BOUND_RTOL = 1e-7
 
 class NeedsDiscrete(UsageError):
     """A free contributor needs a choice of process or of listed tolerances."""
-
-
-def _close(name: str, options) -> str:
-    match = difflib.get_close_matches(name, list(options), n=1)
-    return f" (did you mean '{match[0]}'?)" if match else ""
 
 
 def _g(x: float) -> str:
@@ -69,35 +70,30 @@ def _g(x: float) -> str:
 
 
 class CurveSet:
-    """Many cost curves evaluated at once (vectorised over contributors).
+    """Many cost curves evaluated at once, vectorised per curve family.
 
-    The formula families are grouped: ``reciprocal`` is ``reciprocal-power`` with
-    ``k = 1``, so two groups (power, exponential) cover them; tables (rare) are
-    evaluated one by one with :mod:`allocator.costs`. ``None`` costs nothing.
+    The curves are grouped by family once (:mod:`allocator.costs.registry`); each group
+    keeps its parts' positions and parameter arrays, and every method asks each family
+    for its vectorised formula. ``None`` costs nothing. Families with kinks (tables) are
+    listed in :attr:`tables`, the positions the solvers treat piece by piece.
     """
 
     def __init__(self, curves):
         self.curves = tuple(curves)
         self.size = len(self.curves)
-        power, pa, pb, pk, expo, ea, eb, ec, tables = ([] for _ in range(9))
+        members: dict[str, list[int]] = {}
         for i, c in enumerate(self.curves):  # one pass: cases may have thousands of parts
-            kind = None if c is None else c.curve
-            if kind == "reciprocal" or kind == "reciprocal-power":
-                power.append(i)
-                pa.append(c.a)
-                pb.append(c.b)
-                pk.append(1.0 if kind == "reciprocal" else c.k)
-            elif kind == "exponential":
-                expo.append(i)
-                ea.append(c.a)
-                eb.append(c.b)
-                ec.append(c.c)
-            elif kind == "table":
-                tables.append(i)
-        self.power, self.expo = np.array(power, dtype=int), np.array(expo, dtype=int)
-        self.pa, self.pb, self.pk = (np.array(v, dtype=float) for v in (pa, pb, pk))
-        self.ea, self.eb, self.ec = (np.array(v, dtype=float) for v in (ea, eb, ec))
-        self.tables = tables
+            if c is not None:
+                members.setdefault(c.curve, []).append(i)
+        self.groups = []  # (family, positions, parameters)
+        for name, index in members.items():
+            fam = costs.family(name)
+            params = fam.params([self.curves[i] for i in index])
+            self.groups.append((fam, np.array(index, dtype=int), params))
+        self._index_tables()
+
+    def _index_tables(self) -> None:
+        self.tables = sorted(int(i) for fam, idx, _ in self.groups if fam.piecewise for i in idx)
 
     def subset(self, index) -> "CurveSet":
         """The curves at positions ``index`` (increasing), without re-reading the curves."""
@@ -107,61 +103,72 @@ class CurveSet:
         out = CurveSet.__new__(CurveSet)
         out.curves = tuple(self.curves[i] for i in index)
         out.size = index.size
-        keep_p = position[self.power] >= 0
-        keep_e = position[self.expo] >= 0
-        out.power, out.expo = position[self.power][keep_p], position[self.expo][keep_e]
-        out.pa, out.pb, out.pk = self.pa[keep_p], self.pb[keep_p], self.pk[keep_p]
-        out.ea, out.eb, out.ec = self.ea[keep_e], self.eb[keep_e], self.ec[keep_e]
-        out.tables = [int(position[i]) for i in self.tables if position[i] >= 0]
+        out.groups = []
+        for fam, idx, params in self.groups:
+            keep = position[idx] >= 0
+            if keep.any():
+                out.groups.append((fam, position[idx][keep], fam.take(params, keep)))
+        out._index_tables()
+        return out
+
+    def _each(self, method: str, t, *extra, fill: float = 0.0, dtype=float) -> np.ndarray:
+        """``family.method(params, t[idx], extra[idx]...)`` per group, ``fill`` elsewhere."""
+        t = np.asarray(t, dtype=float)
+        out = np.full(self.size, fill, dtype=dtype)
+        for fam, idx, params in self.groups:
+            args = [None if e is None else np.asarray(e)[idx] for e in extra]
+            out[idx] = getattr(fam, method)(params, t[idx], *args)
         return out
 
     def value(self, t) -> np.ndarray:
         """Unit cost of each contributor at ``t`` [currency]; NaN where undefined."""
-        t = np.asarray(t, dtype=float)
-        out = np.zeros(self.size)
-        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-            tp = t[self.power]
-            out[self.power] = np.where(tp > 0, self.pa + self.pb * tp ** (-self.pk), np.nan)
-            te = t[self.expo]
-            out[self.expo] = np.where(te > 0, self.ea + self.eb * np.exp(-self.ec * te), np.nan)
-        for i in self.tables:
-            try:
-                out[i] = costs.cost_value(self.curves[i], float(t[i]))
-            except ValueError:
-                out[i] = np.nan  # e.g. a current tolerance outside the table
-        return out
+        return self._each("value", t)
 
     def derivative(self, t) -> np.ndarray:
         """d cost / d t of each contributor at ``t`` [currency/length]."""
-        t = np.asarray(t, dtype=float)
-        out = np.zeros(self.size)
-        tp = t[self.power]
-        out[self.power] = -self.pk * self.pb * tp ** (-self.pk - 1.0)
-        te = t[self.expo]
-        out[self.expo] = -self.eb * self.ec * np.exp(-self.ec * te)
-        for i in self.tables:
-            out[i] = costs.cost_derivative(self.curves[i], float(t[i]))
-        return out
-
+        return self._each("derivative", t)
 
     def curvature(self, t) -> np.ndarray:
         """d² cost / d t² of each contributor at ``t`` (0 for tables and None)."""
-        t = np.asarray(t, dtype=float)
-        out = np.zeros(self.size)
-        tp = t[self.power]
-        out[self.power] = self.pk * (self.pk + 1.0) * self.pb * tp ** (-self.pk - 2.0)
-        te = t[self.expo]
-        out[self.expo] = self.eb * self.ec**2 * np.exp(-self.ec * te)
-        return out
+        return self._each("curvature", t)
 
     def at_breakpoint(self, t, rtol: float = 1e-9) -> np.ndarray:
         """True where a table contributor sits on one of its listed tolerances (a kink)."""
         t = np.asarray(t, dtype=float)
         out = np.zeros(self.size, dtype=bool)
-        for i in self.tables:
-            x = np.asarray(self.curves[i].points_tolerance)
-            out[i] = bool(np.any(np.abs(x - t[i]) <= rtol * x[-1]))
+        for fam, idx, params in self.groups:
+            out[idx] = fam.at_breakpoint(params, t[idx], rtol)
         return out
+
+    def linear_minimiser(self, s) -> np.ndarray:
+        """Per part, the unclipped minimiser of ``C(t) + s t`` (inf where nothing pulls)."""
+        return self._each("linear_minimiser", s, fill=np.inf)
+
+    def quadratic_minimiser(self, q, lo, hi, shift=None) -> np.ndarray:
+        """Per part, the minimiser of ``C(t) + q t²/2 (+ shift·t)`` (clip to [lo, hi] after)."""
+        return self._each("quadratic_minimiser", q, lo, hi, shift, fill=np.inf)
+
+    # The parameter arrays in the layout of sweep.BatchedDual (power group: both reciprocal
+    # families, k = 1 for reciprocal; exponential group). Only that class reads them; they
+    # go when the frontier uses the exact dual of solve/exact.py.
+    def _legacy(self, names, key):
+        parts = [(idx, params) for fam, idx, params in self.groups if fam.name in names]
+        if not parts:
+            return np.array([], dtype=int if key is None else float)
+        return np.concatenate([idx if key is None else params[key] for idx, params in parts])
+
+    power = cached_property(lambda self: self._legacy(_POWER, None))
+    pa = cached_property(lambda self: self._legacy(_POWER, "a"))
+    pb = cached_property(lambda self: self._legacy(_POWER, "b"))
+    pk = cached_property(lambda self: self._legacy(_POWER, "k"))
+    expo = cached_property(lambda self: self._legacy(_EXPONENTIAL, None))
+    ea = cached_property(lambda self: self._legacy(_EXPONENTIAL, "a"))
+    eb = cached_property(lambda self: self._legacy(_EXPONENTIAL, "b"))
+    ec = cached_property(lambda self: self._legacy(_EXPONENTIAL, "c"))
+
+
+_POWER = ("reciprocal", "reciprocal-power")  # only for the sweep.BatchedDual layout above
+_EXPONENTIAL = ("exponential",)
 
 
 def scaled_curve(curve: CostCurve | None, length: float, cost: float) -> CostCurve | None:
@@ -172,20 +179,7 @@ def scaled_curve(curve: CostCurve | None, length: float, cost: float) -> CostCur
     """
     if curve is None:
         return None
-    kind = curve.curve
-    if kind == "reciprocal":
-        return replace(curve, a=curve.a / cost, b=curve.b / (cost * length))
-    if kind == "reciprocal-power":
-        return replace(curve, a=curve.a / cost, b=curve.b / (cost * length**curve.k))
-    if kind == "exponential":
-        return replace(curve, a=curve.a / cost, b=curve.b / cost, c=curve.c * length)
-    if kind == "table":
-        return replace(
-            curve,
-            points_tolerance=tuple(x / length for x in curve.points_tolerance),
-            points_cost=tuple(y / cost for y in curve.points_cost),
-        )
-    raise ValueError(f"unknown cost curve {kind!r}")
+    return costs.family_of(curve).scaled(curve, length, cost)
 
 
 # --------------------------------------------------------------------------- requirements
@@ -214,7 +208,7 @@ class Limits:
 
     @property
     def fallout(self) -> float:
-        return self.fallout_ppm * 1e-6
+        return ppm_to_fraction(self.fallout_ppm)
 
     @property
     def two_sided(self) -> bool:
@@ -363,10 +357,17 @@ class AllocationProblem:
     length_scale, cost_scale : float
         Scales the solvers divide tolerances and costs by.
 
+    A held contributor (``fixed``, or in ``fix``) at ``t`` takes the cost curve and cp of
+    the option that makes ``t`` (:meth:`~allocator.model.Contributor.options_holding`).
+    When several can, that is a discrete choice; when none can (a ``fixed`` part outside
+    every range the case gives it) the part is taken as it is: no cost, its own cp.
+
     With ``check=True`` (what :func:`prepare` does) the same pass refuses contributors
-    that need a discrete choice (:class:`NeedsDiscrete`) and non-convex cost tables
-    (:class:`~allocator.errors.CaseError`); without it any case is taken as it is (the
-    discrete solver uses that for the statistics of a chosen combination).
+    that need a discrete choice, free or held (:class:`NeedsDiscrete`), and non-convex
+    cost tables (:class:`~allocator.errors.CaseError`); without it any case is taken as it
+    is, a held contributor with the first option that makes its tolerance (the discrete
+    solver uses that for the statistics of a chosen combination, where each contributor
+    has one option left).
     """
 
     def __init__(self, case: Case, model: str, fix: Mapping[str, float] | None = None, *, check: bool = False):
@@ -378,16 +379,47 @@ class AllocationProblem:
         lo, hi, held, sigma_factors = [], [], [], []
         names, counts, shifts, current = [], [], [], []
         curves, processes, hold_kind = [], [], []
+        current_override = {}  # held with several processes: cheapest at the current t
         file = str(case.path) if case.path is not None else None
         fixes = self.fix
-        # one pass (the same as Contributor.options()[0], without building a Process per
-        # call), filling lists: this runs on every allocation and cases may have thousands
-        # of parts
+        # one pass (for a free contributor the same as Contributor.options()[0], without
+        # building a Process per call), filling lists: this runs on every allocation and
+        # cases may have thousands of parts
         for i, c in enumerate(contributors):
             names.append(c.name)
             counts.append(c.count)
             shifts.append(c.mean_shift)
             current.append(c.tolerance)
+            if c.fixed or c.name in fixes:
+                # held at t: the options that can make t (holding t does not choose the
+                # process; each makes t at its own cost and cp)
+                value = c.tolerance if c.fixed else float(fixes[c.name])
+                makers = c.options_holding(value)
+                if len(makers) > 1 and check:
+                    options = c.options()
+                    raise NeedsDiscrete(
+                        f"contributor '{c.name}' held at ±{value:g} can be made by "
+                        f"{', '.join(repr(options[k].name) for k in makers)}; choosing one is "
+                        "the discrete allocation's job, not the continuous solver's"
+                    )
+                if makers:
+                    option = c.options()[makers[0]]
+                    curve, name = option.cost, option.name
+                    sigma_factors.append(c.process_sigma_factor(option))
+                else:
+                    # a fixed part no option makes is taken as it is: no cost, its own cp
+                    # (a held `fix` value no option makes was refused by check_fix_values)
+                    curve, name = None, ""
+                    sigma_factors.append(c.sigma_factor)
+                if len(c.processes) > 1:
+                    current_override[i] = cheapest_unit_cost(c, c.tolerance)
+                processes.append(name)
+                curves.append(curve)
+                lo.append(value)
+                hi.append(value)
+                held.append(value)
+                hold_kind.append("fixed" if c.fixed else "held")
+                continue
             if c.processes:
                 option = c.processes[0]
                 limits, curve, name = option.limits, option.cost, option.name
@@ -398,13 +430,6 @@ class AllocationProblem:
                 sigma_factors.append(c.sigma_factor)
             processes.append(name)
             curves.append(curve)
-            if c.fixed or c.name in fixes:
-                value = c.tolerance if c.fixed else float(fixes[c.name])
-                lo.append(value)
-                hi.append(value)
-                held.append(value)
-                hold_kind.append("fixed" if c.fixed else "held")
-                continue
             lo.append(limits[0])
             hi.append(limits[1])
             held.append(nan)
@@ -416,8 +441,8 @@ class AllocationProblem:
                     f"contributor '{c.name}' needs a choice of process or of listed tolerances; "
                     "that is the discrete allocation's job, not the continuous solver's"
                 )
-            if curve is not None and curve.curve == "table":
-                problem = costs.table_problem(curve)
+            if curve is not None:
+                problem = costs.table_problem(curve)  # None for the formula families
                 if problem:
                     raise CaseError(
                         f"contributor '{c.name}': its cost table cannot be used for continuous "
@@ -435,6 +460,7 @@ class AllocationProblem:
         self.free = np.isnan(held)
         self.hold_kind = tuple(hold_kind)
         self.current = np.array(current, dtype=float)
+        self._current_override = current_override
         self.processes = tuple(processes)
         self.curves = CurveSet(curves)
         self.requirements = tuple(
@@ -483,7 +509,7 @@ class AllocationProblem:
         known = {r.name for r in self.requirements}
         for name, change in overrides.items():
             if name not in known:
-                raise UsageError(f"overrides: unknown requirement {name!r}{_close(name, known)}")
+                raise UsageError(f"overrides: unknown requirement {name!r}{did_you_mean(name, known)}")
             bad = set(change) - {"lower", "upper", "fallout_ppm"}
             if bad:
                 raise UsageError(
@@ -498,7 +524,7 @@ class AllocationProblem:
                 change.get("upper", r.upper),
                 float(change.get("fallout_ppm", r.fallout_ppm)),
             )
-            if not 0 < lim.fallout_ppm < 1e6:
+            if not 0 < lim.fallout_ppm < PER_MILLION:
                 raise UsageError(f"overrides: {r.name}: fallout_ppm must be in (0, 1e6)")
             if lim.two_sided and lim.lower >= lim.upper:
                 raise UsageError(f"overrides: {r.name}: lower must be below upper")
@@ -589,7 +615,7 @@ class AllocationProblem:
                 label = "worst case"
             else:
                 what = (
-                    f"fallout at tightest tolerances is {_g(s['fallout'] * 1e6)} ppm > target "
+                    f"fallout at tightest tolerances is {_g(fraction_to_ppm(s['fallout']))} ppm > target "
                     f"{_g(lim.fallout_ppm)} ppm"
                 )
                 if self.model == "mean-shift" and s["delta"] > 0:
@@ -674,6 +700,8 @@ class AllocationProblem:
         """
         case = self.case
         current_unit = self.unit_costs(self.current)
+        for i, value in self._current_override.items():
+            current_unit[i] = value
         current_cost = float(np.sum(self.counts * current_unit))
         kwargs = dict(
             model=self.model,
@@ -691,6 +719,7 @@ class AllocationProblem:
             iterations=iterations,
             gap=gap,
             units=case.units,
+            contributor_units=case.own_contributor_units,
             currency=case.currency,
             title=case.title,
             held={n: float(v) for n, v, k in zip(self.names, self.held, self.hold_kind) if k == "held"},
@@ -713,10 +742,11 @@ class AllocationProblem:
                     worst_case_max=req.nominal + s["half_width"],
                     sigma=s["sigma"],
                     mean_shift=s["delta"],
-                    fallout_ppm=s["fallout"] * 1e6,
+                    fallout_ppm=fraction_to_ppm(s["fallout"]),
                     target_ppm=None if self.model == "worst-case" else lim.fallout_ppm,
                     linear=req.linear,
                     **prices,
+                    units=case.requirement_units(req.name),
                 )
             )
         return Allocation(
@@ -791,7 +821,7 @@ def shadow_prices(model: str, req: RequirementData, lim: Limits, stats: dict, y:
             out["shadow_lower"] = -y * slopes["lower"]
         if lim.upper is not None:
             out["shadow_upper"] = -y * slopes["upper"]
-        out["shadow_ppm"] = -y * slopes["fallout"] * 1e-6
+        out["shadow_ppm"] = ppm_to_fraction(-y * slopes["fallout"])  # per fraction -> per ppm
     low, up = abs(out["shadow_lower"] or 0.0), abs(out["shadow_upper"] or 0.0)
     big = max(low, up)
     sides = [s for s, v in (("lower", low), ("upper", up)) if big > 0 and v >= 1e-3 * big]
@@ -803,36 +833,72 @@ def shadow_prices(model: str, req: RequirementData, lim: Limits, stats: dict, y:
 # --------------------------------------------------------------------------- prepare
 
 
+# A held tolerance written equal to a limit (up to float noise) is inside it.
+_FIX_RTOL = HOLD_RTOL
+
+
+def cheapest_unit_cost(contributor, tolerance: float) -> float:
+    """Cost of one part made to ± ``tolerance`` by its cheapest option that can [currency].
+
+    The option is :meth:`~allocator.model.Contributor.cheapest_option_holding` (the same
+    rule that picks the process, and so the cp, when verify checks such a tolerance).
+    When none can make it: 0 for a ``fixed`` contributor (taken as it is), else the first
+    option's curve at ``tolerance`` (NaN where the curve does not define it).
+    """
+    k = contributor.cheapest_option_holding(tolerance)
+    if k is None:
+        if contributor.fixed:
+            return 0.0
+        k = 0
+    curve = contributor.options()[k].cost
+    if curve is None:
+        return 0.0
+    try:
+        value = float(costs.cost_value(curve, float(tolerance)))
+    except ValueError:
+        return math.nan
+    return value if math.isfinite(value) else math.nan
+
+
 def check_fix_values(case: Case, fix) -> dict[str, float]:
-    """``fix`` as name -> float, each naming a contributor and holding a finite t > 0."""
+    """``fix`` as name -> float: each names a contributor and holds a finite t > 0 that
+    one of its options can make (:meth:`~allocator.model.Contributor.options_holding`:
+    inside its limits, or with processes inside the limits of at least one process; a
+    ``choose`` table must list it).
+
+    A held tolerance the part cannot be made to is refused rather than priced off its cost
+    curve. A case-``fixed`` contributor keeps its own tolerance, so its entry is not
+    checked against limits.
+    """
     out = {}
     for name, value in (fix or {}).items():
         if name not in case.names:
-            raise UsageError(f"fix: unknown contributor '{name}'{_close(name, case.names)}")
+            raise UsageError(f"fix: unknown contributor '{name}'{did_you_mean(name, case.names)}")
         try:
             value = float(value)
         except (TypeError, ValueError):
             raise UsageError(f"fix: {name}: tolerance must be a number (got {value!r})") from None
         if not (math.isfinite(value) and value > 0):
             raise UsageError(f"fix: {name}: tolerance must be > 0 (got {value:g})")
-        out[name] = value
-    return out
-
-
-def _check_fix(case: Case, fix) -> dict[str, float]:
-    """:func:`check_fix_values`, and a held value must lie in its cost table's range
-    (the continuous solver prices every contributor on its curve)."""
-    out = check_fix_values(case, fix)
-    for name, value in out.items():
         c = case.contributor(name)
-        option = c.options()[0]
-        if option.cost is not None and option.cost.curve == "table":
-            x = option.cost.points_tolerance
-            if not x[0] * (1 - 1e-9) <= value <= x[-1] * (1 + 1e-9):
-                raise UsageError(
-                    f"fix: {name}: tolerance {value:g} is outside its cost table's range "
-                    f"[{x[0]:g}, {x[-1]:g}]"
+        if not c.fixed and not c.options_holding(value):
+            options = c.options()
+            covering = [p for p in options
+                        if p.limits[0] * (1 - _FIX_RTOL) <= value <= p.limits[1] * (1 + _FIX_RTOL)]
+            if covering:  # inside a range, but only choose tables cover it and none lists it
+                listed = "; ".join(
+                    (f"{p.name}: " if c.processes else "")
+                    + ", ".join(f"{x:g}" for x in p.cost.points_tolerance)
+                    for p in covering
                 )
+                raise UsageError(f"fix: {name}: tolerance {value:g} is not one of the listed tolerances ({listed})")
+            if c.processes:
+                ranges = ", ".join(f"{p.name} [{p.limits[0]:g}, {p.limits[1]:g}]" for p in options)
+                where = f"the limits of every process ({ranges})"
+            else:
+                where = f"its limits [{options[0].limits[0]:g}, {options[0].limits[1]:g}]"
+            raise UsageError(f"fix: {name}: tolerance {value:g} is outside {where}")
+        out[name] = value
     return out
 
 
@@ -843,11 +909,11 @@ def prepare(case: Case, model: str, fix: Mapping[str, float] | None = None) -> A
     ------
     UsageError
         Unknown model, a ``fix`` entry naming no contributor or holding a tolerance
-        ≤ 0; :class:`NeedsDiscrete` (a UsageError) for a contributor that needs process
+        ≤ 0 or outside the contributor's limits; :class:`NeedsDiscrete` (a UsageError) for a contributor that needs process
         selection (the discrete solver's job).
     CaseError
         A ``table`` cost that is not convex and decreasing (named, with the reason).
     """
     if model not in MODELS:
-        raise UsageError(f"unknown model {model!r}{_close(model, MODELS)} (choose from {', '.join(MODELS)})")
-    return AllocationProblem(case, model, _check_fix(case, fix), check=True)
+        raise UsageError(f"unknown model {model!r}{did_you_mean(model, MODELS)} (choose from {', '.join(MODELS)})")
+    return AllocationProblem(case, model, check_fix_values(case, fix), check=True)

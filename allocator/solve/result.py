@@ -13,9 +13,11 @@ from dataclasses import asdict, dataclass
 
 import numpy as np
 
+from .. import status as _status
+
 __all__ = ["Allocation", "RequirementResult", "STATUSES"]
 
-STATUSES = ("optimal", "infeasible", "failed")
+STATUSES = _status.SOLVE  # see allocator.status
 
 
 @dataclass(frozen=True)
@@ -45,12 +47,15 @@ class RequirementResult:
     binding : str
         Which limit the optimum presses against: 'lower', 'upper', 'both' or ''.
     shadow_price : float
-        d(total cost)/d(limit) of the binding limit [currency/length]: negative for an
+        d(total cost)/d(limit) of the binding limit [currency/response]: negative for an
         upper limit (raising it saves money), positive for a lower one.
     shadow_lower, shadow_upper : float or None
         The same per limit (None when the limit is absent).
     shadow_ppm : float or None
         d(total cost)/d(fallout target) [currency/ppm] (statistical models).
+    units : str
+        Label of the response and its limits (the requirement's ``units``, else the
+        case's); shadow prices of the limits are in currency per this label.
     """
 
     name: str
@@ -69,6 +74,7 @@ class RequirementResult:
     shadow_lower: float | None
     shadow_upper: float | None
     shadow_ppm: float | None
+    units: str = ""
 
     def to_dict(self) -> dict:
         return asdict(self)
@@ -110,6 +116,11 @@ class Allocation:
         Relative gap between the returned cost and a lower bound on the optimum.
     held : dict
         Tolerances held by the ``fix`` argument.
+    units : str
+        The case's units label.
+    contributor_units : dict
+        Contributor name -> units label of its tolerances (its own, else the case's);
+        the constructor takes only the labels that differ from ``units``.
     """
 
     def __init__(
@@ -138,6 +149,7 @@ class Allocation:
         unit_cost_allocated=None,
         total_cost=None,
         bounds=None,
+        contributor_units=None,
     ):
         if status not in STATUSES:
             raise ValueError(f"unknown status {status!r}")
@@ -147,8 +159,10 @@ class Allocation:
         self.names = tuple(names)
         self._current = np.asarray(current, dtype=float)
         self._counts = np.asarray(counts, dtype=float)
-        self._lower = np.asarray(lower_bounds, dtype=float)
-        self._upper = np.asarray(upper_bounds, dtype=float)
+        # each free contributor's tolerance range [tightest, loosest] (NaN when held):
+        # the contract's ``limits``, the JSON's "tightest" and "loosest"
+        self._tightest = np.asarray(lower_bounds, dtype=float)
+        self._loosest = np.asarray(upper_bounds, dtype=float)
         self._unit_current = np.asarray(unit_cost_current, dtype=float)
         self.current_cost = float(current_cost)
         self.processes = dict(processes)
@@ -156,6 +170,7 @@ class Allocation:
         self.iterations = int(iterations)
         self.gap = gap
         self.units = units
+        self._own_units = dict(contributor_units or {})  # only labels that differ from ``units``
         self.currency = currency
         self.title = title
         self.held = dict(held)
@@ -170,13 +185,14 @@ class Allocation:
             None if unit_cost_allocated is None else np.asarray(unit_cost_allocated, dtype=float)
         )
         self.total_cost = None if total_cost is None else float(total_cost)
-        self._bounds = tuple(bounds) if bounds is not None else ("",) * len(self.names)
+        # 'tightest' | 'loosest' | 'fixed' | '' per contributor: the JSON's "bound"
+        self._bound_flags = tuple(bounds) if bounds is not None else ("",) * len(self.names)
 
     # ------------------------------------------------------------------ numbers
 
     @property
     def success(self) -> bool:
-        return self.status == "optimal"
+        return self.status == _status.OPTIMAL
 
     @property
     def savings(self) -> float | None:
@@ -199,6 +215,11 @@ class Allocation:
     def allocated_array(self):
         """Allocated tolerances as a numpy array in case order (None when infeasible)."""
         return None if self._allocated is None else self._allocated.copy()
+
+    @property
+    def contributor_units(self) -> dict:
+        """Contributor name -> units label of its tolerances."""
+        return {n: self._own_units.get(n, self.units) for n in self.names}
 
     # ------------------------------------------------------------------ pandas views
 
@@ -225,7 +246,7 @@ class Allocation:
 
     @property
     def active(self):
-        return self._series(list(self._bounds), "bound")
+        return self._series(list(self._bound_flags), "bound")
 
     # ------------------------------------------------------------------ plain views
 
@@ -240,28 +261,37 @@ class Allocation:
                     "count": int(self._counts[i]),
                     "current": float(self._current[i]),
                     "allocated": None if self._allocated is None else float(self._allocated[i]),
-                    "bound": self._bounds[i],
-                    "tightest": _finite(self._lower[i]),
-                    "loosest": _finite(self._upper[i]),
+                    "bound": self._bound_flags[i],
+                    "tightest": _finite(self._tightest[i]),
+                    "loosest": _finite(self._loosest[i]),
                     "unit_cost_current": _finite(self._unit_current[i]),
                     "unit_cost_allocated": (
                         None if self._unit_allocated is None else _finite(self._unit_allocated[i])
                     ),
+                    "units": self._own_units.get(name, self.units),
                 }
             )
         return out
 
     def to_frame(self):
-        """Per-contributor DataFrame: current, allocated, bound, unit costs, count, limits."""
+        """Per-contributor DataFrame (index ``contributor``): current, allocated, bound,
+        unit costs, count, limits."""
         import pandas as pd
 
         return pd.DataFrame(self.rows()).set_index("contributor")
 
     def requirements_frame(self):
-        """Per-requirement DataFrame: ranges, σ, fallout vs target, shadow prices."""
+        """Per-requirement DataFrame (index ``requirement``): ranges, σ, fallout vs target,
+        shadow prices."""
         import pandas as pd
 
-        return pd.DataFrame([r.to_dict() for r in self.requirements]).set_index("name")
+        return pd.DataFrame([r.to_dict() for r in self.requirements]).set_index("name").rename_axis("requirement")
+
+    def _repr_html_(self) -> str:
+        from ..display import result_html
+
+        cost = "" if self.total_cost is None else f", total cost {self.total_cost:.6g} {self.currency}".rstrip()
+        return result_html(f"Allocation {self.model}: {self.status}{cost}", self.to_frame(), self.message)
 
     def to_dict(self) -> dict:
         """JSON-ready dict; the contract keys are model, status, total_cost, tolerances."""

@@ -3,7 +3,8 @@
 Invented cases (random, fixed seeds) with 4-6 contributors of 2-4 options each: ``choose``
 tables, and processes with ``choose`` tables and their own cp. Every combination of options
 is enumerated with ``itertools.product`` and checked in plain numpy / scipy.stats against the
-contract's constraints (docs: /work/shared/CASE-FORMAT.md "The models"):
+contract's constraints (docs/methods.md "Worst case", "RSS", "Estimated mean shift"; count
+semantics in docs/case-file.md):
 
 - worst case: ``ȳ − Σ n|a|t ≥ L`` and ``ȳ + Σ n|a|t ≤ U``;
 - rss: ``Φ((L − ȳ)/σ) + 1 − Φ((U − ȳ)/σ) ≤ p`` with ``σ² = Σ n (a f t)²``;
@@ -209,7 +210,8 @@ def _process_cp(c, name):
 
 
 @pytest.mark.parametrize("model", ["worst-case", "rss", "mean-shift"])
-@pytest.mark.parametrize("seed", range(6))
+# seeds 2-4 draw the largest cases (seconds each with mean shift): CI runs them, the fast loop not
+@pytest.mark.parametrize("seed", [pytest.param(s, marks=pytest.mark.slow) if s in (2, 3, 4) else s for s in range(6)])
 def test_same_optimum_as_enumeration(model, seed):
     case = _random_case(seed, model)
     result, ok = _check_against_enumeration(case, model)

@@ -104,7 +104,7 @@ def _both_paths(case, model):
     exact = allocate(case, model)
     conic = CompiledAllocation(case, model).solve()
     assert exact.solver == "lagrange-dual"
-    assert conic.solver.startswith("clarabel")
+    assert not conic.solver.startswith("lagrange")  # the conic path, whichever solver tier answered
     assert exact.success and conic.success, (exact.message, conic.message)
     return exact, conic
 

@@ -1,18 +1,8 @@
-"""Cost-versus-tolerance curves: value, slope, inverse slope and convex-solver form.
+"""Value, slope, inverse slope, checks and convex-solver form of any cost curve.
 
-One family per published model, each a plain function of a :class:`~allocator.model.CostCurve`
-and the ± tolerance ``t`` [length]. Every family is convex and decreasing in ``t`` on
-``t > 0`` (tables: when :func:`table_is_convex_decreasing` holds), which is what makes the
-least-cost allocation a convex problem.
-
-==================== ================================ ==========================================
-curve                cost(t) [currency]               source
-==================== ================================ ==========================================
-``reciprocal``       ``a + b/t``                      Chase, Greenwood, Loosli & Hauglund (1990)
-``reciprocal-power`` ``a + b/t**k``                   Sutherland & Roth (1975); k = 2: Spotts (1973)
-``exponential``      ``a + b*exp(-c*t)``              Speckhart (1972)
-``table``            piecewise linear through points  measured shop data
-==================== ================================ ==========================================
+Each function looks the curve's family up in :mod:`allocator.costs.registry` and lets the
+family do the arithmetic; the functions here add the argument checks and messages that
+every family shares.
 
 cvxpy is imported lazily, inside the functions that build solver expressions.
 """
@@ -21,74 +11,27 @@ from __future__ import annotations
 
 import math
 from collections.abc import Sequence
+from typing import TYPE_CHECKING
 
 import numpy as np
 
-from .model import CURVES, CostCurve
+from .family import as_float_or_array as _as_float_or_array
+from .family import fmt as _fmt
+from .registry import CURVES, family, family_of
+from .table import table_problem
+
+if TYPE_CHECKING:
+    from .curve import CostCurve
 
 __all__ = [
     "cost_value",
     "cost_derivative",
     "inverse_derivative",
     "table_is_convex_decreasing",
-    "table_problem",
     "check_curve",
     "cvx_cost",
     "cvx_costs",
 ]
-
-# Relative slack for round-off: a solver may return a tolerance a hair outside a table's
-# range, and measured tables written with few digits should not fail convexity by 1e-15.
-_RTOL = 1e-9
-
-_BETWEEN = ("interpolate", "choose")
-
-
-def _fmt(x: float) -> str:
-    """Short number for messages (``0.02``, ``1e-05``, ``-1``)."""
-    return f"{float(x):g}"
-
-
-def _as_float_or_array(values: np.ndarray):
-    """Scalar in -> float out; array in -> array out."""
-    return float(values) if np.ndim(values) == 0 else values
-
-
-def _positive_tolerance(t) -> np.ndarray:
-    t = np.asarray(t, dtype=float)
-    if not np.all(t > 0):  # also catches NaN
-        bad = t[~(t > 0)] if t.ndim else t
-        raise ValueError(f"tolerance must be > 0 (got {_fmt(np.ravel(bad)[0])})")
-    return t
-
-
-def _table(curve: CostCurve) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Breakpoints, costs and segment slopes of a table curve."""
-    x = np.asarray(curve.points_tolerance, dtype=float)
-    y = np.asarray(curve.points_cost, dtype=float)
-    if x.size < 2 or x.size != y.size:
-        raise ValueError(check_curve(curve) or "table needs at least 2 points")
-    return x, y, np.diff(y) / np.diff(x)
-
-
-def _table_range_slack(x: np.ndarray) -> float:
-    return _RTOL * max(abs(x[-1]), x[-1] - x[0])
-
-
-def _table_inside(curve: CostCurve, t: np.ndarray, x: np.ndarray) -> np.ndarray:
-    """``t`` clipped onto the table range, or ValueError if it is really outside."""
-    slack = _table_range_slack(x)
-    outside = (t < x[0] - slack) | (t > x[-1] + slack) | np.isnan(t)
-    if np.any(outside):
-        bad = np.ravel(t[outside] if t.ndim else t)[0]
-        raise ValueError(
-            f"tolerance {_fmt(bad)} is outside the table's range [{_fmt(x[0])}, {_fmt(x[-1])}]"
-        )
-    return np.clip(t, x[0], x[-1])
-
-
-def _unknown_curve(curve: CostCurve) -> ValueError:
-    return ValueError(f"unknown cost curve {curve.curve!r} (expected one of {', '.join(CURVES)})")
 
 
 def cost_value(curve: CostCurve, t):
@@ -146,30 +89,7 @@ def cost_value(curve: CostCurve, t):
     >>> cost_value(CostCurve("table", points_tolerance=(0.01, 0.05), points_cost=(3.0, 1.0)), 0.03)
     2.0
     """
-    kind = curve.curve
-    if kind == "table":
-        x, y, _ = _table(curve)
-        t = _table_inside(curve, np.asarray(t, dtype=float), x)
-        if curve.between == "choose":
-            # only the listed tolerances exist: refuse to invent a cost between them
-            nearest = np.abs(t[..., None] - x).min(axis=-1)
-            if np.any(nearest > _table_range_slack(x)):
-                bad = np.ravel(t[nearest > _table_range_slack(x)] if t.ndim else t)[0]
-                raise ValueError(
-                    f"tolerance {_fmt(bad)} is not one of the listed tolerances "
-                    "(between = 'choose')"
-                )
-        return _as_float_or_array(np.interp(t, x, y))
-    t = _positive_tolerance(t)
-    if kind == "reciprocal":
-        value = curve.a + curve.b / t
-    elif kind == "reciprocal-power":
-        value = curve.a + curve.b * t ** (-curve.k)
-    elif kind == "exponential":
-        value = curve.a + curve.b * np.exp(-curve.c * t)
-    else:
-        raise _unknown_curve(curve)
-    return _as_float_or_array(value)
+    return curve.value(t)
 
 
 def cost_derivative(curve: CostCurve, t):
@@ -226,23 +146,7 @@ def cost_derivative(curve: CostCurve, t):
     >>> cost_derivative(table, [0.015, 0.02, 0.03]).round(6)
     array([-200., -200.,  -20.])
     """
-    kind = curve.curve
-    if kind == "table":
-        x, _, slopes = _table(curve)
-        t = _table_inside(curve, np.asarray(t, dtype=float), x)
-        # side="left" puts an interior breakpoint into the segment on its left
-        segment = np.clip(np.searchsorted(x, t, side="left") - 1, 0, slopes.size - 1)
-        return _as_float_or_array(slopes[segment])
-    t = _positive_tolerance(t)
-    if kind == "reciprocal":
-        slope = -curve.b / t**2
-    elif kind == "reciprocal-power":
-        slope = -curve.k * curve.b * t ** (-curve.k - 1.0)
-    elif kind == "exponential":
-        slope = -curve.b * curve.c * np.exp(-curve.c * t)
-    else:
-        raise _unknown_curve(curve)
-    return _as_float_or_array(slope)
+    return curve.derivative(t)
 
 
 def inverse_derivative(curve: CostCurve, slope, lo: float, hi: float):
@@ -319,96 +223,8 @@ def inverse_derivative(curve: CostCurve, slope, lo: float, hi: float):
     s = np.asarray(slope, dtype=float)
     if np.any(np.isnan(s)):
         raise ValueError("slope must not be NaN")
-    kind = curve.curve
-    if kind == "table":
-        problem = table_problem(curve)
-        if problem:
-            raise ValueError(f"table cost has no inverse slope: {problem}")
-        x, _, slopes = _table(curve)
-        # first breakpoint whose right-hand slope reaches s (last one if none does)
-        t = x[np.searchsorted(slopes, s, side="left")]
-    else:
-        # -s <= 0 means "never reached": +inf, which the clip turns into hi
-        neg = np.where(s < 0, -s, 0.0)
-        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-            if kind == "reciprocal":
-                t = np.sqrt(curve.b / neg)
-            elif kind == "reciprocal-power":
-                t = (curve.k * curve.b / neg) ** (1.0 / (curve.k + 1.0))
-            elif kind == "exponential":
-                t = np.log(curve.b * curve.c / neg) / curve.c
-            else:
-                raise _unknown_curve(curve)
+    t = family_of(curve).inverse_derivative_at(curve, s)
     return _as_float_or_array(np.clip(t, lo, hi))
-
-
-def table_problem(curve: CostCurve) -> str | None:
-    """Why a table cannot be used as a continuous convex cost, or None if it can.
-
-    Parameters
-    ----------
-    curve : CostCurve
-        A ``table`` curve (other families are convex and decreasing by construction and
-        give None).
-
-    Returns
-    -------
-    str or None
-        One line such as ``"cost rises between tolerance 0.02 and 0.05"`` or
-        ``"not convex at tolerance 0.05 (slope -20 then -40 ...)"``.
-
-    Notes
-    -----
-    A continuous least-cost allocation is a convex problem only if every cost is convex
-    and non-increasing in ``t``. For the piecewise-linear table through
-    :math:`(t_j, C_j)` this means
-
-    .. math::
-
-        C_{j+1} \\le C_j \\quad\\text{and}\\quad s_j \\le s_{j+1},\\qquad
-        s_j = \\frac{C_{j+1}-C_j}{t_{j+1}-t_j},
-
-    checked with a relative slack of 1e-9 (of the largest cost, resp. the largest
-    |slope|) so that round-off does not reject a straight line. A ``between = "choose"``
-    table needs neither property (it is handled as a discrete choice); call this only when
-    the table is to be used continuously.
-
-    References
-    ----------
-    .. [1] K. W. Chase, W. H. Greenwood, B. G. Loosli and L. F. Hauglund, "Least cost
-       tolerance allocation for mechanical assemblies with automated process selection",
-       Manufacturing Review 3(1):49-59, 1990.
-
-    Examples
-    --------
-    >>> from allocator.model import CostCurve
-    >>> table_problem(CostCurve("table", points_tolerance=(0.01, 0.02, 0.05),
-    ...                         points_cost=(5.0, 3.0, 3.5)))
-    'cost rises between tolerance 0.02 and 0.05'
-    >>> table_problem(CostCurve("table", points_tolerance=(0.01, 0.02, 0.05),
-    ...                         points_cost=(5.0, 3.0, 2.4))) is None
-    True
-    """
-    if curve.curve != "table":
-        return None
-    basic = check_curve(curve)
-    if basic:
-        return basic
-    x, y, slopes = _table(curve)
-    cost_slack = _RTOL * max(float(np.max(np.abs(y))), 1e-300)
-    rises = np.flatnonzero(np.diff(y) > cost_slack)
-    if rises.size:
-        j = rises[0]
-        return f"cost rises between tolerance {_fmt(x[j])} and {_fmt(x[j + 1])}"
-    slope_slack = _RTOL * max(float(np.max(np.abs(slopes))), 1e-300)
-    bends = np.flatnonzero(np.diff(slopes) < -slope_slack)
-    if bends.size:
-        j = bends[0]
-        return (
-            f"not convex at tolerance {_fmt(x[j + 1])} (slope {_fmt(slopes[j])} then "
-            f"{_fmt(slopes[j + 1])}: the cost must flatten as the tolerance grows)"
-        )
-    return None
 
 
 def table_is_convex_decreasing(curve: CostCurve) -> bool:
@@ -443,7 +259,7 @@ def table_is_convex_decreasing(curve: CostCurve) -> bool:
     ...                                      points_cost=(5.0, 4.5, 2.0)))
     False
     """
-    if curve.curve != "table":
+    if not family_of(curve).piecewise:
         raise ValueError(f"not a table curve: {curve.curve!r}")
     return table_problem(curve) is None
 
@@ -469,7 +285,10 @@ def check_curve(curve: CostCurve, limits: Sequence[float] | None = None) -> str 
     -----
     The contract is ``a >= 0``, ``b > 0``, ``c > 0`` (exponential), ``k > 0``
     (reciprocal-power), all finite; a table has at least 2 points, strictly increasing
-    tolerances > 0, costs >= 0 and ``between`` in {interpolate, choose}. Under it
+    tolerances > 0, costs >= 0 and ``between`` in {interpolate, choose}; an
+    ``interpolate`` table's cost never rises from one point to the next (1e-9 relative
+    slack), while a ``choose`` table may list a dominated entry (a looser tolerance that
+    costs more, which no least-cost choice takes). Under it
 
     .. math:: C(t) \\ge 0,\\quad C'(t) < 0,\\quad C''(t) > 0 \\quad (t > 0)
 
@@ -495,9 +314,8 @@ def check_curve(curve: CostCurve, limits: Sequence[float] | None = None) -> str 
     >>> check_curve(CostCurve("exponential", a=1.0, b=2.0, c=30.0), limits=(0.01, 0.1)) is None
     True
     """
-    kind = curve.curve
-    if kind not in CURVES:
-        return f"unknown cost curve {kind!r} (expected one of {', '.join(CURVES)})"
+    if curve.curve not in CURVES:
+        return f"unknown cost curve {curve.curve!r} (expected one of {', '.join(CURVES)})"
 
     if limits is not None:
         if len(limits) != 2:
@@ -505,69 +323,11 @@ def check_curve(curve: CostCurve, limits: Sequence[float] | None = None) -> str 
         lo, hi = (float(v) for v in limits)
         if not (math.isfinite(lo) and math.isfinite(hi) and 0 < lo <= hi):
             return f"limits must satisfy 0 < tightest <= loosest (got [{_fmt(lo)}, {_fmt(hi)}])"
-
-    if kind == "table":
-        return _check_table(curve, limits)
-
-    needed = {
-        "reciprocal": ("a", "b"),
-        "reciprocal-power": ("a", "b", "k"),
-        "exponential": ("a", "b", "c"),
-    }[kind]
-    for name in needed:
-        value = float(getattr(curve, name))
-        if not math.isfinite(value):
-            return f"{name} must be finite (got {_fmt(value)})"
-        if name == "a" and value < 0:
-            return f"a must be >= 0 (got {_fmt(value)})"
-        if name != "a" and value <= 0:
-            return f"{name} must be > 0 (got {_fmt(value)})"
-    return None
-
-
-def _check_table(curve: CostCurve, limits: Sequence[float] | None) -> str | None:
-    if curve.between not in _BETWEEN:
-        return f"between must be 'interpolate' or 'choose' (got {curve.between!r})"
-    x = np.asarray(curve.points_tolerance, dtype=float)
-    y = np.asarray(curve.points_cost, dtype=float)
-    if x.size != y.size:
-        return f"table has {x.size} tolerances but {y.size} costs"
-    if x.size < 2:
-        return f"table needs at least 2 points (got {x.size})"
-    if not (np.all(np.isfinite(x)) and np.all(np.isfinite(y))):
-        return "table values must be finite"
-    if np.any(x <= 0):
-        return f"table tolerances must be > 0 (got {_fmt(x[x <= 0][0])})"
-    steps = np.flatnonzero(np.diff(x) <= 0)
-    if steps.size:
-        j = steps[0]
-        return (
-            "table tolerances must be strictly increasing "
-            f"(got {_fmt(x[j])} then {_fmt(x[j + 1])})"
-        )
-    if np.any(y < 0):
-        return f"table costs must be >= 0 (got {_fmt(y[y < 0][0])})"
-    if limits is not None:
-        lo, hi = (float(v) for v in limits)
-        slack = _table_range_slack(x)
-        if lo < x[0] - slack or hi > x[-1] + slack:
-            return (
-                f"limits [{_fmt(lo)}, {_fmt(hi)}] reach outside the table's tolerances "
-                f"[{_fmt(x[0])}, {_fmt(x[-1])}]"
-            )
-    return None
+    return family_of(curve).check(curve, limits)
 
 
 # --------------------------------------------------------------------------- convex forms
 
-
-def _table_lines(curve: CostCurve) -> tuple[np.ndarray, np.ndarray]:
-    """Intercepts and slopes of a convex table's segment lines (cost = i + s·t)."""
-    problem = table_problem(curve)
-    if problem:
-        raise ValueError(f"table cost is not convex and decreasing: {problem}")
-    x, y, slopes = _table(curve)
-    return y[:-1] - slopes * x[:-1], slopes
 
 
 def _require_continuous(curve: CostCurve) -> None:
@@ -638,22 +398,11 @@ def cvx_cost(curve: CostCurve, t_var, count: float = 1.0):
     >>> round(float(expr.value), 9)
     1.76
     """
-    import cvxpy as cp
-
     _require_continuous(curve)
-    kind = curve.curve
+    fam = family_of(curve)
     n = float(count)
-    if kind == "reciprocal":
-        return n * curve.a + n * curve.b * cp.inv_pos(t_var)
-    if kind == "reciprocal-power":
-        return n * curve.a + n * curve.b * cp.power(t_var, -float(curve.k), approx=False)
-    if kind == "exponential":
-        return n * curve.a + n * curve.b * cp.exp(-float(curve.c) * t_var)
-    if kind == "table":
-        intercepts, slopes = _table_lines(curve)
-        lines = [n * i + (n * s) * t_var for i, s in zip(intercepts, slopes)]
-        return lines[0] if len(lines) == 1 else cp.maximum(*lines)
-    raise _unknown_curve(curve)
+    constant, term = fam.cvx([curve], t_var, np.array([n]))
+    return term if constant == 0.0 else constant + term
 
 
 def cvx_costs(curves: Sequence[CostCurve | None], t_vector, counts=None):
@@ -736,44 +485,15 @@ def cvx_costs(curves: Sequence[CostCurve | None], t_vector, counts=None):
         if curve is None:
             continue
         _require_continuous(curve)
-        if curve.curve == "reciprocal-power":
-            key = ("reciprocal-power", float(curve.k))
-        elif curve.curve in CURVES:
-            key = (curve.curve,)
-        else:
-            raise _unknown_curve(curve)
-        groups.setdefault(key, []).append(i)
+        groups.setdefault(family_of(curve).cvx_key(curve), []).append(i)
 
     constant = 0.0
     terms = []
     for key, members in groups.items():
         idx = np.asarray(members, dtype=int)
-        sub = [curves[i] for i in members]
-        w = n[idx]
-        t = t_vector[idx]
-        family = key[0]
-        if family == "table":
-            lines = [_table_lines(c) for c in sub]
-            width = max(len(s) for _, s in lines)
-            # pad by repeating the last line: the maximum is unchanged
-            icpt = np.array([np.pad(i, (0, width - len(i)), mode="edge") for i, _ in lines])
-            slope = np.array([np.pad(s, (0, width - len(s)), mode="edge") for _, s in lines])
-            cols = [
-                cp.Constant(w * icpt[:, j]) + cp.multiply(w * slope[:, j], t)
-                for j in range(width)
-            ]
-            terms.append(cp.sum(cols[0] if width == 1 else cp.maximum(*cols)))
-            continue
-        a = np.array([c.a for c in sub], dtype=float)
-        b = np.array([c.b for c in sub], dtype=float)
-        constant += float(w @ a)
-        if family == "reciprocal":
-            terms.append(cp.sum(cp.multiply(w * b, cp.inv_pos(t))))
-        elif family == "reciprocal-power":
-            terms.append(cp.sum(cp.multiply(w * b, cp.power(t, -key[1], approx=False))))
-        else:  # exponential
-            c = np.array([cv.c for cv in sub], dtype=float)
-            terms.append(cp.sum(cp.multiply(w * b, cp.exp(cp.multiply(-c, t)))))
+        part, term = family(key[0]).cvx([curves[i] for i in members], t_vector[idx], n[idx])
+        constant += part
+        terms.append(term)
     total = cp.Constant(constant)
     for term in terms:
         total = total + term
