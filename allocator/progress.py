@@ -35,11 +35,23 @@ class _Silent:
 class _Bar:
     """A tqdm bar on stderr that can be told of more work than first thought."""
 
-    def __init__(self, total: int, desc: str, unit: str, delay: float):
+    def __init__(self, total: int, desc: str, unit: str, delay: float, tick: float | None):
         from tqdm import tqdm
 
         self._bar = tqdm(total=total, desc=desc, unit=unit, file=sys.stderr, delay=delay,
                          leave=False, dynamic_ncols=True)
+        self._stop = None
+        if tick:
+            # steps of seconds to minutes: redraw every ``tick`` seconds so that the elapsed
+            # time keeps moving while one step runs (tqdm redraws only on updates)
+            import threading
+
+            self._stop = threading.Event()
+            threading.Thread(target=self._redraw, args=(tick,), daemon=True).start()
+
+    def _redraw(self, tick: float) -> None:
+        while not self._stop.wait(tick):
+            self._bar.refresh()
 
     @property
     def total(self) -> int:
@@ -63,6 +75,8 @@ class _Bar:
         self._bar.set_postfix_str(text, refresh=True)
 
     def close(self) -> None:
+        if self._stop is not None:
+            self._stop.set()
         self._bar.close()
 
 
@@ -82,8 +96,9 @@ def progress_bar(total: int, *, desc: str, unit: str = "point", enabled: bool = 
         False (or ``total`` ≤ 0) gives the silent stand-in.
     slow : bool
         Steps that may each take seconds (a mixed-integer point): the bar is drawn at once,
-        so that there is something to see before the first step ends. Otherwise it appears
-        only when the work has run for a second (no flicker for quick work).
+        so that there is something to see before the first step ends, and redrawn every
+        second so that its elapsed time moves during a long step. Otherwise it appears only
+        when the work has run for a second (no flicker for quick work).
 
     Returns
     -------
@@ -93,4 +108,4 @@ def progress_bar(total: int, *, desc: str, unit: str = "point", enabled: bool = 
     """
     if not enabled or total <= 0:
         return _Silent()
-    return _Bar(int(total), desc, unit, 0.0 if slow else 1.0)
+    return _Bar(int(total), desc, unit, 0.0 if slow else 1.0, 1.0 if slow else None)
