@@ -57,7 +57,7 @@ def cli():
     """Least-cost tolerance allocation for assembly stacks.
 
     Exit codes: 0 success, 1 a requirement cannot be met (or a verification
-    fails), 2 bad input or usage.
+    fails), 2 bad input or usage, 3 an internal error (a bug; please report it).
     """
 
 
