@@ -321,6 +321,28 @@ def applicable_mean_shift(problem: AllocationProblem) -> bool:
     )
 
 
+class _ShiftConstraint:
+    """The scaled residual ``F1 = (σ − g(δ)) / g`` of one requirement's mean-shift constraint."""
+
+    def __init__(self, nominal: float, lim):
+        self.nominal, self.lim = nominal, lim
+        # δ must stay inside the band: beyond it no σ meets the requirement
+        self.domain = min(
+            math.inf if lim.lower is None else nominal - lim.lower,
+            math.inf if lim.upper is None else lim.upper - nominal,
+        )
+
+    def residual(self, sigma: float, delta: float, curvature: bool = True):
+        """``(F1, (g, g′, g″))``; ``F1 = inf`` when ``δ`` leaves the domain."""
+        if delta >= self.domain:
+            return math.inf, (0.0, -math.inf, 0.0)
+        if curvature:
+            g = allowance_with_curvature(self.nominal, delta, self.lim)
+        else:
+            g = mean_shift_allowance(self.nominal, delta, self.lim)
+        return (sigma - g[0]) / g[0], g
+
+
 class MeanShiftExact:
     r"""Single-requirement mean-shift allocation without a conic solver.
 
@@ -431,25 +453,36 @@ class MeanShiftExact:
         """``(t, μ, lower bound)`` or None."""
         req = self.problem.requirements[0]
         if lim.lower is None and lim.upper is None or self.index.size == 0:
-            return self.hi.copy(), 0.0, self.held_cost + self._cost(self.hi)
-        domain = min(
-            math.inf if lim.lower is None else req.nominal - lim.lower,
-            math.inf if lim.upper is None else lim.upper - req.nominal,
-        )
-
-        def residual(t, curvature=True):
-            sigma, delta = self._state(t)
-            if delta >= domain:
-                return math.inf, sigma, delta, (0.0, -math.inf, 0.0)
-            if curvature:
-                g = allowance_with_curvature(req.nominal, delta, lim)
-            else:
-                g = mean_shift_allowance(req.nominal, delta, lim)
-            return (sigma - g[0]) / g[0], sigma, delta, g
-
-        if residual(self.hi, curvature=False)[0] <= 0:
-            return self.hi.copy(), 0.0, self.held_cost + self._cost(self.hi)
+            return self._loosest()
+        constraint = _ShiftConstraint(req.nominal, lim)
+        if self._residual(self.hi, constraint, curvature=False)[0] <= 0:
+            return self._loosest()
         # 1. β = 0: a point on the constraint (F1 decreases as α grows)
+        alpha = self._start(constraint)
+        if alpha is None:
+            return None
+        # 2. Newton on (F1, F2)
+        settled = self._newton(alpha, constraint)
+        if settled is None:
+            return None
+        alpha, beta, state = settled
+        t, res, sigma, delta, g, g1, g2, scale = state
+        if res[0] > 1e-9:
+            return None
+        return t, alpha * sigma, self._lower_bound(t, alpha, beta, sigma, g)
+
+    def _loosest(self):
+        """``(t, μ, bound)`` when the loosest tolerances meet the requirement: no trade-off."""
+        return self.hi.copy(), 0.0, self.held_cost + self._cost(self.hi)
+
+    def _residual(self, t, constraint: _ShiftConstraint, curvature: bool = True):
+        """``(F1, σ, δ, (g, g′, g″))`` at tolerances ``t`` (``g″`` only with ``curvature``)."""
+        sigma, delta = self._state(t)
+        f1, g = constraint.residual(sigma, delta, curvature)
+        return f1, sigma, delta, g
+
+    def _start(self, constraint: _ShiftConstraint) -> float | None:
+        """α with β = 0 near the root of the decreasing ``F1(α)``: a start for Newton, no more."""
         mid = np.sqrt(self.lo * self.hi)
         with np.errstate(divide="ignore", invalid="ignore"):
             per = -self.curves.derivative(mid) / (self.w * mid)
@@ -457,7 +490,7 @@ class MeanShiftExact:
         guess = math.log(float(np.median(per)) if per.size else 1.0)
 
         def f1(x):
-            return residual(self.tolerances(math.exp(x), 0.0), curvature=False)[0]
+            return self._residual(self.tolerances(math.exp(x), 0.0), constraint, curvature=False)[0]
 
         x_lo = x_hi = guess
         for _ in range(400):
@@ -470,71 +503,87 @@ class MeanShiftExact:
             if f1(x_lo) > 0:
                 break
             x_lo -= math.log(10.0)
-        _, x_b = _bracket_root(f1, x_lo, x_hi, xtol=1e-4)  # a start for Newton, no more
-        alpha, beta = math.exp(x_b), 0.0
+        _, x_b = _bracket_root(f1, x_lo, x_hi, xtol=1e-4)
+        return math.exp(x_b)
 
-        # 2. Newton on (F1, F2)
-        def system(alpha, beta):
-            t = self.tolerances(alpha, beta)
-            f1, sigma, delta, (g, g1, g2) = residual(t)
-            if not math.isfinite(f1):
-                return None
-            scale = alpha * sigma * abs(g1) + beta
-            f2 = (beta + alpha * sigma * g1) / scale if scale > 0 else 0.0
-            return t, np.array([f1, f2]), sigma, delta, g, g1, g2, scale
+    def _system(self, alpha: float, beta: float, constraint: _ShiftConstraint):
+        """``(t, [F1, F2], σ, δ, g, g′, g″, scale of F2)`` at ``(α, β)``, or None outside the domain."""
+        t = self.tolerances(alpha, beta)
+        f1, sigma, delta, (g, g1, g2) = self._residual(t, constraint)
+        if not math.isfinite(f1):
+            return None
+        scale = alpha * sigma * abs(g1) + beta
+        f2 = (beta + alpha * sigma * g1) / scale if scale > 0 else 0.0
+        return t, np.array([f1, f2]), sigma, delta, g, g1, g2, scale
 
-        state = system(alpha, beta)
+    def _newton(self, alpha: float, constraint: _ShiftConstraint):
+        """Damped Newton on ``(F1, F2)`` from ``(α, 0)``: ``(α, β, state)`` settled, or None."""
+        beta = 0.0
+        state = self._system(alpha, beta, constraint)
         if state is None:
             return None
         for _ in range(60):
-            t, res, sigma, delta, g, g1, g2, scale = state
+            res = state[1]
             if abs(res[0]) <= 1e-13 and abs(res[1]) <= 1e-11:
-                break
-            inside = (t > self.lo) & (t < self.hi) & ~self.curves.at_breakpoint(t)
-            denominator = self.curves.curvature(t) + alpha * self.w
-            with np.errstate(divide="ignore", invalid="ignore"):
-                dt_da = np.where(inside, -self.w * t / denominator, 0.0)
-                dt_db = np.where(inside, -self.v / denominator, 0.0)
-            jac = np.empty((2, 2))
-            for col, dt in enumerate((dt_da, dt_db)):
-                d_sigma = float(self.n @ (self.w * t * dt)) / sigma
-                d_delta = float(self.n @ (self.v * dt))
-                jac[0, col] = (d_sigma - g1 * d_delta) / g
-                d_n2 = alpha * g1 * d_sigma + alpha * sigma * g2 * d_delta
-                d_n2 += sigma * g1 if col == 0 else 1.0
-                jac[1, col] = d_n2 / scale if scale > 0 else 0.0
-            try:
-                step = np.linalg.solve(jac, -res)
-            except np.linalg.LinAlgError:
+                return alpha, beta, state
+            step = self._step(alpha, beta, state)
+            if step is None:
                 return None
-            if not np.all(np.isfinite(step)):
-                return None
-            base = float(np.linalg.norm(res))
-            lam = 1.0
-            for _ in range(40):
-                a_new = alpha + lam * step[0]
-                b_new = max(beta + lam * step[1], 0.0)
-                trial = system(a_new, b_new) if a_new > 0 else None
-                if trial is not None and float(np.linalg.norm(trial[1])) < base:
-                    break
-                lam *= 0.5
-            else:
+            moved = self._line_search(alpha, beta, step, float(np.linalg.norm(res)), constraint)
+            if moved is None:
                 if abs(res[0]) <= 1e-10 and abs(res[1]) <= 1e-8:
-                    break  # round-off floor: no step improves any more
+                    return alpha, beta, state  # round-off floor: no step improves any more
                 return None
-            alpha, beta, state = a_new, b_new, trial
-        else:
-            return None
+            alpha, beta, state = moved
+        return None
+
+    def _step(self, alpha: float, beta: float, state) -> np.ndarray | None:
+        """The Newton step in ``(α, β)`` with the exact Jacobian, or None if it is singular.
+
+        ``∂t/∂α`` and ``∂t/∂β`` come from implicit differentiation of the per-part
+        stationarity (zero for parts at a bound or on a table breakpoint).
+        """
         t, res, sigma, delta, g, g1, g2, scale = state
-        if res[0] > 1e-9:
+        inside = (t > self.lo) & (t < self.hi) & ~self.curves.at_breakpoint(t)
+        denominator = self.curves.curvature(t) + alpha * self.w
+        with np.errstate(divide="ignore", invalid="ignore"):
+            dt_da = np.where(inside, -self.w * t / denominator, 0.0)
+            dt_db = np.where(inside, -self.v / denominator, 0.0)
+        jac = np.empty((2, 2))
+        for col, dt in enumerate((dt_da, dt_db)):
+            d_sigma = float(self.n @ (self.w * t * dt)) / sigma
+            d_delta = float(self.n @ (self.v * dt))
+            jac[0, col] = (d_sigma - g1 * d_delta) / g
+            d_n2 = alpha * g1 * d_sigma + alpha * sigma * g2 * d_delta
+            d_n2 += sigma * g1 if col == 0 else 1.0
+            jac[1, col] = d_n2 / scale if scale > 0 else 0.0
+        try:
+            step = np.linalg.solve(jac, -res)
+        except np.linalg.LinAlgError:
             return None
+        if not np.all(np.isfinite(step)):
+            return None
+        return step
+
+    def _line_search(self, alpha: float, beta: float, step, base: float, constraint: _ShiftConstraint):
+        """Halve ``step`` until the residual norm drops below ``base``: ``(α, β, state)`` or None."""
+        lam = 1.0
+        for _ in range(40):
+            a_new = alpha + lam * step[0]
+            b_new = max(beta + lam * step[1], 0.0)
+            trial = self._system(a_new, b_new, constraint) if a_new > 0 else None
+            if trial is not None and float(np.linalg.norm(trial[1])) < base:
+                return a_new, b_new, trial
+            lam *= 0.5
+        return None
+
+    def _lower_bound(self, t, alpha: float, beta: float, sigma: float, g: float) -> float:
+        """Cost lower bound: the tangent ℓ of the convex ``h`` at ``t`` relaxes the constraint."""
         mu = alpha * sigma
-        # lower bound: the tangent ℓ of the convex h at t relaxes the constraint
         price = alpha * self.w * t + beta * self.v  # μ ∂h/∂t per part
         t_b = minimise_linear_price(self.curves, price, self.lo, self.hi)
-        bound = (self.held_cost + self._cost(t_b) + float(self.n @ (price * (t_b - t)))
-                 + mu * (sigma - g))
-        return t, mu, bound
+        return (self.held_cost + self._cost(t_b) + float(self.n @ (price * (t_b - t)))
+                + mu * (sigma - g))
 
     def _cost(self, t) -> float:
         return float(self.n @ self.curves.value(t))
