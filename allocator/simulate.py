@@ -32,6 +32,7 @@ from __future__ import annotations
 
 import math
 import sys
+from contextlib import contextmanager
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Mapping
@@ -661,6 +662,48 @@ def verify(
     .. [3] Greenwood, W. H. and Chase, K. W. (1987). A new tolerance analysis method for
        designers and manufacturers. Journal of Engineering for Industry 109(2), 112-116.
     """
+    samples, seed = _checked_run(samples, seed)
+    if not case.requirements:
+        raise CaseError("the case has no requirement to verify", field="requirement")
+    tolerances, processes, allocated_with = _unpack(tolerances, processes, allocated_with)
+    t = _tolerance_array(case, tolerances)
+    engine = _Engine(case, t, shift_means, samples, seed, chunk_size, processes)
+    tally = _Tally(engine, case, t, bins)
+    with _progress_bar(progress, samples) as bar:
+        for y, spans in engine.chunks():
+            tally.add(y, spans)
+            if bar is not None:
+                bar.update(len(y))
+    tally.finish()
+
+    failures = tally.below + tally.above + tally.undefined
+    ci_low, ci_high = clopper_pearson(failures, samples)
+    checks = [
+        _requirement_check(case, engine, t, tally, j, (float(ci_low[j]), float(ci_high[j])))
+        for j in range(len(engine.order))
+    ]
+    by_name = {c.name: c for c in checks}
+    checks = [by_name[r.name] for r in case.requirements]  # back to case order
+    status, message = _verdict(checks)
+    return Verification(
+        status=status,
+        success=status == "pass",
+        message=message,
+        seed=seed,
+        samples=samples,
+        block_size=engine.block,
+        chunk_size=engine.chunk_rows,
+        confidence=CONFIDENCE,
+        shift_means=shift_means,
+        tolerances=dict(zip(case.names, (float(x) for x in t))),
+        requirements=checks,
+        allocated_with=allocated_with,
+        assumption_note=_assumption_note(case, checks, allocated_with, shift_means),
+    )
+
+
+def _checked_run(samples, seed) -> tuple[int, int]:
+    """``(samples, seed)`` as checked integers; a ``None`` seed becomes fresh OS entropy."""
     samples = int(samples)
     if samples < 1:
         raise ValueError("samples must be at least 1")
@@ -670,123 +713,160 @@ def verify(
     seed = int(seed)
     if seed < 0:
         raise ValueError("seed must be a non-negative integer")
-    if not case.requirements:
-        raise CaseError("the case has no requirement to verify", field="requirement")
-    tolerances, processes, allocated_with = _unpack(tolerances, processes, allocated_with)
-    t = _tolerance_array(case, tolerances)
-    engine = _Engine(case, t, shift_means, samples, seed, chunk_size, processes)
-    order, centre, n_req = engine.order, engine.centre, len(engine.order)
-    lower = np.array([p.lower for p in order])
-    upper = np.array([p.upper for p in order])
+    return samples, seed
 
-    below = np.zeros(n_req, dtype=np.int64)
-    above = np.zeros(n_req, dtype=np.int64)
-    undefined = np.zeros(n_req, dtype=np.int64)
-    sum1 = np.zeros(n_req)
-    sum2 = np.zeros(n_req)
-    valid = np.zeros(n_req, dtype=np.int64)
-    hist = np.zeros((n_req, bins + 2), dtype=np.int64)  # [underflow, bins…, overflow]
-    hist_lo = hist_scale = None
 
+@contextmanager
+def _progress_bar(progress: bool, samples: int):
+    """A tqdm bar on stderr when asked for and stderr is a terminal, else None; closed on exit."""
     bar = None
     if progress and sys.stderr.isatty():
         from tqdm import tqdm
 
         bar = tqdm(total=samples, unit="assemblies", unit_scale=True, file=sys.stderr, leave=False)
     try:
-        for y, spans in engine.chunks():
-            finite = np.isfinite(y)
-            if hist_lo is None:  # bins fixed from block 0, the same for every chunking
-                ranges = np.array(
-                    [_histogram_range(p, t, case, y[: spans[0][2], j] + centre[j]) for j, p in enumerate(order)]
-                )
-                hist_lo = ranges[:, 0] - centre
-                hist_scale = bins / (ranges[:, 1] - ranges[:, 0])
-            below += np.count_nonzero(y < lower - centre, axis=0)
-            above += np.count_nonzero(y > upper - centre, axis=0)
-            undefined += np.count_nonzero(np.isnan(y), axis=0)
-            valid += np.count_nonzero(finite, axis=0)
-            clean = np.where(finite, y, 0.0)
-            for _, start, size in spans:  # float sums per block: independent of chunking
-                part = clean[start : start + size]
-                sum1 += part.sum(axis=0)
-                sum2 += (part * part).sum(axis=0)
-            # histogram of all requirements in one bincount; NaN goes to "underflow"
-            # and is removed again below
-            index = np.floor((np.nan_to_num(y, nan=-np.inf) - hist_lo) * hist_scale)
-            index = np.clip(index, -1, bins).astype(np.int64) + 1
-            index += np.arange(n_req) * (bins + 2)
-            hist += np.bincount(index.ravel(), minlength=n_req * (bins + 2)).reshape(n_req, bins + 2)
-            if bar is not None:
-                bar.update(len(y))
+        yield bar
     finally:
         if bar is not None:
             bar.close()
-    hist[:, 0] -= undefined
 
-    failures = below + above + undefined
-    ci_low, ci_high = clopper_pearson(failures, samples)
-    checks = []
-    for j, plan in enumerate(order):
-        req = plan.requirement
-        fallout_ppm = fraction_to_ppm(failures[j] / samples)
-        lo_ppm, hi_ppm = fraction_to_ppm(float(ci_low[j])), fraction_to_ppm(float(ci_high[j]))
-        predicted = plan.mean_shift_ppm if plan.mean_shift_ppm is not None else plan.rss_ppm
-        if plan.linear:
-            dist = linear_sum_distribution(
-                plan.a,
-                case.counts,
-                t,
-                [c.distribution for c in case.contributors],
-                engine.sigma_factors,
-                mean=plan.shifted_mean,
-            )
-            conv_below, conv_above = dist.fallout(req.lower, req.upper)
-            convolution_ppm = fraction_to_ppm(conv_below + conv_above)
-            note = "exact distribution of the linear chain by numerical convolution"
-        else:
-            convolution_ppm = None
-            note = "not available: the expression is nonlinear (convolution needs a linear chain)"
+
+class _Tally:
+    """Running counts, sums and histograms of the simulated responses, chunk by chunk.
+
+    Columns follow ``engine.order``; responses are relative to ``engine.centre``. Sums are
+    taken per stream block so that they do not depend on the chunking.
+    """
+
+    def __init__(self, engine: _Engine, case, t: np.ndarray, bins: int):
+        self.engine, self.case, self.t, self.bins = engine, case, t, bins
+        n_req = len(engine.order)
+        self.lower = np.array([p.lower for p in engine.order])
+        self.upper = np.array([p.upper for p in engine.order])
+        self.below = np.zeros(n_req, dtype=np.int64)
+        self.above = np.zeros(n_req, dtype=np.int64)
+        self.undefined = np.zeros(n_req, dtype=np.int64)
+        self.sum1 = np.zeros(n_req)
+        self.sum2 = np.zeros(n_req)
+        self.valid = np.zeros(n_req, dtype=np.int64)
+        self.hist = np.zeros((n_req, bins + 2), dtype=np.int64)  # [underflow, bins…, overflow]
+        self.hist_lo = self.hist_scale = None
+
+    def add(self, y: np.ndarray, spans) -> None:
+        """Count one chunk of responses ``y`` (rows: assemblies; ``spans``: its stream blocks)."""
+        centre, bins, n_req = self.engine.centre, self.bins, len(self.engine.order)
+        finite = np.isfinite(y)
+        if self.hist_lo is None:
+            self._fix_bins(y[: spans[0][2]])
+        self.below += np.count_nonzero(y < self.lower - centre, axis=0)
+        self.above += np.count_nonzero(y > self.upper - centre, axis=0)
+        self.undefined += np.count_nonzero(np.isnan(y), axis=0)
+        self.valid += np.count_nonzero(finite, axis=0)
+        clean = np.where(finite, y, 0.0)
+        for _, start, size in spans:  # float sums per block: independent of chunking
+            part = clean[start : start + size]
+            self.sum1 += part.sum(axis=0)
+            self.sum2 += (part * part).sum(axis=0)
+        # histogram of all requirements in one bincount; NaN goes to "underflow"
+        # and is removed again in finish()
+        index = np.floor((np.nan_to_num(y, nan=-np.inf) - self.hist_lo) * self.hist_scale)
+        index = np.clip(index, -1, bins).astype(np.int64) + 1
+        index += np.arange(n_req) * (bins + 2)
+        self.hist += np.bincount(index.ravel(), minlength=n_req * (bins + 2)).reshape(n_req, bins + 2)
+
+    def _fix_bins(self, first_block: np.ndarray) -> None:
+        """Histogram ranges from block 0 alone, so that bins are the same for every chunking."""
+        centre = self.engine.centre
+        ranges = np.array(
+            [
+                _histogram_range(p, self.t, self.case, first_block[:, j] + centre[j])
+                for j, p in enumerate(self.engine.order)
+            ]
+        )
+        self.hist_lo = ranges[:, 0] - centre
+        self.hist_scale = self.bins / (ranges[:, 1] - ranges[:, 0])
+
+    def finish(self) -> None:
+        """Take the undefined (NaN) responses back out of the underflow counts."""
+        self.hist[:, 0] -= self.undefined
+
+    def moments(self, j: int) -> tuple[float, float]:
+        """Sample mean and variance of requirement column ``j`` over its finite responses."""
+        centre, sum1, sum2, valid = self.engine.centre, self.sum1, self.sum2, self.valid
         mean = centre[j] + sum1[j] / valid[j] if valid[j] else math.nan
         var = (sum2[j] - sum1[j] ** 2 / valid[j]) / (valid[j] - 1) if valid[j] > 1 else math.nan
-        edges = np.linspace(hist_lo[j] + centre[j], hist_lo[j] + centre[j] + bins / hist_scale[j], bins + 1)
-        checks.append(
-            RequirementCheck(
-                name=req.name,
-                linear=plan.linear,
-                lower=req.lower,
-                upper=req.upper,
-                samples=samples,
-                below=int(below[j]),
-                above=int(above[j]),
-                undefined=int(undefined[j]),
-                fallout_ppm=float(fallout_ppm),
-                ci_low_ppm=lo_ppm,
-                ci_high_ppm=hi_ppm,
-                target_ppm=float(req.target_ppm),
-                rss_ppm=float(plan.rss_ppm),
-                mean_shift_ppm=None if plan.mean_shift_ppm is None else float(plan.mean_shift_ppm),
-                predicted_ppm=float(predicted),
-                convolution_ppm=None if convolution_ppm is None else float(convolution_ppm),
-                convolution_note=note,
-                nominal=float(plan.nominal),
-                sigma=float(plan.sigma),
-                shift_side=int(plan.side),
-                shifted_mean=float(plan.shifted_mean),
-                mean=float(mean),
-                std=float(math.sqrt(max(var, 0.0))) if math.isfinite(var) else math.nan,
-                model_disagrees=bool(predicted < lo_ppm or predicted > hi_ppm),
-                status="fail" if lo_ppm > req.target_ppm else "pass",
-                decided=bool(lo_ppm > req.target_ppm or hi_ppm <= req.target_ppm),
-                histogram_edges=edges,
-                histogram_counts=hist[j, 1:-1].copy(),
-                underflow=int(hist[j, 0]),
-                overflow=int(hist[j, -1]),
-                units=case.requirement_units(req.name),
-            )
-        )
-    by_name = {c.name: c for c in checks}
-    checks = [by_name[r.name] for r in case.requirements]  # back to case order
+        return mean, var
+
+    def edges(self, j: int) -> np.ndarray:
+        """Histogram bin edges of requirement column ``j`` [response]."""
+        lo = self.hist_lo[j] + self.engine.centre[j]
+        return np.linspace(lo, lo + self.bins / self.hist_scale[j], self.bins + 1)
+
+
+def _convolution(case, engine: _Engine, t: np.ndarray, plan: _Plan) -> tuple[float | None, str]:
+    """Exact fallout [ppm] of a linear chain by numerical convolution (None if nonlinear), and a note."""
+    if not plan.linear:
+        return None, "not available: the expression is nonlinear (convolution needs a linear chain)"
+    dist = linear_sum_distribution(
+        plan.a,
+        case.counts,
+        t,
+        [c.distribution for c in case.contributors],
+        engine.sigma_factors,
+        mean=plan.shifted_mean,
+    )
+    conv_below, conv_above = dist.fallout(plan.requirement.lower, plan.requirement.upper)
+    return fraction_to_ppm(conv_below + conv_above), "exact distribution of the linear chain by numerical convolution"
+
+
+def _requirement_check(case, engine: _Engine, t: np.ndarray, tally: _Tally, j: int, ci) -> RequirementCheck:
+    """The result for requirement column ``j``: counts, interval ``ci`` (fractions), predictions, histogram."""
+    plan = engine.order[j]
+    req, samples = plan.requirement, engine.samples
+    failures = tally.below[j] + tally.above[j] + tally.undefined[j]
+    fallout_ppm = fraction_to_ppm(failures / samples)
+    lo_ppm, hi_ppm = fraction_to_ppm(ci[0]), fraction_to_ppm(ci[1])
+    predicted = plan.mean_shift_ppm if plan.mean_shift_ppm is not None else plan.rss_ppm
+    convolution_ppm, note = _convolution(case, engine, t, plan)
+    mean, var = tally.moments(j)
+    hist = tally.hist
+    return RequirementCheck(
+        name=req.name,
+        linear=plan.linear,
+        lower=req.lower,
+        upper=req.upper,
+        samples=samples,
+        below=int(tally.below[j]),
+        above=int(tally.above[j]),
+        undefined=int(tally.undefined[j]),
+        fallout_ppm=float(fallout_ppm),
+        ci_low_ppm=lo_ppm,
+        ci_high_ppm=hi_ppm,
+        target_ppm=float(req.target_ppm),
+        rss_ppm=float(plan.rss_ppm),
+        mean_shift_ppm=None if plan.mean_shift_ppm is None else float(plan.mean_shift_ppm),
+        predicted_ppm=float(predicted),
+        convolution_ppm=None if convolution_ppm is None else float(convolution_ppm),
+        convolution_note=note,
+        nominal=float(plan.nominal),
+        sigma=float(plan.sigma),
+        shift_side=int(plan.side),
+        shifted_mean=float(plan.shifted_mean),
+        mean=float(mean),
+        std=float(math.sqrt(max(var, 0.0))) if math.isfinite(var) else math.nan,
+        model_disagrees=bool(predicted < lo_ppm or predicted > hi_ppm),
+        status="fail" if lo_ppm > req.target_ppm else "pass",
+        decided=bool(lo_ppm > req.target_ppm or hi_ppm <= req.target_ppm),
+        histogram_edges=tally.edges(j),
+        histogram_counts=hist[j, 1:-1].copy(),
+        underflow=int(hist[j, 0]),
+        overflow=int(hist[j, -1]),
+        units=case.requirement_units(req.name),
+    )
+
+
+def _verdict(checks) -> tuple[str, str]:
+    """``(status, message)`` of the whole verification from its requirement checks."""
     failed = [c.name for c in checks if c.status == "fail"]
     undecided = [c.name for c in checks if not c.decided]
     if failed:
@@ -801,23 +881,7 @@ def verify(
     disagree = [c.name for c in checks if c.model_disagrees]
     if disagree:
         message += f"; analytic prediction outside the interval for {', '.join(disagree)}"
-    status = "fail" if failed else "pass"
-    note = _assumption_note(case, checks, allocated_with, shift_means)
-    return Verification(
-        status=status,
-        success=status == "pass",
-        message=message,
-        seed=seed,
-        samples=samples,
-        block_size=engine.block,
-        chunk_size=engine.chunk_rows,
-        confidence=CONFIDENCE,
-        shift_means=shift_means,
-        tolerances=dict(zip(case.names, (float(x) for x in t))),
-        requirements=checks,
-        allocated_with=allocated_with,
-        assumption_note=note,
-    )
+    return ("fail" if failed else "pass"), message
 
 
 def _assumption_note(case, checks, allocated_with: str | None, shift_means: bool) -> str:

@@ -321,6 +321,28 @@ def applicable_mean_shift(problem: AllocationProblem) -> bool:
     )
 
 
+class _ShiftConstraint:
+    """The scaled residual ``F1 = (σ − g(δ)) / g`` of one requirement's mean-shift constraint."""
+
+    def __init__(self, nominal: float, lim):
+        self.nominal, self.lim = nominal, lim
+        # δ must stay inside the band: beyond it no σ meets the requirement
+        self.domain = min(
+            math.inf if lim.lower is None else nominal - lim.lower,
+            math.inf if lim.upper is None else lim.upper - nominal,
+        )
+
+    def residual(self, sigma: float, delta: float, curvature: bool = True):
+        """``(F1, (g, g′, g″))``; ``F1 = inf`` when ``δ`` leaves the domain."""
+        if delta >= self.domain:
+            return math.inf, (0.0, -math.inf, 0.0)
+        if curvature:
+            g = allowance_with_curvature(self.nominal, delta, self.lim)
+        else:
+            g = mean_shift_allowance(self.nominal, delta, self.lim)
+        return (sigma - g[0]) / g[0], g
+
+
 class MeanShiftExact:
     r"""Single-requirement mean-shift allocation without a conic solver.
 
@@ -431,25 +453,36 @@ class MeanShiftExact:
         """``(t, μ, lower bound)`` or None."""
         req = self.problem.requirements[0]
         if lim.lower is None and lim.upper is None or self.index.size == 0:
-            return self.hi.copy(), 0.0, self.held_cost + self._cost(self.hi)
-        domain = min(
-            math.inf if lim.lower is None else req.nominal - lim.lower,
-            math.inf if lim.upper is None else lim.upper - req.nominal,
-        )
-
-        def residual(t, curvature=True):
-            sigma, delta = self._state(t)
-            if delta >= domain:
-                return math.inf, sigma, delta, (0.0, -math.inf, 0.0)
-            if curvature:
-                g = allowance_with_curvature(req.nominal, delta, lim)
-            else:
-                g = mean_shift_allowance(req.nominal, delta, lim)
-            return (sigma - g[0]) / g[0], sigma, delta, g
-
-        if residual(self.hi, curvature=False)[0] <= 0:
-            return self.hi.copy(), 0.0, self.held_cost + self._cost(self.hi)
+            return self._loosest()
+        constraint = _ShiftConstraint(req.nominal, lim)
+        if self._residual(self.hi, constraint, curvature=False)[0] <= 0:
+            return self._loosest()
         # 1. β = 0: a point on the constraint (F1 decreases as α grows)
+        alpha = self._start(constraint)
+        if alpha is None:
+            return None
+        # 2. Newton on (F1, F2)
+        settled = self._newton(alpha, constraint)
+        if settled is None:
+            return None
+        alpha, beta, state = settled
+        t, res, sigma, delta, g, g1, g2, scale = state
+        if res[0] > 1e-9:
+            return None
+        return t, alpha * sigma, self._lower_bound(t, alpha, beta, sigma, g)
+
+    def _loosest(self):
+        """``(t, μ, bound)`` when the loosest tolerances meet the requirement: no trade-off."""
+        return self.hi.copy(), 0.0, self.held_cost + self._cost(self.hi)
+
+    def _residual(self, t, constraint: _ShiftConstraint, curvature: bool = True):
+        """``(F1, σ, δ, (g, g′, g″))`` at tolerances ``t`` (``g″`` only with ``curvature``)."""
+        sigma, delta = self._state(t)
+        f1, g = constraint.residual(sigma, delta, curvature)
+        return f1, sigma, delta, g
+
+    def _start(self, constraint: _ShiftConstraint) -> float | None:
+        """α with β = 0 near the root of the decreasing ``F1(α)``: a start for Newton, no more."""
         mid = np.sqrt(self.lo * self.hi)
         with np.errstate(divide="ignore", invalid="ignore"):
             per = -self.curves.derivative(mid) / (self.w * mid)
@@ -457,7 +490,7 @@ class MeanShiftExact:
         guess = math.log(float(np.median(per)) if per.size else 1.0)
 
         def f1(x):
-            return residual(self.tolerances(math.exp(x), 0.0), curvature=False)[0]
+            return self._residual(self.tolerances(math.exp(x), 0.0), constraint, curvature=False)[0]
 
         x_lo = x_hi = guess
         for _ in range(400):
@@ -470,71 +503,87 @@ class MeanShiftExact:
             if f1(x_lo) > 0:
                 break
             x_lo -= math.log(10.0)
-        _, x_b = _bracket_root(f1, x_lo, x_hi, xtol=1e-4)  # a start for Newton, no more
-        alpha, beta = math.exp(x_b), 0.0
+        _, x_b = _bracket_root(f1, x_lo, x_hi, xtol=1e-4)
+        return math.exp(x_b)
 
-        # 2. Newton on (F1, F2)
-        def system(alpha, beta):
-            t = self.tolerances(alpha, beta)
-            f1, sigma, delta, (g, g1, g2) = residual(t)
-            if not math.isfinite(f1):
-                return None
-            scale = alpha * sigma * abs(g1) + beta
-            f2 = (beta + alpha * sigma * g1) / scale if scale > 0 else 0.0
-            return t, np.array([f1, f2]), sigma, delta, g, g1, g2, scale
+    def _system(self, alpha: float, beta: float, constraint: _ShiftConstraint):
+        """``(t, [F1, F2], σ, δ, g, g′, g″, scale of F2)`` at ``(α, β)``, or None outside the domain."""
+        t = self.tolerances(alpha, beta)
+        f1, sigma, delta, (g, g1, g2) = self._residual(t, constraint)
+        if not math.isfinite(f1):
+            return None
+        scale = alpha * sigma * abs(g1) + beta
+        f2 = (beta + alpha * sigma * g1) / scale if scale > 0 else 0.0
+        return t, np.array([f1, f2]), sigma, delta, g, g1, g2, scale
 
-        state = system(alpha, beta)
+    def _newton(self, alpha: float, constraint: _ShiftConstraint):
+        """Damped Newton on ``(F1, F2)`` from ``(α, 0)``: ``(α, β, state)`` settled, or None."""
+        beta = 0.0
+        state = self._system(alpha, beta, constraint)
         if state is None:
             return None
         for _ in range(60):
-            t, res, sigma, delta, g, g1, g2, scale = state
+            res = state[1]
             if abs(res[0]) <= 1e-13 and abs(res[1]) <= 1e-11:
-                break
-            inside = (t > self.lo) & (t < self.hi) & ~self.curves.at_breakpoint(t)
-            denominator = self.curves.curvature(t) + alpha * self.w
-            with np.errstate(divide="ignore", invalid="ignore"):
-                dt_da = np.where(inside, -self.w * t / denominator, 0.0)
-                dt_db = np.where(inside, -self.v / denominator, 0.0)
-            jac = np.empty((2, 2))
-            for col, dt in enumerate((dt_da, dt_db)):
-                d_sigma = float(self.n @ (self.w * t * dt)) / sigma
-                d_delta = float(self.n @ (self.v * dt))
-                jac[0, col] = (d_sigma - g1 * d_delta) / g
-                d_n2 = alpha * g1 * d_sigma + alpha * sigma * g2 * d_delta
-                d_n2 += sigma * g1 if col == 0 else 1.0
-                jac[1, col] = d_n2 / scale if scale > 0 else 0.0
-            try:
-                step = np.linalg.solve(jac, -res)
-            except np.linalg.LinAlgError:
+                return alpha, beta, state
+            step = self._step(alpha, beta, state)
+            if step is None:
                 return None
-            if not np.all(np.isfinite(step)):
-                return None
-            base = float(np.linalg.norm(res))
-            lam = 1.0
-            for _ in range(40):
-                a_new = alpha + lam * step[0]
-                b_new = max(beta + lam * step[1], 0.0)
-                trial = system(a_new, b_new) if a_new > 0 else None
-                if trial is not None and float(np.linalg.norm(trial[1])) < base:
-                    break
-                lam *= 0.5
-            else:
+            moved = self._line_search(alpha, beta, step, float(np.linalg.norm(res)), constraint)
+            if moved is None:
                 if abs(res[0]) <= 1e-10 and abs(res[1]) <= 1e-8:
-                    break  # round-off floor: no step improves any more
+                    return alpha, beta, state  # round-off floor: no step improves any more
                 return None
-            alpha, beta, state = a_new, b_new, trial
-        else:
-            return None
+            alpha, beta, state = moved
+        return None
+
+    def _step(self, alpha: float, beta: float, state) -> np.ndarray | None:
+        """The Newton step in ``(α, β)`` with the exact Jacobian, or None if it is singular.
+
+        ``∂t/∂α`` and ``∂t/∂β`` come from implicit differentiation of the per-part
+        stationarity (zero for parts at a bound or on a table breakpoint).
+        """
         t, res, sigma, delta, g, g1, g2, scale = state
-        if res[0] > 1e-9:
+        inside = (t > self.lo) & (t < self.hi) & ~self.curves.at_breakpoint(t)
+        denominator = self.curves.curvature(t) + alpha * self.w
+        with np.errstate(divide="ignore", invalid="ignore"):
+            dt_da = np.where(inside, -self.w * t / denominator, 0.0)
+            dt_db = np.where(inside, -self.v / denominator, 0.0)
+        jac = np.empty((2, 2))
+        for col, dt in enumerate((dt_da, dt_db)):
+            d_sigma = float(self.n @ (self.w * t * dt)) / sigma
+            d_delta = float(self.n @ (self.v * dt))
+            jac[0, col] = (d_sigma - g1 * d_delta) / g
+            d_n2 = alpha * g1 * d_sigma + alpha * sigma * g2 * d_delta
+            d_n2 += sigma * g1 if col == 0 else 1.0
+            jac[1, col] = d_n2 / scale if scale > 0 else 0.0
+        try:
+            step = np.linalg.solve(jac, -res)
+        except np.linalg.LinAlgError:
             return None
+        if not np.all(np.isfinite(step)):
+            return None
+        return step
+
+    def _line_search(self, alpha: float, beta: float, step, base: float, constraint: _ShiftConstraint):
+        """Halve ``step`` until the residual norm drops below ``base``: ``(α, β, state)`` or None."""
+        lam = 1.0
+        for _ in range(40):
+            a_new = alpha + lam * step[0]
+            b_new = max(beta + lam * step[1], 0.0)
+            trial = self._system(a_new, b_new, constraint) if a_new > 0 else None
+            if trial is not None and float(np.linalg.norm(trial[1])) < base:
+                return a_new, b_new, trial
+            lam *= 0.5
+        return None
+
+    def _lower_bound(self, t, alpha: float, beta: float, sigma: float, g: float) -> float:
+        """Cost lower bound: the tangent ℓ of the convex ``h`` at ``t`` relaxes the constraint."""
         mu = alpha * sigma
-        # lower bound: the tangent ℓ of the convex h at t relaxes the constraint
         price = alpha * self.w * t + beta * self.v  # μ ∂h/∂t per part
         t_b = minimise_linear_price(self.curves, price, self.lo, self.hi)
-        bound = (self.held_cost + self._cost(t_b) + float(self.n @ (price * (t_b - t)))
-                 + mu * (sigma - g))
-        return t, mu, bound
+        return (self.held_cost + self._cost(t_b) + float(self.n @ (price * (t_b - t)))
+                + mu * (sigma - g))
 
     def _cost(self, t) -> float:
         return float(self.n @ self.curves.value(t))
@@ -586,27 +635,12 @@ def refine(problem: AllocationProblem, limits, multipliers, t_start, *, max_step
     rhs, allowance = dual.rhs(limits)
     finite = np.isfinite(rhs)
     rhs0 = np.where(finite, rhs, 0.0)
-    y = np.asarray(multipliers, dtype=float)
-    if dual.squared:
-        lam = np.where(y > 0, y / (2.0 * np.where(allowance > 0, allowance, np.inf)), 0.0)
-    else:
-        lam = np.clip(y, 0.0, None)
+    lam = _start_multipliers(dual, multipliers, allowance)
     scale = np.where(finite & (rhs != 0), np.abs(rhs), 1.0)
     t_free = np.asarray(t_start, dtype=float)[problem.free]
     at_limit = finite & (dual.spreads(t_free) >= rhs - 1e-6 * scale)
     if candidates is None:
-        # the duals say which requirements bind (with costs over many decades a binding
-        # one can sit 1e-5 inside its limit while its dual is 1e-7 of the largest);
-        # interior-point duals of slack ones are not exactly 0, so the candidate sets
-        # are tried from the clearest positive duals to every positive one, then the
-        # requirements at their limit. Any success is a KKT point, hence the optimum.
-        share = np.where(finite, lam * np.abs(rhs0), 0.0)
-        top = float(share.max()) if share.size else 0.0
-        tried = []
-        for mask in (at_limit | (share > 1e-9 * top), at_limit | (lam > 0), at_limit):
-            if any(np.array_equal(mask, m) for m in tried):
-                continue
-            tried.append(mask)
+        for mask in _candidate_sets(lam, rhs0, finite, at_limit):
             out = refine(problem, limits, multipliers, t_start, max_steps=max_steps, candidates=mask)
             if out is not None:
                 return out
@@ -614,7 +648,147 @@ def refine(problem: AllocationProblem, limits, multipliers, t_start, *, max_step
     active = np.asarray(candidates, dtype=bool) & finite
     lam = np.where(active, lam, 0.0)
 
-    inner = []  # worst case: table contributors inside a piece (unknowns)
+    newton = _DualNewton(dual, rhs0, scale, t_free)
+    t, v, r, r_inner = newton.residual(lam)
+    for _ in range(max_steps):
+        active |= finite & (r > 1e-12)  # requirements the iterate violates join
+        idx = np.flatnonzero(active)
+        res = np.concatenate([r[idx], r_inner])
+        if np.all(np.abs(res) <= 1e-12) and np.all(r[~active] <= 1e-12):
+            break
+        step = _newton_step(newton.jacobian(t, v, idx), res)
+        if step is None:
+            # the candidates cannot all bind (their multipliers move too few free
+            # tolerances): the slack one with the smallest multiplier leaves
+            if not _drop_weakest(active, lam, r, scale):
+                return None
+            t, v, r, r_inner = newton.residual(lam)
+            continue
+        found = newton.line_search(lam, idx, step, float(np.linalg.norm(res)))
+        if found is None:
+            return None  # leaves its piece: the slope condition no longer holds
+        lam, (t, v, r, r_inner) = found
+        # a multiplier driven to zero with its constraint slack leaves the active set
+        active &= ~((lam <= 0) & (r < 0))
+    else:
+        return None
+    if np.any(r > 1e-9) or np.any(lam < 0):
+        return None
+    return problem.full(t), dual.multipliers(lam, allowance), dual.bound(lam, rhs0)
+
+
+def _start_multipliers(dual: SeparableDual, multipliers, allowance) -> np.ndarray:
+    """The dual's λ from the conic solver's ``−∂cost/∂(allowance)`` (the squared models' λ is per spread²)."""
+    y = np.asarray(multipliers, dtype=float)
+    if dual.squared:
+        return np.where(y > 0, y / (2.0 * np.where(allowance > 0, allowance, np.inf)), 0.0)
+    return np.clip(y, 0.0, None)
+
+
+def _candidate_sets(lam, rhs0, finite, at_limit) -> list[np.ndarray]:
+    """Masks of the requirements to try as binding, most likely first, without repeats.
+
+    The duals say which requirements bind (with costs over many decades a binding one can
+    sit 1e-5 inside its limit while its dual is 1e-7 of the largest); interior-point duals
+    of slack ones are not exactly 0, so the sets go from the clearest positive duals to
+    every positive one, then the requirements at their limit. Any success is a KKT point,
+    hence the optimum.
+    """
+    share = np.where(finite, lam * np.abs(rhs0), 0.0)
+    top = float(share.max()) if share.size else 0.0
+    tried = []
+    for mask in (at_limit | (share > 1e-9 * top), at_limit | (lam > 0), at_limit):
+        if not any(np.array_equal(mask, m) for m in tried):
+            tried.append(mask)
+    return tried
+
+
+def _newton_step(jac: np.ndarray, res: np.ndarray) -> np.ndarray | None:
+    """The Newton step ``−J⁻¹ r``, or None when ``J`` is (numerically) singular."""
+    try:
+        singular = np.linalg.cond(jac) > 1e13
+        step = None if singular else np.linalg.solve(jac, -res)
+    except np.linalg.LinAlgError:
+        step = None
+    if step is None or not np.all(np.isfinite(step)):
+        return None
+    return step
+
+
+def _drop_weakest(active: np.ndarray, lam: np.ndarray, r: np.ndarray, scale: np.ndarray) -> bool:
+    """Take the slack active requirement with the smallest multiplier out (in place); False if none is slack."""
+    slack = active & (r < 0)
+    if not slack.any():
+        return False
+    drop = int(np.argmin(np.where(slack, lam * scale, np.inf)))
+    active[drop] = False
+    lam[drop] = 0.0
+    return True
+
+
+class _DualNewton:
+    """Residuals, Jacobian and line search of :func:`refine`'s Newton system.
+
+    Unknowns: the multipliers of the active requirements and, under worst case, the
+    tolerances of table contributors strictly inside a piece (``inner``); equations: the
+    active spreads at their limits and the pieces' slope conditions.
+    """
+
+    def __init__(self, dual: SeparableDual, rhs0: np.ndarray, scale: np.ndarray, t_free: np.ndarray):
+        self.dual, self.rhs0, self.scale = dual, rhs0, scale
+        self.inner, self.piece_slope, self.piece_lo, self.piece_hi = _table_pieces(dual, t_free)
+        self.slope_scale = np.maximum(np.abs(self.piece_slope), 1e-300)
+
+    def residual(self, lam):
+        """``(t, v, r, r_inner)``: tolerances at ``lam``, scaled spread and slope-condition residuals."""
+        dual = self.dual
+        v = dual.combined(lam)
+        t = dual.tolerances(v)
+        r = (dual.spreads(t) - self.rhs0) / self.scale
+        return t, v, r, (v[self.inner] + self.piece_slope) / self.slope_scale
+
+    def jacobian(self, t, v, idx) -> np.ndarray:
+        """Jacobian of ``(r[idx], r_inner)`` in ``(λ[idx], t[inner])``."""
+        dual, inner, scale = self.dual, self.inner, self.scale
+        size = idx.size + inner.size
+        jac = np.zeros((size, size))
+        jac[: idx.size, : idx.size] = dual.jacobian(t, v)[np.ix_(idx, idx)] / scale[idx, None]
+        jac[: idx.size, idx.size :] = dual.coef[np.ix_(idx, inner)] / scale[idx, None]
+        jac[idx.size :, : idx.size] = dual.weight[np.ix_(idx, inner)].T / self.slope_scale[:, None]
+        return jac
+
+    def line_search(self, lam, idx, step, base: float):
+        """Backtrack along ``step`` until the residual norm drops below ``base``.
+
+        Returns ``(λ, residual(λ))`` (with ``dual.pinned`` moved), or None when an inner
+        table tolerance would leave its piece.
+        """
+        dual, inner = self.dual, self.inner
+        pinned = dual.pinned.copy()
+        alpha = 1.0
+        for _ in range(40):
+            trial = lam.copy()
+            trial[idx] = np.maximum(lam[idx] + alpha * step[: idx.size], 0.0)
+            moved = pinned[inner] + alpha * step[idx.size :]
+            if np.any(moved < self.piece_lo) or np.any(moved > self.piece_hi):
+                return None
+            dual.pinned[inner] = moved
+            state = self.residual(trial)
+            new = float(np.linalg.norm(np.concatenate([state[2][idx], state[3]])))
+            if new < base or alpha < 1e-6:
+                break
+            alpha *= 0.5
+        return trial, state
+
+
+def _table_pieces(dual: SeparableDual, t_free: np.ndarray):
+    """Worst case: pin table contributors (in ``dual.pinned``) and list those inside a piece.
+
+    A table contributor the conic answer puts on a listed tolerance (within 1e-6) stays
+    there; one strictly inside a piece becomes an unknown. Returns ``(inner, slope, lo,
+    hi)``: their indices, the pieces' slopes [cost/length] and the bounds they must stay in.
+    """
+    inner = []
     piece_slope, piece_lo, piece_hi = [], [], []
     if not dual.squared:
         for j in dual.curves.tables:
@@ -630,68 +804,7 @@ def refine(problem: AllocationProblem, limits, multipliers, t_start, *, max_step
             piece_lo.append(max(x[k], dual.lo[j]))
             piece_hi.append(min(x[k + 1], dual.hi[j]))
             dual.pinned[j] = t_free[j]
-    inner = np.array(inner, dtype=int)
-    piece_slope = np.array(piece_slope, dtype=float)
-    slope_scale = np.maximum(np.abs(piece_slope), 1e-300)
-
-    def residual(lam):
-        v = dual.combined(lam)
-        t = dual.tolerances(v)
-        r = (dual.spreads(t) - rhs0) / scale
-        return t, v, r, (v[inner] + piece_slope) / slope_scale
-
-    t, v, r, r_inner = residual(lam)
-    for _ in range(max_steps):
-        active |= finite & (r > 1e-12)  # requirements the iterate violates join
-        idx = np.flatnonzero(active)
-        res = np.concatenate([r[idx], r_inner])
-        if np.all(np.abs(res) <= 1e-12) and np.all(r[~active] <= 1e-12):
-            break
-        size = idx.size + inner.size
-        jac = np.zeros((size, size))
-        jac[: idx.size, : idx.size] = dual.jacobian(t, v)[np.ix_(idx, idx)] / scale[idx, None]
-        jac[: idx.size, idx.size :] = dual.coef[np.ix_(idx, inner)] / scale[idx, None]
-        jac[idx.size :, : idx.size] = dual.weight[np.ix_(idx, inner)].T / slope_scale[:, None]
-        try:
-            singular = np.linalg.cond(jac) > 1e13
-            step = None if singular else np.linalg.solve(jac, -res)
-        except np.linalg.LinAlgError:
-            step = None
-        if step is None or not np.all(np.isfinite(step)):
-            # the candidates cannot all bind (their multipliers move too few free
-            # tolerances): the slack one with the smallest multiplier leaves
-            slack = active & (r < 0)
-            if not slack.any():
-                return None
-            drop = int(np.argmin(np.where(slack, lam * scale, np.inf)))
-            active[drop] = False
-            lam[drop] = 0.0
-            t, v, r, r_inner = residual(lam)
-            continue
-        base = float(np.linalg.norm(res))
-        pinned = dual.pinned.copy()
-        alpha = 1.0
-        for _ in range(40):
-            trial = lam.copy()
-            trial[idx] = np.maximum(lam[idx] + alpha * step[: idx.size], 0.0)
-            moved = pinned[inner] + alpha * step[idx.size :]
-            if np.any(moved < piece_lo) or np.any(moved > piece_hi):
-                return None  # leaves its piece: the slope condition no longer holds
-            dual.pinned[inner] = moved
-            t_new, v_new, r_new, ri_new = residual(trial)
-            new = float(np.linalg.norm(np.concatenate([r_new[idx], ri_new])))
-            if new < base or alpha < 1e-6:
-                break
-            alpha *= 0.5
-        lam = trial
-        t, v, r, r_inner = t_new, v_new, r_new, ri_new
-        # a multiplier driven to zero with its constraint slack leaves the active set
-        active &= ~((lam <= 0) & (r < 0))
-    else:
-        return None
-    if np.any(r > 1e-9) or np.any(lam < 0):
-        return None
-    return problem.full(t), dual.multipliers(lam, allowance), dual.bound(lam, rhs0)
+    return np.array(inner, dtype=int), np.array(piece_slope, dtype=float), piece_lo, piece_hi
 
 
 def _bracket_root(f, a: float, b: float, *, xtol: float = 1e-13, maxiter: int = 300):
