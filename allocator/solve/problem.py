@@ -112,12 +112,24 @@ class CurveSet:
         return out
 
     def _each(self, method: str, t, *extra, fill: float = 0.0, dtype=float) -> np.ndarray:
-        """``family.method(params, t[idx], extra[idx]...)`` per group, ``fill`` elsewhere."""
+        """``family.method(params, t[..., idx], extra[..., idx]...)`` per group, ``fill`` elsewhere.
+
+        ``t`` is one value per part, shape (parts,), or one row per point, shape
+        (points, parts) (a sweep's many right-hand sides at once); ``extra`` arrays are
+        (parts,) or of ``t``'s shape. Formula families take the rows in one call; a
+        table's formulas take one point at a time.
+        """
         t = np.asarray(t, dtype=float)
-        out = np.full(self.size, fill, dtype=dtype)
+        out = np.full(t.shape[:-1] + (self.size,), fill, dtype=dtype)
         for fam, idx, params in self.groups:
-            args = [None if e is None else np.asarray(e)[idx] for e in extra]
-            out[idx] = getattr(fam, method)(params, t[idx], *args)
+            args = [None if e is None else np.asarray(e)[..., idx] for e in extra]
+            call = getattr(fam, method)
+            if t.ndim == 1 or not fam.piecewise:
+                out[..., idx] = call(params, t[..., idx], *args)
+                continue
+            for row in range(t.shape[0]):
+                rows = [None if a is None else (a[row] if a.ndim == 2 else a) for a in args]
+                out[row, idx] = call(params, t[row, idx], *rows)
         return out
 
     def value(self, t) -> np.ndarray:
