@@ -34,13 +34,15 @@ from __future__ import annotations
 
 import math
 import time
+import warnings
 from dataclasses import dataclass
 from typing import Callable, NamedTuple
 
 import numpy as np
 
-from .errors import UsageError
+from .errors import UsageError, did_you_mean
 from .model import MODELS, Case
+from .ppm import PER_MILLION
 from .progress import progress_bar
 
 __all__ = ["Frontier", "frontier", "LimitSweep", "VARY", "MAX_POINTS", "automatic_range"]
@@ -52,13 +54,6 @@ AUTO_FALLOUT_RANGE = (0.1, 10000.0)  # ppm: the span shown when nothing else is 
 STATUSES = ("optimal", "partial", "infeasible", "failed")
 
 
-def _did_you_mean(name, options) -> str:
-    import difflib
-
-    close = difflib.get_close_matches(str(name), list(options), n=1, cutoff=0.6)
-    return f" (did you mean '{close[0]}'?)" if close else ""
-
-
 def _g(x) -> str:
     return f"{x:.4g}"
 
@@ -66,9 +61,13 @@ def _g(x) -> str:
 # --------------------------------------------------------------------------- result
 
 
-@dataclass
+@dataclass(frozen=True, eq=False)
 class Frontier:
     """Least cost per model at each value of one requirement's limit or fallout target.
+
+    Built complete by :func:`frontier` and not changed afterwards. In a notebook it shows
+    as a table: one row per value, a cost column per model and a saving column per
+    statistical model (:meth:`to_wide`).
 
     Attributes
     ----------
@@ -131,8 +130,13 @@ class Frontier:
     notes: tuple
     elapsed: float
     solves: int
-    status: str = "optimal"
-    message: str = ""
+    status: str
+    message: str
+
+    def __post_init__(self):
+        values = np.array(self.values, dtype=float)
+        values.setflags(write=False)  # frozen like the rest
+        object.__setattr__(self, "values", values)
 
     @property
     def success(self) -> bool:
@@ -224,6 +228,12 @@ class Frontier:
                 for p, r in zip(self.points, self.rows())
             ],
         }
+
+    def _repr_html_(self) -> str:
+        from .display import result_html
+
+        heading = f"Frontier of '{self.requirement}' against its {self.vary}: {self.status}"
+        return result_html(heading, self.to_wide(), self.message)
 
     def __repr__(self) -> str:
         span = f"[{_g(self.values[0])}, {_g(self.values[-1])}]" if len(self.values) else "[]"
@@ -413,7 +423,7 @@ def _resolve_requirement(case: Case, requirement):
     if requirement is None:
         requirement = case.frontier.requirement or names[0]
     if requirement not in names:
-        raise UsageError(f"unknown requirement '{requirement}'{_did_you_mean(requirement, names)}"
+        raise UsageError(f"unknown requirement '{requirement}'{did_you_mean(requirement, names)}"
                          f" (the case has: {', '.join(names)})")
     return case.requirement(requirement)
 
@@ -427,7 +437,7 @@ def _resolve_vary(case: Case, req, vary):
             notes.append(f"requirement '{req.name}' has no {vary} limit: its {other} limit is swept")
             vary = other
     if vary not in VARY:
-        raise UsageError(f"vary must be one of {', '.join(VARY)} (got {vary!r}){_did_you_mean(vary, VARY)}")
+        raise UsageError(f"vary must be one of {', '.join(VARY)} (got {vary!r}){did_you_mean(vary, VARY)}")
     if vary in ("lower", "upper") and getattr(req, vary) is None:
         raise UsageError(f"requirement '{req.name}' has no {vary} limit to vary")
     return vary, notes
@@ -440,7 +450,7 @@ def _resolve_models(case: Case, models):
         models = (models,)
     for m in models:
         if m not in MODELS:
-            raise UsageError(f"unknown model {m!r}{_did_you_mean(m, MODELS)} (choose from {', '.join(MODELS)})")
+            raise UsageError(f"unknown model {m!r}{did_you_mean(m, MODELS)} (choose from {', '.join(MODELS)})")
     return tuple(m for m in MODELS if m in set(models))
 
 
@@ -471,8 +481,8 @@ def _check_values(values, req, vary) -> np.ndarray:
 
 def _check_span(first: float, last: float, req, vary, *, what="range") -> None:
     if vary == "fallout_ppm":
-        if not (first > 0 and last < 1e6):
-            raise UsageError(f"{what}: fallout_ppm values must be > 0 and < 1000000 "
+        if not (first > 0 and last < PER_MILLION):
+            raise UsageError(f"{what}: fallout_ppm values must be > 0 and < {PER_MILLION:.0f} "
                              f"(got {_g(first)} .. {_g(last)})")
     elif vary == "upper" and req.lower is not None and first <= req.lower:
         raise UsageError(f"{what}: upper values must stay above the lower limit {_g(req.lower)} "
@@ -578,13 +588,15 @@ def automatic_range(case: Case, requirement: str, vary: str, sweeps) -> tuple[tu
 
 def frontier(
     case: Case,
+    *,
     requirement: str | None = None,
     vary: str | None = None,
     values=None,
-    range=None,  # noqa: A002 - the contract's name for the sweep span
+    span=None,
     points: int | None = None,
     models=None,
     progress: bool = False,
+    **renamed,
 ) -> Frontier:
     """Least cost per model against one requirement's limit or fallout target.
 
@@ -596,10 +608,12 @@ def frontier(
     vary : {'lower', 'upper', 'fallout_ppm'}, optional
         Default: ``[frontier].vary`` ('upper'; 'lower' when the requirement has no upper).
     values : sequence of float, optional
-        The values to solve at (sorted; overrides ``range`` and ``points``).
-    range : (float, float), optional
-        ``(from, to)``, from < to. Default: ``[frontier].range`` when it belongs to the
-        same requirement and quantity, else :func:`automatic_range`.
+        The values to solve at (sorted; overrides ``span`` and ``points``).
+    span : (float, float), optional
+        ``(from, to)``, from < to [length or response] or [ppm]: the range swept (the
+        command line's ``--range``). Default: ``[frontier].range`` when it belongs to the
+        same requirement and quantity, else :func:`automatic_range`. ``range=`` is the
+        deprecated old name of this argument (a DeprecationWarning).
     points : int, optional
         2 .. 2000; default ``[frontier].points`` (25). Evenly spaced for limits,
         geometrically for fallout_ppm.
@@ -650,7 +664,7 @@ def frontier(
     if points is None:
         points = case.frontier.points
     points = _check_points(points)
-    span = range
+    span = _renamed_span(span, renamed)
     sweeps = [LimitSweep(case, m, req.name, vary) for m in models]
 
     if values is not None:
@@ -724,6 +738,20 @@ def frontier(
         status=status,
         message=message,
     )
+
+
+def _renamed_span(span, renamed: dict):
+    """``span``, or the deprecated ``range=`` keyword (with a DeprecationWarning)."""
+    unknown = sorted(set(renamed) - {"range"})
+    if unknown:
+        raise TypeError(f"frontier() got an unexpected keyword argument {unknown[0]!r}")
+    if "range" not in renamed:
+        return span
+    warnings.warn("frontier(range=...) is deprecated; write frontier(span=...)", DeprecationWarning,
+                  stacklevel=3)
+    if span is not None:
+        raise UsageError("give span or its deprecated name range, not both")
+    return renamed["range"]
 
 
 def _summary(values, models, statuses, messages, vary):

@@ -400,7 +400,7 @@ def _small_case(**kw):
 
 def test_result_frame_points_and_flat_worst_case_under_fallout():
     case = _small_case()
-    front = frontier(case, vary="fallout_ppm", range=(1.0, 10000.0), points=5)
+    front = frontier(case, vary="fallout_ppm", span=(1.0, 10000.0), points=5)
     frame = front.to_frame()
     assert list(frame.columns[:4]) == ["value", "model", "total_cost", "status"]
     assert len(frame) == 10 and set(frame["model"]) == {"worst-case", "rss"}
@@ -472,17 +472,45 @@ def test_defaults_come_from_the_frontier_table():
     [
         ({"requirement": "gpa"}, "did you mean 'gap'"),
         ({"vary": "uper"}, "did you mean 'upper'"),
-        ({"range": (0.3, 0.2)}, "increasing"),
+        ({"span": (0.3, 0.2)}, "increasing"),
         ({"points": 1}, "2 to 2000"),
         ({"points": 2001}, "2 to 2000"),
-        ({"vary": "fallout_ppm", "range": (0.0, 10.0)}, "> 0"),
-        ({"vary": "upper", "range": (0.0, 0.3)}, "above the lower limit"),
+        ({"vary": "fallout_ppm", "span": (0.0, 10.0)}, "> 0"),
+        ({"vary": "upper", "span": (0.0, 0.3)}, "above the lower limit"),
         ({"models": ("rs",)}, "unknown model 'rs' \\(did you mean 'rss'\\?\\)"),
     ],
 )
 def test_bad_arguments(kwargs, fragment):
     with pytest.raises(UsageError, match=fragment):
         frontier(_small_case(), **kwargs)
+
+
+def test_span_is_keyword_only_and_range_its_deprecated_name():
+    case = _small_case()
+    front = frontier(case, vary="upper", span=(0.3, 0.4), points=3)
+    assert list(front.values) == pytest.approx([0.3, 0.35, 0.4]) and front.range_source == "argument"
+    with pytest.warns(DeprecationWarning, match="span"):
+        old = frontier(case, vary="upper", range=(0.3, 0.4), points=3)
+    assert old.costs == front.costs
+    with pytest.warns(DeprecationWarning), pytest.raises(UsageError, match="not both"):
+        frontier(case, vary="upper", span=(0.3, 0.4), range=(0.3, 0.4), points=3)
+    with pytest.raises(TypeError):
+        frontier(case, "gap", "upper")  # options are keyword-only
+    with pytest.raises(TypeError, match="spam"):
+        frontier(case, spam=1)
+
+
+def test_frontier_is_frozen_and_shows_as_a_table():
+    import dataclasses
+
+    front = frontier(_small_case(), vary="upper", values=[0.3, 0.4])
+    with pytest.raises(dataclasses.FrozenInstanceError):
+        front.status = "failed"
+    with pytest.raises(ValueError):  # read-only values
+        front.values[0] = 1.0
+    page = front._repr_html_()
+    assert "<table" in page and "worst-case" in page and "rss saving" in page
+    assert front.status in page and "gap" in page
 
 
 @pytest.mark.parametrize(
