@@ -390,30 +390,31 @@ class ExactAllocation:
         """
         a, b, fa, fb = (np.array(x, dtype=float) for x in (a, b, fa, fb))
         which = np.asarray(which)
-        side = np.zeros(a.size, dtype=int)
+        side = np.zeros(a.size)  # -1: the last step moved a, +1: it moved b
         width = b - a
         moving = np.ones(a.size, dtype=bool)
         for i in range(maxiter):
-            moving &= ~((b - a <= xtol * (1.0 + np.abs(a))) | (fb == 0.0))
+            moving &= (b - a > xtol * (1.0 + np.abs(a))) & (fb != 0.0)
             if not moving.any():
                 break
             k = slice(None) if moving.all() else np.flatnonzero(moving)
             ak, bk, fak, fbk = a[k], b[k], fa[k], fb[k]
-            halve = (fak == fbk) | ((bk - ak > 0.5 * width[k]) if i % 2 == 0 and i > 0 else False)
-            step = np.where(halve, 1.0, fbk - fak)  # no division by 0 where it halves
-            x = np.where(halve, 0.5 * (ak + bk), bk - fbk * (bk - ak) / step)
+            gap = bk - ak
+            halve = fak == fbk
             if i % 2 == 0:
-                width[k] = bk - ak
-            outside = ~((ak < x) & (x < bk))
-            x[outside] = 0.5 * (ak[outside] + bk[outside])
+                if i > 0:
+                    halve |= gap > 0.5 * width[k]
+                width[k] = gap
+            x = bk - fbk * gap / np.where(halve, 1.0, fbk - fak)  # no division by 0 where it halves
+            x = np.where(halve | ~((ak < x) & (x < bk)), 0.5 * (ak + bk), x)
             fx = f(x, which[k])
             above = fx > 0
             before = side[k]
             a[k] = np.where(above, x, ak)
-            fa[k] = np.where(above, fx, np.where(before == 1, 0.5 * fak, fak))
             b[k] = np.where(above, bk, x)
-            fb[k] = np.where(above, np.where(before == -1, 0.5 * fbk, fbk), fx)
-            side[k] = np.where(above, -1, 1)
+            fa[k] = np.where(above, fx, fak * np.where(before == 1.0, 0.5, 1.0))
+            fb[k] = np.where(above, fbk * np.where(before == -1.0, 0.5, 1.0), fx)
+            side[k] = np.where(above, -1.0, 1.0)
         return a, b
 
     def _mix(self, t_a, t_b, rhs):
