@@ -16,11 +16,13 @@ Work is reused across points; nothing is rebuilt or recompiled per point:
   re-checked and its lower bound proven to the same gap as a single allocation;
 - the value of the case's own limit, when it is on the grid, is not solved twice;
 - where the exact 1-D Lagrange dual applies (one requirement; worst case, rss, or mean
-  shift without free mean shifts; formula cost curves), the whole sweep is solved at once:
-  the closed-form tolerances ``t(λ)`` are evaluated on a (points × contributors) array and
-  all roots in ``log λ`` are found by one vectorised bisection (:class:`BatchedDual`). Every
-  point is then re-checked against the requirement in plain numpy, exactly as a single
-  allocation is; a point that fails the check is solved again by the model's solver;
+  shift without free mean shifts; formula or convex table cost curves), the whole sweep
+  is one call of the same solver core a single allocation uses, with one right-hand side
+  per point (:meth:`allocator.solve.exact.ExactAllocation.roots`): the minimisers
+  ``t(λ)`` are evaluated on a (points × contributors) array and all roots in ``log λ``
+  are found in lock step. Every point is then re-checked against the requirement in plain
+  numpy, exactly as a single allocation is; a point that fails the check is solved again
+  by the model's solver;
 - under worst case the fallout target plays no part, so a fallout sweep solves worst case
   once and says that its cost is flat.
 
@@ -32,30 +34,24 @@ from __future__ import annotations
 
 import math
 import time
+import warnings
 from dataclasses import dataclass
 from typing import Callable, NamedTuple
 
 import numpy as np
 
-from .errors import UsageError
+from .errors import UsageError, did_you_mean
 from .model import MODELS, Case
+from .ppm import PER_MILLION
 from .progress import progress_bar
 
-__all__ = ["Frontier", "frontier", "LimitSweep", "BatchedDual", "VARY", "MAX_POINTS", "automatic_range"]
+__all__ = ["Frontier", "frontier", "LimitSweep", "VARY", "MAX_POINTS", "automatic_range"]
 
 VARY = ("lower", "upper", "fallout_ppm")
 MAX_POINTS = 2000
 MIN_POINTS = 2
 AUTO_FALLOUT_RANGE = (0.1, 10000.0)  # ppm: the span shown when nothing else is said
-VERIFY_RTOL = 1e-9  # re-check tolerance when the solver package does not name its own
 STATUSES = ("optimal", "partial", "infeasible", "failed")
-
-
-def _did_you_mean(name, options) -> str:
-    import difflib
-
-    close = difflib.get_close_matches(str(name), list(options), n=1, cutoff=0.6)
-    return f" (did you mean '{close[0]}'?)" if close else ""
 
 
 def _g(x) -> str:
@@ -65,9 +61,13 @@ def _g(x) -> str:
 # --------------------------------------------------------------------------- result
 
 
-@dataclass
+@dataclass(frozen=True, eq=False)
 class Frontier:
     """Least cost per model at each value of one requirement's limit or fallout target.
+
+    Built complete by :func:`frontier` and not changed afterwards. In a notebook it shows
+    as a table: one row per value, a cost column per model and a saving column per
+    statistical model (:meth:`to_wide`).
 
     Attributes
     ----------
@@ -130,8 +130,13 @@ class Frontier:
     notes: tuple
     elapsed: float
     solves: int
-    status: str = "optimal"
-    message: str = ""
+    status: str
+    message: str
+
+    def __post_init__(self):
+        values = np.array(self.values, dtype=float)
+        values.setflags(write=False)  # frozen like the rest
+        object.__setattr__(self, "values", values)
 
     @property
     def success(self) -> bool:
@@ -224,6 +229,12 @@ class Frontier:
             ],
         }
 
+    def _repr_html_(self) -> str:
+        from .display import result_html
+
+        heading = f"Frontier of '{self.requirement}' against its {self.vary}: {self.status}"
+        return result_html(heading, self.to_wide(), self.message)
+
     def __repr__(self) -> str:
         span = f"[{_g(self.values[0])}, {_g(self.values[-1])}]" if len(self.values) else "[]"
         return (
@@ -233,171 +244,14 @@ class Frontier:
         )
 
 
-# --------------------------------------------------------------------------- batched dual
-
-
-class BatchedDual:
-    """The exact 1-D Lagrange dual solved for many right-hand sides at once.
-
-    For one separable requirement, ``min Σ n_i C_i(t_i)`` subject to
-    ``Σ n_i w_i t_i^m ≤ S`` (worst case: ``w = |a|``, ``m = 1``; rss: ``w = a² f²``,
-    ``m = 2``) has, for a multiplier λ, the per-contributor minimisers (clipped to the
-    contributor's limits)
-
-    - ``a + b/t^k``:  ``t = (k b / (m λ w))^(1/(k+m))``;
-    - ``a + b e^(−ct)``:  ``t = ln(b c / (λ w)) / c`` (m = 1) or
-      ``t = W₀(b c² / (2 λ w)) / c`` (m = 2, Lambert W),
-
-    and the optimum makes the constraint active (Chase, Greenwood, Loosli & Hauglund
-    1990). ``spread(t(λ))`` is non-increasing in λ, so one bisection in ``log λ`` over a
-    (points × contributors) array finds every point's root together.
-
-    Parameters
-    ----------
-    problem : allocator.solve.problem.AllocationProblem
-        One requirement, a separable model, formula cost curves (see :meth:`usable`).
-
-    References
-    ----------
-    .. [1] Chase, K. W., Greenwood, W. H., Loosli, B. G. and Hauglund, L. F. (1990).
-       Least cost tolerance allocation for mechanical assemblies with automated process
-       selection. Manufacturing Review 3(1), 49-59.
-    """
-
-    def __init__(self, problem):
-        from .solve.problem import CurveSet
-
-        p = problem
-        self.problem = p
-        free = p.free
-        self.index = np.flatnonzero(free)
-        req = p.requirements[0]
-        self.requirement = req
-        self.squared = p.model != "worst-case"
-        self.m = 2.0 if self.squared else 1.0
-        a = np.asarray(req.sensitivity, dtype=float)
-        weight = (a * p.sigma_factors) ** 2 if self.squared else np.abs(a)
-        self.w = weight[free]
-        self.n = p.counts[free]
-        self.coef = self.n * self.w
-        self.lo = p.lower_bounds[free]
-        self.hi = p.upper_bounds[free]
-        self.curves = CurveSet([p.curves.curves[i] for i in self.index])
-        held = ~free
-        t_held = p.held[held]
-        self.held_part = float(np.sum(p.counts[held] * weight[held] * t_held**self.m))
-        self.t_held_full = np.where(free, 0.0, np.nan_to_num(p.held))
-        # what still counts as met: the allocation's own re-check tolerance
-        from .solve import problem as problem_module
-
-        name = "WORST_CASE_RTOL" if p.model == "worst-case" else "FALLOUT_RTOL"
-        self.rtol = float(getattr(problem_module, name, VERIFY_RTOL))
-        # the multipliers beyond which every contributor sits at its loosest / tightest
-        pulled = self.w > 0
-        if pulled.any():
-            lam_hi = self._multiplier_at(self.hi)[pulled]
-            lam_lo = self._multiplier_at(self.lo)[pulled]
-            self.log_lam_min = math.log(float(np.min(lam_hi))) - 1.0
-            self.log_lam_max = math.log(float(np.max(lam_lo))) + 1.0
-        else:
-            self.log_lam_min = self.log_lam_max = 0.0
-
-    @staticmethod
-    def usable(solver) -> bool:
-        """True when ``solver`` is the exact 1-D dual on formula cost curves only."""
-        try:
-            from .solve.exact import ExactAllocation
-        except ImportError:  # pragma: no cover - the solvers ship together
-            return False
-        problem = getattr(solver, "problem", None)
-        return (
-            isinstance(solver, ExactAllocation)
-            and problem is not None
-            and len(problem.requirements) == 1
-            and not problem.curves.tables
-        )
-
-    def _multiplier_at(self, t) -> np.ndarray:
-        """λ at which each contributor's minimiser is ``t``: ``−C'(t) / (m w t^(m−1))``."""
-        with np.errstate(divide="ignore", invalid="ignore"):
-            return -self.curves.derivative(t) / (self.m * self.w * t ** (self.m - 1.0))
-
-    def tolerances(self, lam) -> np.ndarray:
-        """Minimisers for multipliers ``lam`` (shape (P,)) -> array (P, free contributors)."""
-        from scipy import special
-
-        cs = self.curves
-        v = np.asarray(lam, dtype=float)[:, None] * self.w[None, :]
-        t = np.full(v.shape, np.inf)
-        p, e = cs.power, cs.expo
-        with np.errstate(divide="ignore", over="ignore", invalid="ignore"):
-            if self.squared:
-                t[:, p] = (cs.pk * cs.pb / (2.0 * v[:, p])) ** (1.0 / (cs.pk + 2.0))
-                t[:, e] = special.lambertw(cs.eb * cs.ec**2 / (2.0 * v[:, e])).real / cs.ec
-            else:
-                t[:, p] = (cs.pk * cs.pb / v[:, p]) ** (1.0 / (cs.pk + 1.0))
-                t[:, e] = np.log(cs.eb * cs.ec / v[:, e]) / cs.ec
-        t[np.isnan(t) | (v <= 0)] = np.inf  # nothing pulls the tolerance tighter
-        return np.clip(t, self.lo, self.hi)
-
-    def spread(self, t) -> np.ndarray:
-        """``Σ n w t^m`` of each row [response or response²]."""
-        return (t * t if self.squared else t) @ self.coef
-
-    def rhs(self, limits) -> float:
-        """Right-hand side ``S`` of the free part for one point's limits."""
-        from . import stack
-        from .solve.problem import mean_shift_allowance
-
-        req, lim = self.requirement, limits[0]
-        if lim.lower is None and lim.upper is None:
-            return math.inf
-        if not self.squared:
-            room = min(
-                math.inf if lim.lower is None else req.nominal - lim.lower,
-                math.inf if lim.upper is None else lim.upper - req.nominal,
-            )
-            return room - self.held_part
-        if self.problem.model == "mean-shift":  # no free mean shift here: a constant band
-            p = self.problem
-            delta = stack.mean_shift_delta(req.sensitivity, p.counts, p.mean_shifts, self.t_held_full)
-            sigma = mean_shift_allowance(req.nominal, delta, lim)[0]
-        else:
-            sigma = stack.sigma_limit(req.nominal, lim.fallout, lim.lower, lim.upper)
-        return sigma * sigma - self.held_part
-
-    def solve(self, rhs) -> np.ndarray:
-        """Free tolerances (P, n) meeting ``spread ≤ rhs`` at least cost, for each rhs.
-
-        Rows whose loosest tolerances already fit get the loosest; rows that not even the
-        tightest fit get the tightest (the caller's re-check reports them).
-        """
-        rhs = np.asarray(rhs, dtype=float)
-        size = rhs.size
-        out = np.tile(self.hi, (size, 1))
-        if self.index.size == 0 or size == 0:
-            return out
-        loose = ~(self.spread(self.hi[None, :])[0] > rhs)
-        tight = self.spread(self.lo[None, :])[0] > rhs
-        out[tight] = self.lo
-        rows = np.flatnonzero(~loose & ~tight)
-        if rows.size == 0:
-            return out
-        target = rhs[rows]
-        x_lo = np.full(rows.size, self.log_lam_min)  # spread > rhs here (all loosest)
-        x_hi = np.full(rows.size, self.log_lam_max)  # spread ≤ rhs here (all tightest)
-        for _ in range(200):
-            if np.all(x_hi - x_lo <= 1e-14 * (1.0 + np.abs(x_hi))):
-                break
-            mid = 0.5 * (x_lo + x_hi)
-            fits = self.spread(self.tolerances(np.exp(mid))) <= target
-            x_hi = np.where(fits, mid, x_hi)
-            x_lo = np.where(fits, x_lo, mid)
-        out[rows] = self.tolerances(np.exp(x_hi))  # the feasible side of each bracket
-        return out
-
-
 # --------------------------------------------------------------------------- one model
+
+
+def _exact(solver) -> bool:
+    """True when ``solver`` is the exact 1-D dual (one requirement, separable model)."""
+    from .solve.exact import ExactAllocation
+
+    return isinstance(solver, ExactAllocation)
 
 
 def _same_value(value, other):
@@ -416,8 +270,8 @@ class LimitSweep:
     """One stack model's least cost for many values of one requirement's limit or target.
 
     The model's solver is built once (:func:`allocator.solve.solver_for`) and re-solved with
-    limit overrides; single-requirement separable problems on formula cost curves are
-    solved for all values at once by :class:`BatchedDual`.
+    limit overrides; single-requirement separable problems are solved for all values at
+    once by the exact dual's :meth:`~allocator.solve.exact.ExactAllocation.roots`.
 
     Parameters
     ----------
@@ -439,7 +293,8 @@ class LimitSweep:
         self.solver = solver if solver is not None else solver_for(case, model)
         # the arrays of the problem, for the cheap feasibility test (tightest tolerances)
         self.reference = getattr(self.solver, "problem", None) or getattr(self.solver, "reference", None)
-        self.batch = BatchedDual(self.solver.problem) if BatchedDual.usable(self.solver) else None
+        # the exact dual, when it is this model's solver, takes every point in one call
+        self.batch = self.solver if _exact(self.solver) else None
         self.flat = model == "worst-case" and vary == "fallout_ppm"
         self.solves = 0
         self.fallbacks = 0
@@ -536,17 +391,19 @@ class LimitSweep:
         return _Point(alloc.total_cost, alloc.status, message)
 
     def _batched(self, values, tick) -> list[_Point]:
-        problem, batch = self.batch.problem, self.batch
+        exact = self.batch
+        problem = exact.problem
         limits = [problem.limits(self.overrides(v)) for v in values]
         reasons = [problem.diagnose(lim) for lim in limits]
         todo = [i for i, r in enumerate(reasons) if r is None]
-        t_free = batch.solve([batch.rhs(limits[i]) for i in todo])
+        rhs = [exact.dual.rhs(limits[i])[0][0] for i in todo]
+        t_free = exact.roots(rhs)[0]
         self.solves += 1
         out: list[_Point | None] = [None] * len(values)
         for i, reason in enumerate(reasons):
             if reason is not None:
                 out[i] = _Point(None, "infeasible", reason)
-        rtol = self.batch.rtol
+        rtol = problem._rtol()  # what a single allocation's re-check accepts
         for row, i in enumerate(todo):
             t = problem.full(t_free[row])
             if problem.feasible(t, limits[i], rtol=rtol):
@@ -566,7 +423,7 @@ def _resolve_requirement(case: Case, requirement):
     if requirement is None:
         requirement = case.frontier.requirement or names[0]
     if requirement not in names:
-        raise UsageError(f"unknown requirement '{requirement}'{_did_you_mean(requirement, names)}"
+        raise UsageError(f"unknown requirement '{requirement}'{did_you_mean(requirement, names)}"
                          f" (the case has: {', '.join(names)})")
     return case.requirement(requirement)
 
@@ -580,7 +437,7 @@ def _resolve_vary(case: Case, req, vary):
             notes.append(f"requirement '{req.name}' has no {vary} limit: its {other} limit is swept")
             vary = other
     if vary not in VARY:
-        raise UsageError(f"vary must be one of {', '.join(VARY)} (got {vary!r}){_did_you_mean(vary, VARY)}")
+        raise UsageError(f"vary must be one of {', '.join(VARY)} (got {vary!r}){did_you_mean(vary, VARY)}")
     if vary in ("lower", "upper") and getattr(req, vary) is None:
         raise UsageError(f"requirement '{req.name}' has no {vary} limit to vary")
     return vary, notes
@@ -593,7 +450,7 @@ def _resolve_models(case: Case, models):
         models = (models,)
     for m in models:
         if m not in MODELS:
-            raise UsageError(f"unknown model {m!r}{_did_you_mean(m, MODELS)} (choose from {', '.join(MODELS)})")
+            raise UsageError(f"unknown model {m!r}{did_you_mean(m, MODELS)} (choose from {', '.join(MODELS)})")
     return tuple(m for m in MODELS if m in set(models))
 
 
@@ -624,8 +481,8 @@ def _check_values(values, req, vary) -> np.ndarray:
 
 def _check_span(first: float, last: float, req, vary, *, what="range") -> None:
     if vary == "fallout_ppm":
-        if not (first > 0 and last < 1e6):
-            raise UsageError(f"{what}: fallout_ppm values must be > 0 and < 1000000 "
+        if not (first > 0 and last < PER_MILLION):
+            raise UsageError(f"{what}: fallout_ppm values must be > 0 and < {PER_MILLION:.0f} "
                              f"(got {_g(first)} .. {_g(last)})")
     elif vary == "upper" and req.lower is not None and first <= req.lower:
         raise UsageError(f"{what}: upper values must stay above the lower limit {_g(req.lower)} "
@@ -731,13 +588,15 @@ def automatic_range(case: Case, requirement: str, vary: str, sweeps) -> tuple[tu
 
 def frontier(
     case: Case,
+    *,
     requirement: str | None = None,
     vary: str | None = None,
     values=None,
-    range=None,  # noqa: A002 - the contract's name for the sweep span
+    span=None,
     points: int | None = None,
     models=None,
     progress: bool = False,
+    **renamed,
 ) -> Frontier:
     """Least cost per model against one requirement's limit or fallout target.
 
@@ -749,10 +608,12 @@ def frontier(
     vary : {'lower', 'upper', 'fallout_ppm'}, optional
         Default: ``[frontier].vary`` ('upper'; 'lower' when the requirement has no upper).
     values : sequence of float, optional
-        The values to solve at (sorted; overrides ``range`` and ``points``).
-    range : (float, float), optional
-        ``(from, to)``, from < to. Default: ``[frontier].range`` when it belongs to the
-        same requirement and quantity, else :func:`automatic_range`.
+        The values to solve at (sorted; overrides ``span`` and ``points``).
+    span : (float, float), optional
+        ``(from, to)``, from < to [length or response] or [ppm]: the range swept (the
+        command line's ``--range``). Default: ``[frontier].range`` when it belongs to the
+        same requirement and quantity, else :func:`automatic_range`. ``range=`` is the
+        deprecated old name of this argument (a DeprecationWarning).
     points : int, optional
         2 .. 2000; default ``[frontier].points`` (25). Evenly spaced for limits,
         geometrically for fallout_ppm.
@@ -803,7 +664,7 @@ def frontier(
     if points is None:
         points = case.frontier.points
     points = _check_points(points)
-    span = range
+    span = _renamed_span(span, renamed)
     sweeps = [LimitSweep(case, m, req.name, vary) for m in models]
 
     if values is not None:
@@ -877,6 +738,20 @@ def frontier(
         status=status,
         message=message,
     )
+
+
+def _renamed_span(span, renamed: dict):
+    """``span``, or the deprecated ``range=`` keyword (with a DeprecationWarning)."""
+    unknown = sorted(set(renamed) - {"range"})
+    if unknown:
+        raise TypeError(f"frontier() got an unexpected keyword argument {unknown[0]!r}")
+    if "range" not in renamed:
+        return span
+    warnings.warn("frontier(range=...) is deprecated; write frontier(span=...)", DeprecationWarning,
+                  stacklevel=3)
+    if span is not None:
+        raise UsageError("give span or its deprecated name range, not both")
+    return renamed["range"]
 
 
 def _summary(values, models, statuses, messages, vary):

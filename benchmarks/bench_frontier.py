@@ -13,7 +13,8 @@ one two-sided requirement. Printed:
   frontier   frontier(case, 100 points, worst-case + rss + mean-shift), everything
              included (solver set-up, infeasibility checks, the re-check of every point,
              the current-design solves)                               goal <= 0.5 s
-             A: no contributor has a mean shift: all three models take the batched dual
+             A: no contributor has a mean shift: all three models take the exact dual, all
+                points in one call (ExactAllocation.roots)
              B: mean shifts 0-0.3: mean shift takes the compiled conic problem (one cvxpy
                 compile, then 100 parameter re-solves with cutting planes)
   economics  fallout_economics(case) for rss (scan + bounded Brent + stationarity check)

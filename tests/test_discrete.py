@@ -623,7 +623,7 @@ def test_frontier_with_a_fixed_part_several_processes_make_matches_enumeration()
 
     case = _held_case(2.27, 2.33, fixed_at=0.025, hub_cast=False)
     values = [2.335, 2.36]
-    sweep = frontier(case, "clearance", "upper", values=values, models=["rss"])
+    sweep = frontier(case, requirement="clearance", vary="upper", values=values, models=["rss"])
     costs = [row["total_cost"] for row in sweep.rows()]
     for value, cost in zip(values, costs):
         moved = replace(case, requirements=(replace(case.requirements[0], upper=value),))

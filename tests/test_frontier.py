@@ -7,7 +7,9 @@ What each check compares against (outside the code under test):
   optimal value p*(u) is non-increasing in the relaxation u);
 - every point against an independent ``allocate`` of a copy of the case with that limit
   written into the requirement (a fresh solver, no overrides, no batching), to 1e-7;
-- the batched dual against ``scipy.optimize.minimize`` (SLSQP) on an invented case;
+- the one-call sweep of the exact dual against ``scipy.optimize.minimize`` (SLSQP) on an
+  invented case, and on convex cost tables against ``scipy.optimize.linprog`` (worst case:
+  a linear program in epigraph form) and SLSQP on the epigraph form (rss);
 - model ordering: the mean-shift feasible set lies inside the rss one (the band of means
   contains the nominal; Greenwood & Chase 1987, estimated mean shift), so rss ≤ mean shift
   always; worst case ≥ mean shift where exact enumeration of the tolerance box's vertices
@@ -279,6 +281,106 @@ def test_batched_dual_against_slsqp():
         assert point.total_cost == pytest.approx(res.fun, rel=1e-6), (value, point.total_cost, res.fun)
 
 
+# invented convex cost tables (slopes rise from piece to piece) and one formula
+SWEEP_TABLES = (
+    CostCurve("table", points_tolerance=(0.004, 0.01, 0.03, 0.08), points_cost=(2.0, 1.1, 0.6, 0.45)),
+    CostCurve("table", points_tolerance=(0.005, 0.02, 0.05, 0.1), points_cost=(3.0, 1.5, 0.9, 0.8)),
+    CostCurve("table", points_tolerance=(0.004, 0.008, 0.02, 0.06, 0.1),
+              points_cost=(4.0, 2.6, 1.5, 0.9, 0.7)),
+)
+
+
+def _table_case(formula: bool):
+    curves = SWEEP_TABLES + ((CostCurve("reciprocal", a=0.2, b=0.01),) if formula else ())
+    limits = [(0.004, 0.08), (0.005, 0.1), (0.004, 0.1), (0.004, 0.1)]
+    cs = [contributor(f"x{i}", nominal=10.0, tolerance=0.02, limits=limits[i], cost=c, count=1 + i % 2)
+          for i, c in enumerate(curves)]
+    coeff = [1.0, -1.5, 1.0, -0.5][: len(cs)]
+    nominal = sum(a * c.count * c.nominal for a, c in zip(coeff, cs))
+    req = chain_requirement("gap", dict(zip([c.name for c in cs], coeff)), lower=nominal - 0.5,
+                            upper=nominal + 0.5, fallout_ppm=100)
+    return make_case(cs, [req], models=("worst-case", "rss")), nominal
+
+
+def _epigraph(case, t_count):
+    """Table pieces as rows of ``s_j t_i − z_i ≤ s_j x_j − y_j`` over variables (t, z)."""
+    rows, rhs = [], []
+    for i, c in enumerate(case.contributors):
+        x = np.array(c.cost.points_tolerance)
+        y = np.array(c.cost.points_cost)
+        for j, s in enumerate(np.diff(y) / np.diff(x)):
+            row = np.zeros(2 * t_count)
+            row[i], row[t_count + i] = s, -1.0
+            rows.append(row)
+            rhs.append(s * x[j] - y[j])
+    return np.array(rows), np.array(rhs)
+
+
+def test_sweep_over_cost_tables_worst_case_against_linprog():
+    """Tables take the one-call sweep too; worst case is then a linear program (HiGHS)."""
+    case, nominal = _table_case(formula=False)
+    sweep = LimitSweep(case, "worst-case", "gap", "upper")
+    assert sweep.batch is not None  # every point in one call of the exact dual
+    rooms = [0.015, 0.03, 0.06, 0.1, 0.16, 0.25, 0.4, 0.6]  # the tightest spread is 0.023
+    points = sweep.sweep([nominal + r for r in rooms])
+    n = case.counts
+    a = np.array([1.0, -1.5, 1.0])
+    m = a.size
+    pieces, piece_rhs = _epigraph(case, m)
+    for value, point in zip(rooms, points):
+        room = min(value, 0.5)  # the lower limit is 0.5 below the nominal
+        res = optimize.linprog(
+            np.concatenate([np.zeros(m), n]),
+            A_ub=np.vstack([pieces, np.concatenate([n * np.abs(a), np.zeros(m)])]),
+            b_ub=np.concatenate([piece_rhs, [room]]),
+            bounds=[c.limits for c in case.contributors] + [(None, None)] * m,
+            method="highs",
+        )
+        if res.status == 2:
+            assert point.status == "infeasible", (value, point)
+            continue
+        assert res.status == 0 and point.status == "optimal", (value, point, res.message)
+        assert point.total_cost == pytest.approx(res.fun, rel=1e-9), (value, point.total_cost, res.fun)
+    assert [p.status for p in points].count("infeasible") == 1
+
+
+def test_sweep_over_cost_tables_rss_against_slsqp():
+    """Tables and a formula under rss: the one-call sweep against SLSQP on the epigraph form."""
+    case, nominal = _table_case(formula=True)
+    sweep = LimitSweep(case, "rss", "gap", "upper")
+    assert sweep.batch is not None
+    rooms = [0.02, 0.04, 0.08, 0.2]
+    points = sweep.sweep([nominal + r for r in rooms])
+    n, f = case.counts, case.sigma_factors
+    a = np.array([1.0, -1.5, 1.0, -0.5])
+    m = a.size
+    pieces, piece_rhs = _epigraph(case, m - 1)
+    formula = case.contributors[-1].cost
+    for value, point in zip(rooms, points):
+        sigma_max = _two_sided_sigma(0.0, -0.5, value, 100e-6)
+
+        def cost(v):  # v = (100 t_0..100 t_3, z_0..z_2): tables through z, the formula directly
+            return float(n[:3] @ v[m:] + n[3] * formula.value(v[3] / 100.0))
+
+        def tz(v):
+            return np.concatenate([v[: m - 1] / 100.0, v[m:]])
+
+        cons = [
+            {"type": "ineq", "fun": lambda v: piece_rhs - pieces @ tz(v)},
+            {"type": "ineq", "fun": lambda v: 1.0 - np.sum(n * (a * f * v[:m] / 100.0) ** 2) / sigma_max**2},
+        ]
+        tightest = np.array([c.limits[0] for c in case.contributors])
+        start = np.concatenate([100.0 * tightest, [float(np.interp(x, c.cost.points_tolerance, c.cost.points_cost))
+                                                   for x, c in zip(tightest, case.contributors[:3])]])
+        res = optimize.minimize(cost, start, method="SLSQP",
+                                bounds=[(100.0 * lo, 100.0 * hi) for lo, hi in (c.limits for c in case.contributors)]
+                                + [(0.0, 10.0)] * (m - 1),
+                                constraints=cons, options={"ftol": 1e-12, "maxiter": 1000})
+        assert res.success, res.message
+        assert point.status == "optimal", (value, point)
+        assert point.total_cost == pytest.approx(res.fun, rel=1e-7), (value, point.total_cost, res.fun)
+
+
 def _two_sided_sigma(mean, lower, upper, p):
     """σ with normal fallout p outside [lower, upper] (scipy.stats + brentq)."""
     f = lambda s: stats.norm.cdf((lower - mean) / s) + stats.norm.sf((upper - mean) / s) - p  # noqa: E731
@@ -298,7 +400,7 @@ def _small_case(**kw):
 
 def test_result_frame_points_and_flat_worst_case_under_fallout():
     case = _small_case()
-    front = frontier(case, vary="fallout_ppm", range=(1.0, 10000.0), points=5)
+    front = frontier(case, vary="fallout_ppm", span=(1.0, 10000.0), points=5)
     frame = front.to_frame()
     assert list(frame.columns[:4]) == ["value", "model", "total_cost", "status"]
     assert len(frame) == 10 and set(frame["model"]) == {"worst-case", "rss"}
@@ -370,17 +472,45 @@ def test_defaults_come_from_the_frontier_table():
     [
         ({"requirement": "gpa"}, "did you mean 'gap'"),
         ({"vary": "uper"}, "did you mean 'upper'"),
-        ({"range": (0.3, 0.2)}, "increasing"),
+        ({"span": (0.3, 0.2)}, "increasing"),
         ({"points": 1}, "2 to 2000"),
         ({"points": 2001}, "2 to 2000"),
-        ({"vary": "fallout_ppm", "range": (0.0, 10.0)}, "> 0"),
-        ({"vary": "upper", "range": (0.0, 0.3)}, "above the lower limit"),
+        ({"vary": "fallout_ppm", "span": (0.0, 10.0)}, "> 0"),
+        ({"vary": "upper", "span": (0.0, 0.3)}, "above the lower limit"),
         ({"models": ("rs",)}, "unknown model 'rs' \\(did you mean 'rss'\\?\\)"),
     ],
 )
 def test_bad_arguments(kwargs, fragment):
     with pytest.raises(UsageError, match=fragment):
         frontier(_small_case(), **kwargs)
+
+
+def test_span_is_keyword_only_and_range_its_deprecated_name():
+    case = _small_case()
+    front = frontier(case, vary="upper", span=(0.3, 0.4), points=3)
+    assert list(front.values) == pytest.approx([0.3, 0.35, 0.4]) and front.range_source == "argument"
+    with pytest.warns(DeprecationWarning, match="span"):
+        old = frontier(case, vary="upper", range=(0.3, 0.4), points=3)
+    assert old.costs == front.costs
+    with pytest.warns(DeprecationWarning), pytest.raises(UsageError, match="not both"):
+        frontier(case, vary="upper", span=(0.3, 0.4), range=(0.3, 0.4), points=3)
+    with pytest.raises(TypeError):
+        frontier(case, "gap", "upper")  # options are keyword-only
+    with pytest.raises(TypeError, match="spam"):
+        frontier(case, spam=1)
+
+
+def test_frontier_is_frozen_and_shows_as_a_table():
+    import dataclasses
+
+    front = frontier(_small_case(), vary="upper", values=[0.3, 0.4])
+    with pytest.raises(dataclasses.FrozenInstanceError):
+        front.status = "failed"
+    with pytest.raises(ValueError):  # read-only values
+        front.values[0] = 1.0
+    page = front._repr_html_()
+    assert "<table" in page and "worst-case" in page and "rss saving" in page
+    assert front.status in page and "gap" in page
 
 
 @pytest.mark.parametrize(

@@ -131,8 +131,8 @@ def test_labels_do_not_change_any_number():
         assert np.array_equal(a.allocated_array(), b.allocated_array())
         for ra, rb in zip(a.requirements, b.requirements):
             assert (ra.shadow_lower, ra.shadow_upper, ra.sigma) == (rb.shadow_lower, rb.shadow_upper, rb.sigma)
-    fa = frontier(labelled, requirement="seal_load", range=(40.0, 52.0), points=3, models=MODELS)
-    fb = frontier(plain, requirement="seal_load", range=(40.0, 52.0), points=3, models=MODELS)
+    fa = frontier(labelled, requirement="seal_load", span=(40.0, 52.0), points=3, models=MODELS)
+    fb = frontier(plain, requirement="seal_load", span=(40.0, 52.0), points=3, models=MODELS)
     assert fa.costs == fb.costs and (fa.units, fb.units) == ("N", "mm")
     va = verify(labelled, samples=2000, seed=4)
     vb = verify(plain, samples=2000, seed=4)
@@ -235,6 +235,6 @@ def test_a_label_is_plain_text_in_plots_never_mathtext():
     from allocator.plots import render_frontier_plot
     from allocator.simulate import render_verification_plot
 
-    front = frontier(case, requirement="seal_load", range=(40.0, 52.0), points=2, models=("rss",))
+    front = frontier(case, requirement="seal_load", span=(40.0, 52.0), points=2, models=("rss",))
     assert b"$\\bad{$" in render_frontier_plot(front, "svg")
     assert b"bad{" in render_verification_plot(verify(case, samples=1000, seed=1), "svg")

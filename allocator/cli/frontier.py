@@ -90,7 +90,7 @@ def frontier(case_file, requirement, vary, span, points, models, plot, economics
         case,
         requirement=requirement,
         vary=vary,
-        range=span,
+        span=span,
         points=points,
         models=tuple(models) or None,
         progress=progress,

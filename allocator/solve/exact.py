@@ -68,6 +68,10 @@ def applicable(problem: AllocationProblem) -> bool:
 class SeparableDual:
     """The per-contributor minimisers and constraint values of a separable problem.
 
+    :meth:`tolerances`, :meth:`spreads`, :meth:`cost` and :meth:`bound` take one point
+    (arrays over the free parts) or many points at once (one row per point): a sweep
+    asks the same formulas for many right-hand sides in one call.
+
     Parameters
     ----------
     problem : AllocationProblem
@@ -103,14 +107,22 @@ class SeparableDual:
     def tolerances(self, v, *, pinned: bool = True) -> np.ndarray:
         """Minimiser of ``C_i(t) + v_i t`` (worst case) or ``C_i(t) + v_i t²`` (rss).
 
+        ``v`` is one price per free part (or a scalar), or an array (points, free parts)
+        of one row per point; the tolerances have the same shape [length].
         Contributors in :attr:`pinned` keep their pinned value unless ``pinned=False``.
         """
         self.evaluations += 1
-        v = np.broadcast_to(np.asarray(v, dtype=float), self.hi.shape)
-        if self.squared:
-            t = minimise_quadratic_price(self.curves, 2.0 * v, self.lo, self.hi)
+        v = np.asarray(v, dtype=float)
+        lo, hi = self.lo, self.hi
+        if v.ndim == 2:  # one row per point: the families broadcast the parts' limits
+            if self.squared:
+                t = np.clip(self.curves.quadratic_minimiser(2.0 * v, lo, hi), lo, hi)
+            else:
+                t = np.clip(self.curves.linear_minimiser(v), lo, hi)
+        elif self.squared:
+            t = minimise_quadratic_price(self.curves, 2.0 * v, lo, hi)
         else:
-            t = minimise_linear_price(self.curves, v, self.lo, self.hi)
+            t = minimise_linear_price(self.curves, v, lo, hi)
         return self._pin(t) if pinned else t
 
     def combined(self, lam) -> np.ndarray:
@@ -118,18 +130,29 @@ class SeparableDual:
         return np.asarray(lam, dtype=float) @ self.weight
 
     def spreads(self, t) -> np.ndarray:
-        """Each requirement's free part ``Σ n w t`` (or ``t²``)."""
-        return self.coef @ (t * t if self.squared else t)
+        """Each requirement's free part ``Σ n w t`` (or ``t²``): shape (requirements,),
+        or (points, requirements) for tolerances with one row per point."""
+        power = t * t if self.squared else t
+        return self.coef @ power if power.ndim == 1 else power @ self.coef.T
 
-    def cost(self, t) -> float:
-        """Cost of the free contributors [currency]."""
-        return float(self.n @ self.curves.value(t))
+    def cost(self, t):
+        """Cost of the free contributors [currency] (one per row for rows of points)."""
+        values = self.curves.value(t)
+        return float(self.n @ values) if values.ndim == 1 else values @ self.n
 
-    def bound(self, lam, rhs) -> float:
-        """Weak-duality lower bound on the optimum: the Lagrangian's minimum at ``λ``."""
+    def bound(self, lam, rhs):
+        """Weak-duality lower bound on the optimum: the Lagrangian's minimum at ``λ``.
+
+        ``lam`` and ``rhs`` hold one value per requirement, or one row per point (then
+        one bound per point).
+        """
+        lam, rhs = np.asarray(lam, dtype=float), np.asarray(rhs, dtype=float)
         t = self.tolerances(self.combined(lam), pinned=False)
-        active = np.asarray(lam) > 0
-        extra = float(np.asarray(lam)[active] @ (self.spreads(t)[active] - np.asarray(rhs)[active]))
+        active = lam > 0
+        if lam.ndim == 1:
+            extra = float(lam[active] @ (self.spreads(t)[active] - rhs[active]))
+        else:  # a slack requirement (λ = 0) adds nothing, whatever its rhs
+            extra = np.where(active, lam * (self.spreads(t) - np.where(active, rhs, 0.0)), 0.0).sum(axis=1)
         return self.held_cost + self.cost(t) + extra
 
     def jacobian(self, t, v) -> np.ndarray:
@@ -200,10 +223,27 @@ class ExactAllocation:
     -----
     ``G(λ) = spread(t(λ)) − S`` is non-increasing in λ. If the loosest tolerances meet the
     requirement, λ = 0. Otherwise λ is bracketed by decades from a first guess (the
-    median slope ratio at the middle of the limits) and found by Brent's method in
-    ``log λ``; the last step moves along the segment between the two bracketing
-    solutions to the point where the constraint is exactly active (where a table makes
-    ``t(λ)`` jump, every point of that segment costs the same per unit of constraint).
+    median slope ratio at the middle of the limits) and found by Illinois-modified
+    regula falsi in ``log λ``; the last step moves along the segment between the two
+    bracketing solutions to the point where the constraint is exactly active (where a
+    table makes ``t(λ)`` jump, every point of that segment costs the same per unit of
+    constraint).
+
+    :meth:`roots` does this for many right-hand sides ``S`` at once, every step on an
+    array with one row per ``S``: :meth:`solve` is its one-row case, and a sweep of the
+    requirement's limit or fallout target (:class:`allocator.sweep.LimitSweep`) asks it
+    for all its points in one call.
+
+    Examples
+    --------
+    >>> from allocator.case import load_case
+    >>> from allocator.solve import prepare
+    >>> exact = ExactAllocation(prepare(load_case("cases/gearbox_end_play.toml"), "rss"))
+    >>> limits = [exact.problem.limits({"end_play": {"upper": u}}) for u in (0.30, 0.40)]
+    >>> rhs = [exact.dual.rhs(lim)[0][0] for lim in limits]
+    >>> t, lam, bound = exact.roots(rhs)
+    >>> t.shape == (2, exact.dual.index.size), bool(lam[0] >= lam[1])
+    (True, True)
     """
 
     def __init__(self, problem: AllocationProblem):
@@ -221,10 +261,11 @@ class ExactAllocation:
             return problem.infeasible(limits, reason, SOLVER_NAME)
         dual.evaluations = 0
         rhs, allowance = dual.rhs(limits)
-        t_free, lam, bound = self._root(float(rhs[0]))
+        t_free, lam, bound = (x[0] for x in self.roots(rhs[:1]))
         t = problem.full(t_free)
         polished, theta = problem.polish(t, limits)
         cost = problem.total_cost(polished)
+        bound = float(bound) if math.isfinite(bound) else None
         gap = max(0.0, (cost - bound) / cost) if bound is not None and cost > 0 else None
         ok = theta >= 1.0 - 1e-9 and problem.feasible(polished, limits, rtol=problem._rtol())
         return problem.result(
@@ -239,18 +280,49 @@ class ExactAllocation:
             solver=SOLVER_NAME,
             iterations=dual.evaluations,
             gap=gap,
-            multipliers=dual.multipliers([lam], allowance),
+            multipliers=dual.multipliers([float(lam)], allowance),
         )
 
-    def _root(self, rhs: float):
-        """Root of ``spread(t(λ)) = rhs`` in log λ; returns ``(t, λ, dual lower bound)``."""
+    def roots(self, rhs):
+        """Least-cost free tolerances with ``spread(t) ≤ S``, for many ``S`` at once.
+
+        Parameters
+        ----------
+        rhs : array_like, shape (points,)
+            Right-hand sides ``S`` of the free part [response] (worst case) or
+            [response²] (rss, mean shift); ``inf`` when the requirement has no limit
+            (:meth:`SeparableDual.rhs`).
+
+        Returns
+        -------
+        t : numpy.ndarray, shape (points, free contributors)
+            Tolerances with the constraint active (loosest where the loosest fit, tightest
+            where not even those fit) [length].
+        lam : numpy.ndarray, shape (points,)
+            Multiplier λ of each point (0: slack; inf: only the tightest tolerances fit,
+            up to round-off).
+        bound : numpy.ndarray, shape (points,)
+            Dual lower bound on each point's total cost (NaN with ``lam = inf``) [currency].
+        """
         dual = self.dual
+        rhs = np.atleast_1d(np.asarray(rhs, dtype=float))
         loosest = dual.hi
-        if dual.index.size == 0 or not math.isfinite(rhs) or dual.spreads(loosest)[0] <= rhs:
-            return loosest.copy(), 0.0, dual.held_cost + dual.cost(loosest)
-        scale = abs(rhs) if rhs != 0 else 1.0
+        t = np.tile(loosest, (rhs.size, 1))
+        lam = np.zeros(rhs.size)
+        bound = np.full(rhs.size, dual.held_cost + dual.cost(loosest))
+        if dual.index.size == 0:
+            return t, lam, bound
+        rows = np.flatnonzero(np.isfinite(rhs) & (dual.spreads(loosest)[0] > rhs))
+        if rows.size == 0:
+            return t, lam, bound
+        target = rhs[rows]
+        scale = np.where(target != 0, np.abs(target), 1.0)
         w = dual.weight[0]
-        excess = lambda lam: (dual.spreads(dual.tolerances(lam * w))[0] - rhs) / scale  # noqa: E731
+
+        def excess(x, which):
+            """Relative excess of the spread at ``log λ = x`` for the points ``which``."""
+            tolerances = dual.tolerances(np.exp(x)[:, None] * w)
+            return (dual.spreads(tolerances)[:, 0] - target[which]) / scale[which]
 
         # a first λ from the slopes at the middle of the limits, then widen by decades
         mid = np.sqrt(dual.lo * dual.hi)
@@ -258,54 +330,118 @@ class ExactAllocation:
         with np.errstate(divide="ignore", invalid="ignore"):
             per = slope / (2.0 * w * mid) if dual.squared else slope / w
         per = per[(w > 0) & np.isfinite(per) & (per > 0)]
-        guess = float(np.median(per)) if per.size else 1.0
+        start = math.log(float(np.median(per)) if per.size else 1.0)
+        everyone = np.arange(rows.size)
+        x_hi = np.full(rows.size, start)
+        f_hi = excess(x_hi, everyone)
+        x_lo, f_lo = x_hi.copy(), f_hi.copy()
         # bracket in log λ, evaluated exactly as the root finder will (exp(log λ) may
         # differ from λ in the last bit, which matters right at a table's kink)
-        at = lambda x: excess(math.exp(x))  # noqa: E731
-        x_lo = x_hi = math.log(guess)
         decade = math.log(10.0)
+        tight = np.zeros(rows.size, dtype=bool)
+        rising = f_hi > 0
         for _ in range(400):
-            if at(x_hi) <= 0:
+            if not rising.any():
                 break
-            if x_hi + decade >= _LOG_FLOAT_MAX:
-                # no finite λ meets it: the requirement leaves exactly the tightest
-                # tolerances (diagnose() let them pass up to round-off)
-                return dual.lo.copy(), math.inf, None
-            x_hi += decade
-        else:
-            return dual.lo.copy(), math.inf, None
+            k = np.flatnonzero(rising)
+            # no finite λ meets it: the requirement leaves exactly the tightest tolerances
+            # (diagnose() let them pass up to round-off)
+            ceiling = x_hi[k] + decade >= _LOG_FLOAT_MAX
+            tight[k[ceiling]] = True
+            k = k[~ceiling]
+            x_hi[k] += decade
+            f_hi[k] = excess(x_hi[k], k)
+            rising[:] = False
+            rising[k] = f_hi[k] > 0
+        tight |= rising
+        falling = ~tight & (f_lo <= 0)
         for _ in range(400):
-            if at(x_lo) > 0:
+            if not falling.any():
                 break
-            x_lo -= decade
-        x_a, x_b = _bracket_root(at, x_lo, x_hi)
-        lam_a, lam_b = math.exp(x_a), math.exp(x_b)
-        t_a, t_b = dual.tolerances(lam_a * w), dual.tolerances(lam_b * w)
-        t = self._mix(t_a, t_b, rhs)
-        bound = max(dual.bound([lam_a], [rhs]), dual.bound([lam_b], [rhs]))
-        return t, lam_b, bound
+            k = np.flatnonzero(falling)
+            x_lo[k] -= decade
+            f_lo[k] = excess(x_lo[k], k)
+            falling[k] = f_lo[k] <= 0
+        live = np.flatnonzero(~tight & ~falling)
+        stuck = rows[tight]
+        t[stuck] = dual.lo
+        lam[stuck] = math.inf
+        bound[stuck] = math.nan
+        if live.size == 0:
+            return t, lam, bound
+        x_a, x_b = self._bracket_roots(excess, live, x_lo[live], x_hi[live], f_lo[live], f_hi[live])
+        lam_a, lam_b = np.exp(x_a), np.exp(x_b)
+        t_a, t_b = dual.tolerances(lam_a[:, None] * w), dual.tolerances(lam_b[:, None] * w)
+        found = rows[live]
+        t[found] = self._mix(t_a, t_b, target[live])
+        lam[found] = lam_b
+        bound[found] = np.maximum(dual.bound(lam_a[:, None], target[live, None]),
+                                  dual.bound(lam_b[:, None], target[live, None]))
+        return t, lam, bound
+
+    @staticmethod
+    def _bracket_roots(f, which, a, b, fa, fb, *, xtol: float = 1e-13, maxiter: int = 300):
+        """Shrink each ``[a, b]`` with ``f(a) > 0 >= f(b)`` (f non-increasing) around its root.
+
+        :func:`_bracket_root` on an array of brackets in lock step: ``f(x, which)`` gives
+        the values at ``x`` for the brackets ``which`` (positions into ``a``). Illinois-
+        modified regula falsi with a bisection step whenever two steps did not halve a
+        bracket; a bracket stops moving once ``b − a <= xtol·(1 + |a|)`` or ``f(b) = 0``.
+        """
+        a, b, fa, fb = (np.array(x, dtype=float) for x in (a, b, fa, fb))
+        which = np.asarray(which)
+        side = np.zeros(a.size)  # -1: the last step moved a, +1: it moved b
+        width = b - a
+        moving = np.ones(a.size, dtype=bool)
+        for i in range(maxiter):
+            moving &= (b - a > xtol * (1.0 + np.abs(a))) & (fb != 0.0)
+            if not moving.any():
+                break
+            k = slice(None) if moving.all() else np.flatnonzero(moving)
+            ak, bk, fak, fbk = a[k], b[k], fa[k], fb[k]
+            gap = bk - ak
+            halve = fak == fbk
+            if i % 2 == 0:
+                if i > 0:
+                    halve |= gap > 0.5 * width[k]
+                width[k] = gap
+            x = bk - fbk * gap / np.where(halve, 1.0, fbk - fak)  # no division by 0 where it halves
+            x = np.where(halve | ~((ak < x) & (x < bk)), 0.5 * (ak + bk), x)
+            fx = f(x, which[k])
+            above = fx > 0
+            before = side[k]
+            a[k] = np.where(above, x, ak)
+            b[k] = np.where(above, bk, x)
+            fa[k] = np.where(above, fx, fak * np.where(before == 1.0, 0.5, 1.0))
+            fb[k] = np.where(above, fbk * np.where(before == -1.0, 0.5, 1.0), fx)
+            side[k] = np.where(above, -1.0, 1.0)
+        return a, b
 
     def _mix(self, t_a, t_b, rhs):
-        """Point on the segment t_b → t_a where the constraint is exactly active."""
+        """Per row, the point on the segment t_b → t_a where the constraint is exactly active."""
         dual = self.dual
         d = t_a - t_b
-        room = rhs - dual.spreads(t_b)[0]
-        if room <= 0 or not np.any(d):
-            return t_b
+        room = rhs - dual.spreads(t_b)[:, 0]
         coef = dual.coef[0]
-        if dual.squared:
-            quad = float(coef @ (d * d))
-            lin = 2.0 * float(coef @ (t_b * d))
-            theta = 2.0 * room / (lin + math.sqrt(lin * lin + 4.0 * quad * room))
-        else:
-            theta = room / float(coef @ d)
-        theta = min(max(theta, 0.0), 1.0)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            if dual.squared:
+                quad = (d * d) @ coef
+                lin = 2.0 * ((t_b * d) @ coef)
+                theta = 2.0 * room / (lin + np.sqrt(lin * lin + 4.0 * quad * room))
+            else:
+                theta = room / (d @ coef)
+        theta = np.clip(theta, 0.0, 1.0)
+        t = t_b.copy()
+        todo = np.flatnonzero((room > 0) & np.any(d != 0, axis=1))
         for _ in range(20):  # round-off may leave the mix a hair infeasible: step back
-            t = t_b + theta * d
-            if dual.spreads(t)[0] <= rhs:
-                return t
-            theta *= 1.0 - 1e-9
-        return t_b
+            if todo.size == 0:
+                break
+            trial = t_b[todo] + theta[todo, None] * d[todo]
+            fits = dual.spreads(trial)[:, 0] <= rhs[todo]
+            t[todo[fits]] = trial[fits]
+            todo = todo[~fits]
+            theta[todo] *= 1.0 - 1e-9
+        return t  # rows that never fit keep t_b
 
 
 # --------------------------------------------------------------------------- mean shift

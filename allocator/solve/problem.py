@@ -20,7 +20,6 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
-from functools import cached_property
 from typing import Mapping
 
 import numpy as np
@@ -112,12 +111,24 @@ class CurveSet:
         return out
 
     def _each(self, method: str, t, *extra, fill: float = 0.0, dtype=float) -> np.ndarray:
-        """``family.method(params, t[idx], extra[idx]...)`` per group, ``fill`` elsewhere."""
+        """``family.method(params, t[..., idx], extra[..., idx]...)`` per group, ``fill`` elsewhere.
+
+        ``t`` is one value per part, shape (parts,), or one row per point, shape
+        (points, parts) (a sweep's many right-hand sides at once); ``extra`` arrays are
+        (parts,) or of ``t``'s shape. Formula families take the rows in one call; a
+        table's formulas take one point at a time.
+        """
         t = np.asarray(t, dtype=float)
-        out = np.full(self.size, fill, dtype=dtype)
+        out = np.full(t.shape[:-1] + (self.size,), fill, dtype=dtype)
         for fam, idx, params in self.groups:
-            args = [None if e is None else np.asarray(e)[idx] for e in extra]
-            out[idx] = getattr(fam, method)(params, t[idx], *args)
+            args = [None if e is None else np.asarray(e)[..., idx] for e in extra]
+            call = getattr(fam, method)
+            if t.ndim == 1 or not fam.piecewise:
+                out[..., idx] = call(params, t[..., idx], *args)
+                continue
+            for row in range(t.shape[0]):
+                rows = [None if a is None else (a[row] if a.ndim == 2 else a) for a in args]
+                out[row, idx] = call(params, t[row, idx], *rows)
         return out
 
     def value(self, t) -> np.ndarray:
@@ -147,28 +158,6 @@ class CurveSet:
     def quadratic_minimiser(self, q, lo, hi, shift=None) -> np.ndarray:
         """Per part, the minimiser of ``C(t) + q t²/2 (+ shift·t)`` (clip to [lo, hi] after)."""
         return self._each("quadratic_minimiser", q, lo, hi, shift, fill=np.inf)
-
-    # The parameter arrays in the layout of sweep.BatchedDual (power group: both reciprocal
-    # families, k = 1 for reciprocal; exponential group). Only that class reads them; they
-    # go when the frontier uses the exact dual of solve/exact.py.
-    def _legacy(self, names, key):
-        parts = [(idx, params) for fam, idx, params in self.groups if fam.name in names]
-        if not parts:
-            return np.array([], dtype=int if key is None else float)
-        return np.concatenate([idx if key is None else params[key] for idx, params in parts])
-
-    power = cached_property(lambda self: self._legacy(_POWER, None))
-    pa = cached_property(lambda self: self._legacy(_POWER, "a"))
-    pb = cached_property(lambda self: self._legacy(_POWER, "b"))
-    pk = cached_property(lambda self: self._legacy(_POWER, "k"))
-    expo = cached_property(lambda self: self._legacy(_EXPONENTIAL, None))
-    ea = cached_property(lambda self: self._legacy(_EXPONENTIAL, "a"))
-    eb = cached_property(lambda self: self._legacy(_EXPONENTIAL, "b"))
-    ec = cached_property(lambda self: self._legacy(_EXPONENTIAL, "c"))
-
-
-_POWER = ("reciprocal", "reciprocal-power")  # only for the sweep.BatchedDual layout above
-_EXPONENTIAL = ("exponential",)
 
 
 def scaled_curve(curve: CostCurve | None, length: float, cost: float) -> CostCurve | None:
