@@ -562,17 +562,16 @@ def test_unknown_model_says_the_same_on_every_solver_path(case_file):
     assert issubclass(UsageError, ValueError)
 
 
-def test_discrete_contributor_is_refused_with_a_clear_message(monkeypatch):
-    import allocator.solve as solve
-
-    # without the discrete solver plugged in, the continuous one must refuse clearly
-    monkeypatch.setattr(solve, "_discrete_module", lambda: None)
+def test_discrete_contributor_is_refused_by_the_continuous_problem_with_a_clear_message():
+    # the continuous problem refuses a contributor that needs a choice of process, clearly;
+    # allocate() hands that case to the discrete solver
     proc = (Process("turning", (0.02, 0.1), CostCurve("reciprocal", a=3.0, b=0.05)),
             Process("grinding", (0.002, 0.01), CostCurve("reciprocal", a=9.0, b=0.02)))
     people = [Contributor(name="body", nominal=40.0, tolerance=0.03, processes=proc), contributor("x")]
     case = make_case(people, [chain_requirement("gap", {"body": 1, "x": -1}, lower=29.8, upper=30.2)])
     with pytest.raises(UsageError, match="body.*discrete"):
-        allocate(case, "rss")
+        prepare(case, "rss")
+    assert allocate(case, "rss").success
     # held, it is no longer a choice
     assert allocate(case, "rss", fix={"body": 0.03}).success
 

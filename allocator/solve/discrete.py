@@ -71,7 +71,9 @@ import numpy as np
 from .. import costs, stack
 from ..errors import CaseError, UsageError
 from ..model import MODELS, Case
-from . import rounding as rounding_values
+from .dispatch import continuous_solver, continuous_solver_for, needs_discrete
+from .rounding import describe as describe_rounding
+from .rounding import iso286_values, no_value_problem, step_values
 from .problem import (
     FALLOUT_RTOL,
     WORST_CASE_RTOL,
@@ -80,6 +82,7 @@ from .problem import (
     cheapest_unit_cost,
     Limits,
     mean_shift_allowance,
+    prepare,
 )
 
 __all__ = [
@@ -168,22 +171,6 @@ def _geometric_grid(lo: float, hi: float, points: int, curve) -> np.ndarray:
         # value in a cell is at an end (what the lower bound uses)
         grid = np.union1d(grid, x[(x > lo) & (x < hi)])
     return grid
-
-
-def needs_discrete(case: Case, fix=None) -> bool:
-    """True when allocating ``case`` needs this module.
-
-    A rounding setting; a free contributor with several processes or a ``choose`` table;
-    or a held one (``fixed``, or in ``fix``) at a tolerance several of its processes can
-    make (holding ``t`` leaves the choice among the processes whose range holds ``t``).
-    """
-    fix = fix or {}
-    if case.allocation.rounding is not None:
-        return True
-    return any(
-        c.needs_choice(c.tolerance if c.fixed else (float(fix[c.name]) if c.name in fix else None))
-        for c in case.contributors
-    )
 
 
 # --------------------------------------------------------------------------- candidates
@@ -594,7 +581,7 @@ class DiscreteAllocation:
             options.append(_Option(i, k, p.name, p.limits, curve, factor(p), "points",
                                    points, _cost_at(curve, points), labels))
         if not options:
-            problem = rounding_values.no_value_problem(
+            problem = no_value_problem(
                 self.rounding, c.nominal, self.case.contributor_units(c.name), ranges
             )
             raise CaseError(
@@ -607,14 +594,14 @@ class DiscreteAllocation:
     def _rounded(self, c, lo, hi):
         if self.rounding == "iso286":
             try:
-                return rounding_values.iso286_values(c.nominal, self.case.contributor_units(c.name), lo, hi)
+                return iso286_values(c.nominal, self.case.contributor_units(c.name), lo, hi)
             except ValueError as err:
                 raise CaseError(
                     f"contributor '{c.name}': {err}",
                     file=str(self.case.path) if self.case.path is not None else None,
                     field="allocation.rounding",
                 ) from None
-        return rounding_values.step_values(lo, hi, float(self.rounding))
+        return step_values(lo, hi, float(self.rounding))
 
     @property
     def has_continuous(self) -> bool:
@@ -1208,13 +1195,9 @@ class DiscreteAllocation:
         if key in self._polishers:
             self._polishers[key] = self._polishers.pop(key)  # most recently used last
             return self._polishers[key]
-        from .continuous import CompiledAllocation
-        from .exact import ExactAllocation, applicable
-        from .problem import prepare
-
         try:
-            problem = prepare(self._resolved_case(chosen), self.model, held)
-            solver = ExactAllocation(problem) if applicable(problem) else CompiledAllocation.from_problem(problem)
+            # the path allocate() takes for the same case with these processes held
+            solver = continuous_solver(prepare(self._resolved_case(chosen), self.model, held))
         except CaseError:
             solver = None
         self._polishers[key] = solver
@@ -1474,7 +1457,7 @@ class DiscreteAllocation:
 
     def _finish_rounding(self, alloc, overrides):
         """Attach the unrounded optimum and the cost of rounding."""
-        alloc.rounding = None if self.rounding is None else rounding_values.describe(self.rounding)
+        alloc.rounding = None if self.rounding is None else describe_rounding(self.rounding)
         alloc.unrounded_cost = None
         alloc.rounding_cost = None
         if self.rounding is None:
@@ -1494,17 +1477,13 @@ class DiscreteAllocation:
         return alloc
 
     def unrounded_solver(self):
-        """The solver of the same problem without rounding."""
+        """The solver of the same problem without rounding: the one ``allocate`` takes."""
         plain = replace(self.case, allocation=replace(self.case.allocation, rounding=None))
-        if needs_discrete(plain, self.fix):
-            return DiscreteAllocation(plain, self.model, self.fix, grid_points=self.grid_points,
-                                      gap_target=self.gap_target, time_limit=self.time_limit)
-        from .continuous import CompiledAllocation
-        from .exact import ExactAllocation, applicable
-        from .problem import prepare
-
-        problem = prepare(plain, self.model, self.fix)
-        return ExactAllocation(problem) if applicable(problem) else CompiledAllocation.from_problem(problem)
+        solver = continuous_solver_for(plain, self.model, self.fix)
+        if solver is not None:
+            return solver
+        return DiscreteAllocation(plain, self.model, self.fix, grid_points=self.grid_points,
+                                  gap_target=self.gap_target, time_limit=self.time_limit)
 
 
 def solver_for(case: Case, model: str, *, fix=None, **options) -> DiscreteAllocation:
