@@ -531,6 +531,7 @@ class DiscreteAllocation:
         self._unrounded = None
         self._last_choice = None  # (options, held tolerances) of the last polished optimum
         self._last_t = None  # its tolerances
+        self._solve_unrounded = None  # this solve's unrounded optimum (with rounding)
 
     # ------------------------------------------------------------------ options
 
@@ -1000,38 +1001,60 @@ class DiscreteAllocation:
         return np.array([cheapest_unit_cost(c, c.tolerance) for c in self.case.contributors], dtype=float)
 
     def _result(self, chosen_options, t, limits, *, status, message, gap, iterations,
-                labels=None, requirements=None, solver=SOLVER_NAME):
-        """The :class:`Allocation` for a choice, re-checked by the shared numpy check."""
+                labels=None, requirements=None, solver=SOLVER_NAME, lower_bound=None):
+        """The :class:`Allocation` for a choice, re-checked by the shared numpy check.
+
+        Built complete: the current cost of a contributor with processes is its cheapest
+        process that offers the current tolerance (the continuous problem knows only one);
+        ``requirements`` (the conic polish's, with shadow prices for the chosen processes
+        held) or none of the shadow prices (a discrete choice has no derivative with
+        respect to a limit); the grades, the rounding and the unrounded optimum.
+        """
         problem = AllocationProblem(self._resolved_case(chosen_options), self.model, self.fix)
         problem.processes = tuple(o.name for o in chosen_options)
         rtol = WORST_CASE_RTOL if self.model == "worst-case" else FALLOUT_RTOL
         if status == "optimal" and not problem.feasible(t, limits, rtol=rtol):
             status, message = "failed", "the chosen tolerances failed the re-check: " + message
-        alloc = problem.result(t, limits, status=status, message=message, solver=solver,
-                               iterations=iterations, gap=gap)
-        # the current cost of a contributor with processes: its cheapest process that
-        # offers the current tolerance (the continuous solver's problem knows only one)
         baseline = self._baseline_unit_costs()
-        alloc._unit_current = baseline
-        alloc.current_cost = float(np.sum(self.counts * baseline))
+        fields = dict(unit_cost_current=baseline, current_cost=float(np.sum(self.counts * baseline)),
+                      lower_bound=lower_bound)
         if requirements is not None:
-            # conic polish: shadow prices with the chosen processes held
-            alloc.requirements = list(requirements)
-        else:
-            # a discrete choice has no derivative with respect to a limit
-            alloc.requirements = [
-                replace(r, binding="", shadow_price=None, shadow_lower=None, shadow_upper=None,
-                        shadow_ppm=None)
-                for r in alloc.requirements
-            ]
+            fields["requirements"] = list(requirements)
         if labels is not None and any(labels):
-            alloc.grades = {n: g for n, g in zip(self.case.names, labels) if g}
-        return alloc
+            fields["grades"] = {n: g for n, g in zip(self.case.names, labels) if g}
+        fields.update(self._rounding_fields(problem.total_cost(t), message))
+        return problem.result(t, limits, status=status, solver=solver, iterations=iterations, gap=gap,
+                              marginal=requirements is not None, **fields)
 
     def _infeasible(self, limits, message):
-        alloc = self.reference.infeasible(limits, message, SOLVER_NAME)
-        alloc.processes = {n: "" for n in self.case.names}
-        return alloc
+        return self.reference.result(None, limits, status="infeasible", solver=SOLVER_NAME,
+                                     processes={n: "" for n in self.case.names},
+                                     **self._rounding_fields(None, message))
+
+    def _failed(self, limits, message):
+        return self.reference.result(None, limits, status="failed", solver=SOLVER_NAME,
+                                     processes={n: "" for n in self.case.names},
+                                     **self._rounding_fields(None, message))
+
+    def _rounding_fields(self, total_cost, message) -> dict:
+        """The rounding, the unrounded optimum of this solve and the cost of rounding.
+
+        With the ``message`` (which gains a note on the cost of rounding) as ``message``.
+        """
+        if self.rounding is None:
+            return {"message": message}
+        unrounded = self._solve_unrounded
+        described = describe_rounding(self.rounding)
+        fields = {"rounding": described, "unrounded": unrounded, "message": message}
+        if unrounded.total_cost is not None:
+            fields["unrounded_cost"] = unrounded.total_cost
+            if total_cost is not None:
+                fields["rounding_cost"] = total_cost - unrounded.total_cost
+                fields["message"] = (
+                    f"{message}; rounded to {described}: cost of rounding {fields['rounding_cost']:+.4g}"
+                    f" over the unrounded optimum {unrounded.total_cost:.6g}"
+                )
+        return fields
 
     # ------------------------------------------------------------------ solve
 
@@ -1067,16 +1090,16 @@ class DiscreteAllocation:
                         f"requirement '{req.name}': a fallout target of {lim.fallout_ppm:g} ppm "
                         "(50 % or more) is not supported with mean shift"
                     )
+        # with rounding: the unrounded optimum at these limits, reported in the result
+        self._solve_unrounded = self._unrounded_at(overrides)
         reason = self.reference.diagnose(limits)
         if reason:
             self._tangent_points = carried  # nothing learnt here: keep the last solve's cuts
-            return self._finish_rounding(self._infeasible(limits, reason), overrides)
+            return self._infeasible(limits, reason)
         self._carry_cuts(carried, limits)
         if self.has_continuous:
-            alloc = self._solve_with_polish(limits, overrides)
-        else:
-            alloc = self._solve_points(limits)
-        return self._finish_rounding(alloc, overrides)
+            return self._solve_with_polish(limits, overrides)
+        return self._solve_points(limits)
 
     def _sweep_grid(self, o: _Option) -> np.ndarray:
         """Starting grid of a continuous option when a previous solve's optimum is known.
@@ -1144,11 +1167,6 @@ class DiscreteAllocation:
                             status="optimal" if out.status == "optimal" else "failed",
                             message=message, gap=gap, iterations=out.solves,
                             labels=list(cand.label[out.choice]))
-
-    def _failed(self, limits, message):
-        alloc = self.reference.result(None, limits, status="failed", message=message, solver=SOLVER_NAME)
-        alloc.processes = {n: "" for n in self.case.names}
-        return alloc
 
     def _milp_infeasible_message(self) -> str:
         what = "rounded values" if self.rounding is not None else "offered options"
@@ -1293,10 +1311,8 @@ class DiscreteAllocation:
                f" after {rounds} refinement round{'s' if rounds != 1 else ''}{lower_note}")
         )
         solver = SOLVER_NAME + (f"+{polish_solver}" if how == "polished" and polish_solver else "")
-        alloc = self._result(chosen, t, limits, status="optimal", message=message, gap=gap,
-                             iterations=solves, requirements=requirements, solver=solver)
-        alloc.lower_bound = bound
-        return alloc
+        return self._result(chosen, t, limits, status="optimal", message=message, gap=gap,
+                            iterations=solves, requirements=requirements, solver=solver, lower_bound=bound)
 
     def _seed_lower_bound(self, chosen, t, limits):
         """Mean-shift cuts at a good solution: a breakpoint and a tangent at its δ.
@@ -1455,26 +1471,13 @@ class DiscreteAllocation:
 
     # ------------------------------------------------------------------ rounding
 
-    def _finish_rounding(self, alloc, overrides):
-        """Attach the unrounded optimum and the cost of rounding."""
-        alloc.rounding = None if self.rounding is None else describe_rounding(self.rounding)
-        alloc.unrounded_cost = None
-        alloc.rounding_cost = None
+    def _unrounded_at(self, overrides):
+        """With rounding: the optimum without it at these limits (else None)."""
         if self.rounding is None:
-            return alloc
+            return None
         if self._unrounded is None:
             self._unrounded = self.unrounded_solver()
-        unrounded = self._unrounded.solve(overrides)
-        alloc.unrounded = unrounded
-        if unrounded.total_cost is not None:
-            alloc.unrounded_cost = unrounded.total_cost
-            if alloc.total_cost is not None:
-                alloc.rounding_cost = alloc.total_cost - unrounded.total_cost
-                alloc.message += (
-                    f"; rounded to {alloc.rounding}: cost of rounding {alloc.rounding_cost:+.4g}"
-                    f" over the unrounded optimum {unrounded.total_cost:.6g}"
-                )
-        return alloc
+        return self._unrounded.solve(overrides)
 
     def unrounded_solver(self):
         """The solver of the same problem without rounding: the one ``allocate`` takes."""
