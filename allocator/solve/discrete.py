@@ -64,7 +64,7 @@ import math
 import os
 import sys
 import warnings
-from dataclasses import dataclass, replace
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 
@@ -235,6 +235,48 @@ class _MilpOutcome:
     cuts: int
     message: str = ""
     tolerances: np.ndarray | None = None  # each contributor's tolerance at the choice
+
+
+@dataclass
+class _MilpModel:
+    """One MILP over the candidates, before the cuts: columns, shares, objective, rows.
+
+    Columns: a binary ``x`` per candidate, then a continuous ``y`` per lower-bound cell
+    (``cells``: the candidates that are cells; the tolerance inside is ``t_hi·y``).
+    ``unit_w``, ``unit_s``, ``unit_d``, ``unit_v`` (requirements × candidates) are the
+    worst-case, σ, mean-shift and variance shares per unit tolerance (squared for
+    ``unit_v``). The cost is ``constant + objective·z / scale`` [currency].
+    """
+
+    cand: "_Candidates"
+    cells: np.ndarray
+    point: np.ndarray
+    t_hi: np.ndarray
+    unit_w: np.ndarray
+    unit_s: np.ndarray
+    unit_d: np.ndarray
+    unit_v: np.ndarray
+    objective: np.ndarray | None = None
+    constant: float = 0.0
+    scale: float = 1.0
+    base: "_Rows | None" = None
+    checks: list = field(default_factory=list)  # (r, kind, bound, lim) per requirement with limits
+
+    @property
+    def n_tau(self) -> int:
+        return int(self.cells.size)
+
+    def linear(self, unit):
+        """Row over [x, y] of Σ unit·t: t·x for points, t_hi·y for cells."""
+        t = self.cand.tolerance
+        return np.concatenate([np.where(self.point, unit * t, 0.0), unit[self.cells] * self.t_hi])
+
+    def variance(self, unit):
+        """Row over [x, y] of Σ unit·t²: exact for points, tangent at m for cells."""
+        t, m = self.cand.tolerance, self.cand.tangent
+        return np.concatenate([
+            np.where(self.point, unit * t * t, -unit * m * m), 2.0 * unit[self.cells] * m[self.cells] * self.t_hi
+        ])
 
 
 class _Rows:
@@ -689,57 +731,72 @@ class DiscreteAllocation:
         solution's cost, for the lower-bound MILP, whose optimum is at most the true one):
         HiGHS prunes with it. A solve that finds nothing below it is repeated without.
         """
-        size = cand.size
+        model = self._milp_model(cand)
+        refused = self._requirement_rows(model, limits)
+        if refused is not None:
+            return refused
+        return self._cut_loop(model, restricted, cutoff)
+
+    def _milp_model(self, cand: _Candidates) -> "_MilpModel":
+        """Columns, shares per unit tolerance, the scaled objective and the choice rows."""
         owner = cand.owner
         cells = np.flatnonzero(cand.cell)
-        n_tau = cells.size
-        point = ~cand.cell
-        t = cand.tolerance
         n = self.counts[owner]
         a = np.abs(self.sensitivity[:, owner])  # requirements × candidates
         f = cand.factor
-        unit_w = n * a  # worst-case share per unit tolerance
-        unit_s = np.sqrt(n) * a * f  # σ share per unit tolerance
-        unit_d = n * a * self.mean_shifts[owner]  # mean-shift share per unit tolerance
-        unit_v = n * (a * f) ** 2  # variance share per unit tolerance squared
+        model = _MilpModel(
+            cand=cand, cells=cells, point=~cand.cell, t_hi=cand.value[cells],
+            unit_w=n * a,  # worst-case share per unit tolerance
+            unit_s=np.sqrt(n) * a * f,  # σ share per unit tolerance
+            unit_d=n * a * self.mean_shifts[owner],  # mean-shift share per unit tolerance
+            unit_v=n * (a * f) ** 2,  # variance share per unit tolerance squared
+        )
+        model.objective, model.constant, model.scale = self._milp_objective(cand, cells, n)
+        model.base = self._choice_rows(model)
+        return model
+
+    def _milp_objective(self, cand: _Candidates, cells, n):
+        """The objective over [x, y], its constant [currency] and its scale.
+
+        Relative to each contributor's cheapest candidate, scaled to ~1e3: HiGHS's
+        absolute tolerances then mean ~1e-10 of the cost that can change; the cost is
+        ``constant + objective·z / scale``. Cells: ``n·(C(m) + C'(m)(τ − m)) − n·floor``,
+        a tangent below a convex cost (exact for a table, linear inside a cell).
+        """
+        owner = cand.owner
+        point = ~cand.cell
         t_hi = cand.value[cells]
-
-        def linear(unit):
-            """Row over [x, y] of Σ unit·t: t·x for points, t_hi·y for cells."""
-            return np.concatenate([np.where(point, unit * t, 0.0), unit[cells] * t_hi])
-
-        def variance(unit):
-            """Row over [x, y] of Σ unit·t²: exact for points, tangent at m for cells."""
-            m = cand.tangent
-            return np.concatenate([
-                np.where(point, unit * t * t, -unit * m * m), 2.0 * unit[cells] * m[cells] * t_hi
-            ])
-
-        # objective relative to each contributor's cheapest candidate, scaled to ~1e3:
-        # HiGHS's absolute tolerances then mean ~1e-10 of the cost that can change
         unit = cand.unit_cost
         floor = np.minimum.reduceat(unit, cand.starts)
         extra = n * (unit - floor[owner])
         constant = float(np.sum(self.counts * floor))
         typical = float(np.sum(np.maximum.reduceat(extra, cand.starts)))
         scale = OBJECTIVE_SCALE / typical if typical > 0 else 1.0
-        # cells: n·(C(m) + C'(m)(τ − m)) − n·floor, a tangent below a convex cost (exact
-        # for a table, linear inside a cell)
         intercept = np.where(point, unit, cand.tangent_cost - cand.cost_slope * cand.tangent)
         objective = np.concatenate([
             n * (intercept - floor[owner]), (n * cand.cost_slope)[cells] * t_hi
         ]) * scale
+        return objective, constant, scale
 
-        base = _Rows(size + n_tau)
+    def _choice_rows(self, model: "_MilpModel") -> _Rows:
+        """One candidate per contributor; ``t_lo/t_hi · x ≤ y ≤ x`` for every cell."""
+        cand, size, t = model.cand, model.cand.size, model.cand.tolerance
+        base = _Rows(size + model.n_tau)
         n_c = len(self.options)
         for i in range(n_c):  # Σ_j x_ij = 1
             lo_, hi_ = cand.starts[i], cand.starts[i + 1] if i + 1 < n_c else size
             base.add(np.ones(hi_ - lo_), 1.0, 1.0, cols=np.arange(lo_, hi_))
-        for k, c in enumerate(cells):  # t_lo/t_hi · x ≤ y ≤ x
-            base.add(np.array([t[c] / t_hi[k], -1.0]), 0.0, cols=np.array([c, size + k]))
+        for k, c in enumerate(model.cells):  # t_lo/t_hi · x ≤ y ≤ x
+            base.add(np.array([t[c] / model.t_hi[k], -1.0]), 0.0, cols=np.array([c, size + k]))
             base.add(np.array([-1.0, 1.0]), 0.0, cols=np.array([c, size + k]))
+        return base
 
-        checks = []  # (r, kind, bound, lim) per requirement with limits
+    def _requirement_rows(self, model: "_MilpModel", limits) -> _MilpOutcome | None:
+        """The rows of every requirement with limits (and its check for the cut loop).
+
+        Returns an 'infeasible' outcome when a nominal, or every choice's mean band,
+        reaches a limit; else None.
+        """
         for r, (req, lim) in enumerate(zip(self.requirements, limits)):
             if lim.lower is None and lim.upper is None:
                 continue
@@ -751,67 +808,58 @@ class DiscreteAllocation:
                 return _MilpOutcome("infeasible", None, None, None, None, 0, 0, 0,
                                     f"requirement '{req.name}': nominal outside its limits")
             if self.model == "worst-case":
-                base.add(linear(unit_w[r]) / room, 1.0)
-                checks.append((r, "worst-case", room, lim))
+                model.base.add(model.linear(model.unit_w[r]) / room, 1.0)
+                model.checks.append((r, "worst-case", room, lim))
             elif self.model == "rss":
                 sigma_max = stack.sigma_limit(req.nominal, lim.fallout, lim.lower, lim.upper)
-                base.add(variance(unit_v[r]) / sigma_max**2, 1.0)
-                checks.append((r, "rss", sigma_max, lim))
+                model.base.add(model.variance(model.unit_v[r]) / sigma_max**2, 1.0)
+                model.checks.append((r, "rss", sigma_max, lim))
             else:
-                # δ's least and largest value over the choices; equal when no choice moves
-                # the mean band (no contributor with a mean shift, or none free)
-                low = float(np.sum(np.minimum.reduceat(unit_d[r] * t, cand.starts)))
-                high = float(np.sum(np.maximum.reduceat(unit_d[r] * cand.value, cand.starts)))
-                if not low < room:
-                    # every choice puts the worst mean on or past a limit: fallout ≥ 50 %
-                    return _MilpOutcome("infeasible", None, None, None, None, 0, 0, 0,
-                                        f"requirement '{req.name}': the mean band reaches a limit")
-                if not high > low:
-                    # δ is the same constant for every choice (0 without mean shifts): the
-                    # requirement is rss with σ_max = g(δ), as in the continuous solvers
-                    sigma_max = mean_shift_allowance(req.nominal, low, lim)[0]
-                    base.add(variance(unit_v[r]) / sigma_max**2, 1.0)
-                    checks.append((r, "rss", sigma_max, lim))
-                    continue
-                # the worst mean must stay inside the limits (fallout ≥ 50 % otherwise)
-                base.add(linear(unit_d[r]) / room, 1.0)
-                checks.append((r, "mean-shift", room, lim))
-                key = (r, n_tau > 0)
-                if key not in self._breaks:
-                    # fine intervals make the points MILP exact in one solve as a rule; the
-                    # lower bound's MILP (continuous columns too) is faster with fewer
-                    involved = int(np.count_nonzero(np.maximum.reduceat(unit_d[r] + unit_s[r], cand.starts)))
-                    count = DELTA_INTERVALS_RELAXED if n_tau else min(DELTA_INTERVALS, max(16, 8 * involved))
-                    breaks = np.linspace(low, min(high, room), count + 1)
-                    seeds = [d for d in self._seeds.get(r, ()) if breaks[0] < d < breaks[-1]]
-                    self._breaks[key] = np.union1d(breaks, seeds) if n_tau else breaks
+                refused = self._mean_shift_requirement(model, r, req, lim, room)
+                if refused is not None:
+                    return refused
+        return None
 
+    def _mean_shift_requirement(self, model: "_MilpModel", r, req, lim, room) -> _MilpOutcome | None:
+        """Rows of one requirement under mean shift, and its δ breakpoints (kept per solve)."""
+        cand, n_tau = model.cand, model.n_tau
+        # δ's least and largest value over the choices; equal when no choice moves the
+        # mean band (no contributor with a mean shift, or none free)
+        low = float(np.sum(np.minimum.reduceat(model.unit_d[r] * cand.tolerance, cand.starts)))
+        high = float(np.sum(np.maximum.reduceat(model.unit_d[r] * cand.value, cand.starts)))
+        if not low < room:
+            # every choice puts the worst mean on or past a limit: fallout ≥ 50 %
+            return _MilpOutcome("infeasible", None, None, None, None, 0, 0, 0,
+                                f"requirement '{req.name}': the mean band reaches a limit")
+        if not high > low:
+            # δ is the same constant for every choice (0 without mean shifts): the
+            # requirement is rss with σ_max = g(δ), as in the continuous solvers
+            sigma_max = mean_shift_allowance(req.nominal, low, lim)[0]
+            model.base.add(model.variance(model.unit_v[r]) / sigma_max**2, 1.0)
+            model.checks.append((r, "rss", sigma_max, lim))
+            return None
+        # the worst mean must stay inside the limits (fallout ≥ 50 % otherwise)
+        model.base.add(model.linear(model.unit_d[r]) / room, 1.0)
+        model.checks.append((r, "mean-shift", room, lim))
+        key = (r, n_tau > 0)
+        if key not in self._breaks:
+            # fine intervals make the points MILP exact in one solve as a rule; the lower
+            # bound's MILP (continuous columns too) is faster with fewer
+            involved = int(np.count_nonzero(np.maximum.reduceat(model.unit_d[r] + model.unit_s[r], cand.starts)))
+            count = DELTA_INTERVALS_RELAXED if n_tau else min(DELTA_INTERVALS, max(16, 8 * involved))
+            breaks = np.linspace(low, min(high, room), count + 1)
+            seeds = [d for d in self._seeds.get(r, ()) if breaks[0] < d < breaks[-1]]
+            self._breaks[key] = np.union1d(breaks, seeds) if n_tau else breaks
+        return None
+
+    def _cut_loop(self, model: "_MilpModel", restricted: bool, cutoff) -> _MilpOutcome:
+        """Solve, add cuts for the requirements the choice misses, solve again."""
+        cand, size, n_tau = model.cand, model.cand.size, model.n_tau
         dominance = []  # (row over the candidates, right-hand side): only for points
-        integrality = np.concatenate([np.ones(size), np.zeros(n_tau)])
         solves = nodes = cuts = 0
         choice = objective_value = bound = None
         while solves < MAX_CUT_ROUNDS:
-            rows = base.copy()
-            for coef, rhs in dominance:
-                rows.add(coef, rhs)
-            extra_cols = []
-            for r, kind, room, lim in checks:
-                if kind == "mean-shift":
-                    self._mean_shift_rows(rows, (r, n_tau > 0), room, lim, linear, variance,
-                                          owner, unit_s, unit_d, unit_v, extra_cols,
-                                          restricted=restricted)
-            z = np.concatenate(extra_cols) if extra_cols else np.zeros(0)
-            rows.size = size + n_tau + z.size
-            milp_args = (np.concatenate([objective, np.zeros(z.size)]), rows, self.time_limit,
-                         np.concatenate([integrality, np.ones(z.size)]), np.ones(rows.size))
-            limit = None
-            if cutoff is not None and math.isfinite(cutoff):
-                limit = (cutoff - constant) * scale
-                limit += CUTOFF_SLACK * max(abs(limit), OBJECTIVE_SCALE)
-            res = _run_milp(*milp_args, cutoff=limit)
-            if limit is not None and (res.status == 2 or res.x is None):
-                # nothing below the cutoff (or the cutoff confused HiGHS): the plain solve decides
-                res = _run_milp(*milp_args)
+            res = self._milp_round(model, dominance, restricted, cutoff)
             solves += 1
             nodes += int(getattr(res, "mip_node_count", 0) or 0)
             if res.status == 2:
@@ -821,20 +869,20 @@ class DiscreteAllocation:
                 return _MilpOutcome("failed", None, None, bound, None, solves, nodes, cuts,
                                     f"HiGHS: {res.message}")
             if res.mip_dual_bound is not None:
-                bound = constant + float(res.mip_dual_bound) / scale
+                bound = model.constant + float(res.mip_dual_bound) / model.scale
             x = np.asarray(res.x, dtype=float)
             choice = self._choice(x[:size], cand)
-            realised = t.copy()
-            realised[cells] = x[size:size + n_tau] * t_hi
-            objective_value = constant + float(res.fun) / scale
+            realised = cand.tolerance.copy()
+            realised[model.cells] = x[size:size + n_tau] * model.t_hi
+            objective_value = model.constant + float(res.fun) / model.scale
             if res.status != 0:  # time or node limit with an incumbent
                 return _MilpOutcome("failed", choice, objective_value, bound, res.mip_gap, solves,
                                     nodes, cuts, f"HiGHS: {res.message}")
             if restricted:
                 return _MilpOutcome("optimal", choice, objective_value, None, None, solves, nodes, 0,
                                     tolerances=realised[choice])
-            added = self._cuts(checks, choice, cand, realised[choice], dominance,
-                               unit_w, unit_s, unit_d, unit_v, relaxed=n_tau > 0)
+            added = self._cuts(model.checks, choice, cand, realised[choice], dominance,
+                               model.unit_w, model.unit_s, model.unit_d, model.unit_v, relaxed=n_tau > 0)
             cuts += added
             if not added or (n_tau and solves >= MAX_RELAXED_ROUNDS):
                 # a relaxation stopped early is still a relaxation: its optimum bounds
@@ -843,6 +891,33 @@ class DiscreteAllocation:
                                     tolerances=realised[choice])
         return _MilpOutcome("failed", choice, objective_value, bound, None, solves, nodes, cuts,
                             f"lazy cuts did not converge in {MAX_CUT_ROUNDS} MILP solves")
+
+    def _milp_round(self, model: "_MilpModel", dominance, restricted: bool, cutoff):
+        """One HiGHS solve of the model with the cuts so far (pruned by ``cutoff``)."""
+        size, n_tau = model.cand.size, model.n_tau
+        rows = model.base.copy()
+        for coef, rhs in dominance:
+            rows.add(coef, rhs)
+        extra_cols = []
+        for r, kind, room, lim in model.checks:
+            if kind == "mean-shift":
+                self._mean_shift_rows(rows, (r, n_tau > 0), room, lim, model.linear, model.variance,
+                                      model.cand.owner, model.unit_s, model.unit_d, model.unit_v,
+                                      extra_cols, restricted=restricted)
+        z = np.concatenate(extra_cols) if extra_cols else np.zeros(0)
+        rows.size = size + n_tau + z.size
+        integrality = np.concatenate([np.ones(size), np.zeros(n_tau)])
+        milp_args = (np.concatenate([model.objective, np.zeros(z.size)]), rows, self.time_limit,
+                     np.concatenate([integrality, np.ones(z.size)]), np.ones(rows.size))
+        limit = None
+        if cutoff is not None and math.isfinite(cutoff):
+            limit = (cutoff - model.constant) * model.scale
+            limit += CUTOFF_SLACK * max(abs(limit), OBJECTIVE_SCALE)
+        res = _run_milp(*milp_args, cutoff=limit)
+        if limit is not None and (res.status == 2 or res.x is None):
+            # nothing below the cutoff (or the cutoff confused HiGHS): the plain solve decides
+            return _run_milp(*milp_args)
+        return res
 
     def _mean_shift_rows(self, rows, key, room, lim, linear, variance, owner,
                          unit_s, unit_d, unit_v, extra_cols, restricted=False):
