@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import json
 import math
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -562,17 +563,16 @@ def test_unknown_model_says_the_same_on_every_solver_path(case_file):
     assert issubclass(UsageError, ValueError)
 
 
-def test_discrete_contributor_is_refused_with_a_clear_message(monkeypatch):
-    import allocator.solve as solve
-
-    # without the discrete solver plugged in, the continuous one must refuse clearly
-    monkeypatch.setattr(solve, "_discrete_module", lambda: None)
+def test_discrete_contributor_is_refused_by_the_continuous_problem_with_a_clear_message():
+    # the continuous problem refuses a contributor that needs a choice of process, clearly;
+    # allocate() hands that case to the discrete solver
     proc = (Process("turning", (0.02, 0.1), CostCurve("reciprocal", a=3.0, b=0.05)),
             Process("grinding", (0.002, 0.01), CostCurve("reciprocal", a=9.0, b=0.02)))
     people = [Contributor(name="body", nominal=40.0, tolerance=0.03, processes=proc), contributor("x")]
     case = make_case(people, [chain_requirement("gap", {"body": 1, "x": -1}, lower=29.8, upper=30.2)])
     with pytest.raises(UsageError, match="body.*discrete"):
-        allocate(case, "rss")
+        prepare(case, "rss")
+    assert allocate(case, "rss").success
     # held, it is no longer a choice
     assert allocate(case, "rss", fix={"body": 0.03}).success
 
@@ -641,6 +641,77 @@ def test_solver_for_picks_the_exact_dual_for_one_requirement():
     one = make_case(shifted.contributors, shifted.requirements[:1])
     assert type(solver_for(one, "mean-shift")).__name__ == "MeanShiftExact"
     assert prepare(case, "rss").free.sum() == 7
+
+
+def test_each_kind_of_case_gets_the_documented_method_and_its_guarantee(tmp_path):
+    # the dispatch rule of docs/allocation.md ("Solvers"), as guarantees: one requirement
+    # without a choice is solved with a certified gap (dual bound) and no conic solver --
+    # cvxpy is never imported -- under every model (the 1-D dual, or Newton on the KKT
+    # conditions under mean shift); several requirements go to the conic problem; every
+    # optimum matches scipy.optimize (SLSQP) as an independent solver
+    import subprocess
+    import sys
+
+    from helpers import case_text
+
+    plain = multi_case(table=False)
+    shifted = multi_case(mean_shift=0.2, table=False)
+    kinds = [
+        (make_case(plain.contributors, plain.requirements[:1]), "worst-case"),
+        (make_case(plain.contributors, plain.requirements[:1]), "rss"),
+        (make_case(shifted.contributors, shifted.requirements[:1], models=("mean-shift",)), "mean-shift"),
+    ]
+    paths = []
+    for k, (case, model) in enumerate(kinds):
+        paths.append(str(tmp_path / f"kind{k}.toml"))
+        (tmp_path / f"kind{k}.toml").write_text(case_text(case))
+    code = (
+        "import json, sys\n"
+        "from allocator.case import load_case\n"
+        "from allocator.solve import allocate\n"
+        "rows = [allocate(load_case(p), m) for p, m in json.loads(sys.argv[1])]\n"
+        "print(json.dumps([[r.status, r.gap, r.total_cost] for r in rows] + ['cvxpy' in sys.modules]))\n"
+    )
+    pairs = [[p, model] for p, (_, model) in zip(paths, kinds)]
+    done = subprocess.run([sys.executable, "-c", code, json.dumps(pairs)], cwd=Path(__file__).resolve().parents[1],
+                          capture_output=True, text=True, timeout=300)
+    assert done.returncode == 0, done.stderr
+    *rows, conic = json.loads(done.stdout)
+    assert conic is False
+    for (case, model), (status, gap, cost) in zip(kinds, rows):
+        assert status == "optimal" and gap is not None and gap <= 1e-8, model
+        best, _ = slsqp_reference(case, model)
+        assert cost <= best * (1 + 1e-7), model
+    several = allocate(shifted, "mean-shift")
+    assert several.success and several.gap is not None and several.gap <= 1e-6
+    assert several.total_cost <= slsqp_reference(shifted, "mean-shift")[0] * (1 + 1e-7)
+
+
+def test_an_allocation_is_read_only_once_built():
+    # results complete at birth (docs/allocation.md): nothing is set on them afterwards
+    from dataclasses import FrozenInstanceError
+
+    result = allocate(multi_case(table=False), "rss")
+    for name, value in [("status", "failed"), ("message", ""), ("total_cost", 0.0),
+                        ("lower_bound", 1.0), ("unrounded", None), ("grades", {})]:
+        with pytest.raises(FrozenInstanceError):
+            setattr(result, name, value)
+    with pytest.raises(FrozenInstanceError):
+        del result.processes
+    with pytest.raises(TypeError):
+        result.processes["c0"] = "other"
+    with pytest.raises(TypeError):
+        result.held["c0"] = 0.1
+    with pytest.raises(AttributeError):
+        result.requirements.append(None)
+    copy = result.allocated_array()
+    copy[:] = 0.0
+    assert result.allocated_array()[0] > 0.0
+    # the views are copies: changing one leaves the allocation as it was
+    view = result.tolerances
+    view.iloc[0] = 0.0
+    assert result.tolerances.iloc[0] > 0.0
+    assert json.loads(json.dumps(result.to_dict()))["held"] == {}
 
 
 def test_requirement_leaving_exactly_the_tightest_tolerances_is_solved():

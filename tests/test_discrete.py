@@ -697,6 +697,50 @@ def test_fix_on_a_choose_table_must_be_a_listed_tolerance():
 # --------------------------------------------------------------------------- rounding
 
 
+_SHIFTED_ONE_REQUIREMENT = """
+from allocator.model import AllocationSettings, Case, Contributor, CostCurve, Requirement
+parts = [Contributor(name=f"p{i}", nominal=10.0 + i, tolerance=0.05, limits=(0.004, 0.2),
+                     mean_shift=0.2, cost=CostCurve("reciprocal-power", a=0.5 + 0.1 * i,
+                                                    b=1e-4 * (i + 1), k=1.5))
+         for i in range(4)]
+req = Requirement(name="gap", chain={"p0": 1, "p1": 1, "p2": -1, "p3": -1},
+                  lower=-4.15, upper=-3.85, fallout_ppm=500.0)
+case = Case(title="invented test case", contributors=tuple(parts), requirements=(req,),
+            units="mm", allocation=AllocationSettings(models=("mean-shift",), rounding=0.001))
+"""
+
+
+def test_unrounded_optimum_beside_a_rounded_one_is_the_one_allocate_gives():
+    # one rule picks the solver on every path (docs/allocation.md, "Solvers"): the
+    # unrounded optimum reported beside a rounded allocation is allocate()'s answer for the
+    # case without rounding, to round-off, and the polish and that unrounded optimum of one
+    # mean-shift requirement need no conic solver: cvxpy is never imported (regression:
+    # both took the conic solver, skipping the Newton method allocate() uses)
+    import subprocess
+    import sys
+
+    code = _SHIFTED_ONE_REQUIREMENT + (
+        "import sys\n"
+        "from allocator.solve import allocate\n"
+        "r = allocate(case, 'mean-shift')\n"
+        "print(r.status, repr(r.total_cost), repr(r.unrounded_cost), 'cvxpy' in sys.modules)\n"
+    )
+    done = subprocess.run([sys.executable, "-c", code], cwd=CASES.parent, capture_output=True,
+                          text=True, timeout=300)
+    assert done.returncode == 0, done.stderr
+    status, total, unrounded_cost, conic = done.stdout.split()
+    assert (status, conic) == ("optimal", "False")
+    namespace = {}
+    exec(_SHIFTED_ONE_REQUIREMENT, namespace)
+    case = namespace["case"]
+    plain = replace(case, allocation=replace(case.allocation, rounding=None))
+    unrounded = allocate(plain, "mean-shift")
+    assert unrounded.success and unrounded.gap <= 1e-8  # a certified optimum (dual bound)
+    assert float(unrounded_cost) == pytest.approx(unrounded.total_cost, rel=1e-12, abs=0.0)
+    # rounded tolerances are feasible choices of the same problem: never cheaper
+    assert float(total) >= unrounded.total_cost * (1 - 1e-9)
+
+
 def test_iso286_rounding_gives_standard_grades_and_costs_at_least_the_unrounded():
     sizes = {"flange": 12.0, "spacer": 25.0, "bearing": 19.0, "shoulder": 60.0}
     contributors = [

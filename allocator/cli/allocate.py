@@ -114,7 +114,7 @@ def _run_models(case, models, fix, run):
     Returns (results, baselines, crashed): a bug in one model must not hide the others.
     """
     from ..progress import progress_bar
-    from ..solve.discrete import needs_discrete
+    from ..solve.dispatch import needs_discrete
 
     results, baselines, crashed = [], [], []
     bar = progress_bar(len(models) * (2 if fix else 1), desc="allocate", unit="model",

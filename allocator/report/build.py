@@ -302,23 +302,19 @@ def write_report(case, path, models=None, **kwargs) -> Report:
 
 
 def _unrounded_allocations(case, allocations) -> dict:
-    """For rounded allocations without shadow prices: the same model solved without rounding.
+    """For rounded allocations without shadow prices: the same model's unrounded optimum.
 
     Rounding to a step makes the allocation a choice among listed values, whose cost has
-    no derivative; the unrounded optimum of the same case does have one, and its shadow
-    prices are what the limits are worth at the margin before rounding.
+    no derivative; the unrounded optimum of the same case (which the rounded allocation
+    carries as ``unrounded``) does have one, and its shadow prices are what the limits
+    are worth at the margin before rounding.
     """
-    from dataclasses import replace
-
-    from ..solve import allocate
-
     if case.allocation.rounding is None:
         return {}
-    plain = replace(case, allocation=replace(case.allocation, rounding=None))
     out = {}
     for model, result in allocations.items():
-        if result.success and not has_shadow_prices(result):
-            unrounded = allocate(plain, model)
+        unrounded = result.unrounded
+        if result.success and not has_shadow_prices(result) and unrounded is not None:
             if unrounded.success and has_shadow_prices(unrounded):
                 out[model] = unrounded
     return out

@@ -1,13 +1,15 @@
 """Least-cost tolerance allocation.
 
-``allocate(case, model)`` picks the solver:
+``allocate(case, model)`` takes the solver :mod:`.dispatch` picks (one rule for every
+path):
 
+- the discrete solver (:mod:`.discrete`) for rounding and for contributors that need a
+  choice of process or of listed tolerances;
 - the exact 1-D Lagrange dual (:mod:`.exact`) when the case has one requirement and the
-  model is worst-case or rss (no cvxpy import, fastest);
+  model is worst-case or rss (no cvxpy import, fastest); Newton on the KKT conditions for
+  one requirement under mean shift;
 - the convex conic formulation (:mod:`.continuous`) otherwise, with cutting planes for
-  two-sided mean shift;
-- the discrete solver (``solve/discrete.py``, when present) for contributors that need a
-  choice of process or of listed tolerances.
+  two-sided mean shift.
 
 Every answer is re-checked against the original requirements in plain numpy before it is
 called 'optimal' (see :mod:`.problem`).
@@ -15,11 +17,9 @@ called 'optimal' (see :mod:`.problem`).
 
 from __future__ import annotations
 
-import importlib.util
 from typing import Mapping, Sequence
 
-from ..errors import UsageError, did_you_mean
-from ..model import MODELS, Case
+from ..model import Case
 from .result import Allocation, RequirementResult
 
 __all__ = ["allocate", "allocate_all", "solver_for", "prepare", "Allocation", "RequirementResult"]
@@ -32,52 +32,27 @@ def prepare(case: Case, model: str, fix: Mapping[str, float] | None = None):
     return _prepare(case, model, fix)
 
 
-def _discrete_module():
-    """``allocator.solve.discrete`` if that solver is installed, else None."""
-    if importlib.util.find_spec("allocator.solve.discrete") is None:
-        return None
-    from . import discrete
-
-    return discrete
-
-
 def _default_model(case: Case) -> str:
     return case.allocation.models[0] if case.allocation.models else "worst-case"
 
 
-def solver_for(case: Case, model: str | None = None, *, fix: Mapping[str, float] | None = None):
+def solver_for(case: Case, model: str | None = None, *, fix: Mapping[str, float] | None = None, **options):
     """A solver object with ``.solve(overrides=None) -> Allocation`` for repeated use.
 
-    The exact dual when it applies, else a compiled conic problem
-    (:class:`~allocator.solve.continuous.CompiledAllocation`); building it once and calling
-    ``solve`` with limit overrides is what frontier sweeps do.
+    The method is the one rule of :mod:`.dispatch` (docs/allocation.md, "Solvers"): the
+    discrete solver for rounding or a choice of process (``options`` are its
+    ``grid_points``, ``gap_target``, ``time_limit``), else the exact dual, Newton on the
+    KKT conditions or a compiled conic problem. Building it once and calling ``solve``
+    with limit overrides is what frontier sweeps do.
     """
-    from .exact import ExactAllocation, MeanShiftExact, applicable, applicable_mean_shift
-    from .problem import NeedsDiscrete
+    from .dispatch import continuous_solver_for
 
-    model = model or _default_model(case)
-    if model not in MODELS:
-        # checked here, before the dispatch, so every solver path says the same
-        raise UsageError(f"unknown model {model!r}{did_you_mean(model, MODELS)} (choose from {', '.join(MODELS)})")
-    discrete = _discrete_module() if case.allocation.rounding is not None else None
-    if discrete is not None and hasattr(discrete, "solver_for"):
-        return discrete.solver_for(case, model, fix=fix)
-    try:
-        # prepare() finds contributors that need a choice in the same pass that builds
-        # the arrays (no separate scan of every contributor)
-        problem = prepare(case, model, fix)
-    except NeedsDiscrete:
-        discrete = _discrete_module()
-        if discrete is None or not hasattr(discrete, "solver_for"):
-            raise
-        return discrete.solver_for(case, model, fix=fix)
-    if applicable(problem):
-        return ExactAllocation(problem)
-    if applicable_mean_shift(problem):
-        return MeanShiftExact(problem)
-    from .continuous import CompiledAllocation
+    solver = continuous_solver_for(case, model or _default_model(case), fix)
+    if solver is not None:
+        return solver
+    from .discrete import DiscreteAllocation
 
-    return CompiledAllocation.from_problem(problem)
+    return DiscreteAllocation(case, model or _default_model(case), fix, **options)
 
 
 def allocate(

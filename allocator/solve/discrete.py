@@ -64,14 +64,16 @@ import math
 import os
 import sys
 import warnings
-from dataclasses import dataclass, replace
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 
 from .. import costs, stack
 from ..errors import CaseError, UsageError
 from ..model import MODELS, Case
-from . import rounding as rounding_values
+from .dispatch import continuous_solver, continuous_solver_for, needs_discrete
+from .rounding import describe as describe_rounding
+from .rounding import iso286_values, no_value_problem, step_values
 from .problem import (
     FALLOUT_RTOL,
     WORST_CASE_RTOL,
@@ -80,6 +82,7 @@ from .problem import (
     cheapest_unit_cost,
     Limits,
     mean_shift_allowance,
+    prepare,
 )
 
 __all__ = [
@@ -170,22 +173,6 @@ def _geometric_grid(lo: float, hi: float, points: int, curve) -> np.ndarray:
     return grid
 
 
-def needs_discrete(case: Case, fix=None) -> bool:
-    """True when allocating ``case`` needs this module.
-
-    A rounding setting; a free contributor with several processes or a ``choose`` table;
-    or a held one (``fixed``, or in ``fix``) at a tolerance several of its processes can
-    make (holding ``t`` leaves the choice among the processes whose range holds ``t``).
-    """
-    fix = fix or {}
-    if case.allocation.rounding is not None:
-        return True
-    return any(
-        c.needs_choice(c.tolerance if c.fixed else (float(fix[c.name]) if c.name in fix else None))
-        for c in case.contributors
-    )
-
-
 # --------------------------------------------------------------------------- candidates
 
 
@@ -248,6 +235,48 @@ class _MilpOutcome:
     cuts: int
     message: str = ""
     tolerances: np.ndarray | None = None  # each contributor's tolerance at the choice
+
+
+@dataclass
+class _MilpModel:
+    """One MILP over the candidates, before the cuts: columns, shares, objective, rows.
+
+    Columns: a binary ``x`` per candidate, then a continuous ``y`` per lower-bound cell
+    (``cells``: the candidates that are cells; the tolerance inside is ``t_hi·y``).
+    ``unit_w``, ``unit_s``, ``unit_d``, ``unit_v`` (requirements × candidates) are the
+    worst-case, σ, mean-shift and variance shares per unit tolerance (squared for
+    ``unit_v``). The cost is ``constant + objective·z / scale`` [currency].
+    """
+
+    cand: "_Candidates"
+    cells: np.ndarray
+    point: np.ndarray
+    t_hi: np.ndarray
+    unit_w: np.ndarray
+    unit_s: np.ndarray
+    unit_d: np.ndarray
+    unit_v: np.ndarray
+    objective: np.ndarray | None = None
+    constant: float = 0.0
+    scale: float = 1.0
+    base: "_Rows | None" = None
+    checks: list = field(default_factory=list)  # (r, kind, bound, lim) per requirement with limits
+
+    @property
+    def n_tau(self) -> int:
+        return int(self.cells.size)
+
+    def linear(self, unit):
+        """Row over [x, y] of Σ unit·t: t·x for points, t_hi·y for cells."""
+        t = self.cand.tolerance
+        return np.concatenate([np.where(self.point, unit * t, 0.0), unit[self.cells] * self.t_hi])
+
+    def variance(self, unit):
+        """Row over [x, y] of Σ unit·t²: exact for points, tangent at m for cells."""
+        t, m = self.cand.tolerance, self.cand.tangent
+        return np.concatenate([
+            np.where(self.point, unit * t * t, -unit * m * m), 2.0 * unit[self.cells] * m[self.cells] * self.t_hi
+        ])
 
 
 class _Rows:
@@ -544,6 +573,7 @@ class DiscreteAllocation:
         self._unrounded = None
         self._last_choice = None  # (options, held tolerances) of the last polished optimum
         self._last_t = None  # its tolerances
+        self._solve_unrounded = None  # this solve's unrounded optimum (with rounding)
 
     # ------------------------------------------------------------------ options
 
@@ -594,7 +624,7 @@ class DiscreteAllocation:
             options.append(_Option(i, k, p.name, p.limits, curve, factor(p), "points",
                                    points, _cost_at(curve, points), labels))
         if not options:
-            problem = rounding_values.no_value_problem(
+            problem = no_value_problem(
                 self.rounding, c.nominal, self.case.contributor_units(c.name), ranges
             )
             raise CaseError(
@@ -607,14 +637,14 @@ class DiscreteAllocation:
     def _rounded(self, c, lo, hi):
         if self.rounding == "iso286":
             try:
-                return rounding_values.iso286_values(c.nominal, self.case.contributor_units(c.name), lo, hi)
+                return iso286_values(c.nominal, self.case.contributor_units(c.name), lo, hi)
             except ValueError as err:
                 raise CaseError(
                     f"contributor '{c.name}': {err}",
                     file=str(self.case.path) if self.case.path is not None else None,
                     field="allocation.rounding",
                 ) from None
-        return rounding_values.step_values(lo, hi, float(self.rounding))
+        return step_values(lo, hi, float(self.rounding))
 
     @property
     def has_continuous(self) -> bool:
@@ -701,57 +731,72 @@ class DiscreteAllocation:
         solution's cost, for the lower-bound MILP, whose optimum is at most the true one):
         HiGHS prunes with it. A solve that finds nothing below it is repeated without.
         """
-        size = cand.size
+        model = self._milp_model(cand)
+        refused = self._requirement_rows(model, limits)
+        if refused is not None:
+            return refused
+        return self._cut_loop(model, restricted, cutoff)
+
+    def _milp_model(self, cand: _Candidates) -> "_MilpModel":
+        """Columns, shares per unit tolerance, the scaled objective and the choice rows."""
         owner = cand.owner
         cells = np.flatnonzero(cand.cell)
-        n_tau = cells.size
-        point = ~cand.cell
-        t = cand.tolerance
         n = self.counts[owner]
         a = np.abs(self.sensitivity[:, owner])  # requirements × candidates
         f = cand.factor
-        unit_w = n * a  # worst-case share per unit tolerance
-        unit_s = np.sqrt(n) * a * f  # σ share per unit tolerance
-        unit_d = n * a * self.mean_shifts[owner]  # mean-shift share per unit tolerance
-        unit_v = n * (a * f) ** 2  # variance share per unit tolerance squared
+        model = _MilpModel(
+            cand=cand, cells=cells, point=~cand.cell, t_hi=cand.value[cells],
+            unit_w=n * a,  # worst-case share per unit tolerance
+            unit_s=np.sqrt(n) * a * f,  # σ share per unit tolerance
+            unit_d=n * a * self.mean_shifts[owner],  # mean-shift share per unit tolerance
+            unit_v=n * (a * f) ** 2,  # variance share per unit tolerance squared
+        )
+        model.objective, model.constant, model.scale = self._milp_objective(cand, cells, n)
+        model.base = self._choice_rows(model)
+        return model
+
+    def _milp_objective(self, cand: _Candidates, cells, n):
+        """The objective over [x, y], its constant [currency] and its scale.
+
+        Relative to each contributor's cheapest candidate, scaled to ~1e3: HiGHS's
+        absolute tolerances then mean ~1e-10 of the cost that can change; the cost is
+        ``constant + objective·z / scale``. Cells: ``n·(C(m) + C'(m)(τ − m)) − n·floor``,
+        a tangent below a convex cost (exact for a table, linear inside a cell).
+        """
+        owner = cand.owner
+        point = ~cand.cell
         t_hi = cand.value[cells]
-
-        def linear(unit):
-            """Row over [x, y] of Σ unit·t: t·x for points, t_hi·y for cells."""
-            return np.concatenate([np.where(point, unit * t, 0.0), unit[cells] * t_hi])
-
-        def variance(unit):
-            """Row over [x, y] of Σ unit·t²: exact for points, tangent at m for cells."""
-            m = cand.tangent
-            return np.concatenate([
-                np.where(point, unit * t * t, -unit * m * m), 2.0 * unit[cells] * m[cells] * t_hi
-            ])
-
-        # objective relative to each contributor's cheapest candidate, scaled to ~1e3:
-        # HiGHS's absolute tolerances then mean ~1e-10 of the cost that can change
         unit = cand.unit_cost
         floor = np.minimum.reduceat(unit, cand.starts)
         extra = n * (unit - floor[owner])
         constant = float(np.sum(self.counts * floor))
         typical = float(np.sum(np.maximum.reduceat(extra, cand.starts)))
         scale = OBJECTIVE_SCALE / typical if typical > 0 else 1.0
-        # cells: n·(C(m) + C'(m)(τ − m)) − n·floor, a tangent below a convex cost (exact
-        # for a table, linear inside a cell)
         intercept = np.where(point, unit, cand.tangent_cost - cand.cost_slope * cand.tangent)
         objective = np.concatenate([
             n * (intercept - floor[owner]), (n * cand.cost_slope)[cells] * t_hi
         ]) * scale
+        return objective, constant, scale
 
-        base = _Rows(size + n_tau)
+    def _choice_rows(self, model: "_MilpModel") -> _Rows:
+        """One candidate per contributor; ``t_lo/t_hi · x ≤ y ≤ x`` for every cell."""
+        cand, size, t = model.cand, model.cand.size, model.cand.tolerance
+        base = _Rows(size + model.n_tau)
         n_c = len(self.options)
         for i in range(n_c):  # Σ_j x_ij = 1
             lo_, hi_ = cand.starts[i], cand.starts[i + 1] if i + 1 < n_c else size
             base.add(np.ones(hi_ - lo_), 1.0, 1.0, cols=np.arange(lo_, hi_))
-        for k, c in enumerate(cells):  # t_lo/t_hi · x ≤ y ≤ x
-            base.add(np.array([t[c] / t_hi[k], -1.0]), 0.0, cols=np.array([c, size + k]))
+        for k, c in enumerate(model.cells):  # t_lo/t_hi · x ≤ y ≤ x
+            base.add(np.array([t[c] / model.t_hi[k], -1.0]), 0.0, cols=np.array([c, size + k]))
             base.add(np.array([-1.0, 1.0]), 0.0, cols=np.array([c, size + k]))
+        return base
 
-        checks = []  # (r, kind, bound, lim) per requirement with limits
+    def _requirement_rows(self, model: "_MilpModel", limits) -> _MilpOutcome | None:
+        """The rows of every requirement with limits (and its check for the cut loop).
+
+        Returns an 'infeasible' outcome when a nominal, or every choice's mean band,
+        reaches a limit; else None.
+        """
         for r, (req, lim) in enumerate(zip(self.requirements, limits)):
             if lim.lower is None and lim.upper is None:
                 continue
@@ -763,67 +808,58 @@ class DiscreteAllocation:
                 return _MilpOutcome("infeasible", None, None, None, None, 0, 0, 0,
                                     f"requirement '{req.name}': nominal outside its limits")
             if self.model == "worst-case":
-                base.add(linear(unit_w[r]) / room, 1.0)
-                checks.append((r, "worst-case", room, lim))
+                model.base.add(model.linear(model.unit_w[r]) / room, 1.0)
+                model.checks.append((r, "worst-case", room, lim))
             elif self.model == "rss":
                 sigma_max = stack.sigma_limit(req.nominal, lim.fallout, lim.lower, lim.upper)
-                base.add(variance(unit_v[r]) / sigma_max**2, 1.0)
-                checks.append((r, "rss", sigma_max, lim))
+                model.base.add(model.variance(model.unit_v[r]) / sigma_max**2, 1.0)
+                model.checks.append((r, "rss", sigma_max, lim))
             else:
-                # δ's least and largest value over the choices; equal when no choice moves
-                # the mean band (no contributor with a mean shift, or none free)
-                low = float(np.sum(np.minimum.reduceat(unit_d[r] * t, cand.starts)))
-                high = float(np.sum(np.maximum.reduceat(unit_d[r] * cand.value, cand.starts)))
-                if not low < room:
-                    # every choice puts the worst mean on or past a limit: fallout ≥ 50 %
-                    return _MilpOutcome("infeasible", None, None, None, None, 0, 0, 0,
-                                        f"requirement '{req.name}': the mean band reaches a limit")
-                if not high > low:
-                    # δ is the same constant for every choice (0 without mean shifts): the
-                    # requirement is rss with σ_max = g(δ), as in the continuous solvers
-                    sigma_max = mean_shift_allowance(req.nominal, low, lim)[0]
-                    base.add(variance(unit_v[r]) / sigma_max**2, 1.0)
-                    checks.append((r, "rss", sigma_max, lim))
-                    continue
-                # the worst mean must stay inside the limits (fallout ≥ 50 % otherwise)
-                base.add(linear(unit_d[r]) / room, 1.0)
-                checks.append((r, "mean-shift", room, lim))
-                key = (r, n_tau > 0)
-                if key not in self._breaks:
-                    # fine intervals make the points MILP exact in one solve as a rule; the
-                    # lower bound's MILP (continuous columns too) is faster with fewer
-                    involved = int(np.count_nonzero(np.maximum.reduceat(unit_d[r] + unit_s[r], cand.starts)))
-                    count = DELTA_INTERVALS_RELAXED if n_tau else min(DELTA_INTERVALS, max(16, 8 * involved))
-                    breaks = np.linspace(low, min(high, room), count + 1)
-                    seeds = [d for d in self._seeds.get(r, ()) if breaks[0] < d < breaks[-1]]
-                    self._breaks[key] = np.union1d(breaks, seeds) if n_tau else breaks
+                refused = self._mean_shift_requirement(model, r, req, lim, room)
+                if refused is not None:
+                    return refused
+        return None
 
+    def _mean_shift_requirement(self, model: "_MilpModel", r, req, lim, room) -> _MilpOutcome | None:
+        """Rows of one requirement under mean shift, and its δ breakpoints (kept per solve)."""
+        cand, n_tau = model.cand, model.n_tau
+        # δ's least and largest value over the choices; equal when no choice moves the
+        # mean band (no contributor with a mean shift, or none free)
+        low = float(np.sum(np.minimum.reduceat(model.unit_d[r] * cand.tolerance, cand.starts)))
+        high = float(np.sum(np.maximum.reduceat(model.unit_d[r] * cand.value, cand.starts)))
+        if not low < room:
+            # every choice puts the worst mean on or past a limit: fallout ≥ 50 %
+            return _MilpOutcome("infeasible", None, None, None, None, 0, 0, 0,
+                                f"requirement '{req.name}': the mean band reaches a limit")
+        if not high > low:
+            # δ is the same constant for every choice (0 without mean shifts): the
+            # requirement is rss with σ_max = g(δ), as in the continuous solvers
+            sigma_max = mean_shift_allowance(req.nominal, low, lim)[0]
+            model.base.add(model.variance(model.unit_v[r]) / sigma_max**2, 1.0)
+            model.checks.append((r, "rss", sigma_max, lim))
+            return None
+        # the worst mean must stay inside the limits (fallout ≥ 50 % otherwise)
+        model.base.add(model.linear(model.unit_d[r]) / room, 1.0)
+        model.checks.append((r, "mean-shift", room, lim))
+        key = (r, n_tau > 0)
+        if key not in self._breaks:
+            # fine intervals make the points MILP exact in one solve as a rule; the lower
+            # bound's MILP (continuous columns too) is faster with fewer
+            involved = int(np.count_nonzero(np.maximum.reduceat(model.unit_d[r] + model.unit_s[r], cand.starts)))
+            count = DELTA_INTERVALS_RELAXED if n_tau else min(DELTA_INTERVALS, max(16, 8 * involved))
+            breaks = np.linspace(low, min(high, room), count + 1)
+            seeds = [d for d in self._seeds.get(r, ()) if breaks[0] < d < breaks[-1]]
+            self._breaks[key] = np.union1d(breaks, seeds) if n_tau else breaks
+        return None
+
+    def _cut_loop(self, model: "_MilpModel", restricted: bool, cutoff) -> _MilpOutcome:
+        """Solve, add cuts for the requirements the choice misses, solve again."""
+        cand, size, n_tau = model.cand, model.cand.size, model.n_tau
         dominance = []  # (row over the candidates, right-hand side): only for points
-        integrality = np.concatenate([np.ones(size), np.zeros(n_tau)])
         solves = nodes = cuts = 0
         choice = objective_value = bound = None
         while solves < MAX_CUT_ROUNDS:
-            rows = base.copy()
-            for coef, rhs in dominance:
-                rows.add(coef, rhs)
-            extra_cols = []
-            for r, kind, room, lim in checks:
-                if kind == "mean-shift":
-                    self._mean_shift_rows(rows, (r, n_tau > 0), room, lim, linear, variance,
-                                          owner, unit_s, unit_d, unit_v, extra_cols,
-                                          restricted=restricted)
-            z = np.concatenate(extra_cols) if extra_cols else np.zeros(0)
-            rows.size = size + n_tau + z.size
-            milp_args = (np.concatenate([objective, np.zeros(z.size)]), rows, self.time_limit,
-                         np.concatenate([integrality, np.ones(z.size)]), np.ones(rows.size))
-            limit = None
-            if cutoff is not None and math.isfinite(cutoff):
-                limit = (cutoff - constant) * scale
-                limit += CUTOFF_SLACK * max(abs(limit), OBJECTIVE_SCALE)
-            res = _run_milp(*milp_args, cutoff=limit)
-            if limit is not None and (res.status == 2 or res.x is None):
-                # nothing below the cutoff (or the cutoff confused HiGHS): the plain solve decides
-                res = _run_milp(*milp_args)
+            res = self._milp_round(model, dominance, restricted, cutoff)
             solves += 1
             nodes += int(getattr(res, "mip_node_count", 0) or 0)
             if res.status == 2:
@@ -833,20 +869,20 @@ class DiscreteAllocation:
                 return _MilpOutcome("failed", None, None, bound, None, solves, nodes, cuts,
                                     f"HiGHS: {res.message}")
             if res.mip_dual_bound is not None:
-                bound = constant + float(res.mip_dual_bound) / scale
+                bound = model.constant + float(res.mip_dual_bound) / model.scale
             x = np.asarray(res.x, dtype=float)
             choice = self._choice(x[:size], cand)
-            realised = t.copy()
-            realised[cells] = x[size:size + n_tau] * t_hi
-            objective_value = constant + float(res.fun) / scale
+            realised = cand.tolerance.copy()
+            realised[model.cells] = x[size:size + n_tau] * model.t_hi
+            objective_value = model.constant + float(res.fun) / model.scale
             if res.status != 0:  # time or node limit with an incumbent
                 return _MilpOutcome("failed", choice, objective_value, bound, res.mip_gap, solves,
                                     nodes, cuts, f"HiGHS: {res.message}")
             if restricted:
                 return _MilpOutcome("optimal", choice, objective_value, None, None, solves, nodes, 0,
                                     tolerances=realised[choice])
-            added = self._cuts(checks, choice, cand, realised[choice], dominance,
-                               unit_w, unit_s, unit_d, unit_v, relaxed=n_tau > 0)
+            added = self._cuts(model.checks, choice, cand, realised[choice], dominance,
+                               model.unit_w, model.unit_s, model.unit_d, model.unit_v, relaxed=n_tau > 0)
             cuts += added
             if not added or (n_tau and solves >= MAX_RELAXED_ROUNDS):
                 # a relaxation stopped early is still a relaxation: its optimum bounds
@@ -855,6 +891,33 @@ class DiscreteAllocation:
                                     tolerances=realised[choice])
         return _MilpOutcome("failed", choice, objective_value, bound, None, solves, nodes, cuts,
                             f"lazy cuts did not converge in {MAX_CUT_ROUNDS} MILP solves")
+
+    def _milp_round(self, model: "_MilpModel", dominance, restricted: bool, cutoff):
+        """One HiGHS solve of the model with the cuts so far (pruned by ``cutoff``)."""
+        size, n_tau = model.cand.size, model.n_tau
+        rows = model.base.copy()
+        for coef, rhs in dominance:
+            rows.add(coef, rhs)
+        extra_cols = []
+        for r, kind, room, lim in model.checks:
+            if kind == "mean-shift":
+                self._mean_shift_rows(rows, (r, n_tau > 0), room, lim, model.linear, model.variance,
+                                      model.cand.owner, model.unit_s, model.unit_d, model.unit_v,
+                                      extra_cols, restricted=restricted)
+        z = np.concatenate(extra_cols) if extra_cols else np.zeros(0)
+        rows.size = size + n_tau + z.size
+        integrality = np.concatenate([np.ones(size), np.zeros(n_tau)])
+        milp_args = (np.concatenate([model.objective, np.zeros(z.size)]), rows, self.time_limit,
+                     np.concatenate([integrality, np.ones(z.size)]), np.ones(rows.size))
+        limit = None
+        if cutoff is not None and math.isfinite(cutoff):
+            limit = (cutoff - model.constant) * model.scale
+            limit += CUTOFF_SLACK * max(abs(limit), OBJECTIVE_SCALE)
+        res = _run_milp(*milp_args, cutoff=limit)
+        if limit is not None and (res.status == 2 or res.x is None):
+            # nothing below the cutoff (or the cutoff confused HiGHS): the plain solve decides
+            return _run_milp(*milp_args)
+        return res
 
     def _mean_shift_rows(self, rows, key, room, lim, linear, variance, owner,
                          unit_s, unit_d, unit_v, extra_cols, restricted=False):
@@ -1013,38 +1076,60 @@ class DiscreteAllocation:
         return np.array([cheapest_unit_cost(c, c.tolerance) for c in self.case.contributors], dtype=float)
 
     def _result(self, chosen_options, t, limits, *, status, message, gap, iterations,
-                labels=None, requirements=None, solver=SOLVER_NAME):
-        """The :class:`Allocation` for a choice, re-checked by the shared numpy check."""
+                labels=None, requirements=None, solver=SOLVER_NAME, lower_bound=None):
+        """The :class:`Allocation` for a choice, re-checked by the shared numpy check.
+
+        Built complete: the current cost of a contributor with processes is its cheapest
+        process that offers the current tolerance (the continuous problem knows only one);
+        ``requirements`` (the conic polish's, with shadow prices for the chosen processes
+        held) or none of the shadow prices (a discrete choice has no derivative with
+        respect to a limit); the grades, the rounding and the unrounded optimum.
+        """
         problem = AllocationProblem(self._resolved_case(chosen_options), self.model, self.fix)
         problem.processes = tuple(o.name for o in chosen_options)
         rtol = WORST_CASE_RTOL if self.model == "worst-case" else FALLOUT_RTOL
         if status == "optimal" and not problem.feasible(t, limits, rtol=rtol):
             status, message = "failed", "the chosen tolerances failed the re-check: " + message
-        alloc = problem.result(t, limits, status=status, message=message, solver=solver,
-                               iterations=iterations, gap=gap)
-        # the current cost of a contributor with processes: its cheapest process that
-        # offers the current tolerance (the continuous solver's problem knows only one)
         baseline = self._baseline_unit_costs()
-        alloc._unit_current = baseline
-        alloc.current_cost = float(np.sum(self.counts * baseline))
+        fields = dict(unit_cost_current=baseline, current_cost=float(np.sum(self.counts * baseline)),
+                      lower_bound=lower_bound)
         if requirements is not None:
-            # conic polish: shadow prices with the chosen processes held
-            alloc.requirements = list(requirements)
-        else:
-            # a discrete choice has no derivative with respect to a limit
-            alloc.requirements = [
-                replace(r, binding="", shadow_price=None, shadow_lower=None, shadow_upper=None,
-                        shadow_ppm=None)
-                for r in alloc.requirements
-            ]
+            fields["requirements"] = list(requirements)
         if labels is not None and any(labels):
-            alloc.grades = {n: g for n, g in zip(self.case.names, labels) if g}
-        return alloc
+            fields["grades"] = {n: g for n, g in zip(self.case.names, labels) if g}
+        fields.update(self._rounding_fields(problem.total_cost(t), message))
+        return problem.result(t, limits, status=status, solver=solver, iterations=iterations, gap=gap,
+                              marginal=requirements is not None, **fields)
 
     def _infeasible(self, limits, message):
-        alloc = self.reference.infeasible(limits, message, SOLVER_NAME)
-        alloc.processes = {n: "" for n in self.case.names}
-        return alloc
+        return self.reference.result(None, limits, status="infeasible", solver=SOLVER_NAME,
+                                     processes={n: "" for n in self.case.names},
+                                     **self._rounding_fields(None, message))
+
+    def _failed(self, limits, message):
+        return self.reference.result(None, limits, status="failed", solver=SOLVER_NAME,
+                                     processes={n: "" for n in self.case.names},
+                                     **self._rounding_fields(None, message))
+
+    def _rounding_fields(self, total_cost, message) -> dict:
+        """The rounding, the unrounded optimum of this solve and the cost of rounding.
+
+        With the ``message`` (which gains a note on the cost of rounding) as ``message``.
+        """
+        if self.rounding is None:
+            return {"message": message}
+        unrounded = self._solve_unrounded
+        described = describe_rounding(self.rounding)
+        fields = {"rounding": described, "unrounded": unrounded, "message": message}
+        if unrounded.total_cost is not None:
+            fields["unrounded_cost"] = unrounded.total_cost
+            if total_cost is not None:
+                fields["rounding_cost"] = total_cost - unrounded.total_cost
+                fields["message"] = (
+                    f"{message}; rounded to {described}: cost of rounding {fields['rounding_cost']:+.4g}"
+                    f" over the unrounded optimum {unrounded.total_cost:.6g}"
+                )
+        return fields
 
     # ------------------------------------------------------------------ solve
 
@@ -1080,16 +1165,16 @@ class DiscreteAllocation:
                         f"requirement '{req.name}': a fallout target of {lim.fallout_ppm:g} ppm "
                         "(50 % or more) is not supported with mean shift"
                     )
+        # with rounding: the unrounded optimum at these limits, reported in the result
+        self._solve_unrounded = self._unrounded_at(overrides)
         reason = self.reference.diagnose(limits)
         if reason:
             self._tangent_points = carried  # nothing learnt here: keep the last solve's cuts
-            return self._finish_rounding(self._infeasible(limits, reason), overrides)
+            return self._infeasible(limits, reason)
         self._carry_cuts(carried, limits)
         if self.has_continuous:
-            alloc = self._solve_with_polish(limits, overrides)
-        else:
-            alloc = self._solve_points(limits)
-        return self._finish_rounding(alloc, overrides)
+            return self._solve_with_polish(limits, overrides)
+        return self._solve_points(limits)
 
     def _sweep_grid(self, o: _Option) -> np.ndarray:
         """Starting grid of a continuous option when a previous solve's optimum is known.
@@ -1158,11 +1243,6 @@ class DiscreteAllocation:
                             message=message, gap=gap, iterations=out.solves,
                             labels=list(cand.label[out.choice]))
 
-    def _failed(self, limits, message):
-        alloc = self.reference.result(None, limits, status="failed", message=message, solver=SOLVER_NAME)
-        alloc.processes = {n: "" for n in self.case.names}
-        return alloc
-
     def _milp_infeasible_message(self) -> str:
         what = "rounded values" if self.rounding is not None else "offered options"
         return (
@@ -1208,13 +1288,9 @@ class DiscreteAllocation:
         if key in self._polishers:
             self._polishers[key] = self._polishers.pop(key)  # most recently used last
             return self._polishers[key]
-        from .continuous import CompiledAllocation
-        from .exact import ExactAllocation, applicable
-        from .problem import prepare
-
         try:
-            problem = prepare(self._resolved_case(chosen), self.model, held)
-            solver = ExactAllocation(problem) if applicable(problem) else CompiledAllocation.from_problem(problem)
+            # the path allocate() takes for the same case with these processes held
+            solver = continuous_solver(prepare(self._resolved_case(chosen), self.model, held))
         except CaseError:
             solver = None
         self._polishers[key] = solver
@@ -1310,10 +1386,8 @@ class DiscreteAllocation:
                f" after {rounds} refinement round{'s' if rounds != 1 else ''}{lower_note}")
         )
         solver = SOLVER_NAME + (f"+{polish_solver}" if how == "polished" and polish_solver else "")
-        alloc = self._result(chosen, t, limits, status="optimal", message=message, gap=gap,
-                             iterations=solves, requirements=requirements, solver=solver)
-        alloc.lower_bound = bound
-        return alloc
+        return self._result(chosen, t, limits, status="optimal", message=message, gap=gap,
+                            iterations=solves, requirements=requirements, solver=solver, lower_bound=bound)
 
     def _seed_lower_bound(self, chosen, t, limits):
         """Mean-shift cuts at a good solution: a breakpoint and a tangent at its δ.
@@ -1472,39 +1546,22 @@ class DiscreteAllocation:
 
     # ------------------------------------------------------------------ rounding
 
-    def _finish_rounding(self, alloc, overrides):
-        """Attach the unrounded optimum and the cost of rounding."""
-        alloc.rounding = None if self.rounding is None else rounding_values.describe(self.rounding)
-        alloc.unrounded_cost = None
-        alloc.rounding_cost = None
+    def _unrounded_at(self, overrides):
+        """With rounding: the optimum without it at these limits (else None)."""
         if self.rounding is None:
-            return alloc
+            return None
         if self._unrounded is None:
             self._unrounded = self.unrounded_solver()
-        unrounded = self._unrounded.solve(overrides)
-        alloc.unrounded = unrounded
-        if unrounded.total_cost is not None:
-            alloc.unrounded_cost = unrounded.total_cost
-            if alloc.total_cost is not None:
-                alloc.rounding_cost = alloc.total_cost - unrounded.total_cost
-                alloc.message += (
-                    f"; rounded to {alloc.rounding}: cost of rounding {alloc.rounding_cost:+.4g}"
-                    f" over the unrounded optimum {unrounded.total_cost:.6g}"
-                )
-        return alloc
+        return self._unrounded.solve(overrides)
 
     def unrounded_solver(self):
-        """The solver of the same problem without rounding."""
+        """The solver of the same problem without rounding: the one ``allocate`` takes."""
         plain = replace(self.case, allocation=replace(self.case.allocation, rounding=None))
-        if needs_discrete(plain, self.fix):
-            return DiscreteAllocation(plain, self.model, self.fix, grid_points=self.grid_points,
-                                      gap_target=self.gap_target, time_limit=self.time_limit)
-        from .continuous import CompiledAllocation
-        from .exact import ExactAllocation, applicable
-        from .problem import prepare
-
-        problem = prepare(plain, self.model, self.fix)
-        return ExactAllocation(problem) if applicable(problem) else CompiledAllocation.from_problem(problem)
+        solver = continuous_solver_for(plain, self.model, self.fix)
+        if solver is not None:
+            return solver
+        return DiscreteAllocation(plain, self.model, self.fix, grid_points=self.grid_points,
+                                  gap_target=self.gap_target, time_limit=self.time_limit)
 
 
 def solver_for(case: Case, model: str, *, fix=None, **options) -> DiscreteAllocation:

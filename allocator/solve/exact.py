@@ -486,6 +486,10 @@ class MeanShiftExact:
     ----------
     problem : AllocationProblem
         Must satisfy :func:`applicable_mean_shift`.
+    fallback : callable, optional
+        Builds the solver that answers when Newton does not settle (the compiled conic
+        problem, as :func:`allocator.solve.dispatch.continuous_solver` passes it); called
+        at most once. Without it such a solve returns status 'failed'.
 
     Notes
     -----
@@ -523,7 +527,7 @@ class MeanShiftExact:
 
     SOLVER_NAME = "lagrange-newton"
 
-    def __init__(self, problem: AllocationProblem):
+    def __init__(self, problem: AllocationProblem, *, fallback=None):
         if not applicable_mean_shift(problem):
             raise ValueError("needs one requirement under mean shift with free mean shifts")
         self.problem = problem
@@ -544,6 +548,7 @@ class MeanShiftExact:
         self.delta_held = float(np.sum(n_held * v[held] * t_held))
         self.held_cost = float(np.sum((problem.counts * problem.unit_costs(problem.held))[held]))
         self.evaluations = 0
+        self._fallback = fallback
         self._conic = None
 
     def tolerances(self, alpha: float, beta: float) -> np.ndarray:
@@ -579,10 +584,11 @@ class MeanShiftExact:
                     solver=self.SOLVER_NAME, iterations=self.evaluations, gap=gap, multipliers=[mu],
                 )
         # Newton did not settle (or its answer did not verify): the conic solver decides
+        if self._fallback is None:
+            return problem.result(None, limits, status="failed", solver=self.SOLVER_NAME,
+                                  message="Newton on the KKT conditions did not settle (no fallback solver given)")
         if self._conic is None:
-            from .continuous import CompiledAllocation
-
-            self._conic = CompiledAllocation.from_problem(problem)
+            self._conic = self._fallback()
         return self._conic.solve(overrides)
 
     def _kkt(self, lim):

@@ -19,7 +19,7 @@ Nothing here imports cvxpy or pandas.
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import Mapping
 
 import numpy as np
@@ -680,12 +680,19 @@ class AllocationProblem:
         iterations: int = 0,
         gap: float | None = None,
         multipliers=None,
+        marginal: bool = True,
+        **fields,
     ) -> Allocation:
         """Build the :class:`Allocation` for tolerances ``t`` (None when infeasible).
 
         ``multipliers`` holds, per requirement, ``-∂cost/∂(allowance)``: for worst case
         the allowance is the half-width room ``min(ȳ − L, U − ȳ)``, for the statistical
-        models the largest allowed σ [currency per response unit].
+        models the largest allowed σ [currency per response unit]. ``marginal=False``
+        leaves out binding limits and shadow prices (a discrete choice has no derivative
+        with respect to a limit). ``fields`` are further :class:`Allocation` arguments
+        (e.g. ``rounding``), or ones that replace what this problem gives
+        (``unit_cost_current``, ``current_cost``, ``requirements``): the result is built
+        complete, once.
         """
         case = self.case
         current_unit = self.unit_costs(self.current)
@@ -714,7 +721,7 @@ class AllocationProblem:
             held={n: float(v) for n, v, k in zip(self.names, self.held, self.hold_kind) if k == "held"},
         )
         if t is None:
-            return Allocation(**kwargs, requirements=[])
+            return Allocation(**{**kwargs, "requirements": [], **fields})
         unit = self.unit_costs(t)
         stats = self.statistics(t, limits)
         multipliers = [0.0] * len(self.requirements) if multipliers is None else multipliers
@@ -738,14 +745,18 @@ class AllocationProblem:
                     units=case.requirement_units(req.name),
                 )
             )
-        return Allocation(
+        if not marginal:
+            records = [replace(r, binding="", shadow_price=None, shadow_lower=None, shadow_upper=None,
+                               shadow_ppm=None) for r in records]
+        return Allocation(**{
             **kwargs,
-            allocated=np.asarray(t, dtype=float),
-            unit_cost_allocated=unit,
-            total_cost=float(np.sum(self.counts * unit)),
-            bounds=self.bound_flags(t),
-            requirements=records,
-        )
+            "allocated": np.asarray(t, dtype=float),
+            "unit_cost_allocated": unit,
+            "total_cost": float(np.sum(self.counts * unit)),
+            "bounds": self.bound_flags(t),
+            "requirements": records,
+            **fields,
+        })
 
     def infeasible(self, limits, message: str, solver: str = "") -> Allocation:
         return self.result(None, limits, status="infeasible", message=message, solver=solver)

@@ -9,7 +9,8 @@ pandas objects (``tolerances``, ``to_frame`` ...); :meth:`Allocation.rows` and
 from __future__ import annotations
 
 import math
-from dataclasses import asdict, dataclass
+from dataclasses import FrozenInstanceError, asdict, dataclass
+from types import MappingProxyType
 
 import numpy as np
 
@@ -121,6 +122,27 @@ class Allocation:
     contributor_units : dict
         Contributor name -> units label of its tolerances (its own, else the case's);
         the constructor takes only the labels that differ from ``units``.
+    rounding : str or None
+        How the discrete solver rounded the tolerances (e.g. 'multiples of 0.001'); None
+        without ``[allocation].rounding``.
+    grades : dict
+        Contributor name -> ISO 286 grade ('IT7') with ``rounding = "iso286"``.
+    unrounded : Allocation or None
+        With rounding: the optimum of the same case without rounding, as ``allocate``
+        gives it.
+    unrounded_cost : float or None
+        Its total cost [currency].
+    rounding_cost : float or None
+        ``total_cost − unrounded_cost`` [currency].
+    lower_bound : float or None
+        A proven lower bound on the least cost, where the discrete solver computed one
+        (``gap`` is relative to it) [currency].
+
+    Notes
+    -----
+    Complete when built and read-only afterwards: assigning or deleting an attribute
+    raises :class:`dataclasses.FrozenInstanceError` (an AttributeError). ``processes``,
+    ``held`` and ``grades`` are read-only mappings, ``requirements`` a tuple.
     """
 
     def __init__(
@@ -150,43 +172,60 @@ class Allocation:
         total_cost=None,
         bounds=None,
         contributor_units=None,
+        rounding=None,
+        grades=None,
+        unrounded=None,
+        unrounded_cost=None,
+        rounding_cost=None,
+        lower_bound=None,
     ):
         if status not in STATUSES:
             raise ValueError(f"unknown status {status!r}")
-        self.model = model
-        self.status = status
-        self.message = message
-        self.names = tuple(names)
-        self._current = np.asarray(current, dtype=float)
-        self._counts = np.asarray(counts, dtype=float)
-        # each free contributor's tolerance range [tightest, loosest] (NaN when held):
-        # the contract's ``limits``, the JSON's "tightest" and "loosest"
-        self._tightest = np.asarray(lower_bounds, dtype=float)
-        self._loosest = np.asarray(upper_bounds, dtype=float)
-        self._unit_current = np.asarray(unit_cost_current, dtype=float)
-        self.current_cost = float(current_cost)
-        self.processes = dict(processes)
-        self.solver = solver
-        self.iterations = int(iterations)
-        self.gap = gap
-        self.units = units
-        self._own_units = dict(contributor_units or {})  # only labels that differ from ``units``
-        self.currency = currency
-        self.title = title
-        self.held = dict(held)
-        # set by the discrete solver when [allocation].rounding applies
-        self.rounding = None  # e.g. 'multiples of 0.001'
-        self.unrounded_cost = None  # the optimum without rounding [currency]
-        self.rounding_cost = None  # total_cost − unrounded_cost [currency]
-        self.grades = {}  # contributor -> ISO 286 grade ('IT7') with rounding = "iso286"
-        self.requirements = list(requirements)
-        self._allocated = None if allocated is None else np.asarray(allocated, dtype=float)
-        self._unit_allocated = (
-            None if unit_cost_allocated is None else np.asarray(unit_cost_allocated, dtype=float)
+        self._build(
+            model=model,
+            status=status,
+            message=message,
+            names=tuple(names),
+            _current=_frozen_array(current),
+            _counts=_frozen_array(counts),
+            # each free contributor's tolerance range [tightest, loosest] (NaN when held):
+            # the contract's ``limits``, the JSON's "tightest" and "loosest"
+            _tightest=_frozen_array(lower_bounds),
+            _loosest=_frozen_array(upper_bounds),
+            _unit_current=_frozen_array(unit_cost_current),
+            current_cost=float(current_cost),
+            processes=MappingProxyType(dict(processes)),
+            solver=solver,
+            iterations=int(iterations),
+            gap=gap,
+            units=units,
+            _own_units=MappingProxyType(dict(contributor_units or {})),  # labels that differ from ``units``
+            currency=currency,
+            title=title,
+            held=MappingProxyType(dict(held)),
+            rounding=rounding,  # e.g. 'multiples of 0.001'
+            unrounded=unrounded,
+            unrounded_cost=None if unrounded_cost is None else float(unrounded_cost),
+            rounding_cost=None if rounding_cost is None else float(rounding_cost),
+            grades=MappingProxyType(dict(grades or {})),
+            lower_bound=None if lower_bound is None else float(lower_bound),
+            requirements=tuple(requirements),
+            _allocated=None if allocated is None else _frozen_array(allocated),
+            _unit_allocated=None if unit_cost_allocated is None else _frozen_array(unit_cost_allocated),
+            total_cost=None if total_cost is None else float(total_cost),
+            # 'tightest' | 'loosest' | 'fixed' | '' per contributor: the JSON's "bound"
+            _bound_flags=tuple(bounds) if bounds is not None else ("",) * len(tuple(names)),
         )
-        self.total_cost = None if total_cost is None else float(total_cost)
-        # 'tightest' | 'loosest' | 'fixed' | '' per contributor: the JSON's "bound"
-        self._bound_flags = tuple(bounds) if bounds is not None else ("",) * len(self.names)
+
+    def _build(self, **fields):
+        for name, value in fields.items():
+            object.__setattr__(self, name, value)
+
+    def __setattr__(self, name, value):
+        raise FrozenInstanceError(f"cannot assign to field {name!r}: an Allocation is read-only")
+
+    def __delattr__(self, name):
+        raise FrozenInstanceError(f"cannot delete field {name!r}: an Allocation is read-only")
 
     # ------------------------------------------------------------------ numbers
 
@@ -226,7 +265,8 @@ class Allocation:
     def _series(self, values, name):
         import pandas as pd
 
-        return pd.Series(values, index=pd.Index(self.names, name="contributor"), name=name)
+        # a copy: the Allocation's own arrays are read-only
+        return pd.Series(np.array(values), index=pd.Index(self.names, name="contributor"), name=name)
 
     @property
     def tolerances(self):
@@ -310,14 +350,14 @@ class Allocation:
             ),
             "contributors": self.rows(),
             "requirements": [r.to_dict() for r in self.requirements],
-            "held": self.held,
+            "held": dict(self.held),
             "solver": self.solver,
             "iterations": self.iterations,
             "gap": self.gap,
             "rounding": self.rounding,
             "unrounded_cost": self.unrounded_cost,
             "rounding_cost": self.rounding_cost,
-            "grades": self.grades,
+            "grades": dict(self.grades),
             "units": self.units,
             "currency": self.currency,
         }
@@ -348,6 +388,12 @@ class Allocation:
         if self.message:
             lines.append(f"  {self.message}")
         return "\n".join(lines)
+
+
+def _frozen_array(values) -> np.ndarray:
+    out = np.array(values, dtype=float)
+    out.flags.writeable = False
+    return out
 
 
 def _finite(x):
