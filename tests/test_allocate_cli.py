@@ -21,49 +21,11 @@ from allocator.case import load_case
 from allocator.cli.main import cli
 from allocator.errors import UsageError
 from allocator.solve import allocate
+from helpers import BRACKET
 
 CASES = Path(__file__).resolve().parents[1] / "cases"
 GEARBOX = CASES / "gearbox_end_play.toml"
 
-# Invented for this test: a three-part bracket stack with one requirement.
-BRACKET = """\
-# Invented test case, not real product data.
-title = "Invented bracket stack"
-units = "mm"
-currency = "EUR"
-
-[[contributor]]
-name = "plate"
-nominal = 12.0
-tolerance = 0.05
-limits = [0.01, 0.2]
-cost = { curve = "reciprocal", a = 0.5, b = 0.01 }
-
-[[contributor]]
-name = "washer"
-nominal = 1.5
-tolerance = 0.02
-limits = [0.005, 0.1]
-count = 2
-cost = { curve = "exponential", a = 0.05, b = 0.4, c = 30.0 }
-
-[[contributor]]
-name = "boss"
-nominal = 8.8
-tolerance = 0.04
-limits = [0.01, 0.15]
-cost = { curve = "reciprocal-power", a = 1.0, b = 0.0002, k = 2.0 }
-
-[[requirement]]
-name = "clearance"
-chain = { plate = 1, washer = -1, boss = -1 }
-lower = {lower}
-upper = 0.35
-fallout_ppm = 100
-
-[allocation]
-models = ["worst-case", "rss"]
-"""
 
 
 def _write(tmp_path, lower=0.05):

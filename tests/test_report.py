@@ -26,6 +26,7 @@ from allocator.ppm import format_ppm
 from allocator.report import CAUTIONS, SECTIONS, build_report, fmt_input, fmt_number, fmt_tolerance
 from allocator.simulate import verify
 from allocator.solve import allocate
+from helpers import BRACKET
 
 ROOT = Path(__file__).resolve().parent.parent
 CASES = ROOT / "cases"
@@ -547,43 +548,9 @@ def test_same_report_command_keeps_the_path_as_given(tmp_path, monkeypatch):
     assert words[words.index("--samples") + 1] == "2000"
 
 
-# Invented for this test: the current design misses its worst case (0.2 ± 0.13 against a
+# The invented bracket stack of tests/helpers.py with lower = 0.1: the current design misses its worst case (0.2 ± 0.13 against a
 # lower limit of 0.1), so the worst-case allocation must tighten and costs more than today.
-DEARER = """\
-# Invented test case, not real product data.
-title = "Invented bracket stack"
-units = "mm"
-currency = "EUR"
-
-[[contributor]]
-name = "plate"
-nominal = 12.0
-tolerance = 0.05
-limits = [0.01, 0.2]
-cost = { curve = "reciprocal", a = 0.5, b = 0.01 }
-
-[[contributor]]
-name = "washer"
-nominal = 1.5
-tolerance = 0.02
-limits = [0.005, 0.1]
-count = 2
-cost = { curve = "exponential", a = 0.05, b = 0.4, c = 30.0 }
-
-[[contributor]]
-name = "boss"
-nominal = 8.8
-tolerance = 0.04
-limits = [0.01, 0.15]
-cost = { curve = "reciprocal-power", a = 1.0, b = 0.0002, k = 2.0 }
-
-[[requirement]]
-name = "clearance"
-chain = { plate = 1, washer = -1, boss = -1 }
-lower = 0.1
-upper = 0.35
-fallout_ppm = 100
-"""
+DEARER = BRACKET.replace("{lower}", "0.1")
 
 
 def test_a_dearer_allocation_reads_costs_more():
