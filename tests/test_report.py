@@ -548,8 +548,9 @@ def test_same_report_command_keeps_the_path_as_given(tmp_path, monkeypatch):
     assert words[words.index("--samples") + 1] == "2000"
 
 
-# The invented bracket stack of tests/helpers.py with lower = 0.1: the current design misses its worst case (0.2 ± 0.13 against a
-# lower limit of 0.1), so the worst-case allocation must tighten and costs more than today.
+# The invented bracket stack of tests/helpers.py with lower = 0.1: the current design misses
+# its worst case (0.2 ± 0.13 against a lower limit of 0.1), so the worst-case allocation must
+# tighten and costs more than today.
 DEARER = BRACKET.replace("{lower}", "0.1")
 
 
