@@ -89,6 +89,7 @@ class RequirementAnalysis:
         return math.inf if self.sigma == 0 else d / (3.0 * self.sigma)
 
     def to_dict(self) -> dict:
+        """JSON-ready dict of this requirement's numbers (the ``--json`` output)."""
         return {
             "name": self.name,
             "nominal": self.nominal,
@@ -147,6 +148,7 @@ class StackAnalysis:
         return "\n".join(lines)
 
     def to_dict(self) -> dict:
+        """JSON-ready dict: one entry per requirement under ``requirements``."""
         return {"requirements": [r.to_dict() for r in self.requirements]}
 
     def to_frame(self):

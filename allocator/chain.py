@@ -181,7 +181,8 @@ class CompiledExpression:
     names: tuple[str, ...]  # contributor names used (stable order)
     _fn: Callable
 
-    def evaluate(self, values: Mapping[str, object]):
+    def evaluate(self, values: Mapping[str, object]) -> np.ndarray | float:
+        """The expression at ``values`` (name -> number or array); nan or inf where undefined."""
         with np.errstate(all="ignore"):
             return self._fn(values)
 

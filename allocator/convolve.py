@@ -174,6 +174,7 @@ class LinearSumDistribution:
 
     @property
     def half_points(self) -> int:
+        """Grid points on each side of the centre point."""
         return (len(self.masses) - 1) // 2
 
     @property

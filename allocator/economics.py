@@ -272,9 +272,11 @@ class FalloutOptimum:
 
     @property
     def success(self) -> bool:
+        """True when ``status`` is 'optimal' or 'boundary' (:mod:`allocator.status`)."""
         return self.status in (_status.OPTIMAL, _status.BOUNDARY)
 
     def to_dict(self, *, curve: bool = False) -> dict:
+        """JSON-ready dict of every field (the cost curve too when ``curve=True``)."""
         out = asdict(self)
         if not curve:
             out.pop("curve_ppm")
@@ -323,9 +325,11 @@ class FalloutEconomics:
 
     @property
     def success(self) -> bool:
+        """True when ``status`` is 'optimal' (:mod:`allocator.status`)."""
         return self.status == _status.OPTIMAL
 
     def result(self, model: str) -> FalloutOptimum:
+        """The optimum of ``model`` (KeyError if it was not solved)."""
         for r in self.results:
             if r.model == model:
                 return r
@@ -355,6 +359,7 @@ class FalloutEconomics:
         return pd.DataFrame(rows)
 
     def to_dict(self, *, curve: bool = False) -> dict:
+        """JSON-ready dict: the requirement and one entry per model (curves when ``curve=True``)."""
         return {
             "requirement": self.requirement,
             "scrap_cost": self.scrap_cost,

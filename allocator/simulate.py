@@ -155,9 +155,11 @@ class RequirementCheck:
 
     @property
     def failures(self) -> int:
+        """Assemblies outside the limits: below + above + undefined."""
         return self.below + self.above + self.undefined
 
     def to_dict(self, histogram: bool = True) -> dict:
+        """JSON-ready dict of the check (the histogram too unless ``histogram=False``)."""
         out = {
             "name": self.name,
             "samples": self.samples,
@@ -248,6 +250,7 @@ class Verification:
         raise KeyError(name)
 
     def to_dict(self, histogram: bool = True) -> dict:
+        """JSON-ready dict: status, seed, settings and one entry per requirement check."""
         return {
             "status": self.status,
             "success": self.success,

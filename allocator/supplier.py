@@ -169,6 +169,7 @@ class Loosening:
     units: str = ""
 
     def to_dict(self) -> dict:
+        """JSON-ready dict of the row."""
         return {
             "contributor": self.contributor,
             "count": self.count,
@@ -214,6 +215,7 @@ class SupplierSheet:
 
     @property
     def success(self) -> bool:
+        """True when ``status`` is 'optimal' (:mod:`allocator.status`)."""
         return self.status == _status.OPTIMAL
 
     def __getitem__(self, name: str) -> Loosening:
@@ -223,6 +225,7 @@ class SupplierSheet:
         raise KeyError(name)
 
     def to_dict(self) -> dict:
+        """JSON-ready dict: model, status, step and one entry per row."""
         return {
             "model": self.model,
             "status": self.status,

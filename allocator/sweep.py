@@ -140,6 +140,7 @@ class Frontier:
 
     @property
     def success(self) -> bool:
+        """True when ``status`` is 'optimal' or 'partial' (:mod:`allocator.status`)."""
         return self.status in ("optimal", "partial")
 
     @property
@@ -302,6 +303,7 @@ class LimitSweep:
 
     @property
     def method(self) -> str:
+        """How each point is solved, in words (for the report and ``--verbose``)."""
         if self.flat:
             return "solved once (worst case does not use the fallout target)"
         if self.batch is not None:
@@ -322,7 +324,8 @@ class LimitSweep:
 
         return not self.flat and self.batch is None and isinstance(self.solver, DiscreteAllocation)
 
-    def overrides(self, value) -> dict:
+    def overrides(self, value: float) -> dict:
+        """The limit override ``{requirement: {vary: value}}`` for one swept value."""
         return {self.requirement: {self.vary: float(value)}}
 
     def solve(self, value):

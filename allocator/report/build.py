@@ -115,6 +115,7 @@ class Report:
 
     @property
     def success(self) -> bool:
+        """True when ``status`` is 'ok' (:data:`allocator.status.REPORT`)."""
         return self.status == _status.OK
 
     @property
@@ -124,10 +125,12 @@ class Report:
 
     @property
     def section_ids(self) -> tuple[str, ...]:
+        """HTML ids of the report's sections, in order."""
         return tuple(s for s, _ in SECTIONS)
 
     @property
     def headings(self) -> tuple[str, ...]:
+        """Headings of the report's sections, in order."""
         return tuple(h for _, h in SECTIONS)
 
     def __repr__(self) -> str:
