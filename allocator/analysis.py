@@ -15,6 +15,8 @@ from .model import per_unit
 from .ppm import fraction_to_ppm
 
 if TYPE_CHECKING:
+    import pandas as pd
+
     from .model import Case
 
 
@@ -151,7 +153,7 @@ class StackAnalysis:
         """JSON-ready dict: one entry per requirement under ``requirements``."""
         return {"requirements": [r.to_dict() for r in self.requirements]}
 
-    def to_frame(self):
+    def to_frame(self) -> pd.DataFrame:
         """One row per requirement (pandas DataFrame, index ``requirement``)."""
         import pandas as pd
 
@@ -162,7 +164,7 @@ class StackAnalysis:
             rows.append(d)
         return pd.DataFrame(rows).set_index("name").rename_axis("requirement")
 
-    def contributions_frame(self):
+    def contributions_frame(self) -> pd.DataFrame:
         """One row per (requirement, contributor) with a nonzero sensitivity (index
         ``requirement``, ``contributor``)."""
         import pandas as pd

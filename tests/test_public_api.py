@@ -153,3 +153,29 @@ def test_every_public_function_class_method_and_property_has_a_docstring():
             missing.append(qualified)
     assert not missing, f"{len(missing)} without a docstring: {missing}"
 
+
+def _untyped(qualified, function, skip_first):
+    import inspect
+
+    signature = inspect.signature(function)
+    params = list(signature.parameters.values())[1 if skip_first else 0:]
+    bare = [p.name for p in params if p.annotation is inspect.Parameter.empty]
+    if signature.return_annotation is inspect.Signature.empty:
+        bare.append("return")
+    return [f"{qualified}({', '.join(bare)})"] if bare else []
+
+
+def test_every_public_function_and_method_has_type_hints():
+    import inspect
+
+    missing = []
+    for qualified, obj in _public_objects().items():
+        if inspect.isfunction(obj):
+            missing += _untyped(qualified, obj, skip_first=False)
+        elif inspect.isclass(obj):
+            for name, raw in _members(obj):
+                if isinstance(raw, (staticmethod, classmethod)):
+                    missing += _untyped(f"{qualified}.{name}", raw.__func__, isinstance(raw, classmethod))
+                elif inspect.isfunction(raw):
+                    missing += _untyped(f"{qualified}.{name}", raw, skip_first=True)
+    assert not missing, f"{len(missing)} without full type hints: {missing}"

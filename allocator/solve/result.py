@@ -259,7 +259,7 @@ class Allocation:
             return None
         return self.total_cost - other.total_cost
 
-    def allocated_array(self):
+    def allocated_array(self) -> np.ndarray | None:
         """Allocated tolerances as a numpy array in case order (None when infeasible)."""
         return None if self._allocated is None else self._allocated.copy()
 
@@ -323,14 +323,14 @@ class Allocation:
             )
         return out
 
-    def to_frame(self):
+    def to_frame(self) -> pd.DataFrame:
         """Per-contributor DataFrame (index ``contributor``): current, allocated, bound,
         unit costs, count, limits."""
         import pandas as pd
 
         return pd.DataFrame(self.rows()).set_index("contributor")
 
-    def requirements_frame(self):
+    def requirements_frame(self) -> pd.DataFrame:
         """Per-requirement DataFrame (index ``requirement``): ranges, σ, fallout vs target,
         shadow prices."""
         import pandas as pd
