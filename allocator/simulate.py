@@ -44,7 +44,7 @@ from numpy.typing import ArrayLike
 from . import stack
 from .chain import compile_expression, linearise, nominal_values
 from .convolve import linear_sum_distribution
-from .errors import CaseError
+from .errors import CaseError, UsageError, unknown_names
 from .ppm import fraction_to_ppm
 
 if TYPE_CHECKING:  # pandas is imported where it is used
@@ -410,9 +410,11 @@ def _tolerance_array(case, tolerances) -> np.ndarray:
         t = case.current_tolerances
     elif isinstance(tolerances, Mapping) or hasattr(tolerances, "items"):
         t = case.current_tolerances.copy()
-        for name, value in dict(tolerances.items()).items():
-            if name not in case.names:
-                raise CaseError("unknown contributor", field=f"tolerances.{name}")
+        given = dict(tolerances.items())
+        problem = unknown_names("contributor", given, case.names)
+        if problem:  # a wrong argument, as in analyze and allocate
+            raise UsageError(f"tolerances: {problem}")
+        for name, value in given.items():
             t[case.index(name)] = float(value)
     else:
         t = np.asarray(tolerances, dtype=float).copy()
@@ -666,6 +668,14 @@ def verify(
     Returns
     -------
     Verification
+
+    Raises
+    ------
+    UsageError
+        ``tolerances`` names a contributor the case does not have (with a did-you-mean).
+    CaseError
+        A tolerance that is not a positive finite number (field ``tolerances.<name>``), an
+        array of the wrong length, an allocation without tolerances, or an unknown process.
 
     Notes
     -----
