@@ -191,7 +191,7 @@ class Loosening:
         }
 
 
-@dataclass
+@dataclass(frozen=True)
 class SupplierSheet:
     """Result of :func:`supplier_sheet`.
 

@@ -33,7 +33,7 @@ _PREFERENCE = ("mean-shift", "rss", "worst-case")
 VERSION_PACKAGES = ("numpy", "scipy", "cvxpy", "pandas", "matplotlib")
 
 
-@dataclass
+@dataclass(frozen=True)
 class Report:
     """Everything the HTML report shows, as the library computed it.
 
