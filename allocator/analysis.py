@@ -15,6 +15,8 @@ from .model import per_unit
 from .ppm import fraction_to_ppm
 
 if TYPE_CHECKING:
+    import pandas as pd
+
     from .model import Case
 
 
@@ -89,6 +91,7 @@ class RequirementAnalysis:
         return math.inf if self.sigma == 0 else d / (3.0 * self.sigma)
 
     def to_dict(self) -> dict:
+        """JSON-ready dict of this requirement's numbers (the ``--json`` output)."""
         return {
             "name": self.name,
             "nominal": self.nominal,
@@ -147,9 +150,10 @@ class StackAnalysis:
         return "\n".join(lines)
 
     def to_dict(self) -> dict:
+        """JSON-ready dict: one entry per requirement under ``requirements``."""
         return {"requirements": [r.to_dict() for r in self.requirements]}
 
-    def to_frame(self):
+    def to_frame(self) -> pd.DataFrame:
         """One row per requirement (pandas DataFrame, index ``requirement``)."""
         import pandas as pd
 
@@ -160,7 +164,7 @@ class StackAnalysis:
             rows.append(d)
         return pd.DataFrame(rows).set_index("name").rename_axis("requirement")
 
-    def contributions_frame(self):
+    def contributions_frame(self) -> pd.DataFrame:
         """One row per (requirement, contributor) with a nonzero sensitivity (index
         ``requirement``, ``contributor``)."""
         import pandas as pd

@@ -21,6 +21,7 @@ import hashlib
 import io
 import keyword
 import math
+import os
 import re
 import tomllib
 from pathlib import Path
@@ -917,7 +918,7 @@ def _too_large(size: int) -> str:
     )
 
 
-def loads_case(text: str, *, source: str = "<string>", base_dir=None) -> Case:
+def loads_case(text: str, *, source: str = "<string>", base_dir: str | os.PathLike | None = None) -> Case:
     """Validate case-file text and build a :class:`~allocator.model.Case`.
 
     Parameters
@@ -949,7 +950,7 @@ def loads_case(text: str, *, source: str = "<string>", base_dir=None) -> Case:
     return _build(_parse(text, src), src, None, hashlib.sha256(data).hexdigest())
 
 
-def load_case(path) -> Case:
+def load_case(path: str | os.PathLike) -> Case:
     """Read, validate and build the case in ``path``.
 
     Parameters

@@ -18,9 +18,12 @@ import ast
 import math
 from dataclasses import dataclass
 from functools import lru_cache
-from typing import Callable, Mapping
+from typing import TYPE_CHECKING, Callable, Iterable, Mapping
 
 import numpy as np
+
+if TYPE_CHECKING:  # allocator.model imports this module
+    from .model import Case, Requirement
 
 MAX_EXPRESSION_LENGTH = 10_000
 MAX_EXPRESSION_DEPTH = 200
@@ -181,12 +184,13 @@ class CompiledExpression:
     names: tuple[str, ...]  # contributor names used (stable order)
     _fn: Callable
 
-    def evaluate(self, values: Mapping[str, object]):
+    def evaluate(self, values: Mapping[str, object]) -> np.ndarray | float:
+        """The expression at ``values`` (name -> number or array); nan or inf where undefined."""
         with np.errstate(all="ignore"):
             return self._fn(values)
 
 
-def compile_expression(text: str, names=None) -> CompiledExpression:
+def compile_expression(text: str, names: Iterable[str] | None = None) -> CompiledExpression:
     """Parse and check ``text``; raise :class:`ExpressionError` if it is not allowed.
 
     Parameters
@@ -278,12 +282,12 @@ class Linearisation:
     linear: bool
 
 
-def nominal_values(case) -> dict[str, float]:
+def nominal_values(case: Case) -> dict[str, float]:
     """Each contributor's value at nominal as it enters a response: ``count · nominal``."""
     return {c.name: c.count * c.nominal for c in case.contributors}
 
 
-def linearise(case, requirement) -> Linearisation:
+def linearise(case: Case, requirement: Requirement) -> Linearisation:
     """Nominal response and exact sensitivities of ``requirement`` in ``case``.
 
     For a chain the sensitivities are the coefficients; for an expression they are
@@ -312,12 +316,12 @@ def linearise(case, requirement) -> Linearisation:
     return Linearisation(requirement.name, y0, a, False)
 
 
-def linearise_all(case) -> list[Linearisation]:
+def linearise_all(case: Case) -> list[Linearisation]:
     """:func:`linearise` for every requirement, in case order."""
     return [linearise(case, r) for r in case.requirements]
 
 
-def evaluate_response(case, requirement, values: Mapping[str, np.ndarray]) -> np.ndarray:
+def evaluate_response(case: Case, requirement: Requirement, values: Mapping[str, np.ndarray]) -> np.ndarray:
     """Exact response of ``requirement`` for sampled contributor values.
 
     ``values[name]`` is the sum over the contributor's ``count`` instances (an array);

@@ -27,8 +27,10 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
+from typing import Sequence
 
 import numpy as np
+from numpy.typing import ArrayLike
 from scipy import fft, special
 
 __all__ = [
@@ -51,7 +53,7 @@ MIN_STEPS_PER_SIGMA = 8
 NORMAL_CUT = 13.5
 
 
-def uniform_cdf(x, half_width: float):
+def uniform_cdf(x: ArrayLike, half_width: float) -> np.ndarray:
     """CDF of the uniform distribution on ``[−c, c]``.
 
     Parameters
@@ -70,7 +72,7 @@ def uniform_cdf(x, half_width: float):
     return np.clip((x + half_width) / (2.0 * half_width), 0.0, 1.0)
 
 
-def triangular_cdf(x, half_width: float):
+def triangular_cdf(x: ArrayLike, half_width: float) -> np.ndarray:
     """CDF of the symmetric triangular distribution on ``[−c, c]`` (mode 0).
 
     Parameters
@@ -174,6 +176,7 @@ class LinearSumDistribution:
 
     @property
     def half_points(self) -> int:
+        """Grid points on each side of the centre point."""
         return (len(self.masses) - 1) // 2
 
     @property
@@ -215,7 +218,7 @@ class LinearSumDistribution:
         """``P(y > x)``, computed directly (no ``1 − cdf``)."""
         return self._tail(float(x), upper=True)
 
-    def fallout(self, lower=None, upper=None) -> tuple[float, float]:
+    def fallout(self, lower: float | None = None, upper: float | None = None) -> tuple[float, float]:
         """``(P(y < lower), P(y > upper))``; a missing limit contributes 0."""
         below = 0.0 if lower is None else self.cdf(lower)
         above = 0.0 if upper is None else self.sf(upper)
@@ -223,11 +226,11 @@ class LinearSumDistribution:
 
 
 def linear_sum_distribution(
-    coefficients,
-    counts,
-    tolerances,
-    distributions,
-    sigma_factors,
+    coefficients: ArrayLike,
+    counts: ArrayLike,
+    tolerances: ArrayLike,
+    distributions: Sequence[str],
+    sigma_factors: ArrayLike,
     *,
     mean: float = 0.0,
     bulk_points: int = BULK_POINTS,

@@ -8,9 +8,13 @@ without a call to ``to_frame()``. pandas is imported only then.
 from __future__ import annotations
 
 import html
+from typing import TYPE_CHECKING
+
+if TYPE_CHECKING:  # pandas is imported by the caller
+    import pandas as pd
 
 
-def result_html(heading: str, frame, message: str = "") -> str:
+def result_html(heading: str, frame: pd.DataFrame, message: str = "") -> str:
     """``<p>heading</p>`` (with the message, escaped) followed by ``frame.to_html()``.
 
     Examples

@@ -27,15 +27,19 @@ from __future__ import annotations
 
 import math
 from dataclasses import asdict, dataclass, field
-from typing import Callable, Sequence
+from typing import TYPE_CHECKING, Callable, Sequence
 
 import numpy as np
+from numpy.typing import ArrayLike
 
 from . import status as _status
 from .errors import UsageError
 from .model import Case
 from .ppm import PER_MILLION, ppm_to_fraction
 from .progress import progress_bar
+
+if TYPE_CHECKING:  # pandas is imported where it is used
+    import pandas as pd
 
 __all__ = [
     "scrap_cost_per_assembly",
@@ -55,7 +59,7 @@ REFINE_ESTIMATE = 20  # allocations after the scan, per model (for the progress 
 STATISTICAL = ("rss", "mean-shift")
 
 
-def scrap_cost_per_assembly(fallout_ppm, scrap_cost):
+def scrap_cost_per_assembly(fallout_ppm: ArrayLike, scrap_cost: float) -> float | np.ndarray:
     """Expected scrap cost carried by one assembly.
 
     Parameters
@@ -84,7 +88,9 @@ def scrap_cost_per_assembly(fallout_ppm, scrap_cost):
     return np.multiply(scrap_cost, ppm_to_fraction(np.asarray(fallout_ppm, dtype=float)))
 
 
-def cost_per_assembly(manufacturing, fallout_ppm, scrap_cost):
+def cost_per_assembly(
+    manufacturing: ArrayLike, fallout_ppm: ArrayLike, scrap_cost: float
+) -> float | np.ndarray:
     """Manufacturing plus expected scrap cost per assembly.
 
     Parameters
@@ -114,7 +120,7 @@ def cost_per_assembly(manufacturing, fallout_ppm, scrap_cost):
     return np.add(manufacturing, scrap_cost_per_assembly(fallout_ppm, scrap_cost))
 
 
-def annual_cost(per_assembly, volume):
+def annual_cost(per_assembly: ArrayLike, volume: float) -> float | np.ndarray:
     """Cost per year: per-assembly cost times assemblies per year (None without a volume).
 
     Examples
@@ -127,7 +133,9 @@ def annual_cost(per_assembly, volume):
     return float(per_assembly) * float(volume)
 
 
-def minimise_log(func: Callable[[float], float], grid, *, xatol: float = 1e-7):
+def minimise_log(
+    func: Callable[[float], float], grid: ArrayLike, *, xatol: float = 1e-7
+) -> tuple[float | None, float, np.ndarray]:
     """Minimise ``func`` over a positive 1-D interval: coarse scan, then Brent in log x.
 
     Parameters
@@ -272,9 +280,11 @@ class FalloutOptimum:
 
     @property
     def success(self) -> bool:
+        """True when ``status`` is 'optimal' or 'boundary' (:mod:`allocator.status`)."""
         return self.status in (_status.OPTIMAL, _status.BOUNDARY)
 
     def to_dict(self, *, curve: bool = False) -> dict:
+        """JSON-ready dict of every field (the cost curve too when ``curve=True``)."""
         out = asdict(self)
         if not curve:
             out.pop("curve_ppm")
@@ -323,15 +333,17 @@ class FalloutEconomics:
 
     @property
     def success(self) -> bool:
+        """True when ``status`` is 'optimal' (:mod:`allocator.status`)."""
         return self.status == _status.OPTIMAL
 
     def result(self, model: str) -> FalloutOptimum:
+        """The optimum of ``model`` (KeyError if it was not solved)."""
         for r in self.results:
             if r.model == model:
                 return r
         raise KeyError(model)
 
-    def to_frame(self):
+    def to_frame(self) -> pd.DataFrame:
         """One row per model: optimum, costs per assembly and per year, the check."""
         import pandas as pd
 
@@ -342,7 +354,7 @@ class FalloutEconomics:
 
         return result_html(f"Fallout economics of {self.requirement}: {self.status}", self.to_frame(), self.message)
 
-    def curve_frame(self):
+    def curve_frame(self) -> pd.DataFrame:
         """The coarse scan as a tidy frame: ppm, model, manufacturing, scrap, total."""
         import pandas as pd
 
@@ -355,6 +367,7 @@ class FalloutEconomics:
         return pd.DataFrame(rows)
 
     def to_dict(self, *, curve: bool = False) -> dict:
+        """JSON-ready dict: the requirement and one entry per model (curves when ``curve=True``)."""
         return {
             "requirement": self.requirement,
             "scrap_cost": self.scrap_cost,

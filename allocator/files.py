@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import os
 import tempfile
+from collections.abc import Iterable
 from pathlib import Path
 
 from .errors import UsageError
@@ -16,7 +17,12 @@ from .errors import UsageError
 __all__ = ["atomic_write", "check_output_path"]
 
 
-def check_output_path(path, *, protect=(), input_name: str = "input file") -> Path:
+def check_output_path(
+    path: str | os.PathLike,
+    *,
+    protect: Iterable[str | os.PathLike | None] = (),
+    input_name: str = "input file",
+) -> Path:
     """Refuse (UsageError) an output ``path`` that is one of the inputs or whose folder is missing.
 
     Parameters
@@ -51,7 +57,9 @@ def check_output_path(path, *, protect=(), input_name: str = "input file") -> Pa
     return target
 
 
-def atomic_write(path, data: bytes | str, *, protect=()) -> Path:
+def atomic_write(
+    path: str | os.PathLike, data: bytes | str, *, protect: Iterable[str | os.PathLike | None] = ()
+) -> Path:
     """Write ``data`` to ``path`` via a temporary file in the same folder and ``os.replace``.
 
     Refuses (UsageError) to overwrite any path in ``protect`` (e.g. the input case) and to

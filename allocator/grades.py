@@ -21,6 +21,7 @@ import re
 from collections.abc import Iterable
 
 import numpy as np
+from numpy.typing import ArrayLike
 
 __all__ = [
     "SIZE_LIMITS_MM",
@@ -225,7 +226,7 @@ def _rounding_step_um(value_um: float, grade: int, size_mm: float) -> float:
     return 1000.0
 
 
-def it_formula_um(grade, size_mm: float, rounded: bool = True) -> float:
+def it_formula_um(grade: int | str, size_mm: float, rounded: bool = True) -> float:
     """Standard tolerance of an IT grade computed from the ISO 286-1 formulas.
 
     Parameters
@@ -301,7 +302,7 @@ def it_formula_um(grade, size_mm: float, rounded: bool = True) -> float:
     return _clean(round(value / step) * step, step)
 
 
-def it_tolerance_um(grade, size_mm: float) -> float:
+def it_tolerance_um(grade: int | str, size_mm: float) -> float:
     """Standard tolerance value of an IT grade at a nominal size (ISO 286-1 table).
 
     Parameters
@@ -408,7 +409,7 @@ def mm_per_unit(units: str) -> float:
     return _MM_PER_UNIT[key]
 
 
-def iso286_tolerances(size: float, units: str = "mm", grades: Iterable = range(5, 13)):
+def iso286_tolerances(size: float, units: str = "mm", grades: Iterable[int | str] = range(5, 13)) -> np.ndarray:
     """± half-widths of standard IT grades at a nominal size, in a case's units.
 
     Parameters
@@ -483,7 +484,7 @@ def _check_step(step: float) -> float:
     return step
 
 
-def round_down_to_step(t, step: float):
+def round_down_to_step(t: ArrayLike, step: float) -> float | np.ndarray:
     """Largest multiple of ``step`` not above ``t`` (round a tolerance down to a step).
 
     Parameters

@@ -17,9 +17,13 @@ import math
 from dataclasses import dataclass, field
 from functools import cached_property
 from pathlib import Path
-from typing import Literal, Mapping
+from typing import TYPE_CHECKING, Literal, Mapping
 
 from .costs import CURVES, CostCurve  # noqa: F401  (re-exported: the curve families live in the cost registry)
+
+if TYPE_CHECKING:  # numpy is imported where it is used
+    import numpy as np
+    from numpy.typing import ArrayLike
 
 DISTRIBUTIONS = ("normal", "uniform", "triangular")
 MODELS = ("worst-case", "rss", "mean-shift")
@@ -280,6 +284,7 @@ class Requirement:
 
     @property
     def is_linear(self) -> bool:
+        """True for a linear ``chain``, False for a nonlinear ``expression``."""
         return self.chain is not None
 
     @property
@@ -294,18 +299,24 @@ class Requirement:
 
 @dataclass(frozen=True)
 class AllocationSettings:
+    """The case file's ``[allocation]`` table: the models to solve and the rounding."""
+
     models: tuple[str, ...] = DEFAULT_MODELS
     rounding: float | str | None = None  # a step [length], "iso286", or None
 
 
 @dataclass(frozen=True)
 class Economics:
+    """The case file's ``[economics]`` table: annual volume and scrap cost per assembly."""
+
     volume: float | None = None  # assemblies per year
     scrap_cost: float | None = None  # cost of one assembly outside the limits [currency]
 
 
 @dataclass(frozen=True)
 class FrontierSettings:
+    """The case file's ``[frontier]`` table: which requirement limit to sweep, over what range."""
+
     requirement: str | None = None
     vary: str = "upper"  # lower | upper | fallout_ppm
     range: tuple[float, float] | None = None
@@ -333,6 +344,7 @@ class Case:
 
     @property
     def names(self) -> tuple[str, ...]:
+        """Contributor names in case order."""
         return tuple(c.name for c in self.contributors)
 
     @cached_property
@@ -345,6 +357,7 @@ class Case:
         return self._positions[name]
 
     def contributor(self, name: str) -> Contributor:
+        """The contributor called ``name`` (KeyError if there is none)."""
         return self.contributors[self.index(name)]
 
     @cached_property
@@ -356,6 +369,7 @@ class Case:
         return out
 
     def requirement(self, name: str) -> Requirement:
+        """The requirement called ``name`` (KeyError if there is none)."""
         return self._requirements_by_name[name]
 
     def contributor_units(self, name: str) -> str:
@@ -386,26 +400,27 @@ class Case:
         return tuple(label for label in labels if label and label in used)
 
     @property
-    def current_tolerances(self):
+    def current_tolerances(self) -> np.ndarray:
         """The case's current ± tolerances as a numpy array in contributor order."""
         import numpy as np
 
         return np.array([c.tolerance for c in self.contributors], dtype=float)
 
     @property
-    def counts(self):
+    def counts(self) -> np.ndarray:
+        """``count`` per contributor (identical instances in the stack) as a float array."""
         import numpy as np
 
         return np.array([c.count for c in self.contributors], dtype=float)
 
     @property
-    def sigma_factors(self):
+    def sigma_factors(self) -> np.ndarray:
         """σ / t per contributor (its own distribution and cp)."""
         import numpy as np
 
         return np.array([c.sigma_factor for c in self.contributors], dtype=float)
 
-    def making_processes(self, tolerances, processes: Mapping[str, str] | None = None) -> tuple[str, ...]:
+    def making_processes(self, tolerances: ArrayLike, processes: Mapping[str, str] | None = None) -> tuple[str, ...]:
         """The process that makes each contributor at ``tolerances``.
 
         Parameters
@@ -468,7 +483,7 @@ class Case:
             out.append("" if k is None else c.processes[k].name)
         return tuple(out)
 
-    def sigma_factors_at(self, tolerances, processes: Mapping[str, str] | None = None):
+    def sigma_factors_at(self, tolerances: ArrayLike, processes: Mapping[str, str] | None = None) -> np.ndarray:
         """σ / t per contributor when made by the processes of :meth:`making_processes`.
 
         A contributor made by a process with its own ``cp`` takes that cp; every other
@@ -490,7 +505,8 @@ class Case:
         return np.array(out, dtype=float)
 
     @property
-    def mean_shifts(self):
+    def mean_shifts(self) -> np.ndarray:
+        """Estimated mean shift per contributor, as a fraction of its tolerance [-]."""
         import numpy as np
 
         return np.array([c.mean_shift for c in self.contributors], dtype=float)

@@ -16,13 +16,17 @@ JSON and CSV outputs keep the raw floats. See docs/methods.md, *How fallout is p
 from __future__ import annotations
 
 import math
+from typing import TYPE_CHECKING
+
+if TYPE_CHECKING:  # numpy is not needed at run time here
+    import numpy as np
 
 PER_MILLION = 1_000_000.0  # [ppm] in the whole: a fraction 1 is this many ppm
 PPB_BELOW = 0.01  # [ppm] smaller values are printed in ppb
 FLOOR_PPB = 0.001  # [ppb] smaller values are printed as "< 0.001 ppb"
 
 
-def fraction_to_ppm(fraction):
+def fraction_to_ppm(fraction: float | np.ndarray) -> float | np.ndarray:
     """A fraction [-] (0 .. 1) as parts per million [ppm].
 
     Parameters
@@ -43,7 +47,7 @@ def fraction_to_ppm(fraction):
     return fraction * 1e6
 
 
-def ppm_to_fraction(ppm):
+def ppm_to_fraction(ppm: float | np.ndarray) -> float | np.ndarray:
     """Parts per million [ppm] as a fraction [-] (0 .. 1).
 
     Parameters
@@ -71,7 +75,7 @@ def _plain(x: float, digits: int) -> str:
     return text.rstrip("0").rstrip(".") if "." in text else text
 
 
-def format_ppm(value, *, unit: bool = True, digits: int = 4, missing: str = "-") -> str:
+def format_ppm(value: float | None, *, unit: bool = True, digits: int = 4, missing: str = "-") -> str:
     """A fallout [ppm] as text: plain decimals, ppb for tiny values.
 
     Parameters

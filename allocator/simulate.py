@@ -31,19 +31,31 @@ applicable codes and a licensed engineering review.
 from __future__ import annotations
 
 import math
+import os
 import sys
 from contextlib import contextmanager
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Mapping
+from typing import TYPE_CHECKING, Mapping, Union
 
 import numpy as np
+from numpy.typing import ArrayLike
 
 from . import stack
 from .chain import compile_expression, linearise, nominal_values
 from .convolve import linear_sum_distribution
-from .errors import CaseError
+from .errors import CaseError, UsageError, unknown_names
 from .ppm import fraction_to_ppm
+
+if TYPE_CHECKING:  # pandas is imported where it is used
+    import pandas as pd
+
+    from .model import Case
+    from .solve.result import Allocation
+
+# what verify() accepts as tolerances: an allocation, name -> ± tolerance [length], an
+# array in case order, or None for the case's current tolerances
+Tolerances = Union["Allocation", Mapping[str, float], ArrayLike, None]
 
 __all__ = [
     "BLOCK_SIZE",
@@ -65,7 +77,7 @@ _HISTOGRAM_MARGIN = 0.05  # widen the histogram range by this fraction of its sp
 _HISTOGRAM_QUANTILES = (0.0005, 0.9995)  # of block 0, for responses the worst case misjudges
 
 
-def clopper_pearson(failures, trials, confidence: float = CONFIDENCE):
+def clopper_pearson(failures: ArrayLike, trials: ArrayLike, confidence: float = CONFIDENCE) -> tuple[np.ndarray, np.ndarray]:
     """Exact two-sided confidence interval of a binomial proportion.
 
     Parameters
@@ -155,9 +167,11 @@ class RequirementCheck:
 
     @property
     def failures(self) -> int:
+        """Assemblies outside the limits: below + above + undefined."""
         return self.below + self.above + self.undefined
 
     def to_dict(self, histogram: bool = True) -> dict:
+        """JSON-ready dict of the check (the histogram too unless ``histogram=False``)."""
         out = {
             "name": self.name,
             "samples": self.samples,
@@ -248,6 +262,7 @@ class Verification:
         raise KeyError(name)
 
     def to_dict(self, histogram: bool = True) -> dict:
+        """JSON-ready dict: status, seed, settings and one entry per requirement check."""
         return {
             "status": self.status,
             "success": self.success,
@@ -264,7 +279,7 @@ class Verification:
             "requirements": [c.to_dict(histogram) for c in self.requirements],
         }
 
-    def to_frame(self):
+    def to_frame(self) -> pd.DataFrame:
         """One row per requirement (pandas DataFrame, index ``requirement``)."""
         import pandas as pd
 
@@ -395,9 +410,11 @@ def _tolerance_array(case, tolerances) -> np.ndarray:
         t = case.current_tolerances
     elif isinstance(tolerances, Mapping) or hasattr(tolerances, "items"):
         t = case.current_tolerances.copy()
-        for name, value in dict(tolerances.items()).items():
-            if name not in case.names:
-                raise CaseError("unknown contributor", field=f"tolerances.{name}")
+        given = dict(tolerances.items())
+        problem = unknown_names("contributor", given, case.names)
+        if problem:  # a wrong argument, as in analyze and allocate
+            raise UsageError(f"tolerances: {problem}")
+        for name, value in given.items():
             t[case.index(name)] = float(value)
     else:
         t = np.asarray(tolerances, dtype=float).copy()
@@ -567,8 +584,14 @@ class _Engine:
 
 
 def sample_responses(
-    case, tolerances=None, *, samples: int = 10_000, seed: int = 0, shift_means: bool = True, processes=None
-):
+    case: Case,
+    tolerances: Tolerances = None,
+    *,
+    samples: int = 10_000,
+    seed: int = 0,
+    shift_means: bool = True,
+    processes: Mapping[str, str] | None = None,
+) -> dict[str, np.ndarray]:
     """The simulated responses themselves, one array per requirement.
 
     Uses exactly the random stream of :func:`verify` with the same ``seed`` (and the same
@@ -593,8 +616,8 @@ def sample_responses(
 
 
 def verify(
-    case,
-    tolerances=None,
+    case: Case,
+    tolerances: Tolerances = None,
     *,
     samples: int = 1_000_000,
     seed: int | None = None,
@@ -645,6 +668,14 @@ def verify(
     Returns
     -------
     Verification
+
+    Raises
+    ------
+    UsageError
+        ``tolerances`` names a contributor the case does not have (with a did-you-mean).
+    CaseError
+        A tolerance that is not a positive finite number (field ``tolerances.<name>``), an
+        array of the wrong length, an allocation without tolerances, or an unknown process.
 
     Notes
     -----
@@ -923,7 +954,7 @@ def render_verification_plot(result: Verification, fmt: str = "png") -> bytes:
     return buffer.getvalue()
 
 
-def plot_verification(result: Verification, path) -> Path:
+def plot_verification(result: Verification, path: str | os.PathLike) -> Path:
     """Write the response histograms of ``result`` to ``path`` (``.png`` or ``.svg``).
 
     One panel per requirement: the Monte Carlo density, the limits as dashed lines and

@@ -10,6 +10,7 @@ from __future__ import annotations
 import math
 
 import numpy as np
+from numpy.typing import ArrayLike
 from scipy import optimize, special
 
 __all__ = [
@@ -33,7 +34,7 @@ __all__ = [
 LIMIT_RTOL = 1e-9
 
 
-def limit_margin(*magnitudes) -> float:
+def limit_margin(*magnitudes: float | None) -> float:
     """Round-off margin for comparing a stack value with a limit [response].
 
     Parameters
@@ -71,7 +72,7 @@ def limit_margin(*magnitudes) -> float:
     return LIMIT_RTOL * max(finite, default=0.0)
 
 
-def beyond_limits(low: float, high: float, lower=None, upper=None, *, margin: float = 0.0) -> tuple[float, float]:
+def beyond_limits(low: float, high: float, lower: float | None = None, upper: float | None = None, *, margin: float = 0.0) -> tuple[float, float]:
     """How far a range ``[low, high]`` reaches past each limit [response].
 
     Parameters
@@ -101,7 +102,7 @@ def beyond_limits(low: float, high: float, lower=None, upper=None, *, margin: fl
     return float(below), float(above)
 
 
-def worst_case_excess(nominal: float, half_width: float, lower=None, upper=None) -> tuple[float, float]:
+def worst_case_excess(nominal: float, half_width: float, lower: float | None = None, upper: float | None = None) -> tuple[float, float]:
     """How far the worst-case range ``ȳ ± W`` passes each limit, round-off excused.
 
     Parameters
@@ -133,7 +134,7 @@ def _norm_cdf(z):
     return special.ndtr(z)
 
 
-def worst_case_half_width(a, n, t) -> float:
+def worst_case_half_width(a: ArrayLike, n: ArrayLike, t: ArrayLike) -> float:
     """Worst-case half-width of the response.
 
     Parameters
@@ -169,13 +170,13 @@ def worst_case_half_width(a, n, t) -> float:
     return float(np.sum(n * np.abs(a) * t))
 
 
-def worst_case_range(nominal: float, a, n, t) -> tuple[float, float]:
+def worst_case_range(nominal: float, a: ArrayLike, n: ArrayLike, t: ArrayLike) -> tuple[float, float]:
     """``(ȳ − W, ȳ + W)`` with ``W`` from :func:`worst_case_half_width` [response]."""
     w = worst_case_half_width(a, n, t)
     return nominal - w, nominal + w
 
 
-def rss_sigma(a, n, sigma) -> float:
+def rss_sigma(a: ArrayLike, n: ArrayLike, sigma: ArrayLike) -> float:
     """Standard deviation of the response by root sum of squares.
 
     Parameters
@@ -211,7 +212,7 @@ def rss_sigma(a, n, sigma) -> float:
     return float(math.sqrt(np.sum(n * (a * s) ** 2)))
 
 
-def mean_shift_delta(a, n, m, t) -> float:
+def mean_shift_delta(a: ArrayLike, n: ArrayLike, m: ArrayLike, t: ArrayLike) -> float:
     """Band within which the response mean may sit: ``δ = Σ n_i·|a_i|·m_i·t_i``.
 
     Parameters
@@ -230,7 +231,7 @@ def mean_shift_delta(a, n, m, t) -> float:
     return float(np.sum(n * np.abs(a) * m * t))
 
 
-def normal_fallout(mean: float, sigma: float, lower=None, upper=None) -> tuple[float, float]:
+def normal_fallout(mean: float, sigma: float, lower: float | None = None, upper: float | None = None) -> tuple[float, float]:
     """Fraction of a normal response below ``lower`` and above ``upper``.
 
     Parameters
@@ -274,7 +275,9 @@ def normal_fallout(mean: float, sigma: float, lower=None, upper=None) -> tuple[f
     return below, above
 
 
-def worst_mean_fallout(nominal: float, delta: float, sigma: float, lower=None, upper=None):
+def worst_mean_fallout(
+    nominal: float, delta: float, sigma: float, lower: float | None = None, upper: float | None = None
+) -> tuple[float, float, float]:
     """Fallout with the mean at the worst place in ``[ȳ − δ, ȳ + δ]``.
 
     Returns
@@ -318,7 +321,7 @@ def _two_sided_sigma(d_near: float, d_far: float, p: float) -> float:
     return optimize.brentq(f, lo, one_sided, xtol=1e-15 * one_sided, rtol=1e-15, maxiter=200)
 
 
-def sigma_limit(mean: float, fallout: float, lower=None, upper=None) -> float:
+def sigma_limit(mean: float, fallout: float, lower: float | None = None, upper: float | None = None) -> float:
     """Largest response σ whose normal fallout with this mean is at most ``fallout``.
 
     Parameters
@@ -365,7 +368,9 @@ def sigma_limit(mean: float, fallout: float, lower=None, upper=None) -> float:
     return _two_sided_sigma(d_near, d_far, fallout)
 
 
-def mean_shift_sigma_limit(nominal: float, delta: float, fallout: float, lower=None, upper=None) -> float:
+def mean_shift_sigma_limit(
+    nominal: float, delta: float, fallout: float, lower: float | None = None, upper: float | None = None
+) -> float:
     """Largest σ meeting ``fallout`` with the mean anywhere in ``[ȳ − δ, ȳ + δ]``.
 
     The worst mean is the end of the band nearest a limit (see

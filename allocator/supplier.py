@@ -24,7 +24,9 @@ from .errors import UsageError, did_you_mean
 from .model import MODELS
 
 if TYPE_CHECKING:
-    from .model import Case
+    import pandas as pd
+
+    from .model import Case, Contributor
     from .solve.result import Allocation
 
 __all__ = ["DEFAULT_STEP", "Loosening", "SupplierSheet", "looser_tolerance", "supplier_sheet"]
@@ -48,7 +50,9 @@ def _listed(contributor) -> np.ndarray | None:
     return None
 
 
-def looser_tolerance(contributor, tolerance: float, *, step: float = DEFAULT_STEP, rounding=None) -> float | None:
+def looser_tolerance(
+    contributor: Contributor, tolerance: float, *, step: float = DEFAULT_STEP, rounding: float | str | None = None
+) -> float | None:
     """The next looser ± tolerance to offer a supplier, or None when there is none.
 
     Parameters
@@ -169,6 +173,7 @@ class Loosening:
     units: str = ""
 
     def to_dict(self) -> dict:
+        """JSON-ready dict of the row."""
         return {
             "contributor": self.contributor,
             "count": self.count,
@@ -186,7 +191,7 @@ class Loosening:
         }
 
 
-@dataclass
+@dataclass(frozen=True)
 class SupplierSheet:
     """Result of :func:`supplier_sheet`.
 
@@ -214,6 +219,7 @@ class SupplierSheet:
 
     @property
     def success(self) -> bool:
+        """True when ``status`` is 'optimal' (:mod:`allocator.status`)."""
         return self.status == _status.OPTIMAL
 
     def __getitem__(self, name: str) -> Loosening:
@@ -223,6 +229,7 @@ class SupplierSheet:
         raise KeyError(name)
 
     def to_dict(self) -> dict:
+        """JSON-ready dict: model, status, step and one entry per row."""
         return {
             "model": self.model,
             "status": self.status,
@@ -231,7 +238,7 @@ class SupplierSheet:
             "rows": [r.to_dict() for r in self.rows],
         }
 
-    def to_frame(self):
+    def to_frame(self) -> pd.DataFrame:
         """One row per contributor (pandas DataFrame); ``tightened`` as 'name ±a→±b' text."""
         import pandas as pd
 

@@ -36,14 +36,20 @@ import math
 import time
 import warnings
 from dataclasses import dataclass
-from typing import Callable, NamedTuple
+from typing import TYPE_CHECKING, Callable, NamedTuple, Sequence
 
 import numpy as np
+from numpy.typing import ArrayLike
 
 from .errors import UsageError, did_you_mean
 from .model import MODELS, Case
 from .ppm import PER_MILLION
 from .progress import progress_bar
+
+if TYPE_CHECKING:  # pandas is imported where it is used
+    import pandas as pd
+
+    from .solve.result import Allocation
 
 __all__ = ["Frontier", "frontier", "LimitSweep", "VARY", "MAX_POINTS", "automatic_range"]
 
@@ -140,6 +146,7 @@ class Frontier:
 
     @property
     def success(self) -> bool:
+        """True when ``status`` is 'optimal' or 'partial' (:mod:`allocator.status`)."""
         return self.status in ("optimal", "partial")
 
     @property
@@ -187,7 +194,7 @@ class Frontier:
                 )
         return out
 
-    def to_frame(self):
+    def to_frame(self) -> pd.DataFrame:
         """Tidy DataFrame: one row per (value, model)."""
         import pandas as pd
 
@@ -196,7 +203,7 @@ class Frontier:
             frame[column] = frame[column].astype(float)
         return frame
 
-    def to_wide(self):
+    def to_wide(self) -> pd.DataFrame:
         """One row per value, a cost column per model and a saving column per statistical model."""
         import pandas as pd
 
@@ -302,6 +309,7 @@ class LimitSweep:
 
     @property
     def method(self) -> str:
+        """How each point is solved, in words (for the report and ``--verbose``)."""
         if self.flat:
             return "solved once (worst case does not use the fallout target)"
         if self.batch is not None:
@@ -322,10 +330,11 @@ class LimitSweep:
 
         return not self.flat and self.batch is None and isinstance(self.solver, DiscreteAllocation)
 
-    def overrides(self, value) -> dict:
+    def overrides(self, value: float) -> dict:
+        """The limit override ``{requirement: {vary: value}}`` for one swept value."""
         return {self.requirement: {self.vary: float(value)}}
 
-    def solve(self, value):
+    def solve(self, value: float) -> Allocation:
         """The full :class:`~allocator.solve.result.Allocation` at one value.
 
         A solver that raises an arithmetic error (overflow in a root search, say) gives a
@@ -347,14 +356,16 @@ class LimitSweep:
                 solver=type(self.solver).__name__,
             )
 
-    def feasible(self, value) -> bool:
+    def feasible(self, value: float) -> bool:
         """True when the tightest tolerances meet every requirement with this value."""
         if self.reference is not None and hasattr(self.reference, "diagnose"):
             ref = self.reference
             return ref.diagnose(ref.limits(self.overrides(value))) is None
         return self.solve(value).status != "infeasible"
 
-    def sweep(self, values, tick: Callable[[int], None] | None = None, *, keep=None) -> list[_Point]:
+    def sweep(
+        self, values: ArrayLike, tick: Callable[[int], None] | None = None, *, keep: float | None = None
+    ) -> list[_Point]:
         """Least cost at each value; ``tick(k)`` reports k more points done.
 
         Point by point, the values are solved in the order in which the requirement loosens
@@ -516,7 +527,9 @@ def _nice(x: float, direction: str) -> float:
     return float(f"{q * step:.12g}")
 
 
-def automatic_range(case: Case, requirement: str, vary: str, sweeps) -> tuple[tuple[float, float], str]:
+def automatic_range(
+    case: Case, requirement: str, vary: str, sweeps: Sequence[LimitSweep]
+) -> tuple[tuple[float, float], str]:
     """A sensible sweep when neither the caller nor ``[frontier]`` gives one.
 
     fallout_ppm: 0.1 .. 10000 ppm. lower / upper: from the tightest value any of the
@@ -591,12 +604,12 @@ def frontier(
     *,
     requirement: str | None = None,
     vary: str | None = None,
-    values=None,
-    span=None,
+    values: Sequence[float] | None = None,
+    span: tuple[float, float] | None = None,
     points: int | None = None,
-    models=None,
+    models: Sequence[str] | None = None,
     progress: bool = False,
-    **renamed,
+    **renamed: object,
 ) -> Frontier:
     """Least cost per model against one requirement's limit or fallout target.
 

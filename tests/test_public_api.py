@@ -75,3 +75,107 @@ def test_importing_the_package_imports_no_heavy_library():
     done = subprocess.run([sys.executable, "-c", code], cwd=ROOT, capture_output=True, text=True, timeout=120)
     assert done.returncode == 0, done.stderr
     assert done.stdout.strip() == "[]"
+
+
+# ----------------------------------------------------------------------------- documented and typed
+# The modules users import directly (docs/results.md, the README's library examples); a module
+# with ``__all__`` is walked through it, one without through the functions and classes it defines.
+USER_MODULES = [
+    "allocator.model", "allocator.case", "allocator.analysis", "allocator.stack", "allocator.chain",
+    "allocator.costs", "allocator.grades", "allocator.convolve", "allocator.ppm", "allocator.errors",
+    "allocator.files", "allocator.status", "allocator.display", "allocator.sweep", "allocator.simulate",
+    "allocator.economics", "allocator.supplier", "allocator.solve", "allocator.solve.result",
+    "allocator.report",
+]
+
+
+def _public_objects():
+    """``{qualified name: function or class}`` of allocator.__all__ and USER_MODULES."""
+    import inspect
+
+    found = {f"allocator.{n}": getattr(allocator, n) for n in allocator.__all__ if n != "__version__"}
+    for name in USER_MODULES:
+        module = importlib.import_module(name)
+        names = getattr(module, "__all__", None)
+        if names is None:
+            names = [n for n, obj in vars(module).items()
+                     if not n.startswith("_") and (inspect.isfunction(obj) or inspect.isclass(obj))
+                     and obj.__module__ == name]
+        for n in names:
+            obj = getattr(module, n)
+            if inspect.isfunction(obj) or inspect.isclass(obj):
+                found[f"{name}.{n}"] = obj
+    return found
+
+
+def _members(cls):
+    """``(name, raw attribute)`` of the public methods and properties allocator defines on ``cls``."""
+    import functools
+    import inspect
+
+    for name in dir(cls):
+        if name.startswith("_"):
+            continue
+        owner = next(k for k in cls.__mro__ if name in k.__dict__)
+        if not owner.__module__.startswith("allocator"):
+            continue  # inherited from Exception, tuple, ...
+        raw = owner.__dict__[name]
+        if isinstance(raw, (property, functools.cached_property, staticmethod, classmethod)) or inspect.isfunction(raw):
+            yield name, raw
+
+
+def test_the_walk_covers_the_entry_points_and_the_result_types():
+    # a walk that found nothing would pass every check below
+    objects = _public_objects()
+    assert len(objects) > 100
+    for name in ("allocator.allocate", "allocator.Allocation", "allocator.stack.rss_sigma",
+                 "allocator.costs.CurveFamily", "allocator.report.Report"):
+        assert name in objects, name
+    assert {"to_frame", "success", "to_dict"} <= {n for n, _ in _members(objects["allocator.Allocation"])}
+
+
+def test_every_public_function_class_method_and_property_has_a_docstring():
+    import inspect
+
+    missing = []
+    for qualified, obj in _public_objects().items():
+        if inspect.isclass(obj):
+            own = obj.__dict__.get("__doc__")
+            # a dataclass without a docstring gets its signature as __doc__: not documentation
+            if not own or own.startswith(obj.__name__ + "("):
+                missing.append(qualified)
+            for name, raw in _members(obj):
+                if isinstance(raw, (staticmethod, classmethod)) or inspect.isfunction(raw):
+                    raw = getattr(obj, name)  # getdoc follows the MRO for methods
+                if inspect.getdoc(raw) is None:
+                    missing.append(f"{qualified}.{name}")
+        elif inspect.getdoc(obj) is None:
+            missing.append(qualified)
+    assert not missing, f"{len(missing)} without a docstring: {missing}"
+
+
+def _untyped(qualified, function, skip_first):
+    import inspect
+
+    signature = inspect.signature(function)
+    params = list(signature.parameters.values())[1 if skip_first else 0:]
+    bare = [p.name for p in params if p.annotation is inspect.Parameter.empty]
+    if signature.return_annotation is inspect.Signature.empty:
+        bare.append("return")
+    return [f"{qualified}({', '.join(bare)})"] if bare else []
+
+
+def test_every_public_function_and_method_has_type_hints():
+    import inspect
+
+    missing = []
+    for qualified, obj in _public_objects().items():
+        if inspect.isfunction(obj):
+            missing += _untyped(qualified, obj, skip_first=False)
+        elif inspect.isclass(obj):
+            for name, raw in _members(obj):
+                if isinstance(raw, (staticmethod, classmethod)):
+                    missing += _untyped(f"{qualified}.{name}", raw.__func__, isinstance(raw, classmethod))
+                elif inspect.isfunction(raw):
+                    missing += _untyped(f"{qualified}.{name}", raw, skip_first=True)
+    assert not missing, f"{len(missing)} without full type hints: {missing}"

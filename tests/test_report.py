@@ -619,3 +619,16 @@ def test_the_contributions_figure_is_drawn_by_the_plotting_module():
         if now.sigma > 0:
             assert sum(solid) == pytest.approx(100.0, rel=1e-9) and sum(hatched) == pytest.approx(100.0, rel=1e-9)
         assert [t.get_text() for t in ax.get_legend().get_texts()] == ["current design", "rss allocation"]
+
+
+def test_report_is_complete_and_frozen():
+    import dataclasses
+
+    case = load_case(CASES / "gearbox_end_play.toml")
+    report = build_report(case, ["rss"], samples=2000, seed=1, include_frontier=False, created=STAMP)
+    # complete when built: the allocation, its verification and the supplier sheet are there
+    assert report.allocations["rss"].success and report.verification.samples == 2000
+    assert report.supplier is not None and len(report.supplier.rows) == len(case.contributors)
+    for name in ("allocations", "verification", "supplier", "created", "recommended"):
+        with pytest.raises(dataclasses.FrozenInstanceError):
+            setattr(report, name, None)

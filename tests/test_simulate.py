@@ -18,7 +18,7 @@ from scipy import integrate, special, stats
 from allocator import stack
 from allocator.cli.main import cli
 from allocator.convolve import linear_sum_distribution
-from allocator.errors import CaseError
+from allocator.errors import CaseError, UsageError
 from allocator.model import Requirement
 from allocator.simulate import (
     clopper_pearson,
@@ -327,10 +327,17 @@ def test_chunked_run_memory_stays_bounded():
     assert peak < everything / 10
 
 
+def test_unknown_contributor_in_tolerances_is_a_usage_error_with_a_hint():
+    # a misspelt name is a wrong argument of a library call, as in analyze and allocate
+    case = normal_chain_case(-1.0, 1.0)
+    with pytest.raises(UsageError, match=r"^tolerances: unknown contributor 'aa' \(did you mean 'a'\?\)$"):
+        verify(case, {"aa": 0.1, "b": 0.03}, samples=1000)
+    with pytest.raises(UsageError, match=r"^tolerances: unknown contributor 'zz'$"):  # nothing close: no hint
+        verify(case, {"zz": 0.1}, samples=1000)
+
+
 def test_tolerance_validation():
     case = normal_chain_case(-1.0, 1.0)
-    with pytest.raises(CaseError, match="tolerances.zz"):
-        verify(case, {"zz": 0.1}, samples=1000)
     with pytest.raises(CaseError, match="tolerances.a"):
         verify(case, {"a": -0.1}, samples=1000)
     with pytest.raises(CaseError, match="tolerances.b"):

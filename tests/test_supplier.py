@@ -214,3 +214,18 @@ def test_looser_tolerance_skips_the_gap_between_process_ranges():
     assert looser_tolerance(part, 0.0095) == pytest.approx(0.02)
     assert looser_tolerance(part, 0.005) == pytest.approx(0.0055)
     assert looser_tolerance(part, 0.1) is None
+
+
+def test_sheet_and_rows_are_complete_and_frozen():
+    import dataclasses
+
+    sheet = supplier_sheet(_case(), "worst-case")
+    # complete when built: one row per contributor, each re-solved and never cheaper than
+    # the optimum it loosens (the optimum is the least cost, up to solver accuracy)
+    assert sheet.success and [r.contributor for r in sheet.rows] == ["p1", "p2", "p3"]
+    for row in sheet.rows:
+        assert row.status == "optimal" and row.total_cost_change >= -1e-9 * sheet.base.total_cost
+    for obj, name in ((sheet, "status"), (sheet, "rows"), (sheet, "base"),
+                      (sheet.rows[0], "status"), (sheet.rows[0], "looser"), (sheet.rows[0], "total_cost_change")):
+        with pytest.raises(dataclasses.FrozenInstanceError):
+            setattr(obj, name, None)

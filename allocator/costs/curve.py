@@ -10,6 +10,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
+from numpy.typing import ArrayLike
 
 from .family import as_float_or_array
 from .registry import family_of
@@ -42,11 +43,11 @@ class CostCurve:
         """True when only listed tolerances exist (a ``choose`` table)."""
         return self.curve == "table" and self.between == "choose"
 
-    def value(self, tolerance):
+    def value(self, tolerance: ArrayLike) -> float | np.ndarray:
         """Cost at ``tolerance`` (scalar or array) [currency]; see
         :func:`allocator.costs.cost_value`."""
         return as_float_or_array(family_of(self).value_at(self, np.asarray(tolerance, dtype=float)))
 
-    def derivative(self, tolerance):
+    def derivative(self, tolerance: ArrayLike) -> float | np.ndarray:
         """d cost / d tolerance [currency/length]; see :func:`allocator.costs.cost_derivative`."""
         return as_float_or_array(family_of(self).derivative_at(self, np.asarray(tolerance, dtype=float)))

@@ -14,6 +14,7 @@ from collections.abc import Sequence
 from typing import TYPE_CHECKING
 
 import numpy as np
+from numpy.typing import ArrayLike
 
 from .family import as_float_or_array as _as_float_or_array
 from .family import fmt as _fmt
@@ -21,6 +22,8 @@ from .registry import CURVES, family, family_of
 from .table import table_problem
 
 if TYPE_CHECKING:
+    import cvxpy as cp
+
     from .curve import CostCurve
 
 __all__ = [
@@ -34,7 +37,7 @@ __all__ = [
 ]
 
 
-def cost_value(curve: CostCurve, t):
+def cost_value(curve: CostCurve, t: ArrayLike) -> float | np.ndarray:
     """Unit cost of one part made to ± tolerance ``t``.
 
     Parameters
@@ -92,7 +95,7 @@ def cost_value(curve: CostCurve, t):
     return curve.value(t)
 
 
-def cost_derivative(curve: CostCurve, t):
+def cost_derivative(curve: CostCurve, t: ArrayLike) -> float | np.ndarray:
     """Slope of the cost curve, d cost / d tolerance, at ``t``.
 
     Parameters
@@ -149,7 +152,7 @@ def cost_derivative(curve: CostCurve, t):
     return curve.derivative(t)
 
 
-def inverse_derivative(curve: CostCurve, slope, lo: float, hi: float):
+def inverse_derivative(curve: CostCurve, slope: ArrayLike, lo: float, hi: float) -> float | np.ndarray:
     """Tolerance at which the cost curve has a given slope, clipped to ``[lo, hi]``.
 
     This is the inner step of the exact Lagrange-dual allocation: for a multiplier
@@ -338,7 +341,7 @@ def _require_continuous(curve: CostCurve) -> None:
         )
 
 
-def cvx_cost(curve: CostCurve, t_var, count: float = 1.0):
+def cvx_cost(curve: CostCurve, t_var: cp.Expression, count: float = 1.0) -> cp.Expression:
     """cvxpy expression of ``count · cost(t)`` for a scalar variable or affine expression.
 
     Parameters
@@ -405,7 +408,9 @@ def cvx_cost(curve: CostCurve, t_var, count: float = 1.0):
     return term if constant == 0.0 else constant + term
 
 
-def cvx_costs(curves: Sequence[CostCurve | None], t_vector, counts=None):
+def cvx_costs(
+    curves: Sequence[CostCurve | None], t_vector: cp.Expression, counts: ArrayLike | None = None
+) -> cp.Expression:
     """cvxpy expression of the total cost ``Σ count_i · cost_i(t_i)``, built per family.
 
     Contributors are grouped by curve family (and by exponent ``k`` for

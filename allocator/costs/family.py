@@ -15,8 +15,17 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
+from typing import TYPE_CHECKING, Callable, Sequence
 
 import numpy as np
+
+if TYPE_CHECKING:  # the curve module imports this one; cvxpy is imported lazily
+    import cvxpy as cp
+
+    from .curve import CostCurve
+
+# the parameters of many curves of one family, by name, one array element per curve
+Params = dict[str, np.ndarray]
 
 
 def as_float_or_array(values):
@@ -100,7 +109,7 @@ class CurveFamily:
     piecewise: bool = False
 
     # ------------------------------------------------------------------ parameters
-    def check(self, curve, limits) -> str | None:
+    def check(self, curve: CostCurve, limits: Sequence[float] | None) -> str | None:
         """First problem with the curve's parameters (limits already checked), or None."""
         for parameter in self.parameters:
             problem = parameter.problem(getattr(curve, parameter.name))
@@ -108,86 +117,88 @@ class CurveFamily:
                 return problem
         return None
 
-    def describe(self, curve, number) -> tuple[str, str]:
+    def describe(self, curve: CostCurve, number: Callable[[float], str]) -> tuple[str, str]:
         """The formula and the parameters as text, numbers formatted by ``number``."""
         return self.formula, ", ".join(
             f"{q.name} = {number(getattr(curve, q.name))}" for q in self.parameters
         )
 
-    def params(self, curves) -> dict[str, np.ndarray]:
+    def params(self, curves: Sequence[CostCurve]) -> Params:
         """The parameters of many curves of this family as arrays."""
         return {
             q.name: np.array([getattr(c, q.name) for c in curves], dtype=float)
             for q in self.parameters
         }
 
-    def one(self, curve) -> dict[str, float]:
+    def one(self, curve: CostCurve) -> dict[str, float]:
         """The parameters of one curve as floats."""
         return {q.name: float(getattr(curve, q.name)) for q in self.parameters}
 
-    def take(self, p, keep: np.ndarray):
+    def take(self, p: Params, keep: np.ndarray) -> Params:
         """The parameters of the parts where ``keep`` (a boolean mask) is True."""
         return {key: value[keep] for key, value in p.items()}
 
-    def scaled(self, curve, length: float, cost: float):
+    def scaled(self, curve: CostCurve, length: float, cost: float) -> CostCurve:
         """The curve of ``cost(length·τ) / cost`` in the scaled tolerance ``τ``."""
         raise NotImplementedError
 
     # ------------------------------------------------------------------ one curve, checked
-    def domain(self, curve, t: np.ndarray) -> np.ndarray:
+    def domain(self, curve: CostCurve, t: np.ndarray) -> np.ndarray:
         """``t`` where the curve is defined (clipped onto it within round-off), else ValueError."""
         if not np.all(t > 0):  # also catches NaN
             bad = t[~(t > 0)] if t.ndim else t
             raise ValueError(f"tolerance must be > 0 (got {fmt(np.ravel(bad)[0])})")
         return t
 
-    def value_at(self, curve, t: np.ndarray) -> np.ndarray:
+    def value_at(self, curve: CostCurve, t: np.ndarray) -> np.ndarray:
         """Checked value of one curve (``t`` any shape)."""
         return self.value(self.one(curve), self.domain(curve, t))
 
-    def derivative_at(self, curve, t: np.ndarray) -> np.ndarray:
+    def derivative_at(self, curve: CostCurve, t: np.ndarray) -> np.ndarray:
         """Checked slope of one curve (``t`` any shape)."""
         return self.derivative(self.one(curve), self.domain(curve, t))
 
-    def inverse_derivative_at(self, curve, slope: np.ndarray) -> np.ndarray:
+    def inverse_derivative_at(self, curve: CostCurve, slope: np.ndarray) -> np.ndarray:
         """Unclipped ``t`` with ``C'(t) = slope`` for one curve (``inf`` if never reached)."""
         return self.linear_minimiser(self.one(curve), -slope)
 
     # ------------------------------------------------------------------ vectorised
-    def value(self, p, t) -> np.ndarray:
+    def value(self, p: Params, t: np.ndarray) -> np.ndarray:
         """Unit cost [currency]; NaN where ``t`` is outside the curve's domain."""
         raise NotImplementedError
 
-    def derivative(self, p, t) -> np.ndarray:
+    def derivative(self, p: Params, t: np.ndarray) -> np.ndarray:
         """dC/dt [currency/length]."""
         raise NotImplementedError
 
-    def curvature(self, p, t) -> np.ndarray:
+    def curvature(self, p: Params, t: np.ndarray) -> np.ndarray:
         """d²C/dt² [currency/length²] (0 for piecewise-linear families)."""
         raise NotImplementedError
 
-    def kinks(self, curve) -> np.ndarray:
+    def kinks(self, curve: CostCurve) -> np.ndarray:
         """Tolerances where the curve has a kink [length] (none for smooth families)."""
         return np.empty(0)
 
-    def at_breakpoint(self, p, t, rtol: float) -> np.ndarray:
+    def at_breakpoint(self, p: Params, t: np.ndarray, rtol: float) -> np.ndarray:
         """True where a part sits on a kink of its curve."""
         return np.zeros(np.shape(t), dtype=bool)
 
-    def linear_minimiser(self, p, s) -> np.ndarray:
+    def linear_minimiser(self, p: Params, s: np.ndarray) -> np.ndarray:
         """Minimiser of ``C(t) + s·t``, i.e. the root of ``C'(t) = −s`` (unclipped)."""
         raise NotImplementedError
 
-    def quadratic_minimiser(self, p, q, lo, hi, shift=None) -> np.ndarray:
+    def quadratic_minimiser(
+        self, p: Params, q: np.ndarray, lo: np.ndarray, hi: np.ndarray, shift: np.ndarray | None = None
+    ) -> np.ndarray:
         """Minimiser of ``C(t) + q t²/2 (+ shift·t)`` (unclipped inside ``[lo, hi]``)."""
         raise NotImplementedError
 
     # ------------------------------------------------------------------ convex-solver form
-    def cvx_key(self, curve) -> tuple:
+    def cvx_key(self, curve: CostCurve) -> tuple:
         """Curves with equal keys share one vectorised cvxpy expression."""
         return (self.name,)
 
-    def cvx(self, curves, t, weight):
+    def cvx(self, curves: Sequence[CostCurve], t: cp.Expression, weight: np.ndarray) -> tuple[float, cp.Expression]:
         """``(constant, expression)`` with ``constant + expression = Σ w_i C_i(t_i)``.
 
         ``curves`` share one :meth:`cvx_key`; ``t`` is a cvxpy vector of their tolerances,
@@ -204,15 +215,15 @@ class SmoothFamily(CurveFamily):
     term is then found here, bracketed by those closed forms.
     """
 
-    def slope_root(self, p, s) -> np.ndarray:
+    def slope_root(self, p: Params, s: np.ndarray) -> np.ndarray:
         """Root of ``C'(t) = −s`` for ``s > 0`` (any value elsewhere)."""
         raise NotImplementedError
 
-    def quadratic_root(self, p, q) -> np.ndarray:
+    def quadratic_root(self, p: Params, q: np.ndarray) -> np.ndarray:
         """Root of ``C'(t) + q t = 0`` for ``q > 0`` (any value elsewhere)."""
         raise NotImplementedError
 
-    def linear_minimiser(self, p, s) -> np.ndarray:
+    def linear_minimiser(self, p: Params, s: np.ndarray) -> np.ndarray:
         s = np.asarray(s, dtype=float)
         with np.errstate(divide="ignore", over="ignore", invalid="ignore"):
             t = np.asarray(self.slope_root(p, s), dtype=float)
@@ -223,7 +234,9 @@ class SmoothFamily(CurveFamily):
             t = np.asarray(self.quadratic_root(p, q), dtype=float)
         return np.where(np.isnan(t) | (q <= 0), np.inf, t)
 
-    def quadratic_minimiser(self, p, q, lo, hi, shift=None) -> np.ndarray:
+    def quadratic_minimiser(
+        self, p: Params, q: np.ndarray, lo: np.ndarray, hi: np.ndarray, shift: np.ndarray | None = None
+    ) -> np.ndarray:
         """Minimiser of ``C(t) + q t²/2 (+ shift·t)``.
 
         Without ``shift`` in closed form. With ``shift`` (``C'(t) + q t + shift = 0``, the

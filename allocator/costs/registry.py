@@ -8,10 +8,15 @@ subclass and one line below.
 
 from __future__ import annotations
 
+from typing import TYPE_CHECKING
+
 from .exponential import Exponential
 from .family import CurveFamily
 from .power import Reciprocal, ReciprocalPower
 from .table import Table
+
+if TYPE_CHECKING:  # the curve module imports this one
+    from .curve import CostCurve
 
 __all__ = ["FAMILIES", "CURVES", "family", "family_of"]
 
@@ -37,6 +42,6 @@ def family(name: str) -> CurveFamily:
         ) from None
 
 
-def family_of(curve) -> CurveFamily:
+def family_of(curve: CostCurve) -> CurveFamily:
     """The family of a :class:`~allocator.costs.curve.CostCurve`."""
     return family(curve.curve)

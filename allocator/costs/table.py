@@ -14,10 +14,14 @@ References
 from __future__ import annotations
 
 from dataclasses import replace
+from typing import TYPE_CHECKING
 
 import numpy as np
 
 from .family import RTOL, CurveFamily, fmt
+
+if TYPE_CHECKING:  # the curve module imports this one
+    from .curve import CostCurve
 
 __all__ = ["Table", "table_problem", "BETWEEN"]
 
@@ -97,7 +101,7 @@ def check_table(curve, limits) -> str | None:
     return None
 
 
-def table_problem(curve) -> str | None:
+def table_problem(curve: CostCurve) -> str | None:
     """Why a table cannot be used as a continuous convex cost, or None if it can.
 
     Parameters

@@ -9,10 +9,12 @@ results. Nothing here writes HTML: :meth:`Report.to_html` hands the results to
 
 from __future__ import annotations
 
+import os
 import platform
 from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from pathlib import Path
+from typing import TYPE_CHECKING, Any, Sequence
 
 from .. import status as _status
 from ..errors import UsageError
@@ -21,6 +23,9 @@ from .html import MODEL_LABELS
 from .outline import SECTIONS, working_on
 from .sections import document, has_shadow_prices
 
+if TYPE_CHECKING:
+    from ..model import Case
+
 # order of preference for the allocation the report recommends (most conservative first)
 _PREFERENCE = ("mean-shift", "rss", "worst-case")
 
@@ -28,7 +33,7 @@ _PREFERENCE = ("mean-shift", "rss", "worst-case")
 VERSION_PACKAGES = ("numpy", "scipy", "cvxpy", "pandas", "matplotlib")
 
 
-@dataclass
+@dataclass(frozen=True)
 class Report:
     """Everything the HTML report shows, as the library computed it.
 
@@ -115,6 +120,7 @@ class Report:
 
     @property
     def success(self) -> bool:
+        """True when ``status`` is 'ok' (:data:`allocator.status.REPORT`)."""
         return self.status == _status.OK
 
     @property
@@ -124,10 +130,12 @@ class Report:
 
     @property
     def section_ids(self) -> tuple[str, ...]:
+        """HTML ids of the report's sections, in order."""
         return tuple(s for s, _ in SECTIONS)
 
     @property
     def headings(self) -> tuple[str, ...]:
+        """Headings of the report's sections, in order."""
         return tuple(h for _, h in SECTIONS)
 
     def __repr__(self) -> str:
@@ -178,8 +186,8 @@ def recommended_model(allocations: dict) -> str | None:
 
 
 def build_report(
-    case,
-    models=None,
+    case: Case,
+    models: Sequence[str] | None = None,
     *,
     samples: int = 200_000,
     seed: int = 0,
@@ -287,7 +295,9 @@ def build_report(
     )
 
 
-def write_report(case, path, models=None, **kwargs) -> Report:
+def write_report(
+    case: Case, path: str | os.PathLike, models: Sequence[str] | None = None, **kwargs: Any
+) -> Report:
     """Build the report and write its HTML to ``path`` atomically.
 
     Refuses to overwrite the case file itself (:class:`~allocator.errors.UsageError`),

@@ -26,7 +26,7 @@ from ..ppm import format_ppm
 # --------------------------------------------------------------------------- numbers as text
 
 
-def fmt_number(value, digits: int = 4, *, signed: bool = False, strip: bool = False) -> str:
+def fmt_number(value: float | None, digits: int = 4, *, signed: bool = False, strip: bool = False) -> str:
     """A number as plain text for the report: ``digits`` significant digits.
 
     Fixed notation between 1e-4 and 1e7 (no exponent for ordinary sizes), ``e`` notation
@@ -68,7 +68,7 @@ def fmt_number(value, digits: int = 4, *, signed: bool = False, strip: bool = Fa
     return sign + f"{x:.{digits - 1}e}"
 
 
-def fmt_input(value) -> str:
+def fmt_input(value: float | str | None) -> str:
     """A value as the case file states it: up to 10 significant digits, no padding zeros.
 
     Examples
@@ -83,7 +83,7 @@ def fmt_input(value) -> str:
     return f"{float(value):.10g}"
 
 
-def fmt_tolerance(value) -> str:
+def fmt_tolerance(value: float | None) -> str:
     """A ± tolerance: 4 significant digits without trailing zeros (as on a drawing).
 
     Examples

@@ -17,15 +17,25 @@ called 'optimal' (see :mod:`.problem`).
 
 from __future__ import annotations
 
-from typing import Mapping, Sequence
+from typing import TYPE_CHECKING, Any, Mapping, Sequence
 
 from ..model import Case
 from .result import Allocation, RequirementResult
 
+if TYPE_CHECKING:  # for type checkers only: nothing here runs
+    from typing import Protocol
+
+    from .problem import AllocationProblem
+
+    class Solver(Protocol):
+        """What :func:`solver_for` returns: an allocation per set of limit overrides."""
+
+        def solve(self, overrides: Mapping[str, Mapping[str, float]] | None = None) -> Allocation: ...
+
 __all__ = ["allocate", "allocate_all", "solver_for", "prepare", "Allocation", "RequirementResult"]
 
 
-def prepare(case: Case, model: str, fix: Mapping[str, float] | None = None):
+def prepare(case: Case, model: str, fix: Mapping[str, float] | None = None) -> AllocationProblem:
     """The checked :class:`~allocator.solve.problem.AllocationProblem` for ``case``."""
     from .problem import prepare as _prepare
 
@@ -36,7 +46,9 @@ def _default_model(case: Case) -> str:
     return case.allocation.models[0] if case.allocation.models else "worst-case"
 
 
-def solver_for(case: Case, model: str | None = None, *, fix: Mapping[str, float] | None = None, **options):
+def solver_for(
+    case: Case, model: str | None = None, *, fix: Mapping[str, float] | None = None, **options: Any
+) -> Solver:
     """A solver object with ``.solve(overrides=None) -> Allocation`` for repeated use.
 
     The method is the one rule of :mod:`.dispatch` (docs/allocation.md, "Solvers"): the

@@ -11,10 +11,14 @@ from __future__ import annotations
 import math
 from dataclasses import FrozenInstanceError, asdict, dataclass
 from types import MappingProxyType
+from typing import TYPE_CHECKING
 
 import numpy as np
 
 from .. import status as _status
+
+if TYPE_CHECKING:  # pandas is imported where it is used
+    import pandas as pd
 
 __all__ = ["Allocation", "RequirementResult", "STATUSES"]
 
@@ -78,6 +82,7 @@ class RequirementResult:
     units: str = ""
 
     def to_dict(self) -> dict:
+        """JSON-ready dict of every field."""
         return asdict(self)
 
 
@@ -231,16 +236,19 @@ class Allocation:
 
     @property
     def success(self) -> bool:
+        """True when ``status`` is 'optimal' (:mod:`allocator.status`)."""
         return self.status == _status.OPTIMAL
 
     @property
     def savings(self) -> float | None:
+        """Current cost minus allocated cost [currency] (None when infeasible)."""
         if self.total_cost is None:
             return None
         return self.current_cost - self.total_cost
 
     @property
     def savings_percent(self) -> float | None:
+        """Savings as a percentage of the current cost [%] (None when infeasible or no cost)."""
         if self.total_cost is None or not self.current_cost:
             return None
         return 100.0 * (self.current_cost - self.total_cost) / self.current_cost
@@ -251,7 +259,7 @@ class Allocation:
             return None
         return self.total_cost - other.total_cost
 
-    def allocated_array(self):
+    def allocated_array(self) -> np.ndarray | None:
         """Allocated tolerances as a numpy array in case order (None when infeasible)."""
         return None if self._allocated is None else self._allocated.copy()
 
@@ -274,7 +282,8 @@ class Allocation:
         return None if self._allocated is None else self._series(self._allocated, "allocated")
 
     @property
-    def current(self):
+    def current(self) -> pd.Series:
+        """The case's current ± tolerances by contributor [length]."""
         return self._series(self._current, "current")
 
     @property
@@ -285,7 +294,8 @@ class Allocation:
         return self._series(self._unit_allocated, "unit_cost")
 
     @property
-    def active(self):
+    def active(self) -> pd.Series:
+        """Where each allocated tolerance sits: 'tightest', 'loosest', 'fixed' or '' (free)."""
         return self._series(list(self._bound_flags), "bound")
 
     # ------------------------------------------------------------------ plain views
@@ -313,14 +323,14 @@ class Allocation:
             )
         return out
 
-    def to_frame(self):
+    def to_frame(self) -> pd.DataFrame:
         """Per-contributor DataFrame (index ``contributor``): current, allocated, bound,
         unit costs, count, limits."""
         import pandas as pd
 
         return pd.DataFrame(self.rows()).set_index("contributor")
 
-    def requirements_frame(self):
+    def requirements_frame(self) -> pd.DataFrame:
         """Per-requirement DataFrame (index ``requirement``): ranges, σ, fallout vs target,
         shadow prices."""
         import pandas as pd
