@@ -287,15 +287,6 @@ class Requirement:
         """True for a linear ``chain``, False for a nonlinear ``expression``."""
         return self.chain is not None
 
-    @property
-    def contributor_names(self) -> tuple[str, ...]:
-        """Names this requirement depends on (chain keys, or names in the expression)."""
-        if self.chain is not None:
-            return tuple(self.chain)
-        from .chain import expression_names
-
-        return expression_names(self.expression or "")
-
 
 @dataclass(frozen=True)
 class AllocationSettings:

@@ -15,18 +15,33 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
-from typing import TYPE_CHECKING, Callable, Sequence
+from typing import TYPE_CHECKING, Callable, Protocol, Sequence
 
 import numpy as np
 
-if TYPE_CHECKING:  # the curve module imports this one; cvxpy is imported lazily
+if TYPE_CHECKING:  # cvxpy is imported lazily
     import cvxpy as cp
-
-    from .curve import CostCurve
 
 # the parameters of many curves of one family, by name, one array element per curve
 Params = dict[str, np.ndarray]
 
+
+
+class CurveSpec(Protocol):
+    """What a family reads from a cost curve: :class:`allocator.costs.curve.CostCurve` is one.
+
+    The families take this interface rather than the class, so that the class (whose
+    ``value`` asks the registry) and the families need not import each other.
+    """
+
+    curve: str
+    a: float
+    b: float
+    c: float
+    k: float
+    points_tolerance: tuple[float, ...]
+    points_cost: tuple[float, ...]
+    between: str
 
 def as_float_or_array(values):
     """Scalar in -> float out; array in -> array out."""
@@ -109,7 +124,7 @@ class CurveFamily:
     piecewise: bool = False
 
     # ------------------------------------------------------------------ parameters
-    def check(self, curve: CostCurve, limits: Sequence[float] | None) -> str | None:
+    def check(self, curve: CurveSpec, limits: Sequence[float] | None) -> str | None:
         """First problem with the curve's parameters (limits already checked), or None."""
         for parameter in self.parameters:
             problem = parameter.problem(getattr(curve, parameter.name))
@@ -117,20 +132,20 @@ class CurveFamily:
                 return problem
         return None
 
-    def describe(self, curve: CostCurve, number: Callable[[float], str]) -> tuple[str, str]:
+    def describe(self, curve: CurveSpec, number: Callable[[float], str]) -> tuple[str, str]:
         """The formula and the parameters as text, numbers formatted by ``number``."""
         return self.formula, ", ".join(
             f"{q.name} = {number(getattr(curve, q.name))}" for q in self.parameters
         )
 
-    def params(self, curves: Sequence[CostCurve]) -> Params:
+    def params(self, curves: Sequence[CurveSpec]) -> Params:
         """The parameters of many curves of this family as arrays."""
         return {
             q.name: np.array([getattr(c, q.name) for c in curves], dtype=float)
             for q in self.parameters
         }
 
-    def one(self, curve: CostCurve) -> dict[str, float]:
+    def one(self, curve: CurveSpec) -> dict[str, float]:
         """The parameters of one curve as floats."""
         return {q.name: float(getattr(curve, q.name)) for q in self.parameters}
 
@@ -138,27 +153,27 @@ class CurveFamily:
         """The parameters of the parts where ``keep`` (a boolean mask) is True."""
         return {key: value[keep] for key, value in p.items()}
 
-    def scaled(self, curve: CostCurve, length: float, cost: float) -> CostCurve:
+    def scaled(self, curve: CurveSpec, length: float, cost: float) -> CurveSpec:
         """The curve of ``cost(length·τ) / cost`` in the scaled tolerance ``τ``."""
         raise NotImplementedError
 
     # ------------------------------------------------------------------ one curve, checked
-    def domain(self, curve: CostCurve, t: np.ndarray) -> np.ndarray:
+    def domain(self, curve: CurveSpec, t: np.ndarray) -> np.ndarray:
         """``t`` where the curve is defined (clipped onto it within round-off), else ValueError."""
         if not np.all(t > 0):  # also catches NaN
             bad = t[~(t > 0)] if t.ndim else t
             raise ValueError(f"tolerance must be > 0 (got {fmt(np.ravel(bad)[0])})")
         return t
 
-    def value_at(self, curve: CostCurve, t: np.ndarray) -> np.ndarray:
+    def value_at(self, curve: CurveSpec, t: np.ndarray) -> np.ndarray:
         """Checked value of one curve (``t`` any shape)."""
         return self.value(self.one(curve), self.domain(curve, t))
 
-    def derivative_at(self, curve: CostCurve, t: np.ndarray) -> np.ndarray:
+    def derivative_at(self, curve: CurveSpec, t: np.ndarray) -> np.ndarray:
         """Checked slope of one curve (``t`` any shape)."""
         return self.derivative(self.one(curve), self.domain(curve, t))
 
-    def inverse_derivative_at(self, curve: CostCurve, slope: np.ndarray) -> np.ndarray:
+    def inverse_derivative_at(self, curve: CurveSpec, slope: np.ndarray) -> np.ndarray:
         """Unclipped ``t`` with ``C'(t) = slope`` for one curve (``inf`` if never reached)."""
         return self.linear_minimiser(self.one(curve), -slope)
 
@@ -175,7 +190,7 @@ class CurveFamily:
         """d²C/dt² [currency/length²] (0 for piecewise-linear families)."""
         raise NotImplementedError
 
-    def kinks(self, curve: CostCurve) -> np.ndarray:
+    def kinks(self, curve: CurveSpec) -> np.ndarray:
         """Tolerances where the curve has a kink [length] (none for smooth families)."""
         return np.empty(0)
 
@@ -194,11 +209,11 @@ class CurveFamily:
         raise NotImplementedError
 
     # ------------------------------------------------------------------ convex-solver form
-    def cvx_key(self, curve: CostCurve) -> tuple:
+    def cvx_key(self, curve: CurveSpec) -> tuple:
         """Curves with equal keys share one vectorised cvxpy expression."""
         return (self.name,)
 
-    def cvx(self, curves: Sequence[CostCurve], t: cp.Expression, weight: np.ndarray) -> tuple[float, cp.Expression]:
+    def cvx(self, curves: Sequence[CurveSpec], t: cp.Expression, weight: np.ndarray) -> tuple[float, cp.Expression]:
         """``(constant, expression)`` with ``constant + expression = Σ w_i C_i(t_i)``.
 
         ``curves`` share one :meth:`cvx_key`; ``t`` is a cvxpy vector of their tolerances,

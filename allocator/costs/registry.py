@@ -8,15 +8,10 @@ subclass and one line below.
 
 from __future__ import annotations
 
-from typing import TYPE_CHECKING
-
 from .exponential import Exponential
-from .family import CurveFamily
+from .family import CurveFamily, CurveSpec
 from .power import Reciprocal, ReciprocalPower
 from .table import Table
-
-if TYPE_CHECKING:  # the curve module imports this one
-    from .curve import CostCurve
 
 __all__ = ["FAMILIES", "CURVES", "family", "family_of"]
 
@@ -42,6 +37,6 @@ def family(name: str) -> CurveFamily:
         ) from None
 
 
-def family_of(curve: CostCurve) -> CurveFamily:
+def family_of(curve: CurveSpec) -> CurveFamily:
     """The family of a :class:`~allocator.costs.curve.CostCurve`."""
     return family(curve.curve)

@@ -14,14 +14,9 @@ References
 from __future__ import annotations
 
 from dataclasses import replace
-from typing import TYPE_CHECKING
-
 import numpy as np
 
-from .family import RTOL, CurveFamily, fmt
-
-if TYPE_CHECKING:  # the curve module imports this one
-    from .curve import CostCurve
+from .family import RTOL, CurveFamily, CurveSpec, fmt
 
 __all__ = ["Table", "table_problem", "BETWEEN"]
 
@@ -101,7 +96,7 @@ def check_table(curve, limits) -> str | None:
     return None
 
 
-def table_problem(curve: CostCurve) -> str | None:
+def table_problem(curve: CurveSpec) -> str | None:
     """Why a table cannot be used as a continuous convex cost, or None if it can.
 
     Parameters
