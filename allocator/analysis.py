@@ -84,10 +84,7 @@ class RequirementAnalysis:
     @property
     def cpk(self) -> float:
         """Cpk of the response: distance from ȳ to the nearer limit over 3σ [-]."""
-        d = min(
-            math.inf if self.lower is None else self.nominal - self.lower,
-            math.inf if self.upper is None else self.upper - self.nominal,
-        )
+        d = min(stack.room(self.nominal, self.lower, self.upper))
         return math.inf if self.sigma == 0 else d / (3.0 * self.sigma)
 
     def to_dict(self) -> dict:

@@ -789,8 +789,9 @@ class _Tally:
         finite = np.isfinite(y)
         if self.hist_lo is None:
             self._fix_bins(y[: spans[0][2]])
-        self.below += np.count_nonzero(y < self.lower - centre, axis=0)
-        self.above += np.count_nonzero(y > self.upper - centre, axis=0)
+        room_below, room_above = stack.room(centre, self.lower, self.upper)  # ±inf limits: no None
+        self.below += np.count_nonzero(y < -room_below, axis=0)
+        self.above += np.count_nonzero(y > room_above, axis=0)
         self.undefined += np.count_nonzero(np.isnan(y), axis=0)
         self.valid += np.count_nonzero(finite, axis=0)
         clean = np.where(finite, y, 0.0)

@@ -15,6 +15,7 @@ from scipy import optimize, special
 
 __all__ = [
     "LIMIT_RTOL",
+    "room",
     "limit_margin",
     "beyond_limits",
     "worst_case_excess",
@@ -32,6 +33,54 @@ __all__ = [
 #: Relative round-off margin for judging a stack against a limit [-] (see
 #: :func:`limit_margin`).
 LIMIT_RTOL = 1e-9
+
+
+def room(
+    nominal: float | np.ndarray,
+    lower: float | np.ndarray | None = None,
+    upper: float | np.ndarray | None = None,
+    delta: float = 0.0,
+) -> tuple:
+    """Room between the response (or its mean band) and each limit [response].
+
+    Parameters
+    ----------
+    nominal : float or numpy.ndarray
+        Nominal response ȳ (or any single response value, e.g. a mean) [response].
+    lower, upper : float, numpy.ndarray or None
+        Limits; ``None`` is a missing limit.
+    delta : float
+        Half-width δ ≥ 0 of a band ``[ȳ − δ, ȳ + δ]`` around the nominal (the mean-shift
+        band of :func:`mean_shift_delta`) [response]; 0 for the nominal itself.
+
+    Returns
+    -------
+    (below, above) : (float, float)
+        ``ȳ − δ − L`` and ``U − ȳ − δ``, the distances from the band's ends to the
+        limits, evaluated left to right in exactly that order; ``inf`` for a missing
+        limit. ``min(below, above)`` is the room a worst-case half-width may use; a
+        value ≤ 0 means the band reaches (or passes) that limit.
+
+    Notes
+    -----
+    Every room in the package (worst-case constraints, Cpk, σ limits and z-scores,
+    sweep ranges, Monte Carlo counts) comes from here, so the solvers, the analysis and
+    the report see the same bits. With ``δ = 0`` the subtraction of ``δ`` is exact, so
+    the values are ``ȳ − L`` and ``U − ȳ`` to the last bit, and ``−below`` is ``L − ȳ``
+    to the last bit. How far a worst-case end passes a limit (:func:`beyond_limits`,
+    ``L − (ȳ − W)``) is a different sum and rounds differently. Limits given as arrays
+    must not hold ``None`` (use ``±inf`` for a missing side).
+
+    Examples
+    --------
+    >>> room(0.3, 0.05, 0.6)
+    (0.25, 0.3)
+    >>> room(10.0, upper=10.5, delta=0.5)
+    (inf, 0.0)
+    """
+    below = math.inf if lower is None else nominal - delta - lower
+    above = math.inf if upper is None else upper - nominal - delta
+    return below, above
 
 
 def limit_margin(*magnitudes: float | None) -> float:
@@ -268,10 +317,11 @@ def normal_fallout(mean: float, sigma: float, lower: float | None = None, upper:
     if sigma <= 0:
         out_below, out_above = beyond_limits(mean, mean, lower, upper, margin=limit_margin(mean, lower, upper))
         return float(out_below > 0), float(out_above > 0)
+    d_low, d_up = room(mean, lower, upper)
     if lower is not None:
-        below = float(_norm_cdf((lower - mean) / sigma))
+        below = float(_norm_cdf(-d_low / sigma))  # −(μ − L) is L − μ to the bit
     if upper is not None:
-        above = float(_norm_cdf((mean - upper) / sigma))
+        above = float(_norm_cdf(-d_up / sigma))
     return below, above
 
 
@@ -358,8 +408,7 @@ def sigma_limit(mean: float, fallout: float, lower: float | None = None, upper: 
     """
     if not 0.0 < fallout < 1.0:
         raise ValueError("fallout must be strictly between 0 and 1")
-    d_low = math.inf if lower is None else mean - lower
-    d_up = math.inf if upper is None else upper - mean
+    d_low, d_up = room(mean, lower, upper)
     if d_low == math.inf and d_up == math.inf:
         return math.inf
     d_near, d_far = min(d_low, d_up), max(d_low, d_up)

@@ -543,16 +543,15 @@ def automatic_range(
     if vary == "fallout_ppm":
         lo, hi = AUTO_FALLOUT_RANGE
         return (lo, hi), f"range chosen automatically: {lo:g} .. {hi:g} ppm"
+    from . import stack
     from .chain import linearise
 
     req = case.requirement(requirement)
     nominal = linearise(case, req).nominal
-    current = getattr(req, vary)
     sign = 1.0 if vary == "upper" else -1.0  # direction in which the limit loosens
-    slack = sign * (current - nominal)
+    below, above = stack.room(nominal, req.lower, req.upper)
+    slack = above if vary == "upper" else below  # room on the swept side
     if not slack > 0:  # the nominal sits on or beyond the limit: use the worst-case spread
-        from . import stack
-
         lin = linearise(case, req)
         slack = stack.worst_case_half_width(lin.sensitivity, case.counts, case.current_tolerances) or 1.0
     far = nominal + sign * 2.0 * slack

@@ -193,6 +193,29 @@ def test_cli_names_the_amount_past_the_limit(tmp_path):
     assert "OUTSIDE limits: 5e-08 below lower 0.05" in result.output
 
 
+def test_room_to_the_limits_by_hand():
+    import numpy as np
+
+    from allocator import stack
+
+    # values that are exact binary fractions, so the hand results are exact
+    assert stack.room(10.0, 9.5, 10.25) == (0.5, 0.25)  # two-sided
+    assert stack.room(10.0, upper=10.25) == (math.inf, 0.25)  # one-sided, upper
+    assert stack.room(10.0, lower=9.5) == (0.5, math.inf)  # one-sided, lower
+    assert stack.room(10.0) == (math.inf, math.inf)  # no limit
+    assert stack.room(10.0, 9.5, 10.25, delta=0.125) == (0.375, 0.125)  # mean band ȳ ± δ
+    assert stack.room(10.0, 9.5, 10.25, delta=0.25) == (0.25, 0.0)  # the band reaches U
+    assert stack.room(10.0, 9.5, 10.25, delta=0.5) == (0.0, -0.25)  # reaches L, passes U
+    assert stack.room(10.5, 9.5, 10.25) == (1.0, -0.25)  # nominal beyond U: negative room
+    # decimal inputs: the same bits as ȳ − L and U − ȳ written out (here ȳ − L is 0.25000000000000006)
+    y, lower, upper = 0.1 + 0.2, 0.05, 0.6
+    assert stack.room(y, lower, upper) == (y - lower, upper - y)
+    assert stack.room(y, lower, upper, delta=0.05) == ((y - 0.05) - lower, (upper - y) - 0.05)
+    # arrays with ±inf for a missing side (the Monte Carlo tally's form)
+    below, above = stack.room(np.array([10.0, 10.0]), np.array([9.5, -np.inf]), np.array([np.inf, 10.25]))
+    assert below.tolist() == [0.5, math.inf] and above.tolist() == [math.inf, 0.25]
+
+
 def test_zero_spread_response_on_its_limit_has_no_fallout():
     from allocator import stack
 

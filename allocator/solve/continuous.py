@@ -197,10 +197,7 @@ class CompiledAllocation:
             a = req.sensitivity
             unbounded = lim.lower is None and lim.upper is None
             if row.kind == "worst-case":
-                room = min(
-                    math.inf if lim.lower is None else req.nominal - lim.lower,
-                    math.inf if lim.upper is None else lim.upper - req.nominal,
-                )
+                room = min(stack.room(req.nominal, lim.lower, lim.upper))
                 room -= stack.worst_case_half_width(a, p.counts, t_held)
                 if not math.isfinite(room):  # no limit: never binding (twice the loosest spread)
                     room = 2.0 * stack.worst_case_half_width(a, p.counts, t_loose)
@@ -248,9 +245,7 @@ class CompiledAllocation:
 
     def _domain(self, req, lim):
         """Largest δ for which the worst mean is still inside the limits."""
-        d_low = math.inf if lim.lower is None else req.nominal - lim.lower
-        d_up = math.inf if lim.upper is None else lim.upper - req.nominal
-        return min(d_low, d_up)
+        return min(stack.room(req.nominal, lim.lower, lim.upper))
 
     # ------------------------------------------------------------------ solve
 
@@ -679,7 +674,7 @@ def lagrangian_bound(problem: AllocationProblem, limits, t, multipliers) -> floa
             continue
         a = req.sensitivity
         if p.model == "worst-case":
-            room = min(_sides_room(req.nominal, lim))
+            room = min(stack.room(req.nominal, lim.lower, lim.upper))
             grad = n * np.abs(a)
             h = float(grad @ t) - room
         else:
@@ -710,9 +705,3 @@ def lagrangian_bound(problem: AllocationProblem, limits, t, multipliers) -> floa
     value += float(price[~free] @ t[~free]) + constant
     return value if math.isfinite(value) else None
 
-
-def _sides_room(nominal, lim):
-    return (
-        math.inf if lim.lower is None else nominal - lim.lower,
-        math.inf if lim.upper is None else lim.upper - nominal,
-    )

@@ -800,10 +800,7 @@ class DiscreteAllocation:
         for r, (req, lim) in enumerate(zip(self.requirements, limits)):
             if lim.lower is None and lim.upper is None:
                 continue
-            room = min(
-                math.inf if lim.lower is None else req.nominal - lim.lower,
-                math.inf if lim.upper is None else lim.upper - req.nominal,
-            )
+            room = min(stack.room(req.nominal, lim.lower, lim.upper))
             if not room > 0:
                 return _MilpOutcome("infeasible", None, None, None, None, 0, 0, 0,
                                     f"requirement '{req.name}': nominal outside its limits")
@@ -1212,10 +1209,7 @@ class DiscreteAllocation:
             req, lim = self.requirements[r], limits[r]
             if lim.lower is None and lim.upper is None or lim.fallout > TANGENT_MAX_FALLOUT:
                 continue
-            room = min(
-                math.inf if lim.lower is None else req.nominal - lim.lower,
-                math.inf if lim.upper is None else lim.upper - req.nominal,
-            )
+            room = min(stack.room(req.nominal, lim.lower, lim.upper))
             for u, point in points[-CARRIED_CUTS:]:
                 if 0 <= point < room * (1 - 1e-12):
                     self._add_tangent(r, u, point, lim)
@@ -1413,10 +1407,7 @@ class DiscreteAllocation:
                 np.min(np.abs(breaks - delta)) > 1e-12 * breaks[-1]
             ):
                 self._breaks[key] = np.sort(np.append(breaks, delta))
-            room = min(
-                math.inf if lim.lower is None else req.nominal - lim.lower,
-                math.inf if lim.upper is None else lim.upper - req.nominal,
-            )
+            room = min(stack.room(req.nominal, lim.lower, lim.upper))
             if sigma > 0 and delta < room and lim.fallout <= TANGENT_MAX_FALLOUT:
                 self._add_tangent(r, sigma_i / sigma, delta, lim)
 
@@ -1462,10 +1453,7 @@ class DiscreteAllocation:
             return None
         r = active[0]
         req, lim = self.requirements[r], limits[r]
-        room = min(
-            math.inf if lim.lower is None else req.nominal - lim.lower,
-            math.inf if lim.upper is None else lim.upper - req.nominal,
-        )
+        room = min(stack.room(req.nominal, lim.lower, lim.upper))
         if not room > 0:
             return None
         a, n = np.abs(self.sensitivity[r]), self.counts

@@ -183,10 +183,7 @@ class SeparableDual:
                 allowance.append(math.inf)
                 continue
             if not self.squared:
-                room = min(
-                    math.inf if lim.lower is None else req.nominal - lim.lower,
-                    math.inf if lim.upper is None else lim.upper - req.nominal,
-                )
+                room = min(stack.room(req.nominal, lim.lower, lim.upper))
                 out.append(room - self.held_part[k])
                 allowance.append(room)
                 continue
@@ -463,10 +460,7 @@ class _ShiftConstraint:
     def __init__(self, nominal: float, lim):
         self.nominal, self.lim = nominal, lim
         # δ must stay inside the band: beyond it no σ meets the requirement
-        self.domain = min(
-            math.inf if lim.lower is None else nominal - lim.lower,
-            math.inf if lim.upper is None else lim.upper - nominal,
-        )
+        self.domain = min(stack.room(nominal, lim.lower, lim.upper))
 
     def residual(self, sigma: float, delta: float, curvature: bool = True):
         """``(F1, (g, g′, g″))``; ``F1 = inf`` when ``δ`` leaves the domain."""

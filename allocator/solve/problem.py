@@ -204,13 +204,6 @@ class Limits:
         return self.lower is not None and self.upper is not None
 
 
-def _sides(nominal, delta, limits: Limits):
-    """Distances from the worst mean band ``ȳ ± δ`` to the limits (inf when missing)."""
-    d_low = math.inf if limits.lower is None else nominal - delta - limits.lower
-    d_up = math.inf if limits.upper is None else limits.upper - nominal - delta
-    return d_low, d_up
-
-
 def sigma_limit_slopes(mean: float, sigma: float, limits: Limits) -> dict[str, float]:
     """Partial derivatives of the largest allowed σ (:func:`allocator.stack.sigma_limit`).
 
@@ -245,18 +238,18 @@ def sigma_limit_slopes(mean: float, sigma: float, limits: Limits) -> dict[str, f
     A missing limit drops its term. At σ_max = 0 (mean on a limit) the one-sided limit
     values ``∓1/z`` with ``z = Φ⁻¹(1 − p)`` are returned.
     """
+    d_low, d_up = stack.room(mean, limits.lower, limits.upper)
     if not sigma > 0:
         z = -float(special.ndtri(limits.fallout))
-        d_low, d_up = _sides(mean, 0.0, limits)
         if d_up <= d_low:
             return {"mean": -1.0 / z, "lower": 0.0, "upper": 1.0 / z, "fallout": 0.0}
         return {"mean": 1.0 / z, "lower": -1.0 / z, "upper": 0.0, "fallout": 0.0}
     phi_l = z_l = phi_u = z_u = 0.0
     if limits.lower is not None:
-        z_l = (limits.lower - mean) / sigma
+        z_l = -d_low / sigma
         phi_l = math.exp(-0.5 * z_l * z_l)
     if limits.upper is not None:
-        z_u = (mean - limits.upper) / sigma
+        z_u = -d_up / sigma
         phi_u = math.exp(-0.5 * z_u * z_u)
     # the 1/sqrt(2π) of φ cancels in every ratio except ∂σ/∂p
     d = z_l * phi_l + z_u * phi_u
@@ -302,10 +295,7 @@ def mean_shift_allowance(nominal: float, delta: float, limits: Limits) -> tuple[
 def allowance_with_curvature(nominal: float, delta: float, lim: Limits) -> tuple[float, float, float]:
     """g(δ), g'(δ) and g''(δ) (the last by a central difference of the analytic g')."""
     value, slope, _ = mean_shift_allowance(nominal, delta, lim)
-    domain = min(
-        math.inf if lim.lower is None else nominal - lim.lower,
-        math.inf if lim.upper is None else lim.upper - nominal,
-    )
+    domain = min(stack.room(nominal, lim.lower, lim.upper))
     h = 1e-5 * max(delta, 1e-3 * domain)
     if delta - h < 0:
         plus = mean_shift_allowance(nominal, delta + h, lim)[1]
@@ -538,7 +528,7 @@ class AllocationProblem:
             below, above, mean = stack.worst_mean_fallout(y0, delta, sigma, lim.lower, lim.upper)
             fallout = below + above
             if self.model == "worst-case":
-                room = min(_sides(y0, 0.0, lim))
+                room = min(stack.room(y0, lim.lower, lim.upper))
                 if room == math.inf:
                     excess = -1.0
                 elif room <= 0:
@@ -808,7 +798,7 @@ def shadow_prices(model: str, req: RequirementData, lim: Limits, stats: dict, y:
     if y == 0.0:
         return out
     if model == "worst-case":
-        d_low, d_up = _sides(req.nominal, 0.0, lim)
+        d_low, d_up = stack.room(req.nominal, lim.lower, lim.upper)
         tie = math.isclose(d_low, d_up, rel_tol=1e-12)
         if d_up <= d_low or tie:
             out["shadow_upper"] = -y
