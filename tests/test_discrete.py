@@ -225,7 +225,9 @@ def test_gap_with_sixty_grid_points_and_no_refinement():
     assert 0.0 <= result.gap < 1e-3
 
 
-@pytest.mark.parametrize("model", ["worst-case", "rss", "mean-shift"])
+# rss stays in the fast loop; the two slower models run in the whole suite
+@pytest.mark.parametrize("model", [pytest.param("worst-case", marks=pytest.mark.slow), "rss",
+                                   pytest.param("mean-shift", marks=pytest.mark.slow)])
 def test_one_solver_re_solved_in_any_order_matches_fresh_solvers_and_enumeration(model):
     # A sweep re-solves one object: it starts from the last choice (an incumbent that may
     # not even be feasible after a tightening), a grid coarse away from the last optimum
@@ -710,6 +712,7 @@ case = Case(title="invented test case", contributors=tuple(parts), requirements=
 """
 
 
+@pytest.mark.slow
 def test_unrounded_optimum_beside_a_rounded_one_is_the_one_allocate_gives():
     # one rule picks the solver on every path (docs/allocation.md, "Solvers"): the
     # unrounded optimum reported beside a rounded allocation is allocate()'s answer for the

@@ -885,6 +885,7 @@ def discrete_case_file(tmp_path):
     return path
 
 
+@pytest.mark.slow  # the fast loop keeps the pseudo-terminal check of allocate's bar
 @pytest.mark.skipif(__import__("sys").platform == "win32", reason="needs a POSIX pseudo-terminal")
 def test_cli_progress_on_a_terminal_and_nothing_in_the_json(discrete_case_file, tmp_path):
     # stderr on a pseudo-terminal: a bar per long task (points counted, time left), drawn
@@ -944,9 +945,9 @@ def _discrete_case(tmp_path):
     [
         ("worst-case", "upper", [2.3, 2.33, 2.36, 2.4, 2.46]),  # the first cannot be met
         ("rss", "upper", [2.3, 2.33, 2.36, 2.4, 2.46]),
-        ("mean-shift", "upper", [2.3, 2.33, 2.36, 2.4, 2.46]),
+        pytest.param("mean-shift", "upper", [2.3, 2.33, 2.36, 2.4, 2.46], marks=pytest.mark.slow),
         ("rss", "lower", [2.12, 2.2, 2.24, 2.27]),
-        ("mean-shift", "fallout_ppm", [1.0, 30.0, 1000.0, 20000.0]),
+        pytest.param("mean-shift", "fallout_ppm", [1.0, 30.0, 1000.0, 20000.0], marks=pytest.mark.slow),
     ],
 )
 def test_discrete_frontier_points_equal_independent_allocations(tmp_path, model, vary, values):

@@ -20,7 +20,8 @@ import pytest
 from allocator.case import load_case
 from allocator.report import write_report
 
-pytestmark = pytest.mark.browser
+# a real browser start takes seconds: part of the whole suite, not the fast loop
+pytestmark = [pytest.mark.browser, pytest.mark.slow]
 
 CASES = Path(__file__).resolve().parent.parent / "cases"
 WIDTH, HEIGHT = 1200, 4000
