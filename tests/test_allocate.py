@@ -21,7 +21,7 @@ from allocator.errors import CaseError, UsageError
 from allocator.model import Case, Contributor, CostCurve, Process, Requirement
 from allocator.solve import allocate, allocate_all, prepare, solver_for
 from allocator.solve.continuous import CompiledAllocation
-from allocator.solve.problem import CurveSet, Limits, mean_shift_allowance, scaled_curve, sigma_limit_slopes
+from allocator.solve.problem import CurveSet, RequirementLimits, mean_shift_allowance, scaled_curve, sigma_limit_slopes
 
 from helpers import chain_requirement, contributor, make_case
 
@@ -312,7 +312,7 @@ def test_mean_shift_allowance_is_concave_and_its_slope_is_right(nominal, lower, 
     # the cutting planes are valid outer approximations only if g(δ) is concave: check it
     # numerically by second differences over its whole domain, and the analytic slope by
     # central differences
-    lim = Limits(lower, upper, ppm)
+    lim = RequirementLimits(lower, upper, ppm)
     domain = min(math.inf if lower is None else nominal - lower, math.inf if upper is None else upper - nominal)
     deltas = np.linspace(0.0, domain * 0.999, 400)
     g = np.array([stack.mean_shift_sigma_limit(nominal, d, lim.fallout, lower, upper) for d in deltas])
@@ -331,7 +331,7 @@ def test_mean_shift_allowance_is_concave_and_its_slope_is_right(nominal, lower, 
 @pytest.mark.parametrize("mean, lower, upper", [(0.1, -1.0, 1.0), (0.0, None, 2.0), (0.5, -0.2, None), (0.9, 0.0, 1.0)])
 def test_sigma_limit_slopes_match_finite_differences(mean, lower, upper):
     p = 1e-3
-    lim = Limits(lower, upper, p * 1e6)
+    lim = RequirementLimits(lower, upper, p * 1e6)
     sigma = stack.sigma_limit(mean, p, lower, upper)
     slopes = sigma_limit_slopes(mean, sigma, lim)
     h = 1e-6

@@ -62,6 +62,6 @@ def test_an_allocation_refuses_an_undocumented_word():
 
     with pytest.raises(ValueError, match="unknown status 'solved'"):
         Allocation(model="rss", status="solved", message="", names=(), current=(), counts=(),
-                   lower_bounds=(), upper_bounds=(), unit_cost_current=(), current_cost=0.0,
+                   tightest=(), loosest=(), unit_cost_current=(), current_cost=0.0,
                    processes={}, solver="", iterations=0, gap=None, units="", currency="",
                    title="", held={}, requirements=())

@@ -124,7 +124,7 @@ class CompiledAllocation:
         if free.size:
             curves = [scaled_curve(p.curves.curves[i], length, money) for i in free]
             objective = costs.cvx_costs(curves, tau, n[free])
-            constraints += [tau >= p.lower_bounds[free] / length, tau <= p.upper_bounds[free] / length]
+            constraints += [tau >= p.tightest[free] / length, tau <= p.loosest[free] / length]
         for k, req in enumerate(p.requirements):
             a = req.sensitivity
             if p.model == "worst-case":
@@ -409,7 +409,7 @@ class CompiledAllocation:
                 return None
             tau, accurate, its = out  # earlier rounds only place tangents: the last one counts
             iterations += its
-            t = p.full(np.clip(tau * length, p.lower_bounds[p.free], p.upper_bounds[p.free]))
+            t = p.full(np.clip(tau * length, p.tightest[p.free], p.loosest[p.free]))
             violated = []
             for req, lim, row in shifting:
                 a = req.sensitivity
@@ -456,7 +456,7 @@ def refine_mean_shift(problem: AllocationProblem, limits, multipliers, t, *, max
     ----------
     problem : AllocationProblem
         Mean-shift model.
-    limits : list of Limits
+    limits : list of RequirementLimits
     multipliers : sequence of float
         μ_r = −∂cost/∂g_r from the cutting-plane solve, per requirement.
     t : numpy.ndarray
@@ -496,7 +496,7 @@ def refine_mean_shift(problem: AllocationProblem, limits, multipliers, t, *, max
     # a positive dual (or a requirement at its limit) makes a requirement a candidate;
     # complementary slackness sorts them out below
     active = [k for k in limited if y[k] > 0 or stats[k]["excess"] >= -1e-6]
-    lo, hi = p.lower_bounds, p.upper_bounds
+    lo, hi = p.tightest, p.loosest
     margin = 1e-7 * (hi - lo)
     x = np.asarray(t, dtype=float).copy()
     kink = p.curves.at_breakpoint(x)
@@ -570,7 +570,7 @@ def _kkt_newton(p, limits, active, J, x, mu, at_lo, at_hi, max_steps):
     """Newton on the KKT system for a fixed active set; a contributor whose step would
     cross a bound is put on it (into ``at_lo``/``at_hi``) and leaves the unknowns."""
     n, f, m = p.counts, p.sigma_factors, p.mean_shifts
-    lo, hi = p.lower_bounds, p.upper_bounds
+    lo, hi = p.tightest, p.loosest
     rows = []
     for k in active:
         a = p.requirements[k].sensitivity
@@ -635,7 +635,7 @@ def lagrangian_bound(problem: AllocationProblem, limits, t, multipliers) -> floa
     Parameters
     ----------
     problem : AllocationProblem
-    limits : list of Limits
+    limits : list of RequirementLimits
     t : numpy.ndarray
         Any tolerances (all contributors) [length]; the tangents are taken there.
     multipliers : sequence of float
@@ -700,7 +700,7 @@ def lagrangian_bound(problem: AllocationProblem, limits, t, multipliers) -> floa
     if index.size == 0:
         return cost_held + constant + float(price @ t)
     curves = p.curves.subset(index)
-    t_b = minimise_linear_price(curves, price[free] / n[free], p.lower_bounds[free], p.upper_bounds[free])
+    t_b = minimise_linear_price(curves, price[free] / n[free], p.tightest[free], p.loosest[free])
     value = cost_held + float(n[free] @ curves.value(t_b)) + float(price[free] @ t_b)
     value += float(price[~free] @ t[~free]) + constant
     return value if math.isfinite(value) else None

@@ -80,7 +80,7 @@ from .problem import (
     AllocationProblem,
     check_fix_values,
     cheapest_unit_cost,
-    Limits,
+    RequirementLimits,
     mean_shift_allowance,
     prepare,
 )
@@ -712,7 +712,7 @@ class DiscreteAllocation:
 
     # ------------------------------------------------------------------ MILP with cuts
 
-    def _solve_milp(self, cand: _Candidates, limits: list[Limits], restricted: bool = False,
+    def _solve_milp(self, cand: _Candidates, limits: list[RequirementLimits], restricted: bool = False,
                     cutoff: float | None = None) -> _MilpOutcome:
         """Least-cost choice among ``cand``, exact for points (lazy cuts for mean shift).
 

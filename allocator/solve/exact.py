@@ -82,8 +82,8 @@ class SeparableDual:
         self.problem = problem
         free = problem.free
         self.index = np.flatnonzero(free)
-        self.lo = problem.lower_bounds[free]
-        self.hi = problem.upper_bounds[free]
+        self.lo = problem.tightest[free]
+        self.hi = problem.loosest[free]
         self.n = problem.counts[free]
         self.curves = problem.curves.subset(self.index)
         self.squared = problem.model != "worst-case"
@@ -527,8 +527,8 @@ class MeanShiftExact:
         self.problem = problem
         free, held = problem.free, ~problem.free
         self.index = np.flatnonzero(free)
-        self.lo = problem.lower_bounds[free]
-        self.hi = problem.upper_bounds[free]
+        self.lo = problem.tightest[free]
+        self.hi = problem.loosest[free]
         self.n = problem.counts[free]
         self.curves = problem.curves.subset(self.index)
         req = problem.requirements[0]
@@ -735,7 +735,7 @@ def refine(problem: AllocationProblem, limits, multipliers, t_start, *, max_step
     ----------
     problem : AllocationProblem
         Separable (:func:`separable`).
-    limits : list of Limits
+    limits : list of RequirementLimits
     multipliers : sequence of float
         ``−∂cost/∂(allowance)`` per requirement from the conic solver's duals.
     t_start : numpy.ndarray

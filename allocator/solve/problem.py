@@ -37,7 +37,7 @@ __all__ = [
     "NeedsDiscrete",
     "CurveSet",
     "RequirementData",
-    "Limits",
+    "RequirementLimits",
     "prepare",
     "check_fix_values",
     "cheapest_unit_cost",
@@ -188,7 +188,7 @@ class RequirementData:
 
 
 @dataclass(frozen=True)
-class Limits:
+class RequirementLimits:
     """The limits in force for one solve (a requirement's own, or overridden)."""
 
     lower: float | None
@@ -204,7 +204,7 @@ class Limits:
         return self.lower is not None and self.upper is not None
 
 
-def sigma_limit_slopes(mean: float, sigma: float, limits: Limits) -> dict[str, float]:
+def sigma_limit_slopes(mean: float, sigma: float, limits: RequirementLimits) -> dict[str, float]:
     """Partial derivatives of the largest allowed σ (:func:`allocator.stack.sigma_limit`).
 
     Parameters
@@ -213,7 +213,7 @@ def sigma_limit_slopes(mean: float, sigma: float, limits: Limits) -> dict[str, f
         Response mean μ [response].
     sigma : float
         ``σ_max = sigma_limit(μ, p, L, U)`` at that mean [response].
-    limits : Limits
+    limits : RequirementLimits
         ``L``, ``U`` and the fallout target ``p``.
 
     Returns
@@ -261,7 +261,7 @@ def sigma_limit_slopes(mean: float, sigma: float, limits: Limits) -> dict[str, f
     }
 
 
-def mean_shift_allowance(nominal: float, delta: float, limits: Limits) -> tuple[float, float, float]:
+def mean_shift_allowance(nominal: float, delta: float, limits: RequirementLimits) -> tuple[float, float, float]:
     """Largest σ with the mean anywhere in ``ȳ ± δ``, its slope in δ, and the worst mean.
 
     Returns
@@ -292,7 +292,7 @@ def mean_shift_allowance(nominal: float, delta: float, limits: Limits) -> tuple[
     return high
 
 
-def allowance_with_curvature(nominal: float, delta: float, lim: Limits) -> tuple[float, float, float]:
+def allowance_with_curvature(nominal: float, delta: float, lim: RequirementLimits) -> tuple[float, float, float]:
     """g(δ), g'(δ) and g''(δ) (the last by a central difference of the analytic g')."""
     value, slope, _ = mean_shift_allowance(nominal, delta, lim)
     domain = min(stack.room(nominal, lim.lower, lim.upper))
@@ -321,9 +321,9 @@ class AllocationProblem:
         ``n_i`` [-], ``f_i = σ_i/t_i`` [-], ``m_i`` [-] in case order.
     free : numpy.ndarray of bool
         Contributors the allocation may change.
-    lower_bounds, upper_bounds : numpy.ndarray
-        ``[tightest, loosest]`` per contributor [length]; a held contributor has both
-        equal to its held value.
+    tightest, loosest : numpy.ndarray
+        ``[tightest, loosest]`` per contributor [length] (the case's ``limits``); a held
+        contributor has both equal to its held value.
     held : numpy.ndarray
         Held tolerance (case ``fixed`` or the ``fix`` argument), NaN for free ones.
     hold_kind : tuple of str
@@ -435,7 +435,7 @@ class AllocationProblem:
         self.counts = np.array(counts, dtype=float)
         self.sigma_factors = sigma_factors
         self.mean_shifts = np.array(shifts, dtype=float)
-        self.lower_bounds, self.upper_bounds, self.held = lo, hi, held
+        self.tightest, self.loosest, self.held = lo, hi, held
         self.free = np.isnan(held)
         self.hold_kind = tuple(hold_kind)
         self.current = np.array(current, dtype=float)
@@ -468,17 +468,9 @@ class AllocationProblem:
         t[self.free] = t_free
         return t
 
-    @property
-    def tightest(self) -> np.ndarray:
-        return np.where(self.free, self.lower_bounds, self.held)
-
-    @property
-    def loosest(self) -> np.ndarray:
-        return np.where(self.free, self.upper_bounds, self.held)
-
     # ------------------------------------------------------------------ limits
 
-    def limits(self, overrides=None) -> list[Limits]:
+    def limits(self, overrides=None) -> list[RequirementLimits]:
         """The limits in force per requirement, with ``overrides`` applied.
 
         ``overrides`` maps a requirement name to a dict with any of ``lower``,
@@ -498,7 +490,7 @@ class AllocationProblem:
         out = []
         for r in self.requirements:
             change = overrides.get(r.name, {})
-            lim = Limits(
+            lim = RequirementLimits(
                 change.get("lower", r.lower),
                 change.get("upper", r.upper),
                 float(change.get("fallout_ppm", r.fallout_ppm)),
@@ -512,7 +504,7 @@ class AllocationProblem:
 
     # ------------------------------------------------------------------ statistics
 
-    def statistics(self, t, limits: list[Limits]) -> list[dict]:
+    def statistics(self, t, limits: list[RequirementLimits]) -> list[dict]:
         """Per requirement at tolerances ``t``: spreads, fallout and how far it misses.
 
         ``excess`` is the relative violation of the model's constraint: worst case
@@ -556,7 +548,7 @@ class AllocationProblem:
 
     # ------------------------------------------------------------------ infeasibility
 
-    def diagnose(self, limits: list[Limits]) -> str | None:
+    def diagnose(self, limits: list[RequirementLimits]) -> str | None:
         """Why the problem is infeasible, or None.
 
         Every constraint is monotone in every tolerance, so the tightest tolerances
@@ -627,10 +619,10 @@ class AllocationProblem:
         if self.feasible(t, limits):
             return t, 1.0
         free = self.free
-        shrink = lambda theta: np.where(free, np.maximum(self.lower_bounds, theta * t), t)  # noqa: E731
+        shrink = lambda theta: np.where(free, np.maximum(self.tightest, theta * t), t)  # noqa: E731
         good, bad = 0.0, 1.0
         if free.any():
-            good = float(np.min(self.lower_bounds[free] / np.maximum(t[free], 1e-300)))
+            good = float(np.min(self.tightest[free] / np.maximum(t[free], 1e-300)))
         if not self.feasible(shrink(good), limits):
             return shrink(good), good  # infeasible even at the tightest: caller reports
         for _ in range(200):
@@ -654,7 +646,7 @@ class AllocationProblem:
 
     def bound_flags(self, t) -> tuple[str, ...]:
         """'tightest' | 'loosest' | 'fixed' | '' per contributor."""
-        lo, hi = self.lower_bounds, self.upper_bounds
+        lo, hi = self.tightest, self.loosest
         slack = BOUND_RTOL * np.maximum(hi - lo, hi)
         flags = np.where(t <= lo + slack, "tightest", np.where(t >= hi - slack, "loosest", ""))
         return tuple(np.where(self.free, flags, "fixed").tolist())
@@ -696,8 +688,8 @@ class AllocationProblem:
             names=self.names,
             current=self.current,
             counts=self.counts,
-            lower_bounds=np.where(self.free, self.lower_bounds, np.nan),
-            upper_bounds=np.where(self.free, self.upper_bounds, np.nan),
+            tightest=np.where(self.free, self.tightest, np.nan),
+            loosest=np.where(self.free, self.loosest, np.nan),
             unit_cost_current=current_unit,
             current_cost=current_cost,
             processes=dict(zip(self.names, self.processes)),
@@ -756,14 +748,14 @@ def _fmt_limit(x):
     return "-inf" if x is None else _g(x)
 
 
-def shadow_prices(model: str, req: RequirementData, lim: Limits, stats: dict, y: float) -> dict:
+def shadow_prices(model: str, req: RequirementData, lim: RequirementLimits, stats: dict, y: float) -> dict:
     """d(total cost)/d(limit) and d(total cost)/d(ppm) from a constraint multiplier.
 
     Parameters
     ----------
     model : str
     req : RequirementData
-    lim : Limits
+    lim : RequirementLimits
     stats : dict
         :meth:`AllocationProblem.statistics` entry at the solution.
     y : float

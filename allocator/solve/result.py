@@ -35,7 +35,7 @@ class RequirementResult:
     nominal : float
         Response at the nominals ȳ [response].
     lower, upper : float or None
-        Limits in force for this solve.
+        RequirementLimits in force for this solve.
     worst_case_min, worst_case_max : float
         ``ȳ ∓ Σ n|a|t`` [response].
     sigma : float
@@ -159,8 +159,8 @@ class Allocation:
         names,
         current,
         counts,
-        lower_bounds,
-        upper_bounds,
+        tightest,
+        loosest,
         unit_cost_current,
         current_cost,
         processes,
@@ -195,8 +195,8 @@ class Allocation:
             _counts=_frozen_array(counts),
             # each free contributor's tolerance range [tightest, loosest] (NaN when held):
             # the contract's ``limits``, the JSON's "tightest" and "loosest"
-            _tightest=_frozen_array(lower_bounds),
-            _loosest=_frozen_array(upper_bounds),
+            _tightest=_frozen_array(tightest),
+            _loosest=_frozen_array(loosest),
             _unit_current=_frozen_array(unit_cost_current),
             current_cost=float(current_cost),
             processes=MappingProxyType(dict(processes)),
