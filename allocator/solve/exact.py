@@ -366,7 +366,7 @@ class ExactAllocation:
         bound[stuck] = math.nan
         if live.size == 0:
             return t, lam, bound
-        x_a, x_b = self._bracket_roots(excess, live, x_lo[live], x_hi[live], f_lo[live], f_hi[live])
+        x_a, x_b = _bracket_roots(excess, live, x_lo[live], x_hi[live], f_lo[live], f_hi[live])
         lam_a, lam_b = np.exp(x_a), np.exp(x_b)
         t_a, t_b = dual.tolerances(lam_a[:, None] * w), dual.tolerances(lam_b[:, None] * w)
         found = rows[live]
@@ -375,44 +375,6 @@ class ExactAllocation:
         bound[found] = np.maximum(dual.bound(lam_a[:, None], target[live, None]),
                                   dual.bound(lam_b[:, None], target[live, None]))
         return t, lam, bound
-
-    @staticmethod
-    def _bracket_roots(f, which, a, b, fa, fb, *, xtol: float = 1e-13, maxiter: int = 300):
-        """Shrink each ``[a, b]`` with ``f(a) > 0 >= f(b)`` (f non-increasing) around its root.
-
-        :func:`_bracket_root` on an array of brackets in lock step: ``f(x, which)`` gives
-        the values at ``x`` for the brackets ``which`` (positions into ``a``). Illinois-
-        modified regula falsi with a bisection step whenever two steps did not halve a
-        bracket; a bracket stops moving once ``b − a <= xtol·(1 + |a|)`` or ``f(b) = 0``.
-        """
-        a, b, fa, fb = (np.array(x, dtype=float) for x in (a, b, fa, fb))
-        which = np.asarray(which)
-        side = np.zeros(a.size)  # -1: the last step moved a, +1: it moved b
-        width = b - a
-        moving = np.ones(a.size, dtype=bool)
-        for i in range(maxiter):
-            moving &= (b - a > xtol * (1.0 + np.abs(a))) & (fb != 0.0)
-            if not moving.any():
-                break
-            k = slice(None) if moving.all() else np.flatnonzero(moving)
-            ak, bk, fak, fbk = a[k], b[k], fa[k], fb[k]
-            gap = bk - ak
-            halve = fak == fbk
-            if i % 2 == 0:
-                if i > 0:
-                    halve |= gap > 0.5 * width[k]
-                width[k] = gap
-            x = bk - fbk * gap / np.where(halve, 1.0, fbk - fak)  # no division by 0 where it halves
-            x = np.where(halve | ~((ak < x) & (x < bk)), 0.5 * (ak + bk), x)
-            fx = f(x, which[k])
-            above = fx > 0
-            before = side[k]
-            a[k] = np.where(above, x, ak)
-            b[k] = np.where(above, bk, x)
-            fa[k] = np.where(above, fx, fak * np.where(before == 1.0, 0.5, 1.0))
-            fb[k] = np.where(above, fbk * np.where(before == -1.0, 0.5, 1.0), fx)
-            side[k] = np.where(above, -1.0, 1.0)
-        return a, b
 
     def _mix(self, t_a, t_b, rhs):
         """Per row, the point on the segment t_b → t_a where the constraint is exactly active."""
@@ -639,8 +601,9 @@ class MeanShiftExact:
             if f1(x_lo) > 0:
                 break
             x_lo -= math.log(10.0)
-        _, x_b = _bracket_root(f1, x_lo, x_hi, xtol=1e-4)
-        return math.exp(x_b)
+        _, x_b = _bracket_roots(lambda x, _which: f1(float(x[0])), [0], [x_lo], [x_hi],
+                                [f1(x_lo)], [f1(x_hi)], xtol=1e-4)
+        return math.exp(float(x_b[0]))
 
     def _system(self, alpha: float, beta: float, constraint: _ShiftConstraint):
         """``(t, [F1, F2], σ, δ, g, g′, g″, scale of F2)`` at ``(α, β)``, or None outside the domain."""
@@ -943,40 +906,45 @@ def _table_pieces(dual: SeparableDual, t_free: np.ndarray):
     return np.array(inner, dtype=int), np.array(piece_slope, dtype=float), piece_lo, piece_hi
 
 
-def _bracket_root(f, a: float, b: float, *, xtol: float = 1e-13, maxiter: int = 300):
-    """Shrink ``[a, b]`` with ``f(a) > 0 >= f(b)`` (f non-increasing) around the root.
+def _bracket_roots(f, which, a, b, fa, fb, *, xtol: float = 1e-13, maxiter: int = 300):
+    """Shrink each ``[a, b]`` with ``f(a) > 0 >= f(b)`` (f non-increasing) around its root.
 
-    Illinois-modified regula falsi (superlinear for smooth f) with a bisection step
-    whenever two steps did not halve the bracket (steps of a table's f). Returns the
-    final ``(a, b)``: ``f(a) > 0 >= f(b)`` and ``b − a <= xtol·(1 + |a|)``.
-    (Our own few lines instead of scipy.optimize.brentq, whose import costs more than
-    a whole command-line allocation.)
+    Many brackets in lock step: ``f(x, which)`` gives the values at ``x`` for the
+    brackets ``which`` (positions into ``a``). Illinois-modified regula falsi
+    (superlinear for smooth f) with a bisection step whenever two steps did not halve a
+    bracket (steps of a table's f); a bracket stops moving once ``b − a <= xtol·(1 + |a|)``
+    or ``f(b) = 0``. Returns the final ``(a, b)`` arrays. The one root finder of the
+    exact paths: a sweep's many right-hand sides, a single allocation (one bracket) and
+    the mean-shift start. (Our own few lines instead of scipy.optimize.brentq, whose
+    import costs more than a whole command-line allocation.)
     """
-    fa, fb = f(a), f(b)
-    side = 0
+    a, b, fa, fb = (np.array(x, dtype=float) for x in (a, b, fa, fb))
+    which = np.asarray(which)
+    side = np.zeros(a.size)  # -1: the last step moved a, +1: it moved b
     width = b - a
+    moving = np.ones(a.size, dtype=bool)
     for i in range(maxiter):
-        if b - a <= xtol * (1.0 + abs(a)) or fb == 0.0:
+        moving &= (b - a > xtol * (1.0 + np.abs(a))) & (fb != 0.0)
+        if not moving.any():
             break
-        if (i % 2 == 0 and i > 0 and b - a > 0.5 * width) or fa == fb:
-            x = 0.5 * (a + b)
-        else:
-            x = b - fb * (b - a) / (fb - fa)
+        k = slice(None) if moving.all() else np.flatnonzero(moving)
+        ak, bk, fak, fbk = a[k], b[k], fa[k], fb[k]
+        gap = bk - ak
+        halve = fak == fbk
         if i % 2 == 0:
-            width = b - a
-        if not a < x < b:
-            x = 0.5 * (a + b)
-        fx = f(x)
-        if fx > 0:
-            a, fa = x, fx
-            if side == -1:
-                fb *= 0.5
-            side = -1
-        else:
-            b, fb = x, fx
-            if side == 1:
-                fa *= 0.5
-            side = 1
+            if i > 0:
+                halve |= gap > 0.5 * width[k]
+            width[k] = gap
+        x = bk - fbk * gap / np.where(halve, 1.0, fbk - fak)  # no division by 0 where it halves
+        x = np.where(halve | ~((ak < x) & (x < bk)), 0.5 * (ak + bk), x)
+        fx = f(x, which[k])
+        above = fx > 0
+        before = side[k]
+        a[k] = np.where(above, x, ak)
+        b[k] = np.where(above, bk, x)
+        fa[k] = np.where(above, fx, fak * np.where(before == 1.0, 0.5, 1.0))
+        fb[k] = np.where(above, fbk * np.where(before == -1.0, 0.5, 1.0), fx)
+        side[k] = np.where(above, -1.0, 1.0)
     return a, b
 
 
