@@ -17,7 +17,6 @@ from __future__ import annotations
 import ast
 import math
 from dataclasses import dataclass
-from functools import lru_cache
 from typing import TYPE_CHECKING, Callable, Iterable, Mapping
 
 import numpy as np
@@ -209,12 +208,6 @@ def compile_expression(text: str, names: Iterable[str] | None = None) -> Compile
         raise ExpressionError("expression is nested too deeply") from None
     order = [n.id for n in ast.walk(tree) if isinstance(n, ast.Name) and n.id in used]
     return CompiledExpression(text=text, names=tuple(dict.fromkeys(order)), _fn=fn)
-
-
-@lru_cache(maxsize=256)
-def expression_names(text: str) -> tuple[str, ...]:
-    """Contributor names used in ``text`` (raises :class:`ExpressionError` if unsafe)."""
-    return compile_expression(text).names
 
 
 def complex_step_gradient(fn: Callable, names: tuple[str, ...], point: Mapping[str, float]) -> np.ndarray:
