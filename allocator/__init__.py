@@ -7,7 +7,7 @@ Library entry points (each works in a notebook without the command line)::
     allocator.analyze(case).to_frame()
     allocator.allocate(case, model="rss").to_frame()
 
-Also exported: :func:`fallout_economics`, :func:`supplier_sheet`, :func:`build_report`,
+Also exported: :func:`fallout_economics`, :func:`supplier_sheet`, :func:`evaluate_offers`, :func:`build_report`,
 :func:`write_report`, the result types (:class:`Allocation`, :class:`StackAnalysis`,
 :class:`Frontier`, :class:`Verification` ...; see docs/results.md) and the errors
 :class:`CaseError`, :class:`UsageError` (both ValueError) and :class:`InfeasibleError`.
@@ -29,6 +29,7 @@ _LAZY = {
     "verify": ("allocator.simulate", "verify"),
     "fallout_economics": ("allocator.economics", "fallout_economics"),
     "supplier_sheet": ("allocator.supplier", "supplier_sheet"),
+    "evaluate_offers": ("allocator.offers", "evaluate_offers"),
     "build_report": ("allocator.report", "build_report"),
     "write_report": ("allocator.report", "write_report"),
     # the case and the result types (see docs/results.md)
@@ -44,6 +45,9 @@ _LAZY = {
     "FalloutOptimum": ("allocator.economics", "FalloutOptimum"),
     "SupplierSheet": ("allocator.supplier", "SupplierSheet"),
     "Loosening": ("allocator.supplier", "Loosening"),
+    "OfferEvaluation": ("allocator.offers", "OfferEvaluation"),
+    "OfferResult": ("allocator.offers", "OfferResult"),
+    "Offer": ("allocator.model", "Offer"),
     "Report": ("allocator.report", "Report"),
     # errors (CaseError and UsageError are ValueError subclasses)
     "CaseError": ("allocator.errors", "CaseError"),

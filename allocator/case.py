@@ -43,9 +43,11 @@ from .model import (
     CostCurve,
     Economics,
     FrontierSettings,
+    Offer,
     Process,
     Requirement,
 )
+from .offers import tolerance_problem
 
 __all__ = [
     "load_case",
@@ -73,7 +75,7 @@ _IDENTIFIER = re.compile(r"[A-Za-z_][A-Za-z0-9_]*\Z")
 # allowed keys per section; anything else is an error with a "did you mean" hint
 TOP_KEYS = (
     "title", "units", "currency", "contributor", "requirement",
-    "allocation", "economics", "frontier",
+    "allocation", "economics", "frontier", "offer",
 )
 CONTRIBUTOR_KEYS = (
     "name", "description", "nominal", "tolerance", "limits", "cp", "mean_shift",
@@ -84,6 +86,7 @@ REQUIREMENT_KEYS = ("name", "chain", "expression", "lower", "upper", "fallout_pp
 ALLOCATION_KEYS = ("models", "rounding")
 ECONOMICS_KEYS = ("volume", "scrap_cost")
 FRONTIER_KEYS = ("requirement", "vary", "range", "points")
+OFFER_KEYS = ("contributor", "tolerance", "price", "note")
 # cost-curve keys: which parameters each curve takes (from the curve registry)
 CURVE_PARAMETERS = {name: family(name).case_keys for name in CURVES}
 COST_KEYS = ("curve",) + tuple(dict.fromkeys(k for keys in CURVE_PARAMETERS.values() for k in keys))
@@ -784,6 +787,23 @@ def _read_frontier(table: _Table | None, requirements) -> FrontierSettings:
     return FrontierSettings(requirement=name, vary=vary, range=span, points=points)
 
 
+def _read_offer(item: _Table, contributors) -> Offer:
+    """One ``[[offer]]`` table: a supplier's tolerance and price for one contributor."""
+    item.check_keys(OFFER_KEYS)
+    by_name = {c.name: c for c in contributors}
+    name = item.get("contributor", lambda v: _text(v, nonempty=True), required="the contributor offered")
+    if name not in by_name:
+        item.fail("contributor", f"unknown contributor {name!r}{did_you_mean(name, by_name)}")
+    item.named(name)
+    tolerance = item.get("tolerance", lambda v: _bounded(v, gt=0), required="the offered ± tolerance")
+    problem = tolerance_problem(by_name[name], tolerance)
+    if problem:
+        item.fail("tolerance", problem)
+    price = item.get("price", lambda v: _bounded(v, ge=0), required="the offered price per part")
+    note = item.get("note", _text, default="")
+    return Offer(contributor=name, tolerance=tolerance, price=price, note=note)
+
+
 # --------------------------------------------------------------------------- whole case
 
 
@@ -817,6 +837,10 @@ def _build(data: dict, source: _Source, path: Path | None, sha256: str) -> Case:
         frontier=_read_frontier(top.sub("frontier"), requirements),
         path=path,
         sha256=sha256,
+        offers=tuple(
+            _read_offer(item, contributors)
+            for item in top.array("offer", header="offer", at_least=0, at_most=MAX_CONTRIBUTORS)
+        ),
     )
     # an expression must be finite and differentiable at the nominals to be analysed
     for table, requirement in zip(requirement_tables, requirements):

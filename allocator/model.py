@@ -315,6 +315,25 @@ class FrontierSettings:
 
 
 @dataclass(frozen=True)
+class Offer:
+    """A supplier's offer: contributor ``contributor`` at ± ``tolerance`` for ``price`` per part.
+
+    The case file's optional ``[[offer]]`` tables (docs/offers.md); evaluated by
+    :func:`allocator.offers.evaluate_offers`.
+    """
+
+    contributor: str
+    tolerance: float  # ± half-width the supplier holds [length]
+    price: float  # per part [currency]; a contributor with count n pays n · price per assembly
+    note: str = ""
+
+    @property
+    def label(self) -> str:
+        """``NAME=T@PRICE``, the form the command line takes."""
+        return f"{self.contributor}={self.tolerance:g}@{self.price:g}"
+
+
+@dataclass(frozen=True)
 class Case:
     """A whole validated case: contributors, requirements and settings.
 
@@ -332,6 +351,7 @@ class Case:
     frontier: FrontierSettings = field(default_factory=FrontierSettings)
     path: Path | None = None  # the file it was read from, if any
     sha256: str | None = None  # hash of that file's bytes, for reproducibility
+    offers: tuple[Offer, ...] = ()  # the case file's [[offer]] tables, in file order
 
     @property
     def names(self) -> tuple[str, ...]:

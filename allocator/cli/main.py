@@ -16,6 +16,7 @@ COMMANDS = {
     "frontier": ("allocator.cli.frontier", "frontier"),
     "verify": ("allocator.cli.verify", "verify"),
     "report": ("allocator.cli.report", "report"),
+    "offer": ("allocator.cli.offer", "offer"),
 }
 
 # the one-line summaries `allocator --help` lists (whole, never cut off with "..."; listing
@@ -27,6 +28,7 @@ SUMMARIES = {
     "frontier": "Least cost against a limit or fallout target.",
     "verify": "Check tolerances by Monte Carlo simulation.",
     "report": "Write an HTML report for a design review.",
+    "offer": "Evaluate supplier offers: saving, break-even price.",
 }
 
 
