@@ -31,7 +31,7 @@ if TYPE_CHECKING:
     from .model import Case, Contributor
 
 __all__ = [
-    "Offer", "OfferResult", "OfferEvaluation", "evaluate_offers", "parse_offer",
+    "Offer", "OfferResult", "OfferEvaluation", "evaluate_offers", "check_offers", "parse_offer",
     "tolerance_problem", "counter_offer",
 ]
 
@@ -143,6 +143,32 @@ def _checked(case: Case, offer) -> Offer:
     if problem:
         raise UsageError(f"{where}: {problem}")
     return replace(offer, tolerance=float(offer.tolerance), price=float(offer.price))
+
+
+def check_offers(case: Case, offers: Iterable[Offer | str] | None = None) -> tuple[Offer, ...]:
+    """The offers to evaluate on ``case``, checked before any solve.
+
+    Parameters
+    ----------
+    case : allocator.model.Case
+    offers : iterable of Offer or str, optional
+        :class:`~allocator.model.Offer` objects or ``"NAME=T@PRICE"`` texts; default the
+        case's ``[[offer]]`` tables.
+
+    Returns
+    -------
+    tuple of Offer
+
+    Raises
+    ------
+    UsageError
+        No offers; an offer naming no contributor of the case, with a price < 0 or a
+        tolerance no option of the part makes (one line, naming the offer).
+    """
+    given = tuple(case.offers if offers is None else offers)
+    if not given:
+        raise UsageError("no offers: give one as NAME=T@PRICE (--offer), or [[offer]] tables in the case")
+    return tuple(_checked(case, o) for o in given)
 
 
 # --------------------------------------------------------------------------- counter-offer
@@ -560,10 +586,7 @@ def evaluate_offers(
     from .solve import allocate
     from .solve.dispatch import check_model
 
-    given = tuple(case.offers if offers is None else offers)
-    if not given:
-        raise UsageError("no offers: give one as NAME=T@PRICE (--offer), or [[offer]] tables in the case")
-    checked = tuple(_checked(case, o) for o in given)
+    checked = check_offers(case, offers)
     models = tuple(dict.fromkeys(models or case.allocation.models))
     for m in models:
         check_model(m)

@@ -42,6 +42,8 @@ FalloutOptimum            optimal, boundary, infeasible, failed             opti
 SupplierSheet             optimal, infeasible, failed (the base's)          optimal
 Loosening (sheet row)     optimal, infeasible, failed (the re-solve's);     --
                           fixed, at loosest (no re-solve: nothing to try)
+OfferEvaluation           optimal, partial, infeasible, failed              optimal, partial
+OfferResult (offer row)   optimal, infeasible, failed                       --
 Verification              pass, fail                                        pass
 RequirementCheck          pass, fail                                        --
 Report                    ok, infeasible, failed, verification failed       ok

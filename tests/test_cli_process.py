@@ -115,7 +115,7 @@ def test_help_lists_every_command_with_a_whole_summary(tmp_path):
     assert done.returncode == 0
     listing = done.stdout.split("Commands:", 1)[1].splitlines()
     names = [line.split()[0] for line in listing if line.startswith("  ") and not line.startswith("   ")]
-    assert names == ["init", "analyze", "allocate", "frontier", "verify", "report"]
+    assert names == ["init", "analyze", "allocate", "frontier", "verify", "report", "offer"]
     for line in listing:  # no summary cut off
         assert not line.rstrip().endswith("..."), line
     # and the same with a narrow terminal: a long summary wraps, it is never cut

@@ -45,13 +45,21 @@ from .common import CASE_ARGUMENT, FilePath, SampleCount, handle_errors, load_ca
     is_flag=True,
     help="Leave the cost frontier out (each of its points is a full allocation).",
 )
+@click.option(
+    "--offer",
+    "offer_texts",
+    multiple=True,
+    metavar="NAME=T@PRICE",
+    help="A supplier offer to discuss (repeatable); default: the case's [[offer]] tables.",
+)
 @handle_errors
-def report(case_file, output, models, samples, seed, frontier_points, no_frontier):
+def report(case_file, output, models, samples, seed, frontier_points, no_frontier, offer_texts):
     """Write a self-contained HTML report on CASE for design reviews and supplier talks.
 
     Sections: case summary and assumptions, stack analysis of the current design,
     allocation per model side by side, cost frontier, contributions, Monte Carlo
-    verification, shadow prices, supplier sheet, cautions, reproducibility. Plots are
+    verification, shadow prices, supplier sheet (with the offers under discussion when
+    the case or --offer names any), cautions, reproducibility. Plots are
     inline SVG; the file needs no network and prints on A4.
 
     Exit codes: 0 written and every allocation optimal (and its verification passes);
@@ -59,8 +67,10 @@ def report(case_file, output, models, samples, seed, frontier_points, no_frontie
     report says which, at the top; 2 bad input or usage: nothing written; 3 a section
     failed unexpectedly (a bug; the message names the section): nothing written.
     """
+    from ..offers import parse_offer
     from ..report import write_report
 
+    offers = [parse_offer(text) for text in offer_texts] or None
     case = load_case_or_exit(case_file)
     result = write_report(
         case,
@@ -71,6 +81,7 @@ def report(case_file, output, models, samples, seed, frontier_points, no_frontie
         frontier_points=frontier_points,
         include_frontier=not no_frontier,
         progress=sys.stderr.isatty(),  # progress bars on a terminal only
+        offers=offers,
     )
     line = f"wrote {output}: {result.status}"
     if result.recommended:

@@ -3,7 +3,8 @@
 :func:`build_report` runs the library once (:func:`allocator.analysis.analyze`,
 :func:`allocator.solve.allocate` per model, :func:`allocator.sweep.frontier`,
 :func:`allocator.simulate.verify`, :func:`allocator.supplier.supplier_sheet`) and keeps the
-results. Nothing here writes HTML: :meth:`Report.to_html` hands the results to
+results (and, when the case or the caller names supplier offers,
+:func:`allocator.offers.evaluate_offers`). Nothing here writes HTML: :meth:`Report.to_html` hands the results to
 :mod:`.sections`, which only formats them.
 """
 
@@ -66,6 +67,9 @@ class Report:
     unrounded : dict
         Model -> allocation of the case without its ``[allocation].rounding``, solved only
         for the shadow prices a rounded allocation cannot have (its cost moves in steps).
+    offers : OfferEvaluation or None
+        The supplier offers under discussion (the case's ``[[offer]]`` tables, or the
+        ``offers`` given to :func:`build_report`); None when there are none.
     """
 
     case: object
@@ -86,6 +90,7 @@ class Report:
     frontier_points: int | None = None
     include_frontier: bool = True
     unrounded: dict = field(default_factory=dict)
+    offers: object = None
 
     # ------------------------------------------------------------------ status
 
@@ -195,6 +200,7 @@ def build_report(
     include_frontier: bool = True,
     created: datetime | None = None,
     progress: bool = False,
+    offers: Sequence | None = None,
 ) -> Report:
     """Run the library for a report on ``case``.
 
@@ -217,6 +223,10 @@ def build_report(
     progress : bool
         Show progress bars on stderr for the frontier and the verification (the command
         line passes ``sys.stderr.isatty()``).
+    offers : sequence of Offer or str, optional
+        Supplier offers to discuss (``NAME=T@PRICE`` texts or
+        :class:`~allocator.model.Offer`); default the case's ``[[offer]]`` tables. With
+        offers the supplier section gains "Offers under discussion".
 
     Returns
     -------
@@ -238,6 +248,10 @@ def build_report(
     from ..supplier import supplier_sheet
 
     models = tuple(dict.fromkeys(models or case.allocation.models))
+    if offers or case.offers:
+        from ..offers import check_offers
+
+        offers = check_offers(case, offers or None)  # bad input: before any long computation
     allocations = {}
     for m in models:
         with working_on("allocation", f"model {m}"):
@@ -272,6 +286,12 @@ def build_report(
 
     with working_on("supplier"):
         supplier = supplier_sheet(case, recommended, allocation=rec_alloc) if rec_alloc is not None else None
+    offered = None
+    if offers or case.offers:
+        from ..offers import evaluate_offers
+
+        with working_on("supplier", "offers under discussion"):
+            offered = evaluate_offers(case, offers or None, models)
 
     return Report(
         case=case,
@@ -292,6 +312,7 @@ def build_report(
         frontier_points=frontier_points,
         include_frontier=include_frontier,
         unrounded=unrounded,
+        offers=offered,
     )
 
 

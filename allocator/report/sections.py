@@ -773,7 +773,8 @@ def has_shadow_prices(result) -> bool:
 def supplier(report) -> str:
     """Section 8: the tolerance to ask of each supplier, and what one step looser costs elsewhere."""
     if report.recommended is None:
-        return section("supplier", '<p class="note">No allocation is available, so there is nothing to ask suppliers for yet.</p>')
+        return section("supplier", '<p class="note">No allocation is available, so there is nothing to ask suppliers for yet.</p>'
+                       + _offers_part(report))
     sheet = report.supplier
     parts = [_ask_table(report)]
     if sheet is not None and sheet.rows:
@@ -795,6 +796,7 @@ def supplier(report) -> str:
         "Computed by <code>allocator.supplier.supplier_sheet</code>.</p>"
     )
     parts.append(guide)
+    parts.append(_offers_part(report))
     return section("supplier", "\n".join(parts))
 
 
@@ -858,6 +860,67 @@ def _concession_table(report) -> str:
     )
 
 
+def _offers_part(report) -> str:
+    """"Offers under discussion": per offer and model the cost with it, the saving, the
+    break-even price and the counter-offer ("" when the report has no offers)."""
+    evaluation = report.offers
+    if evaluation is None:
+        return ""
+    case = report.case
+    money = unit_suffix(case.currency)
+    volume = case.economics.volume
+    cu = Units(r.units for r in evaluation.rows)
+    rows = []
+    for r in evaluation.rows:
+        if r.together:
+            what = "All together: " + ", ".join(
+                f'<span class="nw">{esc(o.contributor)} ±{tol(o.tolerance)} at {given(o.price)}</span>'
+                for o in r.offers)
+        else:
+            what = (f"{esc(r.contributor)} ±{cu.cell(tol(r.tolerance), r.units)} at {given(r.price)}"
+                    + (f" ×&nbsp;{r.count}" if r.count and r.count > 1 else "")
+                    + (f'<div class="desc">{esc(r.note)}</div>' if r.note else ""))
+        status = "" if r.success else " " + flag(r.status, "bad")
+        if r.together:
+            counter = "—"
+        elif r.counter_tolerance is not None:
+            counter = cu.cell(tol(r.counter_tolerance), r.units) + (
+                f'<div class="desc">{esc(r.counter_note)}</div>' if r.counter_note else "")
+        else:
+            counter = f'none<div class="desc">{esc(r.counter_note)}</div>'
+        cells = [what, model_name(r.model) + status, num(r.total_cost, 6), num(r.baseline_cost, 6),
+                 saving(r.saving)]
+        if volume:
+            cells.append(saving(None if r.saving is None else r.saving * volume))
+        cells += [num(r.break_even_price), num(r.curve_unit_cost), counter]
+        rows.append(cells)
+    headers = ["Offer (± at price per part)", "Model", f"With the offer{money}", f"Without{money}",
+               f"Saving per assembly{money}"]
+    if volume:
+        headers.append(f"Saving per year{money}")
+    headers += [f"Break-even price{money}", f"Own curve at the offered ±{money}", cu.head("Counter-offer ±")]
+    numeric = [False, False] + [True] * (len(headers) - 3) + [False]
+    parts = ['<h3 id="offers">Offers under discussion</h3>',
+             table(headers, rows, numeric=numeric, caption="What each offer saves, and where it breaks even",
+                   cls="supplier")]
+    problems = [f"{esc(r.contributor)} ({model_name(r.model)}): {esc(r.message)}" for r in evaluation.rows
+                if not r.success]
+    if problems:
+        parts.append('<ul class="note">' + "".join(f"<li>{p}</li>" for p in problems) + "</ul>")
+    parts.append(
+        "<p><strong>How to read it.</strong> For each offer the allocation is solved again with the offered part "
+        "held at the offered tolerance and paid at the offered price (every instance pays it), every other "
+        "tolerance free. <em>Without</em> is the least cost with no offer; the <em>saving</em> is the difference. "
+        "Each unit the price rises takes one unit per instance off the saving, so the saving is zero at the "
+        "<em>break-even price</em>: an offer below it saves, one above it costs. The <em>counter-offer</em> is the tolerance at "
+        "which the case's own cost curve for the part costs the offered price: at that price, this is the "
+        "tolerance to ask for. Several offers are also solved all at once, since their savings do not simply "
+        "add up. The prices are the supplier's; everything else is the case's cost curves. "
+        "Computed by <code>allocator.offers.evaluate_offers</code>.</p>"
+    )
+    return "\n".join(parts)
+
+
 # --------------------------------------------------------------------------- 9 Cautions
 
 
@@ -887,9 +950,12 @@ def reproducibility(report) -> str:
         else (f" --frontier-points {report.frontier_points}" if report.frontier_points is not None else "")
     )
     # the case path exactly as it was given (folder included), quoted for a shell
+    offer_flags = ""
+    if report.offers is not None and tuple(report.offers.offers) != tuple(case.offers):
+        offer_flags = "".join(f" --offer {shlex.quote(o.label)}" for o in report.offers.offers)
     command = (
         f"allocator report {shlex.quote(str(case.path)) if case.path else 'CASE'} {model_flags} "
-        f"--samples {report.samples} --seed {report.seed}{frontier_flag} -o REPORT.html"
+        f"--samples {report.samples} --seed {report.seed}{frontier_flag}{offer_flags} -o REPORT.html"
     )
     facts = [
         ("Tool", f"allocator {esc(v.get('allocator', ''))}"),
