@@ -9,7 +9,10 @@ Checked against things outside the offer code:
   subject to ``Σ n_i |s_i| t_i = W`` gives ``t_i = √(b_i / (λ |s_i|))`` with
   ``√λ = S / W``, ``S = Σ n_i √(b_i |s_i|)``, and the least cost ``Σ n_i a_i + S² / W``.
   Holding part ``k`` at ``T`` leaves the others the same problem with the budget
-  ``W − n_k |s_k| T``;
+  ``W − n_k |s_k| T``. Under rss (normal, cp = 1, so σ_i = t_i / 3; one upper limit, so
+  σ_max = (U − ȳ) / z(1 − p) with z from scipy.stats.norm) the same conditions give
+  ``t_i ∝ (b_i / s_i²)^{1/3}`` and the least cost ``Σ n_i a_i + Q^{3/2} / (3 σ_max)``,
+  ``Q = Σ n_i (b_i |s_i|)^{2/3}``; holding ``k`` leaves ``σ'² = σ_max² − n_k (s_k T / 3)²``;
 - independent re-solves through the existing hold path (``allocate(case, model,
   fix={name: T})``), with the held part's curve cost taken out and the offered price put
   in by hand;
@@ -54,6 +57,9 @@ N = np.array([1, 2, 1, 1])
 W = 0.25  # worst-case budget: upper limit minus the nominal response
 
 
+FALLOUT_PPM = 500.0
+
+
 def _lagrange_case():
     parts = [
         contributor(f"p{i}", nominal=10.0 + i, tolerance=0.02, limits=(1e-4, 1.0),
@@ -61,8 +67,16 @@ def _lagrange_case():
         for i in range(4)
     ]
     y0 = sum(S[i] * N[i] * (10.0 + i) for i in range(4))
-    req = chain_requirement("gap", {f"p{i}": float(S[i]) for i in range(4)}, upper=y0 + W)
+    req = chain_requirement("gap", {f"p{i}": float(S[i]) for i in range(4)}, upper=y0 + W, fallout_ppm=FALLOUT_PPM)
     return make_case(parts, [req], models=("worst-case",))
+
+
+def _rss_lagrange_cost(keep, sigma):
+    """Σ n a + Q^{3/2} / (3 σ) over the parts in ``keep`` (normal, cp = 1)."""
+    q = float(np.sum(N[keep] * (B[keep] * np.abs(S[keep])) ** (2.0 / 3.0)))
+    scale = 3.0 * sigma / math.sqrt(q)
+    t = scale * (B[keep] / S[keep] ** 2) ** (1.0 / 3.0)
+    return float(np.sum(N[keep] * A[keep])) + q**1.5 / (3.0 * sigma), t
 
 
 def _lagrange_cost(keep, budget):
@@ -97,6 +111,24 @@ def test_worst_case_offer_matches_the_lagrange_closed_form(k, tolerance, price):
         assert row.tolerances[f"p{i}"] == pytest.approx(t, rel=1e-5)
     # holding restricts the plain problem: the break-even price never exceeds the part's own curve
     assert row.break_even_price <= A[k] + B[k] / tolerance + 1e-12
+
+
+@pytest.mark.parametrize("k, tolerance, price", [(0, 0.05, 0.3), (1, 0.03, 0.25)])
+def test_rss_offer_matches_the_lagrange_closed_form(k, tolerance, price):
+    from scipy import stats
+
+    case = _lagrange_case()
+    sigma = W / stats.norm.isf(FALLOUT_PPM * 1e-6)
+    everyone = np.arange(4)
+    baseline, t_all = _rss_lagrange_cost(everyone, sigma)
+    others = everyone[everyone != k]
+    rest, t_rest = _rss_lagrange_cost(others, math.sqrt(sigma**2 - N[k] * (S[k] * tolerance / 3.0) ** 2))
+    assert np.all((t_all > 1e-4) & (t_all < 1.0)) and np.all((t_rest > 1e-4) & (t_rest < 1.0))
+    row = evaluate_offers(case, [Offer(f"p{k}", tolerance, price)], models=["rss"]).rows[0]
+    assert row.status == "optimal"
+    assert row.baseline_cost == pytest.approx(baseline, rel=1e-6)
+    assert row.total_cost == pytest.approx(rest + N[k] * price, rel=1e-6)
+    assert row.break_even_price == pytest.approx((baseline - rest) / N[k], rel=1e-5)
 
 
 def test_saving_is_zero_at_the_break_even_price_and_linear_in_the_price():
@@ -194,6 +226,12 @@ def test_counter_offer_with_processes_is_the_tightest_root_of_any_process():
     assert t == pytest.approx(0.012 / 0.6, rel=1e-10) and "grinding" in note  # grinding's root (turning's: 0.0107, out of range)
     t, note = counter_offer(c, 2.0)
     assert t == pytest.approx(0.03 / 0.5, rel=1e-10) and "turning" in note
+
+
+def test_counter_offer_on_an_interpolated_table_is_the_linear_root():
+    shim = load_case(CASES / "pump_shim.toml").contributor("shim")  # (0.02, 0.32) to (0.04, 0.20), linear between
+    t, _ = counter_offer(shim, 0.30)
+    assert t == pytest.approx(0.02 + 0.02 * (0.32 - 0.30) / (0.32 - 0.20), rel=1e-10)
 
 
 def test_counter_offer_on_a_choose_table_names_the_listed_tolerance_under_the_price():
