@@ -19,6 +19,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field, replace
+from types import MappingProxyType
 from typing import TYPE_CHECKING, Iterable, Mapping, Sequence
 
 from . import status as _status
@@ -330,7 +331,7 @@ class OfferResult:
     counter_tolerance: float | None = None
     counter_note: str = ""
     process: str = ""
-    tolerances: Mapping[str, float] = field(default_factory=dict)
+    tolerances: Mapping[str, float] = field(default_factory=lambda: MappingProxyType({}))
     offers: tuple = ()
     note: str = ""
     message: str = ""
@@ -514,7 +515,7 @@ def _one_row(case, model, offers, baseline, counters, allocate) -> OfferResult:
     paid = sum(case.contributor(o.contributor).count * o.price for o in offers)
     total = result.total_cost + paid
     process = result.processes.get(first.contributor, "") if single else ""
-    tolerances = {n: float(v) for n, v in result.tolerances.items()}
+    tolerances = MappingProxyType({n: float(v) for n, v in result.tolerances.items()})
     if not baseline.success:
         return OfferResult(**common, status=baseline.status, total_cost=total, process=process, tolerances=tolerances,
                            message=f"{what}: no least cost without the offer to compare with: {baseline.message}")
@@ -617,6 +618,6 @@ def evaluate_offers(
     }[status] + together_note
     return OfferEvaluation(
         status=status, message=message, models=models, offers=checked, rows=tuple(rows),
-        baselines=baselines, currency=case.currency,
+        baselines=MappingProxyType(baselines), currency=case.currency,
     )
 

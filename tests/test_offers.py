@@ -384,7 +384,9 @@ def test_result_object_reads_like_the_other_results():
     frame = result.to_frame()
     assert list(frame["contributor"]) == ["spacer"] and math.isclose(frame["saving"][0], result.rows[0].saving)
     assert result.success and result.to_dict()["offers"][0]["model"] == "rss"
-    assert "spacer" in repr(result)
+    assert "spacer" in repr(result) and "Offers: optimal" in result._repr_html_()
+    with pytest.raises(TypeError):
+        result.rows[0].tolerances["spacer"] = 1.0  # read-only, like the Allocation's maps
     with pytest.raises(Exception):
         result.rows[0].price = 0.0  # frozen
 
