@@ -161,6 +161,62 @@ def test_offer_equals_the_held_allocation_priced_by_hand(model, name, tolerance,
     assert row.curve_unit_cost == pytest.approx(float(held.unit_cost[name]), rel=1e-12)
 
 
+def test_two_requirements_against_scipy_minimize():
+    # conic path (two requirements): the offered part held, the rest minimised by SLSQP
+    from scipy.optimize import minimize
+
+    a, b = np.array([0.3, 0.5, 0.2, 0.4]), np.array([0.002, 0.001, 0.003, 0.0015])
+    parts = [contributor(f"q{i}", nominal=10.0, limits=(0.002, 0.3),
+                         cost=CostCurve("reciprocal", a=float(a[i]), b=float(b[i]))) for i in range(4)]
+    reqs = [chain_requirement("first", {"q0": 1.0, "q1": 1.0, "q2": -1.0}, lower=9.85, upper=10.15),
+            chain_requirement("second", {"q1": 1.0, "q2": 1.0, "q3": -1.0}, lower=9.8, upper=10.2)]
+    case = make_case(parts, reqs, models=("worst-case",))
+    rows = np.array([[1, 1, 1, 0], [0, 1, 1, 1]], dtype=float)
+    budget = np.array([0.15, 0.2])
+
+    def least(held):
+        free = [i for i in range(4) if i not in held]
+
+        def full(x):
+            t = np.zeros(4)
+            t[free] = x
+            for i, v in held.items():
+                t[i] = v
+            return t
+
+        cons = {"type": "ineq", "fun": lambda x: budget - rows @ full(x)}
+        best = minimize(lambda x: float(np.sum(a[free] + b[free] / x)), np.full(len(free), 0.01),
+                        method="SLSQP", bounds=[(0.002, 0.3)] * len(free), constraints=[cons],
+                        options={"ftol": 1e-14, "maxiter": 500})
+        assert best.success
+        return best.fun
+
+    baseline, rest = least({}), least({2: 0.03})
+    row = evaluate_offers(case, ["q2=0.03@0.9"]).rows[0]
+    assert row.status == "optimal"
+    assert row.baseline_cost == pytest.approx(baseline, rel=1e-6)
+    assert row.total_cost == pytest.approx(rest + 0.9, rel=1e-6)
+    assert row.break_even_price == pytest.approx(baseline - rest, rel=1e-5)
+
+
+def test_an_offer_for_a_part_the_case_holds_without_cost():
+    # bearing_width: fixed at ±0.025, no cost curve, count 2: the rest is the plain optimum,
+    # so the offer costs 2 x price and breaks even at 0
+    case = load_case(GEARBOX)
+    for row in evaluate_offers(case, ["bearing_width=0.025@1.5"]).rows:
+        assert row.status == "optimal"
+        assert row.saving == pytest.approx(-2 * 1.5, rel=1e-9)
+        assert row.break_even_price == pytest.approx(0.0, abs=1e-9)
+        assert row.counter_tolerance is None and "no cost curve" in row.counter_note
+
+
+def test_two_offers_for_one_part_are_compared_not_combined():
+    result = evaluate_offers(load_case(GEARBOX), ["spacer=0.03@0.6", "spacer=0.04@0.45"], models=["rss"])
+    assert [r.contributor for r in result.rows] == ["spacer", "spacer"]
+    assert "same contributor" in result.message
+    assert result.rows[1].total_cost < result.rows[0].total_cost  # looser and cheaper: cheaper overall
+
+
 def test_count_instances_each_pay_the_price():
     parts = [contributor("pin", nominal=5.0, limits=(0.002, 0.2), count=3,
                          cost=CostCurve("reciprocal", a=0.2, b=0.003)),
