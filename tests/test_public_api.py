@@ -51,7 +51,7 @@ def test_the_package_carries_its_typing_marker():
 
 
 def test_entry_points_result_types_and_errors_are_exported_from_the_package():
-    from allocator import economics, errors, report, supplier
+    from allocator import economics, errors, offers, report, supplier
     from allocator.analysis import StackAnalysis
     from allocator.simulate import Verification
     from allocator.solve.result import Allocation
@@ -59,10 +59,11 @@ def test_entry_points_result_types_and_errors_are_exported_from_the_package():
 
     assert allocator.fallout_economics is economics.fallout_economics
     assert allocator.supplier_sheet is supplier.supplier_sheet
+    assert allocator.evaluate_offers is offers.evaluate_offers
     assert allocator.build_report is report.build_report
     assert allocator.write_report is report.write_report
     for cls in (Allocation, StackAnalysis, Frontier, Verification, economics.FalloutEconomics,
-                supplier.SupplierSheet):
+                supplier.SupplierSheet, offers.OfferEvaluation, offers.OfferResult, offers.Offer):
         assert getattr(allocator, cls.__name__) is cls
     for err in ("CaseError", "UsageError", "InfeasibleError"):
         assert getattr(allocator, err) is getattr(errors, err)
@@ -84,7 +85,7 @@ USER_MODULES = [
     "allocator.model", "allocator.case", "allocator.analysis", "allocator.stack", "allocator.chain",
     "allocator.costs", "allocator.grades", "allocator.convolve", "allocator.ppm", "allocator.errors",
     "allocator.files", "allocator.status", "allocator.display", "allocator.sweep", "allocator.simulate",
-    "allocator.economics", "allocator.supplier", "allocator.solve", "allocator.solve.result",
+    "allocator.economics", "allocator.supplier", "allocator.offers", "allocator.solve", "allocator.solve.result",
     "allocator.report",
 ]
 
