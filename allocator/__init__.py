@@ -31,6 +31,7 @@ _LAZY = {
     "supplier_sheet": ("allocator.supplier", "supplier_sheet"),
     "build_report": ("allocator.report", "build_report"),
     "write_report": ("allocator.report", "write_report"),
+    "study": ("allocator.studies", "study"),
     # the case and the result types (see docs/results.md)
     "Case": ("allocator.model", "Case"),
     "StackAnalysis": ("allocator.analysis", "StackAnalysis"),
@@ -45,6 +46,8 @@ _LAZY = {
     "SupplierSheet": ("allocator.supplier", "SupplierSheet"),
     "Loosening": ("allocator.supplier", "Loosening"),
     "Report": ("allocator.report", "Report"),
+    "Study": ("allocator.studies", "Study"),
+    "StudyRow": ("allocator.studies", "StudyRow"),
     # errors (CaseError and UsageError are ValueError subclasses)
     "CaseError": ("allocator.errors", "CaseError"),
     "UsageError": ("allocator.errors", "UsageError"),

@@ -16,6 +16,7 @@ COMMANDS = {
     "frontier": ("allocator.cli.frontier", "frontier"),
     "verify": ("allocator.cli.verify", "verify"),
     "report": ("allocator.cli.report", "report"),
+    "study": ("allocator.cli.study", "study"),
 }
 
 # the one-line summaries `allocator --help` lists (whole, never cut off with "..."; listing
@@ -27,6 +28,7 @@ SUMMARIES = {
     "frontier": "Least cost against a limit or fallout target.",
     "verify": "Check tolerances by Monte Carlo simulation.",
     "report": "Write an HTML report for a design review.",
+    "study": "Allocate many cases at once: savings per case and in total.",
 }
 
 
