@@ -114,13 +114,10 @@ def cluster_runner(address: str):
     client = connect(address)
 
     def run(function: Callable, items: Iterable) -> Iterator:
-        # pure=False: every item is run, even two equal ones (no result sharing by hash)
+        # pure=False: every item is run, even two equal ones (no result sharing by hash);
+        # closing the client drops whatever is left when the caller stops early
         futures = client.map(function, list(items), pure=False)
-        try:
-            for future in futures:
-                yield future.result()
-        finally:
-            client.cancel(futures)
+        return (future.result() for future in futures)
 
     try:
         yield run

@@ -8,6 +8,7 @@ import click
 
 from ..errors import UsageError
 from .common import (
+    OneLineUsageError,
     csv_option,
     echo_error,
     echo_json,
@@ -27,10 +28,25 @@ EXIT_CODES = (
 )
 
 
+class WorkerCount(click.ParamType):
+    """A whole number of worker processes, at least 1; anything else is one line, exit 2."""
+
+    name = "N"
+
+    def convert(self, value, param, ctx):
+        try:
+            number = int(str(value).strip())
+        except ValueError:
+            raise OneLineUsageError(f"--workers: {value!r} is not a whole number", ctx) from None
+        if number < 1:
+            raise OneLineUsageError(f"--workers: must be at least 1, got {number}", ctx)
+        return number
+
+
 @click.command(epilog=EXIT_CODES)
 @click.argument("paths", metavar="CASE_OR_FOLDER...", nargs=-1, required=True, type=click.Path())
 @model_option
-@click.option("--workers", type=click.IntRange(min=1), default=None, metavar="N",
+@click.option("--workers", type=WorkerCount(), default=None, metavar="N",
               help="Local processes to run the cases in (default: the number of processors).")
 @click.option("--scheduler", default=None, metavar="ADDRESS",
               help='Run the cases on a Dask distributed cluster (tcp://host:port); needs '
