@@ -23,6 +23,7 @@ import allocator
 from allocator.cli.main import cli
 from allocator.errors import UsageError
 from allocator.studies import contributor_prices, study
+from helpers import run_on_a_terminal
 
 ROOT = Path(__file__).resolve().parents[1]
 DEMO = ROOT / "cases" / "gearbox_end_play.toml"
@@ -215,6 +216,28 @@ def test_html_page_is_written_whole_and_never_over_a_case(good, monkeypatch):
     done = runner.invoke(cli, ["study", str(good), "--workers", "1", "-o", str(good / "a_chain.toml")])
     assert done.exit_code == 2 and "refusing to overwrite" in done.stderr
     assert (good / "a_chain.toml").read_bytes() == before
+
+
+def test_a_progress_bar_on_a_terminal_and_nothing_but_json_on_stdout(good, tmp_path):
+    code, out, terminal = run_on_a_terminal(["study", good, "--workers", "1", "--json"], cwd=tmp_path)
+    assert code == 0, terminal
+    assert len(json.loads(out)["cases"]) == 5  # nothing but the document on stdout
+    assert "study:" in terminal and "/2 [" in terminal and "case/s" in terminal
+    piped = CliRunner().invoke(cli, ["study", str(good), "--workers", "1", "--json"])
+    assert piped.stderr == ""  # no bar on a pipe
+
+
+def test_a_bug_while_solving_a_case_is_exit_3_naming_the_case(good, monkeypatch):
+    import allocator.solve
+
+    def broken(case, model, **kwargs):
+        raise ZeroDivisionError("invented bug")
+
+    monkeypatch.setattr(allocator.solve, "allocate", broken)
+    done = CliRunner().invoke(cli, ["study", str(good / "a_chain.toml"), "--workers", "1"])
+    assert done.exit_code == 3
+    assert done.stderr.count("\n") == 1 and "case " in done.stderr and "a_chain.toml" in done.stderr
+    assert "ZeroDivisionError: invented bug" in done.stderr
 
 
 def test_study_frames_hook_gives_the_tables(good):
