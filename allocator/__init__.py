@@ -8,8 +8,9 @@ Library entry points (each works in a notebook without the command line)::
     allocator.allocate(case, model="rss").to_frame()
 
 Also exported: :func:`fallout_economics`, :func:`supplier_sheet`, :func:`build_report`,
-:func:`write_report`, the result types (:class:`Allocation`, :class:`StackAnalysis`,
-:class:`Frontier`, :class:`Verification` ...; see docs/results.md) and the errors
+:func:`write_report`, :func:`study` (many cases at once), the result types
+(:class:`Allocation`, :class:`StackAnalysis`, :class:`Frontier`, :class:`Verification`,
+:class:`Study` ...; see docs/results.md) and the errors
 :class:`CaseError`, :class:`UsageError` (both ValueError) and :class:`InfeasibleError`.
 
 Heavy libraries (cvxpy, matplotlib, pandas) are imported lazily, on first use.

@@ -507,7 +507,7 @@ def study(
     >>> bool(result.rows[0].saving_per_year == result.rows[0].saving * result.rows[0].volume)
     True
     """
-    from .parallel import runner
+    from .parallel import default_workers, runner
     from .progress import progress_bar
 
     if isinstance(cases, (str, os.PathLike)):
@@ -515,11 +515,15 @@ def study(
     models = _checked_models(models)
     files = case_files(cases)
     jobs = [(f, os.path.abspath(f), models) for f in files]
+    if scheduler is None:  # no more processes than cases
+        workers = min(default_workers() if workers is None else workers, len(jobs))
     rows: list[StudyRow] = []
-    bar = progress_bar(len(jobs), desc="study", unit="case", enabled=progress, slow=True)
+    bar = None
     try:
         with runner(workers, scheduler) as run:
             results = run(study_case, jobs)
+            # the bar (and its redraw thread) only once the local workers have started
+            bar = progress_bar(len(jobs), desc="study", unit="case", enabled=progress, slow=True)
             for file in files:
                 try:
                     case_rows = next(results)
@@ -531,6 +535,7 @@ def study(
                 bar.describe(Path(file).name)
                 bar.update(1)
     finally:
-        bar.close()
+        if bar is not None:
+            bar.close()
     status, message = _verdict(rows, files)
     return Study(status=status, message=message, rows=tuple(rows), totals=_totals(rows), files=files)

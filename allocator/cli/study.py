@@ -8,6 +8,7 @@ import click
 
 from ..errors import UsageError
 from .common import (
+    FilePath,
     OneLineUsageError,
     csv_option,
     echo_error,
@@ -53,7 +54,7 @@ class WorkerCount(click.ParamType):
                    'pip install "allocator[cluster]". Its workers must read the case files at the same paths.')
 @json_option
 @csv_option
-@click.option("-o", "--output", "output", type=click.Path(dir_okay=False), default=None, metavar="FILE.html",
+@click.option("-o", "--output", "output", type=FilePath("an HTML file"), default=None, metavar="FILE.html",
               help="Also write a short self-contained HTML summary page (chart, table, cautions).")
 @handle_errors
 def study(paths, models, workers, scheduler, as_json, as_csv, output):
