@@ -100,6 +100,19 @@ def test_rows_equal_allocating_each_case_alone(folder):
     assert models["b_gearbox.toml"] == ["worst-case", "rss", "mean-shift"]
 
 
+@pytest.mark.slow
+def test_every_demo_case_in_two_workers_equals_allocating_it_alone():
+    # processes, cost tables from CSV, ISO 286 and step rounding: the mixed-integer paths
+    result = study([ROOT / "cases"], workers=2)
+    assert result.status == "optimal" and len(result.files) == 4
+    for row in result.rows:
+        alone = allocator.allocate(allocator.load_case(row.file), row.model)
+        assert (row.status, row.total_cost, row.current_cost) == (alone.status, alone.total_cost, alone.current_cost)
+        # a rounded allocation is priced at its unrounded optimum, whose cost has a derivative
+        priced = alone.unrounded if alone.unrounded is not None else alone
+        assert dict(row.largest_prices).items() <= contributor_prices(allocator.load_case(row.file), priced).items()
+
+
 def test_a_bad_and_an_infeasible_case_keep_their_rows_and_the_study_goes_on(folder):
     result = study([folder], workers=1)
     by_file = {}
@@ -179,7 +192,8 @@ def test_cli_usage_errors_are_one_line_exit_2(folder):
     for args in (["study", str(empty)],
                  ["study", str(folder), "--workers", "0"],
                  ["study", str(folder), "--workers", "2", "--scheduler", "tcp://127.0.0.1:1"],
-                 ["study", str(folder), "-o", str(folder / "missing" / "s.html")]):
+                 ["study", str(folder), "-o", str(folder / "missing" / "s.html")],
+                 ["study", str(folder), "-o", str(folder)]):
         done = runner.invoke(cli, args)
         assert done.exit_code == 2, (args, done.output)
         assert done.stderr.count("\n") == 1, (args, done.stderr)
