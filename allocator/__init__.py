@@ -7,9 +7,10 @@ Library entry points (each works in a notebook without the command line)::
     allocator.analyze(case).to_frame()
     allocator.allocate(case, model="rss").to_frame()
 
-Also exported: :func:`fallout_economics`, :func:`supplier_sheet`, :func:`evaluate_offers`, :func:`build_report`,
-:func:`write_report`, the result types (:class:`Allocation`, :class:`StackAnalysis`,
-:class:`Frontier`, :class:`Verification` ...; see docs/results.md) and the errors
+Also exported: :func:`fallout_economics`, :func:`supplier_sheet`, :func:`evaluate_offers`,
+:func:`build_report`, :func:`write_report`, :func:`study` (many cases at once), the result
+types (:class:`Allocation`, :class:`StackAnalysis`, :class:`Frontier`, :class:`Verification`,
+:class:`OfferEvaluation`, :class:`Study` ...; see docs/results.md) and the errors
 :class:`CaseError`, :class:`UsageError` (both ValueError) and :class:`InfeasibleError`.
 
 Heavy libraries (cvxpy, matplotlib, pandas) are imported lazily, on first use.
@@ -32,6 +33,7 @@ _LAZY = {
     "evaluate_offers": ("allocator.offers", "evaluate_offers"),
     "build_report": ("allocator.report", "build_report"),
     "write_report": ("allocator.report", "write_report"),
+    "study": ("allocator.studies", "study"),
     # the case and the result types (see docs/results.md)
     "Case": ("allocator.model", "Case"),
     "StackAnalysis": ("allocator.analysis", "StackAnalysis"),
@@ -49,6 +51,8 @@ _LAZY = {
     "OfferResult": ("allocator.offers", "OfferResult"),
     "Offer": ("allocator.model", "Offer"),
     "Report": ("allocator.report", "Report"),
+    "Study": ("allocator.studies", "Study"),
+    "StudyRow": ("allocator.studies", "StudyRow"),
     # errors (CaseError and UsageError are ValueError subclasses)
     "CaseError": ("allocator.errors", "CaseError"),
     "UsageError": ("allocator.errors", "UsageError"),

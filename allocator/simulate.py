@@ -51,6 +51,7 @@ if TYPE_CHECKING:  # pandas is imported where it is used
     import pandas as pd
 
     from .model import Case
+    from .parallel import Runner
     from .solve.result import Allocation
 
 # what verify() accepts as tolerances: an allocation, name -> ± tolerance [length], an
@@ -547,16 +548,19 @@ class _Engine:
         nominal_at = nominal_values(case)
         self.base_values = np.array([nominal_at[name] for name in case.names])
 
-    def chunks(self):
+    def chunks(self, blocks: range | None = None):
         """Yield ``(y, spans)`` per chunk: responses minus centre, and the blocks
-        ``(index, first row, rows)`` it holds. ``y`` is reused between chunks."""
+        ``(index, first row, rows)`` it holds. ``y`` is reused between chunks.
+
+        ``blocks``: only these stream blocks (default: all), e.g. one task's share."""
         sampler, block, samples = self.sampler, self.block, self.samples
         n_lin = len(self.linear)
         z_buf = np.empty((self.chunk_rows, sampler.n_normal))
         u_buf = np.empty((self.chunk_rows, sampler.n_uniform))
         y_buf = np.empty((self.chunk_rows, len(self.order)))
-        for first in range(0, self.n_blocks, self.chunk_blocks):
-            blocks = range(first, min(first + self.chunk_blocks, self.n_blocks))
+        wanted = range(self.n_blocks) if blocks is None else blocks
+        for first in range(wanted.start, wanted.stop, self.chunk_blocks):
+            blocks = range(first, min(first + self.chunk_blocks, wanted.stop))
             spans = [(b, (b - first) * block, min(block, samples - b * block)) for b in blocks]
             rows = spans[-1][1] + spans[-1][2]
             for b, start, size in spans:
@@ -627,6 +631,7 @@ def verify(
     bins: int = HISTOGRAM_BINS,
     allocated_with: str | None = None,
     processes: Mapping[str, str] | None = None,
+    map_blocks: Runner | None = None,
 ) -> Verification:
     """Check tolerances by Monte Carlo simulation of whole assemblies.
 
@@ -664,6 +669,12 @@ def verify(
         (or named with ``""``) are made by the cheapest of their processes that holds
         their tolerance (:meth:`allocator.model.Case.making_processes`); see
         docs/verification.md, *Which process makes a tolerance*.
+    map_blocks : callable, optional
+        Where the chunks of stream blocks are simulated: a runner ``map_blocks(function,
+        items)`` returning the results in the order of the items (see
+        :mod:`allocator.parallel`, e.g. the workers of a Dask cluster). Each chunk is
+        tallied where it runs and the tallies are added here in block order, so the result
+        is bit-identical to a run without it (the default: every chunk in this process).
 
     Returns
     -------
@@ -701,10 +712,16 @@ def verify(
     engine = _Engine(case, t, shift_means, samples, seed, chunk_size, processes)
     tally = _Tally(engine, case, t, bins)
     with _progress_bar(progress, samples) as bar:
-        for y, spans in engine.chunks():
-            tally.add(y, spans)
-            if bar is not None:
-                bar.update(len(y))
+        if map_blocks is None:
+            for y, spans in engine.chunks():
+                tally.add(y, spans)
+                if bar is not None:
+                    bar.update(len(y))
+        else:
+            for part in _tally_elsewhere(engine, tally, map_blocks, (case, t, shift_means, processes, bins)):
+                tally.merge(part)
+                if bar is not None:
+                    bar.update(part.rows)
     tally.finish()
 
     failures = tally.below + tally.above + tally.undefined
@@ -766,11 +783,15 @@ class _Tally:
     """Running counts, sums and histograms of the simulated responses, chunk by chunk.
 
     Columns follow ``engine.order``; responses are relative to ``engine.centre``. Sums are
-    taken per stream block so that they do not depend on the chunking.
+    taken per stream block so that they do not depend on the chunking. A tally of some
+    blocks made elsewhere (``keep_blocks``: it keeps each block's sums) is added to the
+    whole one by :meth:`merge`.
     """
 
-    def __init__(self, engine: _Engine, case, t: np.ndarray, bins: int):
+    def __init__(self, engine: _Engine, case, t: np.ndarray, bins: int, keep_blocks: bool = False):
         self.engine, self.case, self.t, self.bins = engine, case, t, bins
+        self.block_sums = [] if keep_blocks else None  # (sum1, sum2) per block, in order
+        self.rows = 0
         n_req = len(engine.order)
         self.lower = np.array([p.lower for p in engine.order])
         self.upper = np.array([p.upper for p in engine.order])
@@ -794,11 +815,15 @@ class _Tally:
         self.above += np.count_nonzero(y > room_above, axis=0)
         self.undefined += np.count_nonzero(np.isnan(y), axis=0)
         self.valid += np.count_nonzero(finite, axis=0)
+        self.rows += len(y)
         clean = np.where(finite, y, 0.0)
         for _, start, size in spans:  # float sums per block: independent of chunking
             part = clean[start : start + size]
-            self.sum1 += part.sum(axis=0)
-            self.sum2 += (part * part).sum(axis=0)
+            sum1, sum2 = part.sum(axis=0), (part * part).sum(axis=0)
+            self.sum1 += sum1
+            self.sum2 += sum2
+            if self.block_sums is not None:
+                self.block_sums.append((sum1, sum2))
         # histogram of all requirements in one bincount; NaN goes to "underflow"
         # and is removed again in finish()
         index = np.floor((np.nan_to_num(y, nan=-np.inf) - self.hist_lo) * self.hist_scale)
@@ -818,6 +843,28 @@ class _Tally:
         self.hist_lo = ranges[:, 0] - centre
         self.hist_scale = self.bins / (ranges[:, 1] - ranges[:, 0])
 
+    def merge(self, part: _Tally) -> None:
+        """Add the tally of the next blocks, made elsewhere (the same bins; ``keep_blocks``).
+
+        Counts are whole numbers; the float sums are added block by block, in block order,
+        exactly as :meth:`add` adds them, so the totals have the same bits.
+        """
+        self.below += part.below
+        self.above += part.above
+        self.undefined += part.undefined
+        self.valid += part.valid
+        self.hist += part.hist
+        for sum1, sum2 in part.block_sums:
+            self.sum1 += sum1
+            self.sum2 += sum2
+        self.rows += part.rows
+
+    def __getstate__(self):
+        # what travels back from a worker: the numbers, not the engine or the case
+        state = dict(self.__dict__)
+        state["engine"] = state["case"] = state["t"] = None
+        return state
+
     def finish(self) -> None:
         """Take the undefined (NaN) responses back out of the underflow counts."""
         self.hist[:, 0] -= self.undefined
@@ -833,6 +880,52 @@ class _Tally:
         """Histogram bin edges of requirement column ``j`` [response]."""
         lo = self.hist_lo[j] + self.engine.centre[j]
         return np.linspace(lo, lo + self.bins / self.hist_scale[j], self.bins + 1)
+
+
+@dataclass(frozen=True)
+class _BlockJob:
+    """One chunk of stream blocks to simulate and tally elsewhere (plain, picklable data)."""
+
+    case: object
+    t: np.ndarray
+    shift_means: bool
+    samples: int
+    seed: int
+    chunk_rows: int
+    processes: object
+    bins: int
+    hist_lo: np.ndarray
+    hist_scale: np.ndarray
+    blocks: range
+
+
+def _tally_blocks(job: _BlockJob) -> _Tally:
+    """Simulate and tally the blocks of ``job`` (runs on a worker; module level to pickle)."""
+    engine = _Engine(job.case, job.t, job.shift_means, job.samples, job.seed, job.chunk_rows, job.processes)
+    tally = _Tally(engine, job.case, job.t, job.bins, keep_blocks=True)
+    tally.hist_lo, tally.hist_scale = job.hist_lo, job.hist_scale
+    for y, spans in engine.chunks(job.blocks):
+        tally.add(y, spans)
+    return tally
+
+
+def _tally_elsewhere(engine: _Engine, tally: _Tally, map_blocks, setup):
+    """The tallies of every chunk, made by ``map_blocks``, in block order.
+
+    The histogram bins come from block 0 (:meth:`_Tally._fix_bins`), drawn here first so
+    that every worker counts into the same bins.
+    """
+    case, t, shift_means, processes, bins = setup
+    processes = None if processes is None else dict(processes)  # a read-only mapping does not pickle
+    y, spans = next(engine.chunks(range(0, 1)))
+    tally._fix_bins(y[: spans[0][2]])
+    step = engine.chunk_blocks
+    jobs = [
+        _BlockJob(case, t, shift_means, engine.samples, engine.seed, engine.chunk_rows, processes, bins,
+                  tally.hist_lo, tally.hist_scale, range(first, min(first + step, engine.n_blocks)))
+        for first in range(0, engine.n_blocks, step)
+    ]
+    return map_blocks(_tally_blocks, jobs)
 
 
 def _convolution(case, engine: _Engine, t: np.ndarray, plan: _Plan) -> tuple[float | None, str]:

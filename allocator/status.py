@@ -19,6 +19,10 @@ word           meaning
                tolerance at its loosest): optimal within the search, no interior minimum
 =============  ==========================================================================
 
+A study of many cases (:mod:`allocator.studies`) adds one word for a case it could not
+take: ``bad input`` (the case file, or a model asked of it, is wrong; its row carries the
+one-line error and the study goes on).
+
 *Verdict on a design* -- does a given set of tolerances meet its targets? A verdict is
 not the outcome of a solve (a design can fail its target in a perfectly good run), so it
 has its own words:
@@ -47,6 +51,7 @@ OfferResult (offer row)   optimal, infeasible, failed                       --
 Verification              pass, fail                                        pass
 RequirementCheck          pass, fail                                        --
 Report                    ok, infeasible, failed, verification failed       ok
+Study, StudyRow           optimal, infeasible, failed, bad input            optimal
 ========================  ================================================  ================
 
 Words a user reads on the command line, in ``--json`` output or in the HTML report
@@ -58,8 +63,8 @@ from __future__ import annotations
 
 __all__ = [
     "OPTIMAL", "INFEASIBLE", "FAILED", "PARTIAL", "BOUNDARY", "PASS", "FAIL",
-    "FIXED", "AT_LOOSEST", "OK", "VERIFICATION_FAILED",
-    "SOLVE", "SWEEP", "FALLOUT_OPTIMUM", "VERDICT", "LOOSENING", "REPORT", "ALL",
+    "FIXED", "AT_LOOSEST", "OK", "VERIFICATION_FAILED", "BAD_INPUT",
+    "SOLVE", "SWEEP", "FALLOUT_OPTIMUM", "VERDICT", "LOOSENING", "REPORT", "STUDY", "ALL",
 ]
 
 # outcome of a solve
@@ -81,6 +86,9 @@ AT_LOOSEST = "at loosest"
 OK = "ok"
 VERIFICATION_FAILED = "verification failed"
 
+# a case a study could not read or allocate as asked
+BAD_INPUT = "bad input"
+
 SOLVE = (OPTIMAL, INFEASIBLE, FAILED)
 """Allocation, a frontier point, FalloutEconomics, SupplierSheet."""
 SWEEP = (OPTIMAL, PARTIAL, INFEASIBLE, FAILED)
@@ -93,5 +101,7 @@ LOOSENING = (*SOLVE, FIXED, AT_LOOSEST)
 """A supplier-sheet row."""
 REPORT = (OK, INFEASIBLE, FAILED, VERIFICATION_FAILED)
 """The design-review report."""
-ALL = tuple(dict.fromkeys((*SWEEP, BOUNDARY, *VERDICT, FIXED, AT_LOOSEST, OK, VERIFICATION_FAILED)))
+STUDY = (*SOLVE, BAD_INPUT)
+"""Study and its rows."""
+ALL = tuple(dict.fromkeys((*SWEEP, BOUNDARY, *VERDICT, FIXED, AT_LOOSEST, OK, VERIFICATION_FAILED, BAD_INPUT)))
 """Every status word, once."""

@@ -40,11 +40,18 @@ def test_readme_demo_runs_in_a_fresh_process(tmp_path):
     assert all(r["status"] == "optimal" for r in results)
 
 
-@pytest.mark.parametrize("command", ["init", "analyze", "allocate", "frontier", "verify", "report"])
+@pytest.mark.parametrize("command", ["init", "analyze", "allocate", "frontier", "verify", "report", "study"])
 def test_every_command_has_help(tmp_path, command):
     done = run(command, "--help", cwd=tmp_path)
     assert done.returncode == 0, done.stderr
     assert "Usage:" in done.stdout
+
+
+def test_a_study_in_worker_processes_from_a_fresh_process(tmp_path):
+    done = run("study", DEMO, "--model", "rss", "--workers", "2", "--json", cwd=tmp_path)
+    assert done.returncode == 0, done.stderr
+    rows = json.loads(done.stdout)["cases"]
+    assert [(r["model"], r["status"]) for r in rows] == [("rss", "optimal")]
 
 
 def test_bad_input_is_one_line_and_exit_2_in_a_fresh_process(tmp_path):
@@ -115,7 +122,7 @@ def test_help_lists_every_command_with_a_whole_summary(tmp_path):
     assert done.returncode == 0
     listing = done.stdout.split("Commands:", 1)[1].splitlines()
     names = [line.split()[0] for line in listing if line.startswith("  ") and not line.startswith("   ")]
-    assert names == ["init", "analyze", "allocate", "frontier", "verify", "report", "offer"]
+    assert names == ["init", "analyze", "allocate", "frontier", "verify", "report", "offer", "study"]
     for line in listing:  # no summary cut off
         assert not line.rstrip().endswith("..."), line
     # and the same with a narrow terminal: a long summary wraps, it is never cut

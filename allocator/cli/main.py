@@ -17,6 +17,7 @@ COMMANDS = {
     "verify": ("allocator.cli.verify", "verify"),
     "report": ("allocator.cli.report", "report"),
     "offer": ("allocator.cli.offer", "offer"),
+    "study": ("allocator.cli.study", "study"),
 }
 
 # the one-line summaries `allocator --help` lists (whole, never cut off with "..."; listing
@@ -29,6 +30,7 @@ SUMMARIES = {
     "verify": "Check tolerances by Monte Carlo simulation.",
     "report": "Write an HTML report for a design review.",
     "offer": "Evaluate supplier offers: saving, break-even price.",
+    "study": "Allocate many cases at once: savings per case and in total.",
 }
 
 

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import json
 import math
+from contextlib import contextmanager
 from pathlib import Path
 
 import click
@@ -162,6 +163,18 @@ def _check_plot_path(plot, protect) -> None:
     check_output_path(plot, protect=protect)
 
 
+@contextmanager
+def _block_runner(scheduler):
+    """The cluster's runner with --scheduler (connected before the simulation), else None: here."""
+    if scheduler is None:
+        yield None
+        return
+    from ..parallel import cluster_runner
+
+    with cluster_runner(scheduler) as run:
+        yield run
+
+
 def _verdict(check) -> str:
     return check.status + ("" if check.decided else "*")
 
@@ -191,10 +204,17 @@ def _verdict(check) -> str:
     is_flag=True,
     help="Simulate centred processes (ignore the contributors' mean_shift).",
 )
+@click.option(
+    "--scheduler",
+    default=None,
+    metavar="ADDRESS",
+    help='Simulate the blocks of assemblies on a Dask distributed cluster (tcp://host:port); '
+         'the same seed gives the same result, bit for bit. Needs pip install "allocator[cluster]".',
+)
 @json_option
 @csv_option
 @handle_errors
-def verify(case_file, tolerance_file, models, samples, seed, plot, centred, as_json, as_csv):
+def verify(case_file, tolerance_file, models, samples, seed, plot, centred, scheduler, as_json, as_csv):
     """Verify tolerances of CASE by Monte Carlo simulation of whole assemblies.
 
     Without --tolerances or --model the case's current tolerances are checked. With
@@ -203,8 +223,12 @@ def verify(case_file, tolerance_file, models, samples, seed, plot, centred, as_j
     that hurts each requirement. For linear chains the exact fallout by numerical
     convolution is shown beside the simulation.
 
+    With --scheduler ADDRESS the blocks of assemblies are simulated on the workers of a
+    Dask distributed cluster; each block has its own seed, so the result is the same,
+    bit for bit, as a local run with the same --seed.
+
     Exit codes: 0 no requirement fails, 1 a fallout exceeds its target beyond the 95 %
-    confidence interval, 2 bad input.
+    confidence interval, 2 bad input (or no cluster at ADDRESS).
     """
     from ..simulate import render_verification_plot
     from ..simulate import verify as run_verify
@@ -233,16 +257,18 @@ def verify(case_file, tolerance_file, models, samples, seed, plot, centred, as_j
         source = "current tolerances of the case"
 
     try:
-        result = run_verify(
-            case,
-            tolerances,
-            processes=processes,
-            samples=samples,
-            seed=seed,
-            progress=True,
-            shift_means=not centred,
-            allocated_with=model,
-        )
+        with _block_runner(scheduler) as map_blocks:
+            result = run_verify(
+                case,
+                tolerances,
+                processes=processes,
+                samples=samples,
+                seed=seed,
+                progress=True,
+                shift_means=not centred,
+                allocated_with=model,
+                map_blocks=map_blocks,
+            )
     except CaseError as err:
         name = (err.field or "").partition("processes.")[2]
         if err.file is None and name in fields:  # a process from the file: name it there
