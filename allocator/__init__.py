@@ -31,6 +31,9 @@ _LAZY = {
     "supplier_sheet": ("allocator.supplier", "supplier_sheet"),
     "build_report": ("allocator.report", "build_report"),
     "write_report": ("allocator.report", "write_report"),
+    "convert_case": ("allocator.workbook", "convert_case"),
+    "load_workbook_case": ("allocator.workbook", "load_workbook_case"),
+    "write_workbook": ("allocator.sheets", "write_workbook"),
     # the case and the result types (see docs/results.md)
     "Case": ("allocator.model", "Case"),
     "StackAnalysis": ("allocator.analysis", "StackAnalysis"),

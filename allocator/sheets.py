@@ -84,11 +84,25 @@ def _check_sheet_name(name: str) -> None:
         raise UsageError(f"sheet name {name!r}: must not contain {''.join(sorted(bad))!r}")
 
 
+# a spreadsheet number is a double: whole numbers beyond 2**53 (a 64-bit seed) would not
+# come back as written, so they are written as text
+_EXACT_INTEGERS = 2**53
+
+
 def _flat(frame: pd.DataFrame) -> pd.DataFrame:
-    """A named index becomes ordinary columns (so the header is one row); a plain one is dropped."""
+    """The frame as written: a named index becomes ordinary columns (so the header is one
+    row), a plain one is dropped; whole numbers too large for a double become text."""
     if any(n is not None for n in frame.index.names):
-        return frame.reset_index()
-    return frame.reset_index(drop=True)
+        frame = frame.reset_index()
+    else:
+        frame = frame.reset_index(drop=True)
+    for column in frame.columns:
+        values = frame[column]
+        if any(isinstance(v, int) and not isinstance(v, bool) and abs(v) > _EXACT_INTEGERS
+               for v in values.tolist()):
+            frame[column] = [str(v) if isinstance(v, int) and not isinstance(v, bool) else v
+                             for v in values.tolist()]
+    return frame
 
 
 def write_workbook(
@@ -366,6 +380,8 @@ def frontier_sheets(result, economics=None) -> dict[str, pd.DataFrame]:
         The swept value in its own units ([ppm] for a fallout target, else the
         requirement's), costs and savings [currency] and savings [%].
     """
+    from .model import per_unit
+
     money = result.currency
     unit = "ppm" if result.vary == "fallout_ppm" else result.units
     frame = result.to_frame().rename(columns={
@@ -383,6 +399,8 @@ def frontier_sheets(result, economics=None) -> dict[str, pd.DataFrame]:
                 renames[column] = _header(column, "ppm")
             elif column.startswith(("annual_",)):
                 renames[column] = _header(column, f"{money}/year" if money else "per year")
+            elif column.startswith("slope_"):
+                renames[column] = _header(column, per_unit(money or "cost", "ppm"))
             elif column.endswith(("_cost", "_manufacturing", "_scrap", "_total", "_saving")) or column in (
                 "saving_per_assembly",
             ):

@@ -16,6 +16,7 @@ COMMANDS = {
     "frontier": ("allocator.cli.frontier", "frontier"),
     "verify": ("allocator.cli.verify", "verify"),
     "report": ("allocator.cli.report", "report"),
+    "convert": ("allocator.cli.convert", "convert"),
 }
 
 # the one-line summaries `allocator --help` lists (whole, never cut off with "..."; listing
@@ -27,6 +28,7 @@ SUMMARIES = {
     "frontier": "Least cost against a limit or fallout target.",
     "verify": "Check tolerances by Monte Carlo simulation.",
     "report": "Write an HTML report for a design review.",
+    "convert": "Convert a case between TOML and an .xlsx workbook.",
 }
 
 
