@@ -46,6 +46,9 @@ __all__ = [
 INSTALL_HINT = 'pip install "allocator[sheets]"'
 SUFFIX = ".xlsx"
 MAX_WORKBOOK_BYTES = 16 * 1024 * 1024  # as for case files: refused before reading
+# an .xlsx is a zip of XML: a small file may unpack to gigabytes, so the sizes its entries
+# declare (zipfile never reads past them) are added up first
+MAX_UNPACKED_BYTES = 256 * 1024 * 1024
 MAX_SHEET_NAME = 31  # Excel's limit
 _SHEET_NAME_FORBIDDEN = set("[]:*?/\\")
 
@@ -225,13 +228,28 @@ def _cell(value: Any) -> Any:
     return value
 
 
+def _check_unpacked_size(data: bytes, file: str) -> None:
+    import zipfile
+
+    try:
+        with zipfile.ZipFile(io.BytesIO(data)) as archive:
+            unpacked = sum(info.file_size for info in archive.infolist())
+    except (zipfile.BadZipFile, ValueError) as err:
+        raise CaseError(f"not an .xlsx workbook ({type(err).__name__}: {' '.join(str(err).split())[:80]})",
+                        file=file) from None
+    if unpacked > MAX_UNPACKED_BYTES:
+        raise CaseError(f"unpacks to {unpacked / 2**20:.0f} MB, more than {MAX_UNPACKED_BYTES // 2**20} MB; "
+                        "refusing to read it", file=file)
+
+
 def read_workbook(path: str | os.PathLike) -> dict[str, SheetTable]:
     """Every sheet of an .xlsx workbook as a :class:`SheetTable` (formulas: their saved values).
 
     Raises
     ------
     CaseError
-        File missing, larger than 16 MB, not an .xlsx workbook, or a sheet whose data
+        File missing, larger than 16 MB (or unpacking to more than 256 MB), not an
+        .xlsx workbook, or a sheet whose data
         column has no header; the message names the file (and sheet and cell).
     UsageError
         openpyxl is not installed.
@@ -252,6 +270,7 @@ def read_workbook(path: str | os.PathLike) -> dict[str, SheetTable]:
         raise CaseError("is a folder, not a workbook", file=file) from None
     except OSError as err:
         raise CaseError(f"cannot read the file ({(err.strerror or str(err)).lower()})", file=file) from None
+    _check_unpacked_size(data, file)
     try:
         # not read-only: that mode trusts the file's own note of its size, which some
         # programs write wrongly; 16 MB at most is read whole

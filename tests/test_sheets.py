@@ -414,3 +414,16 @@ def test_every_double_comes_back_exactly(tmp_path):
     for sheet in ("numpy", "python"):
         back = [row[0] for row in openpyxl.load_workbook(tmp_path / "x.xlsx")[sheet].iter_rows(min_row=2, values_only=True)]
         assert back == [float(v) for v in values]
+
+
+def test_a_workbook_that_unpacks_too_large_is_refused_before_it_is_parsed(tmp_path, monkeypatch):
+    from allocator import sheets
+
+    book = tmp_path / "case.xlsx"
+    write_case_workbook(load_case(GEARBOX), book)
+    monkeypatch.setattr(sheets, "MAX_UNPACKED_BYTES", 1000)
+    parsed = []
+    monkeypatch.setattr(openpyxl, "load_workbook", lambda *a, **k: parsed.append(a))
+    result = run("convert", book, tmp_path / "out.toml")
+    assert result.exit_code == 2 and "refusing to read it" in one_line_error(result)
+    assert parsed == [] and not (tmp_path / "out.toml").exists()
