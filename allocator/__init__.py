@@ -8,7 +8,8 @@ Library entry points (each works in a notebook without the command line)::
     allocator.allocate(case, model="rss").to_frame()
 
 Also exported: :func:`fallout_economics`, :func:`supplier_sheet`, :func:`build_report`,
-:func:`write_report`, the result types (:class:`Allocation`, :class:`StackAnalysis`,
+:func:`write_report`, :func:`convert_case`, :func:`load_workbook_case` and
+:func:`write_workbook` (.xlsx workbooks, docs/spreadsheets.md), the result types (:class:`Allocation`, :class:`StackAnalysis`,
 :class:`Frontier`, :class:`Verification` ...; see docs/results.md) and the errors
 :class:`CaseError`, :class:`UsageError` (both ValueError) and :class:`InfeasibleError`.
 

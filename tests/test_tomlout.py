@@ -45,7 +45,7 @@ VALUES = st.recursive(
 )
 
 
-@settings(max_examples=300, deadline=None, derandomize=True, database=None)
+@settings(max_examples=200, deadline=None, derandomize=True, database=None)
 @given(st.dictionaries(KEYS, VALUES, max_size=6))
 def test_tomllib_reads_back_what_dumps_writes(data):
     assert tomllib.loads(dumps(data)) == data
