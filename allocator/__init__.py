@@ -9,8 +9,9 @@ Library entry points (each works in a notebook without the command line)::
 
 Also exported: :func:`fallout_economics`, :func:`supplier_sheet`, :func:`build_report`,
 :func:`write_report`, :func:`convert_case`, :func:`load_workbook_case` and
-:func:`write_workbook` (.xlsx workbooks, docs/spreadsheets.md), the result types (:class:`Allocation`, :class:`StackAnalysis`,
-:class:`Frontier`, :class:`Verification` ...; see docs/results.md) and the errors
+:func:`write_workbook` (.xlsx workbooks, docs/spreadsheets.md), the result types
+(:class:`Allocation`, :class:`StackAnalysis`, :class:`Frontier`, :class:`Verification` ...;
+see docs/results.md) and the errors
 :class:`CaseError`, :class:`UsageError` (both ValueError) and :class:`InfeasibleError`.
 
 Heavy libraries (cvxpy, matplotlib, pandas) are imported lazily, on first use.
