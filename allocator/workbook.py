@@ -270,6 +270,33 @@ def _item_resolver(places: _Places, sheet: str, row: int, columns: Iterable[str]
     return resolve
 
 
+# case-file keys that a workbook spreads over other columns
+_LIMITS_HINT = " (in a workbook, limits are the two columns tightest and loosest)"
+_COST_HINT = " (in a workbook, a cost is the columns curve, " + ", ".join(_PARAMETERS) + " and between)"
+_LAYOUT_HINTS = {
+    ("contributors", "limits"): _LIMITS_HINT,
+    ("contributors", "cost"): _COST_HINT,
+    ("processes", "limits"): _LIMITS_HINT,
+    ("processes", "cost"): _COST_HINT,
+    ("processes", "name"): " (a process's name goes in the column process)",
+    ("requirements", "chain"): f" (in a workbook, a chain is one column {CHAIN_PREFIX}NAME per contributor)",
+}
+
+
+def _unique(places: _Places, sheet: str, rows, column: str, within: str | None = None) -> None:
+    """Two rows of ``sheet`` with the same text in ``column`` (per ``within``): the second is named."""
+    first: dict = {}
+    for row, values in rows:
+        name, group = values.get(column), values.get(within) if within else None
+        if not isinstance(name, str):
+            continue  # the loader says what is wrong with it
+        if (group, name) in first:
+            whose = f" of {group!r}" if within else ""
+            places.fail(places.cell(sheet, row, column),
+                        f"{name!r}{whose} is already used by row {first[group, name]}")
+        first.setdefault((group, name), row)
+
+
 def _check_sheets(places: _Places, tables: dict) -> None:
     for name in tables:
         if name not in SHEETS:
@@ -285,9 +312,10 @@ def _check_sheets(places: _Places, tables: dict) -> None:
             if name == "requirements" and column.startswith(CHAIN_PREFIX) and len(column) > len(CHAIN_PREFIX):
                 continue
             if column not in allowed:
-                hint = did_you_mean(column, allowed)
-                extra = " (chain coefficients go in columns named chain.NAME)" if name == "requirements" and not hint else ""
-                places.fail(places.cell(name, 1, column), f"unknown column {column!r}{hint}{extra}")
+                hint = _LAYOUT_HINTS.get((name, column)) or did_you_mean(column, allowed)
+                if not hint and name == "requirements":
+                    hint = f" (a chain coefficient goes in a column named {CHAIN_PREFIX}NAME)"
+                places.fail(places.cell(name, 1, column), f"unknown column {column!r}{hint}")
         for column, why in REQUIRED_COLUMNS[name].items():
             if column not in table.columns and (table.rows or name in REQUIRED_SHEETS):
                 places.fail(places.cell(name, 1), f"missing column {column!r} ({why})")
@@ -400,13 +428,11 @@ def _workbook_to_dict(places: _Places, tables: dict) -> dict:
     # process rows per contributor, in order
     process_rows: dict = {}
     names = [values.get("name") for _, values in contributor_rows]
-    first_row: dict = {}
-    for row, values in contributor_rows:  # processes and points are found by name
-        name = values.get("name")
-        if isinstance(name, str) and name in first_row:
-            places.fail(places.cell("contributors", row, "name"),
-                        f"{name!r} is already used by row {first_row[name]}")
-        first_row.setdefault(name, row)
+    # processes and points are found by name: a repeated name is refused at its second row
+    _unique(places, "contributors", contributor_rows, "name")
+    _unique(places, "requirements", tables["requirements"].rows, "name")
+    if "processes" in tables:
+        _unique(places, "processes", tables["processes"].rows, "process", within="contributor")
     if "processes" in tables:
         for row, values in tables["processes"].rows:
             owner = values.get("contributor")

@@ -192,6 +192,12 @@ BAD = {
                              "must be > 0"),
     "unknown model in settings": (_set("settings", 5, "value", "worst-case, rss, wc"), GEARBOX, "settings", "5",
                                   "value", "must be one of worst-case, rss, mean-shift (got 'wc')"),
+    "a name twice": (_set("contributors", 4, "name", "gasket"), GEARBOX, "contributors", "4", "name",
+                     "'gasket' is already used by row 3"),
+    "a process twice": (_set("processes", 3, "process", "turning"), GEAR_HUB, "processes", "3", "process",
+                        "'turning' of 'groove_position' is already used by row 2"),
+    "limits as one column": (_rename("contributors", "tightest", "limits"), GEARBOX, "contributors", "1", "limits",
+                             "limits are the two columns tightest and loosest"),
     "one limit only": (_set("contributors", 2, "loosest", None), GEARBOX, "contributors", "2", "loosest",
                        "give both tightest and loosest"),
 }
