@@ -10,6 +10,7 @@ from ..errors import AllocatorError, InternalError, UsageError
 from ..ppm import format_ppm
 from .common import (
     CASE_ARGUMENT,
+    check_xlsx,
     csv_option,
     echo_error,
     echo_json,
@@ -24,7 +25,6 @@ from .common import (
     shared_label,
     text_table,
     units_title,
-    check_xlsx,
     xlsx_option,
 )
 

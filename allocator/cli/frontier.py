@@ -11,6 +11,7 @@ from ..errors import UsageError
 from ..model import MODEL_LABELS
 from .common import (
     CASE_ARGUMENT,
+    check_xlsx,
     csv_option,
     echo_json,
     exit_failed,
@@ -21,7 +22,6 @@ from .common import (
     model_option,
     text_table,
     units_title,
-    check_xlsx,
     xlsx_option,
 )
 

@@ -17,6 +17,7 @@ from .common import (
     MIN_SAMPLES,
     FilePath,
     SampleCount,
+    check_xlsx,
     csv_option,
     echo_json,
     exit_failed,
@@ -29,7 +30,6 @@ from .common import (
     text_table,
     units_title,
     write_csv,
-    check_xlsx,
     xlsx_option,
 )
 
