@@ -12,7 +12,23 @@ from __future__ import annotations
 from .costs import family
 from .model import DEFAULT_FALLOUT_PPM, Case, Contributor, CostCurve, FrontierSettings, Process, Requirement
 
-__all__ = ["case_to_dict", "cost_to_dict", "dumps_case"]
+__all__ = ["case_to_dict", "cost_to_dict", "dumps_case", "WRITTEN_FIELDS"]
+
+# the fields of each model class that case_to_dict writes (or, for path and sha256, leaves
+# out on purpose); tests/test_tomlout.py compares them with the classes, so a field added
+# to the case format later cannot be dropped from a converted case without notice
+WRITTEN_FIELDS = {
+    "Case": ("title", "contributors", "requirements", "units", "currency", "allocation", "economics",
+             "frontier", "path", "sha256"),
+    "Contributor": ("name", "nominal", "tolerance", "limits", "cost", "processes", "description", "cp",
+                    "mean_shift", "distribution", "count", "fixed", "units"),
+    "Process": ("name", "limits", "cost", "cp"),
+    "Requirement": ("name", "chain", "expression", "lower", "upper", "fallout_ppm", "units"),
+    "AllocationSettings": ("models", "rounding"),
+    "Economics": ("volume", "scrap_cost"),
+    "FrontierSettings": ("requirement", "vary", "range", "points"),
+    "CostCurve": ("curve", "a", "b", "c", "k", "points_tolerance", "points_cost", "between"),
+}
 
 
 def case_to_dict(case: Case) -> dict:

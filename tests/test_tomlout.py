@@ -109,6 +109,18 @@ def test_random_invented_cases_written_back_load_to_the_same_case():
         assert bare(loads_case(dumps_case(case))) == bare(case)
 
 
+def test_every_field_of_the_case_model_is_written():
+    """A field added to the case format must be added to caseout (and the workbook) too."""
+    from dataclasses import fields
+
+    from allocator import model
+    from allocator.caseout import WRITTEN_FIELDS
+
+    for name, written in WRITTEN_FIELDS.items():
+        assert {f.name for f in fields(getattr(model, name))} == set(written), name
+    assert set(WRITTEN_FIELDS) >= {"Case", "Contributor", "Process", "Requirement", "CostCurve"}
+
+
 def test_case_from_dict_gives_the_loaders_errors():
     data = case_to_dict(load_case(ROOT / "cases" / "gearbox_end_play.toml"))
     data["contributor"][4]["cost"]["k"] = -2.0
