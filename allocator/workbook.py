@@ -371,6 +371,9 @@ def _read_settings(places: _Places, table: SheetTable) -> dict:
                     f"{missing} missing (give both ends of the frontier range, or neither)")
     for section in ("allocation", "economics", "frontier"):
         places.exact.setdefault(section, places.cell("settings"))
+    for key in SETTINGS:  # a setting without a row: say which row is wanted
+        path = key.removesuffix(".from").removesuffix(".to")
+        places.exact.setdefault(path, f"{places.cell('settings')}, setting {key}")
     return data
 
 
@@ -403,7 +406,8 @@ def _read_points(places: _Places, table: SheetTable | None, owners: dict) -> dic
             places.fail(places.cell("tables", row, "contributor"), "missing (the contributor the point belongs to)")
         if name not in owners:
             places.fail(places.cell("tables", row, "contributor"),
-                        f"unknown contributor {name!r}{did_you_mean(name, [n for n in owners if isinstance(n, str)])}")
+                        f"unknown contributor {name!r}"
+                        f"{did_you_mean(name, [n for n in owners if isinstance(n, str)])}")
         process = values.get("process")
         if process is not None and process not in owners[name]:
             known = owners[name]
@@ -437,7 +441,8 @@ def _workbook_to_dict(places: _Places, tables: dict) -> dict:
         for row, values in tables["processes"].rows:
             owner = values.get("contributor")
             if owner is None:
-                places.fail(places.cell("processes", row, "contributor"), "missing (the contributor this process makes)")
+                places.fail(places.cell("processes", row, "contributor"),
+                            "missing (the contributor this process makes)")
             if owner not in names:
                 known = [n for n in names if isinstance(n, str)]
                 places.fail(places.cell("processes", row, "contributor"),

@@ -198,6 +198,8 @@ BAD = {
                         "'turning' of 'groove_position' is already used by row 2"),
     "limits as one column": (_rename("contributors", "tightest", "limits"), GEARBOX, "contributors", "1", "limits",
                              "limits are the two columns tightest and loosest"),
+    "no title row": (lambda wb: wb["settings"].delete_rows(2), GEARBOX, None, None, None,
+                     "sheet settings, setting title: missing (a title for the case)"),
     "one limit only": (_set("contributors", 2, "loosest", None), GEARBOX, "contributors", "2", "loosest",
                        "give both tightest and loosest"),
 }
@@ -414,11 +416,13 @@ def test_case_sheets_needs_no_openpyxl(no_openpyxl):
 def test_every_double_comes_back_exactly(tmp_path):
     """openpyxl alone writes 16 significant digits; some doubles need 17."""
     rng = np.random.default_rng(5)
-    values = np.concatenate([rng.uniform(0, 1, 200), rng.lognormal(0, 20, 200), [0.1, 1 / 3, 5e-324, 1.7976931348623157e308]])
+    extremes = [0.1, 1 / 3, 5e-324, 1.7976931348623157e308]
+    values = np.concatenate([rng.uniform(0, 1, 200), rng.lognormal(0, 20, 200), extremes])
     write_workbook(tmp_path / "x.xlsx", {"numpy": pd.DataFrame({"x": values}),
                                          "python": pd.DataFrame({"x": [float(v) for v in values]}, dtype=object)})
     for sheet in ("numpy", "python"):
-        back = [row[0] for row in openpyxl.load_workbook(tmp_path / "x.xlsx")[sheet].iter_rows(min_row=2, values_only=True)]
+        cells = openpyxl.load_workbook(tmp_path / "x.xlsx")[sheet].iter_rows(min_row=2, values_only=True)
+        back = [row[0] for row in cells]
         assert back == [float(v) for v in values]
 
 
