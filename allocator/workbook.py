@@ -429,15 +429,15 @@ def _workbook_to_dict(places: _Places, tables: dict) -> dict:
     places.exact["contributor"] = places.cell("contributors")
     places.exact["requirement"] = places.cell("requirements")
 
-    # process rows per contributor, in order
-    process_rows: dict = {}
-    names = [values.get("name") for _, values in contributor_rows]
     # processes and points are found by name: a repeated name is refused at its second row
     _unique(places, "contributors", contributor_rows, "name")
     _unique(places, "requirements", tables["requirements"].rows, "name")
+    names = [values.get("name") for _, values in contributor_rows]
+
+    # process rows per contributor, in order
+    process_rows: dict = {}
     if "processes" in tables:
         _unique(places, "processes", tables["processes"].rows, "process", within="contributor")
-    if "processes" in tables:
         for row, values in tables["processes"].rows:
             owner = values.get("contributor")
             if owner is None:
