@@ -8,9 +8,11 @@ Library entry points (each works in a notebook without the command line)::
     allocator.allocate(case, model="rss").to_frame()
 
 Also exported: :func:`fallout_economics`, :func:`supplier_sheet`, :func:`evaluate_offers`,
-:func:`build_report`, :func:`write_report`, :func:`study` (many cases at once), the result
-types (:class:`Allocation`, :class:`StackAnalysis`, :class:`Frontier`, :class:`Verification`,
-:class:`OfferEvaluation`, :class:`Study` ...; see docs/results.md) and the errors
+:func:`build_report`, :func:`write_report`, :func:`study` (many cases at once),
+:func:`convert_case`, :func:`load_workbook_case` and :func:`write_workbook` (.xlsx workbooks,
+docs/spreadsheets.md), the result types (:class:`Allocation`, :class:`StackAnalysis`,
+:class:`Frontier`, :class:`Verification`, :class:`OfferEvaluation`, :class:`Study` ...; see
+docs/results.md) and the errors
 :class:`CaseError`, :class:`UsageError` (both ValueError) and :class:`InfeasibleError`.
 
 Heavy libraries (cvxpy, matplotlib, pandas) are imported lazily, on first use.
@@ -34,6 +36,9 @@ _LAZY = {
     "build_report": ("allocator.report", "build_report"),
     "write_report": ("allocator.report", "write_report"),
     "study": ("allocator.studies", "study"),
+    "convert_case": ("allocator.workbook", "convert_case"),
+    "load_workbook_case": ("allocator.workbook", "load_workbook_case"),
+    "write_workbook": ("allocator.sheets", "write_workbook"),
     # the case and the result types (see docs/results.md)
     "Case": ("allocator.model", "Case"),
     "StackAnalysis": ("allocator.analysis", "StackAnalysis"),

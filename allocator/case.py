@@ -52,6 +52,7 @@ from .offers import tolerance_problem
 __all__ = [
     "load_case",
     "loads_case",
+    "case_from_dict",
     "MAX_FILE_BYTES",
     "MAX_CONTRIBUTORS",
     "MAX_COUNT",
@@ -972,6 +973,46 @@ def loads_case(text: str, *, source: str = "<string>", base_dir: str | os.PathLi
     if len(data) > MAX_FILE_BYTES:
         src.fail(None, _too_large(len(data)))
     return _build(_parse(text, src), src, None, hashlib.sha256(data).hexdigest())
+
+
+def case_from_dict(
+    data: dict,
+    *,
+    source: str = "<dict>",
+    base_dir: str | os.PathLike | None = None,
+    path: str | os.PathLike | None = None,
+    sha256: str | None = None,
+) -> Case:
+    """Validate a case given as the dict a TOML case file parses to, and build it.
+
+    The checks and messages are those of :func:`load_case`; other readers (a workbook,
+    see :mod:`allocator.workbook`) build this dict and translate the field paths of a
+    :class:`CaseError` into their own places.
+
+    Parameters
+    ----------
+    data : dict
+        As ``tomllib`` returns it: ``title``, ``contributor`` (a list of dicts) ...
+    source : str, optional
+        Name used for the file in error messages.
+    base_dir : str or path-like, optional
+        Folder in which ``cost.file`` tables are looked up (None: such tables are refused).
+    path, sha256 : optional
+        Recorded on the case (the file it came from and the hash of its bytes).
+
+    Returns
+    -------
+    Case
+
+    Raises
+    ------
+    CaseError
+        One line ``"<source>: <field path>: <problem>"`` for any problem.
+    """
+    src = _Source(str(source), Path(base_dir) if base_dir is not None else None)
+    if not isinstance(data, dict):
+        src.fail(None, f"a case must be a table of keys (got {type(data).__name__})")
+    return _build(data, src, Path(path) if path is not None else None, sha256)
 
 
 def load_case(path: str | os.PathLike) -> Case:

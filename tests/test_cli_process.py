@@ -40,7 +40,7 @@ def test_readme_demo_runs_in_a_fresh_process(tmp_path):
     assert all(r["status"] == "optimal" for r in results)
 
 
-@pytest.mark.parametrize("command", ["init", "analyze", "allocate", "frontier", "verify", "report", "study"])
+@pytest.mark.parametrize("command", ["init", "analyze", "allocate", "frontier", "verify", "report", "offer", "study", "convert"])
 def test_every_command_has_help(tmp_path, command):
     done = run(command, "--help", cwd=tmp_path)
     assert done.returncode == 0, done.stderr
@@ -60,6 +60,18 @@ def test_bad_input_is_one_line_and_exit_2_in_a_fresh_process(tmp_path):
     assert "Traceback" not in done.stderr
     assert len(done.stderr.strip().splitlines()) == 1
     assert "missing.toml" in done.stderr
+
+
+def test_convert_both_ways_in_a_fresh_process(tmp_path):
+    pytest.importorskip("openpyxl", reason='workbooks need the extra: pip install "allocator[sheets]"')
+    there = run("convert", DEMO, "gearbox.xlsx", cwd=tmp_path)
+    assert there.returncode == 0, there.stderr
+    back = run("convert", "gearbox.xlsx", "gearbox.toml", cwd=tmp_path)
+    assert back.returncode == 0, back.stderr
+    assert back.stdout == "wrote gearbox.toml: 6 contributors, 1 requirement\n"
+    again = run("allocate", "gearbox.toml", "--model", "rss", "--json", "--xlsx", "rss.xlsx", cwd=tmp_path)
+    assert again.returncode == 0, again.stderr
+    assert (tmp_path / "rss.xlsx").is_file() and again.stderr == "wrote rss.xlsx\n"
 
 
 def test_python_dash_m_allocator(tmp_path):
@@ -122,7 +134,7 @@ def test_help_lists_every_command_with_a_whole_summary(tmp_path):
     assert done.returncode == 0
     listing = done.stdout.split("Commands:", 1)[1].splitlines()
     names = [line.split()[0] for line in listing if line.startswith("  ") and not line.startswith("   ")]
-    assert names == ["init", "analyze", "allocate", "frontier", "verify", "report", "offer", "study"]
+    assert names == ["init", "analyze", "allocate", "frontier", "verify", "report", "offer", "study", "convert"]
     for line in listing:  # no summary cut off
         assert not line.rstrip().endswith("..."), line
     # and the same with a narrow terminal: a long summary wraps, it is never cut

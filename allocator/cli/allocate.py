@@ -10,6 +10,7 @@ from ..errors import AllocatorError, InternalError, UsageError
 from ..ppm import format_ppm
 from .common import (
     CASE_ARGUMENT,
+    check_xlsx,
     csv_option,
     echo_error,
     echo_json,
@@ -24,6 +25,7 @@ from .common import (
     shared_label,
     text_table,
     units_title,
+    xlsx_option,
 )
 
 CSV_COLUMNS = (
@@ -59,8 +61,9 @@ def _parse_fix(items) -> dict[str, float]:
 )
 @json_option
 @csv_option
+@xlsx_option
 @handle_errors
-def allocate(case_file, models, fixes, as_json, as_csv):
+def allocate(case_file, models, fixes, as_json, as_csv, xlsx):
     """Find the least-cost tolerances of CASE.
 
     For each stack model: the allocated ± tolerance of every contributor (and whether it
@@ -78,6 +81,7 @@ def allocate(case_file, models, fixes, as_json, as_csv):
     if as_json and as_csv:
         raise UsageError("--json and --csv cannot be used together")
     fix = _parse_fix(fixes)
+    check_xlsx(xlsx, case_file)
     case = load_case_or_exit(case_file)
     models = tuple(models) or tuple(case.allocation.models)
     results, baselines, crashed = _run_models(case, models, fix, run)
@@ -98,6 +102,11 @@ def allocate(case_file, models, fixes, as_json, as_csv):
         _print_human(case, results, baselines)
 
     failed = [r for r in results if not r.success]
+    if xlsx is not None and results and not crashed:
+        from ..sheets import allocation_sheets, write_workbook
+
+        write_workbook(xlsx, allocation_sheets(results), protect=(case_file,))
+        click.echo(f"wrote {xlsx}", err=as_json or as_csv)
     if crashed:
         # the models that solved are printed above; the crash gets one line
         echo_error(crashed[0])

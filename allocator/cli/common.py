@@ -142,6 +142,21 @@ def model_option(f):
     )(f)
 
 
+def xlsx_option(f):
+    return click.option(
+        "--xlsx", "xlsx", type=FilePath(), default=None, metavar="FILE.xlsx",
+        help='Also write the tables as sheets of one .xlsx workbook (needs pip install "allocator[sheets]").',
+    )(f)
+
+
+def check_xlsx(path, *protect) -> None:
+    """A bad --xlsx path (or openpyxl missing) is a usage error, found before any work."""
+    if path is not None:
+        from ..sheets import check_workbook_path
+
+        check_workbook_path(path, protect=protect)
+
+
 def seed_option(f):
     return click.option("--seed", type=int, default=None, help="Random seed (reproducible runs).")(f)
 
@@ -182,7 +197,12 @@ def handle_errors(f):
 
 
 def load_case_or_exit(path):
-    """Load a case file (the library raises CaseError on any problem)."""
+    """Load a case file, or a case workbook (.xlsx, docs/spreadsheets.md); the library
+    raises CaseError on any problem."""
+    if Path(path).suffix.lower() == ".xlsx":
+        from ..workbook import load_workbook_case
+
+        return load_workbook_case(path)
     from ..case import load_case
 
     return load_case(path)

@@ -11,6 +11,7 @@ from ..errors import UsageError
 from ..model import MODEL_LABELS
 from .common import (
     CASE_ARGUMENT,
+    check_xlsx,
     csv_option,
     echo_json,
     exit_failed,
@@ -21,6 +22,7 @@ from .common import (
     model_option,
     text_table,
     units_title,
+    xlsx_option,
 )
 
 SOURCES = {
@@ -62,8 +64,9 @@ def _check_plot_paths(case_file, *paths) -> None:
               help="Write manufacturing, scrap and total cost against the fallout target (.png or .svg).")
 @json_option
 @csv_option
+@xlsx_option
 @handle_errors
-def frontier(case_file, requirement, vary, span, points, models, plot, economics_plot, as_json, as_csv):
+def frontier(case_file, requirement, vary, span, points, models, plot, economics_plot, as_json, as_csv, xlsx):
     """Least cost of CASE against one requirement's limit or fallout target.
 
     For each value of the swept limit (or target) and each stack model: the least total
@@ -80,6 +83,7 @@ def frontier(case_file, requirement, vary, span, points, models, plot, economics
     if as_json and as_csv:
         raise UsageError("--json and --csv cannot be used together")
     _check_plot_paths(case_file, plot, economics_plot)
+    check_xlsx(xlsx, case_file, plot, economics_plot)
     case = load_case_or_exit(case_file)
     if economics_plot and case.economics.scrap_cost is None:
         raise UsageError(f"--economics-plot: {case_file} has no [economics] scrap_cost")
@@ -109,6 +113,11 @@ def frontier(case_file, requirement, vary, span, points, models, plot, economics
 
         plot_economics(economics, economics_plot, protect=(case_file,))
         written.append(f"wrote economics plot {economics_plot}")
+    if xlsx:
+        from ..sheets import frontier_sheets, write_workbook
+
+        write_workbook(xlsx, frontier_sheets(result, economics), protect=(case_file, plot, economics_plot))
+        written.append(f"wrote {xlsx}")
 
     if as_json:
         document = {"title": case.title, **result.to_dict()}

@@ -18,6 +18,7 @@ COMMANDS = {
     "report": ("allocator.cli.report", "report"),
     "offer": ("allocator.cli.offer", "offer"),
     "study": ("allocator.cli.study", "study"),
+    "convert": ("allocator.cli.convert", "convert"),
 }
 
 # the one-line summaries `allocator --help` lists (whole, never cut off with "..."; listing
@@ -31,6 +32,7 @@ SUMMARIES = {
     "report": "Write an HTML report for a design review.",
     "offer": "Evaluate supplier offers: saving, break-even price.",
     "study": "Allocate many cases at once: savings per case and in total.",
+    "convert": "Convert a case between TOML and an .xlsx workbook.",
 }
 
 

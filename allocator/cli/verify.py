@@ -18,6 +18,7 @@ from .common import (
     MIN_SAMPLES,
     FilePath,
     SampleCount,
+    check_xlsx,
     csv_option,
     echo_json,
     exit_failed,
@@ -30,6 +31,7 @@ from .common import (
     text_table,
     units_title,
     write_csv,
+    xlsx_option,
 )
 
 PLOT_FORMATS = (".png", ".svg")
@@ -213,8 +215,9 @@ def _verdict(check) -> str:
 )
 @json_option
 @csv_option
+@xlsx_option
 @handle_errors
-def verify(case_file, tolerance_file, models, samples, seed, plot, centred, scheduler, as_json, as_csv):
+def verify(case_file, tolerance_file, models, samples, seed, plot, centred, scheduler, as_json, as_csv, xlsx):
     """Verify tolerances of CASE by Monte Carlo simulation of whole assemblies.
 
     Without --tolerances or --model the case's current tolerances are checked. With
@@ -241,6 +244,7 @@ def verify(case_file, tolerance_file, models, samples, seed, plot, centred, sche
         raise UsageError(f"--seed must be a non-negative integer, got {seed}")
     if plot is not None:
         _check_plot_path(plot, (case_file, tolerance_file))
+    check_xlsx(xlsx, case_file, tolerance_file, plot)
     case = load_case_or_exit(case_file)
     fields = {}  # contributor -> where its process came from in the tolerance file
     processes = None
@@ -283,6 +287,10 @@ def verify(case_file, tolerance_file, models, samples, seed, plot, centred, sche
     if plot is not None:
         data = render_verification_plot(result, Path(plot).suffix)
         atomic_write(plot, data, protect=(case_file, tolerance_file))
+    if xlsx is not None:
+        from ..sheets import verification_sheets, write_workbook
+
+        write_workbook(xlsx, verification_sheets(result, case), protect=(case_file, tolerance_file, plot))
     if as_json:
         echo_json(
             {"title": case.title, "tolerance_source": source, "model": model, "processes": made_by, **result.to_dict()}
@@ -291,6 +299,8 @@ def verify(case_file, tolerance_file, models, samples, seed, plot, centred, sche
         write_csv(result.to_frame(), index_label="name")  # the CSV column keeps its name
     else:
         _print_human(case, result, source, plot, made_by)
+    if xlsx is not None:
+        click.echo(f"wrote {xlsx}", err=as_json or as_csv)
     if result.status == "fail":  # the reason is in the output; stderr gets one short line
         failing = ", ".join(c.name for c in result.requirements if c.status == "fail")
         exit_failed(f"verification: fallout above target for {failing}")

@@ -1,0 +1,439 @@
+"""Spreadsheets in and out: `allocator convert` (case TOML <-> .xlsx), the workbook's errors
+at sheet, row and column, `--xlsx` on allocate / frontier / verify, and openpyxl missing.
+
+The references are outside the code under test: the case read from the TOML file by the
+case loader (a converted case must equal it), ``tomllib`` for the raw values of the case
+files, openpyxl and pandas for what the workbooks really hold, and the error the loader
+gives for the same mistake made in TOML text.
+"""
+
+from __future__ import annotations
+
+import re
+import sys
+import tomllib
+from dataclasses import replace
+from pathlib import Path
+
+import numpy as np
+import pytest
+from click.testing import CliRunner
+
+openpyxl = pytest.importorskip("openpyxl", reason='workbooks need the extra: pip install "allocator[sheets]"')
+pd = pytest.importorskip("pandas")
+
+from allocator.analysis import analyze  # noqa: E402
+from allocator.case import load_case, loads_case  # noqa: E402
+from allocator.cli.main import cli  # noqa: E402
+from allocator.errors import CaseError, UsageError  # noqa: E402
+from allocator.sheets import write_workbook  # noqa: E402
+from allocator.workbook import SHEETS, case_sheets, load_workbook_case, write_case_workbook  # noqa: E402
+from helpers import build_case  # noqa: E402
+
+ROOT = Path(__file__).resolve().parents[1]
+DEMOS = sorted((ROOT / "cases").glob("*.toml"))
+GEARBOX = ROOT / "cases" / "gearbox_end_play.toml"
+GEAR_HUB = ROOT / "cases" / "gear_hub_end_play.toml"
+CELL = re.compile(r"sheet (\w+), row (\d+)(?:, column (\S+))?")
+
+
+def run(*args):
+    return CliRunner().invoke(cli, [str(a) for a in args])
+
+
+def bare(case):
+    """The case without where it came from (path and hash differ by design)."""
+    return replace(case, path=None, sha256=None)
+
+
+def one_line_error(result) -> str:
+    lines = result.stderr.strip().splitlines()
+    assert len(lines) == 1, result.stderr
+    assert lines[0].startswith("error: "), lines[0]
+    assert "Traceback" not in result.output
+    return lines[0]
+
+
+# --------------------------------------------------------------------------- round trip
+
+
+@pytest.mark.parametrize("path", DEMOS, ids=lambda p: p.stem)
+def test_every_demo_case_survives_toml_to_workbook_to_toml(path, tmp_path):
+    book, back = tmp_path / "case.xlsx", tmp_path / "back.toml"
+    first = run("convert", path, book)
+    assert first.exit_code == 0, first.output
+    second = run("convert", book, back)
+    assert second.exit_code == 0, second.output
+
+    original = load_case(path)
+    assert bare(load_workbook_case(book)) == bare(original)
+    assert bare(load_case(back)) == bare(original)
+    # the same analysis, number for number
+    pd.testing.assert_frame_equal(analyze(load_case(back)).to_frame(), analyze(original).to_frame(), rtol=0, atol=0)
+
+
+@pytest.mark.parametrize("path", DEMOS, ids=lambda p: p.stem)
+def test_the_workbook_holds_the_numbers_of_the_case_file(path, tmp_path):
+    """Read the written cells with pandas and compare them with tomllib's reading of the file."""
+    book = tmp_path / "case.xlsx"
+    write_case_workbook(load_case(path), book)
+    raw = tomllib.loads(path.read_text(encoding="utf-8"))
+    sheets = pd.read_excel(book, sheet_name=None)
+    assert list(sheets) == list(SHEETS)
+    people = sheets["contributors"].set_index("name")
+    for c in raw["contributor"]:
+        row = people.loc[c["name"]]
+        assert row["nominal"] == c["nominal"] and row["tolerance"] == c["tolerance"]
+        if "limits" in c:
+            assert [row["tightest"], row["loosest"]] == c["limits"]
+        if "cost" in c and c["cost"]["curve"] != "table":
+            assert row["curve"] == c["cost"]["curve"]
+            for key in ("a", "b", "c", "k"):
+                if key in c["cost"]:
+                    assert row[key] == c["cost"][key]
+        processes = sheets["processes"][sheets["processes"]["contributor"] == c["name"]]
+        assert list(processes["process"]) == [p["name"] for p in c.get("process", [])]
+    needs = sheets["requirements"].set_index("name")
+    for r in raw["requirement"]:
+        for name, coeff in r.get("chain", {}).items():
+            assert needs.loc[r["name"], f"chain.{name}"] == coeff
+        for key in ("lower", "upper", "fallout_ppm"):
+            if key in r:
+                assert needs.loc[r["name"], key] == r[key]
+
+
+def test_a_csv_cost_table_goes_into_the_tables_sheet(tmp_path):
+    book = tmp_path / "pump.xlsx"
+    write_case_workbook(load_case(ROOT / "cases" / "pump_shim.toml"), book)
+    points = pd.read_excel(book, sheet_name="tables")
+    csv = pd.read_csv(ROOT / "cases" / "shim_costs.csv")
+    shim = points[points["contributor"] == "shim"]
+    assert list(shim["tolerance"]) == list(csv["tolerance"]) and list(shim["cost"]) == list(csv["cost"])
+
+
+def test_random_invented_cases_survive_the_workbook(tmp_path):
+    """Many-digit floats, every curve family, fixed parts without cost, counts, cp."""
+    rng = np.random.default_rng(20261202)
+    for i in range(6):
+        case = build_case(rng, "mean-shift" if i % 2 else "rss", size=7, count=2, broken=None).case
+        book = tmp_path / f"random{i}.xlsx"
+        write_case_workbook(case, book)
+        assert bare(load_workbook_case(book)) == bare(case)
+
+
+def test_a_workbook_is_accepted_wherever_a_case_file_is(tmp_path):
+    book = tmp_path / "gearbox.xlsx"
+    write_case_workbook(load_case(GEARBOX), book)
+    from_book = run("allocate", book, "--model", "rss", "--json")
+    from_toml = run("allocate", GEARBOX, "--model", "rss", "--json")
+    assert from_book.exit_code == from_toml.exit_code == 0
+    import json
+
+    assert json.loads(from_book.stdout)["results"] == json.loads(from_toml.stdout)["results"]
+
+
+# --------------------------------------------------------------------------- bad workbooks
+
+
+def _bad_workbook(tmp_path, edit, source=GEARBOX):
+    book = tmp_path / "bad.xlsx"
+    write_case_workbook(load_case(source), book)
+    wb = openpyxl.load_workbook(book)
+    edit(wb)
+    wb.save(book)
+    return book
+
+
+def _column(sheet, header):
+    return [c.value for c in sheet[1]].index(header) + 1
+
+
+def _set(sheet_name, row, header, value):
+    def edit(wb):
+        sheet = wb[sheet_name]
+        sheet.cell(row, _column(sheet, header)).value = value
+    return edit
+
+
+def _rename(sheet_name, header, new):
+    def edit(wb):
+        sheet = wb[sheet_name]
+        sheet.cell(1, _column(sheet, header)).value = new
+    return edit
+
+
+def _drop_column(sheet_name, header):
+    def edit(wb):
+        sheet = wb[sheet_name]
+        sheet.delete_cols(_column(sheet, header))
+    return edit
+
+
+BAD = {
+    # name: (edit, source, sheet, row, column or None, fragment of the problem)
+    "missing sheet": (lambda wb: wb.remove(wb["requirements"]), GEARBOX, None, None, None,
+                      "missing sheet 'requirements'"),
+    "missing column": (_drop_column("contributors", "nominal"), GEARBOX, "contributors", "1", None,
+                       "missing column 'nominal'"),
+    "unknown column": (_rename("contributors", "mean_shift", "meanshift"), GEARBOX, "contributors", "1",
+                       "meanshift", "did you mean 'mean_shift'?"),
+    "text in a number cell": (_set("contributors", 3, "nominal", "0.5 mm"), GEARBOX, "contributors", "3",
+                              "nominal", "must be a number (got text '0.5 mm')"),
+    "text in a cost parameter of a process": (_set("processes", 4, "b", "cheap"), GEAR_HUB, "processes", "4",
+                                              "b", "must be a number"),
+    "unknown contributor in a chain": (_rename("requirements", "chain.spacer", "chain.spacr"), GEARBOX,
+                                       "requirements", "2", "chain.spacr",
+                                       "unknown contributor 'spacr' (did you mean 'spacer'?)"),
+    "unknown contributor of a process": (_set("processes", 3, "contributor", "grove_position"), GEAR_HUB,
+                                         "processes", "3", "contributor", "unknown contributor 'grove_position'"),
+    "unknown contributor of a table point": (_set("tables", 2, "contributor", "circlipp"), GEAR_HUB, "tables",
+                                             "2", "contributor", "unknown contributor 'circlipp'"),
+    "negative table point": (_set("tables", 3, "tolerance", -0.03), GEAR_HUB, "tables", "3", "tolerance",
+                             "must be > 0"),
+    "unknown model in settings": (_set("settings", 5, "value", "worst-case, rss, wc"), GEARBOX, "settings", "5",
+                                  "value", "must be one of worst-case, rss, mean-shift (got 'wc')"),
+    "a name twice": (_set("contributors", 4, "name", "gasket"), GEARBOX, "contributors", "4", "name",
+                     "'gasket' is already used by row 3"),
+    "a process twice": (_set("processes", 3, "process", "turning"), GEAR_HUB, "processes", "3", "process",
+                        "'turning' of 'groove_position' is already used by row 2"),
+    "limits as one column": (_rename("contributors", "tightest", "limits"), GEARBOX, "contributors", "1", "limits",
+                             "limits are the two columns tightest and loosest"),
+    "no title row": (lambda wb: wb["settings"].delete_rows(2), GEARBOX, None, None, None,
+                     "sheet settings, setting title: missing (a title for the case)"),
+    "one limit only": (_set("contributors", 2, "loosest", None), GEARBOX, "contributors", "2", "loosest",
+                       "give both tightest and loosest"),
+}
+
+
+@pytest.mark.parametrize("name", list(BAD))
+def test_a_bad_workbook_is_one_line_naming_sheet_row_and_column_and_nothing_is_written(name, tmp_path):
+    edit, source, sheet, row, column, fragment = BAD[name]
+    book = _bad_workbook(tmp_path, edit, source)
+    out = tmp_path / "out.toml"
+    result = run("convert", book, out)
+    assert result.exit_code == 2
+    line = one_line_error(result)
+    assert line.startswith(f"error: {book}: ")
+    assert fragment in line
+    if sheet is not None:
+        found = CELL.search(line)
+        assert found, line
+        assert found.group(1) == sheet and found.group(2) == row and found.group(3) == column
+    assert not out.exists()
+    assert not list(tmp_path.glob(".out.toml.*"))  # no temporary left behind
+
+
+SAME_MISTAKE = [
+    # (TOML text replaced, by, sheet edit, place in the workbook)
+    ("b = 0.002 }", "b = -0.002 }", _set("contributors", 7, "b", -0.002), ("contributors", "7", "b")),
+    ("mean_shift = 0.2", 'mean_shift = "0.2"', _set("contributors", 2, "mean_shift", "0.2"),
+     ("contributors", "2", "mean_shift")),
+    ("count = 2", "count = 2.5", _set("contributors", 4, "count", 2.5), ("contributors", "4", "count")),
+    ("upper = 0.35", "upper = 0.01", _set("requirements", 2, "upper", 0.01), ("requirements", "2", "upper")),
+    ('distribution = "uniform"', 'distribution = "uniformm"', _set("contributors", 3, "distribution", "uniformm"),
+     ("contributors", "3", "distribution")),
+    ("spacer = -1", "spacer = 0", _set("requirements", 2, "chain.spacer", 0), ("requirements", "2", "chain.spacer")),
+]
+
+
+@pytest.mark.parametrize("old, new, edit, place", SAME_MISTAKE, ids=[m[1] for m in SAME_MISTAKE])
+def test_the_workbook_gets_the_problem_text_the_case_file_gets(old, new, edit, place, tmp_path):
+    text = GEARBOX.read_text(encoding="utf-8")
+    assert old in text
+    with pytest.raises(CaseError) as in_toml:
+        loads_case(text.replace(old, new, 1))
+    book = _bad_workbook(tmp_path, edit)
+    with pytest.raises(CaseError) as in_book:
+        load_workbook_case(book)
+    assert in_book.value.problem == in_toml.value.problem
+    assert CELL.search(in_book.value.field).groups() == place
+
+
+def test_a_bad_case_file_writes_no_workbook(tmp_path):
+    case = tmp_path / "bad.toml"
+    case.write_text(GEARBOX.read_text(encoding="utf-8").replace("nominal = 61.20", "nominal = 'x'"), encoding="utf-8")
+    out = tmp_path / "out.xlsx"
+    result = run("convert", case, out)
+    assert result.exit_code == 2 and "contributor[1] (housing_depth).nominal" in one_line_error(result)
+    assert not out.exists()
+
+
+def test_convert_never_overwrites_its_input(tmp_path):
+    book = tmp_path / "case.xlsx"
+    write_case_workbook(load_case(GEARBOX), book)
+    before = book.read_bytes()
+    result = run("convert", book, book)
+    assert result.exit_code == 2 and "refusing to overwrite" in one_line_error(result)
+    assert book.read_bytes() == before
+
+
+@pytest.mark.parametrize("target", ["out.csv", "out"])
+def test_convert_names_the_kinds_it_knows(target, tmp_path):
+    result = run("convert", GEARBOX, tmp_path / target)
+    assert result.exit_code == 2 and ".toml case file or an .xlsx workbook" in one_line_error(result)
+
+
+def test_a_file_that_is_not_a_workbook_is_one_line(tmp_path):
+    fake = tmp_path / "fake.xlsx"
+    fake.write_text("title = 'not a workbook'\n", encoding="utf-8")
+    result = run("convert", fake, tmp_path / "out.toml")
+    assert result.exit_code == 2 and "not an .xlsx workbook" in one_line_error(result)
+
+
+# --------------------------------------------------------------------------- --xlsx outputs
+
+
+def _numeric(frame, column):
+    return pd.api.types.is_numeric_dtype(frame[column])
+
+
+def test_allocate_xlsx_holds_numbers_with_units_in_the_headers(tmp_path):
+    book = tmp_path / "allocation.xlsx"
+    result = run("allocate", GEARBOX, "--model", "worst-case", "--model", "rss", "--xlsx", book)
+    assert result.exit_code == 0, result.output
+    sheets = pd.read_excel(book, sheet_name=None)
+    assert list(sheets) == ["summary", "tolerances", "requirements"]
+    tolerances = sheets["tolerances"]
+    for column in ("current [mm]", "allocated [mm]", "tightest [mm]", "loosest [mm]",
+                   "unit_cost_current [EUR]", "unit_cost_allocated [EUR]", "count"):
+        assert _numeric(tolerances, column), column
+    assert len(tolerances) == 2 * len(load_case(GEARBOX).contributors)
+    requirements = sheets["requirements"]
+    for column in ("sigma [mm]", "fallout_ppm [ppm]", "shadow_upper [EUR/mm]"):
+        assert _numeric(requirements, column), column
+    summary = sheets["summary"].set_index("model")
+    assert _numeric(sheets["summary"], "total_cost [EUR]")
+    # the sheet agrees with the JSON of the same command
+    import json
+
+    doc = json.loads(run("allocate", GEARBOX, "--model", "rss", "--json").stdout)["results"][0]
+    assert summary.loc["rss", "total_cost [EUR]"] == doc["total_cost"]
+    rss = tolerances[tolerances["model"] == "rss"].set_index("contributor")["allocated [mm]"]
+    assert rss.to_dict() == doc["tolerances"]
+
+
+def test_frontier_xlsx_has_the_swept_value_in_its_units(tmp_path):
+    book = tmp_path / "frontier.xlsx"
+    result = run("frontier", GEARBOX, "--model", "worst-case", "--points", "3", "--xlsx", book, "--json")
+    assert result.exit_code == 0, result.output
+    frame = pd.read_excel(book, sheet_name="frontier")
+    assert list(frame.columns[:3]) == ["upper [mm]", "model", "total_cost [EUR]"]
+    assert _numeric(frame, "upper [mm]") and _numeric(frame, "total_cost [EUR]")
+    import json
+
+    points = json.loads(result.stdout)["points"]
+    assert list(frame["upper [mm]"]) == [p["value"] for p in points]
+
+
+def test_verify_xlsx_keeps_counts_whole_and_the_seed_exact(tmp_path):
+    book = tmp_path / "verify.xlsx"
+    result = run("verify", GEARBOX, "--samples", "20000", "--seed", "7", "--xlsx", book, "--json")
+    assert result.exit_code == 0, result.output
+    import json
+
+    doc = json.loads(result.stdout)
+    sheets = pd.read_excel(book, sheet_name=None)
+    assert list(sheets) == ["verification", "tolerances", "run"]
+    check = sheets["verification"].iloc[0]
+    assert pd.api.types.is_integer_dtype(sheets["verification"]["samples"])
+    assert check["samples"] == doc["requirements"][0]["samples"] == 20000
+    assert check["fallout_ppm [ppm]"] == doc["requirements"][0]["fallout_ppm"]
+    assert "lower [mm]" in sheets["verification"].columns
+    assert sheets["run"].iloc[0]["seed"] == 7
+    assert list(sheets["tolerances"].columns) == ["contributor", "tolerance [mm]"]
+
+
+def test_a_seed_beyond_double_precision_is_written_as_exact_text(tmp_path):
+    seed = 2**63 - 25
+    write_workbook(tmp_path / "big.xlsx", {"run": pd.DataFrame({"seed": [seed], "x": [0.1]})})
+    back = openpyxl.load_workbook(tmp_path / "big.xlsx")["run"]
+    assert back["A2"].value == str(seed) and back["B2"].value == 0.1
+
+
+def test_xlsx_problems_are_found_before_any_work(tmp_path):
+    result = run("allocate", GEARBOX, "--xlsx", tmp_path / "no" / "such" / "a.xlsx")
+    assert result.exit_code == 2 and "does not exist" in one_line_error(result)
+    result = run("verify", GEARBOX, "--xlsx", tmp_path / "a.csv")
+    assert result.exit_code == 2 and "writes an .xlsx workbook" in one_line_error(result)
+    assert result.stdout == ""
+
+
+def test_write_workbook_refuses_bad_sheet_names_and_inputs(tmp_path):
+    frame = pd.DataFrame({"x": [1.0]})
+    with pytest.raises(UsageError, match="must not contain"):
+        write_workbook(tmp_path / "a.xlsx", {"a/b": frame})
+    with pytest.raises(UsageError, match="1 to 31 characters"):
+        write_workbook(tmp_path / "a.xlsx", {"x" * 32: frame})
+    keep = tmp_path / "keep.xlsx"
+    keep.write_bytes(b"input")
+    with pytest.raises(UsageError, match="refusing to overwrite"):
+        write_workbook(keep, {"s": frame}, protect=[keep])
+    assert keep.read_bytes() == b"input"
+
+
+# --------------------------------------------------------------------------- without openpyxl
+
+
+@pytest.fixture
+def no_openpyxl(monkeypatch):
+    """As if the extra were not installed: ``import openpyxl`` raises ImportError."""
+    monkeypatch.setitem(sys.modules, "openpyxl", None)
+
+
+HINT = 'pip install "allocator[sheets]"'
+
+
+def test_without_openpyxl_convert_says_what_to_install_and_writes_nothing(no_openpyxl, tmp_path):
+    out = tmp_path / "case.xlsx"
+    result = run("convert", GEARBOX, out)
+    assert result.exit_code == 2 and HINT in one_line_error(result)
+    assert not out.exists()
+
+
+def test_without_openpyxl_reading_a_workbook_says_what_to_install(no_openpyxl, tmp_path):
+    result = run("analyze", tmp_path / "case.xlsx")
+    assert result.exit_code == 2 and HINT in one_line_error(result)
+
+
+@pytest.mark.parametrize("command", ["allocate", "frontier", "verify"])
+def test_without_openpyxl_xlsx_fails_before_the_work(no_openpyxl, command, tmp_path):
+    out = tmp_path / "out.xlsx"
+    result = run(command, GEARBOX, "--xlsx", out)
+    assert result.exit_code == 2 and HINT in one_line_error(result)
+    assert result.stdout == "" and not out.exists()
+
+
+def test_without_openpyxl_the_case_file_commands_still_work(no_openpyxl):
+    result = run("analyze", GEARBOX, "--json")
+    assert result.exit_code == 0, result.output
+
+
+def test_case_sheets_needs_no_openpyxl(no_openpyxl):
+    sheets = case_sheets(load_case(GEARBOX))
+    assert list(sheets) == list(SHEETS)
+
+
+def test_every_double_comes_back_exactly(tmp_path):
+    """openpyxl alone writes 16 significant digits; some doubles need 17."""
+    rng = np.random.default_rng(5)
+    extremes = [0.1, 1 / 3, 5e-324, 1.7976931348623157e308]
+    values = np.concatenate([rng.uniform(0, 1, 200), rng.lognormal(0, 20, 200), extremes])
+    write_workbook(tmp_path / "x.xlsx", {"numpy": pd.DataFrame({"x": values}),
+                                         "python": pd.DataFrame({"x": [float(v) for v in values]}, dtype=object)})
+    for sheet in ("numpy", "python"):
+        cells = openpyxl.load_workbook(tmp_path / "x.xlsx")[sheet].iter_rows(min_row=2, values_only=True)
+        back = [row[0] for row in cells]
+        assert back == [float(v) for v in values]
+
+
+def test_a_workbook_that_unpacks_too_large_is_refused_before_it_is_parsed(tmp_path, monkeypatch):
+    from allocator import sheets
+
+    book = tmp_path / "case.xlsx"
+    write_case_workbook(load_case(GEARBOX), book)
+    monkeypatch.setattr(sheets, "MAX_UNPACKED_BYTES", 1000)
+    parsed = []
+    monkeypatch.setattr(openpyxl, "load_workbook", lambda *a, **k: parsed.append(a))
+    result = run("convert", book, tmp_path / "out.toml")
+    assert result.exit_code == 2 and "refusing to read it" in one_line_error(result)
+    assert parsed == [] and not (tmp_path / "out.toml").exists()
