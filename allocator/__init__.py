@@ -29,6 +29,8 @@ _LAZY = {
     "verify": ("allocator.simulate", "verify"),
     "fallout_economics": ("allocator.economics", "fallout_economics"),
     "supplier_sheet": ("allocator.supplier", "supplier_sheet"),
+    "fit_costs": ("allocator.quotes", "fit_costs"),
+    "capability": ("allocator.measured", "capability"),
     "build_report": ("allocator.report", "build_report"),
     "write_report": ("allocator.report", "write_report"),
     # the case and the result types (see docs/results.md)
@@ -44,6 +46,8 @@ _LAZY = {
     "FalloutOptimum": ("allocator.economics", "FalloutOptimum"),
     "SupplierSheet": ("allocator.supplier", "SupplierSheet"),
     "Loosening": ("allocator.supplier", "Loosening"),
+    "CostFits": ("allocator.quotes", "CostFits"),
+    "CapabilityStudy": ("allocator.measured", "CapabilityStudy"),
     "Report": ("allocator.report", "Report"),
     # errors (CaseError and UsageError are ValueError subclasses)
     "CaseError": ("allocator.errors", "CaseError"),

@@ -45,6 +45,8 @@ Loosening (sheet row)     optimal, infeasible, failed (the re-solve's);     --
 Verification              pass, fail                                        pass
 RequirementCheck          pass, fail                                        --
 Report                    ok, infeasible, failed, verification failed       ok
+CostFits                  optimal, failed                                   optimal
+CapabilityStudy           ok                                                ok
 ========================  ================================================  ================
 
 Words a user reads on the command line, in ``--json`` output or in the HTML report
@@ -57,7 +59,7 @@ from __future__ import annotations
 __all__ = [
     "OPTIMAL", "INFEASIBLE", "FAILED", "PARTIAL", "BOUNDARY", "PASS", "FAIL",
     "FIXED", "AT_LOOSEST", "OK", "VERIFICATION_FAILED",
-    "SOLVE", "SWEEP", "FALLOUT_OPTIMUM", "VERDICT", "LOOSENING", "REPORT", "ALL",
+    "SOLVE", "SWEEP", "FALLOUT_OPTIMUM", "VERDICT", "LOOSENING", "REPORT", "FIT", "STUDY", "ALL",
 ]
 
 # outcome of a solve
@@ -91,5 +93,9 @@ LOOSENING = (*SOLVE, FIXED, AT_LOOSEST)
 """A supplier-sheet row."""
 REPORT = (OK, INFEASIBLE, FAILED, VERIFICATION_FAILED)
 """The design-review report."""
+FIT = (OPTIMAL, FAILED)
+"""CostFits (cost curves fitted to quotes)."""
+STUDY = (OK,)
+"""CapabilityStudy (capability from measured parts)."""
 ALL = tuple(dict.fromkeys((*SWEEP, BOUNDARY, *VERDICT, FIXED, AT_LOOSEST, OK, VERIFICATION_FAILED)))
 """Every status word, once."""

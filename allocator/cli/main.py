@@ -16,6 +16,8 @@ COMMANDS = {
     "frontier": ("allocator.cli.frontier", "frontier"),
     "verify": ("allocator.cli.verify", "verify"),
     "report": ("allocator.cli.report", "report"),
+    "fit-costs": ("allocator.cli.fit_costs", "fit_costs"),
+    "capability": ("allocator.cli.capability", "capability"),
 }
 
 # the one-line summaries `allocator --help` lists (whole, never cut off with "..."; listing
@@ -27,6 +29,8 @@ SUMMARIES = {
     "frontier": "Least cost against a limit or fallout target.",
     "verify": "Check tolerances by Monte Carlo simulation.",
     "report": "Write an HTML report for a design review.",
+    "fit-costs": "Fit cost curves to supplier quotes.",
+    "capability": "Cp, Cpk and mean shift from measured parts.",
 }
 
 
