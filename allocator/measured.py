@@ -325,6 +325,7 @@ class MeasuredCapability:
 
     @property
     def has_spread(self) -> bool:
+        """True when the values are not all the same."""
         return self.std > 0
 
     def written(self, conservative: bool = False) -> tuple[float, float]:
@@ -376,10 +377,12 @@ class CapabilityStudy:
 
     @property
     def success(self) -> bool:
+        """True when ``status`` is 'ok' (:mod:`allocator.status`)."""
         return self.status == _status.OK
 
     @property
     def warnings(self) -> tuple[str, ...]:
+        """Every contributor's warnings, each prefixed by its name."""
         return tuple(f"{c.name}: {w}" for c in self.contributors for w in c.warnings)
 
     def __getitem__(self, name: str) -> MeasuredCapability:

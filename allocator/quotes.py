@@ -68,6 +68,8 @@ FAR_OFF = 0.10  # a quote this far from the fit (relative) is worth a question t
 FAR_OUTSIDE = 1.5  # a tolerance beyond the quoted range by this factor is "far" outside
 # relative residuals below this are round-off, not information: the rms in AICc is floored
 RMS_FLOOR = 1e-9
+# a curve whose cost falls by less than this (relative) over the quoted range is flat
+FLAT = 1e-6
 UNNAMED_SUPPLIER = "unnamed"  # process name for a group without a supplier beside named ones
 
 # start grids of the parameter that is not linear, by parameter name (t: the quoted tolerances)
@@ -114,6 +116,7 @@ class FamilyFit:
 
     @property
     def n_parameters(self) -> int:
+        """Number of fitted curve parameters."""
         return len(self.params)
 
     @property
@@ -334,30 +337,37 @@ class CostFit:
 
     @property
     def curve(self) -> str:
+        """The chosen (or forced) family."""
         return self.fit.curve
 
     @property
     def points(self) -> int:
+        """Number of quotes in the group."""
         return len(self.tolerances)
 
     @property
     def params(self) -> dict:
+        """The chosen family's parameters, by name."""
         return dict(self.fit.params)
 
     @property
     def rms_relative(self) -> float:
+        """Root mean square relative residual of the chosen fit [-]."""
         return self.fit.rms_relative
 
     @property
     def max_relative(self) -> float:
+        """Largest absolute relative residual of the chosen fit [-]."""
         return self.fit.max_relative
 
     @property
     def quoted_range(self) -> tuple[float, float]:
+        """Tightest and loosest quoted tolerance [length]."""
         return (min(self.tolerances), max(self.tolerances))
 
     @property
     def cost_curve(self) -> CostCurve:
+        """The chosen fit as a :class:`~allocator.costs.CostCurve`."""
         return self.fit.cost_curve
 
     def to_dict(self) -> dict:
@@ -393,7 +403,9 @@ def _warnings(group: CostFit, fam: CurveFamily, case_contributor) -> tuple[str, 
     with np.errstate(all="ignore"):
         slope = np.asarray(fam.derivative(p_all, grid), dtype=float)
         bend = np.asarray(fam.curvature(p_all, grid), dtype=float)
-    if not np.all(slope < 0):
+    with np.errstate(all="ignore"):
+        ends = np.asarray(fam.value(p_all, np.array([lo, hi])), dtype=float)
+    if not np.all(slope < 0) or not ends[0] - ends[1] > FLAT * abs(ends[1]):
         out.append(f"the fitted {group.curve} curve does not fall over the quoted range "
                    "(the quotes do not get cheaper as the tolerance loosens)")
     elif not np.all(bend > 0):
@@ -463,6 +475,7 @@ class CostFits:
 
     @property
     def success(self) -> bool:
+        """True when ``status`` is 'optimal' (:mod:`allocator.status`)."""
         return self.status == _status.OPTIMAL
 
     @property
