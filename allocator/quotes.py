@@ -12,7 +12,7 @@ formula family of the cost registry (:mod:`allocator.costs.registry`) to each gr
   strict bound is held as ``≥ 0`` in the fit and a fit that ends on it is reported).
 - **Starts**: every formula family is ``a + b·φ(t)``, linear in ``a`` and ``b``; for each
   value of the remaining parameter (``k`` or ``c``) on a grid, bounded linear least
-  squares (:func:`scipy.optimize.lsq_linear`) gives the best ``a, b`` exactly. The best grid
+  squares (:func:`nonnegative_pair`, closed form) gives the best ``a, b`` exactly. The best grid
   point is refined by a bounded scalar search of this profile, then every parameter is
   polished together by :func:`scipy.optimize.least_squares` with bounds; the better of
   the two is kept.
@@ -58,6 +58,7 @@ __all__ = [
     "CostFits",
     "fit_curve",
     "fit_costs",
+    "nonnegative_pair",
 ]
 
 QUOTE_COLUMNS = ("contributor", "supplier", "tolerance", "cost")
@@ -168,6 +169,42 @@ def _model(fam, names, extra, theta, t):
         return np.asarray(fam.value(p, t), dtype=float)
 
 
+def nonnegative_pair(u: np.ndarray, w: np.ndarray) -> tuple[float, float]:
+    """``(a, b) ≥ 0`` minimising ``‖a·u + b·w − 1‖²``: bounded linear least squares in closed form.
+
+    The unconstrained least-squares solution (SVD, columns scaled to unit length) when both
+    parts are ≥ 0; otherwise the better of the two one-column solutions (a convex quadratic
+    in two variables whose free minimum is infeasible has its minimum on an edge).
+
+    Examples
+    --------
+    >>> u, w = np.array([1.0, 1.0, 1.0]), np.array([1.0, 2.0, 3.0])
+    >>> a, b = nonnegative_pair(u, w * 0.5)
+    >>> round(a, 12), round(b, 12)
+    (1.0, 0.0)
+    """
+    ones = np.ones(u.size)
+    scale = np.array([np.linalg.norm(u), np.linalg.norm(w)])
+    scale[scale == 0] = 1.0
+    matrix = np.column_stack([u, w]) / scale
+    candidates = []
+    try:
+        x = np.linalg.lstsq(matrix, ones, rcond=None)[0] / scale
+        if np.all(x >= 0) and np.all(np.isfinite(x)):
+            candidates.append((float(x[0]), float(x[1])))
+    except np.linalg.LinAlgError:
+        pass
+    uu, ww = float(u @ u), float(w @ w)
+    candidates.append((max(float(u.sum()) / uu, 0.0) if uu > 0 else 0.0, 0.0))
+    candidates.append((0.0, max(float(w.sum()) / ww, 0.0) if ww > 0 else 0.0))
+
+    def rss(x):
+        r = x[0] * u + x[1] * w - 1.0
+        return float(r @ r)
+
+    return min(candidates, key=rss)
+
+
 def fit_curve(tolerance, cost, curve: str) -> FamilyFit:
     """Fit one cost-curve family to quotes by least squares on relative residuals.
 
@@ -223,9 +260,7 @@ def fit_curve(tolerance, cost, curve: str) -> FamilyFit:
         basis_theta = theta.copy()
         basis_theta[ib] = 1.0
         basis = _model(fam, names, extra, basis_theta, t)
-        matrix = np.column_stack([1.0 / c, np.nan_to_num(basis, posinf=1e300) / c])
-        solved = optimize.lsq_linear(matrix, np.ones(n), bounds=([lower[ia], 0.0], [np.inf, np.inf]))
-        theta[ia], theta[ib] = solved.x
+        theta[ia], theta[ib] = nonnegative_pair(1.0 / c, np.nan_to_num(basis, posinf=1e300) / c)
         r = residuals(theta)
         rss = float(r @ r) if np.all(np.isfinite(r)) else math.inf
         return rss, theta

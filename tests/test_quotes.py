@@ -286,3 +286,24 @@ def test_library_result_renders_as_a_table():
     assert list(frame.index.names) == ["contributor", "supplier"]
     assert len(frame) == len(fits.fits) == 5
     assert fits.success and "<table" in fits._repr_html_()
+
+
+@pytest.mark.parametrize("seed", range(20))
+def test_the_closed_form_bounded_pair_matches_scipy_lsq_linear(seed):
+    from scipy import optimize
+
+    from allocator.quotes import nonnegative_pair
+
+    rng = np.random.default_rng(seed)
+    n = int(rng.integers(2, 7))
+    u = rng.uniform(0.1, 2.0, n)
+    w = rng.normal(0.0, 1.0, n) * 10.0 ** rng.uniform(-3, 3)
+    ours = np.array(nonnegative_pair(u, w))
+    ref = optimize.lsq_linear(np.column_stack([u, w]), np.ones(n), bounds=(0.0, np.inf), tol=1e-14).x
+
+    def rss(x):
+        r = x[0] * u + x[1] * w - 1.0
+        return float(r @ r)
+
+    assert np.all(ours >= 0)
+    assert rss(ours) <= rss(ref) * (1 + 1e-9) + 1e-14
