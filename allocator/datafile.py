@@ -21,7 +21,9 @@ from pathlib import Path
 
 from .errors import CaseError
 
-__all__ = ["DataTable", "read_csv", "from_columns", "where", "number"]
+__all__ = ["DataTable", "read_csv", "from_columns", "where", "number", "MAX_ROWS"]
+
+MAX_ROWS = 100_000  # data rows in one file (as many as a case's cost table may hold)
 
 
 def where(row: int | None = None, column: str | None = None) -> str | None:
@@ -85,8 +87,8 @@ def read_csv(path: str | os.PathLike) -> DataTable:
     Raises
     ------
     CaseError
-        Missing, unreadable, too large, not UTF-8, not CSV, no header, or a row with more
-        cells than the header.
+        Missing, unreadable, too large (bytes or more than :data:`MAX_ROWS` rows), not
+        UTF-8, not CSV, no header, or a row with more cells than the header.
     """
     from .case import MAX_FILE_BYTES
 
@@ -136,6 +138,8 @@ def read_csv(path: str | os.PathLike) -> DataTable:
                 if extra is not None:
                     fail(f"{len(cells)} cells but the header has {len(header)} columns", row)
                 cells = cells[: len(header)]
+            if len(rows) >= MAX_ROWS:
+                fail(f"more than {MAX_ROWS} data rows; refusing to read on", row)
             rows.append((row, cells + ("",) * (len(header) - len(cells))))
     except csv.Error as err:
         fail(f"not valid CSV ({err})", reader.line_num)

@@ -665,12 +665,22 @@ def _cell_number(table: DataTable, text: str, row: int, column: str, what: str) 
     return value
 
 
-def _limits(quoted: tuple[float, float], contributor) -> tuple[float, float]:
-    lo, hi = quoted
+def _written_limits(groups, contributor) -> list[tuple[float, float]]:
+    """The ``limits`` written for each group of one contributor: the quoted ranges.
+
+    When no range holds the contributor's current tolerance (a case refuses a tolerance
+    outside every range), the range nearest to it (in ratio) is widened to hold it.
+    """
+    ranges = [(min(t), max(t)) for t in groups]
     if contributor is None:
-        return lo, hi
+        return ranges
     t = contributor.tolerance
-    return min(lo, t), max(hi, t)
+    if any(lo <= t <= hi for lo, hi in ranges):
+        return ranges
+    gap = [max(lo / t, t / hi) for lo, hi in ranges]
+    j = int(np.argmin(gap))
+    ranges[j] = (min(ranges[j][0], t), max(ranges[j][1], t))
+    return ranges
 
 
 def fit_costs(
@@ -729,6 +739,12 @@ def fit_costs(
                 table.fail(f"{contributor!r} is not a contributor of the case"
                            f"{did_you_mean(contributor, case.names)}", rows[0][0], "contributor")
     names = (curve,) if curve else FITTED_CURVES
+    limits = {}
+    for name in dict.fromkeys(contributor for contributor, _ in groups):
+        keys = [key for key in groups if key[0] == name]
+        owner = case.contributor(name) if case is not None else None
+        quoted = [[x[1] for x in groups[key]] for key in keys]
+        limits.update(zip(keys, _written_limits(quoted, owner)))
     fits = []
     for (contributor, supplier), rows in groups.items():
         t = np.array([x[1] for x in rows])
@@ -736,12 +752,11 @@ def fit_costs(
         families = tuple(fit_curve(t, price, name) for name in names)
         chosen = families[0] if curve else choose(families)
         owner = case.contributor(contributor) if case is not None else None
-        quoted = (float(t.min()), float(t.max()))
         group = CostFit(
             contributor=contributor, supplier=supplier,
             tolerances=tuple(float(x) for x in t), costs=tuple(float(x) for x in price),
             rows=tuple(x[0] for x in rows), fit=chosen, families=families,
-            limits=_limits(quoted, owner),
+            limits=tuple(float(x) for x in limits[(contributor, supplier)]),
         )
         fits.append(replace(group, warnings=_warnings(group, FAMILIES[chosen.curve], owner)))
     failed = [f for f in fits if not f.fit.success]

@@ -296,3 +296,20 @@ def test_library_result_renders_as_a_table():
     frame = study.to_frame()
     assert list(frame.index) == ["housing_depth", "spacer", "gasket", "cover_spigot"]
     assert study.success and "<table" in study._repr_html_()
+
+
+def test_data_files_are_read_with_limits_and_numbered_rows(tmp_path, monkeypatch):
+    from allocator import datafile
+
+    path = tmp_path / "m.csv"
+    path.write_text("# invented\nspacer\n20.0\n\n20.01\n20.02\n")
+    table = datafile.read_csv(path)
+    assert table.header_row == 2 and [row for row, _ in table.rows] == [3, 5, 6]
+    monkeypatch.setattr(datafile, "MAX_ROWS", 2)
+    with pytest.raises(CaseError, match=r"row 6: more than 2 data rows"):
+        datafile.read_csv(path)
+    path.write_bytes(b"spacer\n20.0\n\xff\n")
+    with pytest.raises(CaseError, match=r"row 3: not UTF-8 text"):
+        datafile.read_csv(path)
+    with pytest.raises(CaseError, match="file not found"):
+        datafile.read_csv(tmp_path / "missing.csv")

@@ -211,6 +211,8 @@ BAD = {
                            "row 2, column tolerance: 'spacer' from 'A' has quotes at one tolerance only"),
     "empty contributor": (HEADER + ",,0.01,2\n", "row 2, column contributor: empty"),
     "empty file": ("# only a comment\n", "is empty"),
+    "extra cell": (HEADER + "spacer,,0.01,2,9\n", "row 2: 5 cells but the header has 4 columns"),
+    "column twice": ("contributor,cost,tolerance,cost\n", "row 1, column cost: column 'cost' appears twice"),
 }
 
 
@@ -307,3 +309,20 @@ def test_the_closed_form_bounded_pair_matches_scipy_lsq_linear(seed):
 
     assert np.all(ours >= 0)
     assert rss(ours) <= rss(ref) * (1 + 1e-9) + 1e-14
+
+
+def test_several_suppliers_widen_only_the_nearest_range_to_hold_the_tolerance():
+    case = load_case(GEARBOX)  # spacer: tolerance 0.015
+    t_a, t_b = np.array([0.03, 0.05, 0.08]), np.array([0.002, 0.004, 0.008])
+    curve = CostCurve("reciprocal", a=0.4, b=0.002)
+    quotes = {"contributor": ["spacer"] * 6, "supplier": ["A"] * 3 + ["B"] * 3,
+              "tolerance": np.r_[t_a, t_b], "cost": curve.value(np.r_[t_a, t_b])}
+    fits = fit_costs(quotes, case=case)
+    # 0.015 / 0.008 < 0.03 / 0.015: B's range is the nearer one
+    assert fits[("spacer", "A")].limits == (0.03, 0.08)
+    assert fits[("spacer", "B")].limits == (0.002, 0.015)
+    # one range already holding the tolerance: nothing widens
+    quotes["tolerance"] = np.r_[t_a, [0.002, 0.01, 0.02]]
+    fits = fit_costs(quotes, case=case)
+    assert fits[("spacer", "B")].limits == (0.002, 0.02) and fits[("spacer", "A")].limits == (0.03, 0.08)
+    assert allocator.allocate(fits.apply(), model="rss").status == "optimal"
