@@ -313,3 +313,18 @@ def test_data_files_are_read_with_limits_and_numbered_rows(tmp_path, monkeypatch
         datafile.read_csv(path)
     with pytest.raises(CaseError, match="file not found"):
         datafile.read_csv(tmp_path / "missing.csv")
+
+
+def test_a_contributor_made_by_processes_gets_the_cp_on_the_process_making_its_tolerance():
+    case = load_case(ROOT / "cases" / "pump_shim.toml")  # body_depth ±0.03: turning makes it cheapest
+    x = 40.0 + 0.002 + 0.006 * np.random.default_rng(1).standard_normal(40)
+    written = capability(case, {"body_depth": x}).apply()
+    body = written.contributor("body_depth")
+    cp = {p.name: p.cp for p in body.processes}
+    assert cp["turning"] == pytest.approx(0.03 / (3 * x.std(ddof=1)), rel=1e-12)
+    assert cp["grinding"] == 1.33 and cp["fine boring"] is None  # the others keep theirs
+    # the analysis of the written case sees the measured σ: rss of the contract's σ's
+    analysis = allocator.analyze(written).requirements[0]
+    others = {"impeller_hub": 0.02 / 3, "shim": 0.01 / 3, "wear_plate": 0.03 / math.sqrt(6)}
+    expected = math.sqrt(x.std(ddof=1) ** 2 + sum(s**2 for s in others.values()))
+    assert analysis.sigma == pytest.approx(expected, rel=1e-12)

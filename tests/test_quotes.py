@@ -326,3 +326,21 @@ def test_several_suppliers_widen_only_the_nearest_range_to_hold_the_tolerance():
     fits = fit_costs(quotes, case=case)
     assert fits[("spacer", "B")].limits == (0.002, 0.02) and fits[("spacer", "A")].limits == (0.03, 0.08)
     assert allocator.allocate(fits.apply(), model="rss").status == "optimal"
+
+
+def test_a_fit_that_fails_exits_1_and_writes_nothing(tmp_path, monkeypatch):
+    import allocator.quotes as quotes
+
+    def broken(tolerance, cost, curve):
+        n = len(tolerance)
+        return quotes.FamilyFit(curve=curve, params={"a": math.nan, "b": math.nan}, rms_relative=math.inf,
+                                max_relative=math.inf, residuals=(math.nan,) * n, criterion=math.inf,
+                                success=False, message="no convergence")
+
+    monkeypatch.setattr(quotes, "fit_curve", broken)
+    out = tmp_path / "out.toml"
+    result = CliRunner().invoke(cli, ["fit-costs", str(QUOTES), "--curve", "reciprocal",
+                                      "--write", str(GEARBOX), str(out)])
+    assert result.exit_code == 1
+    assert result.stderr.startswith("error: no usable fit for housing_depth")
+    assert not out.exists()
