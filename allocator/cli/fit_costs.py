@@ -4,14 +4,13 @@ from __future__ import annotations
 
 import click
 
+from ..quotes import FITTED_CURVES  # numpy and the cost registry; scipy only when fitting
 from .common import FilePath, echo_json, exit_failed, fmt, handle_errors, json_option, text_table
-
-CURVE_CHOICES = ("reciprocal", "reciprocal-power", "exponential")  # allocator.quotes.FITTED_CURVES
 
 
 @click.command("fit-costs")
 @click.argument("quotes_file", metavar="QUOTES.csv", type=FilePath("a CSV file"))
-@click.option("--curve", type=click.Choice(CURVE_CHOICES),
+@click.option("--curve", type=click.Choice(FITTED_CURVES),
               help="Fit this family for every group; default: chosen per group (AICc).")
 @json_option
 @click.option("--plot", "plot_file", type=FilePath(), metavar="FILE",
