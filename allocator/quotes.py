@@ -40,9 +40,9 @@ from typing import TYPE_CHECKING, Mapping
 import numpy as np
 
 from . import status as _status
-from .costs import FAMILIES, CostCurve
-from .datafile import DataTable, from_columns, number, read_csv
-from .errors import UsageError, did_you_mean
+from .costs import FAMILIES, CostCurve, check_curve
+from .datafile import DataTable, from_columns, number, read_csv, where
+from .errors import CaseError, UsageError, did_you_mean
 
 if TYPE_CHECKING:
     import pandas as pd
@@ -396,6 +396,15 @@ class CostFit:
         return self.fit.max_relative
 
     @property
+    def falls(self) -> bool:
+        """True when the fitted cost falls over the quoted range by more than :data:`FLAT`."""
+        fam = FAMILIES[self.curve]
+        lo, hi = self.quoted_range
+        with np.errstate(all="ignore"):
+            ends = np.asarray(fam.value(fam.one(self.cost_curve), np.array([lo, hi])), dtype=float)
+        return bool(ends[0] - ends[1] > FLAT * abs(ends[1]))
+
+    @property
     def quoted_range(self) -> tuple[float, float]:
         """Tightest and loosest quoted tolerance [length]."""
         return (min(self.tolerances), max(self.tolerances))
@@ -438,9 +447,7 @@ def _warnings(group: CostFit, fam: CurveFamily, case_contributor) -> tuple[str, 
     with np.errstate(all="ignore"):
         slope = np.asarray(fam.derivative(p_all, grid), dtype=float)
         bend = np.asarray(fam.curvature(p_all, grid), dtype=float)
-    with np.errstate(all="ignore"):
-        ends = np.asarray(fam.value(p_all, np.array([lo, hi])), dtype=float)
-    if not np.all(slope < 0) or not ends[0] - ends[1] > FLAT * abs(ends[1]):
+    if not np.all(slope < 0) or not group.falls:
         out.append(f"the fitted {group.curve} curve does not fall over the quoted range "
                    "(the quotes do not get cheaper as the tolerance loosens)")
     elif not np.all(bend > 0):
@@ -584,6 +591,9 @@ class CostFits:
         ------
         UsageError
             No case, a contributor the case does not have, or a fit that did not succeed.
+        CaseError
+            A fitted parameter on its strict bound (``b = 0``: quotes that never get cheaper),
+            which a case cannot hold; names the quotes file and the group's first row.
         """
         from .model import Process
 
@@ -597,6 +607,15 @@ class CostFits:
                                  f"{did_you_mean(f.contributor, case.names)}")
             if not f.fit.success:
                 raise UsageError(f"apply: the fit of {_label(f)} did not succeed ({f.fit.message})")
+            problem = check_curve(f.cost_curve, f.limits)
+            if problem or not f.falls:  # b on (or next to) its bound: quotes that never get cheaper
+                raise CaseError(
+                    f"the {f.curve} curve fitted to {_label(f)} is flat"
+                    + (f" ({problem})" if problem else "")
+                    + ": its quotes do not get cheaper as the tolerance loosens, so it cannot "
+                    "go into a case (check the quotes, or give the part a table cost)",
+                    file=self.source, field=where(f.rows[0], "cost"),
+                )
             by_name.setdefault(f.contributor, []).append(f)
         contributors = []
         for c in case.contributors:

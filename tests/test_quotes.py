@@ -344,3 +344,18 @@ def test_a_fit_that_fails_exits_1_and_writes_nothing(tmp_path, monkeypatch):
     assert result.exit_code == 1
     assert result.stderr.startswith("error: no usable fit for housing_depth")
     assert not out.exists()
+
+
+@pytest.mark.parametrize("curve", sorted(TRUE))
+def test_quotes_that_never_get_cheaper_cannot_be_written(tmp_path, curve):
+    path = _quotes(tmp_path, HEADER + "spacer,,0.01,1.0\nspacer,,0.02,1.2\nspacer,,0.04,1.5\nspacer,,0.06,1.6\n")
+    fits = fit_costs(path, curve=curve, case=load_case(GEARBOX))
+    assert any("does not fall" in w for w in fits["spacer"].warnings)
+    out = tmp_path / "out.toml"
+    result = CliRunner().invoke(cli, ["fit-costs", str(path), "--curve", curve,
+                                      "--write", str(GEARBOX), str(out)])
+    assert result.exit_code == 2
+    assert result.stderr.startswith(f"error: {path}: row 2, column cost: the {curve} curve fitted to spacer "
+                                    "is flat")
+    assert "do not get cheaper" in result.stderr
+    assert not out.exists()
