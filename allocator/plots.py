@@ -42,6 +42,7 @@ __all__ = [
     "economics_figure",
     "verification_figure",
     "contributions_figure",
+    "quotes_figure",
     "render_frontier_plot",
     "render_economics_plot",
     "plot_frontier",
@@ -429,6 +430,59 @@ def contributions_figure(analysis, allocated_analysis=None, *, allocation_label:
         for side in ("top", "right"):
             ax.spines[side].set_visible(False)
         ax.legend(fontsize="small", loc="lower right", frameon=True)
+    return fig
+
+
+# --------------------------------------------------------------------------- quotes
+
+
+def quotes_figure(fits):
+    """Quotes and fitted cost curves, one panel per contributor, one series per supplier.
+
+    Parameters
+    ----------
+    fits : allocator.quotes.CostFits
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+        Log tolerance axis [length]; quotes as markers, the fitted curve solid over the
+        quoted range and dotted a little beyond it (where it would be extrapolated);
+        suppliers told apart by marker and dash, never by colour alone.
+    """
+    import numpy as np
+    from matplotlib.figure import Figure
+
+    from .costs import cost_value
+
+    names = list(dict.fromkeys(f.contributor for f in fits.fits))
+    case = fits.case
+    currency = case.currency if case is not None else ""
+    fig = Figure(figsize=(7.0, max(2.8, 2.8 * len(names))), layout="constrained")
+    axes = fig.subplots(len(names), 1, squeeze=False)[:, 0]
+    for ax, name in zip(axes, names):
+        groups = [f for f in fits.fits if f.contributor == name]
+        for i, g in enumerate(groups):
+            style = series_style(i)
+            lo, hi = g.quoted_range
+            who = f"{g.supplier}: " if g.supplier else ""
+            inside = np.geomspace(lo, hi, 120)
+            ax.plot(inside, cost_value(g.cost_curve, inside), color=style["color"],
+                    linestyle=style["linestyle"], linewidth=1.4, label=f"{who}{g.curve} fit")
+            for a, b in ((lo / 1.3, lo), (hi, hi * 1.3)):
+                beyond = np.geomspace(a, b, 30)
+                ax.plot(beyond, cost_value(g.cost_curve, beyond), color=style["color"],
+                        linestyle=":", linewidth=1.0)
+            ax.plot(g.tolerances, g.costs, linestyle="none", marker=style["marker"], markersize=6,
+                    color=style["color"], markerfacecolor=style["markerfacecolor"],
+                    markeredgecolor=style["markeredgecolor"], label=f"{who}quotes")
+        log_axis(ax)
+        units = case.contributor_units(name) if case is not None else ""
+        ax.set_title(name, loc="left", fontsize="medium")
+        # units labels are text from the case: never mathtext
+        ax.set_xlabel(f"± tolerance [{units}]" if units else "± tolerance", parse_math=False)
+        ax.set_ylabel(f"unit cost{_money(currency)}", parse_math=False)
+        finish_axes(ax)
     return fig
 
 

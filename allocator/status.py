@@ -52,6 +52,8 @@ Verification              pass, fail                                        pass
 RequirementCheck          pass, fail                                        --
 Report                    ok, infeasible, failed, verification failed       ok
 Study, StudyRow           optimal, infeasible, failed, bad input            optimal
+CostFits                  optimal, failed                                   optimal
+CapabilityStudy           ok                                                ok
 ========================  ================================================  ================
 
 Words a user reads on the command line, in ``--json`` output or in the HTML report
@@ -64,7 +66,8 @@ from __future__ import annotations
 __all__ = [
     "OPTIMAL", "INFEASIBLE", "FAILED", "PARTIAL", "BOUNDARY", "PASS", "FAIL",
     "FIXED", "AT_LOOSEST", "OK", "VERIFICATION_FAILED", "BAD_INPUT",
-    "SOLVE", "SWEEP", "FALLOUT_OPTIMUM", "VERDICT", "LOOSENING", "REPORT", "STUDY", "ALL",
+    "SOLVE", "SWEEP", "FALLOUT_OPTIMUM", "VERDICT", "LOOSENING", "REPORT", "STUDY", "FIT", "CAPABILITY",
+    "ALL",
 ]
 
 # outcome of a solve
@@ -103,5 +106,9 @@ REPORT = (OK, INFEASIBLE, FAILED, VERIFICATION_FAILED)
 """The design-review report."""
 STUDY = (*SOLVE, BAD_INPUT)
 """Study and its rows."""
+FIT = (OPTIMAL, FAILED)
+"""CostFits (cost curves fitted to quotes)."""
+CAPABILITY = (OK,)
+"""CapabilityStudy (capability from measured parts)."""
 ALL = tuple(dict.fromkeys((*SWEEP, BOUNDARY, *VERDICT, FIXED, AT_LOOSEST, OK, VERIFICATION_FAILED, BAD_INPUT)))
 """Every status word, once."""

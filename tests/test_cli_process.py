@@ -40,7 +40,7 @@ def test_readme_demo_runs_in_a_fresh_process(tmp_path):
     assert all(r["status"] == "optimal" for r in results)
 
 
-@pytest.mark.parametrize("command", ["init", "analyze", "allocate", "frontier", "verify", "report", "offer", "study", "convert"])
+@pytest.mark.parametrize("command", ["init", "analyze", "allocate", "frontier", "verify", "report", "offer", "study", "convert", "fit-costs", "capability"])
 def test_every_command_has_help(tmp_path, command):
     done = run(command, "--help", cwd=tmp_path)
     assert done.returncode == 0, done.stderr
@@ -52,6 +52,19 @@ def test_a_study_in_worker_processes_from_a_fresh_process(tmp_path):
     assert done.returncode == 0, done.stderr
     rows = json.loads(done.stdout)["cases"]
     assert [(r["model"], r["status"]) for r in rows] == [("rss", "optimal")]
+
+
+def test_fit_costs_and_capability_write_cases_in_a_fresh_process(tmp_path):
+    fitted, measured = tmp_path / "fitted.toml", tmp_path / "measured.toml"
+    done = run("fit-costs", ROOT / "cases" / "gearbox_quotes.csv", "--json", "--write", DEMO, fitted, cwd=tmp_path)
+    assert done.returncode == 0, done.stderr
+    assert json.loads(done.stdout)["written"] == str(fitted)
+    done = run("capability", fitted, ROOT / "cases" / "gearbox_measurements.csv", "--json", "--write", measured,
+               cwd=tmp_path)
+    assert done.returncode == 0, done.stderr
+    done = run("allocate", measured, "--json", cwd=tmp_path)
+    assert done.returncode == 0, done.stderr
+    assert all(r["status"] == "optimal" for r in json.loads(done.stdout)["results"])
 
 
 def test_bad_input_is_one_line_and_exit_2_in_a_fresh_process(tmp_path):
@@ -134,7 +147,7 @@ def test_help_lists_every_command_with_a_whole_summary(tmp_path):
     assert done.returncode == 0
     listing = done.stdout.split("Commands:", 1)[1].splitlines()
     names = [line.split()[0] for line in listing if line.startswith("  ") and not line.startswith("   ")]
-    assert names == ["init", "analyze", "allocate", "frontier", "verify", "report", "offer", "study", "convert"]
+    assert names == ["init", "analyze", "allocate", "frontier", "verify", "report", "offer", "study", "convert", "fit-costs", "capability"]
     for line in listing:  # no summary cut off
         assert not line.rstrip().endswith("..."), line
     # and the same with a narrow terminal: a long summary wraps, it is never cut

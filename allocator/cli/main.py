@@ -19,6 +19,8 @@ COMMANDS = {
     "offer": ("allocator.cli.offer", "offer"),
     "study": ("allocator.cli.study", "study"),
     "convert": ("allocator.cli.convert", "convert"),
+    "fit-costs": ("allocator.cli.fit_costs", "fit_costs"),
+    "capability": ("allocator.cli.capability", "capability"),
 }
 
 # the one-line summaries `allocator --help` lists (whole, never cut off with "..."; listing
@@ -33,6 +35,8 @@ SUMMARIES = {
     "offer": "Evaluate supplier offers: saving, break-even price.",
     "study": "Allocate many cases at once: savings per case and in total.",
     "convert": "Convert a case between TOML and an .xlsx workbook.",
+    "fit-costs": "Fit cost curves to supplier quotes.",
+    "capability": "Cp, Cpk and mean shift from measured parts.",
 }
 
 
