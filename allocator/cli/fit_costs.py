@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import math
+
 import click
 
 from ..quotes import FITTED_CURVES  # numpy and the cost registry; scipy only when fitting
@@ -70,7 +72,7 @@ def _table(fits) -> None:
     for f in fits.fits:
         params = ", ".join(f"{k} = {fmt(v)}" for k, v in f.params.items())
         criteria = "  ".join(
-            f"{fam.curve} {fmt(fam.criterion, 4)}" for fam in f.families
+            f"{fam.curve} {fmt(fam.criterion, 4) if math.isfinite(fam.criterion) else '-'}" for fam in f.families
         ) if len(f.families) > 1 else "(forced)"
         rows.append([f.contributor, f.supplier or "-", f.curve, params,
                      f"{100 * f.rms_relative:.2g}", f"{100 * f.max_relative:.2g}", f.points, criteria])
