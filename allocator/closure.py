@@ -49,7 +49,9 @@ __all__ = [
     "LoopSolution",
     "ClosedResponse",
     "ResponseEvaluator",
+    "LoopSensitivities",
     "compile_loop",
+    "loop_sensitivities",
     "solve_loop",
     "solve_samples",
 ]
@@ -58,9 +60,12 @@ STEP = 1e-200  # complex step [-]: exact first derivatives, no cancellation
 MAX_ITERATIONS = 100  # nominal solve
 SAMPLE_ITERATIONS = 40  # per sampled assembly (starts from the nominal solution: a few suffice)
 RESIDUAL_RTOL = 1e-9  # closed: every |F_i| <= RESIDUAL_RTOL · (size of the terms of F_i)
-CONDITION_LIMIT = 1e10  # equilibrated condition number of ∂F/∂u beyond which the loop is singular
+# condition number of the scaled ∂F/∂u beyond which the loop counts as singular. Below it
+# the solution and its sensitivities are good to about cond·eps (1e-10); at a double root
+# (a dead point) Newton stalls on round-off near √eps and the condition number comes out
+# near 1/√eps ≈ 7e7, well past the limit
+CONDITION_LIMIT = 1e6
 MIN_DAMPING = 2.0**-12  # smallest Newton step fraction tried before giving up
-POLISH_STEPS = 2  # full Newton steps taken after the tolerance is met: round-off, not 1e-9
 
 
 class ClosureError(ValueError):
@@ -160,17 +165,22 @@ def _term_scale(j_u: np.ndarray, j_x: np.ndarray, u: np.ndarray, x: np.ndarray) 
     return np.where(scale > 0, scale, 1.0)
 
 
-def _singular_parts(loop: CompiledLoop, j_u: np.ndarray) -> tuple[float, list[str], list[str]]:
-    """Condition number of the row- and column-equilibrated ``∂F/∂u`` and, when it is too
-    large, the equations and unknowns of its near-null direction."""
+def _singular_parts(loop: CompiledLoop, j_u: np.ndarray, scale: np.ndarray) -> tuple[float, list[str], list[str]]:
+    """Condition number of the scaled ``∂F/∂u`` and, when it is too large, the equations
+    and unknowns of its near-null direction.
+
+    Rows are divided by the size of each equation's terms (``scale``, not the row's own
+    norm: an equation that stops depending on the unknowns, as at a dead point, must show
+    as a small row), columns by their norms (the units of the unknowns do not matter).
+    """
     m = j_u.shape[0]
-    rows = np.linalg.norm(j_u, axis=1)
     if not np.all(np.isfinite(j_u)):
         return math.inf, list(loop.labels), list(loop.unknowns)
+    rows = np.abs(j_u).sum(axis=1)
     if np.any(rows == 0):
         dead = [loop.labels[i] for i in range(m) if rows[i] == 0]
         return math.inf, dead, list(loop.unknowns)
-    scaled = j_u / rows[:, None]
+    scaled = j_u / scale[:, None]
     cols = np.linalg.norm(scaled, axis=0)
     if np.any(cols == 0):
         free = [loop.unknowns[k] for k in range(m) if cols[k] == 0]
@@ -266,9 +276,14 @@ def solve_loop(case: Case) -> LoopSolution:
     -----
     Damped Newton: ``Δu = −(∂F/∂u)⁻¹ F``, step ``λΔu`` with ``λ`` halved until the scaled
     residual ``‖F/s‖`` decreases (Armijo), ``s_i = Σ_j |∂F_i/∂v_j|·|v_j|`` over contributors
-    and unknowns. Converged when every ``|F_i| ≤ 1e-9·s_i``; then two full steps more bring
-    ``F`` to round-off. Jacobians by the complex step (exact to machine precision).
-    At the solution, by the implicit function theorem, ``du/dx = −(∂F/∂u)⁻¹ ∂F/∂x``.
+    and unknowns. Once every ``|F_i| ≤ 1e-9·s_i``, full steps continue as long as they
+    reduce the residual: at a regular root one or two (quadratic convergence) bring ``F``
+    to round-off; at a (near-)double root convergence is linear and the iteration runs on
+    until ``∂F/∂u`` shows itself singular. The loop is singular when the condition number
+    of ``∂F/∂u`` (rows scaled by ``s``, columns by their norms) exceeds 1e6: below it the
+    solution is good to about ``cond·eps``; a double root shows about 1/√eps.
+    Jacobians by the complex step (exact to machine precision). At the solution, by the
+    implicit function theorem, ``du/dx = −(∂F/∂u)⁻¹ ∂F/∂x``.
     """
     from .chain import nominal_values
 
@@ -290,15 +305,12 @@ def solve_loop(case: Case) -> LoopSolution:
     def merit(r: np.ndarray) -> float:
         return float(np.linalg.norm(r / scale))
 
-    polished = 0
     iterations = 0
     for iterations in range(1, MAX_ITERATIONS + 1):
         met = bool(np.all(np.abs(residual) <= RESIDUAL_RTOL * scale))
-        if met:
-            polished += 1
-            if polished > POLISH_STEPS or not np.any(residual):
-                break
-        cond, eqs, unks = _singular_parts(loop, j_u)
+        if met and not np.any(residual):
+            break
+        cond, eqs, unks = _singular_parts(loop, j_u, scale)
         if cond > CONDITION_LIMIT:
             where = "at the solution" if met else f"at {_values_text(loop, u)} (Newton iteration {iterations})"
             raise _singular_error(where, cond, eqs, unks)
@@ -338,7 +350,7 @@ def solve_loop(case: Case) -> LoopSolution:
     scale = _term_scale(j_u, j_x, u, x_used)
     if not np.all(np.abs(residual) <= RESIDUAL_RTOL * scale):
         raise _not_closed(f"last residual {_residual_text(loop, residual)} at {_values_text(loop, u)}")
-    cond, eqs, unks = _singular_parts(loop, j_u)
+    cond, eqs, unks = _singular_parts(loop, j_u, scale)
     if cond > CONDITION_LIMIT:
         raise _singular_error("at the solution", cond, eqs, unks)
     d_used = -np.linalg.solve(j_u, j_x)
@@ -437,7 +449,6 @@ def solve_samples(
     u = np.tile(np.asarray(start, dtype=float), (rows, 1))
     closed = np.zeros(rows, dtype=bool)
     active = np.arange(rows)
-    polished = np.zeros(rows, dtype=int)
     with np.errstate(all="ignore"):
         residual = _batch_residual(loop, columns, u)
         finite = np.all(np.isfinite(residual), axis=1)
@@ -449,8 +460,7 @@ def solve_samples(
             r_act = residual[active]
             met = np.all(np.abs(r_act) <= RESIDUAL_RTOL * scale, axis=1)
             closed[active[met]] = True
-            polished[active[met]] += 1
-            done = met & ((polished[active] > POLISH_STEPS) | ~np.any(r_act, axis=1))
+            done = met & ~np.any(r_act, axis=1)
             keep = ~done
             active, env, r_act, met = active[keep], {k: v[keep] for k, v in env.items()}, r_act[keep], met[keep]
             if not active.size:
@@ -473,7 +483,8 @@ def solve_samples(
                 residual[active[take]] = r_trial[good]
                 accepted[take] = True
                 trying[take] = False
-                # polishing rows stop at the first full step that does not help
+                # rows within tolerance stop at the first full step that does not help:
+                # round-off reached
                 trying[idx[~good & met[idx]]] = False
                 damping[idx[~good]] *= 0.5
                 trying &= damping >= MIN_DAMPING
@@ -597,3 +608,47 @@ class ResponseEvaluator:
         y = np.real(np.broadcast_to(expr.evaluate(env), (rows,))).astype(float)
         y = np.where(closed, y, np.nan)
         return ClosedResponse(y, closed)
+
+
+# --------------------------------------------------------------------------- analysis
+
+
+class LoopSensitivities(NamedTuple):
+    """A requirement's sensitivities split into the direct part and the part through the loop."""
+
+    unknowns: tuple[str, ...]  # unknowns the response names (empty: not through the loop)
+    direct: np.ndarray  # ∂f/∂x with the unknowns held, per contributor [response / length]
+    through_loop: np.ndarray  # ∂f/∂u · du/dx per contributor [response / length]
+
+
+def loop_sensitivities(case: Case, requirement: Requirement) -> LoopSensitivities:
+    """Split ``dy/dx`` of ``requirement`` into ``∂f/∂x`` and ``∂f/∂u · du/dx`` at the nominals.
+
+    Their sum is :attr:`allocator.chain.Linearisation.sensitivity`. A chain, or an
+    expression naming no unknown, is all direct.
+
+    Returns
+    -------
+    LoopSensitivities
+    """
+    from .chain import complex_step_gradient, linearise, nominal_values
+
+    n = len(case.names)
+    unknown_set = set(case.unknown_names)
+    if requirement.chain is not None:
+        return LoopSensitivities((), linearise(case, requirement).sensitivity, np.zeros(n))
+    expr = compile_expression(requirement.expression, case.names + case.unknown_names, what="a contributor or unknown")
+    named = tuple(u for u in case.unknown_names if u in expr.names)
+    if not named:
+        return LoopSensitivities((), linearise(case, requirement).sensitivity, np.zeros(n))
+    solution = case.loop
+    point = nominal_values(case)
+    point.update(solution.values_by_name)
+    grad = complex_step_gradient(expr._fn, expr.names, point)
+    direct, through = np.zeros(n), np.zeros(n)
+    for name, g in zip(expr.names, grad):
+        if name in unknown_set:
+            through += g * solution.d_unknowns[solution.unknowns.index(name)]
+        else:
+            direct[case.index(name)] += g
+    return LoopSensitivities(named, direct, through)
