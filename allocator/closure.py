@@ -60,11 +60,12 @@ STEP = 1e-200  # complex step [-]: exact first derivatives, no cancellation
 MAX_ITERATIONS = 100  # nominal solve
 SAMPLE_ITERATIONS = 40  # per sampled assembly (starts from the nominal solution: a few suffice)
 RESIDUAL_RTOL = 1e-9  # closed: every |F_i| <= RESIDUAL_RTOL · (size of the terms of F_i)
-# condition number of the scaled ∂F/∂u beyond which the loop counts as singular. Below it
-# the solution and its sensitivities are good to about cond·eps (1e-10); at a double root
-# (a dead point) Newton stalls on round-off near √eps and the condition number comes out
-# near 1/√eps ≈ 7e7, well past the limit
-CONDITION_LIMIT = 1e6
+# condition number of the scaled ∂F/∂u beyond which the loop counts as at a dead point: an
+# unknown would move 1e4 times more than the dimensions that move it. Near a double root
+# the solution's relative error grows like cond²·eps (about 1e-6 at the limit); at an
+# exact dead point Newton stops on round-off with the number near 1e5, past the limit
+CONDITION_LIMIT = 1e4
+SCALE_FLOOR = 1e-6  # an equation's yardstick is at least this fraction of the loop's largest
 MIN_DAMPING = 2.0**-12  # smallest Newton step fraction tried before giving up
 
 
@@ -160,32 +161,38 @@ def _jacobian(loop: CompiledLoop, point: Mapping[str, float], wrt: tuple[str, ..
 def _term_scale(j_u: np.ndarray, j_x: np.ndarray, u: np.ndarray, x: np.ndarray) -> np.ndarray:
     """Size of each equation's terms, ``Σ_j |∂F_i/∂v_j|·|v_j|``: what a residual is compared with."""
     scale = np.abs(j_u) @ np.abs(u) + np.abs(j_x) @ np.abs(x)
+    # an equation whose terms all vanish (a y-equation with every angle 0) is measured
+    # against the loop's size: the equations of one loop share their units
+    floor = SCALE_FLOOR * float(scale.max()) if scale.size and np.isfinite(scale.max()) else 0.0
+    scale = np.maximum(scale, floor)
     fallback = np.abs(j_u).sum(axis=1) + np.abs(j_x).sum(axis=1)
     scale = np.where(scale > 0, scale, fallback)
-    return np.where(scale > 0, scale, 1.0)
+    return np.where((scale > 0) & np.isfinite(scale), scale, 1.0)
 
 
-def _singular_parts(loop: CompiledLoop, j_u: np.ndarray, scale: np.ndarray) -> tuple[float, list[str], list[str]]:
+def _singular_parts(loop: CompiledLoop, j_u: np.ndarray, j_x: np.ndarray) -> tuple[float, list[str], list[str]]:
     """Condition number of the scaled ``∂F/∂u`` and, when it is too large, the equations
     and unknowns of its near-null direction.
 
-    Rows are divided by the size of each equation's terms (``scale``, not the row's own
-    norm: an equation that stops depending on the unknowns, as at a dead point, must show
-    as a small row), columns by their norms (the units of the unknowns do not matter).
+    Each row is divided by the norm of the equation's whole gradient (``∂F_i/∂u`` and
+    ``∂F_i/∂x``; not by ``∂F_i/∂u`` alone: an equation that stops depending on the
+    unknowns while the contributors still move it, as at a dead point, must show as a
+    small row), each column by its norm (the units of the unknowns do not matter).
     """
     m = j_u.shape[0]
-    if not np.all(np.isfinite(j_u)):
+    if not (np.all(np.isfinite(j_u)) and np.all(np.isfinite(j_x))):
         return math.inf, list(loop.labels), list(loop.unknowns)
-    rows = np.abs(j_u).sum(axis=1)
-    if np.any(rows == 0):
-        dead = [loop.labels[i] for i in range(m) if rows[i] == 0]
+    dead = [loop.labels[i] for i in range(m) if not np.any(j_u[i])]
+    if dead:
         return math.inf, dead, list(loop.unknowns)
-    scaled = j_u / scale[:, None]
+    scaled = j_u / (np.abs(j_u).sum(axis=1) + np.abs(j_x).sum(axis=1))[:, None]
     cols = np.linalg.norm(scaled, axis=0)
     if np.any(cols == 0):
         free = [loop.unknowns[k] for k in range(m) if cols[k] == 0]
         return math.inf, list(loop.labels), free
     scaled = scaled / cols[None, :]
+    if not np.all(np.isfinite(scaled)):
+        return math.inf, list(loop.labels), list(loop.unknowns)
     left, sv, right_t = np.linalg.svd(scaled)
     cond = math.inf if sv[-1] == 0 else float(sv[0] / sv[-1])
     if cond <= CONDITION_LIMIT:
@@ -279,9 +286,9 @@ def solve_loop(case: Case) -> LoopSolution:
     and unknowns. Once every ``|F_i| ≤ 1e-9·s_i``, full steps continue as long as they
     reduce the residual: at a regular root one or two (quadratic convergence) bring ``F``
     to round-off; at a (near-)double root convergence is linear and the iteration runs on
-    until ``∂F/∂u`` shows itself singular. The loop is singular when the condition number
-    of ``∂F/∂u`` (rows scaled by ``s``, columns by their norms) exceeds 1e6: below it the
-    solution is good to about ``cond·eps``; a double root shows about 1/√eps.
+    until ``∂F/∂u`` shows itself singular. The loop is singular (at or near a dead point)
+    when the condition number of ``∂F/∂u`` exceeds 1e4, rows scaled by the norm of each
+    equation's whole gradient (unknowns and contributors), columns by their norms.
     Jacobians by the complex step (exact to machine precision). At the solution, by the
     implicit function theorem, ``du/dx = −(∂F/∂u)⁻¹ ∂F/∂x``.
     """
@@ -310,7 +317,7 @@ def solve_loop(case: Case) -> LoopSolution:
         met = bool(np.all(np.abs(residual) <= RESIDUAL_RTOL * scale))
         if met and not np.any(residual):
             break
-        cond, eqs, unks = _singular_parts(loop, j_u, scale)
+        cond, eqs, unks = _singular_parts(loop, j_u, j_x)
         if cond > CONDITION_LIMIT:
             where = "at the solution" if met else f"at {_values_text(loop, u)} (Newton iteration {iterations})"
             raise _singular_error(where, cond, eqs, unks)
@@ -337,6 +344,7 @@ def solve_loop(case: Case) -> LoopSolution:
             )
         u, residual = accepted
         j_u = _jacobian(loop, point, loop.unknowns)
+        j_x = _jacobian(loop, point, loop.used) if loop.used else np.zeros((len(u), 0))
     else:
         if not np.all(np.abs(residual) <= RESIDUAL_RTOL * scale):
             raise _not_closed(
@@ -350,7 +358,7 @@ def solve_loop(case: Case) -> LoopSolution:
     scale = _term_scale(j_u, j_x, u, x_used)
     if not np.all(np.abs(residual) <= RESIDUAL_RTOL * scale):
         raise _not_closed(f"last residual {_residual_text(loop, residual)} at {_values_text(loop, u)}")
-    cond, eqs, unks = _singular_parts(loop, j_u, scale)
+    cond, eqs, unks = _singular_parts(loop, j_u, j_x)
     if cond > CONDITION_LIMIT:
         raise _singular_error("at the solution", cond, eqs, unks)
     d_used = -np.linalg.solve(j_u, j_x)
