@@ -45,6 +45,7 @@ _LAZY = {
     "SupplierSheet": ("allocator.supplier", "SupplierSheet"),
     "Loosening": ("allocator.supplier", "Loosening"),
     "Report": ("allocator.report", "Report"),
+    "ResponseEvaluator": ("allocator.closure", "ResponseEvaluator"),
     # errors (CaseError and UsageError are ValueError subclasses)
     "CaseError": ("allocator.errors", "CaseError"),
     "UsageError": ("allocator.errors", "UsageError"),

@@ -343,5 +343,11 @@ def evaluate_response(case: Case, requirement: Requirement, values: Mapping[str,
         for name, coeff in requirement.chain.items():
             total = total + float(coeff) * np.asarray(values[name], dtype=float)
         return np.asarray(total, dtype=float)
-    expr = compile_expression(requirement.expression, case.names)
+    unknowns = case.unknown_names
+    expr = compile_expression(requirement.expression, case.names + unknowns, what="a contributor or unknown")
+    if any(name in unknowns for name in expr.names):
+        raise ExpressionError(
+            f"requirement {requirement.name!r} names unknowns of the closure equations; "
+            "evaluate it with allocator.closure.ResponseEvaluator, which solves the loop per sample"
+        )
     return np.asarray(expr.evaluate(values), dtype=float)

@@ -66,6 +66,9 @@ RESIDUAL_RTOL = 1e-9  # closed: every |F_i| <= RESIDUAL_RTOL · (size of the ter
 # exact dead point Newton stops on round-off with the number near 1e5, past the limit
 CONDITION_LIMIT = 1e4
 SCALE_FLOOR = 1e-6  # an equation's yardstick is at least this fraction of the loop's largest
+ROUND_OFF = 4 * np.finfo(float).eps  # scaled residual at which a chord row is done
+CHORD_ITERATIONS = 12  # chord steps with the nominal Jacobian before Newton takes over
+CHORD_CONTRACTION = 0.5  # a chord step must at least halve the scaled residual
 MIN_DAMPING = 2.0**-12  # smallest Newton step fraction tried before giving up
 
 
@@ -238,7 +241,9 @@ class LoopSolution:
     scale : numpy.ndarray
         Size of each equation's terms at the solution, the residual's yardstick.
     condition : float
-        Condition number of the equilibrated ``∂F/∂u`` at the solution [-].
+        Condition number of the scaled ``∂F/∂u`` at the solution [-].
+    jacobian : numpy.ndarray
+        ``∂F/∂u`` at the solution, shape (equations, unknowns).
     iterations : int
         Newton iterations taken.
     labels : tuple of str
@@ -253,6 +258,7 @@ class LoopSolution:
     condition: float
     iterations: int
     labels: tuple[str, ...]
+    jacobian: np.ndarray
 
     @property
     def values_by_name(self) -> dict[str, float]:
@@ -375,6 +381,7 @@ def solve_loop(case: Case) -> LoopSolution:
         condition=cond,
         iterations=iterations,
         labels=loop.labels,
+        jacobian=j_u,
     )
 
 
@@ -415,6 +422,16 @@ def _batch_jacobian(loop: CompiledLoop, env_x: dict, u: np.ndarray) -> np.ndarra
 def _batch_step(j_u: np.ndarray, residual: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Newton steps ``−J⁻¹F`` per row and a mask of the rows where ``J`` is singular."""
     with np.errstate(all="ignore"):
+        if j_u.shape[1] == 2:  # the plane loop: Cramer's rule, much cheaper than a LAPACK call per row
+            (a, b), (c, d) = j_u[:, 0].T, j_u[:, 1].T
+            det = a * d - b * c
+            singular = ~np.isfinite(det) | (det == 0)
+            det = np.where(singular, 1.0, det)
+            step = np.column_stack([(b * residual[:, 1] - d * residual[:, 0]) / det,
+                                    (c * residual[:, 0] - a * residual[:, 1]) / det])
+            singular |= ~np.all(np.isfinite(step), axis=1)
+            step[singular] = 0.0
+            return step, singular
         try:
             step = np.linalg.solve(j_u, -residual[..., None])[..., 0]
             singular = ~np.all(np.isfinite(step), axis=1)
@@ -427,9 +444,13 @@ def _batch_step(j_u: np.ndarray, residual: np.ndarray) -> tuple[np.ndarray, np.n
 
 
 def solve_samples(
-    loop: CompiledLoop, values: np.ndarray, start: np.ndarray, scale: np.ndarray
+    loop: CompiledLoop,
+    values: np.ndarray,
+    start: np.ndarray,
+    scale: np.ndarray,
+    jacobian: np.ndarray | None = None,
 ) -> tuple[np.ndarray, np.ndarray]:
-    """Solve the closure for every row of ``values`` (vectorised damped Newton).
+    """Solve the closure for every row of ``values`` (vectorised chord and damped Newton).
 
     Parameters
     ----------
@@ -441,6 +462,11 @@ def solve_samples(
         Start per unknown, normally the nominal solution (:attr:`LoopSolution.values`).
     scale : numpy.ndarray
         Residual yardstick per equation (:attr:`LoopSolution.scale`).
+    jacobian : numpy.ndarray, optional
+        ``∂F/∂u`` at ``start`` (:attr:`LoopSolution.jacobian`). Given, the rows first take
+        chord steps with it (one real evaluation per step, no per-row Jacobian): sampled
+        assemblies lie close to the nominal one, so each step gains several digits. Rows
+        where the chord does not contract go on with damped Newton.
 
     Returns
     -------
@@ -456,11 +482,14 @@ def solve_samples(
     columns = {name: values[:, position[name]] for name in loop.used}
     u = np.tile(np.asarray(start, dtype=float), (rows, 1))
     closed = np.zeros(rows, dtype=bool)
+    polished = np.zeros(rows, dtype=bool)  # took its full step after meeting the tolerance
     active = np.arange(rows)
     with np.errstate(all="ignore"):
         residual = _batch_residual(loop, columns, u)
         finite = np.all(np.isfinite(residual), axis=1)
         active = active[finite]
+        if jacobian is not None and active.size:
+            active = _chord(loop, columns, u, residual, scale, np.linalg.inv(jacobian), active, closed)
         for _ in range(SAMPLE_ITERATIONS):
             if not active.size:
                 break
@@ -468,7 +497,9 @@ def solve_samples(
             r_act = residual[active]
             met = np.all(np.abs(r_act) <= RESIDUAL_RTOL * scale, axis=1)
             closed[active[met]] = True
-            done = met & ~np.any(r_act, axis=1)
+            # one full step after the tolerance is met brings a regular root to round-off
+            done = met & (polished[active] | ~np.any(r_act, axis=1))
+            polished[active[met]] = True
             keep = ~done
             active, env, r_act, met = active[keep], {k: v[keep] for k, v in env.items()}, r_act[keep], met[keep]
             if not active.size:
@@ -500,6 +531,44 @@ def solve_samples(
             active = active[accepted]
     u[~closed] = np.nan
     return u, closed
+
+
+def _chord(
+    loop: CompiledLoop,
+    columns: dict,
+    u: np.ndarray,
+    residual: np.ndarray,
+    scale: np.ndarray,
+    inverse: np.ndarray,
+    active: np.ndarray,
+    closed: np.ndarray,
+) -> np.ndarray:
+    """Chord steps ``u ← u − J₀⁻¹ F(u)`` on the rows ``active`` (``u``, ``residual`` and
+    ``closed`` updated in place); returns the rows left for Newton.
+
+    A row is closed when its scaled residual is at round-off; it is left for Newton as
+    soon as a step fails to halve it (far from the nominal assembly the chord is slow,
+    and Newton's own steps take it to round-off).
+    """
+    merit = np.linalg.norm(residual / scale, axis=1)
+    pending = []  # rows where the chord does not contract: Newton's turn
+    for _ in range(CHORD_ITERATIONS):
+        if not active.size:
+            break
+        exact = merit[active] <= ROUND_OFF  # nothing left to gain
+        closed[active[exact]] = True
+        active = active[~exact]
+        r_act = residual[active]
+        trial = u[active] - r_act @ inverse.T
+        r_trial = _batch_residual(loop, {k: v[active] for k, v in columns.items()}, trial)
+        m_trial = np.linalg.norm(r_trial / scale, axis=1)
+        good = np.all(np.isfinite(r_trial), axis=1) & (m_trial <= CHORD_CONTRACTION * merit[active])
+        take = active[good]
+        u[take], residual[take], merit[take] = trial[good], r_trial[good], m_trial[good]
+        pending.append(active[~good])  # Newton polishes (or finds) these
+        active = active[good]
+    pending.append(active)  # still contracting after the last chord step
+    return np.concatenate(pending)
 
 
 # --------------------------------------------------------------------------- responses
@@ -570,7 +639,7 @@ class ResponseEvaluator:
         if self._loop is None:
             return np.empty((values.shape[0], 0)), np.ones(values.shape[0], dtype=bool)
         solution = self.case.loop
-        return solve_samples(self._loop, values, solution.values, solution.scale)
+        return solve_samples(self._loop, values, solution.values, solution.scale, solution.jacobian)
 
     def __call__(
         self,

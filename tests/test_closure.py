@@ -375,3 +375,24 @@ def test_verify_cli_reports_unclosed_loops(tmp_path):
         cli, ["verify", str(CLUTCH), "--tolerances", str(wide), "--samples", "20000", "--seed", "5"]
     ).stdout
     assert "whose loop cannot close" in text
+
+
+def test_chord_start_and_plain_newton_agree_with_the_closed_form():
+    # solve_samples with the nominal Jacobian (chord steps first) and without (Newton only)
+    from allocator.closure import compile_loop, solve_samples
+
+    case = load_case(CLUTCH)
+    rng = np.random.default_rng(4)
+    x = np.array(clutch_nominals(case)) + rng.normal(0.0, [0.1, 0.03, 0.1], size=(4000, 3))
+    loop, solution = compile_loop(case), case.loop
+    u1, closed1 = solve_samples(loop, x, solution.values, solution.scale, solution.jacobian)
+    u2, closed2 = solve_samples(loop, x, solution.values, solution.scale)
+    a, c, e = x.T
+    with np.errstate(invalid="ignore"):
+        phi = np.arccos((a + c) / (e - c))
+    assert np.array_equal(closed1, closed2) and np.array_equal(closed1, np.isfinite(phi))
+    assert 0 < np.count_nonzero(~closed1) < 4000
+    # near the dead point (φ → 0) the angle is ill-conditioned in its inputs, for the closed
+    # form as for the loop: compare to 1e-11 rad there, to 1e-12 relative elsewhere
+    np.testing.assert_allclose(u1[closed1, 0], phi[closed1], rtol=1e-12, atol=1e-11)
+    np.testing.assert_allclose(u2[closed2, 0], phi[closed2], rtol=1e-12, atol=1e-11)
