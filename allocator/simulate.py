@@ -540,6 +540,11 @@ class _Engine:
         columns = sampler.n_normal + sampler.n_uniform
         row_bytes = 8 * (columns + (sampler.n if self.nonlinear else 0) + 3 * n_req) + n_req
         self.block = block = _block_size(max(row_bytes // 8, 1))
+        # the closure's Newton arrays per row count toward the chunk only: the stream's
+        # blocks stay those of the same case solved by hand
+        m = len(case.unknowns)
+        if m and self.nonlinear:
+            row_bytes += 8 * (6 * m + 2 * m * m)
         if chunk_size is None:
             chunk_blocks = max(1, CHUNK_BYTES // (row_bytes * block))
         else:
