@@ -396,3 +396,32 @@ def test_chord_start_and_plain_newton_agree_with_the_closed_form():
     # form as for the loop: compare to 1e-11 rad there, to 1e-12 relative elsewhere
     np.testing.assert_allclose(u1[closed1, 0], phi[closed1], rtol=1e-12, atol=1e-11)
     np.testing.assert_allclose(u2[closed2, 0], phi[closed2], rtol=1e-12, atol=1e-11)
+
+
+def test_monte_carlo_through_the_loop_does_not_depend_on_the_chunk_size():
+    case = load_case(CLUTCH).with_tolerances({"hub_flat": 0.3, "roller_radius": 0.1, "ring_radius": 0.3})
+    whole = verify(case, samples=150_000, seed=9)
+    pieces = verify(case, samples=150_000, seed=9, chunk_size=2**16)
+    assert pieces.chunk_size < whole.chunk_size
+    for a, b in zip(whole.requirements, pieces.requirements):
+        assert (a.below, a.above, a.undefined, a.not_closed) == (b.below, b.above, b.undefined, b.not_closed)
+        assert a.not_closed > 0
+
+
+@pytest.mark.parametrize(
+    "equation, fragment",
+    [
+        ("phi ** 1000 - hub_flat", "exponent is too large"),
+        ("phi.real - hub_flat", "attribute access"),
+        ("__import__('os') - phi", "not allowed"),
+        ("(" * 300 + "phi" + ")" * 300, "nested"),
+    ],
+)
+def test_closure_equations_keep_the_expression_safety_limits(equation, fragment):
+    text = CLUTCH_TEXT.replace(
+        'equation = "offset + roller_radius * sin(phi) - ring_radius * sin(phi)"', f"equation = {json.dumps(equation)}"
+    )
+    with pytest.raises(CaseError) as info:
+        loads_case(text, source="hostile.toml")
+    assert str(info.value).startswith("hostile.toml: closure[1] (loop_x).equation: ")
+    assert fragment in str(info.value)
