@@ -65,6 +65,7 @@ RESIDUAL_RTOL = 1e-9  # closed: every |F_i| <= RESIDUAL_RTOL · (size of the ter
 # the solution's relative error grows like cond²·eps (about 1e-6 at the limit); at an
 # exact dead point Newton stops on round-off with the number near 1e5, past the limit
 CONDITION_LIMIT = 1e4
+STEP_CONDITION_LIMIT = 1e13  # on the way to the solution: beyond it no Newton step is meaningful
 SCALE_FLOOR = 1e-6  # an equation's yardstick is at least this fraction of the loop's largest
 ROUND_OFF = 4 * np.finfo(float).eps  # scaled residual at which a chord row is done
 CHORD_ITERATIONS = 12  # chord steps with the nominal Jacobian before Newton takes over
@@ -323,10 +324,10 @@ def solve_loop(case: Case) -> LoopSolution:
         met = bool(np.all(np.abs(residual) <= RESIDUAL_RTOL * scale))
         if met and not np.any(residual):
             break
+        # on the way Newton may pass ill-conditioned points; it stops only where it cannot step
         cond, eqs, unks = _singular_parts(loop, j_u, j_x)
-        if cond > CONDITION_LIMIT:
-            where = "at the solution" if met else f"at {_values_text(loop, u)} (Newton iteration {iterations})"
-            raise _singular_error(where, cond, eqs, unks)
+        if cond > STEP_CONDITION_LIMIT:
+            raise _singular_error(f"at {_values_text(loop, u)} (Newton iteration {iterations})", cond, eqs, unks)
         step = np.linalg.solve(j_u, -residual)
         damping, accepted = 1.0, None
         while damping >= MIN_DAMPING:
