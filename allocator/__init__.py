@@ -62,6 +62,7 @@ _LAZY = {
     "Report": ("allocator.report", "Report"),
     "Study": ("allocator.studies", "Study"),
     "StudyRow": ("allocator.studies", "StudyRow"),
+    "ResponseEvaluator": ("allocator.closure", "ResponseEvaluator"),
     # errors (CaseError and UsageError are ValueError subclasses)
     "CaseError": ("allocator.errors", "CaseError"),
     "UsageError": ("allocator.errors", "UsageError"),

@@ -10,6 +10,7 @@ import numpy as np
 
 from . import stack
 from .chain import linearise
+from .closure import loop_sensitivities
 from .errors import UsageError, unknown_names
 from .model import per_unit
 from .ppm import fraction_to_ppm
@@ -32,6 +33,23 @@ class Contribution:
     variance_share: float  # share of σ_y² [-], 0..1
     units: str = ""  # label of the contributor's tolerance
     sensitivity_units: str = ""  # label of ∂y/∂x: requirement units per contributor unit
+    # through closure equations: ∂f/∂x with the unknowns held; sensitivity − direct is the
+    # part through the loop (∂f/∂u · du/dx). None for a response that names no unknown.
+    direct_sensitivity: float | None = None
+
+    @property
+    def loop_sensitivity(self) -> float | None:
+        """The part of the sensitivity that goes through the closure loop, ``∂f/∂u · du/dx``."""
+        return None if self.direct_sensitivity is None else self.sensitivity - self.direct_sensitivity
+
+
+@dataclass(frozen=True)
+class UnknownValue:
+    """An unknown of the closure equations at the nominal solution."""
+
+    name: str
+    nominal: float  # [its own unit, see description]
+    description: str = ""
 
 
 @dataclass(frozen=True)
@@ -58,6 +76,7 @@ class RequirementAnalysis:
     worst_case_below: float = 0.0
     worst_case_above: float = 0.0
     units: str = ""  # label of the response, its limits, worst case, σ and δ
+    through_loop: tuple[str, ...] = ()  # unknowns of the closure equations the response names
 
     @property
     def rss_ppm(self) -> float:
@@ -89,7 +108,7 @@ class RequirementAnalysis:
 
     def to_dict(self) -> dict:
         """JSON-ready dict of this requirement's numbers (the ``--json`` output)."""
-        return {
+        out = {
             "name": self.name,
             "nominal": self.nominal,
             "lower": self.lower,
@@ -111,20 +130,28 @@ class RequirementAnalysis:
             "mean_shift_above_ppm": self.mean_shift_above_ppm,
             "linear": self.linear,
             "units": self.units,
-            "contributors": [
-                {
-                    "name": c.name,
-                    "sensitivity": c.sensitivity,
-                    "count": c.count,
-                    "tolerance": c.tolerance,
-                    "worst_case": c.worst_case,
-                    "variance_percent": 100.0 * c.variance_share,
-                    "units": c.units,
-                    "sensitivity_units": c.sensitivity_units,
-                }
-                for c in self.contributions
-            ],
+            "contributors": [_contribution_dict(c) for c in self.contributions],
         }
+        if self.through_loop:  # only through closure equations (v1 output unchanged)
+            out["through_loop"] = list(self.through_loop)
+        return out
+
+
+def _contribution_dict(c: Contribution) -> dict:
+    out = {
+        "name": c.name,
+        "sensitivity": c.sensitivity,
+        "count": c.count,
+        "tolerance": c.tolerance,
+        "worst_case": c.worst_case,
+        "variance_percent": 100.0 * c.variance_share,
+        "units": c.units,
+        "sensitivity_units": c.sensitivity_units,
+    }
+    if c.direct_sensitivity is not None:
+        out["direct_sensitivity"] = c.direct_sensitivity
+        out["loop_sensitivity"] = c.loop_sensitivity
+    return out
 
 
 @dataclass(frozen=True)
@@ -135,6 +162,7 @@ class StackAnalysis:
     units: str  # the case's units (each requirement and contribution carries its own label)
     requirements: tuple[RequirementAnalysis, ...]
     tolerances: Mapping[str, float]
+    unknowns: tuple[UnknownValue, ...] = ()  # closure unknowns at the nominal solution
 
     def __repr__(self) -> str:
         lines = [f"StackAnalysis({self.title!r})"]
@@ -147,8 +175,14 @@ class StackAnalysis:
         return "\n".join(lines)
 
     def to_dict(self) -> dict:
-        """JSON-ready dict: one entry per requirement under ``requirements``."""
-        return {"requirements": [r.to_dict() for r in self.requirements]}
+        """JSON-ready dict: one entry per requirement under ``requirements`` (and the
+        closure unknowns' nominal values under ``unknowns`` when the case has any)."""
+        out = {"requirements": [r.to_dict() for r in self.requirements]}
+        if self.unknowns:
+            out["unknowns"] = [
+                {"name": u.name, "nominal": u.nominal, "description": u.description} for u in self.unknowns
+            ]
+        return out
 
     def to_frame(self) -> pd.DataFrame:
         """One row per requirement (pandas DataFrame, index ``requirement``)."""
@@ -235,6 +269,8 @@ def analyze(
         units = case.requirement_units(req.name)
         lin = linearise(case, req)
         a = lin.sensitivity
+        split = loop_sensitivities(case, req) if case.unknowns and not lin.linear else None
+        direct = split.direct if split is not None and split.unknowns else None
         wc = n * np.abs(a) * t
         var = n * (a * f * t) ** 2
         sigma = float(math.sqrt(var.sum()))
@@ -256,6 +292,7 @@ def analyze(
                 variance_share=float(var[i] / total_var) if total_var > 0 else 0.0,
                 units=contributor_units[i],
                 sensitivity_units=per_unit(units, contributor_units[i]),
+                direct_sensitivity=None if direct is None else float(direct[i]),
             )
             for i in involved
         )
@@ -279,6 +316,7 @@ def analyze(
                 worst_case_below=wc_below,
                 worst_case_above=wc_above,
                 units=units,
+                through_loop=split.unknowns if split is not None else (),
             )
         )
     return StackAnalysis(
@@ -286,4 +324,7 @@ def analyze(
         units=case.units,
         requirements=tuple(results),
         tolerances=dict(zip(case.names, map(float, t))),
+        unknowns=tuple(
+            UnknownValue(u.name, float(v), u.description) for u, v in zip(case.unknowns, case.loop.values)
+        ) if case.unknowns else (),
     )

@@ -28,6 +28,7 @@ from pathlib import Path
 
 from . import chain as chain_module
 from .chain import ExpressionError, compile_expression
+from .closure import ClosureError
 from .costs import CURVES, check_curve, family
 from .costs.table import BETWEEN as TABLE_BETWEEN
 from .errors import CaseError, did_you_mean
@@ -42,10 +43,12 @@ from .model import (
     Contributor,
     CostCurve,
     Economics,
+    Closure,
     FrontierSettings,
     Offer,
     Process,
     Requirement,
+    Unknown,
 )
 from .offers import tolerance_problem
 
@@ -64,6 +67,7 @@ MAX_CONTRIBUTORS = 100_000
 MAX_COUNT = 1_000_000  # instances of one contributor per assembly
 MAX_TABLE_ROWS = 100_000  # points in one cost table (inline or CSV)
 MAX_FRONTIER_POINTS = 2000
+MAX_UNKNOWNS = 200  # unknowns of the closure equations (a dense Jacobian per sampled assembly)
 MAX_LABEL_CHARS = 24  # a units label is printed in table headers: short, one line
 
 # names an expression reserves for its functions and constant
@@ -76,8 +80,10 @@ _IDENTIFIER = re.compile(r"[A-Za-z_][A-Za-z0-9_]*\Z")
 # allowed keys per section; anything else is an error with a "did you mean" hint
 TOP_KEYS = (
     "title", "units", "currency", "contributor", "requirement",
-    "allocation", "economics", "frontier", "offer",
+    "allocation", "economics", "frontier", "offer", "unknown", "closure",
 )
+UNKNOWN_KEYS = ("name", "guess", "description")
+CLOSURE_KEYS = ("name", "equation")
 CONTRIBUTOR_KEYS = (
     "name", "description", "nominal", "tolerance", "limits", "cp", "mean_shift",
     "distribution", "count", "fixed", "cost", "process", "units",
@@ -660,12 +666,18 @@ def _boolean(value) -> bool:
 # --------------------------------------------------------------------------- requirements
 
 
-def _read_chain(item: _Table, names) -> dict[str, float]:
+def _read_chain(item: _Table, names, unknowns=()) -> dict[str, float]:
     table = item.sub("chain")
     if not table.data:
         table.fail(None, "must name at least one contributor")
     chain = {}
     for name, value in table.data.items():
+        if name in unknowns:
+            table.fail(
+                name,
+                f"{name!r} is an unknown of the closure equations; a chain names contributors "
+                "only (write the requirement as an expression to use an unknown)",
+            )
         if name not in names:
             table.fail(name, f"unknown contributor {name!r}{did_you_mean(name, names)}")
         try:
@@ -678,7 +690,7 @@ def _read_chain(item: _Table, names) -> dict[str, float]:
     return chain
 
 
-def _read_requirement(item: _Table, seen: dict, names) -> Requirement:
+def _read_requirement(item: _Table, seen: dict, names, unknowns=()) -> Requirement:
     name = item.get("name", lambda v: _name(v, reserved=False), required="a name for the requirement")
     if name in seen:
         item.fail("name", f"{name!r} is already used by requirement[{seen[name]}]")
@@ -693,15 +705,16 @@ def _read_requirement(item: _Table, seen: dict, names) -> Requirement:
         item.fail(None, "needs a chain = { name = coefficient, ... } or an expression")
     chain = expression = None
     if has_chain:
-        chain = _read_chain(item, names)
+        chain = _read_chain(item, names, unknowns)
     else:
         expression = item.get("expression", lambda v: _text(v, nonempty=True))
+        what = "a contributor or unknown" if unknowns else "a contributor"
         try:
-            compiled = compile_expression(expression, names)
+            compiled = compile_expression(expression, tuple(names) + tuple(unknowns), what=what)
         except ExpressionError as err:
             item.fail("expression", str(err))
         if not compiled.names:
-            item.fail("expression", "uses no contributor")
+            item.fail("expression", "uses no contributor" + (" or unknown" if unknowns else ""))
 
     lower = item.get("lower", _number)
     upper = item.get("upper", _number)
@@ -715,6 +728,77 @@ def _read_requirement(item: _Table, seen: dict, names) -> Requirement:
         name=name, chain=chain, expression=expression, lower=lower, upper=upper, fallout_ppm=fallout_ppm,
         units=units,
     )
+
+
+# --------------------------------------------------------------------------- closure
+
+
+def _read_unknown(item: _Table, seen: dict, names) -> Unknown:
+    name = item.get("name", lambda v: _name(v, reserved=True), required="a name for the unknown")
+    if name in names:
+        item.fail("name", f"{name!r} is already a contributor (an unknown must not shadow a contributor)")
+    if name in seen:
+        item.fail("name", f"{name!r} is already used by unknown[{seen[name]}]")
+    seen[name] = len(seen) + 1
+    item.named(name)
+    item.check_keys(UNKNOWN_KEYS)
+    guess = item.get("guess", _number, required="a start value for the nominal solve")
+    description = item.get("description", _text, default="")
+    return Unknown(name=name, guess=guess, description=description)
+
+
+def _read_closure(item: _Table, seen: dict, names, unknowns) -> tuple[Closure, frozenset]:
+    """One closure equation and the names it uses."""
+    label = item.get("name", lambda v: _name(v, reserved=False), default="")
+    if label:
+        if label in seen:
+            item.fail("name", f"{label!r} is already used by closure[{seen[label]}]")
+        seen[label] = len(seen) + 1
+        item.named(label)
+    item.check_keys(CLOSURE_KEYS)
+    equation = item.get(
+        "equation", lambda v: _text(v, nonempty=True),
+        required='the equation, an expression that is 0 when the loop closes, e.g. "a + b - c"',
+    )
+    try:
+        compiled = compile_expression(equation, tuple(names) + tuple(unknowns), what="a contributor or unknown")
+    except ExpressionError as err:
+        item.fail("equation", str(err))
+    used = frozenset(compiled.names)
+    if not used & set(unknowns):
+        item.fail(
+            "equation",
+            "names no unknown (an equation among contributors alone cannot settle the assembly)",
+        )
+    return Closure(equation=equation, name=label), used
+
+
+def _read_loop(top: _Table, names) -> tuple[tuple[Unknown, ...], tuple[Closure, ...]]:
+    """The ``[[unknown]]`` and ``[[closure]]`` tables, checked against each other."""
+    seen: dict = {}
+    unknown_tables = top.array("unknown", header="unknown", at_least=0, at_most=MAX_UNKNOWNS)
+    unknowns = tuple(_read_unknown(item, seen, set(names)) for item in unknown_tables)
+    unknown_names = tuple(u.name for u in unknowns)
+    seen = {}
+    closure_tables = top.array("closure", header="closure", at_least=0, at_most=MAX_UNKNOWNS)
+    read = [_read_closure(item, seen, names, unknown_names) for item in closure_tables]
+    closures = tuple(c for c, _ in read)
+    if len(closures) != len(unknowns):
+        field = "closure" if closures or not unknowns else "unknown"
+        top.fail(
+            field,
+            f"{len(closures)} closure equation{'s' if len(closures) != 1 else ''} for "
+            f"{len(unknowns)} unknown{'s' if len(unknowns) != 1 else ''} "
+            "(one equation per unknown: a 2-D vector loop gives an x and a y equation)",
+        )
+    used = frozenset().union(*(u for _, u in read)) if read else frozenset()
+    for i, u in enumerate(unknowns, start=1):
+        if u.name not in used:
+            top.fail(
+                f"unknown[{i}] ({u.name})",
+                "is used by no closure equation (nothing settles it; name it in an equation or remove it)",
+            )
+    return unknowns, closures
 
 
 # --------------------------------------------------------------------------- settings
@@ -819,9 +903,11 @@ def _build(data: dict, source: _Source, path: Path | None, sha256: str) -> Case:
     contributor_tables = top.array("contributor", header="contributor", at_least=1, at_most=MAX_CONTRIBUTORS)
     contributors = tuple(_read_contributor(item, seen) for item in contributor_tables)
     names = tuple(c.name for c in contributors)
+    unknowns, closures = _read_loop(top, names)
+    unknown_names = tuple(u.name for u in unknowns)
     seen = {}
     requirement_tables = top.array("requirement", header="requirement", at_least=1, at_most=MAX_CONTRIBUTORS)
-    requirements = tuple(_read_requirement(item, seen, names) for item in requirement_tables)
+    requirements = tuple(_read_requirement(item, seen, names, unknown_names) for item in requirement_tables)
 
     allocation = _read_allocation(top.sub("allocation"))
     if allocation.rounding == "iso286":
@@ -842,7 +928,14 @@ def _build(data: dict, source: _Source, path: Path | None, sha256: str) -> Case:
             _read_offer(item, contributors)
             for item in top.array("offer", header="offer", at_least=0, at_most=MAX_CONTRIBUTORS)
         ),
+        unknowns=unknowns,
+        closures=closures,
     )
+    if unknowns:  # the loop must close at the nominals (solved once, kept on the case)
+        try:
+            case.loop
+        except ClosureError as err:
+            top.fail("closure", str(err))
     # an expression must be finite and differentiable at the nominals to be analysed
     for table, requirement in zip(requirement_tables, requirements):
         if requirement.expression is not None:

@@ -21,6 +21,8 @@ from typing import TYPE_CHECKING, Callable, Iterable, Mapping
 
 import numpy as np
 
+from .errors import did_you_mean
+
 if TYPE_CHECKING:  # allocator.model imports this module
     from .model import Case, Requirement
 
@@ -101,7 +103,7 @@ def _describe(node: ast.AST) -> str:
     return type(node).__name__
 
 
-def _compile(node: ast.AST, names: frozenset[str] | None, depth: int = 0):
+def _compile(node: ast.AST, names: frozenset[str] | None, depth: int = 0, what: str = "a contributor"):
     """Check ``node`` against the whitelist and return ``(closure, used_names)``.
 
     The closure takes a mapping name -> value (float, array or complex) and returns
@@ -110,7 +112,7 @@ def _compile(node: ast.AST, names: frozenset[str] | None, depth: int = 0):
     if depth > MAX_EXPRESSION_DEPTH:
         raise ExpressionError(f"expression is nested deeper than {MAX_EXPRESSION_DEPTH} levels")
     if isinstance(node, ast.Expression):
-        return _compile(node.body, names, depth + 1)
+        return _compile(node.body, names, depth + 1, what)
     if isinstance(node, ast.Constant):
         if isinstance(node.value, bool) or not isinstance(node.value, (int, float)):
             raise ExpressionError(f"{_describe(node)} is not allowed (numbers only)")
@@ -130,16 +132,16 @@ def _compile(node: ast.AST, names: frozenset[str] | None, depth: int = 0):
         if ident in FUNCTIONS:
             raise ExpressionError(f"function '{ident}' must be called, e.g. {ident}(x)")
         if names is not None and ident not in names:
-            raise ExpressionError(f"unknown name '{ident}' (not a contributor)")
+            raise ExpressionError(f"unknown name '{ident}' (not {what}){did_you_mean(ident, names)}")
         return (lambda env, k=ident: env[k]), frozenset({ident})
     if isinstance(node, ast.UnaryOp) and isinstance(node.op, (ast.USub, ast.UAdd)):
-        inner, used = _compile(node.operand, names, depth + 1)
+        inner, used = _compile(node.operand, names, depth + 1, what)
         if isinstance(node.op, ast.USub):
             return (lambda env: -inner(env)), used
         return inner, used
     if isinstance(node, ast.BinOp) and type(node.op) in _BINARY:
-        left, used_l = _compile(node.left, names, depth + 1)
-        right, used_r = _compile(node.right, names, depth + 1)
+        left, used_l = _compile(node.left, names, depth + 1, what)
+        right, used_r = _compile(node.right, names, depth + 1, what)
         if isinstance(node.op, ast.Pow) and not used_r:
             # a constant exponent must be modest: 9**9**9 would overflow or hang
             with np.errstate(all="ignore"):
@@ -165,7 +167,7 @@ def _compile(node: ast.AST, names: frozenset[str] | None, depth: int = 0):
             )
         if any(isinstance(a, ast.Starred) for a in node.args):
             raise ExpressionError("starred arguments are not allowed")
-        compiled = [_compile(a, names, depth + 1) for a in node.args]
+        compiled = [_compile(a, names, depth + 1, what) for a in node.args]
         closures = [c for c, _ in compiled]
         used = frozenset().union(*(u for _, u in compiled))
         if arity == 1:
@@ -189,7 +191,9 @@ class CompiledExpression:
             return self._fn(values)
 
 
-def compile_expression(text: str, names: Iterable[str] | None = None) -> CompiledExpression:
+def compile_expression(
+    text: str, names: Iterable[str] | None = None, *, what: str = "a contributor"
+) -> CompiledExpression:
     """Parse and check ``text``; raise :class:`ExpressionError` if it is not allowed.
 
     Parameters
@@ -199,11 +203,14 @@ def compile_expression(text: str, names: Iterable[str] | None = None) -> Compile
     names : iterable of str, optional
         Contributor names allowed in the expression; any other identifier is an error.
         ``None`` accepts any identifier as a contributor name.
+    what : str, optional
+        What an allowed name is, for the message about any other name
+        (``"a contributor or unknown"`` in a closure equation).
     """
     tree = _parse(text)
     allowed = None if names is None else frozenset(names)
     try:
-        fn, used = _compile(tree, allowed)
+        fn, used = _compile(tree, allowed, 0, what)
     except RecursionError:
         raise ExpressionError("expression is nested too deeply") from None
     order = [n.id for n in ast.walk(tree) if isinstance(n, ast.Name) and n.id in used]
@@ -284,7 +291,10 @@ def linearise(case: Case, requirement: Requirement) -> Linearisation:
     """Nominal response and exact sensitivities of ``requirement`` in ``case``.
 
     For a chain the sensitivities are the coefficients; for an expression they are
-    exact derivatives at the nominals (complex step).
+    exact derivatives at the nominals (complex step). An expression that names unknowns
+    of the closure equations is taken at their nominal solution (``case.loop``), and its
+    sensitivities go through the loop: ``dy/dx = ∂f/∂x − ∂f/∂u · (∂F/∂u)⁻¹ · ∂F/∂x``
+    (implicit function theorem; :mod:`allocator.closure`).
     """
     names = case.names
     a = np.zeros(len(names))
@@ -294,7 +304,11 @@ def linearise(case: Case, requirement: Requirement) -> Linearisation:
             a[case.index(name)] = float(coeff)
         y0 = float(sum(a[case.index(n)] * nominal_at[n] for n in requirement.chain))
         return Linearisation(requirement.name, y0, a, True)
-    expr = compile_expression(requirement.expression, names)
+    unknowns = case.unknown_names
+    expr = compile_expression(requirement.expression, names + unknowns, what="a contributor or unknown")
+    loop = case.loop if any(n in unknowns for n in expr.names) else None
+    if loop is not None:  # the unknowns at the nominal solution of the closure equations
+        nominal_at.update(loop.values_by_name)
     with np.errstate(all="ignore"):
         y0 = expr.evaluate(nominal_at)
     y0 = float(np.real(y0))
@@ -305,7 +319,11 @@ def linearise(case: Case, requirement: Requirement) -> Linearisation:
         if not np.all(np.isfinite(grad)):
             raise ExpressionError("expression has no finite derivative at the nominals")
         for name, g in zip(expr.names, grad):
-            a[case.index(name)] = g
+            if loop is not None and name in loop.unknowns:
+                # implicit function theorem: dy/dx = ∂f/∂x + ∂f/∂u · du/dx, du/dx = −F_u⁻¹ F_x
+                a += g * loop.d_unknowns[loop.unknowns.index(name)]
+            else:
+                a[case.index(name)] += g
     return Linearisation(requirement.name, y0, a, False)
 
 
@@ -325,5 +343,11 @@ def evaluate_response(case: Case, requirement: Requirement, values: Mapping[str,
         for name, coeff in requirement.chain.items():
             total = total + float(coeff) * np.asarray(values[name], dtype=float)
         return np.asarray(total, dtype=float)
-    expr = compile_expression(requirement.expression, case.names)
+    unknowns = case.unknown_names
+    expr = compile_expression(requirement.expression, case.names + unknowns, what="a contributor or unknown")
+    if any(name in unknowns for name in expr.names):
+        raise ExpressionError(
+            f"requirement {requirement.name!r} names unknowns of the closure equations; "
+            "evaluate it with allocator.closure.ResponseEvaluator, which solves the loop per sample"
+        )
     return np.asarray(expr.evaluate(values), dtype=float)

@@ -289,6 +289,31 @@ class Requirement:
 
 
 @dataclass(frozen=True)
+class Unknown:
+    """A quantity the assembly settles at (an angle, a position), not a contributor.
+
+    Its value is the solution of the case's closure equations (docs/closure.md); ``guess``
+    only starts the nominal solve.
+    """
+
+    name: str
+    guess: float
+    description: str = ""
+
+
+@dataclass(frozen=True)
+class Closure:
+    """One closure equation of an implicit assembly: ``equation = 0``.
+
+    ``equation`` is written in the expression grammar and may name contributors and
+    unknowns; ``name`` labels it in messages (empty: ``closure[i]``).
+    """
+
+    equation: str
+    name: str = ""
+
+
+@dataclass(frozen=True)
 class AllocationSettings:
     """The case file's ``[allocation]`` table: the models to solve and the rounding."""
 
@@ -352,11 +377,35 @@ class Case:
     path: Path | None = None  # the file it was read from, if any
     sha256: str | None = None  # hash of that file's bytes, for reproducibility
     offers: tuple[Offer, ...] = ()  # the case file's [[offer]] tables, in file order
+    unknowns: tuple[Unknown, ...] = ()  # an implicit assembly's unknowns (docs/closure.md)
+    closures: tuple[Closure, ...] = ()  # and its closure equations, one per unknown
 
     @property
     def names(self) -> tuple[str, ...]:
         """Contributor names in case order."""
         return tuple(c.name for c in self.contributors)
+
+    @property
+    def unknown_names(self) -> tuple[str, ...]:
+        """Names of the unknowns of the closure equations, in case order (empty if none)."""
+        return tuple(u.name for u in self.unknowns)
+
+    @cached_property
+    def loop(self):
+        """The closure equations solved at the nominals (:class:`allocator.closure.LoopSolution`).
+
+        None when the case has no unknowns. Solved once per case, on first use.
+
+        Raises
+        ------
+        allocator.closure.ClosureError
+            The loop does not close at the nominals (singular or no convergence).
+        """
+        if not self.unknowns:
+            return None
+        from .closure import solve_loop
+
+        return solve_loop(self)
 
     @cached_property
     def _positions(self) -> dict[str, int]:

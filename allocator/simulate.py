@@ -42,7 +42,8 @@ import numpy as np
 from numpy.typing import ArrayLike
 
 from . import stack
-from .chain import compile_expression, linearise, nominal_values
+from .chain import linearise, nominal_values
+from .closure import ResponseEvaluator
 from .convolve import linear_sum_distribution
 from .errors import CaseError, UsageError, unknown_names
 from .ppm import fraction_to_ppm
@@ -132,6 +133,9 @@ class RequirementCheck:
     Fallouts are in ppm of assemblies. ``below`` / ``above`` / ``undefined`` count the
     sampled assemblies under the lower limit, over the upper limit and with a response
     that is not a number (e.g. ``sqrt`` of a negative value; counted as failures).
+    ``not_closed`` counts, for a response through closure equations (``through_loop``),
+    the assemblies whose loop cannot close (no solution near the nominal one): they
+    cannot be built and are counted as failures too, apart from ``undefined``.
     """
 
     name: str
@@ -165,11 +169,13 @@ class RequirementCheck:
     underflow: int = 0
     overflow: int = 0
     units: str = ""  # label of the response, its limits, mean, std and histogram edges
+    through_loop: bool = False  # the response names unknowns of the closure equations
+    not_closed: int = 0  # assemblies whose loop cannot close (failures, not in undefined)
 
     @property
     def failures(self) -> int:
-        """Assemblies outside the limits: below + above + undefined."""
-        return self.below + self.above + self.undefined
+        """Assemblies outside the limits: below + above + undefined + not_closed."""
+        return self.below + self.above + self.undefined + self.not_closed
 
     def to_dict(self, histogram: bool = True) -> dict:
         """JSON-ready dict of the check (the histogram too unless ``histogram=False``)."""
@@ -202,6 +208,9 @@ class RequirementCheck:
             "std": self.std,
             "units": self.units,
         }
+        if self.through_loop:  # only for responses through closure equations (keeps v1 output)
+            out["through_loop"] = True
+            out["not_closed"] = self.not_closed
         if histogram:
             out["histogram"] = {
                 "edges": self.histogram_edges.tolist(),
@@ -532,6 +541,11 @@ class _Engine:
         columns = sampler.n_normal + sampler.n_uniform
         row_bytes = 8 * (columns + (sampler.n if self.nonlinear else 0) + 3 * n_req) + n_req
         self.block = block = _block_size(max(row_bytes // 8, 1))
+        # the closure's Newton arrays per row count toward the chunk only: the stream's
+        # blocks stay those of the same case solved by hand
+        m = len(case.unknowns)
+        if m and self.nonlinear:
+            row_bytes += 8 * (6 * m + 2 * m * m)
         if chunk_size is None:
             chunk_blocks = max(1, CHUNK_BYTES // (row_bytes * block))
         else:
@@ -544,9 +558,15 @@ class _Engine:
         self.wz, self.wu, offset = sampler.linear_weights(a_lin)
         self.centre = np.array([p.shifted_mean for p in self.order])
         self.lin_const = offset  # the chains' shifted means cancel against the centre
-        self.compiled = [compile_expression(p.requirement.expression, case.names) for p in self.nonlinear]
+        self.evaluator = ResponseEvaluator(case) if self.nonlinear else None
         nominal_at = nominal_values(case)
         self.base_values = np.array([nominal_at[name] for name in case.names])
+        # per column of `order`: assemblies whose closure loop could not close
+        self.not_closed = np.zeros(n_req, dtype=np.int64)
+        self.through_loop = np.array(
+            [self.evaluator is not None and not p.linear and self.evaluator.through_loop(p.requirement)
+             for p in self.order]
+        )
 
     def chunks(self, blocks: range | None = None):
         """Yield ``(y, spans)`` per chunk: responses minus centre, and the blocks
@@ -579,11 +599,18 @@ class _Engine:
                     y_lin += self.lin_const
                 if self.nonlinear:
                     dev = sampler.deviations(z[part], u[part])
-                    for j, (plan, expr) in enumerate(zip(self.nonlinear, self.compiled)):
+                    solved = {}  # one closure solve per distinct mean-shift placement
+                    for j, plan in enumerate(self.nonlinear):
                         values = dev + (self.base_values + plan.shift)
-                        env = {name: values[:, i] for i, name in enumerate(self.case.names)}
-                        response = np.broadcast_to(expr.evaluate(env), (size,))
-                        y[part, n_lin + j] = np.real(response) - plan.shifted_mean
+                        unknowns = None
+                        if self.through_loop[n_lin + j]:
+                            key = plan.shift.tobytes()
+                            if key not in solved:
+                                solved[key] = self.evaluator.solve(values)
+                            unknowns = solved[key]
+                        response, closed = self.evaluator(plan.requirement, values, unknowns=unknowns)
+                        y[part, n_lin + j] = response - plan.shifted_mean
+                        self.not_closed[n_lin + j] += size - np.count_nonzero(closed)
             yield y, spans
 
 
@@ -724,7 +751,7 @@ def verify(
                     bar.update(part.rows)
     tally.finish()
 
-    failures = tally.below + tally.above + tally.undefined
+    failures = tally.below + tally.above + tally.undefined  # undefined holds the unclosed loops
     ci_low, ci_high = clopper_pearson(failures, samples)
     checks = [
         _requirement_check(case, engine, t, tally, j, (float(ci_low[j]), float(ci_high[j])))
@@ -948,6 +975,7 @@ def _requirement_check(case, engine: _Engine, t: np.ndarray, tally: _Tally, j: i
     """The result for requirement column ``j``: counts, interval ``ci`` (fractions), predictions, histogram."""
     plan = engine.order[j]
     req, samples = plan.requirement, engine.samples
+    not_closed = int(engine.not_closed[j])  # nan responses, counted apart from undefined
     failures = tally.below[j] + tally.above[j] + tally.undefined[j]
     fallout_ppm = fraction_to_ppm(failures / samples)
     lo_ppm, hi_ppm = fraction_to_ppm(ci[0]), fraction_to_ppm(ci[1])
@@ -963,7 +991,7 @@ def _requirement_check(case, engine: _Engine, t: np.ndarray, tally: _Tally, j: i
         samples=samples,
         below=int(tally.below[j]),
         above=int(tally.above[j]),
-        undefined=int(tally.undefined[j]),
+        undefined=int(tally.undefined[j]) - not_closed,
         fallout_ppm=float(fallout_ppm),
         ci_low_ppm=lo_ppm,
         ci_high_ppm=hi_ppm,
@@ -987,6 +1015,8 @@ def _requirement_check(case, engine: _Engine, t: np.ndarray, tally: _Tally, j: i
         underflow=int(hist[j, 0]),
         overflow=int(hist[j, -1]),
         units=case.requirement_units(req.name),
+        through_loop=bool(engine.through_loop[j]),
+        not_closed=not_closed,
     )
 
 

@@ -86,7 +86,7 @@ USER_MODULES = [
     "allocator.costs", "allocator.grades", "allocator.convolve", "allocator.ppm", "allocator.errors",
     "allocator.files", "allocator.status", "allocator.display", "allocator.sweep", "allocator.simulate",
     "allocator.economics", "allocator.supplier", "allocator.offers", "allocator.solve", "allocator.solve.result",
-    "allocator.report",
+    "allocator.report", "allocator.closure",
 ]
 
 

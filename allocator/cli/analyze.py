@@ -47,11 +47,25 @@ def analyze(case_file, as_json, as_csv):
         write_csv(result.contributions_frame(), index_label=["requirement", "name"])
         return
     click.echo(f"{case.title}  [{units_title(case)}]")
+    if result.unknowns:
+        click.echo("")
+        click.echo("closure equations solved at the nominals:")
+        click.echo(
+            text_table(
+                [[u.name, fmt(u.nominal, 9), u.description] for u in result.unknowns],
+                ["unknown", "nominal", "description"],
+            )
+        )
     for r in result.requirements:
         limits = f"[{fmt(r.lower, 6)}, {fmt(r.upper, 6)}]"
         click.echo("")
         name = f"{r.name} [{r.units}]" if r.units else r.name
-        click.echo(f"requirement {name}: limits {limits}" + ("" if r.linear else "  (linearised expression)"))
+        kind = ""
+        if r.through_loop:
+            kind = f"  (through the closure loop: {', '.join(r.through_loop)}; linearised)"
+        elif not r.linear:
+            kind = "  (linearised expression)"
+        click.echo(f"requirement {name}: limits {limits}{kind}")
         verdict = "inside limits" if r.worst_case_ok else "OUTSIDE limits: " + _misses(r)
         click.echo(
             f"  nominal {fmt(r.nominal, 6)}   worst case [{fmt(r.worst_case_min, 6)}, "
@@ -74,13 +88,13 @@ def analyze(case_file, as_json, as_csv):
              labelled(fmt(c.tolerance), c.units, tol), fmt(c.worst_case), f"{100 * c.variance_share:.1f}"]
             for c in r.contributions
         ]
-        click.echo(
-            text_table(
-                rows,
-                ["contributor", unit_header("sensitivity", per), "count", unit_header("± tol", tol),
-                 unit_header("± worst case", r.units), "% variance"],
-            )
-        )
+        headers = ["contributor", unit_header("sensitivity", per), "count", unit_header("± tol", tol),
+                   unit_header("± worst case", r.units), "% variance"]
+        if r.through_loop:  # the total split: held unknowns + through the loop
+            for row, c in zip(rows, r.contributions):
+                row[2:2] = [fmt(c.direct_sensitivity), fmt(c.loop_sensitivity)]
+            headers[2:2] = ["direct", "through loop"]
+        click.echo(text_table(rows, headers))
 
 
 def _misses(r) -> str:

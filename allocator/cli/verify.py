@@ -362,9 +362,15 @@ def _print_human(case, result, source: str, plot, made_by: dict) -> None:
                 f"(the {why} model may not fit; ~5 % of runs by chance)"
             )
         if not c.linear:
-            notes.append(f"{c.name}: no convolution (nonlinear expression)")
+            kind = "response through closure equations" if c.through_loop else "nonlinear expression"
+            notes.append(f"{c.name}: no convolution ({kind})")
         if c.undefined:
             notes.append(f"{c.name}: {c.undefined:,} assemblies with an undefined response, counted as failures")
+        if c.not_closed:
+            notes.append(
+                f"{c.name}: {c.not_closed:,} assemblies whose loop cannot close (the closure equations "
+                "have no solution near the nominal one), counted as failures"
+            )
     if made_by:
         parts = [f"{name} by {p}" if p else f"{name} by none of its processes (own cp)" for name, p in made_by.items()]
         shown = ", ".join(parts[:6]) + (f" and {len(parts) - 6} more (--json lists all)" if len(parts) > 6 else "")

@@ -64,8 +64,9 @@ CAUTIONS = (
     "Before relying on a statistical tolerance, confirm each process with measured capability "
     "data (Cp, Cpk from a stable run) and keep monitoring it in production; a drifting or "
     "incapable process invalidates the ppm figures.",
-    "Requirements given as expressions are linearised at the nominals for RSS and allocation; "
-    "the Monte Carlo section evaluates the exact expression and shows where that matters.",
+    "Requirements given as expressions (or through closure equations) are linearised at the "
+    "nominals for RSS and allocation; the Monte Carlo section evaluates the exact expression "
+    "(solving the closure for every assembly) and shows where that matters.",
     "Safety-critical fits, and anything whose failure can hurt people, must be designed worst "
     "case and checked against the applicable codes and standards, with review by a licensed or "
     "otherwise qualified engineer.",
@@ -362,7 +363,7 @@ def analysis(report) -> str:
         "Computed by <code>allocator.analysis.analyze</code>.</p>"
     )
     results = _analysis_table(report.analysis, "Stack results at the current tolerances")
-    parts = [intro, results]
+    parts = [intro, _unknowns_table(report.analysis), results]
     for r in report.analysis.requirements:
         per = Units(c.sensitivity_units for c in r.contributions)
         tol_units = Units(c.units for c in r.contributions)
@@ -371,16 +372,31 @@ def analysis(report) -> str:
              tol_units.cell(given(c.tolerance), c.units), num(c.worst_case), num(100 * c.variance_share, 3)]
             for c in r.contributions
         ]
-        parts.append(
-            table(
-                ["Contributor", per.head("Sensitivity ∂y/∂x"), "Count", tol_units.head("±t"),
-                 f"± worst-case share{unit_suffix(r.units)}", "Share of σ² [%]"],
-                rows,
-                numeric=[False, True, True, True, True, True],
-                caption=f"Contributors to {esc(r.name)}",
-            )
-        )
-    return section("analysis", "\n".join(parts))
+        headers = ["Contributor", per.head("Sensitivity ∂y/∂x"), "Count", tol_units.head("±t"),
+                   f"± worst-case share{unit_suffix(r.units)}", "Share of σ² [%]"]
+        numeric = [False, True, True, True, True, True]
+        caption = f"Contributors to {esc(r.name)}"
+        if r.through_loop:  # the sensitivity split: unknowns held + through the closure loop
+            for row, c in zip(rows, r.contributions):
+                row[2:2] = [num(c.direct_sensitivity), num(c.loop_sensitivity)]
+            headers[2:2] = ["Direct ∂f/∂x", "Through the loop ∂f/∂u·du/dx"]
+            numeric[2:2] = [True, True]
+            caption += f" (through the closure loop: {esc(', '.join(r.through_loop))})"
+        parts.append(table(headers, rows, numeric=numeric, caption=caption))
+    return section("analysis", "\n".join(p for p in parts if p))
+
+
+def _unknowns_table(result) -> str:
+    """The closure unknowns at the nominal solution; empty when the case has none."""
+    if not result.unknowns:
+        return ""
+    rows = [[esc(u.name), num(u.nominal, 9), esc(u.description)] for u in result.unknowns]
+    return table(
+        ["Unknown", "Nominal value", "Description"],
+        rows,
+        numeric=[False, True, False],
+        caption="Closure equations solved at the nominals (Newton; sensitivities by the implicit function theorem)",
+    )
 
 
 def _analysis_table(result, caption: str) -> str:
@@ -410,9 +426,17 @@ def _analysis_table(result, caption: str) -> str:
         row("Predicted fallout, mean at worst place [ppm]", [ppm(r.mean_shift_ppm) for r in reqs]),
         row("Fallout target [ppm]", [ppm(r.target_ppm) for r in reqs]),
         row("Meets target (RSS)", [flag("yes") if r.rss_ppm <= r.target_ppm else flag("NO", "bad") for r in reqs]),
-        row("Response", ["linear chain" if r.linear else "expression, linearised" for r in reqs]),
+        row("Response", [_response_kind(r) for r in reqs]),
     ]
     return table(headers, rows, numeric=[False] + [True] * len(reqs), caption=caption, cls="metrics")
+
+
+def _response_kind(r) -> str:
+    if r.linear:
+        return "linear chain"
+    if r.through_loop:
+        return f"through the closure loop ({esc(', '.join(r.through_loop))}), linearised"
+    return "expression, linearised"
 
 
 def _worst_case_flag(r) -> str:
@@ -678,6 +702,14 @@ def verification(report, svg: str) -> str:
         '<span class="tag bad">fail</span> when it lies above; <span class="tag">undecided</span> when the target lies '
         "inside the interval (more samples would decide; nothing is shown to fail).</p>"
     )
+    loops = [c for c in v.requirements if c.through_loop]
+    if loops:
+        counts = "; ".join(f"{esc(c.name)}: {c.not_closed:,}" for c in loops)
+        note += (
+            '<p class="note">Responses through the closure equations were solved for every simulated '
+            "assembly (Newton from the nominal solution). Assemblies whose loop cannot close (no "
+            f"solution near the nominal one) are counted as failures: {counts}.</p>"
+        )
     figure = f'<figure class="plot">{svg}<figcaption>Histogram of the simulated response with the limits (dashed) and the RSS normal curve (<code>allocator.simulate.render_verification_plot</code>).</figcaption></figure>'
     return section("verification", intro + results + note + figure)
 
