@@ -1,0 +1,1017 @@
+"""Tiny fallouts: FORM, SORM and importance sampling aimed at each limit.
+
+Plain Monte Carlo needs about ``100/p`` assemblies to see a fallout ``p`` with ±20 %
+precision: 10¹¹ for 1e-3 ppm. This module looks where the failures are instead.
+
+Standard normal space. Every random input becomes one coordinate ``u_j`` of a vector of
+independent standard normals: a normal contributor one coordinate for the sum of its
+``count`` instances (deviation ``σ·√count·u``), a uniform or triangular contributor one
+coordinate per instance, mapped to its deviation through the inverse CDF of its own
+distribution, ``x = F⁻¹(Φ(u))`` (the Rosenblatt transformation of independent inputs).
+A contributor's value is nominal plus the sum of its instances' deviations, plus the
+mean shift the Monte Carlo places (:mod:`allocator.simulate`, "Mean shift": per
+requirement, on the worse side).
+
+Per limit (lower and upper separately) with ``g(u) = (U − y)/σ`` or ``(y − L)/σ``, failure
+``g < 0``:
+
+- **FORM**: the most probable failure point ``u*`` (the point of the limit surface
+  ``g = 0`` closest to the origin) by the HL-RF iteration with a merit-function step
+  (Hasofer & Lind 1974; Rackwitz & Fiessler 1978; Zhang & Der Kiureghian 1995), reliability
+  index ``β = ±|u*|`` and ``P ≈ Φ(−β)``;
+- **SORM**: Breitung's (1984) curvature correction ``P ≈ Φ(−β) Π (1 + β κ_i)^(−½)`` with the
+  principal curvatures ``κ_i`` of the limit surface at ``u*``;
+- **importance sampling**: assemblies drawn from a mixture of unit normals centred at the
+  design point of each limit, plus a small share drawn from the true distribution
+  (defensive mixture, Hesterberg 1995); every sample carries the weight
+  ``φ(u) / q(u)`` with ``q`` the whole mixture (the balance heuristic: Veach & Guibas
+  1995; Owen & Zhou 2000). The estimate is unbiased whatever FORM found; FORM only decides
+  where the samples go. The confidence interval comes from the sample variance of the
+  weighted failure indicator within each stratum (fixed sample counts per component).
+
+The response is evaluated by an *evaluator*: a function of an ``(n, contributors)`` array
+of contributor values (each the sum of its instances, in case order) returning ``y`` (n,),
+or ``(y, closed)`` with a boolean mask of the assemblies whose response exists (the rest
+count as failures, like an undefined response in the Monte Carlo). :func:`response_evaluator`
+builds it for chains and expressions the way the Monte Carlo evaluates them; any other
+requirement kind needs only its own evaluator.
+
+Cautions: the results assume stable, capable processes with the stated distributions and
+independent contributors; safety-critical fits are checked worst case and against the
+applicable codes and a licensed engineering review. Far-tail estimates are only as good as
+the stated distributions are in their tails.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+from typing import TYPE_CHECKING, Callable, Mapping
+
+import numpy as np
+
+from .convolve import linear_sum_distribution
+from .ppm import fraction_to_ppm
+
+if TYPE_CHECKING:  # pandas is imported where it is used
+    import pandas as pd
+
+    from .model import Case, Requirement
+    from .simulate import Tolerances
+
+__all__ = [
+    "StandardSpace",
+    "DesignPoint",
+    "LimitEstimate",
+    "form",
+    "importance_estimate",
+    "response_evaluator",
+    "ImportanceCheck",
+    "ImportanceVerification",
+    "verify_importance",
+]
+
+CONFIDENCE = 0.95
+DEFENSIVE_SHARE = 0.1  # of the samples drawn from the true distribution (bounds every weight by 10)
+MIN_COMPONENT_SHARE = 0.1  # each reachable limit gets at least this share of the aimed samples
+BETA_MAX = 37.0  # Φ(−37) ≈ 6e-300: a limit farther away than this is unreachable
+BLOCK = 2**15  # samples per random-stream block (results do not depend on anything else)
+HISTOGRAM_BINS = 200
+_SQRT2 = math.sqrt(2.0)
+_LOG_SQRT_2PI = 0.5 * math.log(2.0 * math.pi)
+
+Evaluator = Callable[[np.ndarray], object]
+
+
+# --------------------------------------------------------------------------- the map u -> x
+
+
+class StandardSpace:
+    """The map from independent standard normals ``u`` to contributor values.
+
+    Parameters
+    ----------
+    distributions : sequence of {'normal', 'uniform', 'triangular'}
+        Per contributor.
+    counts : array_like of int
+        Instances per assembly [-].
+    tolerances : array_like
+        ± tolerance per contributor [length].
+    sigma_factors : array_like
+        σ/t per contributor (normal ones only are used) [-].
+    base : array_like
+        Value of each contributor (sum of its instances) with every deviation 0, mean
+        shift included [length].
+
+    Notes
+    -----
+    Coordinates are ordered by contributor. Deviations of one coordinate: normal
+    ``σ√n·u``; uniform on ±t ``t·erf(u/√2)`` (= ``t(2Φ(u) − 1)``); symmetric triangular on
+    ±t ``sign(u)·t·(1 − √(2Φ(−|u|)))``. Both are written with the smaller tail
+    probability, so the map keeps its accuracy where failures happen.
+    """
+
+    def __init__(self, distributions, counts, tolerances, sigma_factors, base):
+        counts = np.asarray(counts, dtype=int)
+        t = np.asarray(tolerances, dtype=float)
+        f = np.asarray(sigma_factors, dtype=float)
+        owner, kind, scale = [], [], []
+        for i, dist in enumerate(distributions):
+            if dist == "normal":
+                owner.append(i)
+                kind.append(0)
+                scale.append(f[i] * t[i] * math.sqrt(counts[i]))
+            else:
+                code = 1 if dist == "uniform" else 2
+                owner += [i] * int(counts[i])
+                kind += [code] * int(counts[i])
+                scale += [t[i]] * int(counts[i])
+        self.owner = np.array(owner, dtype=int)
+        self.kind = np.array(kind, dtype=int)
+        self.scale = np.array(scale, dtype=float)
+        self.base = np.asarray(base, dtype=float)
+        self.n = len(self.base)
+        self.starts = np.searchsorted(self.owner, np.arange(self.n))
+        self.names = None
+
+    @property
+    def dimension(self) -> int:
+        """Number of standard normal coordinates ``d``."""
+        return len(self.owner)
+
+    def deviations(self, u: np.ndarray) -> np.ndarray:
+        """Deviation of each coordinate's instance (same shape as ``u``) [length]."""
+        from scipy import special
+
+        u = np.asarray(u, dtype=float)
+        out = u * self.scale
+        uni = self.kind == 1
+        if uni.any():
+            out[..., uni] = self.scale[uni] * special.erf(u[..., uni] / _SQRT2)
+        tri = self.kind == 2
+        if tri.any():
+            a = u[..., tri]
+            out[..., tri] = np.sign(a) * self.scale[tri] * (1.0 - np.sqrt(special.erfc(np.abs(a) / _SQRT2)))
+        return out
+
+    def derivatives(self, u: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """First and second derivatives of each deviation by its own coordinate."""
+        from scipy import special
+
+        u = np.asarray(u, dtype=float)
+        d1 = np.broadcast_to(self.scale, u.shape).copy()
+        d2 = np.zeros_like(u)
+        log_pdf = -0.5 * u * u - _LOG_SQRT_2PI
+        uni = self.kind == 1
+        if uni.any():
+            d1[..., uni] = 2.0 * self.scale[uni] * np.exp(log_pdf[..., uni])
+            d2[..., uni] = -u[..., uni] * d1[..., uni]
+        tri = self.kind == 2
+        if tri.any():
+            a = np.abs(u[..., tri])
+            log_tail2 = math.log(2.0) + special.log_ndtr(-a)  # log 2Φ(−|u|)
+            d1[..., tri] = self.scale[tri] * np.exp(log_pdf[..., tri] - 0.5 * log_tail2)
+            mills = np.exp(log_pdf[..., tri] - log_tail2)  # φ / (2Φ(−|u|))
+            d2[..., tri] = np.sign(u[..., tri]) * d1[..., tri] * (mills - a)
+        return d1, d2
+
+    def values(self, u: np.ndarray) -> np.ndarray:
+        """Contributor values (rows × contributors) at standard normal points ``u`` [length]."""
+        dev = self.deviations(np.atleast_2d(u))
+        return self.base + np.add.reduceat(dev, self.starts, axis=1)
+
+
+# --------------------------------------------------------------------------- the response
+
+
+def _responses(evaluate: Evaluator, values: np.ndarray) -> np.ndarray:
+    """``y`` per row, NaN where the evaluator says the assembly does not close."""
+    out = evaluate(values)
+    if isinstance(out, tuple):
+        y, closed = out
+        y = np.where(np.asarray(closed, dtype=bool), np.asarray(y, dtype=float), np.nan)
+    else:
+        y = out
+    return np.broadcast_to(np.asarray(y, dtype=float), (len(values),))
+
+
+def response_evaluator(case: Case, requirement: Requirement) -> Evaluator:
+    """The evaluator of a chain or expression requirement: values (n, contributors) -> y (n,).
+
+    The expression is compiled and evaluated exactly as the Monte Carlo does
+    (:func:`allocator.chain.compile_expression` on contributor names, the real part
+    kept); a chain is ``ȳ + Σ a_i (x_i − x̄_i)``.
+    """
+    from .chain import compile_expression, linearise, nominal_values
+
+    at = nominal_values(case)
+    base = np.array([at[name] for name in case.names])
+    if requirement.chain is not None:
+        lin = linearise(case, requirement)
+        a, y0 = lin.sensitivity, lin.nominal
+
+        def chain(values: np.ndarray) -> np.ndarray:
+            return y0 + (values - base) @ a
+
+        return chain
+    expr = compile_expression(requirement.expression, case.names)
+    names = case.names
+
+    def expression(values: np.ndarray) -> np.ndarray:
+        env = {name: values[:, i] for i, name in enumerate(names)}
+        with np.errstate(all="ignore"):
+            return np.real(np.broadcast_to(expr.evaluate(env), (len(values),)))
+
+    return expression
+
+
+class _Limit:
+    """``g(u)`` of one limit, failure ``g < 0``, with its gradient and Hessian in u-space."""
+
+    def __init__(self, space: StandardSpace, evaluate: Evaluator, limit: float, side: int, scale: float,
+                 steps: np.ndarray, linear: bool):
+        self.space, self.evaluate, self.limit, self.side = space, evaluate, limit, side
+        self.scale, self.steps, self.linear = scale, steps, linear
+
+    def from_y(self, y):
+        return self.side * (self.limit - y) / self.scale  # side +1: upper limit, −1: lower
+
+    def value(self, u: np.ndarray) -> float:
+        return float(self.from_y(_responses(self.evaluate, self.space.values(u))[0]))
+
+    def _x_gradient(self, x: np.ndarray) -> np.ndarray:
+        """Central differences of y in the contributor values (one evaluator call)."""
+        n, h = len(x), self.steps
+        rows = np.repeat(x[None, :], 2 * n, axis=0)
+        rows[np.arange(n), np.arange(n)] += h
+        rows[n + np.arange(n), np.arange(n)] -= h
+        y = _responses(self.evaluate, rows)
+        return (y[:n] - y[n:]) / (2.0 * h)
+
+    def gradient(self, u: np.ndarray) -> tuple[float, np.ndarray, np.ndarray]:
+        """``g(u)``, ``∇g(u)`` and ``∂g/∂x`` per contributor."""
+        x = self.space.values(u)[0]
+        g = float(self.from_y(_responses(self.evaluate, x[None, :])[0]))
+        dg_dx = -self.side * self._x_gradient(x) / self.scale
+        d1, _ = self.space.derivatives(u)
+        return g, dg_dx[self.space.owner] * d1, dg_dx
+
+    def hessian(self, u: np.ndarray) -> np.ndarray:
+        """Hessian of ``g`` in u-space by the chain rule (x-space Hessian by differences)."""
+        space = self.space
+        x = space.values(u)[0]
+        _, _, dg_dx = self.gradient(u)
+        d1, d2 = space.derivatives(u)
+        h_u = np.diag(dg_dx[space.owner] * d2)
+        if not self.linear:
+            n = len(x)
+            h = 10.0 * self.steps
+            i, k = np.triu_indices(n)
+            rows = np.repeat(x[None, :], 4 * len(i), axis=0)
+            m = len(i)
+            for q, (si, sk) in enumerate(((1, 1), (1, -1), (-1, 1), (-1, -1))):
+                block = rows[q * m : (q + 1) * m]
+                block[np.arange(m), i] += si * h[i]
+                block[np.arange(m), k] += sk * h[k]
+            y = _responses(self.evaluate, rows).reshape(4, m)
+            second = (y[0] - y[1] - y[2] + y[3]) / (4.0 * h[i] * h[k])
+            h_x = np.zeros((n, n))
+            h_x[i, k] = second
+            h_x[k, i] = second
+            h_x *= -self.side / self.scale
+            o = space.owner
+            h_u += h_x[np.ix_(o, o)] * np.outer(d1, d1)
+        return h_u
+
+
+# --------------------------------------------------------------------------- FORM and SORM
+
+
+@dataclass(frozen=True)
+class DesignPoint:
+    """Most probable failure point of one limit (FORM), with the SORM correction.
+
+    Attributes
+    ----------
+    status : {'converged', 'unreachable', 'not-converged'}
+        'unreachable': no failure within ``|u| ≤ BETA_MAX`` (probability below 1e-299).
+    u : numpy.ndarray
+        Design point in standard normal space.
+    beta : float
+        Reliability index, ``+|u*|`` when the nominal assembly is inside the limit [-].
+    form : float
+        ``Φ(−β)`` [-] (0 when unreachable; NaN when not converged).
+    sorm : float
+        Breitung's estimate [-]; NaN when it does not apply (β ≤ 0, ``1 + βκ ≤ 0``,
+        not converged).
+    curvatures : numpy.ndarray
+        Principal curvatures of the limit surface at ``u*`` (positive: bending away
+        from the origin) [1/σ].
+    iterations : int
+    """
+
+    status: str
+    u: np.ndarray
+    beta: float
+    form: float
+    sorm: float
+    curvatures: np.ndarray
+    iterations: int
+
+
+def form(limit: _Limit, *, max_iterations: int = 100, tol: float = 1e-9, sorm: bool = True) -> DesignPoint:
+    """Design point of one limit by the HL-RF iteration with a merit-function step.
+
+    Notes
+    -----
+    HL-RF: ``u ← [(∇g·u − g)/|∇g|²] ∇g``. The step toward it is halved until the merit
+    ``½|u|² + c|g|`` decreases, with ``c > |u|/|∇g|`` (Zhang & Der Kiureghian 1995);
+    trial points stay in ``|u| ≤ BETA_MAX``. Converged when ``|g| ≤ tol`` (g is in σ
+    of the response) and ``u`` is parallel to ``∇g`` to ``1e-6``. SORM: the Hessian
+    of ``g`` divided by ``|∇g|``, restricted to the plane normal to ``u*``, gives the
+    curvatures ``κ_i``; ``P ≈ Φ(−β) Π (1 + β κ_i)^(−½)`` (Breitung 1984).
+
+    References
+    ----------
+    .. [1] Hasofer, A. M. and Lind, N. C. (1974). Exact and invariant second-moment code
+       format. Journal of the Engineering Mechanics Division 100(1), 111-121.
+    .. [2] Rackwitz, R. and Fiessler, B. (1978). Structural reliability under combined
+       random load sequences. Computers & Structures 9(5), 489-494.
+    .. [3] Zhang, Y. and Der Kiureghian, A. (1995). Two improved algorithms for
+       reliability analysis. Reliability and Optimization of Structural Systems,
+       Springer, 297-304.
+    .. [4] Breitung, K. (1984). Asymptotic approximations for multinormal integrals.
+       Journal of Engineering Mechanics 110(3), 357-366.
+    """
+    from scipy import special
+
+    d = limit.space.dimension
+    u = np.zeros(d)
+    g, grad, _ = limit.gradient(u)
+    c = 1.0
+    converged = False
+    it = 0
+    for it in range(1, max_iterations + 1):
+        norm = float(np.linalg.norm(grad))
+        if not (math.isfinite(g) and norm > 0 and np.all(np.isfinite(grad))):
+            break
+        target = (float(grad @ u) - g) / norm**2 * grad
+        c = max(c, 2.0 * float(np.linalg.norm(u)) / norm + 1.0)
+        merit = 0.5 * float(u @ u) + c * abs(g)
+        step, accepted = 1.0, None
+        while step > 1e-6:
+            trial = u + step * (target - u)
+            r = float(np.linalg.norm(trial))
+            if r > BETA_MAX:
+                trial *= BETA_MAX / r
+            g_trial = limit.value(trial)
+            if math.isfinite(g_trial) and 0.5 * float(trial @ trial) + c * abs(g_trial) <= merit:
+                accepted = trial
+                break
+            step *= 0.5
+        if accepted is None:  # no decrease: take the smallest finite step anyway
+            accepted = u + step * (target - u)
+        moved = float(np.linalg.norm(accepted - u))
+        u = accepted
+        g, grad, _ = limit.gradient(u)
+        norm = float(np.linalg.norm(grad))
+        if not (math.isfinite(g) and norm > 0):
+            break
+        alpha = -grad / norm
+        off_line = float(np.linalg.norm(u - float(alpha @ u) * alpha))
+        if abs(g) <= tol and off_line <= 1e-6 * max(1.0, float(np.linalg.norm(u))):
+            converged = True
+            break
+        if np.linalg.norm(u) >= BETA_MAX * (1 - 1e-9) and g > 0 and moved < 1e-9:
+            break
+    radius = float(np.linalg.norm(u))
+    empty = np.zeros(0)
+    if not converged:
+        if radius >= BETA_MAX * (1 - 1e-6) and math.isfinite(g) and g > 0:
+            return DesignPoint("unreachable", u, math.inf, 0.0, 0.0, empty, it)
+        return DesignPoint("not-converged", u, math.nan, math.nan, math.nan, empty, it)
+    g0 = limit.value(np.zeros(d))
+    beta = radius if g0 >= 0 else -radius
+    p_form = float(special.ndtr(-beta))
+    p_sorm, kappa = math.nan, empty
+    if sorm and d > 1 and beta > 0:
+        alpha = -grad / np.linalg.norm(grad)
+        basis, _ = np.linalg.qr(np.column_stack([alpha, np.eye(d)]))
+        normal_plane = basis[:, 1:d]
+        h = limit.hessian(u) / np.linalg.norm(grad)
+        kappa = np.linalg.eigvalsh(normal_plane.T @ h @ normal_plane)
+        factors = 1.0 + beta * kappa
+        if np.all(factors > 0):
+            p_sorm = p_form * float(np.prod(factors ** -0.5))
+    elif sorm and d == 1 and beta > 0:
+        p_sorm = p_form
+    return DesignPoint("converged", u, beta, p_form, p_sorm, kappa, it)
+
+
+# --------------------------------------------------------------------------- importance sampling
+
+
+@dataclass(frozen=True)
+class LimitEstimate:
+    """Importance-sampling estimate of one requirement's fallout (fractions, not ppm).
+
+    Attributes
+    ----------
+    probability, std_error : float
+        Estimate and its standard error [-].
+    ci_low, ci_high : float
+        Two-sided interval at :data:`CONFIDENCE` [-].
+    below, above, undefined : float
+        Estimates of the fallout under the lower limit, over the upper one and with no
+        response (they add up to ``probability``) [-].
+    samples : int
+        Assemblies drawn in all [-].
+    hits : int
+        Drawn assemblies that fail [-].
+    shares : dict
+        Samples per mixture component ('defensive', 'lower', 'upper').
+    histogram_edges, histogram_density : numpy.ndarray
+        Weighted (unbiased) density of the response over fixed bins [1/response].
+    """
+
+    probability: float
+    std_error: float
+    ci_low: float
+    ci_high: float
+    below: float
+    above: float
+    undefined: float
+    samples: int
+    hits: int
+    shares: dict
+    histogram_edges: np.ndarray = field(repr=False)
+    histogram_density: np.ndarray = field(repr=False)
+
+
+def _block_rng(seed: int, key: tuple) -> np.random.Generator:
+    return np.random.Generator(np.random.PCG64(np.random.SeedSequence(seed, spawn_key=key)))
+
+
+def importance_estimate(
+    space: StandardSpace,
+    evaluate: Evaluator,
+    lower: float | None,
+    upper: float | None,
+    centres: Mapping[str, np.ndarray],
+    weights: Mapping[str, float] | None = None,
+    *,
+    samples: int = 100_000,
+    seed: int = 0,
+    stream: int = 0,
+    histogram_range: tuple[float, float] | None = None,
+    bins: int = HISTOGRAM_BINS,
+) -> LimitEstimate:
+    """Fallout ``P(y < lower or y > upper or y undefined)`` by a defensive normal mixture.
+
+    Parameters
+    ----------
+    space : StandardSpace
+    evaluate : callable
+        Contributor values (n, contributors) -> ``y`` or ``(y, closed)``.
+    lower, upper : float or None
+        Limits of the response (None: no such limit) [response].
+    centres : mapping name -> numpy.ndarray
+        Centre of a unit-normal component in u-space per aimed component (e.g. the FORM
+        design point of each limit). A ``'defensive'`` component at the origin is
+        always added.
+    weights : mapping name -> float, optional
+        Relative share of the aimed samples per centre (default equal).
+    samples : int
+        Assemblies drawn in all [-].
+    seed, stream : int
+        The random stream: block ``b`` of component ``k`` draws from
+        ``SeedSequence(seed, spawn_key=(stream, k, b))``.
+    histogram_range : (float, float), optional
+        Range of the weighted histogram [response].
+
+    Returns
+    -------
+    LimitEstimate
+
+    Notes
+    -----
+    With ``n_k`` samples from component ``q_k`` (``Σ n_k = N``) and the mixture
+    ``q = Σ (n_k/N) q_k``, the estimate ``p̂ = (1/N) Σ_i 1_F(u_i) φ(u_i)/q(u_i)`` is unbiased
+    for every failure set F (each sample's weight uses the whole mixture: the balance
+    heuristic). Its variance is ``Σ_k (n_k/N)² Var_k(1_F φ/q) / n_k``, estimated with the
+    sample variance in each component; the interval is ``p̂ ± z·SE``. With no failure
+    drawn, the upper bound is the Clopper–Pearson bound of the defensive samples
+    (plain Monte Carlo). The defensive share bounds every weight by ``1/share``.
+
+    References
+    ----------
+    .. [1] Hesterberg, T. (1995). Weighted average importance sampling and defensive
+       mixture distributions. Technometrics 37(2), 185-194.
+    .. [2] Veach, E. and Guibas, L. J. (1995). Optimally combining sampling techniques for
+       Monte Carlo rendering. Proceedings of SIGGRAPH 95, 419-428.
+    .. [3] Owen, A. and Zhou, Y. (2000). Safe and effective importance sampling. Journal of
+       the American Statistical Association 95(449), 135-143.
+    """
+    from scipy import special, stats
+
+    from .simulate import clopper_pearson
+
+    samples = int(samples)
+    d = space.dimension
+    names = ["defensive", *centres]
+    means = np.array([np.zeros(d), *[np.asarray(c, dtype=float) for c in centres.values()]])
+    if centres:
+        given = np.array([1.0 if weights is None else float(weights[k]) for k in centres])
+        share = np.concatenate([[DEFENSIVE_SHARE], (1.0 - DEFENSIVE_SHARE) * given / given.sum()])
+    else:
+        share = np.ones(1)
+    counts = np.floor(share * samples).astype(int)
+    counts[np.argmax(share)] += samples - counts.sum()
+    log_pi = np.log(np.maximum(counts, 1) / samples)
+    lo = -math.inf if lower is None else float(lower)
+    hi = math.inf if upper is None else float(upper)
+
+    k_sums = np.zeros((len(names), 4))  # Σ fw, Σ (fw)², Σ w·below, Σ w·above per component
+    undefined_sum = 0.0
+    hits = 0
+    edges = None
+    density = np.zeros(bins)
+    if histogram_range is not None:
+        edges = np.linspace(histogram_range[0], histogram_range[1], bins + 1)
+    for k, n_k in enumerate(counts):
+        for b, first in enumerate(range(0, n_k, BLOCK)):
+            size = min(BLOCK, n_k - first)
+            z = _block_rng(seed, (stream, k, b)).standard_normal((size, d))
+            u = z + means[k]
+            # log φ(u)/q(u), constants cancel: −½|u|² − log Σ_k π_k exp(−½|u − c_k|²)
+            sq = ((u[:, None, :] - means[None, :, :]) ** 2).sum(axis=2)
+            log_w = -0.5 * (u * u).sum(axis=1) - special.logsumexp(log_pi[None, :] - 0.5 * sq, axis=1)
+            w = np.exp(log_w)
+            y = _responses(evaluate, space.values(u))
+            with np.errstate(invalid="ignore"):
+                below = y < lo
+                above = y > hi
+            nan = ~np.isfinite(y) & ~below & ~above
+            fail = below | above | nan
+            fw = np.where(fail, w, 0.0)
+            hits += int(fail.sum())
+            k_sums[k] += [fw.sum(), (fw * fw).sum(), w[below].sum(), w[above].sum()]
+            undefined_sum += float(w[nan].sum())
+            if edges is not None:
+                ok = np.isfinite(y)
+                density += np.histogram(y[ok], bins=edges, weights=w[ok])[0]
+    total = k_sums[:, 0].sum() / samples
+    variance = 0.0
+    for k, n_k in enumerate(counts):
+        if n_k > 1:
+            s1, s2 = k_sums[k, 0], k_sums[k, 1]
+            var_k = max(s2 - s1 * s1 / n_k, 0.0) / (n_k - 1)
+            variance += (n_k / samples) ** 2 * var_k / n_k
+    se = math.sqrt(variance)
+    z = float(stats.norm.ppf(0.5 + CONFIDENCE / 2))
+    if hits == 0:
+        ci_low, ci_high = 0.0, float(clopper_pearson(0, counts[0], CONFIDENCE)[1])
+    else:
+        ci_low, ci_high = max(total - z * se, 0.0), total + z * se
+    if edges is not None:
+        density = density / (samples * np.diff(edges))
+    else:
+        edges = np.zeros(0)
+    return LimitEstimate(
+        probability=float(total),
+        std_error=se,
+        ci_low=float(ci_low),
+        ci_high=float(ci_high),
+        below=float(k_sums[:, 2].sum() / samples),
+        above=float(k_sums[:, 3].sum() / samples),
+        undefined=undefined_sum / samples,
+        samples=samples,
+        hits=hits,
+        shares=dict(zip(names, (int(n) for n in counts))),
+        histogram_edges=edges,
+        histogram_density=density,
+    )
+
+
+# --------------------------------------------------------------------------- verification
+
+
+@dataclass(frozen=True)
+class ImportanceCheck:
+    """Verification of one requirement by importance sampling (see :func:`verify_importance`).
+
+    Fallouts are in ppm of assemblies. ``form_ppm`` / ``sorm_ppm`` add up the FORM and
+    SORM estimates of both limits (None where a limit's design point was not found);
+    ``beta_lower`` / ``beta_upper`` are the reliability indices (inf: unreachable, None:
+    no such limit). ``design_points`` gives, per limit, each contributor's value (sum of
+    its instances) at the most probable failure point.
+    """
+
+    name: str
+    method: str
+    linear: bool
+    lower: float | None
+    upper: float | None
+    samples: int
+    hits: int
+    fallout_ppm: float
+    ci_low_ppm: float
+    ci_high_ppm: float
+    std_error_ppm: float
+    below_ppm: float
+    above_ppm: float
+    undefined_ppm: float
+    form_ppm: float | None
+    sorm_ppm: float | None
+    beta_lower: float | None
+    beta_upper: float | None
+    form_note: str
+    design_points: dict
+    target_ppm: float
+    rss_ppm: float
+    mean_shift_ppm: float | None
+    predicted_ppm: float
+    convolution_ppm: float | None
+    convolution_note: str
+    nominal: float
+    sigma: float
+    shift_side: int
+    shifted_mean: float
+    model_disagrees: bool
+    status: str
+    decided: bool
+    histogram_edges: np.ndarray = field(repr=False)
+    histogram_density: np.ndarray = field(repr=False)
+    exact_density: np.ndarray | None = field(default=None, repr=False)
+    units: str = ""
+
+    @property
+    def relative_half_width(self) -> float:
+        """Half-width of the interval over the estimate [-] (inf for a zero estimate)."""
+        if self.fallout_ppm <= 0:
+            return math.inf
+        return (self.ci_high_ppm - self.ci_low_ppm) / (2.0 * self.fallout_ppm)
+
+    def to_dict(self, histogram: bool = True) -> dict:
+        """JSON-ready dict of the check (the weighted histogram too unless ``histogram=False``)."""
+        out = {
+            "name": self.name,
+            "method": self.method,
+            "samples": self.samples,
+            "fallout_ppm": self.fallout_ppm,
+            "ci_low_ppm": self.ci_low_ppm,
+            "ci_high_ppm": self.ci_high_ppm,
+            "std_error_ppm": self.std_error_ppm,
+            "hits": self.hits,
+            "below_ppm": self.below_ppm,
+            "above_ppm": self.above_ppm,
+            "undefined_ppm": self.undefined_ppm,
+            "form_ppm": self.form_ppm,
+            "sorm_ppm": self.sorm_ppm,
+            "beta_lower": _json_number(self.beta_lower),
+            "beta_upper": _json_number(self.beta_upper),
+            "form_note": self.form_note,
+            "design_points": self.design_points,
+            "target_ppm": self.target_ppm,
+            "status": self.status,
+            "decided": self.decided,
+            "rss_ppm": self.rss_ppm,
+            "mean_shift_ppm": self.mean_shift_ppm,
+            "predicted_ppm": self.predicted_ppm,
+            "model_disagrees": self.model_disagrees,
+            "convolution_ppm": self.convolution_ppm,
+            "convolution_note": self.convolution_note,
+            "linear": self.linear,
+            "lower": self.lower,
+            "upper": self.upper,
+            "nominal": self.nominal,
+            "sigma": self.sigma,
+            "shift_side": self.shift_side,
+            "shifted_mean": self.shifted_mean,
+            "units": self.units,
+        }
+        if histogram:
+            out["histogram"] = {
+                "edges": self.histogram_edges.tolist(),
+                "density": self.histogram_density.tolist(),
+            }
+        return out
+
+
+def _json_number(x):
+    """JSON has no infinity: an unreachable limit's β is written as the string 'inf'."""
+    if x is None or math.isfinite(x):
+        return x
+    return "inf" if x > 0 else "-inf"
+
+
+@dataclass(frozen=True)
+class ImportanceVerification:
+    """Result of :func:`verify_importance`, read like :class:`allocator.simulate.Verification`.
+
+    Attributes
+    ----------
+    status : {'pass', 'fail'}
+        'fail' when some requirement's fallout exceeds its target beyond the interval.
+    success : bool
+    message : str
+    method : str
+        ``'importance'``.
+    seed : int
+    samples : int
+        Assemblies drawn per requirement [-].
+    confidence : float
+    shift_means : bool
+    tolerances : dict
+    requirements : list of ImportanceCheck
+    allocated_with : str or None
+    assumption_note : str
+    """
+
+    status: str
+    success: bool
+    message: str
+    method: str
+    seed: int
+    samples: int
+    confidence: float
+    shift_means: bool
+    tolerances: dict
+    requirements: list
+    allocated_with: str | None = None
+    assumption_note: str = ""
+
+    def __getitem__(self, name: str) -> ImportanceCheck:
+        for check in self.requirements:
+            if check.name == name:
+                return check
+        raise KeyError(name)
+
+    def to_dict(self, histogram: bool = True) -> dict:
+        """JSON-ready dict: status, method, seed, settings and one entry per requirement."""
+        return {
+            "status": self.status,
+            "success": self.success,
+            "message": self.message,
+            "method": self.method,
+            "seed": self.seed,
+            "samples": self.samples,
+            "confidence": self.confidence,
+            "shift_means": self.shift_means,
+            "tolerances": dict(self.tolerances),
+            "allocated_with": self.allocated_with,
+            "assumption_note": self.assumption_note,
+            "requirements": [c.to_dict(histogram) for c in self.requirements],
+        }
+
+    def to_frame(self) -> pd.DataFrame:
+        """One row per requirement (pandas DataFrame, index ``requirement``)."""
+        import pandas as pd
+
+        rows = [c.to_dict(histogram=False) for c in self.requirements]
+        for row in rows:
+            row.pop("design_points")
+        return pd.DataFrame(rows).set_index("name").rename_axis("requirement")
+
+    def _repr_html_(self) -> str:
+        from .display import result_html
+
+        return result_html(
+            f"Verification by importance sampling: {self.status} ({self.samples} samples per requirement, "
+            f"seed {self.seed})",
+            self.to_frame(),
+            self.message,
+        )
+
+    def __repr__(self) -> str:
+        lines = [
+            f"ImportanceVerification(status={self.status!r}, samples={self.samples}, seed={self.seed})",
+            f"  message: {self.message}",
+        ]
+        for c in self.requirements:
+            form_text = "—" if c.form_ppm is None else f"{c.form_ppm:.4g}"
+            sorm_text = "—" if c.sorm_ppm is None else f"{c.sorm_ppm:.4g}"
+            lines.append(
+                f"  {c.name}: {c.fallout_ppm:.4g} ppm [{c.ci_low_ppm:.4g}, {c.ci_high_ppm:.4g}]"
+                f" FORM {form_text} SORM {sorm_text} target {c.target_ppm:g} -> {c.status}"
+            )
+        return "\n".join(lines)
+
+
+def _sum_or_none(values) -> float | None:
+    values = [v for v in values if v is not None]
+    if any(not math.isfinite(v) for v in values):
+        return None
+    return float(sum(values))
+
+
+def _histogram_range(plan, t, case, points) -> tuple[float, float]:
+    from . import stack
+
+    half = stack.worst_case_half_width(plan.a, case.counts, t)
+    lo, hi = plan.shifted_mean - half, plan.shifted_mean + half
+    for x in (plan.requirement.lower, plan.requirement.upper, *points):
+        if x is not None and math.isfinite(x):
+            lo, hi = min(lo, x), max(hi, x)
+    span = hi - lo if hi > lo else max(abs(plan.shifted_mean), 1.0) * 1e-9
+    return lo - 0.05 * span, hi + 0.05 * span
+
+
+def exact_chain_distribution(case, plan, t, sigma_factors):
+    """The convolved distribution of a linear chain at its shifted mean (None for an expression)."""
+    if not plan.linear:
+        return None
+    return linear_sum_distribution(
+        plan.a, case.counts, t, [c.distribution for c in case.contributors], sigma_factors, mean=plan.shifted_mean
+    )
+
+
+def _check_requirement(case, plan, t, f, evaluate, samples, seed, stream, bins) -> ImportanceCheck:
+    req = plan.requirement
+    space = StandardSpace([c.distribution for c in case.contributors], case.counts, t, f,
+                          _base_values(case) + plan.shift)
+    scale = plan.sigma if plan.sigma > 0 else 1.0
+    steps = 1e-4 * t * np.sqrt(case.counts)
+    points, centres, weights, notes = {}, {}, {}, []
+    betas = {"lower": None, "upper": None}
+    form_sum, sorm_sum = [], []
+    for side_name, limit, side in (("lower", req.lower, -1), ("upper", req.upper, 1)):
+        if limit is None:
+            continue
+        design = form(_Limit(space, evaluate, float(limit), side, scale, steps, plan.linear))
+        betas[side_name] = design.beta if design.status != "not-converged" else None
+        if design.status == "not-converged":
+            notes.append(f"{side_name}: FORM did not converge; samples aimed at its last point")
+            form_sum.append(math.nan)
+            sorm_sum.append(math.nan)
+            centres[side_name] = design.u
+            weights[side_name] = 1.0
+            continue
+        form_sum.append(design.form)
+        sorm_sum.append(design.sorm if math.isfinite(design.sorm) else (design.form if design.beta == math.inf
+                                                                          else math.nan))
+        if design.status == "unreachable":
+            notes.append(f"{side_name}: no failure within β ≤ {BETA_MAX:g} (FORM probability 0)")
+            continue
+        if design.beta > 0 and not math.isfinite(design.sorm):
+            notes.append(f"{side_name}: SORM does not apply (a curvature with 1 + βκ ≤ 0)")
+        x = space.values(design.u)[0]
+        points[side_name] = dict(zip(case.names, (float(v) for v in x)))
+        centres[side_name] = design.u
+        weights[side_name] = design.form
+    if centres:
+        raw = np.array([weights[k] for k in centres])
+        raw = raw / raw.sum() if np.isfinite(raw).all() and raw.sum() > 0 else np.ones(len(raw)) / len(raw)
+        raw = np.maximum(raw, MIN_COMPONENT_SHARE)
+        weights = dict(zip(centres, raw / raw.sum()))
+    design_y = [float(_responses(evaluate, space.values(u))[0]) for u in centres.values()]
+    edges_range = _histogram_range(plan, t, case, design_y)
+    estimate = importance_estimate(space, evaluate, req.lower, req.upper, centres, weights, samples=samples,
+                                   seed=seed, stream=stream, histogram_range=edges_range, bins=bins)
+
+    dist = exact_chain_distribution(case, plan, t, f)
+    if dist is None:
+        conv_ppm, conv_note, exact_density = None, "not available: the expression is nonlinear", None
+    else:
+        below, above = dist.fallout(req.lower, req.upper)
+        conv_ppm = fraction_to_ppm(below + above)
+        conv_note = "exact distribution of the linear chain by numerical convolution"
+        exact_density = dist.bin_probabilities(estimate.histogram_edges) / np.diff(estimate.histogram_edges)
+    ppm = fraction_to_ppm
+    lo_ppm, hi_ppm = ppm(estimate.ci_low), ppm(estimate.ci_high)
+    predicted = plan.mean_shift_ppm if plan.mean_shift_ppm is not None else plan.rss_ppm
+    form_total, sorm_total = _sum_or_none(form_sum), _sum_or_none(sorm_sum)
+    return ImportanceCheck(
+        name=req.name,
+        method="importance",
+        linear=plan.linear,
+        lower=req.lower,
+        upper=req.upper,
+        samples=estimate.samples,
+        hits=estimate.hits,
+        fallout_ppm=float(ppm(estimate.probability)),
+        ci_low_ppm=float(lo_ppm),
+        ci_high_ppm=float(hi_ppm),
+        std_error_ppm=float(ppm(estimate.std_error)),
+        below_ppm=float(ppm(estimate.below)),
+        above_ppm=float(ppm(estimate.above)),
+        undefined_ppm=float(ppm(estimate.undefined)),
+        form_ppm=None if form_total is None else float(ppm(form_total)),
+        sorm_ppm=None if sorm_total is None else float(ppm(sorm_total)),
+        beta_lower=betas["lower"],
+        beta_upper=betas["upper"],
+        form_note="; ".join(notes),
+        design_points=points,
+        target_ppm=float(req.target_ppm),
+        rss_ppm=float(plan.rss_ppm),
+        mean_shift_ppm=None if plan.mean_shift_ppm is None else float(plan.mean_shift_ppm),
+        predicted_ppm=float(predicted),
+        convolution_ppm=None if conv_ppm is None else float(conv_ppm),
+        convolution_note=conv_note,
+        nominal=float(plan.nominal),
+        sigma=float(plan.sigma),
+        shift_side=int(plan.side),
+        shifted_mean=float(plan.shifted_mean),
+        model_disagrees=bool(predicted < lo_ppm or predicted > hi_ppm),
+        status="fail" if lo_ppm > req.target_ppm else "pass",
+        decided=bool(lo_ppm > req.target_ppm or hi_ppm <= req.target_ppm),
+        histogram_edges=estimate.histogram_edges,
+        histogram_density=estimate.histogram_density,
+        exact_density=exact_density,
+        units=case.requirement_units(req.name),
+    )
+
+
+def _base_values(case) -> np.ndarray:
+    from .chain import nominal_values
+
+    at = nominal_values(case)
+    return np.array([at[name] for name in case.names])
+
+
+def verify_importance(
+    case: Case,
+    tolerances: Tolerances = None,
+    *,
+    samples: int = 100_000,
+    seed: int | None = None,
+    shift_means: bool = True,
+    allocated_with: str | None = None,
+    processes: Mapping[str, str] | None = None,
+    evaluators: Mapping[str, Evaluator] | None = None,
+    bins: int = HISTOGRAM_BINS,
+    progress: bool = False,
+) -> ImportanceVerification:
+    """Check tolerances by importance sampling aimed at each limit, with FORM and SORM beside it.
+
+    Parameters
+    ----------
+    case : allocator.model.Case
+    tolerances : Allocation, mapping name -> float, array_like or None
+        As in :func:`allocator.simulate.verify` [length].
+    samples : int
+        Assemblies drawn per requirement [-], ≥ 1.
+    seed : int or None
+        Non-negative seed; ``None`` draws fresh entropy, reported in the result.
+    shift_means : bool
+        Mean shifts on the worse side of each requirement, as the Monte Carlo places them.
+    allocated_with : str or None
+        The stack model the tolerances come from (for the assumption note).
+    processes : mapping name -> process name, optional
+        The process that makes each contributor (its cp), as in :func:`~allocator.simulate.verify`.
+    evaluators : mapping requirement name -> callable, optional
+        Response evaluators replacing :func:`response_evaluator` for the named requirements.
+    bins : int
+        Bins of the weighted response histogram.
+    progress : bool
+        Show a progress bar (one step per requirement) on stderr when it is a terminal.
+
+    Returns
+    -------
+    ImportanceVerification
+
+    Notes
+    -----
+    See the module notes and docs/verification.md, *Tiny fallouts: importance sampling*.
+    A requirement fails when the lower end of the interval exceeds its target.
+
+    References
+    ----------
+    .. [1] Rackwitz, R. and Fiessler, B. (1978). Computers & Structures 9(5), 489-494.
+    .. [2] Breitung, K. (1984). Journal of Engineering Mechanics 110(3), 357-366.
+    .. [3] Owen, A. and Zhou, Y. (2000). Journal of the American Statistical Association
+       95(449), 135-143.
+    """
+    from .errors import CaseError
+    from .simulate import _assumption_note, _checked_run, _plan, _progress_bar, _tolerance_array, _unpack, _verdict
+
+    samples, seed = _checked_run(samples, seed)
+    if not case.requirements:
+        raise CaseError("the case has no requirement to verify", field="requirement")
+    tolerances, processes, allocated_with = _unpack(tolerances, processes, allocated_with)
+    t = _tolerance_array(case, tolerances)
+    f = case.sigma_factors_at(t, processes)
+    evaluators = dict(evaluators or {})
+    checks = []
+    with _progress_bar(progress, samples * len(case.requirements)) as bar:
+        for j, req in enumerate(case.requirements):
+            plan = _plan(case, req, t, f, shift_means)
+            evaluate = evaluators.get(req.name) or response_evaluator(case, req)
+            checks.append(_check_requirement(case, plan, t, f, evaluate, samples, seed, j, bins))
+            if bar is not None:
+                bar.update(samples)
+    status, message = _verdict(checks)
+    return ImportanceVerification(
+        status=status,
+        success=status == "pass",
+        message=message,
+        method="importance",
+        seed=seed,
+        samples=samples,
+        confidence=CONFIDENCE,
+        shift_means=shift_means,
+        tolerances=dict(zip(case.names, (float(x) for x in t))),
+        requirements=checks,
+        allocated_with=allocated_with,
+        assumption_note=_assumption_note(case, checks, allocated_with, shift_means),
+    )
