@@ -9,6 +9,10 @@ from .common import fmt, text_table, units_title
 
 
 def _ppm(value) -> str:
+    """A cell under a [ppm] header; below 1e-6 ppm (where format_ppm says "< 0.001 ppb")
+    in powers of ten, since those are the numbers this method is for."""
+    if value is not None and 0 < value < 1e-6:
+        return f"{value:.4g}"
     return format_ppm(value, unit=False)
 
 
