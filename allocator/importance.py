@@ -75,7 +75,9 @@ CONFIDENCE = 0.95
 DEFENSIVE_SHARE = 0.1  # of the samples drawn from the true distribution (bounds every weight by 10)
 MIN_COMPONENT_SHARE = 0.1  # each reachable limit gets at least this share of the aimed samples
 BETA_MAX = 37.0  # Φ(−37) ≈ 6e-300: a limit farther away than this is unreachable
-BLOCK = 2**15  # samples per random-stream block (results do not depend on anything else)
+BLOCK = 2**15  # samples per random-stream block, fewer for very wide cases (see _block_rows)
+BLOCK_VALUES = 2**22  # largest block × coordinates (32 MB per float array)
+MAX_HESSIAN_PARTS = 200  # SORM of an expression: at most this many contributors in its Hessian
 HISTOGRAM_BINS = 200
 _SQRT2 = math.sqrt(2.0)
 _LOG_SQRT_2PI = 0.5 * math.log(2.0 * math.pi)
@@ -248,6 +250,16 @@ class _Limit:
         y = _responses(self.evaluate, rows)
         return (y[:n] - y[n:]) / (2.0 * h)
 
+    def _involved(self, x: np.ndarray, dg_dx: np.ndarray) -> np.ndarray:
+        """Contributors the response moves with: a non-zero slope or second difference."""
+        n, h = len(x), 10.0 * self.steps
+        rows = np.repeat(x[None, :], 2 * n + 1, axis=0)
+        rows[np.arange(n), np.arange(n)] += h
+        rows[n + np.arange(n), np.arange(n)] -= h
+        y = _responses(self.evaluate, rows)
+        curved = (y[:n] - 2.0 * y[-1] + y[n : 2 * n]) != 0
+        return np.flatnonzero((dg_dx != 0) | curved | ~np.isfinite(y[:n] + y[n : 2 * n]))
+
     def gradient(self, u: np.ndarray) -> tuple[float, np.ndarray, np.ndarray]:
         """``g(u)``, ``∇g(u)`` and ``∂g/∂x`` per contributor."""
         x = self.space.values(u)[0]
@@ -264,9 +276,13 @@ class _Limit:
         d1, d2 = space.derivatives(u)
         h_u = np.diag(dg_dx[space.owner] * d2)
         if not self.linear:
+            involved = self._involved(x, dg_dx)
+            if len(involved) > MAX_HESSIAN_PARTS:
+                raise _TooWide(len(involved))
             n = len(x)
             h = 10.0 * self.steps
-            i, k = np.triu_indices(n)
+            i, k = np.triu_indices(len(involved))
+            i, k = involved[i], involved[k]
             rows = np.repeat(x[None, :], 4 * len(i), axis=0)
             m = len(i)
             for q, (si, sk) in enumerate(((1, 1), (1, -1), (-1, 1), (-1, -1))):
@@ -282,6 +298,10 @@ class _Limit:
             o = space.owner
             h_u += h_x[np.ix_(o, o)] * np.outer(d1, d1)
         return h_u
+
+
+class _TooWide(Exception):
+    """The expression's Hessian would need too many contributors (SORM is left out)."""
 
 
 # --------------------------------------------------------------------------- FORM and SORM
@@ -317,6 +337,7 @@ class DesignPoint:
     sorm: float
     curvatures: np.ndarray
     iterations: int
+    note: str = ""  # why SORM is missing, if it is
 
 
 def form(limit: _Limit, *, max_iterations: int = 100, tol: float = 1e-9, sorm: bool = True) -> DesignPoint:
@@ -393,19 +414,26 @@ def form(limit: _Limit, *, max_iterations: int = 100, tol: float = 1e-9, sorm: b
     g0 = limit.value(np.zeros(d))
     beta = radius if g0 >= 0 else -radius
     p_form = float(special.ndtr(-beta))
-    p_sorm, kappa = math.nan, empty
+    p_sorm, kappa, note = math.nan, empty, ""
     if sorm and d > 1 and beta > 0:
         alpha = -grad / np.linalg.norm(grad)
         basis, _ = np.linalg.qr(np.column_stack([alpha, np.eye(d)]))
         normal_plane = basis[:, 1:d]
-        h = limit.hessian(u) / np.linalg.norm(grad)
-        kappa = np.linalg.eigvalsh(normal_plane.T @ h @ normal_plane)
-        factors = 1.0 + beta * kappa
-        if np.all(factors > 0):
-            p_sorm = p_form * float(np.prod(factors ** -0.5))
+        try:
+            h = limit.hessian(u) / np.linalg.norm(grad)
+        except _TooWide as wide:
+            h = None
+            note = f"SORM left out: the response moves with {wide.args[0]} contributors (at most {MAX_HESSIAN_PARTS})"
+        if h is not None:
+            kappa = np.linalg.eigvalsh(normal_plane.T @ h @ normal_plane)
+            factors = 1.0 + beta * kappa
+            if np.all(factors > 0):
+                p_sorm = p_form * float(np.prod(factors ** -0.5))
+            else:
+                note = "SORM does not apply (a curvature with 1 + βκ ≤ 0)"
     elif sorm and d == 1 and beta > 0:
         p_sorm = p_form
-    return DesignPoint("converged", u, beta, p_form, p_sorm, kappa, it)
+    return DesignPoint("converged", u, beta, p_form, p_sorm, kappa, it, note)
 
 
 # --------------------------------------------------------------------------- importance sampling
@@ -448,6 +476,14 @@ class LimitEstimate:
     histogram_density: np.ndarray = field(repr=False)
 
 
+def _block_rows(width: int) -> int:
+    """Rows per random-stream block: :data:`BLOCK`, halved while a block passes the budget."""
+    rows = BLOCK
+    while rows > 256 and rows * width > BLOCK_VALUES:
+        rows //= 2
+    return rows
+
+
 def _block_rng(seed: int, key: tuple) -> np.random.Generator:
     return np.random.Generator(np.random.PCG64(np.random.SeedSequence(seed, spawn_key=key)))
 
@@ -485,7 +521,8 @@ def importance_estimate(
         Assemblies drawn in all [-].
     seed, stream : int
         The random stream: block ``b`` of component ``k`` draws from
-        ``SeedSequence(seed, spawn_key=(stream, k, b))``.
+        ``SeedSequence(seed, spawn_key=(stream, k, b))``; a block is 2¹⁵ samples unless
+        the case is very wide (it then depends on the number of coordinates only).
     histogram_range : (float, float), optional
         Range of the weighted histogram [response].
 
@@ -538,9 +575,10 @@ def importance_estimate(
     density = np.zeros(bins)
     if histogram_range is not None:
         edges = np.linspace(histogram_range[0], histogram_range[1], bins + 1)
+    block = _block_rows(max(d, space.n))
     for k, n_k in enumerate(counts):
-        for b, first in enumerate(range(0, n_k, BLOCK)):
-            size = min(BLOCK, n_k - first)
+        for b, first in enumerate(range(0, n_k, block)):
+            size = min(block, n_k - first)
             z = _block_rng(seed, (stream, k, b)).standard_normal((size, d))
             u = z + means[k]
             # log φ(u)/q(u), constants cancel: −½|u|² − log Σ_k π_k exp(−½|u − c_k|²)
@@ -845,7 +883,7 @@ def _check_requirement(case, plan, t, f, evaluate, samples, seed, stream, bins) 
             form_sum.append(math.nan)
             sorm_sum.append(math.nan)
             centres[side_name] = design.u
-            weights[side_name] = 1.0
+            weights[side_name] = math.nan  # no FORM probability: equal shares
             continue
         form_sum.append(design.form)
         sorm_sum.append(design.sorm if math.isfinite(design.sorm) else (design.form if design.beta == math.inf
@@ -853,8 +891,8 @@ def _check_requirement(case, plan, t, f, evaluate, samples, seed, stream, bins) 
         if design.status == "unreachable":
             notes.append(f"{side_name}: no failure within β ≤ {BETA_MAX:g} (FORM probability 0)")
             continue
-        if design.beta > 0 and not math.isfinite(design.sorm):
-            notes.append(f"{side_name}: SORM does not apply (a curvature with 1 + βκ ≤ 0)")
+        if design.note:
+            notes.append(f"{side_name}: {design.note}")
         x = space.values(design.u)[0]
         points[side_name] = dict(zip(case.names, (float(v) for v in x)))
         centres[side_name] = design.u

@@ -412,3 +412,15 @@ def test_cli_unknown_method_is_a_usage_error(tmp_path):
     path.write_text(CASE_TOML)
     out = CliRunner().invoke(cli, ["verify", str(path), "--method", "magic"])
     assert out.exit_code == 2
+
+
+def test_sorm_is_left_out_with_a_reason_when_the_hessian_would_be_too_wide(monkeypatch):
+    # the x-space Hessian of an expression grows with the square of the contributors it
+    # moves with; past the cap SORM is left out (with a note) and the sampling still holds
+    import allocator.importance as importance
+
+    monkeypatch.setattr(importance, "MAX_HESSIAN_PARTS", 2)
+    upper = bilinear_limit(1e-6)
+    check = verify_importance(bilinear_case(upper), samples=20_000, seed=17)["preload"]
+    assert check.sorm_ppm is None and "SORM left out" in check.form_note
+    assert_estimate(check, 1.0)
