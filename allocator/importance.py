@@ -61,6 +61,7 @@ if TYPE_CHECKING:  # pandas is imported where it is used
 
 __all__ = [
     "StandardSpace",
+    "LimitState",
     "DesignPoint",
     "LimitEstimate",
     "form",
@@ -134,7 +135,6 @@ class StandardSpace:
         self.base = np.asarray(base, dtype=float)
         self.n = len(self.base)
         self.starts = np.searchsorted(self.owner, np.arange(self.n))
-        self.names = None
 
     @property
     def dimension(self) -> int:
@@ -227,8 +227,26 @@ def response_evaluator(case: Case, requirement: Requirement) -> Evaluator:
     return expression
 
 
-class _Limit:
-    """``g(u)`` of one limit, failure ``g < 0``, with its gradient and Hessian in u-space."""
+class LimitState:
+    """``g(u)`` of one limit, failure ``g < 0``, with its gradient and Hessian in u-space.
+
+    Parameters
+    ----------
+    space : StandardSpace
+    evaluate : callable
+        Contributor values (n, contributors) -> ``y`` or ``(y, closed)``.
+    limit : float
+        The limit [response].
+    side : {+1, −1}
+        +1 for an upper limit (``g = (limit − y)/scale``), −1 for a lower one
+        (``g = (y − limit)/scale``).
+    scale : float
+        Response scale, e.g. its RSS σ, so that ``g`` is in σ [response].
+    steps : numpy.ndarray
+        Difference steps in each contributor value [length].
+    linear : bool
+        True when ``y`` is linear in the contributor values (its Hessian is 0).
+    """
 
     def __init__(self, space: StandardSpace, evaluate: Evaluator, limit: float, side: int, scale: float,
                  steps: np.ndarray, linear: bool):
@@ -340,8 +358,22 @@ class DesignPoint:
     note: str = ""  # why SORM is missing, if it is
 
 
-def form(limit: _Limit, *, max_iterations: int = 100, tol: float = 1e-9, sorm: bool = True) -> DesignPoint:
+def form(limit: LimitState, *, max_iterations: int = 100, tol: float = 1e-9, sorm: bool = True) -> DesignPoint:
     """Design point of one limit by the HL-RF iteration with a merit-function step.
+
+    Parameters
+    ----------
+    limit : LimitState
+    max_iterations : int
+        HL-RF steps at most [-].
+    tol : float
+        ``|g|`` at convergence [σ of the response].
+    sorm : bool
+        Also compute the curvatures and Breitung's estimate.
+
+    Returns
+    -------
+    DesignPoint
 
     Notes
     -----
@@ -876,7 +908,7 @@ def _check_requirement(case, plan, t, f, evaluate, samples, seed, stream, bins) 
     for side_name, limit, side in (("lower", req.lower, -1), ("upper", req.upper, 1)):
         if limit is None:
             continue
-        design = form(_Limit(space, evaluate, float(limit), side, scale, steps, plan.linear))
+        design = form(LimitState(space, evaluate, float(limit), side, scale, steps, plan.linear))
         betas[side_name] = design.beta if design.status != "not-converged" else None
         if design.status == "not-converged":
             notes.append(f"{side_name}: FORM did not converge; samples aimed at its last point")
