@@ -155,7 +155,7 @@ def test_irwin_hall_tail_of_uniform_sums(n, p):
 def test_triangular_parts_with_counts_are_irwin_hall_too():
     # a triangular part on ±t is the sum of two uniforms on ±t/2; two instances: four
     cs = [contributor("tri", nominal=5.0, tolerance=0.5, distribution="triangular", count=2)]
-    x = Fraction(39, 10)  # (S + 1 + 1)/0.5 ... four U(0,1) summing beyond 3.9
+    x = Fraction(39, 10)  # S, the sum of four U(0, 1), beyond 3.9
     upper = 10.0 + float((x - 2) / 2)  # S = Σ (u_i − ½)/2 over four U(0, 1)
     case = make_case(cs, [chain_requirement("s", {"tri": 1.0}, upper=upper)])
     check = verify_importance(case, samples=60_000, seed=5)["s"]
