@@ -21,12 +21,8 @@ from click.testing import CliRunner
 from scipy import integrate, optimize, stats
 
 from allocator.cli.main import cli
-from allocator.importance import (
-    StandardSpace,
-    importance_estimate,
-    response_evaluator,
-    verify_importance,
-)
+from allocator.form import StandardSpace, response_evaluator
+from allocator.importance import importance_estimate, verify_importance
 from allocator.model import Requirement
 from helpers import chain_requirement, contributor, make_case
 
@@ -417,9 +413,9 @@ def test_cli_unknown_method_is_a_usage_error(tmp_path):
 def test_sorm_is_left_out_with_a_reason_when_the_hessian_would_be_too_wide(monkeypatch):
     # the x-space Hessian of an expression grows with the square of the contributors it
     # moves with; past the cap SORM is left out (with a note) and the sampling still holds
-    import allocator.importance as importance
+    import allocator.form as form
 
-    monkeypatch.setattr(importance, "MAX_HESSIAN_PARTS", 2)
+    monkeypatch.setattr(form, "MAX_HESSIAN_PARTS", 2)
     upper = bilinear_limit(1e-6)
     check = verify_importance(bilinear_case(upper), samples=20_000, seed=17)["preload"]
     assert check.sorm_ppm is None and "SORM left out" in check.form_note
