@@ -30,6 +30,7 @@ _LAZY = {
     "allocate": ("allocator.solve", "allocate"),
     "frontier": ("allocator.sweep", "frontier"),
     "verify": ("allocator.simulate", "verify"),
+    "verify_importance": ("allocator.importance", "verify_importance"),
     "fallout_economics": ("allocator.economics", "fallout_economics"),
     "supplier_sheet": ("allocator.supplier", "supplier_sheet"),
     "evaluate_offers": ("allocator.offers", "evaluate_offers"),

@@ -336,18 +336,21 @@ def economics_figure(economics):
 
 
 def verification_figure(verification):
-    """Response histograms of a Monte Carlo verification (:func:`allocator.simulate.verify`).
+    """Response histograms of a verification (:func:`allocator.simulate.verify` or
+    :func:`allocator.importance.verify_importance`).
 
     Parameters
     ----------
-    verification : allocator.simulate.Verification
+    verification : allocator.simulate.Verification or allocator.importance.ImportanceVerification
 
     Returns
     -------
     matplotlib.figure.Figure
-        One panel per requirement: the simulated density (grey), the limits (dashed) and
-        the RSS normal approximation at the shifted mean (solid) [density against the
-        response in the requirement's units].
+        One panel per requirement: the simulated density (grey), the limits (dashed),
+        the RSS normal approximation at the shifted mean (solid) and, for linear chains,
+        the exact density by convolution (dotted) [density against the response in the
+        requirement's units]. An importance-sampling panel shows the weighted density on
+        a log scale, so that the tails it aimed at can be seen.
     """
     # a bare Figure renders through the Agg/SVG canvases without touching pyplot's backend
     import numpy as np
@@ -360,8 +363,17 @@ def verification_figure(verification):
     for ax, c in zip(axes, checks):
         edges = c.histogram_edges
         width = edges[1] - edges[0]
-        density = c.histogram_counts / (c.samples * width)
-        ax.stairs(density, edges, fill=True, color="0.75", label=f"Monte Carlo ({c.samples:,} assemblies)")
+        weighted = getattr(c, "method", "monte-carlo") == "importance"
+        if weighted:
+            density = c.histogram_density
+            label = f"importance sampling, weighted ({c.samples:,} assemblies)"
+        else:
+            density = c.histogram_counts / (c.samples * width)
+            label = f"Monte Carlo ({c.samples:,} assemblies)"
+        ax.stairs(density, edges, fill=True, color="0.75", label=label)
+        exact = getattr(c, "exact_density", None)
+        if exact is not None:
+            ax.stairs(exact, edges, color="black", linestyle=":", linewidth=1.4, label="exact (convolution)")
         lo_x, hi_x = edges[0], edges[-1]
         for limit, label in ((c.lower, "limits"), (c.upper, "limits" if c.lower is None else "_nolegend_")):
             if limit is not None:
@@ -371,6 +383,11 @@ def verification_figure(verification):
             xs = np.linspace(lo_x, hi_x, 600)
             label = "RSS normal" + (" at the worst mean shift" if c.shift_side else "")
             ax.plot(xs, stats.norm.pdf(xs, c.shifted_mean, c.sigma), color="black", linewidth=1.2, label=label)
+        if weighted:
+            positive = density[density > 0]
+            ax.set_yscale("log")
+            if positive.size:
+                ax.set_ylim(positive.min() / 10.0, positive.max() * 10.0)
         pad = 0.03 * (hi_x - lo_x)
         ax.set_xlim(lo_x - pad, hi_x + pad)
         ax.set_title(f"{c.name}: {c.fallout_ppm:.4g} ppm outside (target {c.target_ppm:g} ppm)")

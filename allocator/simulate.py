@@ -171,6 +171,8 @@ class RequirementCheck:
     units: str = ""  # label of the response, its limits, mean, std and histogram edges
     through_loop: bool = False  # the response names unknowns of the closure equations
     not_closed: int = 0  # assemblies whose loop cannot close (failures, not in undefined)
+    # the convolved exact density averaged over each histogram bin (linear chains; else None)
+    exact_density: np.ndarray | None = field(default=None, repr=False)
 
     @property
     def failures(self) -> int:
@@ -955,10 +957,11 @@ def _tally_elsewhere(engine: _Engine, tally: _Tally, map_blocks, setup):
     return map_blocks(_tally_blocks, jobs)
 
 
-def _convolution(case, engine: _Engine, t: np.ndarray, plan: _Plan) -> tuple[float | None, str]:
-    """Exact fallout [ppm] of a linear chain by numerical convolution (None if nonlinear), and a note."""
+def _convolution(case, engine: _Engine, t: np.ndarray, plan: _Plan):
+    """Exact fallout [ppm] of a linear chain by numerical convolution (None if nonlinear), a note
+    and the distribution (None if nonlinear)."""
     if not plan.linear:
-        return None, "not available: the expression is nonlinear (convolution needs a linear chain)"
+        return None, "not available: the expression is nonlinear (convolution needs a linear chain)", None
     dist = linear_sum_distribution(
         plan.a,
         case.counts,
@@ -968,7 +971,8 @@ def _convolution(case, engine: _Engine, t: np.ndarray, plan: _Plan) -> tuple[flo
         mean=plan.shifted_mean,
     )
     conv_below, conv_above = dist.fallout(plan.requirement.lower, plan.requirement.upper)
-    return fraction_to_ppm(conv_below + conv_above), "exact distribution of the linear chain by numerical convolution"
+    note = "exact distribution of the linear chain by numerical convolution"
+    return fraction_to_ppm(conv_below + conv_above), note, dist
 
 
 def _requirement_check(case, engine: _Engine, t: np.ndarray, tally: _Tally, j: int, ci) -> RequirementCheck:
@@ -980,7 +984,8 @@ def _requirement_check(case, engine: _Engine, t: np.ndarray, tally: _Tally, j: i
     fallout_ppm = fraction_to_ppm(failures / samples)
     lo_ppm, hi_ppm = fraction_to_ppm(ci[0]), fraction_to_ppm(ci[1])
     predicted = plan.mean_shift_ppm if plan.mean_shift_ppm is not None else plan.rss_ppm
-    convolution_ppm, note = _convolution(case, engine, t, plan)
+    convolution_ppm, note, dist = _convolution(case, engine, t, plan)
+    edges = tally.edges(j)
     mean, var = tally.moments(j)
     hist = tally.hist
     return RequirementCheck(
@@ -1010,13 +1015,14 @@ def _requirement_check(case, engine: _Engine, t: np.ndarray, tally: _Tally, j: i
         model_disagrees=bool(predicted < lo_ppm or predicted > hi_ppm),
         status="fail" if lo_ppm > req.target_ppm else "pass",
         decided=bool(lo_ppm > req.target_ppm or hi_ppm <= req.target_ppm),
-        histogram_edges=tally.edges(j),
+        histogram_edges=edges,
         histogram_counts=hist[j, 1:-1].copy(),
         underflow=int(hist[j, 0]),
         overflow=int(hist[j, -1]),
         units=case.requirement_units(req.name),
         through_loop=bool(engine.through_loop[j]),
         not_closed=not_closed,
+        exact_density=None if dist is None else dist.bin_probabilities(edges) / np.diff(edges),
     )
 
 

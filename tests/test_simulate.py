@@ -383,6 +383,39 @@ def test_the_histogram_is_drawn_by_the_plotting_module():
     assert bars[:, 1].max() == pytest.approx(float(np.max(check.histogram_counts / (check.samples * widths))))
 
 
+def test_the_plot_overlays_the_exact_density_of_a_chain():
+    # the check carries the convolved density averaged over each histogram bin: for a
+    # normal chain that is the normal CDF difference over the bin (scipy.stats.norm), and
+    # the figure draws it as the "exact (convolution)" line; an expression has none
+    from allocator.plots import verification_figure
+
+    mean, sigma = normal_chain_reference()
+    result = verify(normal_chain_case(mean - 3 * sigma, mean + 3 * sigma), samples=20_000, seed=4)
+    check = result["gap"]
+    edges = check.histogram_edges
+    expected = np.diff(stats.norm.cdf(edges, mean, sigma)) / np.diff(edges)
+    assert np.allclose(check.exact_density, expected, rtol=1e-9, atol=1e-9 * expected.max())
+    (ax,) = verification_figure(result).axes
+    assert "exact (convolution)" in [t.get_text() for t in ax.get_legend().get_texts()]
+    cs = [contributor("r", nominal=2.0, tolerance=0.1)]
+    nonlinear = make_case(cs, [Requirement(name="sq", expression="r * r", upper=4.5)])
+    assert verify(nonlinear, samples=2000, seed=1)["sq"].exact_density is None
+
+
+def test_bin_probabilities_of_a_normal_plus_uniform_chain_match_quadrature():
+    # density of N(0, σ²) + U(−c, c): (Φ((x + c)/σ) − Φ((x − c)/σ)) / 2c, integrated over
+    # each bin by scipy.integrate.quad
+    sigma, c = 0.01, 0.05
+    dist = linear_sum_distribution([1, 1], [1, 1], [0.03, c], ["normal", "uniform"], [1 / 3, 0], mean=1.0)
+    edges = np.linspace(0.9, 1.1, 41)
+
+    def density(x):
+        return (stats.norm.cdf((x - 1.0 + c) / sigma) - stats.norm.cdf((x - 1.0 - c) / sigma)) / (2 * c)
+
+    expected = [integrate.quad(density, a, b, epsabs=1e-14)[0] for a, b in zip(edges[:-1], edges[1:])]
+    assert np.allclose(dist.bin_probabilities(edges), expected, rtol=1e-6, atol=1e-12)
+
+
 # ----------------------------------------------------------------- command line
 
 CASE_TOML = """\
