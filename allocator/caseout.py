@@ -1,25 +1,50 @@
-"""A case written back: the dict the case loader reads, and its TOML text.
+"""A case written back: the dict the case loader reads, its TOML text, and the file.
 
 :func:`case_to_dict` is the inverse of the loader (:func:`allocator.case.case_from_dict`):
 loading its output gives an equal :class:`~allocator.model.Case` (the file path and hash
-aside). Values equal to the loader's defaults are left out, so the text reads like a
-hand-written case; a cost table read from a CSV file (``file = "x.csv"``) is written
-with its points inline, so the written case stands on its own.
+aside). The text is made from the validated objects, not by editing an input file, so
+what is written is exactly the case the library computes with. Values equal to the
+loader's defaults are left out, so the text reads like a hand-written case; comments of
+an input are not carried over; a cost table read from a CSV file (``file = "x.csv"``) is
+written with its points inline, so the written case stands on its own (a copy in another
+folder would lose the file).
+
+Every command that writes a case (``convert``, ``fit-costs --write``, ``capability
+--write``) goes through :func:`write_case`: the text is read back through the loader and
+must give the same case before the file is written, whole, through a temporary file.
+
+A section of the case file is one entry here: a ``[[name]]`` array of tables after the
+requirements is a line in :data:`_ARRAYS` (the key, the :class:`Case` attribute and the
+function that writes one item) and a line in :data:`WRITTEN_FIELDS`.
 """
 
 from __future__ import annotations
 
-from .costs import family
-from .model import DEFAULT_FALLOUT_PPM, Case, Contributor, CostCurve, FrontierSettings, Process, Requirement
+import os
+from dataclasses import replace
+from pathlib import Path
+from typing import Iterable
 
-__all__ = ["case_to_dict", "cost_to_dict", "dumps_case", "WRITTEN_FIELDS"]
+from .costs import family
+from .model import (
+    DEFAULT_FALLOUT_PPM,
+    Case,
+    Contributor,
+    CostCurve,
+    FrontierSettings,
+    Offer,
+    Process,
+    Requirement,
+)
+
+__all__ = ["case_to_dict", "cost_to_dict", "dumps_case", "write_case", "WRITTEN_FIELDS"]
 
 # the fields of each model class that case_to_dict writes (or, for path and sha256, leaves
 # out on purpose); tests/test_tomlout.py compares them with the classes, so a field added
-# to the case format later cannot be dropped from a converted case without notice
+# to the case format later cannot be dropped from a written case without notice
 WRITTEN_FIELDS = {
     "Case": ("title", "contributors", "requirements", "units", "currency", "allocation", "economics",
-             "frontier", "path", "sha256"),
+             "frontier", "offers", "path", "sha256"),
     "Contributor": ("name", "nominal", "tolerance", "limits", "cost", "processes", "description", "cp",
                     "mean_shift", "distribution", "count", "fixed", "units"),
     "Process": ("name", "limits", "cost", "cp"),
@@ -28,6 +53,7 @@ WRITTEN_FIELDS = {
     "Economics": ("volume", "scrap_cost"),
     "FrontierSettings": ("requirement", "vary", "range", "points"),
     "CostCurve": ("curve", "a", "b", "c", "k", "points_tolerance", "points_cost", "between"),
+    "Offer": ("contributor", "tolerance", "price", "note"),
 }
 
 
@@ -75,14 +101,87 @@ def case_to_dict(case: Case) -> dict:
             frontier["range"] = list(f.range)
         frontier["points"] = f.points
         out["frontier"] = frontier
+    for key, attribute, item in _ARRAYS:
+        items = getattr(case, attribute)
+        if items:
+            out[key] = [item(x) for x in items]
     return out
 
 
-def dumps_case(case: Case) -> str:
-    """The case as TOML text that loads to an equal case (see :func:`case_to_dict`)."""
+def dumps_case(case: Case, *, comment: str = "") -> str:
+    """The case as TOML text that loads to an equal case (see :func:`case_to_dict`).
+
+    Parameters
+    ----------
+    case : Case
+    comment : str, optional
+        Lines written first, each as a ``#`` comment (where the case came from).
+
+    Examples
+    --------
+    >>> from allocator.case import load_case
+    >>> print(dumps_case(load_case("cases/divider_output.toml"), comment="a copy").splitlines()[0])
+    # a copy
+    """
     from .tomlout import dumps
 
-    return dumps(case_to_dict(case))
+    lines = [f"# {line}".rstrip() for line in comment.splitlines()]
+    head = "\n".join(lines) + "\n\n" if lines else ""
+    return head + dumps(case_to_dict(case))
+
+
+def _bare(case: Case) -> Case:
+    return replace(case, path=None, sha256=None)
+
+
+def write_case(
+    case: Case,
+    path: str | os.PathLike,
+    *,
+    comment: str = "",
+    protect: Iterable[str | os.PathLike | None] = (),
+) -> Path:
+    """Write ``case`` as a TOML case file, atomically and never over an input.
+
+    The text is read back with :func:`allocator.case.loads_case` first and must give the
+    same case (path and hash aside); only then is the file written, whole, through a
+    temporary file.
+
+    Parameters
+    ----------
+    case : Case
+    path : str or path-like
+        The new case file (.toml).
+    comment : str, optional
+        Comment lines at the top (where the case came from).
+    protect : iterable of path
+        Inputs never to overwrite (the source case and data files).
+
+    Returns
+    -------
+    pathlib.Path
+        ``path``, now holding the case.
+
+    Raises
+    ------
+    UsageError
+        ``path`` is one of ``protect`` or its folder does not exist.
+    InternalError
+        The text does not read back as the same case (a bug in the writer; nothing is written).
+    """
+    from .case import loads_case
+    from .errors import CaseError, InternalError
+    from .files import atomic_write, check_output_path
+
+    target = check_output_path(path, protect=protect, input_name="input file")
+    text = dumps_case(case, comment=comment)
+    try:
+        again = loads_case(text, source=str(target), base_dir=target.parent)
+    except CaseError as err:
+        raise InternalError("writing the case", err) from err
+    if _bare(again) != _bare(case):
+        raise InternalError("writing the case", ValueError("the written text reads back as another case"))
+    return atomic_write(target, text, protect=protect)
 
 
 def _contributor(c: Contributor) -> dict:
@@ -159,3 +258,18 @@ def _requirement(r: Requirement) -> dict:
     if r.fallout_ppm != DEFAULT_FALLOUT_PPM:
         d["fallout_ppm"] = r.fallout_ppm
     return d
+
+
+def _offer(o: Offer) -> dict:
+    d: dict = {"contributor": o.contributor, "tolerance": o.tolerance, "price": o.price}
+    if o.note:
+        d["note"] = o.note
+    return d
+
+
+# the case file's arrays of tables after the requirements, in the order they are written:
+# (key in the file, attribute of Case, the dict of one item); a later section such as
+# [[unknown]] or [[closure]] is one more line here (and one in WRITTEN_FIELDS)
+_ARRAYS = (
+    ("offer", "offers", _offer),
+)

@@ -18,7 +18,6 @@ here, inside the functions that need it.
 from __future__ import annotations
 
 import io
-import math
 import os
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass
@@ -123,8 +122,10 @@ def write_workbook(
         The workbook to write (``.xlsx``); written through a temporary file and renamed.
     sheets : mapping of str to pandas.DataFrame
         Sheet name (at most 31 characters, none of ``[]:*?/\\``) -> table, in order. A
-        named index is written as the first column(s); numbers stay numbers; NaN and
-        None are empty cells. The header row is frozen and columns are sized to their text.
+        named index is written as the first column(s); numbers stay numbers (with
+        openpyxl's 16 significant digits: a double that needs 17 comes back within one
+        unit in the 16th); NaN and None are empty cells. The header row is frozen and
+        columns are sized to their text.
     protect : iterable of path-like
         Inputs never to overwrite.
 
@@ -154,25 +155,8 @@ def write_workbook(
         for name, frame in sheets.items():
             table = _flat(frame)
             table.to_excel(writer, sheet_name=name, index=False)
-            _exact_numbers(writer.sheets[name])
             _layout(writer.sheets[name], table)
     return atomic_write(path, buffer.getvalue(), protect=protect)
-
-
-def _exact_numbers(sheet) -> None:
-    """Keep every double exact in the file.
-
-    openpyxl writes a number with 16 significant digits (``"%.16g"``), one short of what
-    some doubles need, so 0.015619176351657138 would come back as 0.01561917635165714.
-    A number cell whose value is text is written as that text: such cells get Python's
-    shortest round-trip text (``repr``), still as a number cell (spreadsheet programs
-    read 17 digits; so does openpyxl).
-    """
-    for row in sheet.iter_rows():
-        for cell in row:
-            value = cell.value
-            if isinstance(value, float) and math.isfinite(value) and float("%.16g" % value) != value:
-                cell._value = repr(float(value))  # data_type stays "n": written as <v>repr</v>
 
 
 def _layout(sheet, table: pd.DataFrame) -> None:

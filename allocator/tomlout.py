@@ -16,6 +16,7 @@ from __future__ import annotations
 
 import datetime as _dt
 import math
+import numbers
 import re
 from collections.abc import Mapping
 
@@ -32,7 +33,8 @@ def dumps(data: Mapping) -> str:
     ----------
     data : mapping
         Keys are str; values are str, int, float, bool, ``datetime``/``date``/``time``,
-        lists of values and mappings of the same. There is no null in TOML: a None
+        lists of values and mappings of the same (numpy integers and floats are
+        written as the plain numbers they hold). There is no null in TOML: a None
         anywhere is refused.
 
     Returns
@@ -94,7 +96,7 @@ def _float(x: float) -> str:
         return "nan"
     if math.isinf(x):
         return "inf" if x > 0 else "-inf"
-    text = repr(x)  # the shortest text that reads back as the same double
+    text = repr(float(x))  # the shortest text that reads back as the same double (numpy's repr is not)
     return text if any(ch in text for ch in ".eEn") else text + ".0"
 
 
@@ -110,9 +112,9 @@ def _value(value, path) -> str:
     """A value on one line (inline tables and arrays included)."""
     if isinstance(value, bool):
         return "true" if value else "false"
-    if isinstance(value, int):
-        return str(value)
-    if isinstance(value, float):
+    if isinstance(value, numbers.Integral):  # numpy's integers too
+        return str(int(value))
+    if isinstance(value, float):  # numpy's float64 too
         return _float(value)
     if isinstance(value, str):
         return _string(value)

@@ -1,5 +1,5 @@
 """A case as an .xlsx workbook, and back: the sheets ``settings``, ``contributors``,
-``processes``, ``tables`` and ``requirements`` (layout in docs/spreadsheets.md).
+``processes``, ``tables``, ``requirements`` and ``offers`` (layout in docs/spreadsheets.md).
 
 Reading builds the same dict a TOML case file parses to and hands it to the one case
 loader (:func:`allocator.case.case_from_dict`), so a workbook is checked exactly as a
@@ -10,7 +10,12 @@ case file is. The loader names a field by its path (``contributor[3] (spacer).co
 are made here, before the loader, with messages of the same form.
 
 Writing goes the other way through :func:`allocator.caseout.case_to_dict`, so a case
-read back from its own workbook equals it (path and hash aside).
+read back from its own workbook equals it (path and hash aside; a number that needs 17
+significant digits comes back within one unit in its 16th, see docs/spreadsheets.md).
+
+A case file's array of flat tables (``[[offer]]``) is a sheet with one row per table and
+one column per key: a line in :data:`LIST_SHEETS`. A later section of the same shape
+(``[[unknown]]``, ``[[closure]]``) is one more line there and in :data:`SHEETS`.
 """
 
 from __future__ import annotations
@@ -32,8 +37,8 @@ if TYPE_CHECKING:
 
 __all__ = ["case_sheets", "write_case_workbook", "load_workbook_case", "convert_case", "SHEETS"]
 
-# the case's sheets, in the order they are written; the first three are required
-SHEETS = ("settings", "contributors", "processes", "tables", "requirements")
+# the case's sheets, in the order they are written; settings, contributors and requirements are required
+SHEETS = ("settings", "contributors", "processes", "tables", "requirements", "offers")
 REQUIRED_SHEETS = ("settings", "contributors", "requirements")
 
 # setting (its row in the settings sheet) -> what it is (the description column)
@@ -65,6 +70,9 @@ CONTRIBUTOR_COLUMNS = (
 PROCESS_COLUMNS = ("contributor", "process", "cp", "tightest", "loosest", *COST_COLUMNS)
 TABLE_COLUMNS = ("contributor", "process", "tolerance", "cost")
 REQUIREMENT_COLUMNS = ("name", "units", "expression", "lower", "upper", "fallout_ppm")
+OFFER_COLUMNS = ("contributor", "tolerance", "price", "note")
+# sheet -> the case file's array of flat tables it holds: one row per table, one column per key
+LIST_SHEETS = {"offers": ("offer", OFFER_COLUMNS)}
 CHAIN_PREFIX = "chain."  # requirements: one column chain.NAME per contributor (its coefficient)
 
 # columns a sheet cannot do without, and why
@@ -76,6 +84,8 @@ REQUIRED_COLUMNS = {
     "tables": {"contributor": "the contributor each point belongs to", "tolerance": "the tolerance of each point",
                "cost": "the cost of each point"},
     "requirements": {"name": "the name of each requirement"},
+    "offers": {"contributor": "the contributor offered", "tolerance": "the offered ± tolerance",
+               "price": "the offered price per part"},
 }
 COLUMNS = {
     "settings": SETTINGS_COLUMNS,
@@ -83,8 +93,9 @@ COLUMNS = {
     "processes": PROCESS_COLUMNS,
     "tables": TABLE_COLUMNS,
     "requirements": REQUIREMENT_COLUMNS,
+    "offers": OFFER_COLUMNS,
 }
-_FREE_TEXT = ("title", "currency", "description")  # a number typed there is meant as text
+_FREE_TEXT = ("title", "currency", "description", "note")  # a number typed there is meant as text
 
 
 # --------------------------------------------------------------------------- writing
@@ -100,8 +111,8 @@ def case_sheets(case: Case) -> dict[str, pd.DataFrame]:
     Returns
     -------
     dict of str to pandas.DataFrame
-        ``settings``, ``contributors``, ``processes``, ``tables``, ``requirements``
-        (see docs/spreadsheets.md).
+        ``settings``, ``contributors``, ``processes``, ``tables``, ``requirements``,
+        ``offers`` (see docs/spreadsheets.md).
     """
     import pandas as pd
 
@@ -146,13 +157,16 @@ def case_sheets(case: Case) -> dict[str, pd.DataFrame]:
     def frame(rows, columns):
         return pd.DataFrame(rows, columns=list(columns), dtype=object)
 
-    return {
+    sheets = {
         "settings": frame(settings, SETTINGS_COLUMNS),
         "contributors": frame(contributors, CONTRIBUTOR_COLUMNS),
         "processes": frame(processes, PROCESS_COLUMNS),
         "tables": frame(tables, TABLE_COLUMNS),
         "requirements": frame(requirements, (*REQUIREMENT_COLUMNS, *(CHAIN_PREFIX + n for n in names))),
     }
+    for sheet, (key, columns) in LIST_SHEETS.items():
+        sheets[sheet] = frame(data.get(key, []), columns)
+    return sheets
 
 
 def _limits_and_cost(item: dict, tables: list, contributor: str, process: str | None) -> dict:
@@ -304,8 +318,10 @@ def _check_sheets(places: _Places, tables: dict) -> None:
                                            f"(a case workbook has the sheets {', '.join(SHEETS)})")
     for name in REQUIRED_SHEETS:
         if name not in tables:
+            optional = [s for s in SHEETS if s not in REQUIRED_SHEETS]
             places.fail(None, f"missing sheet {name!r} (a case workbook needs the sheets "
-                              f"{', '.join(REQUIRED_SHEETS)}; processes and tables are optional)")
+                              f"{', '.join(REQUIRED_SHEETS)}; {', '.join(optional[:-1])} and "
+                              f"{optional[-1]} are optional)")
     for name, table in tables.items():
         allowed = COLUMNS[name]
         for column in table.columns:
@@ -504,6 +520,17 @@ def _workbook_to_dict(places: _Places, tables: dict) -> dict:
         requirements.append(item)
     if requirements:
         data["requirement"] = requirements
+
+    for sheet, (key, columns) in LIST_SHEETS.items():
+        places.exact[key] = places.cell(sheet)
+        items = []
+        for i, (row, values) in enumerate(tables[sheet].rows if sheet in tables else (), start=1):
+            item = {k: v for k, v in _text_cells(values).items() if k in columns}
+            resolve = _item_resolver(places, sheet, row, values, [])
+            places.add([f"{key}[{i}]", f"{key}[{i}] ({values.get(columns[0])})"], resolve)
+            items.append(item)
+        if items:
+            data[key] = items
     return data
 
 
@@ -580,7 +607,7 @@ def convert_case(source: str | os.PathLike, target: str | os.PathLike) -> Case:
         Unknown file kinds, the output is the input or in a missing folder, or openpyxl
         is not installed for a workbook.
     """
-    from .files import atomic_write, check_output_path
+    from .files import check_output_path
 
     into, out = _kind(source, "input"), _kind(target, "output")
     if out == ".xlsx" or into == ".xlsx":
@@ -597,9 +624,8 @@ def convert_case(source: str | os.PathLike, target: str | os.PathLike) -> Case:
     if out == ".xlsx":
         write_case_workbook(case, target, protect=(source,))
     else:
-        from .caseout import dumps_case
+        from .caseout import write_case
 
         name = " ".join(Path(source).name.split())  # one comment line, whatever the name
-        text = f"# Written by `allocator convert` from {name}.\n\n" + dumps_case(case)
-        atomic_write(target, text, protect=(source,))
+        write_case(case, target, comment=f"Written by `allocator convert` from {name}.", protect=(source,))
     return case

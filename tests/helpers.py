@@ -328,6 +328,18 @@ def build_case(rng, model: str, size: int, count: int, broken: int | None) -> In
     return Invented(case, model, f"r{broken}" if broken is not None else None)
 
 
+def with_offers(rng, case: Case, n: int = 3) -> Case:
+    """The case with ``n`` invented offers (many-digit prices) at tolerances its contributors can hold."""
+    from allocator.model import Offer
+    from allocator.offers import tolerance_problem
+
+    able = [c for c in case.contributors if tolerance_problem(c, c.tolerance) is None]
+    picks = rng.choice(len(able), size=n) if able else []
+    offers = tuple(Offer(able[i].name, able[i].tolerance, float(rng.lognormal(0, 1)),
+                         "" if k % 2 else f"invented offer {k}") for k, i in enumerate(picks))
+    return replace(case, offers=offers)
+
+
 # --------------------------------------------------------------------------- case text
 
 

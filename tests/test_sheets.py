@@ -3,16 +3,25 @@ at sheet, row and column, `--xlsx` on allocate / frontier / verify, and openpyxl
 
 The references are outside the code under test: the case read from the TOML file by the
 case loader (a converted case must equal it), ``tomllib`` for the raw values of the case
-files, openpyxl and pandas for what the workbooks really hold, and the error the loader
-gives for the same mistake made in TOML text.
+files, openpyxl and pandas (their public API only) for what the workbooks really hold,
+and the error the loader gives for the same mistake made in TOML text.
+
+Precision: a workbook number carries 16 significant digits (docs/spreadsheets.md). A
+decimal typed with at most 15 significant digits comes back exactly (DBL_DIG = 15, C
+standard, ISO/IEC 9899 5.2.4.2.2: such a decimal survives the round trip through a
+double, and the nearest 16-digit decimal to that double is no farther from it than the
+typed one); a double that needs 17 digits comes back within one unit in its 16th
+significant digit (half a unit from rounding to 16 digits, at most half a unit more from
+reading that decimal back as the nearest double).
 """
 
 from __future__ import annotations
 
+import math
 import re
 import sys
 import tomllib
-from dataclasses import replace
+from dataclasses import fields, is_dataclass, replace
 from pathlib import Path
 
 import numpy as np
@@ -24,17 +33,23 @@ pd = pytest.importorskip("pandas")
 
 from allocator.analysis import analyze  # noqa: E402
 from allocator.case import load_case, loads_case  # noqa: E402
+from allocator.caseout import dumps_case  # noqa: E402
 from allocator.cli.main import cli  # noqa: E402
 from allocator.errors import CaseError, UsageError  # noqa: E402
+from allocator.model import Case, Offer  # noqa: E402
 from allocator.sheets import write_workbook  # noqa: E402
 from allocator.workbook import SHEETS, case_sheets, load_workbook_case, write_case_workbook  # noqa: E402
-from helpers import build_case  # noqa: E402
+from helpers import build_case, with_offers  # noqa: E402
 
 ROOT = Path(__file__).resolve().parents[1]
 DEMOS = sorted((ROOT / "cases").glob("*.toml"))
 GEARBOX = ROOT / "cases" / "gearbox_end_play.toml"
 GEAR_HUB = ROOT / "cases" / "gear_hub_end_play.toml"
 CELL = re.compile(r"sheet (\w+), row (\d+)(?:, column (\S+))?")
+# invented offers for the gearbox demo (a supplier's tolerance and price per part)
+OFFERS = (Offer("spacer", 0.03, 0.6, "invented supplier A"), Offer("gasket", 0.04, 0.35),
+          Offer("spacer", 0.05, 0.42, "invented supplier B, 2 weeks"))
+GEARBOX_OFFERS = replace(load_case(GEARBOX), offers=OFFERS)
 
 
 def run(*args):
@@ -44,6 +59,31 @@ def run(*args):
 def bare(case):
     """The case without where it came from (path and hash differ by design)."""
     return replace(case, path=None, sha256=None)
+
+
+def one_unit_in_16th_digit(x: float) -> float:
+    """The workbook's documented precision at ``x``: 10**(e - 15) for |x| in [10**e, 10**(e+1))."""
+    return 0.0 if x == 0 else 10.0 ** (math.floor(math.log10(abs(x))) - 15)
+
+
+def assert_same_to_16_digits(back, original, where="case"):
+    """Equal, but floats only within one unit in their 16th significant digit (recursively)."""
+    if isinstance(original, float) and isinstance(back, float):
+        assert abs(back - original) <= one_unit_in_16th_digit(original), (where, back, original)
+    elif is_dataclass(original):
+        assert type(back) is type(original), where
+        for f in fields(original):
+            assert_same_to_16_digits(getattr(back, f.name), getattr(original, f.name), f"{where}.{f.name}")
+    elif isinstance(original, (tuple, list)):
+        assert type(back) is type(original) and len(back) == len(original), (where, back, original)
+        for i, (b, o) in enumerate(zip(back, original)):
+            assert_same_to_16_digits(b, o, f"{where}[{i}]")
+    elif isinstance(original, dict):
+        assert list(back) == list(original), (where, back, original)
+        for k in original:
+            assert_same_to_16_digits(back[k], original[k], f"{where}.{k}")
+    else:
+        assert back == original, (where, back, original)
 
 
 def one_line_error(result) -> str:
@@ -112,13 +152,42 @@ def test_a_csv_cost_table_goes_into_the_tables_sheet(tmp_path):
 
 
 def test_random_invented_cases_survive_the_workbook(tmp_path):
-    """Many-digit floats, every curve family, fixed parts without cost, counts, cp."""
+    """Many-digit floats, every curve family, fixed parts without cost, counts, cp, offers;
+    17-digit doubles come back to the workbook's 16 digits (see the module docstring)."""
     rng = np.random.default_rng(20261202)
     for i in range(6):
         case = build_case(rng, "mean-shift" if i % 2 else "rss", size=7, count=2, broken=None).case
+        case = with_offers(rng, case)
         book = tmp_path / f"random{i}.xlsx"
         write_case_workbook(case, book)
-        assert bare(load_workbook_case(book)) == bare(case)
+        assert_same_to_16_digits(bare(load_workbook_case(book)), bare(case))
+
+
+def test_a_case_with_offers_survives_toml_to_workbook_to_toml(tmp_path):
+    source, book, back = tmp_path / "offers.toml", tmp_path / "offers.xlsx", tmp_path / "back.toml"
+    source.write_text(dumps_case(GEARBOX_OFFERS), encoding="utf-8")
+    assert run("convert", source, book).exit_code == 0
+    assert run("convert", book, back).exit_code == 0
+    assert load_workbook_case(book).offers == OFFERS
+    assert bare(load_case(back)) == bare(load_case(source)) == bare(GEARBOX_OFFERS)
+    sheet = pd.read_excel(book, sheet_name="offers")  # one row per offer, in order
+    assert list(sheet.columns) == ["contributor", "tolerance", "price", "note"]
+    assert list(sheet["contributor"]) == [o.contributor for o in OFFERS]
+    assert list(sheet["price"]) == [o.price for o in OFFERS]
+
+
+def test_the_offers_sheet_is_optional(tmp_path):
+    book = tmp_path / "no_offers.xlsx"
+    write_case_workbook(GEARBOX_OFFERS, book)
+    wb = openpyxl.load_workbook(book)
+    wb.remove(wb["offers"])
+    wb.save(book)
+    assert bare(load_workbook_case(book)) == bare(load_case(GEARBOX))
+
+
+def test_a_number_typed_as_an_offers_note_is_read_as_text(tmp_path):
+    book = _bad_workbook(tmp_path, _set("offers", 3, "note", 42), GEARBOX_OFFERS)
+    assert load_workbook_case(book).offers[1] == replace(OFFERS[1], note="42")
 
 
 def test_a_workbook_is_accepted_wherever_a_case_file_is(tmp_path):
@@ -137,7 +206,7 @@ def test_a_workbook_is_accepted_wherever_a_case_file_is(tmp_path):
 
 def _bad_workbook(tmp_path, edit, source=GEARBOX):
     book = tmp_path / "bad.xlsx"
-    write_case_workbook(load_case(source), book)
+    write_case_workbook(source if isinstance(source, Case) else load_case(source), book)
     wb = openpyxl.load_workbook(book)
     edit(wb)
     wb.save(book)
@@ -202,6 +271,18 @@ BAD = {
                      "sheet settings, setting title: missing (a title for the case)"),
     "one limit only": (_set("contributors", 2, "loosest", None), GEARBOX, "contributors", "2", "loosest",
                        "give both tightest and loosest"),
+    "unknown contributor of an offer": (_set("offers", 3, "contributor", "gaskett"), GEARBOX_OFFERS, "offers", "3",
+                                        "contributor", "unknown contributor 'gaskett' (did you mean 'gasket'?)"),
+    "an offer outside the limits": (_set("offers", 4, "tolerance", 0.3), GEARBOX_OFFERS, "offers", "4",
+                                    "tolerance", "tolerance 0.3 is outside its limits [0.003, 0.08]"),
+    "an offer without a price": (_set("offers", 2, "price", None), GEARBOX_OFFERS, "offers", "2", "price",
+                                 "missing"),
+    "text in an offer's price": (_set("offers", 2, "price", "0.6 EUR"), GEARBOX_OFFERS, "offers", "2", "price",
+                                 "must be a number (got text '0.6 EUR')"),
+    "an offers sheet without prices": (_drop_column("offers", "price"), GEARBOX_OFFERS, "offers", "1", None,
+                                       "missing column 'price' (the offered price per part)"),
+    "unknown column in offers": (_rename("offers", "note", "notes"), GEARBOX_OFFERS, "offers", "1", "notes",
+                                 "did you mean 'note'?"),
 }
 
 
@@ -307,9 +388,9 @@ def test_allocate_xlsx_holds_numbers_with_units_in_the_headers(tmp_path):
     import json
 
     doc = json.loads(run("allocate", GEARBOX, "--model", "rss", "--json").stdout)["results"][0]
-    assert summary.loc["rss", "total_cost [EUR]"] == doc["total_cost"]
+    assert_same_to_16_digits(float(summary.loc["rss", "total_cost [EUR]"]), doc["total_cost"])
     rss = tolerances[tolerances["model"] == "rss"].set_index("contributor")["allocated [mm]"]
-    assert rss.to_dict() == doc["tolerances"]
+    assert_same_to_16_digits(rss.to_dict(), doc["tolerances"])
 
 
 def test_frontier_xlsx_has_the_swept_value_in_its_units(tmp_path):
@@ -322,7 +403,7 @@ def test_frontier_xlsx_has_the_swept_value_in_its_units(tmp_path):
     import json
 
     points = json.loads(result.stdout)["points"]
-    assert list(frame["upper [mm]"]) == [p["value"] for p in points]
+    assert_same_to_16_digits([float(v) for v in frame["upper [mm]"]], [p["value"] for p in points])
 
 
 def test_verify_xlsx_keeps_counts_whole_and_the_seed_exact(tmp_path):
@@ -337,7 +418,7 @@ def test_verify_xlsx_keeps_counts_whole_and_the_seed_exact(tmp_path):
     check = sheets["verification"].iloc[0]
     assert pd.api.types.is_integer_dtype(sheets["verification"]["samples"])
     assert check["samples"] == doc["requirements"][0]["samples"] == 20000
-    assert check["fallout_ppm [ppm]"] == doc["requirements"][0]["fallout_ppm"]
+    assert_same_to_16_digits(float(check["fallout_ppm [ppm]"]), doc["requirements"][0]["fallout_ppm"])
     assert "lower [mm]" in sheets["verification"].columns
     assert sheets["run"].iloc[0]["seed"] == 7
     assert list(sheets["tolerances"].columns) == ["contributor", "tolerance [mm]"]
@@ -413,17 +494,30 @@ def test_case_sheets_needs_no_openpyxl(no_openpyxl):
     assert list(sheets) == list(SHEETS)
 
 
-def test_every_double_comes_back_exactly(tmp_path):
-    """openpyxl alone writes 16 significant digits; some doubles need 17."""
-    rng = np.random.default_rng(5)
-    extremes = [0.1, 1 / 3, 5e-324, 1.7976931348623157e308]
-    values = np.concatenate([rng.uniform(0, 1, 200), rng.lognormal(0, 20, 200), extremes])
+def _written_and_read(tmp_path, values):
+    """``values`` through write_workbook and back, as numpy float64 and as Python float cells."""
     write_workbook(tmp_path / "x.xlsx", {"numpy": pd.DataFrame({"x": values}),
                                          "python": pd.DataFrame({"x": [float(v) for v in values]}, dtype=object)})
-    for sheet in ("numpy", "python"):
-        cells = openpyxl.load_workbook(tmp_path / "x.xlsx")[sheet].iter_rows(min_row=2, values_only=True)
-        back = [row[0] for row in cells]
+    book = openpyxl.load_workbook(tmp_path / "x.xlsx")
+    return {sheet: [row[0] for row in book[sheet].iter_rows(min_row=2, values_only=True)]
+            for sheet in ("numpy", "python")}
+
+
+def test_numbers_typed_with_up_to_15_digits_come_back_exactly(tmp_path):
+    rng = np.random.default_rng(5)
+    digits = rng.integers(1, 16, 400)
+    typed = [float(f"{int(rng.integers(10 ** (d - 1), 10 ** d))}e{int(rng.integers(-12, 12))}") for d in digits]
+    values = np.array(typed + [0.1, 0.015, 61.2, 1e-3, 2.5e20, 5e-324, 1.0, 0.0, -0.035])
+    for back in _written_and_read(tmp_path, values).values():
         assert back == [float(v) for v in values]
+
+
+def test_a_double_needing_17_digits_comes_back_within_one_unit_in_the_16th(tmp_path):
+    rng = np.random.default_rng(5)
+    values = np.concatenate([rng.uniform(0, 1, 300), rng.lognormal(0, 20, 300), [1 / 3, 0.1 + 0.2]])
+    for back in _written_and_read(tmp_path, values).values():
+        for b, v in zip(back, values.tolist()):
+            assert abs(b - v) <= one_unit_in_16th_digit(v), (b, v)
 
 
 def test_a_workbook_that_unpacks_too_large_is_refused_before_it_is_parsed(tmp_path, monkeypatch):

@@ -30,7 +30,7 @@ def capability(case_file, measurements_file, confidence, as_json, out_file, cons
     the nominal, mean_shift, Cp and Cpk with confidence intervals, an Anderson-Darling
     normality test and the parts outside ± tolerance.
     """
-    from ..casewrite import write_case
+    from ..caseout import write_case
     from ..files import check_output_path
     from ..measured import capability as run
 

@@ -30,7 +30,7 @@ def fit_costs(quotes_file, curve, as_json, plot_file, write):
     quotes) do not stop the command.
     """
     from ..case import load_case
-    from ..casewrite import write_case
+    from ..caseout import write_case
     from ..files import check_output_path
     from ..plots import format_for
     from ..quotes import fit_costs as run
