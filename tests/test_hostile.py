@@ -596,33 +596,67 @@ def _available(command: str) -> bool:
     return command in cli.list_commands(None)
 
 
+CASES = GEARBOX.parent
+SUFFIX = {"init": ".toml", "report": ".html", "study": ".html", "convert": ".xlsx"}
+
+
 def writing_commands():
-    """(id, args with CASE and OUT placeholders) for every writing option that exists."""
+    """(id, args with CASE and OUT placeholders) for every writing option that exists.
+
+    The output's suffix is the one the option writes (:func:`_suffix`); QUOTES and
+    MEASURED stand for the invented demo data in cases/.
+    """
     candidates = [
         ("init", ["init", "OUT"]),
         ("verify-plot", ["verify", "CASE", "--samples", "1000", "--plot", "OUT"]),
+        ("verify-xlsx", ["verify", "CASE", "--samples", "1000", "--xlsx", "OUT"]),
         ("frontier-plot", ["frontier", "CASE", "--points", "3", "--plot", "OUT"]),
         ("frontier-economics-plot", ["frontier", "CASE", "--points", "3", "--economics-plot", "OUT"]),
+        ("frontier-xlsx", ["frontier", "CASE", "--points", "3", "--xlsx", "OUT"]),
+        ("allocate-xlsx", ["allocate", "CASE", "--model", "rss", "--xlsx", "OUT"]),
         ("report", ["report", "CASE", "--samples", "1000", "--no-frontier", "-o", "OUT"]),
+        ("study", ["study", "CASE", "--model", "rss", "--workers", "1", "-o", "OUT"]),
+        ("convert", ["convert", "CASE", "OUT"]),
+        ("fit-costs-write", ["fit-costs", "QUOTES", "--write", "CASE", "OUT"]),
+        ("fit-costs-plot", ["fit-costs", "QUOTES", "--plot", "OUT"]),
+        ("capability-write", ["capability", "CASE", "MEASURED", "--write", "OUT"]),
     ]
     return [pytest.param(args, id=name) if _available(args[0]) else
             pytest.param(args, id=name, marks=pytest.mark.skip(reason=f"no '{args[0]}' command yet"))
             for name, args in candidates]
 
 
+def _suffix(args) -> str:
+    if "--xlsx" in args:
+        return ".xlsx"
+    if "--write" in args:
+        return ".toml"
+    return SUFFIX.get(args[0], ".svg")
+
+
+WRITING_FLAGS = ("-o", "--output", "--plot", "--xlsx", "--write")
+
+
 def test_every_command_with_an_output_option_is_covered():
     """A new writing command (or option) must be added to writing_commands()."""
-    covered = {args[0] for p in writing_commands() for args in [p.values[0]]}
+    covered = {(args[0], flag) for p in writing_commands() for args in [p.values[0]] for flag in args
+               if flag.startswith("-")}
+    commands = {args[0] for p in writing_commands() for args in [p.values[0]]}
     for name in cli.list_commands(None):
         command = cli.get_command(None, name)
-        writes = [o for o in command.params if any(flag in ("-o", "--output", "--plot") or flag.endswith("-plot")
-                                                   for flag in getattr(o, "opts", []))]
-        if writes or name == "init":
-            assert name in covered, f"'{name}' writes files but is not covered here"
+        for option in command.params:
+            for flag in getattr(option, "opts", []):
+                if flag in WRITING_FLAGS or flag.endswith("-plot"):
+                    assert (name, flag) in covered or (flag == "--output" and (name, "-o") in covered), \
+                        f"'{name} {flag}' writes a file but is not covered here"
+        if name in ("init", "convert"):
+            assert name in commands, f"'{name}' writes files but is not covered here"
 
 
 def _fill(args, case: Path, out: Path):
-    return [str(case) if a == "CASE" else str(out) if a == "OUT" else a for a in args]
+    inputs = {"CASE": str(case), "OUT": str(out), "QUOTES": str(CASES / "gearbox_quotes.csv"),
+              "MEASURED": str(CASES / "gearbox_measurements.csv")}
+    return [inputs.get(a, a) for a in args]
 
 
 class _HalfThenFull:
@@ -647,8 +681,7 @@ class _HalfThenFull:
 def test_a_failed_write_leaves_no_file_and_no_temporary(tmp_path, monkeypatch, args):
     case = tmp_path / "case.toml"
     case.write_bytes(GEARBOX.read_bytes())
-    suffix = ".toml" if args[0] == "init" else ".html" if args[0] == "report" else ".svg"
-    out = tmp_path / f"out{suffix}"
+    out = tmp_path / f"out{_suffix(args)}"
     real_fdopen = os.fdopen
     monkeypatch.setattr(os, "fdopen", lambda fd, *a, **k: _HalfThenFull(real_fdopen(fd, *a, **k)))
     result = CliRunner().invoke(cli, _fill(args, case, out))
@@ -665,7 +698,7 @@ def test_a_failed_write_leaves_no_file_and_no_temporary(tmp_path, monkeypatch, a
 def test_a_failed_write_keeps_the_previous_output(tmp_path, monkeypatch, args):
     case = tmp_path / "case.toml"
     case.write_bytes(GEARBOX.read_bytes())
-    out = tmp_path / ("old.toml" if args[0] == "init" else "old.html" if args[0] == "report" else "old.svg")
+    out = tmp_path / f"old{_suffix(args)}"
     out.write_bytes(b"previous output, intact\n")
     args = args + ["--force"] if args[0] == "init" else args
     real_fdopen = os.fdopen
@@ -677,11 +710,11 @@ def test_a_failed_write_keeps_the_previous_output(tmp_path, monkeypatch, args):
     assert files_in(tmp_path) == sorted(["case.toml", out.name])
 
 
-@pytest.mark.parametrize("args", [p for p in writing_commands() if p.values[0][0] != "init"])
+@pytest.mark.parametrize("args", [p for p in writing_commands() if "CASE" in p.values[0]])
 @pytest.mark.parametrize("how", ["same-path", "symlink", "relative"])
 def test_no_command_overwrites_its_case(tmp_path, monkeypatch, args, how):
-    """The case is named .svg/.html so that only the 'input file' rule can refuse it."""
-    suffix = ".html" if args[0] == "report" else ".svg"
+    """The case is named like the output so that only the 'input file' rule can refuse it."""
+    suffix = _suffix(args)
     case = tmp_path / f"case{suffix}"
     case.write_bytes(GEARBOX.read_bytes())
     if how == "same-path":
