@@ -13,9 +13,9 @@ Every command that writes a case (``convert``, ``fit-costs --write``, ``capabili
 --write``) goes through :func:`write_case`: the text is read back through the loader and
 must give the same case before the file is written, whole, through a temporary file.
 
-A section of the case file is one entry here: a ``[[name]]`` array of tables after the
-requirements is a line in :data:`_ARRAYS` (the key, the :class:`Case` attribute and the
-function that writes one item) and a line in :data:`WRITTEN_FIELDS`.
+A section of the case file is one entry here: a ``[[name]]`` array of flat tables is a
+line in :data:`_ARRAYS` (the key, the :class:`Case` attribute, the function that writes
+one item and whether it goes before the requirements) and a line in :data:`WRITTEN_FIELDS`.
 """
 
 from __future__ import annotations
@@ -29,12 +29,14 @@ from .costs import family
 from .model import (
     DEFAULT_FALLOUT_PPM,
     Case,
+    Closure,
     Contributor,
     CostCurve,
     FrontierSettings,
     Offer,
     Process,
     Requirement,
+    Unknown,
 )
 
 __all__ = ["case_to_dict", "cost_to_dict", "dumps_case", "write_case", "WRITTEN_FIELDS"]
@@ -44,7 +46,7 @@ __all__ = ["case_to_dict", "cost_to_dict", "dumps_case", "write_case", "WRITTEN_
 # to the case format later cannot be dropped from a written case without notice
 WRITTEN_FIELDS = {
     "Case": ("title", "contributors", "requirements", "units", "currency", "allocation", "economics",
-             "frontier", "offers", "path", "sha256"),
+             "frontier", "offers", "unknowns", "closures", "path", "sha256"),
     "Contributor": ("name", "nominal", "tolerance", "limits", "cost", "processes", "description", "cp",
                     "mean_shift", "distribution", "count", "fixed", "units"),
     "Process": ("name", "limits", "cost", "cp"),
@@ -54,6 +56,8 @@ WRITTEN_FIELDS = {
     "FrontierSettings": ("requirement", "vary", "range", "points"),
     "CostCurve": ("curve", "a", "b", "c", "k", "points_tolerance", "points_cost", "between"),
     "Offer": ("contributor", "tolerance", "price", "note"),
+    "Unknown": ("name", "guess", "description"),
+    "Closure": ("equation", "name"),
 }
 
 
@@ -67,8 +71,8 @@ def case_to_dict(case: Case) -> dict:
     Returns
     -------
     dict
-        Keys as in a case file (``title``, ``contributor``, ``requirement``,
-        ``allocation`` ...); lists for ``limits`` and ``range``.
+        Keys as in a case file (``title``, ``contributor``, ``unknown``, ``closure``,
+        ``requirement``, ``allocation`` ...); lists for ``limits`` and ``range``.
 
     Examples
     --------
@@ -82,6 +86,7 @@ def case_to_dict(case: Case) -> dict:
     if case.currency:
         out["currency"] = case.currency
     out["contributor"] = [_contributor(c) for c in case.contributors]
+    _arrays(out, case, before_requirements=True)
     out["requirement"] = [_requirement(r) for r in case.requirements]
     allocation: dict = {"models": list(case.allocation.models)}
     if case.allocation.rounding is not None:
@@ -101,11 +106,16 @@ def case_to_dict(case: Case) -> dict:
             frontier["range"] = list(f.range)
         frontier["points"] = f.points
         out["frontier"] = frontier
-    for key, attribute, item in _ARRAYS:
-        items = getattr(case, attribute)
-        if items:
-            out[key] = [item(x) for x in items]
+    _arrays(out, case, before_requirements=False)
     return out
+
+
+def _arrays(out: dict, case: Case, *, before_requirements: bool) -> None:
+    """The case's arrays of flat tables (:data:`_ARRAYS`) that go at this place, if any."""
+    for key, attribute, item, before in _ARRAYS:
+        items = getattr(case, attribute)
+        if items and before == before_requirements:
+            out[key] = [item(x) for x in items]
 
 
 def dumps_case(case: Case, *, comment: str = "") -> str:
@@ -267,9 +277,25 @@ def _offer(o: Offer) -> dict:
     return d
 
 
-# the case file's arrays of tables after the requirements, in the order they are written:
-# (key in the file, attribute of Case, the dict of one item); a later section such as
-# [[unknown]] or [[closure]] is one more line here (and one in WRITTEN_FIELDS)
+def _unknown(u: Unknown) -> dict:
+    d: dict = {"name": u.name, "guess": u.guess}
+    if u.description:
+        d["description"] = u.description
+    return d
+
+
+def _closure(c: Closure) -> dict:
+    d: dict = {"name": c.name} if c.name else {}
+    d["equation"] = c.equation
+    return d
+
+
+# the case file's arrays of flat tables, in the order they are written: (key in the file,
+# attribute of Case, the dict of one item, written before the requirements); the unknowns
+# and closure equations go before the requirements that name the unknowns, as in
+# docs/closure.md; a later section is one more line here (and one in WRITTEN_FIELDS)
 _ARRAYS = (
-    ("offer", "offers", _offer),
+    ("unknown", "unknowns", _unknown, True),
+    ("closure", "closures", _closure, True),
+    ("offer", "offers", _offer, False),
 )

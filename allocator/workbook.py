@@ -1,5 +1,6 @@
 """A case as an .xlsx workbook, and back: the sheets ``settings``, ``contributors``,
-``processes``, ``tables``, ``requirements`` and ``offers`` (layout in docs/spreadsheets.md).
+``processes``, ``tables``, ``unknowns``, ``closures``, ``requirements`` and ``offers``
+(layout in docs/spreadsheets.md).
 
 Reading builds the same dict a TOML case file parses to and hands it to the one case
 loader (:func:`allocator.case.case_from_dict`), so a workbook is checked exactly as a
@@ -13,9 +14,9 @@ Writing goes the other way through :func:`allocator.caseout.case_to_dict`, so a 
 read back from its own workbook equals it (path and hash aside; a number that needs 17
 significant digits comes back within one unit in its 16th, see docs/spreadsheets.md).
 
-A case file's array of flat tables (``[[offer]]``) is a sheet with one row per table and
-one column per key: a line in :data:`LIST_SHEETS`. A later section of the same shape
-(``[[unknown]]``, ``[[closure]]``) is one more line there and in :data:`SHEETS`.
+A case file's array of flat tables (``[[unknown]]``, ``[[closure]]``, ``[[offer]]``) is a
+sheet with one row per table and one column per key: a line in :data:`LIST_SHEETS`. A
+later section of the same shape is one more line there and in :data:`SHEETS`.
 """
 
 from __future__ import annotations
@@ -38,7 +39,7 @@ if TYPE_CHECKING:
 __all__ = ["case_sheets", "write_case_workbook", "load_workbook_case", "convert_case", "SHEETS"]
 
 # the case's sheets, in the order they are written; settings, contributors and requirements are required
-SHEETS = ("settings", "contributors", "processes", "tables", "requirements", "offers")
+SHEETS = ("settings", "contributors", "processes", "tables", "unknowns", "closures", "requirements", "offers")
 REQUIRED_SHEETS = ("settings", "contributors", "requirements")
 
 # setting (its row in the settings sheet) -> what it is (the description column)
@@ -71,8 +72,17 @@ PROCESS_COLUMNS = ("contributor", "process", "cp", "tightest", "loosest", *COST_
 TABLE_COLUMNS = ("contributor", "process", "tolerance", "cost")
 REQUIREMENT_COLUMNS = ("name", "units", "expression", "lower", "upper", "fallout_ppm")
 OFFER_COLUMNS = ("contributor", "tolerance", "price", "note")
-# sheet -> the case file's array of flat tables it holds: one row per table, one column per key
-LIST_SHEETS = {"offers": ("offer", OFFER_COLUMNS)}
+UNKNOWN_COLUMNS = ("name", "guess", "description")
+CLOSURE_COLUMNS = ("name", "equation")
+# sheet -> the case file's array of flat tables it holds: one row per table, one column per
+# key (the first column names the item in messages)
+LIST_SHEETS = {
+    "unknowns": ("unknown", UNKNOWN_COLUMNS),
+    "closures": ("closure", CLOSURE_COLUMNS),
+    "offers": ("offer", OFFER_COLUMNS),
+}
+# list sheets whose rows are named: a repeated name is refused at its second row
+UNIQUE_NAMES = {"unknowns": "name", "closures": "name"}
 CHAIN_PREFIX = "chain."  # requirements: one column chain.NAME per contributor (its coefficient)
 
 # columns a sheet cannot do without, and why
@@ -86,6 +96,8 @@ REQUIRED_COLUMNS = {
     "requirements": {"name": "the name of each requirement"},
     "offers": {"contributor": "the contributor offered", "tolerance": "the offered ± tolerance",
                "price": "the offered price per part"},
+    "unknowns": {"name": "the name of each unknown", "guess": "where the nominal solve starts"},
+    "closures": {"equation": "the closure equation, 0 when the loop closes"},
 }
 COLUMNS = {
     "settings": SETTINGS_COLUMNS,
@@ -94,8 +106,13 @@ COLUMNS = {
     "tables": TABLE_COLUMNS,
     "requirements": REQUIREMENT_COLUMNS,
     "offers": OFFER_COLUMNS,
+    "unknowns": UNKNOWN_COLUMNS,
+    "closures": CLOSURE_COLUMNS,
 }
 _FREE_TEXT = ("title", "currency", "description", "note")  # a number typed there is meant as text
+# a spreadsheet program takes a cell typed as "-a + b" for a formula; saved, it holds an error value
+_ERROR_VALUES = ("#NULL!", "#DIV/0!", "#VALUE!", "#REF!", "#NAME?", "#NUM!", "#N/A")
+_FORMULA_TEXT = {"closures": "equation", "requirements": "expression"}
 
 
 # --------------------------------------------------------------------------- writing
@@ -111,8 +128,7 @@ def case_sheets(case: Case) -> dict[str, pd.DataFrame]:
     Returns
     -------
     dict of str to pandas.DataFrame
-        ``settings``, ``contributors``, ``processes``, ``tables``, ``requirements``,
-        ``offers`` (see docs/spreadsheets.md).
+        The sheets of :data:`SHEETS`, in that order (see docs/spreadsheets.md).
     """
     import pandas as pd
 
@@ -166,7 +182,7 @@ def case_sheets(case: Case) -> dict[str, pd.DataFrame]:
     }
     for sheet, (key, columns) in LIST_SHEETS.items():
         sheets[sheet] = frame(data.get(key, []), columns)
-    return sheets
+    return {name: sheets[name] for name in SHEETS}
 
 
 def _limits_and_cost(item: dict, tables: list, contributor: str, process: str | None) -> dict:
@@ -294,6 +310,7 @@ _LAYOUT_HINTS = {
     ("processes", "cost"): _COST_HINT,
     ("processes", "name"): " (a process's name goes in the column process)",
     ("requirements", "chain"): f" (in a workbook, a chain is one column {CHAIN_PREFIX}NAME per contributor)",
+    ("closures", "expression"): " (a closure's equation goes in the column equation)",
 }
 
 
@@ -335,6 +352,18 @@ def _check_sheets(places: _Places, tables: dict) -> None:
         for column, why in REQUIRED_COLUMNS[name].items():
             if column not in table.columns and (table.rows or name in REQUIRED_SHEETS):
                 places.fail(places.cell(name, 1), f"missing column {column!r} ({why})")
+
+
+def _check_formula_text(places: _Places, tables: dict) -> None:
+    """An equation or expression cell that a spreadsheet program turned into a failed formula."""
+    for sheet, column in _FORMULA_TEXT.items():
+        for row, values in tables[sheet].rows if sheet in tables else ():
+            value = values.get(column)
+            if isinstance(value, str) and value in _ERROR_VALUES:
+                places.fail(places.cell(sheet, row, column),
+                            f"holds the spreadsheet error {value} (the program took the {column} for a "
+                            "formula, as it does with text that starts with = + or -: type an apostrophe "
+                            "' before it)")
 
 
 def _text_cells(values: dict) -> dict:
@@ -439,6 +468,7 @@ def _read_points(places: _Places, table: SheetTable | None, owners: dict) -> dic
 
 def _workbook_to_dict(places: _Places, tables: dict) -> dict:
     _check_sheets(places, tables)
+    _check_formula_text(places, tables)
     data = _read_settings(places, tables["settings"])
 
     contributor_rows = tables["contributors"].rows
@@ -523,6 +553,8 @@ def _workbook_to_dict(places: _Places, tables: dict) -> dict:
 
     for sheet, (key, columns) in LIST_SHEETS.items():
         places.exact[key] = places.cell(sheet)
+        if sheet in UNIQUE_NAMES and sheet in tables:
+            _unique(places, sheet, tables[sheet].rows, UNIQUE_NAMES[sheet])
         items = []
         for i, (row, values) in enumerate(tables[sheet].rows if sheet in tables else (), start=1):
             item = {k: v for k, v in _text_cells(values).items() if k in columns}

@@ -328,3 +328,32 @@ def test_a_contributor_made_by_processes_gets_the_cp_on_the_process_making_its_t
     others = {"impeller_hub": 0.02 / 3, "shim": 0.01 / 3, "wear_plate": 0.03 / math.sqrt(6)}
     expected = math.sqrt(x.std(ddof=1) ** 2 + sum(s**2 for s in others.values()))
     assert analysis.sigma == pytest.approx(expected, rel=1e-12)
+
+
+def test_a_written_case_keeps_its_unknowns_and_closure_equations(tmp_path):
+    """The clutch's loop survives `capability --write`; the measured σ is the parts' own."""
+    clutch = ROOT / "cases" / "roller_clutch.toml"
+    case = load_case(clutch)
+    rng = np.random.default_rng(20261202)  # invented parts
+    parts = {"hub_flat": 27.645 + 0.001 + 0.0025 * rng.standard_normal(30),
+             "roller_radius": 11.430 + 0.0012 * rng.standard_normal(30),
+             "ring_radius": 50.800 - 0.002 + 0.003 * rng.standard_normal(30)}
+    path = tmp_path / "clutch_parts.csv"
+    path.write_text(",".join(parts) + "\n" + "".join(
+        ",".join(repr(float(parts[n][i])) for n in parts) + "\n" for i in range(30)))
+    out = tmp_path / "measured.toml"
+    result = CliRunner().invoke(cli, ["capability", str(clutch), str(path), "--write", str(out)])
+    assert result.exit_code == 0, result.output
+    written = load_case(out)
+    assert written.unknowns == case.unknowns and written.closures == case.closures
+    assert written.requirements == case.requirements
+    for name, x in parts.items():
+        c = case.contributor(name)
+        # Cp = (USL - LSL) / 6σ with σ the sample standard deviation (Montgomery, section 8.3)
+        assert written.contributor(name).cp == pytest.approx(c.tolerance / (3 * x.std(ddof=1)), rel=1e-12)
+        assert written.contributor(name).mean_shift == pytest.approx(abs(x.mean() - c.nominal) / c.tolerance,
+                                                                     rel=1e-12)
+    # the loop still closes where the clutch's closed form puts it (docs/closure.md):
+    # cos(phi) = (hub_flat + roller_radius) / (ring_radius - roller_radius)
+    a, c, e = (case.contributor(n).nominal for n in ("hub_flat", "roller_radius", "ring_radius"))
+    assert written.loop.values[0] == pytest.approx(math.acos((a + c) / (e - c)), rel=1e-12)

@@ -359,3 +359,25 @@ def test_quotes_that_never_get_cheaper_cannot_be_written(tmp_path, curve):
                                     "is flat")
     assert "do not get cheaper" in result.stderr
     assert not out.exists()
+
+
+def test_a_written_case_keeps_its_unknowns_and_closure_equations(tmp_path):
+    """The clutch's loop survives `fit-costs --write`; noiseless quotes give back their curve."""
+    clutch = ROOT / "cases" / "roller_clutch.toml"
+    case = load_case(clutch)
+    true = {"hub_flat": dict(a=0.7, b=0.005), "ring_radius": dict(a=1.1, b=0.008)}  # invented
+    tolerances = np.array([0.004, 0.008, 0.015, 0.03, 0.05])
+    rows = "".join(f"{name},invented,{t!r},{c!r}\n" for name, params in true.items()
+                   for t, c in zip(tolerances.tolist(), CostCurve("reciprocal", **params).value(tolerances).tolist()))
+    path = _quotes(tmp_path, HEADER + rows, "clutch_quotes.csv")
+    out = tmp_path / "fitted.toml"
+    result = CliRunner().invoke(cli, ["fit-costs", str(path), "--curve", "reciprocal",
+                                      "--write", str(clutch), str(out)])
+    assert result.exit_code == 0, result.output
+    written = load_case(out)
+    assert written.unknowns == case.unknowns and written.closures == case.closures
+    assert written.requirements == case.requirements
+    for name, params in true.items():
+        cost = written.contributor(name).cost
+        assert (cost.a, cost.b) == pytest.approx((params["a"], params["b"]), rel=1e-6)
+    assert written.contributor("roller_radius") == case.contributor("roller_radius")

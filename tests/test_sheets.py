@@ -45,6 +45,7 @@ ROOT = Path(__file__).resolve().parents[1]
 DEMOS = sorted((ROOT / "cases").glob("*.toml"))
 GEARBOX = ROOT / "cases" / "gearbox_end_play.toml"
 GEAR_HUB = ROOT / "cases" / "gear_hub_end_play.toml"
+CLUTCH = ROOT / "cases" / "roller_clutch.toml"  # unknowns and closure equations
 CELL = re.compile(r"sheet (\w+), row (\d+)(?:, column (\S+))?")
 # invented offers for the gearbox demo (a supplier's tolerance and price per part)
 OFFERS = (Offer("spacer", 0.03, 0.6, "invented supplier A"), Offer("gasket", 0.04, 0.35),
@@ -140,6 +141,9 @@ def test_the_workbook_holds_the_numbers_of_the_case_file(path, tmp_path):
         for key in ("lower", "upper", "fallout_ppm"):
             if key in r:
                 assert needs.loc[r["name"], key] == r[key]
+    for key, sheet in (("unknown", "unknowns"), ("closure", "closures")):  # one row per table, in order
+        rows = [{k: v for k, v in row.items() if not pd.isna(v)} for row in sheets[sheet].to_dict("records")]
+        assert rows == raw.get(key, [])
 
 
 def test_a_csv_cost_table_goes_into_the_tables_sheet(tmp_path):
@@ -199,6 +203,38 @@ def test_a_workbook_is_accepted_wherever_a_case_file_is(tmp_path):
     import json
 
     assert json.loads(from_book.stdout)["results"] == json.loads(from_toml.stdout)["results"]
+
+
+def test_the_clutch_from_its_workbook_analyses_and_allocates_as_from_its_case_file(tmp_path):
+    """Unknowns and closure equations in sheets: the loop solved the same, number for number."""
+    book = tmp_path / "clutch.xlsx"
+    assert run("convert", CLUTCH, book).exit_code == 0
+    import json
+
+    for command in (("analyze", "--json"), ("allocate", "--model", "rss", "--json")):
+        from_book, from_toml = run(command[0], book, *command[1:]), run(command[0], CLUTCH, *command[1:])
+        assert from_book.exit_code == from_toml.exit_code == 0, from_book.output
+        doc_book, doc_toml = json.loads(from_book.stdout), json.loads(from_toml.stdout)
+        doc_book.pop("case", None), doc_toml.pop("case", None)  # where it came from differs
+        assert doc_book == doc_toml
+
+
+def test_the_unknowns_and_closures_sheets_are_optional_and_their_defaults_stay_out(tmp_path):
+    book = tmp_path / "gearbox.xlsx"
+    write_case_workbook(load_case(GEARBOX), book)
+    wb = openpyxl.load_workbook(book)
+    wb.remove(wb["unknowns"])
+    wb.remove(wb["closures"])
+    wb.save(book)
+    assert bare(load_workbook_case(book)) == bare(load_case(GEARBOX))
+    # a closure without a name, an unknown without a description: empty cells, read back as such
+    clutch = load_case(CLUTCH)
+    plain = replace(clutch, unknowns=tuple(replace(u, description="") for u in clutch.unknowns),
+                    closures=tuple(replace(c, name="") for c in clutch.closures))
+    write_case_workbook(plain, book)
+    sheets = pd.read_excel(book, sheet_name=["unknowns", "closures"])
+    assert sheets["unknowns"]["description"].isna().all() and sheets["closures"]["name"].isna().all()
+    assert bare(load_workbook_case(book)) == bare(plain)
 
 
 # --------------------------------------------------------------------------- bad workbooks
@@ -283,6 +319,40 @@ BAD = {
                                        "missing column 'price' (the offered price per part)"),
     "unknown column in offers": (_rename("offers", "note", "notes"), GEARBOX_OFFERS, "offers", "1", "notes",
                                  "did you mean 'note'?"),
+    "a number as an equation": (_set("closures", 2, "equation", 3.5), CLUTCH, "closures", "2", "equation",
+                                "must be text (got 3.5)"),
+    "an unknown without a name": (_set("unknowns", 3, "name", None), CLUTCH, "unknowns", "3", "name",
+                                  "missing (a name for the unknown)"),
+    "an unknown without a guess": (_set("unknowns", 2, "guess", None), CLUTCH, "unknowns", "2", "guess",
+                                   "missing (a start value for the nominal solve)"),
+    "a closure without an equation": (_set("closures", 3, "equation", None), CLUTCH, "closures", "3", "equation",
+                                      "missing (the equation"),
+    "text in a guess": (_set("unknowns", 2, "guess", "0.1 rad"), CLUTCH, "unknowns", "2", "guess",
+                        "must be a number (got text '0.1 rad')"),
+    "unknown column in unknowns": (_rename("unknowns", "guess", "gues"), CLUTCH, "unknowns", "1", "gues",
+                                   "did you mean 'guess'?"),
+    "an equation in a column expression": (_rename("closures", "equation", "expression"), CLUTCH, "closures", "1",
+                                           "expression", "a closure's equation goes in the column equation"),
+    "a closures sheet without equations": (_drop_column("closures", "equation"), CLUTCH, "closures", "1", None,
+                                           "missing column 'equation'"),
+    "a misspelt unknown in an equation": (_set("closures", 2, "equation", "offset + roller_radius * sin(ph)"),
+                                          CLUTCH, "closures", "2", "equation",
+                                          "unknown name 'ph' (not a contributor or unknown) (did you mean 'phi'?)"),
+    "an unknown named as a contributor": (_set("unknowns", 2, "name", "hub_flat"), CLUTCH, "unknowns", "2", "name",
+                                          "'hub_flat' is already a contributor"),
+    "an unknown twice": (_set("unknowns", 3, "name", "phi"), CLUTCH, "unknowns", "3", "name",
+                         "'phi' is already used by row 2"),
+    "a closure name twice": (_set("closures", 3, "name", "loop_x"), CLUTCH, "closures", "3", "name",
+                             "'loop_x' is already used by row 2"),
+    "one equation too many": (lambda wb: wb["closures"].append(["loop_z", "phi - 0.1"]), CLUTCH, "closures", None,
+                              None, "3 closure equations for 2 unknowns"),
+    "no closures sheet": (lambda wb: wb.remove(wb["closures"]), CLUTCH, "unknowns", None, None,
+                          "0 closure equations for 2 unknowns"),
+    "an equation taken for a formula": (_set("closures", 2, "equation", "#NAME?"), CLUTCH, "closures", "2",
+                                        "equation", "holds the spreadsheet error #NAME? (the program took the "
+                                        "equation for a formula"),
+    "unknown sheet": (lambda wb: wb.create_sheet("closure"), CLUTCH, "closure", None, None,
+                      "unknown sheet 'closure' (did you mean 'closures'?)"),
 }
 
 
@@ -296,7 +366,9 @@ def test_a_bad_workbook_is_one_line_naming_sheet_row_and_column_and_nothing_is_w
     line = one_line_error(result)
     assert line.startswith(f"error: {book}: ")
     assert fragment in line
-    if sheet is not None:
+    if sheet is not None and row is None:  # a problem of the whole sheet
+        assert f"{book}: sheet {sheet}: " in line
+    elif sheet is not None:
         found = CELL.search(line)
         assert found, line
         assert found.group(1) == sheet and found.group(2) == row and found.group(3) == column
@@ -328,6 +400,35 @@ def test_the_workbook_gets_the_problem_text_the_case_file_gets(old, new, edit, p
         load_workbook_case(book)
     assert in_book.value.problem == in_toml.value.problem
     assert CELL.search(in_book.value.field).groups() == place
+
+
+CLUTCH_MISTAKES = [
+    # (TOML text replaced, by, sheet edit, place in the workbook)
+    ('equation = "offset + roller_radius * sin(phi) - ring_radius * sin(phi)"', "equation = 3.5",
+     _set("closures", 2, "equation", 3.5), ("closures", "2", "equation")),
+    ("guess = 5.0", 'guess = "5.0"', _set("unknowns", 3, "guess", "5.0"), ("unknowns", "3", "guess")),
+    ('name = "offset"', 'name = "sin"', _set("unknowns", 3, "name", "sin"), ("unknowns", "3", "name")),
+    ('- ring_radius * cos(phi)"', '- ring_radius * cos(phi) + 100"', _set(  # cos(phi) > 1: no closed position
+        "closures", 3, "equation", "hub_flat + roller_radius + roller_radius * cos(phi) - ring_radius * cos(phi) "
+        "+ 100"), ("closures", None, None)),
+    ('expression = "phi * 180 / pi"', 'expression = "ph * 180 / pi"', _set("requirements", 2, "expression",
+                                                                         "ph * 180 / pi"),
+     ("requirements", "2", "expression")),
+]
+
+
+@pytest.mark.parametrize("old, new, edit, place", CLUTCH_MISTAKES, ids=[m[1] for m in CLUTCH_MISTAKES])
+def test_a_closure_mistake_gets_the_problem_text_the_case_file_gets(old, new, edit, place, tmp_path):
+    text = CLUTCH.read_text(encoding="utf-8")
+    assert old in text
+    with pytest.raises(CaseError) as in_toml:
+        loads_case(text.replace(old, new, 1))
+    book = _bad_workbook(tmp_path, edit, CLUTCH)
+    with pytest.raises(CaseError) as in_book:
+        load_workbook_case(book)
+    assert in_book.value.problem == in_toml.value.problem
+    found = CELL.search(in_book.value.field)
+    assert (found.groups() if found else (in_book.value.field.removeprefix("sheet "), None, None)) == place
 
 
 def test_a_bad_case_file_writes_no_workbook(tmp_path):

@@ -208,3 +208,29 @@ def test_write_case_reads_the_text_back_and_writes_nothing_when_it_differs(damag
     with pytest.raises(InternalError, match="writing the case"):
         write_case(replace(load_case(GEARBOX), offers=OFFERS), out)
     assert not out.exists() and not list(tmp_path.iterdir())
+
+
+# --------------------------------------------------------------------------- closure equations
+
+CLUTCH = ROOT / "cases" / "roller_clutch.toml"
+
+
+def test_unknowns_and_closures_are_written_as_the_file_has_them_before_the_requirements():
+    """Compared with tomllib's reading of the hand-written demo file."""
+    case = load_case(CLUTCH)
+    text = dumps_case(case)
+    raw, again = tomllib.loads(CLUTCH.read_text(encoding="utf-8")), tomllib.loads(text)
+    assert again["unknown"] == raw["unknown"] and again["closure"] == raw["closure"]
+    assert list(again).index("closure") < list(again).index("requirement")  # phi is named after it is declared
+    assert text.index("[[closure]]") < text.index("[[requirement]]")
+    assert "unknown" not in case_to_dict(load_case(GEARBOX)) and "closure" not in case_to_dict(load_case(GEARBOX))
+
+
+def test_a_closure_without_a_name_and_an_unknown_without_a_description_leave_them_out():
+    case = load_case(CLUTCH)
+    plain = replace(case, unknowns=tuple(replace(u, description="") for u in case.unknowns),
+                    closures=tuple(replace(c, name="") for c in case.closures))
+    raw = tomllib.loads(dumps_case(plain))
+    assert [set(u) for u in raw["unknown"]] == [{"name", "guess"}] * 2
+    assert [set(c) for c in raw["closure"]] == [{"equation"}] * 2
+    assert bare(loads_case(dumps_case(plain))) == bare(plain)
