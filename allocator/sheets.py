@@ -316,6 +316,16 @@ def _label_columns(frame: pd.DataFrame, columns: Sequence[str], label_column: st
     return frame.drop(columns=label_column).rename(columns={c: _header(c, label) for c in columns})
 
 
+def study_sheets(study) -> dict[str, pd.DataFrame]:
+    """The tables of ``study``: ``cases`` (one row per case and model) and ``totals``.
+
+    Money columns carry the currency in their header when every row shares one
+    (``total_cost [EUR]``); with mixed currencies the ``currency`` column stays.
+    """
+    money = ("current_cost", "total_cost", "saving", "saving_per_year")
+    return {name: _label_columns(frame, money, label_column="currency") for name, frame in study.frames().items()}
+
+
 def allocation_sheets(results: Sequence) -> dict[str, pd.DataFrame]:
     """The tables of ``allocate``: ``summary``, ``tolerances`` and ``requirements``, all models.
 

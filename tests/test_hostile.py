@@ -616,6 +616,7 @@ def writing_commands():
         ("allocate-xlsx", ["allocate", "CASE", "--model", "rss", "--xlsx", "OUT"]),
         ("report", ["report", "CASE", "--samples", "1000", "--no-frontier", "-o", "OUT"]),
         ("study", ["study", "CASE", "--model", "rss", "--workers", "1", "-o", "OUT"]),
+        ("study-xlsx", ["study", "CASE", "--model", "rss", "--workers", "1", "--xlsx", "OUT"]),
         ("convert", ["convert", "CASE", "OUT"]),
         ("fit-costs-write", ["fit-costs", "QUOTES", "--write", "CASE", "OUT"]),
         ("fit-costs-plot", ["fit-costs", "QUOTES", "--plot", "OUT"]),

@@ -302,3 +302,30 @@ def test_verify_on_the_cluster_is_bit_identical_to_a_local_run(scheduler):
     there = runner.invoke(cli, args + ["--scheduler", scheduler])
     assert here.exit_code == there.exit_code == 0, there.output
     assert there.stdout == here.stdout
+
+
+def test_xlsx_holds_the_same_numbers_as_json_with_the_currency_in_the_headers(tmp_path):
+    pytest.importorskip("openpyxl", reason="the sheets extra (openpyxl) is not installed")
+    import pandas as pd
+
+    demo = Path(__file__).resolve().parents[1] / "cases"
+    files = [str(demo / "gearbox_end_play.toml"), str(demo / "pump_shim.toml")]
+    book = tmp_path / "study.xlsx"
+    done = CliRunner().invoke(cli, ["study", *files, "--model", "rss", "--workers", "1", "--json",
+                                    "--xlsx", str(book)])
+    assert done.exit_code == 0, done.output
+    rows = json.loads(done.stdout)["cases"]
+    sheets = pd.read_excel(book, sheet_name=None)
+    assert set(sheets) == {"cases", "totals"}
+    cases = sheets["cases"]
+    currency = {r["currency"] for r in rows}
+    assert len(currency) == 1
+    label = f"[{currency.pop()}]"
+    assert f"total_cost {label}" in cases.columns and "currency" not in cases.columns
+    for row, (_, cell) in zip(rows, cases.iterrows()):
+        assert cell["file"] == row["file"]
+        # a workbook number keeps 16 significant digits (docs/spreadsheets.md)
+        assert cell[f"total_cost {label}"] == pytest.approx(row["total_cost"], rel=1e-15)
+        assert cell[f"current_cost {label}"] == pytest.approx(row["current_cost"], rel=1e-15)
+    assert sheets["totals"][f"saving {label}"].iloc[0] == pytest.approx(
+        sum(r["current_cost"] - r["total_cost"] for r in rows), rel=1e-12)

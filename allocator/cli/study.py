@@ -15,10 +15,12 @@ from .common import (
     echo_json,
     exit_failed,
     fmt,
+    check_xlsx,
     handle_errors,
     json_option,
     model_option,
     text_table,
+    xlsx_option,
 )
 
 EXIT_CODES = (
@@ -56,8 +58,9 @@ class WorkerCount(click.ParamType):
 @csv_option
 @click.option("-o", "--output", "output", type=FilePath("an HTML file"), default=None, metavar="FILE.html",
               help="Also write a short self-contained HTML summary page (chart, table, cautions).")
+@xlsx_option
 @handle_errors
-def study(paths, models, workers, scheduler, as_json, as_csv, output):
+def study(paths, models, workers, scheduler, as_json, as_csv, output, xlsx):
     """Allocate every case and tabulate the savings: a cost-reduction study.
 
     CASE_OR_FOLDER: case files, or folders whose *.toml files are all studied. Per case
@@ -79,11 +82,16 @@ def study(paths, models, workers, scheduler, as_json, as_csv, output):
     files = case_files(paths)
     if output is not None:
         check_output_path(output, protect=files, input_name="input case file")
+    check_xlsx(xlsx, *files, output)
     result = run(files, models=models, workers=workers, scheduler=scheduler, progress=sys.stderr.isatty())
     if output is not None:
         from ..report.study_page import write_study_page
 
         write_study_page(result, output)
+    if xlsx is not None:
+        from ..sheets import study_sheets, write_workbook
+
+        write_workbook(xlsx, study_sheets(result), protect=(*files, output))
 
     if as_json:
         echo_json(result.to_dict())
@@ -91,6 +99,8 @@ def study(paths, models, workers, scheduler, as_json, as_csv, output):
         click.echo(result.to_frame().to_csv(index=False), nl=False)
     else:
         _print_human(result, output)
+    if xlsx is not None:
+        click.echo(f"wrote {xlsx}", err=as_json or as_csv)
 
     if result.exit_code == 2:  # the reasons are in the rows above; stderr gets one line
         echo_error(f"study: {result.message}")
