@@ -53,6 +53,10 @@ MODEL_EXPLANATIONS = {
     "mean-shift": "as RSS, but each process mean may sit anywhere within its stated mean shift; "
     "the fallout at the worst mean must meet the target (estimated mean shift, Greenwood & "
     "Chase 1987)",
+    "convolution": "parts vary independently with the stated distributions (normal with its cp, "
+    "uniform, triangular), and the exact fallout of the response, computed by numerical "
+    "convolution with the mean at the worse end of any mean-shift band, must meet the target; "
+    "the allocation is a verified first-order (KKT) optimum, not proven global",
 }
 
 # the cautions in full (section 9); the header repeats their gist next to the result
