@@ -24,8 +24,9 @@ the exact feasible set (the largest uniform scale of the free tolerances that me
 target), and the step is kept only when it lowers the cost (else halved, geometrically).
 At a fixed point the surrogate's optimality conditions are those of the exact problem,
 so the answer is a KKT point; the residual of the conditions is measured and reported.
-The iterations use a coarse grid (2**14 points); the answer is scaled onto the target with
-the default grid (2**18 points) and re-checked there before it is called optimal.
+The iterations use a coarse grid (2**12 points), then a few a finer one (2**15); the answer
+is scaled onto the target with the default grid (2**18 points) and re-checked there before
+it is called optimal.
 
 What is proven: the answer meets every target by the full-resolution evaluation, and it
 satisfies the first-order (KKT) conditions to the reported residual. What is not: global
@@ -65,6 +66,8 @@ __all__ = [
 SOLVER_NAME = "convolution-sca"
 LINEAR_CHAIN_ONLY = "convolution needs a linear chain; use rss or mean-shift, then verify"
 COARSE_POINTS = 2**12  # grid across the bounded part during the iterations (~1e-5 relative)
+REFINE_POINTS = 2**15  # then a few steps on a finer grid (~1e-7 relative)
+REFINE_ITERATIONS = 3
 GRADIENT_STEP = 1e-4  # relative step of the central differences
 MAX_ITERATIONS = 40
 STEP_TRIES = 6  # step halvings before the iteration counts as converged
@@ -231,6 +234,7 @@ class ConvolutionAllocation:
         p = problem
         self.start_model = "mean-shift" if np.any(p.mean_shifts > 0) else "rss"
         self._start = None
+        self._points = COARSE_POINTS  # grid of the ray roots in the current phase
         self.evaluations = 0
 
     # ------------------------------------------------------------------ exact fallout
@@ -241,21 +245,71 @@ class ConvolutionAllocation:
         return below + above
 
     def _coarse(self, j, t, lim) -> float:
-        return self._fallout(j, t, lim, bulk_points=COARSE_POINTS)
+        return self._fallout(j, t, lim, bulk_points=self._points)
 
     def _gradient(self, j, t, lim) -> np.ndarray:
-        """∇F_j at ``t`` by central differences on the grid of ``t`` (held fixed)."""
+        r"""∇F_j at ``t`` [1/length].
+
+        Normal contributors: central differences with the grid step held (the normal part
+        is analytic, so the difference is smooth in ``t``). Uniform and triangular ones:
+        the exact derivative in the half-width. With ``D`` the centred response and ``R``
+        the response without one instance of a uniform on ``±c``,
+        ``S_D(u) = (1/2c) ∫_{u−c}^{u+c} S_R(v) dv``, so
+
+        .. math:: \frac{∂S_D(u)}{∂c} = \frac{S_R(u + c) + S_R(u − c)}{2c} − \frac{S_D(u)}{c};
+
+        a triangular on ``±c`` is two uniforms on ``±c/2``, which gives the same formula
+        with ``c/2`` and ``R`` holding the other half. Each tail is an upper tail of ``D``
+        (``U − μ`` and ``μ − L``); a mean shift adds ``∂F/∂μ · ∂μ/∂t``. (Differences on the
+        grid would be off by O(h/c) here, as the edge of a uniform moves across a bin.)
+        """
         p = self.problem
-        a = p.requirements[j].sensitivity
-        step = p.distribution(j, t, bulk_points=COARSE_POINTS).step
-        grid = {"step": step} if step > 0 else {}
+        req = p.requirements[j]
+        a = req.sensitivity
+        n, f, kinds = p.counts, p.sigma_factors, p.distributions
+        base = p.distribution(j, t, bulk_points=COARSE_POINTS)
+        grid = {"step": base.step} if base.step > 0 else {}
+        delta = stack.mean_shift_delta(a, n, p.mean_shifts, t)
+        _, _, mean = band_fallout(base, req.nominal, delta, lim.lower, lim.upper)
+        centred = replace(base, mean=0.0)
+        tails = [u for u in ((None if lim.upper is None else lim.upper - mean),
+                             (None if lim.lower is None else mean - lim.lower)) if u is not None]
         g = np.zeros(t.size)
-        for i in np.flatnonzero((a != 0) & (t > 0)):
-            e = GRADIENT_STEP * t[i]
-            up, down = t.copy(), t.copy()
-            up[i] += e
-            down[i] -= e
-            g[i] = (self._fallout(j, up, lim, **grid) - self._fallout(j, down, lim, **grid)) / (2.0 * e)
+        involved = np.flatnonzero((a != 0) & (t > 0))
+        bounded = [i for i in involved if kinds[i] != "normal"]
+        slope_mean = 0.0
+        if any(p.mean_shifts[i] > 0 for i in bounded) and delta > 0:
+            spread = stack.rss_sigma(a, n, f * t)
+            h = max(4.0 * base.step, 1e-6 * spread)
+            density = lambda u: (centred.sf(u - h) - centred.sf(u + h)) / (2.0 * h)  # noqa: E731
+            # F = S_D(U − μ) + S_D(μ − L): ∂F/∂μ = f_D(U − μ) − f_D(μ − L)
+            if lim.upper is not None:
+                slope_mean += density(lim.upper - mean)
+            if lim.lower is not None:
+                slope_mean -= density(mean - lim.lower)
+            slope_mean *= 1.0 if mean >= req.nominal else -1.0
+        for i in involved:
+            if kinds[i] == "normal":
+                e = GRADIENT_STEP * t[i]
+                up, down = t.copy(), t.copy()
+                up[i] += e
+                down[i] -= e
+                g[i] = (self._fallout(j, up, lim, **grid) - self._fallout(j, down, lim, **grid)) / (2.0 * e)
+                continue
+            # the response without one instance of i (a triangular keeps one uniform half)
+            counts = n.copy()
+            counts[i] -= 1
+            coef, tol, kind, fac = a, t, list(kinds), f
+            half = abs(a[i]) * t[i]
+            if kinds[i] == "triangular":
+                half *= 0.5
+                coef, tol = np.append(a, a[i]), np.append(t, 0.5 * t[i])
+                counts, kind, fac = np.append(counts, 1.0), kind + ["uniform"], np.append(f, 0.0)
+            self.evaluations += 1
+            rest = linear_sum_distribution(coef, counts, tol, kind, fac, **grid)
+            d_half = sum((rest.sf(u + half) + rest.sf(u - half)) / (2.0 * half) - centred.sf(u) / half
+                         for u in tails)
+            g[i] = n[i] * abs(a[i]) * (d_half + slope_mean * p.mean_shifts[i])
         return g
 
     # ------------------------------------------------------------------ scaling
@@ -355,11 +409,21 @@ class ConvolutionAllocation:
         if reason is not None:
             return p.infeasible(limits, reason, SOLVER_NAME)
         t, start = self._start_point(overrides)
-        coarse = {"bulk_points": COARSE_POINTS}
-        t = self._project(t, limits, **coarse)
+        t, steps = self._iterate(t, limits, COARSE_POINTS, MAX_ITERATIONS)
+        t, more = self._iterate(t, limits, REFINE_POINTS, REFINE_ITERATIONS)
+        t = self._project(t, limits, first=1e-5)  # onto the targets by the default (full) grid
+        return self._result(t, limits, start, steps + more)
+
+    def _iterate(self, t, limits, points: int, most: int) -> tuple[np.ndarray, int]:
+        """Convex steps from ``t`` with the ray roots and scaling on a ``points`` grid."""
+        p = self.problem
+        free = p.free
+        self._points = points
+        grid = {"bulk_points": points}
+        t = self._project(t, limits, **grid)
         cost = p.total_cost(t)
-        iterations = 0
-        for iterations in range(1, MAX_ITERATIONS + 1):
+        steps = 0
+        for _ in range(most):
             rows = [self._surrogate_requirement(j, t, lim) for j, lim in enumerate(limits)
                     if lim.lower is not None or lim.upper is not None]
             rows = [r for r in rows if r is not None]
@@ -369,13 +433,12 @@ class ConvolutionAllocation:
                     break
                 target = surrogate.allocated_array()
             else:
-                target = np.where(p.free, p.loosest, t)
-            free = p.free
+                target = np.where(free, p.loosest, t)
             lam, moved = 1.0, False
             for _ in range(STEP_TRIES):
                 trial = t.copy()
                 trial[free] = t[free] ** (1.0 - lam) * target[free] ** lam
-                trial = self._project(trial, limits, **coarse)
+                trial = self._project(trial, limits, **grid)
                 trial_cost = p.total_cost(trial)
                 if trial_cost < cost:
                     moved = True
@@ -383,13 +446,13 @@ class ConvolutionAllocation:
                 lam *= 0.5
             if not moved:
                 break
+            steps += 1
             change = float(np.max(np.abs(np.log(trial[free] / t[free])))) if free.any() else 0.0
             gain = (cost - trial_cost) / cost
             t, cost = trial, trial_cost
             if change < MOVE_TOL or gain < COST_RTOL:
                 break
-        t = self._project(t, limits, first=1e-5)  # onto the targets by the default (full) grid
-        return self._result(t, limits, start, iterations)
+        return t, steps
 
     # ------------------------------------------------------------------ the answer
 
