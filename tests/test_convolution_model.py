@@ -120,13 +120,14 @@ def uniform_sum_case(parts, upper, fallout_ppm=100.0):
     return make_case(contributors, [req], models=("rss", "convolution")), nominal
 
 
-def shim_case(target_ppm=100.0, shift=0.0, lower=9.85, upper=10.12):
-    """Invented: a normal-made ground ring (cp 1.2, optional mean shift), a uniform stamped
-    shim and a second normal ring, stacked; the gap must stay in [lower, upper]."""
-    ring = contributor("ring", nominal=4.0, tolerance=0.03, cp=1.2, mean_shift=shift,
-                       cost=reciprocal(0.2, 0.004))
+def shim_case(target_ppm=100.0, shift=0.0, lower=9.85, upper=10.12, shifted="ring"):
+    """Invented: a normal-made ground ring (cp 1.2), a uniform stamped shim and a second
+    normal ring, stacked; the gap must stay in [lower, upper]. ``shift`` is the mean shift
+    of the part named ``shifted``."""
+    ring = contributor("ring", nominal=4.0, tolerance=0.03, cp=1.2,
+                       mean_shift=shift if shifted == "ring" else 0.0, cost=reciprocal(0.2, 0.004))
     shim = contributor("shim", nominal=2.0, tolerance=0.03, distribution="uniform",
-                       cost=reciprocal(0.05, 0.003))
+                       mean_shift=shift if shifted == "shim" else 0.0, cost=reciprocal(0.05, 0.003))
     collar = contributor("collar", nominal=4.0, tolerance=0.03, cost=reciprocal(0.1, 0.002))
     req = chain_requirement("gap", {"ring": 1.0, "shim": 1.0, "collar": 1.0}, lower=lower,
                             upper=upper, fallout_ppm=target_ppm)
@@ -240,17 +241,19 @@ def test_uniform_parts_cost_less_than_rss_at_the_exact_target():
     assert "not proven globally optimal" in exact.message
 
 
-def test_mean_shift_puts_the_mean_at_the_worse_end():
-    case = shim_case(target_ppm=100.0, shift=0.25)
+@pytest.mark.parametrize("shifted", ["ring", "shim"])
+def test_mean_shift_puts_the_mean_at_the_worse_end(shifted):
+    case = shim_case(target_ppm=100.0, shift=0.25, shifted=shifted)
     exact = allocate(case, "convolution")
-    assert exact.status == "optimal"
-    ring, shim, collar = t = exact.allocated_array()
-    delta = 0.25 * ring  # δ = Σ n|a| m t
+    assert exact.status == "optimal", exact.message
+    t = exact.allocated_array()
+    delta = 0.25 * t[0 if shifted == "ring" else 1]  # δ = Σ n|a| m t
     assert exact.requirements[0].mean_shift == pytest.approx(delta, rel=1e-12)
     assert shim_reference(case, t, delta=delta) == pytest.approx(100.0, rel=1e-6)
     assert shim_reference(case, t, delta=0.0) < 80.0  # centred it would have been far inside
-    # nearer the upper limit: the worse end is the upper one
     assert exact.requirements[0].fallout_ppm == pytest.approx(100.0, rel=1e-6)
+    # and cheaper than the mean-shift model's normal answer at the same target
+    assert exact.total_cost < allocate(case, "mean-shift").total_cost
 
 
 def _two_requirement_case():
@@ -402,3 +405,20 @@ def test_report_shows_convolution_beside_rss():
     assert "exact&nbsp;convolution" in html and "RSS" in html
     cost = report.allocations["convolution"].total_cost
     assert f"{cost:.4g}"[:5] in html
+
+
+def test_shadow_prices_match_finite_differences_of_the_least_cost():
+    """Envelope theorem: d(least cost)/d(target) and d/d(upper) from the multiplier equal
+    central differences of the least cost itself."""
+    case = shim_case(target_ppm=100.0)
+    base = allocate(case, "convolution")
+    r = base.requirements[0]
+
+    def cost(**change):
+        return allocate(case, "convolution", overrides={"gap": change}).total_cost
+
+    d_ppm = (cost(fallout_ppm=101.0) - cost(fallout_ppm=99.0)) / 2.0
+    assert r.shadow_ppm == pytest.approx(d_ppm, rel=2e-3)
+    d_upper = (cost(upper=10.1201) - cost(upper=10.1199)) / 2e-4
+    assert r.shadow_upper == pytest.approx(d_upper, rel=2e-3)
+    assert r.shadow_ppm < 0 and r.shadow_upper < 0 < r.shadow_lower
