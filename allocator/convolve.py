@@ -40,6 +40,8 @@ __all__ = [
     "LinearSumDistribution",
     "linear_sum_distribution",
     "band_fallout",
+    "characteristic_function",
+    "inversion_sf",
 ]
 
 # grid points across the bounded part's support: CDF error ~1e-10 for Irwin–Hall sums
@@ -395,3 +397,108 @@ def band_fallout(
         if best is None or below + above > best[0] + best[1]:
             best = (below, above, float(mu))
     return best
+
+
+def characteristic_function(
+    omega: ArrayLike,
+    coefficients: ArrayLike,
+    counts: ArrayLike,
+    tolerances: ArrayLike,
+    distributions: Sequence[str],
+    sigma_factors: ArrayLike,
+) -> np.ndarray:
+    """Characteristic function ``E[cos(ω D)]`` of the centred response ``D = Σ a_i Σ_j d_ij``.
+
+    Parameters as :func:`linear_sum_distribution`; ``omega`` [1/response].
+
+    Returns
+    -------
+    numpy.ndarray
+        Real (every part is symmetric): ``exp(−σ_N² ω²/2) · Π sinc(c ω)^n · Π sinc(c ω/2)^{2n}``
+        for the normal part, the uniforms on ``±c`` and the triangulars on ``±c`` (two
+        uniforms on ``±c/2``), ``sinc(x) = sin(x)/x``.
+    """
+    w = np.asarray(omega, dtype=float)
+    a = np.abs(np.asarray(coefficients, dtype=float))
+    n = np.asarray(counts, dtype=float)
+    t = np.asarray(tolerances, dtype=float)
+    f = np.asarray(sigma_factors, dtype=float)
+    out = np.ones_like(w)
+    var = 0.0
+    for ai, ni, ti, kind, fi in zip(a, n, t, distributions, f):
+        c = ai * ti
+        if c == 0 or ni == 0:
+            continue
+        if kind == "normal":
+            var += ni * (c * fi) ** 2
+        elif kind == "uniform":
+            out = out * np.sinc(c * w / math.pi) ** ni  # numpy's sinc is sin(πx)/(πx)
+        else:
+            out = out * np.sinc(c * w / (2.0 * math.pi)) ** (2.0 * ni)
+    return out * np.exp(-0.5 * var * w * w)
+
+
+def inversion_sf(
+    u: float,
+    coefficients: ArrayLike,
+    counts: ArrayLike,
+    tolerances: ArrayLike,
+    distributions: Sequence[str],
+    sigma_factors: ArrayLike,
+) -> float:
+    """``P(D > u)`` of the centred response by inverting its characteristic function.
+
+    An evaluation independent of the grid of :func:`linear_sum_distribution` (no grid, no
+    FFT): the convolution model re-checks its answer with it.
+
+    Parameters
+    ----------
+    u : float
+        Distance above the centre [response].
+    coefficients, counts, tolerances, distributions, sigma_factors
+        As :func:`linear_sum_distribution`.
+
+    Returns
+    -------
+    float
+        ``P(D > u)`` [-]; absolute error about 1e-16 (so ~1e-7 relative at 1e-9).
+
+    Notes
+    -----
+    Gil-Pelaez inversion for a symmetric ``D`` with real characteristic function ``φ``:
+
+    .. math:: P(D > u) = \\frac12 − \\frac1π \\int_0^∞ \\frac{\\sin(uω)}{ω} φ(ω)\\,dω,
+
+    by adaptive quadrature on ``[0, 500/u]`` and QUADPACK's Fourier-integral rule (QAWF,
+    :func:`scipy.integrate.quad` with ``weight='sin'``) beyond.
+
+    References
+    ----------
+    .. [1] Gil-Pelaez, J. (1951). Note on the inversion theorem. Biometrika 38(3-4), 481-482.
+    .. [2] Piessens, R., de Doncker-Kapenga, E., Überhuber, C. W. and Kahaner, D. K. (1983).
+       QUADPACK: A Subroutine Package for Automatic Integration. Springer.
+
+    Examples
+    --------
+    >>> round(inversion_sf(0.5, [1, 1], [1, 1], [0.5, 0.5], ["uniform"] * 2, [0, 0]), 9)
+    0.125
+    """
+    import warnings
+
+    from scipy import integrate
+
+    u = float(u)
+    if u == 0:
+        return 0.5
+    if u < 0:
+        return 1.0 - inversion_sf(-u, coefficients, counts, tolerances, distributions, sigma_factors)
+    args = (coefficients, counts, tolerances, distributions, sigma_factors)
+    phi = lambda w: float(characteristic_function(w, *args))  # noqa: E731
+    reach = 500.0 / u
+    with warnings.catch_warnings():  # its accuracy is judged by the caller's comparison
+        warnings.simplefilter("ignore", integrate.IntegrationWarning)
+        head = integrate.quad(lambda w: (math.sin(u * w) / w if w > 0 else u) * phi(w), 0.0, reach,
+                              limit=2000, epsabs=1e-16, epsrel=1e-13)[0]
+        tail = integrate.quad(lambda w: phi(w) / w, reach, np.inf, weight="sin", wvar=u, limlst=200,
+                              epsabs=1e-16)[0]
+    return min(max(0.5 - (head + tail) / math.pi, 0.0), 1.0)

@@ -176,6 +176,21 @@ def test_exact_fallout_matches_normal_plus_uniform(upper):
     assert analyze(case).requirements[0].rss_ppm != pytest.approx(got, rel=1e-2)
 
 
+def test_inversion_recheck_matches_the_closed_forms():
+    """The answer's second, grid-free evaluation (characteristic-function inversion)."""
+    from allocator.convolve import inversion_sf
+
+    # Irwin–Hall(4): four uniforms on ±0.1, P(D > u) = P(S > 2 + u/0.2)
+    for u in (0.1, 0.3, 0.38):
+        expected = irwin_hall_sf(2 + u / 0.2, 4)
+        assert inversion_sf(u, [1.0], [4], [0.1], ["uniform"], [0.0]) == pytest.approx(expected, rel=1e-7)
+    # normal (σ = 0.01) plus uniform on ±0.02, down to about 1e-9
+    for u in (0.03, 0.06, 0.075):
+        expected = normal_uniform_sf(u, 0.01, 0.02)
+        got = inversion_sf(u, [1.0, 1.0], [1, 1], [0.03, 0.02], ["normal", "uniform"], [1 / 3, 0.0])
+        assert got == pytest.approx(expected, rel=1e-6)
+
+
 def test_analyze_json_and_table_show_the_exact_fallout(tmp_path):
     import json
 
@@ -239,6 +254,7 @@ def test_uniform_parts_cost_less_than_rss_at_the_exact_target():
     assert shim_reference(case, rss.allocated_array()) < 90.0
     assert exact.requirements[0].fallout_ppm == pytest.approx(100.0, rel=1e-6)
     assert "not proven globally optimal" in exact.message
+    assert "characteristic-function inversion" in exact.message
 
 
 @pytest.mark.parametrize("shifted", ["ring", "shim"])
