@@ -412,6 +412,8 @@ def _analysis_table(result, caption: str) -> str:
         row("  of which below / above [ppm]", [f"{ppm(r.fallout_below_ppm)} / {ppm(r.fallout_above_ppm)}" for r in reqs]),
         measured("Mean-shift band ±δ", [num(r.mean_shift) for r in reqs]),
         row("Predicted fallout, mean at worst place [ppm]", [ppm(r.mean_shift_ppm) for r in reqs]),
+        row("Exact fallout, stated distributions, worst mean [ppm]",
+            ["n/a (expression)" if r.convolution_ppm is None else ppm(r.convolution_ppm) for r in reqs]),
         row("Fallout target [ppm]", [ppm(r.target_ppm) for r in reqs]),
         row("Meets target (RSS)", [flag("yes") if r.rss_ppm <= r.target_ppm else flag("NO", "bad") for r in reqs]),
         row("Response", ["linear chain" if r.linear else "expression, linearised" for r in reqs]),
