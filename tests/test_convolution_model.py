@@ -438,3 +438,37 @@ def test_shadow_prices_match_finite_differences_of_the_least_cost():
     d_upper = (cost(upper=10.1201) - cost(upper=10.1199)) / 2e-4
     assert r.shadow_upper == pytest.approx(d_upper, rel=2e-3)
     assert r.shadow_ppm < 0 and r.shadow_upper < 0 < r.shadow_lower
+
+
+@pytest.mark.parametrize("spoil", ["failed", "tighter"])
+def test_a_spoilt_sub_solver_never_gives_an_unverified_optimal(spoil):
+    """The rss sub-problems answer 'failed', or 'optimal' at a point 10 % tighter than their
+    optimum: the result is the verified optimum or 'failed', never a wrong 'optimal'."""
+    from allocator.solve.convolution import convolution_solver
+    from allocator.solve.dispatch import continuous_solver
+
+    case = shim_case(target_ppm=100.0)
+    honest = allocate(case, "convolution")
+
+    class Spoilt:
+        def __init__(self, problem):
+            self.real = continuous_solver(problem)
+            self.problem = problem
+
+        def solve(self, overrides=None):
+            good = self.real.solve(overrides)
+            limits = self.problem.limits(overrides)
+            if spoil == "failed":
+                return self.problem.result(None, limits, status="failed", message="spoilt", solver="x")
+            return self.problem.result(0.9 * good.allocated_array(), limits, status="optimal",
+                                       message="spoilt", solver="x")
+
+    result = convolution_solver(case, None, Spoilt).solve()
+    if result.status == "optimal":
+        assert result.total_cost == pytest.approx(honest.total_cost, rel=1e-6)
+        assert shim_reference(case, result.allocated_array()) <= 100.0 * (1 + 1e-6)
+    else:
+        assert result.status == "failed" and result.message.startswith("no verified optimum")
+        if result.allocated_array() is not None:
+            assert "the tolerances shown meet every requirement" in result.message
+            assert shim_reference(case, result.allocated_array()) <= 100.0 * (1 + 1e-6)

@@ -550,7 +550,7 @@ class ConvolutionAllocation:
             worst = max(range(len(stats)), key=lambda k: stats[k]["excess"])
             return p.result(
                 None, limits, status="failed", solver=SOLVER_NAME, iterations=iterations,
-                message=(f"the exact fallout of requirement '{p.requirements[worst].name}' is "
+                message=(f"no verified optimum: the exact fallout of requirement '{p.requirements[worst].name}' is "
                          f"{fraction_to_ppm(stats[worst]['fallout']):.6g} ppm at the best tolerances "
                          f"found, above its target {limits[worst].fallout_ppm:g} ppm"),
             )
@@ -558,7 +558,7 @@ class ConvolutionAllocation:
         if disagreement > INVERSION_RTOL:
             return p.result(
                 None, limits, status="failed", solver=SOLVER_NAME, iterations=iterations,
-                message=(f"the exact fallout of requirement '{where}' by the grid convolution and by "
+                message=(f"no verified optimum: the exact fallout of requirement '{where}' by the grid convolution and by "
                          f"inverting its characteristic function differ by {disagreement:.1e} of the "
                          "target: no verified answer"),
             )
@@ -574,8 +574,9 @@ class ConvolutionAllocation:
         else:
             status = "failed"
             message = (
-                f"no KKT point found: the best tolerances found meet every exact-fallout target, but "
-                f"the first-order conditions are off by {residual:.1e} relative after {iterations} steps"
+                f"no verified optimum: the first-order (KKT) conditions of the exact problem are off by "
+                f"{residual:.1e} relative after {iterations} steps; the tolerances shown meet every "
+                "requirement (exact fallout re-checked)"
             )
         base = p.result(t, limits, status=status, message=message, solver=SOLVER_NAME,
                         iterations=iterations, marginal=False)
