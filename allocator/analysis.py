@@ -265,10 +265,10 @@ def analyze(
         ms_below, ms_above, _ = stack.worst_mean_fallout(lin.nominal, delta, sigma, req.lower, req.upper)
         exact_below = exact_above = None
         if lin.linear:
-            from .convolve import band_fallout, linear_sum_distribution
+            from .convolve import chain_fallout
 
-            dist = linear_sum_distribution(a, n, t, [c.distribution for c in case.contributors], f)
-            below_c, above_c, _ = band_fallout(dist, lin.nominal, delta, req.lower, req.upper)
+            below_c, above_c, _ = chain_fallout(a, n, t, [c.distribution for c in case.contributors], f,
+                                                lin.nominal, delta, req.lower, req.upper)
             exact_below, exact_above = fraction_to_ppm(below_c), fraction_to_ppm(above_c)
         involved = np.flatnonzero(a != 0)
         total_var = var.sum()

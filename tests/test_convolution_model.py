@@ -472,3 +472,31 @@ def test_a_spoilt_sub_solver_never_gives_an_unverified_optimal(spoil):
         if result.allocated_array() is not None:
             assert "the tolerances shown meet every requirement" in result.message
             assert shim_reference(case, result.allocated_array()) <= 100.0 * (1 + 1e-6)
+
+
+def test_uniform_sums_are_exact_far_in_the_tail():
+    """A few uniform or triangular parts and no normal part: summed exactly, so tails far
+    below the grid's resolution (about 1/2**18) are right: Irwin–Hall(3) at 1e-12."""
+    from allocator.convolve import uniform_sum_sf
+
+    u = 0.3 - 0.2 * (6e-12) ** (1 / 3)  # P(S > 3 − x) = x³/6 = 1e-12
+    assert uniform_sum_sf(u, [0.1] * 3) == pytest.approx(1e-12, rel=1e-9)
+    case, nominal = uniform_sum_case([("plate", 0.1, "uniform", 3)], u, fallout_ppm=1e-6)
+    assert analyze(case).requirements[0].convolution_ppm == pytest.approx(1e-6, rel=1e-9)
+    # two different widths: a trapezoid, P(U1 + U2 > u) = (c1 + c2 − u)² / (8 c1 c2) near the top
+    assert uniform_sum_sf(0.29, [0.1, 0.2]) == pytest.approx(0.01**2 / (8 * 0.1 * 0.2), rel=1e-12)
+
+
+def test_single_uniform_part_with_mean_shift_at_a_tiny_target():
+    """One uniform part (y = 2x, x on ±t, mean shift 0.2 t): the fallout is linear in the
+    distance past the support, (2t + δ − d)/(4t) per side, and the target is 0.03 ppm."""
+    part = contributor("x", nominal=10.0, tolerance=0.03, distribution="uniform", mean_shift=0.2,
+                       cost=reciprocal(0.1, 0.01))
+    req = chain_requirement("y", {"x": 2.0}, lower=19.94, upper=20.07, fallout_ppm=0.03)
+    case = make_case([part], [req], models=("convolution",))
+    result = allocate(case, "convolution")
+    assert result.status == "optimal", result.message
+    (t,) = result.allocated_array()
+    c, delta = 2 * t, 2 * 0.2 * t
+    worse = max((c + delta - 0.07) / (2 * c), (c + delta - 0.06) / (2 * c), 0.0)
+    assert 1e6 * worse == pytest.approx(0.03, rel=1e-6)
