@@ -617,13 +617,14 @@ def chain_fallout(
     delta: float,
     lower: float | None,
     upper: float | None,
-    **resolution,
+    **resolution: float,
 ) -> tuple[float, float, float]:
     """Exact fallout of a linear chain, the mean at the worse end of ``ȳ ± δ``.
 
     A chain of a few uniform or triangular instances and no normal part is summed in exact
     rational arithmetic (:func:`uniform_sum_sf`); any other by the grid convolution
-    (:func:`linear_sum_distribution` with ``resolution``, then :func:`band_fallout`).
+    (:func:`linear_sum_distribution` with the grid arguments ``resolution``: ``bulk_points``,
+    ``steps_per_sigma``, ``max_points``, ``step``; then :func:`band_fallout`).
 
     Returns
     -------
