@@ -513,15 +513,18 @@ class ConvolutionAllocation:
         req = p.requirements[j]
         sigma = stack.rss_sigma(req.sensitivity, p.counts, p.sigma_factors * t)
         h = 1e-4 * sigma if sigma > 0 else 1e-9
-        dist = p.distribution(j, t)
-        delta = stack.mean_shift_delta(req.sensitivity, p.counts, p.mean_shifts, t)
-        _, _, mean = band_fallout(dist, req.nominal, delta, lim.lower, lim.upper)
-        at_mean = replace(dist, mean=mean)
+        _, _, mean, _ = p.fallout(j, t, lim)
+
+        def tails(lower, upper):  # (below, above) with the mean held at the worse end
+            below, above, _ = chain_fallout(req.sensitivity, p.counts, t, p.distributions,
+                                            p.sigma_factors, mean, 0.0, lower, upper)
+            return below, above
+
         if lim.lower is not None:  # ∂F/∂L = density at L
-            density = (at_mean.cdf(lim.lower + h) - at_mean.cdf(lim.lower - h)) / (2 * h)
+            density = (tails(lim.lower + h, None)[0] - tails(lim.lower - h, None)[0]) / (2 * h)
             out["shadow_lower"] = mu * density
         if lim.upper is not None:  # ∂F/∂U = −density at U
-            density = (at_mean.sf(lim.upper - h) - at_mean.sf(lim.upper + h)) / (2 * h)
+            density = (tails(None, lim.upper - h)[1] - tails(None, lim.upper + h)[1]) / (2 * h)
             out["shadow_upper"] = -mu * density
         out["shadow_ppm"] = -mu * 1e-6
         low, up = abs(out["shadow_lower"] or 0.0), abs(out["shadow_upper"] or 0.0)
