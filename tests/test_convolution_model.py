@@ -272,11 +272,17 @@ def test_mean_shift_puts_the_mean_at_the_worse_end(shifted):
     assert exact.total_cost < allocate(case, "mean-shift").total_cost
 
 
-def _two_requirement_case():
-    """Invented: a bracket stack with normal, uniform and triangular parts and two gaps."""
+SHIFTS = {"arm": 0.15, "plate": 0.1}  # mean shifts of the shifted variant
+
+
+def _two_requirement_case(shifted=False):
+    """Invented: a bracket stack with normal, uniform and triangular parts and two gaps
+    (``shifted``: the arm and the plate with the mean shifts of SHIFTS)."""
+    m = SHIFTS if shifted else {}
     parts = [
-        contributor("arm", cp=1.0, cost=reciprocal(0.1, 0.02)),
-        contributor("plate", distribution="uniform", cost=reciprocal(0.2, 0.01)),
+        contributor("arm", cp=1.0, mean_shift=m.get("arm", 0.0), cost=reciprocal(0.1, 0.02)),
+        contributor("plate", distribution="uniform", mean_shift=m.get("plate", 0.0),
+                    cost=reciprocal(0.2, 0.01)),
         contributor("spring_seat", distribution="triangular", cost=reciprocal(0.05, 0.015)),
         contributor("pin", cp=1.33, count=2, cost=reciprocal(0.0, 0.008)),
     ]
@@ -288,15 +294,20 @@ def _two_requirement_case():
     return make_case(parts, reqs, models=("rss", "convolution"))
 
 
-def _two_requirement_fallout(t):
+def _two_requirement_fallout(t, shifted=False):
     arm, plate, seat, pin = t
-    reach = fallout_ppm_reference(10.0, 9.8, 10.22, sigma_normal(arm), plate, seat)
-    seat_ppm = fallout_ppm_reference(30.0, 29.82, 30.2, math.sqrt(2) * sigma_normal(pin, 1.33), plate)
+    m = SHIFTS if shifted else {}
+    band_reach = m.get("arm", 0.0) * arm + m.get("plate", 0.0) * plate  # δ = Σ n|a| m t
+    band_seat = m.get("plate", 0.0) * plate
+    reach = fallout_ppm_reference(10.0, 9.8, 10.22, sigma_normal(arm), plate, seat, delta=band_reach)
+    seat_ppm = fallout_ppm_reference(30.0, 29.82, 30.2, math.sqrt(2) * sigma_normal(pin, 1.33), plate,
+                                     delta=band_seat)
     return np.array([reach, seat_ppm])
 
 
-def test_allocation_matches_an_independent_multistart_optimiser():
-    case = _two_requirement_case()
+@pytest.mark.parametrize("shifted", [False, True])
+def test_allocation_matches_an_independent_multistart_optimiser(shifted):
+    case = _two_requirement_case(shifted)
     targets = np.array([100.0, 1000.0])
     lo, hi = np.log(0.005), np.log(0.2)
     counts = np.array([c.count for c in case.contributors], dtype=float)
@@ -306,7 +317,7 @@ def test_allocation_matches_an_independent_multistart_optimiser():
         return float(sum(n * unit_cost(c.cost, ti) for n, c, ti in zip(counts, case.contributors, t)))
 
     def margins(x):
-        return np.log(targets) - np.log(_two_requirement_fallout(np.exp(x)))
+        return np.log(targets) - np.log(_two_requirement_fallout(np.exp(x), shifted))
 
     def margin_jacobian(x, h=1e-5):  # central differences: quad noise stays far below h
         rows = []
@@ -329,10 +340,10 @@ def test_allocation_matches_an_independent_multistart_optimiser():
     ours = allocate(case, "convolution")
     assert ours.status == "optimal"
     t = ours.allocated_array()
-    assert np.all(_two_requirement_fallout(t) <= targets * (1 + 1e-6))
+    assert np.all(_two_requirement_fallout(t, shifted) <= targets * (1 + 1e-6))
     assert ours.total_cost == pytest.approx(best.fun, rel=1e-6)
     # both requirements bind at the optimum: each exactly at its target
-    assert _two_requirement_fallout(t) == pytest.approx(targets, rel=1e-5)
+    assert _two_requirement_fallout(t, shifted) == pytest.approx(targets, rel=1e-5)
 
 
 EXPRESSION_CASE = """# invented: a product of two dimensions
