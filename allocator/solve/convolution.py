@@ -90,6 +90,7 @@ class ConvolutionProblem(AllocationProblem):
     def __init__(self, case, fix: Mapping[str, float] | None = None, *, check: bool = True):
         super().__init__(case, "convolution", fix, check=check)
         self.distributions = tuple(c.distribution for c in case.contributors)
+        self._last = None  # (key, statistics) of the last call: the answer is re-checked twice
 
     def distribution(self, j: int, t, **resolution):
         """The centred distribution of requirement ``j``'s response at tolerances ``t``."""
@@ -111,7 +112,7 @@ class ConvolutionProblem(AllocationProblem):
         """As :meth:`AllocationProblem.statistics`, with the exact fallout (default grid)."""
         t = np.asarray(t, dtype=float)
         key = (t.tobytes(), tuple(limits))
-        if getattr(self, "_last", None) is not None and self._last[0] == key:
+        if self._last is not None and self._last[0] == key:
             return [dict(s) for s in self._last[1]]  # the answer's re-check, asked for again
         out = self._statistics(t, limits)
         self._last = (key, out)
