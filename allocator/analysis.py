@@ -1,4 +1,5 @@
-"""Stack analysis of a case at a given set of tolerances (worst case, RSS, mean shift)."""
+"""Stack analysis of a case at a given set of tolerances (worst case, RSS, mean shift, and
+the exact fallout of a linear chain by numerical convolution)."""
 
 from __future__ import annotations
 
@@ -77,6 +78,18 @@ class RequirementAnalysis:
     worst_case_above: float = 0.0
     units: str = ""  # label of the response, its limits, worst case, σ and δ
     through_loop: tuple[str, ...] = ()  # unknowns of the closure equations the response names
+    # exact fallout from the stated distributions (numerical convolution), the mean at the
+    # worse end of ȳ ± δ (the `convolution` model's constraint); None for an expression
+    convolution_below_ppm: float | None = None
+    convolution_above_ppm: float | None = None
+
+    @property
+    def convolution_ppm(self) -> float | None:
+        """Exact fallout of the linear chain from the stated distributions, the mean at the
+        worse end of its mean-shift band [ppm] (None for an expression)."""
+        if self.convolution_below_ppm is None or self.convolution_above_ppm is None:
+            return None
+        return self.convolution_below_ppm + self.convolution_above_ppm
 
     @property
     def rss_ppm(self) -> float:
@@ -128,6 +141,9 @@ class RequirementAnalysis:
             "mean_shift_ppm": self.mean_shift_ppm,
             "mean_shift_below_ppm": self.mean_shift_below_ppm,
             "mean_shift_above_ppm": self.mean_shift_above_ppm,
+            "convolution_ppm": self.convolution_ppm,
+            "convolution_below_ppm": self.convolution_below_ppm,
+            "convolution_above_ppm": self.convolution_above_ppm,
             "linear": self.linear,
             "units": self.units,
             "contributors": [_contribution_dict(c) for c in self.contributions],
@@ -244,7 +260,10 @@ def analyze(
     ``W = Σ n|a|t``, ``σ_y = sqrt(Σ n (a f t)²)``, fallout
     ``Φ((L − ȳ)/σ_y) + 1 − Φ((U − ȳ)/σ_y)``; mean-shift band ``δ = Σ n|a| m t`` with the
     fallout taken at the worst mean in ``ȳ ± δ`` (Greenwood & Chase 1987). Nonlinear
-    expressions use their exact first-order sensitivities at the nominals.
+    expressions use their exact first-order sensitivities at the nominals. For a linear
+    chain, ``convolution_ppm`` is the exact fallout from the stated distributions
+    (:func:`allocator.convolve.linear_sum_distribution`) with the mean at the worse end of
+    ``ȳ ± δ``: the constraint of the ``convolution`` model (docs/convolution.md).
 
     The worst-case verdict (``worst_case_ok``, ``worst_case_below``/``_above``) is
     :func:`allocator.stack.worst_case_excess`: a worst case within ``1e-9`` of the largest
@@ -280,6 +299,13 @@ def analyze(
         below, above = stack.normal_fallout(lin.nominal, sigma, req.lower, req.upper)
         delta = stack.mean_shift_delta(a, n, m, t)
         ms_below, ms_above, _ = stack.worst_mean_fallout(lin.nominal, delta, sigma, req.lower, req.upper)
+        exact_below = exact_above = None
+        if lin.linear:
+            from .convolve import chain_fallout
+
+            below_c, above_c, _ = chain_fallout(a, n, t, [c.distribution for c in case.contributors], f,
+                                                lin.nominal, delta, req.lower, req.upper)
+            exact_below, exact_above = fraction_to_ppm(below_c), fraction_to_ppm(above_c)
         involved = np.flatnonzero(a != 0)
         total_var = var.sum()
         contributions = tuple(
@@ -317,6 +343,8 @@ def analyze(
                 worst_case_above=wc_above,
                 units=units,
                 through_loop=split.unknowns if split is not None else (),
+                convolution_below_ppm=exact_below,
+                convolution_above_ppm=exact_above,
             )
         )
     return StackAnalysis(

@@ -14,7 +14,8 @@ the requirement's current target, per assembly and, with ``[economics] volume``,
 This is a scrap-cost model: an assembly inside the limits costs nothing extra, one
 outside costs ``s``. It is not a quadratic (Taguchi-style) loss function of the deviation
 from nominal. The fallout is the one the statistical model predicts (normal response; for
-the mean-shift model, with the mean at the worst place in its band), so the result holds
+the mean-shift model, with the mean at the worst place in its band; for the convolution
+model, the exact fallout of the stated distributions there), so the result holds
 only as far as that prediction does: stable, capable, centred processes.
 
 Pure functions (:func:`scrap_cost_per_assembly`, :func:`cost_per_assembly`,
@@ -56,7 +57,7 @@ DEFAULT_BOUNDS = (1e-3, 1e5)  # ppm: 1 in a billion to 10 %
 SCAN_PER_DECADE = 6  # where the whole scan is one batched dual solve
 SCAN_PER_DECADE_SLOW = 3  # where every scan point is a solver call of its own
 REFINE_ESTIMATE = 20  # allocations after the scan, per model (for the progress estimate)
-STATISTICAL = ("rss", "mean-shift")
+STATISTICAL = ("rss", "mean-shift", "convolution")
 
 
 def scrap_cost_per_assembly(fallout_ppm: ArrayLike, scrap_cost: float) -> float | np.ndarray:
@@ -483,7 +484,7 @@ def fallout_economics(
             notes.append("worst case does not use the fallout target: left out of the economics")
         chosen = tuple(m for m in chosen if m in STATISTICAL)
         if not chosen:
-            raise UsageError("the fallout economics need a statistical model (rss or mean-shift)")
+            raise UsageError("the fallout economics need a statistical model (rss, mean-shift or convolution)")
 
     decades = math.log10(hi / lo)
     sweeps = []

@@ -26,16 +26,17 @@ if TYPE_CHECKING:  # numpy is imported where it is used
     from numpy.typing import ArrayLike
 
 DISTRIBUTIONS = ("normal", "uniform", "triangular")
-MODELS = ("worst-case", "rss", "mean-shift")
+MODELS = ("worst-case", "rss", "mean-shift", "convolution")
 # how plots, reports and tables name each model in prose
-MODEL_LABELS = {"worst-case": "worst case", "rss": "RSS", "mean-shift": "mean shift"}
+MODEL_LABELS = {"worst-case": "worst case", "rss": "RSS", "mean-shift": "mean shift",
+                "convolution": "exact convolution"}
 DEFAULT_FALLOUT_PPM = 2700.0
 DEFAULT_MODELS = ("worst-case", "rss")
 # A tolerance written equal to a limit (up to float noise) is inside it.
 HOLD_RTOL = 1e-9
 
 Distribution = Literal["normal", "uniform", "triangular"]
-ModelName = Literal["worst-case", "rss", "mean-shift"]
+ModelName = Literal["worst-case", "rss", "mean-shift", "convolution"]
 
 
 def sigma_factor(distribution: str, cp: float = 1.0) -> float:

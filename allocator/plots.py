@@ -56,7 +56,7 @@ FORMATS = {".png": "png", ".svg": "svg"}
 _INK = ("0.0", "0.35", "0.55", "0.2", "0.45")
 _DASHES = ("-", "--", "-.", ":", (0, (5, 1, 1, 1, 1, 1)))
 _MARKERS = ("o", "s", "^", "D", "v")
-_FIXED = {"worst-case": 0, "rss": 1, "mean-shift": 2}
+_FIXED = {"worst-case": 0, "rss": 1, "mean-shift": 2, "convolution": 3}
 
 SHADE = {"facecolor": "0.93", "edgecolor": "0.6", "hatch": "///", "linewidth": 0.0}
 SHADE_PARTIAL = {"facecolor": "white", "edgecolor": "0.75", "hatch": "..", "linewidth": 0.0}

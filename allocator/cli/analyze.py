@@ -1,4 +1,4 @@
-"""`allocator analyze CASE`: worst case, RSS and mean-shift analysis at given tolerances."""
+"""`allocator analyze CASE`: worst case, RSS, mean-shift and exact (convolution) analysis at given tolerances."""
 
 from __future__ import annotations
 
@@ -32,7 +32,8 @@ def analyze(case_file, as_json, as_csv):
 
     For each requirement: nominal response, worst-case range, RSS sigma, predicted
     fallout (below / above / total, ppm) and, where contributors have a mean shift,
-    the fallout with the mean at its worst place; per contributor: sensitivity,
+    the fallout with the mean at its worst place; for a linear chain the exact fallout
+    from the stated distributions (numerical convolution); per contributor: sensitivity,
     ± contribution to the worst case and share of the variance.
     """
     from ..analysis import analyze as run_analysis
@@ -80,6 +81,13 @@ def analyze(case_file, as_json, as_csv):
             click.echo(
                 f"  mean shift ±{fmt(r.mean_shift)}: fallout {format_ppm(r.mean_shift_ppm)} "
                 f"(below {format_ppm(r.mean_shift_below_ppm)}, above {format_ppm(r.mean_shift_above_ppm)})"
+            )
+        if r.convolution_ppm is not None:
+            where = " at the worse end of the mean-shift band" if r.mean_shift > 0 else ""
+            click.echo(
+                f"  exact (convolution of the stated distributions{where}): fallout "
+                f"{format_ppm(r.convolution_ppm)} (below {format_ppm(r.convolution_below_ppm)}, "
+                f"above {format_ppm(r.convolution_above_ppm)})"
             )
         per = shared_label(c.sensitivity_units for c in r.contributions)
         tol = shared_label(c.units for c in r.contributions)

@@ -12,6 +12,7 @@ from pathlib import Path
 import click
 
 from ..errors import AllocatorError
+from ..model import MODELS
 
 MIN_SAMPLES = 1_000
 MAX_SAMPLES = 1_000_000_000
@@ -137,7 +138,7 @@ def model_option(f):
         "--model",
         "models",
         multiple=True,
-        type=click.Choice(["worst-case", "rss", "mean-shift"]),
+        type=click.Choice(list(MODELS)),
         help="Stack model (repeatable); default: the case's [allocation].models.",
     )(f)
 

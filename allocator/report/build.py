@@ -28,7 +28,7 @@ if TYPE_CHECKING:
     from ..model import Case
 
 # order of preference for the allocation the report recommends (most conservative first)
-_PREFERENCE = ("mean-shift", "rss", "worst-case")
+_PREFERENCE = ("mean-shift", "rss", "convolution", "worst-case")
 
 # libraries whose versions the report lists for reproducibility
 VERSION_PACKAGES = ("numpy", "scipy", "cvxpy", "pandas", "matplotlib")
@@ -179,7 +179,8 @@ class Report:
 def recommended_model(allocations: dict) -> str | None:
     """The model whose allocation the report recommends.
 
-    The most conservative optimal statistical allocation (mean shift before RSS), else
+    The most conservative optimal statistical allocation (mean shift before RSS, RSS
+    before the exact convolution model, whose lighter tails usually allow more), else
     the worst-case allocation, else None. This is the report's default, stated in the
     report; it is not an engineering judgement about the product.
     """

@@ -79,7 +79,7 @@ def allocate(
     Parameters
     ----------
     case : Case
-    model : {'worst-case', 'rss', 'mean-shift'}, optional
+    model : {'worst-case', 'rss', 'mean-shift', 'convolution'}, optional
         Default: the first of the case's ``[allocation].models``.
     fix : dict, optional
         Contributor name -> ± tolerance to hold at [length] (besides the case's

@@ -16,6 +16,9 @@ no free mean shift)
 one requirement, mean shift                               ``lagrange-newton``: Newton on the
                                                           KKT conditions, conic fallback
 several requirements                                      compiled conic problem
+model ``convolution`` (linear chains, continuous)         ``convolution-sca``: convex steps
+                                                          on the exact fallout
+                                                          (:mod:`allocator.solve.convolution`)
 ========================================================  =================================
 
 This module never imports the discrete solver (which imports it): a case the continuous
@@ -97,6 +100,10 @@ def continuous_solver_for(case: Case, model: str, fix: Mapping[str, float] | Non
         A cost table that is not convex and decreasing.
     """
     check_model(model)
+    if model == "convolution":  # its own solver, with the rules above for its sub-problems
+        from .convolution import convolution_solver
+
+        return convolution_solver(case, fix, continuous_solver)
     if case.allocation.rounding is not None:
         return None
     try:
