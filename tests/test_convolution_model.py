@@ -20,6 +20,7 @@ All demo cases are invented.
 
 from __future__ import annotations
 
+from pathlib import Path
 import math
 from fractions import Fraction
 
@@ -511,3 +512,15 @@ def test_single_uniform_part_with_mean_shift_at_a_tiny_target():
     c, delta = 2 * t, 2 * 0.2 * t
     worse = max((c + delta - 0.07) / (2 * c), (c + delta - 0.06) / (2 * c), 0.0)
     assert 1e6 * worse == pytest.approx(0.03, rel=1e-6)
+
+
+def test_the_table_says_the_answer_is_a_kkt_point_not_a_proven_global_optimum():
+    # the exact feasible set need not be convex: the person reading the table is told so
+    from allocator.cli.main import cli
+
+    demo = str(Path(__file__).resolve().parents[1] / "cases" / "gearbox_end_play.toml")
+    out = CliRunner().invoke(cli, ["allocate", demo, "--model", "convolution"])
+    assert out.exit_code == 0, out.output
+    head, note = out.stdout.splitlines()[2:4]
+    assert head.startswith("model convolution: optimal")
+    assert "KKT point" in note and "not proven globally optimal" in note

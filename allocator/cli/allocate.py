@@ -194,6 +194,8 @@ def _print_human(case, results, baselines) -> None:
             continue
         if not result.success:
             click.echo(f"  warning: {result.message}")
+        elif result.gap is None:  # no certified gap to show: say what the answer is (a KKT point ...)
+            click.echo(f"  {result.message}")
         rows = []
         # a process column only where the case offers processes, a grade column only where
         # the tolerances are rounded to ISO 286 grades; a part without one has an empty cell
