@@ -20,9 +20,9 @@ All demo cases are invented.
 
 from __future__ import annotations
 
-from pathlib import Path
 import math
 from fractions import Fraction
+from pathlib import Path
 
 import numpy as np
 import pytest
