@@ -573,6 +573,7 @@ class DiscreteAllocation:
         self._unrounded = None
         self._last_choice = None  # (options, held tolerances) of the last polished optimum
         self._last_t = None  # its tolerances
+        self._last_pick = None  # the branch and bound's last choice (entry per contributor)
         self._solve_unrounded = None  # this solve's unrounded optimum (with rounding)
 
     # ------------------------------------------------------------------ options
@@ -1169,9 +1170,58 @@ class DiscreteAllocation:
             self._tangent_points = carried  # nothing learnt here: keep the last solve's cuts
             return self._infeasible(limits, reason)
         self._carry_cuts(carried, limits)
+        searched = self._search(limits, overrides)
+        if searched is not None:
+            return searched
         if self.has_continuous:
             return self._solve_with_polish(limits, overrides)
         return self._solve_points(limits)
+
+    def _search(self, limits, overrides):
+        """One requirement: branch and bound with Lagrangian bounds (:mod:`.branch`).
+
+        None where it does not apply (several requirements, a mean-shift target over
+        :data:`TANGENT_MAX_FALLOUT`) or cannot finish; the MILP path then decides.
+        """
+        from .branch import OptionSearch
+
+        active = [r for r, lim in enumerate(limits) if lim.lower is not None or lim.upper is not None]
+        if len(active) != 1:
+            return None
+        cache = {}
+
+        def polish(chosen, held):
+            return self._polish_held(chosen, held, overrides, cache)[1]
+
+        search = OptionSearch(self, limits, active[0], polish, self.gap_target)
+        out = search.run(self._last_pick)
+        if out is None:
+            return None
+        self._last_pick = np.array(search.best[1])
+        nodes = f"{out.nodes} node{'s' if out.nodes != 1 else ''}"
+        if out.exact:
+            message = (
+                f"exact choice among {search.entries.size} candidate (process, tolerance) pairs by "
+                f"branch and bound with Lagrangian bounds ({nodes}, gap {_g(out.gap)}), "
+                "re-checked against every requirement"
+            )
+            return self._result(out.options, out.tolerances, limits, status="optimal", message=message,
+                                gap=out.gap, iterations=out.nodes, labels=out.labels,
+                                solver="branch-and-bound")
+        alloc = out.allocation
+        held = dict(self.fix)
+        for c, o, ti in zip(self.case.contributors, out.options, out.tolerances):
+            if o.kind == "points" and not c.fixed:
+                held[c.name] = float(ti)
+        self._last_choice, self._last_t = (out.options, held), out.tolerances
+        message = (
+            f"processes chosen by branch and bound with Lagrangian bounds ({nodes}), tolerances "
+            "polished by the conic solver with those processes held; relative gap to a proven "
+            f"lower bound {_g(out.gap)}"
+        )
+        return self._result(out.options, out.tolerances, limits, status="optimal", message=message,
+                            gap=out.gap, iterations=out.nodes, requirements=alloc.requirements,
+                            solver=f"branch-and-bound+{alloc.solver}", lower_bound=out.bound)
 
     def _sweep_grid(self, o: _Option) -> np.ndarray:
         """Starting grid of a continuous option when a previous solve's optimum is known.
