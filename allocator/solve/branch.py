@@ -48,7 +48,11 @@ from .problem import mean_shift_allowance
 __all__ = ["OptionSearch", "MAX_NODES"]
 
 MAX_NODES = 150  # node budget; beyond it the MILP path decides (a weak bound: give up early)
-BISECTION_STEPS = 64  # halvings of the bracket e^±40 around the scale of λ (far below 1e-12)
+BISECTION_STEPS = 64  # most halvings of the bracket e^±40 around the scale of λ
+LOG_LAMBDA_TOL = 1e-10  # bisection stops at this width in log λ (any λ gives a valid bound)
+GATE_COMBINATIONS = 1e5
+ROOT_GAP_LIMIT = 0.02  # mean shift, listed values, more combinations than GATE_COMBINATIONS: a root
+# bound further than this below the incumbent leaves the case to the MILP
 EXACT_RTOL = 1e-10  # listed values only: a gap below this is the rounding of the sums (reported 0)
 TANGENT_MAX_FALLOUT = 0.49  # as in .discrete: g is concave for targets up to here
 CHECK_RTOL = 1e-9  # as in .discrete: a choice meets the requirement within this
@@ -270,7 +274,7 @@ class OptionSearch:
                 else:
                     hi = mid
                     feasible = pick
-                if hi - lo < 1e-12:
+                if hi - lo < LOG_LAMBDA_TOL:
                     break
             if feasible is None:
                 feasible = best[3]
@@ -389,6 +393,12 @@ class OptionSearch:
                 return None
             b = self._node_bound(mask)
             value = max(b.value, key)
+            if self.nodes == 1 and self.best is not None and self.exact and self.model == "mean-shift" and (
+                value < self.best[0] * (1 - ROOT_GAP_LIMIT) and np.sum(np.log(counts_all)) > math.log(GATE_COMBINATIONS)
+            ):
+                # a tangent cut far from tight over listed values: the search would run
+                # into its node budget; the MILP's interval rows are the better tool
+                return None
             if self.best is None and not math.isfinite(value):
                 continue  # nothing in this node meets the requirement
             self._offer(b.feasible_pick)
@@ -449,6 +459,11 @@ class OptionSearch:
         e = self.entries
         if not e.continuous[leaf].any():
             return math.inf  # listed values: evaluated exactly (met or not)
+        tightest = np.where(e.continuous[leaf], e.lo[leaf], e.t_point[leaf])
+        if not self._check(leaf, tightest):
+            # every requirement grows with every tolerance: if the tightest values of
+            # these entries miss it, nothing in the leaf meets it
+            return math.inf
         mask = np.zeros(e.size, dtype=bool)
         mask[leaf] = True
         value = max(value, self._node_bound(mask).value)
