@@ -21,8 +21,11 @@ one-hot binaries ``x_ij`` (Chase, Greenwood, Loosli & Hauglund 1990):
   A requirement whose δ no choice moves (no free contributor with a mean shift) is the
   rss row with ``σ_max = g(δ)``, as in the continuous solvers (``g(0)`` is rss's σ_max).
 
-Every MILP is solved by HiGHS (``scipy.optimize.milp``) to a proven optimum (relative and
-absolute MIP gap 0). Each choice is re-checked in numpy against the exact constraint, and
+With one requirement that has limits, :mod:`.branch` solves the choice first, without a MILP:
+branch and bound over the options with Lagrangian bounds (listed values exactly, continuous
+processes polished by the conic solver, the gap proven by the bound); whatever it cannot
+finish comes back here. Every MILP is solved by HiGHS (``scipy.optimize.milp``) to a proven
+optimum (relative and absolute MIP gap 0). Each choice is re-checked in numpy against the exact constraint, and
 the final answer again by :meth:`AllocationProblem.statistics
 <allocator.solve.problem.AllocationProblem.statistics>`.
 
