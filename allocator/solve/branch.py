@@ -49,14 +49,16 @@ __all__ = ["OptionSearch", "MAX_NODES"]
 
 MAX_NODES = 150  # node budget; beyond it the MILP path decides (a weak bound: give up early)
 BISECTION_STEPS = 64  # most halvings of the bracket e^±40 around the scale of λ
-LOG_LAMBDA_TOL = 1e-10  # bisection stops at this width in log λ (any λ gives a valid bound)
+LOG_LAMBDA_TOL = 1e-10  # bisection stops at this width in log λ (any λ gives a valid bound) ...
+LOG_LAMBDA_TOL_POLISHED = 1e-7  # ... or this one with continuous processes (gap target 1e-5)
 GATE_COMBINATIONS = 1e5
 ROOT_GAP_LIMIT = 0.02  # mean shift, listed values, more combinations than GATE_COMBINATIONS: a root
 # bound further than this below the incumbent leaves the case to the MILP
 EXACT_RTOL = 1e-10  # listed values only: a gap below this is the rounding of the sums (reported 0)
 TANGENT_MAX_FALLOUT = 0.49  # as in .discrete: g is concave for targets up to here
 CHECK_RTOL = 1e-9  # as in .discrete: a choice meets the requirement within this
-KELLEY_ROUNDS = 6  # mean shift: tangents tried at the root before the search
+KELLEY_ROUNDS = 6  # mean shift: tangents tried at the root before the search (2 in a sweep,
+# which starts from the last point's choice)
 
 
 @dataclass
@@ -201,6 +203,7 @@ class OptionSearch:
         self.polish = polish
         self.exact = not self.entries.continuous.any()
         self.gap_target = EXACT_RTOL if self.exact else max(float(gap_target), EXACT_RTOL)
+        self.log_tol = LOG_LAMBDA_TOL if self.exact else LOG_LAMBDA_TOL_POLISHED
         self.nodes = 0
         self.best = None  # (cost, entries, t, allocation)
         self.relaxations: list[_Relaxation] = []
@@ -274,7 +277,7 @@ class OptionSearch:
                 else:
                     hi = mid
                     feasible = pick
-                if hi - lo < LOG_LAMBDA_TOL:
+                if hi - lo < self.log_tol:
                     break
             if feasible is None:
                 feasible = best[3]
@@ -343,7 +346,7 @@ class OptionSearch:
         if self.model == "mean-shift":
             rel = self._tangent(np.array(pick), t)
             if rel is not None:
-                self.relaxations = (self.relaxations + [rel])[-3:]
+                self.relaxations = (self.relaxations + [rel])[-2:]
         return True
 
     # ------------------------------------------------------------------ search
@@ -367,7 +370,7 @@ class OptionSearch:
                 pick = self._tightest()
                 t = self._loose_t(pick, None)
             kept = []
-            for _ in range(KELLEY_ROUNDS):
+            for _ in range(KELLEY_ROUNDS if start is None else 2):
                 rel = self._tangent(pick, t)
                 if rel is None:
                     break
@@ -378,7 +381,7 @@ class OptionSearch:
             if not kept and not self.relaxations:
                 return None
             kept.sort(key=lambda x: -x[0])
-            self.relaxations = [rel for _, rel in kept[:1]] + self.relaxations[-2:]
+            self.relaxations = [rel for _, rel in kept[:1]] + self.relaxations[-1:]
         counts_all = np.diff(np.append(e.starts, e.size))
         counter = 0
         heap = [(-math.inf, counter, root)]
