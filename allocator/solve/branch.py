@@ -395,6 +395,13 @@ class OptionSearch:
             if self.nodes > MAX_NODES:
                 return None
             b = self._node_bound(mask)
+            if self.model == "mean-shift" and self.nodes > 1 and (self.best is None or not self._pruned(b.value)):
+                # Kelley's step at the node: the tangent at the relaxation's own choice
+                rel = self._tangent(b.pick, self._loose_t(b.pick, b.t))
+                if rel is not None:
+                    b2 = self._bound(rel, mask)
+                    if b2.value > b.value:
+                        b = b2
             value = max(b.value, key)
             if self.nodes == 1 and self.best is not None and self.exact and self.model == "mean-shift" and (
                 value < self.best[0] * (1 - ROOT_GAP_LIMIT) and np.sum(np.log(counts_all)) > math.log(GATE_COMBINATIONS)

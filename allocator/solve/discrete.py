@@ -1173,6 +1173,7 @@ class DiscreteAllocation:
             self._tangent_points = carried  # nothing learnt here: keep the last solve's cuts
             return self._infeasible(limits, reason)
         self._carry_cuts(carried, limits)
+        self._cutoff = None  # the cost of a verified choice, from the search (listed values)
         searched = self._search(limits, overrides)
         if searched is not None:
             return searched
@@ -1199,6 +1200,9 @@ class DiscreteAllocation:
         search = OptionSearch(self, limits, active[0], polish, self.gap_target)
         out = search.run(self._last_pick)
         if out is None:
+            if search.best is not None and search.exact:
+                # a verified choice of listed values: its cost prunes the MILP's search
+                self._cutoff = search.best[0]
             return None
         self._last_pick = np.array(search.best[1])
         nodes = f"{out.nodes} node{'s' if out.nodes != 1 else ''}"
@@ -1270,7 +1274,7 @@ class DiscreteAllocation:
     def _solve_points(self, limits):
         """Every option is a set of points: one exact MILP."""
         cand = self.candidates()
-        out = self._solve_milp(cand, limits)
+        out = self._solve_milp(cand, limits, cutoff=self._cutoff)
         if out.status == "infeasible":
             return self._infeasible(limits, self._milp_infeasible_message())
         if out.choice is None:
