@@ -17,7 +17,7 @@ Cases are invented here with a fixed seed. Printed per stack model:
 
 Times are the median of --repeat runs (default 3) in one process, after a warm-up.
 
-With --demo, whole processes instead (subprocess, wall time, median of --repeat runs,
+With --demo, whole processes instead (subprocess, wall and child CPU time, median of --repeat runs,
 default 5 there): ``python -m allocator analyze`` on the ISO 286 demo
 (cases/gear_hub_end_play.toml, invented) is the baseline, 1.00, and ``allocate --model M``
 for each model is its ratio (goal: at most 3); the import floor (``python -c "import
@@ -140,29 +140,39 @@ def _timed(fn, repeat):
 
 
 def _process_time(args, repeat):
-    """Median wall time [s] of ``python <args>`` run from the checkout, as a whole process."""
+    """Median (wall, CPU) time [s] of ``python <args>`` run from the checkout, as a whole
+    process (CPU: user + system of the child, the steadier figure on a shared machine)."""
+    import resource
+
     env = dict(os.environ, PYTHONPATH=str(ROOT))
-    times = []
+    walls, cpus = [], []
     for _ in range(repeat):
+        before = resource.getrusage(resource.RUSAGE_CHILDREN)
         t0 = time.perf_counter()
         subprocess.run([sys.executable, *args], cwd=ROOT, env=env, check=False,
                        stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
-        times.append(time.perf_counter() - t0)
-    return statistics.median(times)
+        walls.append(time.perf_counter() - t0)
+        after = resource.getrusage(resource.RUSAGE_CHILDREN)
+        cpus.append(after.ru_utime - before.ru_utime + after.ru_stime - before.ru_stime)
+    return statistics.median(walls), statistics.median(cpus)
 
 
 def demo(repeat):
     """Whole-process allocate on the ISO 286 demo against its own analyze."""
-    floor = _process_time(["-c", "import allocator.cli.main, allocator.solve.discrete, allocator.analysis, "
-                           "scipy.optimize, scipy.stats"], repeat)
+    floor = _process_time(["-c", "import allocator.cli.main, allocator.cli.allocate, allocator.analysis, "
+                           "allocator.solve.discrete, allocator.solve.branch, allocator.solve.exact"], repeat)
     base = _process_time(["-m", "allocator", "analyze", str(DEMO)], repeat)
     print(f"demo: {DEMO.name} (invented), whole processes, median of {repeat}")
-    print(f"{'command':<28} {'time [s]':>9} {'ratio':>7}")
-    print(f"{'import floor':<28} {floor:9.3f} {floor / base:7.2f}")
-    print(f"{'analyze':<28} {base:9.3f} {1.0:7.2f}")
+    print(f"{'command':<28} {'wall [s]':>9} {'ratio':>7} {'cpu [s]':>9} {'ratio':>7}")
+
+    def row(label, t):
+        return f"{label:<28} {t[0]:9.3f} {t[0] / base[0]:7.2f} {t[1]:9.3f} {t[1] / base[1]:7.2f}"
+
+    print(row("import floor (allocate's)", floor))
+    print(row("analyze", base))
     for model in MODELS:
         t = _process_time(["-m", "allocator", "allocate", str(DEMO), "--model", model], repeat)
-        print(f"{'allocate --model ' + model:<28} {t:9.3f} {t / base:7.2f}" + ("" if t <= 3 * base else "   <-- over 3x"))
+        print(row("allocate --model " + model, t) + ("" if t[1] <= 3 * base[1] else "   <-- over 3x"))
 
 
 def main():
