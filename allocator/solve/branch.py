@@ -38,7 +38,7 @@ from __future__ import annotations
 
 import heapq
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 
@@ -57,6 +57,7 @@ ROOT_GAP_LIMIT = 0.02  # mean shift, listed values, more combinations than GATE_
 EXACT_RTOL = 1e-10  # listed values only: a gap below this is the rounding of the sums (reported 0)
 TANGENT_MAX_FALLOUT = 0.49  # as in .discrete: g is concave for targets up to here
 CHECK_RTOL = 1e-9  # as in .discrete: a choice meets the requirement within this
+CACHED_MULTIPLIERS = 2048  # per relaxation: each entry's minimiser at these λ is kept
 KELLEY_ROUNDS = 6  # mean shift: tangents tried at the root before the search (2 in a sweep,
 # which starts from the last point's choice)
 
@@ -165,6 +166,7 @@ class _Relaxation:
     weight: np.ndarray  # per entry
     m: int
     rhs: float
+    cache: dict = field(default_factory=dict)  # λ -> each entry's (cost, use, t)
 
 
 @dataclass
@@ -249,7 +251,15 @@ class OptionSearch:
     # ------------------------------------------------------------------ bounds
 
     def _totals(self, lam, rel, mask):
-        cost, use, t = self.entries.per_entry(lam, rel.weight, rel.m)
+        # each entry's minimiser at λ does not depend on the node: the bisections of
+        # different nodes share their first midpoints, so they are kept per relaxation
+        cache = rel.cache
+        if lam in cache:
+            cost, use, t = cache[lam]
+        else:
+            cost, use, t = self.entries.per_entry(lam, rel.weight, rel.m)
+            if len(cache) < CACHED_MULTIPLIERS:
+                cache[lam] = (cost, use, t)
         total = np.where(mask, cost + lam * use, np.inf)
         order = np.lexsort((total, self.entries.owner))
         pick = order[self.entries.starts]
@@ -498,11 +508,6 @@ class OptionSearch:
         if alloc is None or not alloc.success:
             return None
         return np.asarray(alloc.allocated_array(), dtype=float)
-
-    def _width(self, i) -> int:
-        e = self.entries
-        end = e.starts[i + 1] if i + 1 < e.n_owner else e.size
-        return int(end - e.starts[i])
 
     def _pruned(self, value) -> bool:
         cost = self.best[0]
