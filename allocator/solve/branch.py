@@ -356,7 +356,7 @@ class OptionSearch:
         if self.model == "mean-shift":
             rel = self._tangent(np.array(pick), t)
             if rel is not None:
-                self.relaxations = (self.relaxations + [rel])[-2:]
+                self.relaxations = (self.relaxations + [rel])[-1:]
         return True
 
     # ------------------------------------------------------------------ search
@@ -391,7 +391,7 @@ class OptionSearch:
             if not kept and not self.relaxations:
                 return None
             kept.sort(key=lambda x: -x[0])
-            self.relaxations = [rel for _, rel in kept[:1]] + self.relaxations[-1:]
+            self.relaxations = self.relaxations[-1:] or [rel for _, rel in kept[:1]]
         counts_all = np.diff(np.append(e.starts, e.size))
         counter = 0
         heap = [(-math.inf, counter, root)]
@@ -421,7 +421,10 @@ class OptionSearch:
                 return None
             if self.best is None and not math.isfinite(value):
                 continue  # nothing in this node meets the requirement
-            self._offer(b.feasible_pick)
+            if self.nodes == 1 or not e.continuous[b.feasible_pick].any():
+                # the dual's choice as an incumbent (a polish each with continuous
+                # processes: at the root only, the leaves polish the rest)
+                self._offer(b.feasible_pick)
             if not e.continuous[b.pick].any():
                 self._offer(b.pick)
             if self.best is not None and self._pruned(value):
@@ -475,9 +478,9 @@ class OptionSearch:
     def _leaf(self, leaf, value):
         """A node with one entry per contributor: the lower bound it leaves, or None when
         it cannot be settled (neither ruled out by its bound nor the incumbent)."""
-        self._offer(leaf)
         e = self.entries
         if not e.continuous[leaf].any():
+            self._offer(leaf)
             return math.inf  # listed values: evaluated exactly (met or not)
         tightest = np.where(e.continuous[leaf], e.lo[leaf], e.t_point[leaf])
         if not self._check(leaf, tightest):
@@ -487,6 +490,9 @@ class OptionSearch:
         mask = np.zeros(e.size, dtype=bool)
         mask[leaf] = True
         value = max(value, self._node_bound(mask).value)
+        if self.best is not None and self._pruned(value):
+            return value  # ruled out by its bound: no polish needed
+        self._offer(leaf)
         if self.model == "mean-shift":
             # the polished leaf's own tangent makes its bound its optimum
             t = self._evaluate_again(leaf)
