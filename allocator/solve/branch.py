@@ -52,11 +52,13 @@ BISECTION_STEPS = 64  # most halvings of the bracket e^±40 around the scale of 
 LOG_LAMBDA_TOL = 1e-10  # bisection stops at this width in log λ (any λ gives a valid bound) ...
 LOG_LAMBDA_TOL_POLISHED = 1e-7  # ... or this one with continuous processes (gap target 1e-5)
 GATE_COMBINATIONS = 1e5
+GATE_NODES = 20
 ROOT_GAP_LIMIT = 0.02  # mean shift, listed values, more combinations than GATE_COMBINATIONS: a root
-# bound further than this below the incumbent leaves the case to the MILP
+# bound further than this below the incumbent after GATE_NODES nodes leaves the case to the MILP
 EXACT_RTOL = 1e-10  # listed values only: a gap below this is the rounding of the sums (reported 0)
 TANGENT_MAX_FALLOUT = 0.49  # as in .discrete: g is concave for targets up to here
 CHECK_RTOL = 1e-9  # as in .discrete: a choice meets the requirement within this
+WALK_STEPS, WALK_FACTOR = 40, 1.25  # listed values: multipliers tried for a first incumbent
 CACHED_MULTIPLIERS = 2048  # per relaxation: each entry's minimiser at these λ is kept
 KELLEY_ROUNDS = 6  # mean shift: tangents tried at the root before the search (2 in a sweep,
 # which starts from the last point's choice)
@@ -386,13 +388,18 @@ class OptionSearch:
                     break
                 b = self._bound(rel, root)
                 kept.append((b.value, rel))
-                self._offer(b.feasible_pick)
+                if not self._offer(b.feasible_pick) and self.exact and b.lam > 0:
+                    self._walk_up(rel, root, b.lam)
                 pick, t = b.pick, self._loose_t(b.pick, b.t)
             if not kept and not self.relaxations:
                 return None
             kept.sort(key=lambda x: -x[0])
             self.relaxations = self.relaxations[-1:] or [rel for _, rel in kept[:1]]
         counts_all = np.diff(np.append(e.starts, e.size))
+        gated = self.exact and self.model == "mean-shift" and (
+            np.sum(np.log(counts_all)) > math.log(GATE_COMBINATIONS)
+        )
+        root_value = -math.inf
         counter = 0
         heap = [(-math.inf, counter, root)]
         lower = math.inf  # least bound of the nodes pruned or finished
@@ -413,11 +420,14 @@ class OptionSearch:
                     if b2.value > b.value:
                         b = b2
             value = max(b.value, key)
-            if self.nodes == 1 and self.best is not None and self.exact and self.model == "mean-shift" and (
-                value < self.best[0] * (1 - ROOT_GAP_LIMIT) and np.sum(np.log(counts_all)) > math.log(GATE_COMBINATIONS)
+            if self.nodes == 1:
+                root_value = value
+            if gated and self.best is not None and self.nodes >= GATE_NODES and (
+                root_value < self.best[0] * (1 - ROOT_GAP_LIMIT)
             ):
-                # a tangent cut far from tight over listed values: the search would run
-                # into its node budget; the MILP's interval rows are the better tool
+                # a tangent cut far from tight over many listed values: the search would
+                # run into its node budget; the MILP's interval rows are the better tool
+                # (pruned by the incumbent found here)
                 return None
             if self.best is None and not math.isfinite(value):
                 continue  # nothing in this node meets the requirement
@@ -514,6 +524,18 @@ class OptionSearch:
         if alloc is None or not alloc.success:
             return None
         return np.asarray(alloc.allocated_array(), dtype=float)
+
+    def _walk_up(self, rel, mask, lam):
+        """Listed values: the dual's choices at rising multipliers until one meets the
+        requirement (each tighter than the last, as a rule): a first incumbent."""
+        for _ in range(WALK_STEPS):
+            lam *= WALK_FACTOR
+            _, pick, _, _, _ = self._totals(lam, rel, mask)
+            key = tuple(int(k) for k in pick)
+            if key in self._seen:
+                continue
+            if self._offer(pick) or key in self._seen and self._check(pick, self.entries.t_point[pick]):
+                return
 
     def _pruned(self, value) -> bool:
         cost = self.best[0]
