@@ -199,7 +199,10 @@ class OptionSearch:
     def __init__(self, solver, limits, r, polish, gap_target):
         self.solver = solver
         self.model = solver.model
-        self.entries = _Entries(solver)
+        # the entries depend only on the options: kept on the solver for the next solve
+        if getattr(solver, "_entries", None) is None:
+            solver._entries = _Entries(solver)
+        self.entries = solver._entries
         self.limits, self.r = limits, r
         self.req, self.lim = solver.requirements[r], limits[r]
         self.room = min(stack.room(self.req.nominal, self.lim.lower, self.lim.upper))

@@ -577,6 +577,7 @@ class DiscreteAllocation:
         self._last_choice = None  # (options, held tolerances) of the last polished optimum
         self._last_t = None  # its tolerances
         self._last_pick = None  # the branch and bound's last choice (entry per contributor)
+        self._entries = None  # the branch and bound's entries (built by its first search)
         self._solve_unrounded = None  # this solve's unrounded optimum (with rounding)
 
     # ------------------------------------------------------------------ options
