@@ -1275,7 +1275,8 @@ class DiscreteAllocation:
     def _solve_points(self, limits):
         """Every option is a set of points: one exact MILP."""
         cand = self.candidates()
-        out = self._solve_milp(cand, limits, cutoff=self._cutoff)
+        cutoff = self._cutoff if self._cutoff is not None else self._greedy_cost(cand, limits)
+        out = self._solve_milp(cand, limits, cutoff=cutoff)
         if out.status == "infeasible":
             return self._infeasible(limits, self._milp_infeasible_message())
         if out.choice is None:
@@ -1294,6 +1295,60 @@ class DiscreteAllocation:
                             status="optimal" if out.status == "optimal" else "failed",
                             message=message, gap=gap, iterations=out.solves,
                             labels=list(cand.label[out.choice]))
+
+    def _meets(self, cand: _Candidates, choice, limits) -> bool:
+        """The listed values ``choice`` (candidate per contributor) meet every requirement
+        (numpy, within :data:`CHECK_RTOL`)."""
+        t, f, n = cand.tolerance[choice], cand.factor[choice], self.counts
+        for r, (req, lim) in enumerate(zip(self.requirements, limits)):
+            if lim.lower is None and lim.upper is None:
+                continue
+            a = np.abs(self.sensitivity[r])
+            room = min(stack.room(req.nominal, lim.lower, lim.upper))
+            if not room > 0:
+                return False
+            if self.model == "worst-case":
+                if float(np.sum(n * a * t)) > room * (1 + CHECK_RTOL):
+                    return False
+                continue
+            sigma = float(np.sqrt(np.sum(n * (a * f * t) ** 2)))
+            if self.model == "rss":
+                allowed = stack.sigma_limit(req.nominal, lim.fallout, lim.lower, lim.upper)
+            else:
+                delta = float(np.sum(n * a * self.mean_shifts * t))
+                if not delta < room:
+                    return False
+                allowed = mean_shift_allowance(req.nominal, delta, lim)[0]
+            if sigma > allowed * (1 + CHECK_RTOL):
+                return False
+        return True
+
+    def _greedy_cost(self, cand: _Candidates, limits) -> float | None:
+        """Cost of a choice of listed values that meets every requirement, or None.
+
+        From the tightest value of every contributor (which meets them if anything does),
+        each contributor in turn takes its cheapest value that keeps every requirement
+        met, twice over: a verified choice whose cost prunes the MILP's search (a cutoff
+        never changes the MILP's optimum).
+        """
+        owner, n_c = cand.owner, len(self.options)
+        ends = np.append(cand.starts[1:], cand.size)
+        spread = cand.tolerance * np.maximum(cand.factor, 1e-300)
+        choice = np.lexsort((cand.tolerance, spread, owner))[cand.starts]
+        if not self._meets(cand, choice, limits):
+            return None
+        for _ in range(2):
+            for i in range(n_c):
+                block = np.arange(cand.starts[i], ends[i])
+                for j in block[np.argsort(cand.unit_cost[block], kind="stable")]:
+                    if cand.unit_cost[j] >= cand.unit_cost[choice[i]]:
+                        break
+                    trial = choice.copy()
+                    trial[i] = j
+                    if self._meets(cand, trial, limits):
+                        choice = trial
+                        break
+        return float(np.sum(self.counts * cand.unit_cost[choice]))
 
     def _milp_infeasible_message(self) -> str:
         what = "rounded values" if self.rounding is not None else "offered options"
