@@ -8,19 +8,32 @@ Cases are invented here with a fixed seed. Printed per stack model:
               option range (exact dual or Clarabel): the baseline, 1.00
   choose 30x6 DiscreteAllocation on 30 contributors x 6 options (half of them `choose`
               tables of 6 tolerances, half two processes with 3 listed tolerances each and
-              their own cp): HiGHS MILP with lazy cuts for mean shift. Must end 'optimal'
-              with HiGHS's MIP gap 0 (proven optimum), checked here.
-  processes   30 contributors, 10 of them with 2 processes on continuous curves: grid MILP
-              + conic polish + refined lower bound; the reported gap is printed.
+              their own cp): branch and bound with Lagrangian bounds for one requirement,
+              else (and for mean shift where that bound is weak) HiGHS MILP with lazy
+              cuts. Must end 'optimal' with gap 0 (proven optimum), checked here.
+  processes   30 contributors, 10 of them with 2 processes on continuous curves: branch
+              and bound + conic polish (one requirement), else grid MILP + conic polish +
+              refined lower bound; the reported gap is printed.
 
 Times are the median of --repeat runs (default 3) in one process, after a warm-up.
+
+With --demo, whole processes instead (subprocess, wall and child CPU time, median of --repeat runs,
+default 5 there): ``python -m allocator analyze`` on the ISO 286 demo
+(cases/gear_hub_end_play.toml, invented) is the baseline, 1.00, and ``allocate --model M``
+for each model is its ratio (goal: at most 3); the import floor (``python -c "import
+allocator.solve.discrete"`` plus what the allocation imports) is printed beside it.
+The package imported is the one in this checkout (PYTHONPATH is set to it).
 """
 
 from __future__ import annotations
 
 import argparse
+import os
 import statistics
+import subprocess
+import sys
 import time
+from pathlib import Path
 
 import numpy as np
 
@@ -29,6 +42,8 @@ from allocator.solve import allocate
 from allocator.solve.discrete import DiscreteAllocation
 
 MODELS = ("worst-case", "rss", "mean-shift")
+ROOT = Path(__file__).resolve().parents[1]
+DEMO = ROOT / "cases" / "gear_hub_end_play.toml"
 
 
 def _choose(points, prices):
@@ -124,12 +139,52 @@ def _timed(fn, repeat):
     return statistics.median(times), out
 
 
+def _process_time(args, repeat):
+    """Median (wall, CPU) time [s] of ``python <args>`` run from the checkout, as a whole
+    process (CPU: user + system of the child, the steadier figure on a shared machine)."""
+    import resource
+
+    env = dict(os.environ, PYTHONPATH=str(ROOT))
+    walls, cpus = [], []
+    for _ in range(repeat):
+        before = resource.getrusage(resource.RUSAGE_CHILDREN)
+        t0 = time.perf_counter()
+        subprocess.run([sys.executable, *args], cwd=ROOT, env=env, check=False,
+                       stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+        walls.append(time.perf_counter() - t0)
+        after = resource.getrusage(resource.RUSAGE_CHILDREN)
+        cpus.append(after.ru_utime - before.ru_utime + after.ru_stime - before.ru_stime)
+    return statistics.median(walls), statistics.median(cpus)
+
+
+def demo(repeat):
+    """Whole-process allocate on the ISO 286 demo against its own analyze."""
+    floor = _process_time(["-c", "import allocator.cli.main, allocator.cli.allocate, allocator.analysis, "
+                           "allocator.solve.discrete, allocator.solve.branch, allocator.solve.exact"], repeat)
+    base = _process_time(["-m", "allocator", "analyze", str(DEMO)], repeat)
+    print(f"demo: {DEMO.name} (invented), whole processes, median of {repeat}")
+    print(f"{'command':<28} {'wall [s]':>9} {'ratio':>7} {'cpu [s]':>9} {'ratio':>7}")
+
+    def row(label, t):
+        return f"{label:<28} {t[0]:9.3f} {t[0] / base[0]:7.2f} {t[1]:9.3f} {t[1] / base[1]:7.2f}"
+
+    print(row("import floor (allocate's)", floor))
+    print(row("analyze", base))
+    for model in MODELS:
+        t = _process_time(["-m", "allocator", "allocate", str(DEMO), "--model", model], repeat)
+        print(row("allocate --model " + model, t) + ("" if t[1] <= 3 * base[1] else "   <-- over 3x"))
+
+
 def main():
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--quick", action="store_true", help="one repeat, skip the process case")
-    parser.add_argument("--repeat", type=int, default=3)
+    parser.add_argument("--repeat", type=int, default=None)
+    parser.add_argument("--demo", action="store_true", help="whole-process allocate vs analyze on the demo")
     args = parser.parse_args()
-    repeat = 1 if args.quick else args.repeat
+    if args.demo:
+        demo(1 if args.quick else args.repeat or 5)
+        return
+    repeat = 1 if args.quick else args.repeat or 3
 
     print(f"{'model':<11} {'case':<16} {'time [s]':>9} {'ratio':>7}  result")
     for model in MODELS:
@@ -143,14 +198,15 @@ def main():
             t_disc, res = _timed(lambda: DiscreteAllocation(chosen, model).solve(), repeat)
             proven = res.status == "optimal" and res.gap == 0.0
             print(f"{'':<11} {'choose 30x6':<16} {t_disc:9.3f} {t_disc / t_base:7.1f}  {res.status}, "
-                  f"MIP gap {res.gap}, {res.iterations} MILP solve(s)"
+                  f"gap {res.gap}, {res.iterations} MILP solve(s) or search nodes, {res.solver}"
                   + ("" if proven else "   <-- NOT PROVEN OPTIMAL"))
         if not args.quick:
             pcase = process_case(model)
             t_base, base = _timed(lambda: allocate(continuous_twin(pcase), model), repeat)
             t_proc, pres = _timed(lambda: DiscreteAllocation(pcase, model).solve(), repeat)
             print(f"{'':<11} {'processes 30':<16} {t_proc:9.3f} {t_proc / t_base:7.1f}  {pres.status}, "
-                  f"gap {pres.gap:.1e}, {pres.iterations} MILP solves (vs its continuous twin)")
+                  f"gap {pres.gap:.1e}, {pres.iterations} MILP solves or search nodes, {pres.solver} "
+                  "(vs its continuous twin)")
 
 
 if __name__ == "__main__":

@@ -178,7 +178,7 @@ def test_dispatch_and_shadow_prices_of_a_discrete_choice():
     case = _choose_case(4, 3, "rss", seed=3)
     assert needs_discrete(case)
     result = allocate(case, "rss")
-    assert result.solver == "highs"
+    assert result.solver not in ("lagrange-dual", "lagrange-newton", "clarabel")  # a mixed-integer solve
     assert result.success and result.gap == 0.0
     # a discrete optimum has no derivative with respect to a limit: not reported as 0
     assert all(r.shadow_price is None for r in result.requirements)

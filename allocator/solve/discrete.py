@@ -21,8 +21,11 @@ one-hot binaries ``x_ij`` (Chase, Greenwood, Loosli & Hauglund 1990):
   A requirement whose δ no choice moves (no free contributor with a mean shift) is the
   rss row with ``σ_max = g(δ)``, as in the continuous solvers (``g(0)`` is rss's σ_max).
 
-Every MILP is solved by HiGHS (``scipy.optimize.milp``) to a proven optimum (relative and
-absolute MIP gap 0). Each choice is re-checked in numpy against the exact constraint, and
+With one requirement that has limits, :mod:`.branch` solves the choice first, without a MILP:
+branch and bound over the options with Lagrangian bounds (listed values exactly, continuous
+processes polished by the conic solver, the gap proven by the bound); whatever it cannot
+finish comes back here. Every MILP is solved by HiGHS (``scipy.optimize.milp``) to a proven
+optimum (relative and absolute MIP gap 0). Each choice is re-checked in numpy against the exact constraint, and
 the final answer again by :meth:`AllocationProblem.statistics
 <allocator.solve.problem.AllocationProblem.statistics>`.
 
@@ -573,6 +576,8 @@ class DiscreteAllocation:
         self._unrounded = None
         self._last_choice = None  # (options, held tolerances) of the last polished optimum
         self._last_t = None  # its tolerances
+        self._last_pick = None  # the branch and bound's last choice (entry per contributor)
+        self._entries = None  # the branch and bound's entries (built by its first search)
         self._solve_unrounded = None  # this solve's unrounded optimum (with rounding)
 
     # ------------------------------------------------------------------ options
@@ -1169,9 +1174,62 @@ class DiscreteAllocation:
             self._tangent_points = carried  # nothing learnt here: keep the last solve's cuts
             return self._infeasible(limits, reason)
         self._carry_cuts(carried, limits)
+        self._cutoff = None  # the cost of a verified choice, from the search (listed values)
+        searched = self._search(limits, overrides)
+        if searched is not None:
+            return searched
         if self.has_continuous:
             return self._solve_with_polish(limits, overrides)
         return self._solve_points(limits)
+
+    def _search(self, limits, overrides):
+        """One requirement: branch and bound with Lagrangian bounds (:mod:`.branch`).
+
+        None where it does not apply (several requirements, a mean-shift target over
+        :data:`TANGENT_MAX_FALLOUT`) or cannot finish; the MILP path then decides.
+        """
+        from .branch import OptionSearch
+
+        active = [r for r, lim in enumerate(limits) if lim.lower is not None or lim.upper is not None]
+        if len(active) != 1:
+            return None
+        cache = {}
+
+        def polish(chosen, held):
+            return self._polish_held(chosen, held, overrides, cache)[1]
+
+        search = OptionSearch(self, limits, active[0], polish, self.gap_target)
+        out = search.run(self._last_pick)
+        if out is None:
+            if search.best is not None and search.exact:
+                # a verified choice of listed values: its cost prunes the MILP's search
+                self._cutoff = search.best[0]
+            return None
+        self._last_pick = np.array(search.best[1])
+        nodes = f"{out.nodes} node{'s' if out.nodes != 1 else ''}"
+        if out.exact:
+            message = (
+                f"exact choice among {search.entries.size} candidate (process, tolerance) pairs by "
+                f"branch and bound with Lagrangian bounds ({nodes}, gap {_g(out.gap)}), "
+                "re-checked against every requirement"
+            )
+            return self._result(out.options, out.tolerances, limits, status="optimal", message=message,
+                                gap=out.gap, iterations=out.nodes, labels=out.labels,
+                                solver="branch-and-bound")
+        alloc = out.allocation
+        held = dict(self.fix)
+        for c, o, ti in zip(self.case.contributors, out.options, out.tolerances):
+            if o.kind == "points" and not c.fixed:
+                held[c.name] = float(ti)
+        self._last_choice, self._last_t = (out.options, held), out.tolerances
+        message = (
+            f"processes chosen by branch and bound with Lagrangian bounds ({nodes}), tolerances "
+            "polished by the conic solver with those processes held; relative gap to a proven "
+            f"lower bound {_g(out.gap)}"
+        )
+        return self._result(out.options, out.tolerances, limits, status="optimal", message=message,
+                            gap=out.gap, iterations=out.nodes, requirements=alloc.requirements,
+                            solver=f"branch-and-bound+{alloc.solver}", lower_bound=out.bound)
 
     def _sweep_grid(self, o: _Option) -> np.ndarray:
         """Starting grid of a continuous option when a previous solve's optimum is known.
@@ -1217,7 +1275,8 @@ class DiscreteAllocation:
     def _solve_points(self, limits):
         """Every option is a set of points: one exact MILP."""
         cand = self.candidates()
-        out = self._solve_milp(cand, limits)
+        cutoff = self._cutoff if self._cutoff is not None else self._greedy_cost(cand, limits)
+        out = self._solve_milp(cand, limits, cutoff=cutoff)
         if out.status == "infeasible":
             return self._infeasible(limits, self._milp_infeasible_message())
         if out.choice is None:
@@ -1236,6 +1295,60 @@ class DiscreteAllocation:
                             status="optimal" if out.status == "optimal" else "failed",
                             message=message, gap=gap, iterations=out.solves,
                             labels=list(cand.label[out.choice]))
+
+    def _meets(self, cand: _Candidates, choice, limits) -> bool:
+        """The listed values ``choice`` (candidate per contributor) meet every requirement
+        (numpy, within :data:`CHECK_RTOL`)."""
+        t, f, n = cand.tolerance[choice], cand.factor[choice], self.counts
+        for r, (req, lim) in enumerate(zip(self.requirements, limits)):
+            if lim.lower is None and lim.upper is None:
+                continue
+            a = np.abs(self.sensitivity[r])
+            room = min(stack.room(req.nominal, lim.lower, lim.upper))
+            if not room > 0:
+                return False
+            if self.model == "worst-case":
+                if float(np.sum(n * a * t)) > room * (1 + CHECK_RTOL):
+                    return False
+                continue
+            sigma = float(np.sqrt(np.sum(n * (a * f * t) ** 2)))
+            if self.model == "rss":
+                allowed = stack.sigma_limit(req.nominal, lim.fallout, lim.lower, lim.upper)
+            else:
+                delta = float(np.sum(n * a * self.mean_shifts * t))
+                if not delta < room:
+                    return False
+                allowed = mean_shift_allowance(req.nominal, delta, lim)[0]
+            if sigma > allowed * (1 + CHECK_RTOL):
+                return False
+        return True
+
+    def _greedy_cost(self, cand: _Candidates, limits) -> float | None:
+        """Cost of a choice of listed values that meets every requirement, or None.
+
+        From the tightest value of every contributor (which meets them if anything does),
+        each contributor in turn takes its cheapest value that keeps every requirement
+        met, twice over: a verified choice whose cost prunes the MILP's search (a cutoff
+        never changes the MILP's optimum).
+        """
+        owner, n_c = cand.owner, len(self.options)
+        ends = np.append(cand.starts[1:], cand.size)
+        spread = cand.tolerance * np.maximum(cand.factor, 1e-300)
+        choice = np.lexsort((cand.tolerance, spread, owner))[cand.starts]
+        if not self._meets(cand, choice, limits):
+            return None
+        for _ in range(2):
+            for i in range(n_c):
+                block = np.arange(cand.starts[i], ends[i])
+                for j in block[np.argsort(cand.unit_cost[block], kind="stable")]:
+                    if cand.unit_cost[j] >= cand.unit_cost[choice[i]]:
+                        break
+                    trial = choice.copy()
+                    trial[i] = j
+                    if self._meets(cand, trial, limits):
+                        choice = trial
+                        break
+        return float(np.sum(self.counts * cand.unit_cost[choice]))
 
     def _milp_infeasible_message(self) -> str:
         what = "rounded values" if self.rounding is not None else "offered options"
