@@ -296,7 +296,7 @@ BAD = {
     "negative table point": (_set("tables", 3, "tolerance", -0.03), GEAR_HUB, "tables", "3", "tolerance",
                              "must be > 0"),
     "unknown model in settings": (_set("settings", 5, "value", "worst-case, rss, wc"), GEARBOX, "settings", "5",
-                                  "value", "must be one of worst-case, rss, mean-shift (got 'wc')"),
+                                  "value", "must be one of worst-case, rss, mean-shift, convolution (got 'wc')"),
     "a name twice": (_set("contributors", 4, "name", "gasket"), GEARBOX, "contributors", "4", "name",
                      "'gasket' is already used by row 3"),
     "a process twice": (_set("processes", 3, "process", "turning"), GEAR_HUB, "processes", "3", "process",
