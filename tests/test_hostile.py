@@ -10,6 +10,7 @@ there are no timed assertions (speed is the benchmarks' job).
 
 from __future__ import annotations
 
+import importlib.util
 import os
 import re
 import tomllib
@@ -622,9 +623,15 @@ def writing_commands():
         ("fit-costs-plot", ["fit-costs", "QUOTES", "--plot", "OUT"]),
         ("capability-write", ["capability", "CASE", "MEASURED", "--write", "OUT"]),
     ]
-    return [pytest.param(args, id=name) if _available(args[0]) else
-            pytest.param(args, id=name, marks=pytest.mark.skip(reason=f"no '{args[0]}' command yet"))
-            for name, args in candidates]
+    return [pytest.param(args, id=name, marks=_skip_mark(args)) for name, args in candidates]
+
+
+def _skip_mark(args):
+    if not _available(args[0]):
+        return pytest.mark.skip(reason=f"no '{args[0]}' command yet")
+    if _suffix(args) == ".xlsx" and importlib.util.find_spec("openpyxl") is None:
+        return pytest.mark.skip(reason='writes a workbook: needs the sheets extra (pip install ".[sheets]")')
+    return ()
 
 
 def _suffix(args) -> str:
