@@ -17,6 +17,8 @@ from scipy import optimize, stats
 from allocator.model import AllocationSettings, Case, Contributor, CostCurve, Process, Requirement
 from allocator.solve.discrete import DiscreteAllocation
 
+from helpers import unit_cost
+
 
 def _choose(points, prices):
     return CostCurve("table", points_tolerance=tuple(points), points_cost=tuple(prices), between="choose")
@@ -87,14 +89,6 @@ def _process_case():
                 allocation=AllocationSettings(models=("rss",)))
 
 
-def _cost(curve, t):
-    if curve.curve == "reciprocal":
-        return curve.a + curve.b / t
-    if curve.curve == "reciprocal-power":
-        return curve.a + curve.b / t**curve.k
-    return curve.a + curve.b * np.exp(-curve.c * t)
-
-
 @pytest.mark.parametrize("model", ["rss", "mean-shift"])
 def test_process_choice_certified_to_1e9_against_slsqp_enumeration(model):
     shift = 0.2 if model == "mean-shift" else 0.0
@@ -120,7 +114,7 @@ def test_process_choice_certified_to_1e9_against_slsqp_enumeration(model):
         if np.any(margins(np.log(lo)) < 0):
             continue  # even the tightest tolerances of this combination miss
         res = optimize.minimize(
-            lambda x, combo=combo: sum(_cost(p.cost, np.exp(xi)) for p, xi in zip(combo, x)),
+            lambda x, combo=combo: sum(float(unit_cost(p.cost, np.exp(xi))) for p, xi in zip(combo, x)),
             np.log(lo * 1.01), method="SLSQP", bounds=list(zip(np.log(lo), np.log(hi))),
             constraints=[{"type": "ineq", "fun": margins}], options={"ftol": 1e-14, "maxiter": 500})
         if res.success and np.all(margins(res.x) >= -1e-9):
