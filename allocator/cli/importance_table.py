@@ -6,7 +6,7 @@ import click
 
 from ..ppm import format_ppm
 from .common import fmt, text_table, units_title
-from .verify import finish_notes, simulated_as
+from .verify import finish_notes, limits_cell, simulated_as
 
 
 def _ppm(value) -> str:
@@ -39,7 +39,7 @@ def print_importance(case, result, source: str, plot, made_by: dict) -> None:
         rows.append(
             [
                 c.name,
-                f"[{fmt(c.lower, 6)}, {fmt(c.upper, 6)}]" + (f" {c.units}" if c.units else ""),
+                limits_cell(c),
                 f"{_ppm(c.fallout_ppm)} [{_ppm(c.ci_low_ppm)}, {_ppm(c.ci_high_ppm)}]",
                 _ppm(c.form_ppm),
                 _ppm(c.sorm_ppm),

@@ -338,7 +338,7 @@ def _print_human(case, result, source: str, plot, made_by: dict) -> None:
         rows.append(
             [
                 c.name,
-                f"[{fmt(c.lower, 6)}, {fmt(c.upper, 6)}]" + (f" {c.units}" if c.units else ""),
+                limits_cell(c),
                 f"{c.samples:,}",
                 f"{_ppm(c.fallout_ppm)} [{_ppm(c.ci_low_ppm)}, {_ppm(c.ci_high_ppm)}]",
                 _ppm(c.rss_ppm),
@@ -392,6 +392,11 @@ def _print_human(case, result, source: str, plot, made_by: dict) -> None:
         "check safety-critical fits worst case"
     )
     finish_notes(notes, result, plot)
+
+
+def limits_cell(check) -> str:
+    """``[lower, upper] units`` of a requirement check, for the limits column."""
+    return f"[{fmt(check.lower, 6)}, {fmt(check.upper, 6)}]" + (f" {check.units}" if check.units else "")
 
 
 def simulated_as(result, made_by: dict) -> list[str]:
