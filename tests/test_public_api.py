@@ -194,6 +194,6 @@ def test_every_public_function_and_method_has_type_hints():
 def test_every_exported_name_is_documented_in_the_results_page():
     # docs/results.md lists what `import allocator` exports; a name added to _LAZY without
     # its line there is missing from the page users read
-    text = (ROOT / "docs" / "results.md").read_text(encoding="utf-8")
+    text = (ROOT / "docs/results.md").read_text(encoding="utf-8")
     missing = [name for name in allocator.__all__ if name != "__version__" and f"`{name}`" not in text]
     assert not missing, f"not in docs/results.md: {missing}"
