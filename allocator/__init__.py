@@ -51,6 +51,8 @@ _LAZY = {
     "Frontier": ("allocator.sweep", "Frontier"),
     "Verification": ("allocator.simulate", "Verification"),
     "RequirementCheck": ("allocator.simulate", "RequirementCheck"),
+    "ImportanceVerification": ("allocator.importance", "ImportanceVerification"),
+    "ImportanceCheck": ("allocator.importance", "ImportanceCheck"),
     "FalloutEconomics": ("allocator.economics", "FalloutEconomics"),
     "FalloutOptimum": ("allocator.economics", "FalloutOptimum"),
     "SupplierSheet": ("allocator.supplier", "SupplierSheet"),

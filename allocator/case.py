@@ -567,10 +567,7 @@ def _within(t: float, limits) -> bool:
 
 def _read_process(proc: _Table, seen: dict, distribution: str) -> Process:
     name = proc.get("name", lambda v: _text(v, nonempty=True), required="a name for the process")
-    if name in seen:
-        proc.fail("name", f"{name!r} is already used by process[{seen[name]}] of this contributor")
-    seen[name] = len(seen) + 1
-    proc.named(name)
+    _claim_name(proc, seen, name, "process", " of this contributor")
     proc.check_keys(PROCESS_KEYS)
     cp = proc.get("cp", lambda v: _bounded(v, gt=0))
     if cp is not None and distribution != "normal":
@@ -586,10 +583,7 @@ def _read_process(proc: _Table, seen: dict, distribution: str) -> Process:
 
 def _read_contributor(item: _Table, seen: dict) -> Contributor:
     name = item.get("name", lambda v: _name(v, reserved=True), required="a name used in requirements")
-    if name in seen:
-        item.fail("name", f"{name!r} is already used by contributor[{seen[name]}]")
-    seen[name] = len(seen) + 1
-    item.named(name)
+    _claim_name(item, seen, name, "contributor")
     item.check_keys(CONTRIBUTOR_KEYS)
 
     description = item.get("description", _text, default="")
@@ -663,6 +657,15 @@ def _boolean(value) -> bool:
     return value
 
 
+def _claim_name(item: _Table, seen: dict, name: str, section: str, suffix: str = "") -> None:
+    """Record ``name`` as the next ``section`` entry's name (``seen``: name -> entry number, from 1)
+    and name ``item`` by it in later messages; a name used before is an error."""
+    if name in seen:
+        item.fail("name", f"{name!r} is already used by {section}[{seen[name]}]{suffix}")
+    seen[name] = len(seen) + 1
+    item.named(name)
+
+
 # --------------------------------------------------------------------------- requirements
 
 
@@ -692,10 +695,7 @@ def _read_chain(item: _Table, names, unknowns=()) -> dict[str, float]:
 
 def _read_requirement(item: _Table, seen: dict, names, unknowns=()) -> Requirement:
     name = item.get("name", lambda v: _name(v, reserved=False), required="a name for the requirement")
-    if name in seen:
-        item.fail("name", f"{name!r} is already used by requirement[{seen[name]}]")
-    seen[name] = len(seen) + 1
-    item.named(name)
+    _claim_name(item, seen, name, "requirement")
     item.check_keys(REQUIREMENT_KEYS)
 
     has_chain, has_expression = item.has("chain"), item.has("expression")
@@ -737,10 +737,7 @@ def _read_unknown(item: _Table, seen: dict, names) -> Unknown:
     name = item.get("name", lambda v: _name(v, reserved=True), required="a name for the unknown")
     if name in names:
         item.fail("name", f"{name!r} is already a contributor (an unknown must not shadow a contributor)")
-    if name in seen:
-        item.fail("name", f"{name!r} is already used by unknown[{seen[name]}]")
-    seen[name] = len(seen) + 1
-    item.named(name)
+    _claim_name(item, seen, name, "unknown")
     item.check_keys(UNKNOWN_KEYS)
     guess = item.get("guess", _number, required="a start value for the nominal solve")
     description = item.get("description", _text, default="")
@@ -751,10 +748,7 @@ def _read_closure(item: _Table, seen: dict, names, unknowns) -> tuple[Closure, f
     """One closure equation and the names it uses."""
     label = item.get("name", lambda v: _name(v, reserved=False), default="")
     if label:
-        if label in seen:
-            item.fail("name", f"{label!r} is already used by closure[{seen[label]}]")
-        seen[label] = len(seen) + 1
-        item.named(label)
+        _claim_name(item, seen, label, "closure")
     item.check_keys(CLOSURE_KEYS)
     equation = item.get(
         "equation", lambda v: _text(v, nonempty=True),

@@ -232,10 +232,12 @@ class LimitState:
         self.space, self.evaluate, self.limit, self.side = space, evaluate, limit, side
         self.scale, self.steps, self.linear = scale, steps, linear
 
-    def from_y(self, y):
+    def from_y(self, y: float | np.ndarray) -> float | np.ndarray:
+        """``g`` [σ of the response] at response values ``y`` [response]; < 0 is failure."""
         return self.side * (self.limit - y) / self.scale  # side +1: upper limit, −1: lower
 
     def value(self, u: np.ndarray) -> float:
+        """``g`` [σ of the response] at one standard normal point ``u``."""
         return float(self.from_y(responses(self.evaluate, self.space.values(u))[0]))
 
     def _x_gradient(self, x: np.ndarray) -> np.ndarray:

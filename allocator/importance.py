@@ -34,13 +34,25 @@ from typing import TYPE_CHECKING, Mapping
 
 import numpy as np
 
-from .convolve import linear_sum_distribution
 from .form import BETA_MAX, Evaluator, LimitState, StandardSpace, design_point, response_evaluator, responses
 from .ppm import fraction_to_ppm
+from .simulate import (
+    _assumption_note,
+    _bin_range,
+    _checked_run,
+    _CheckedRun,
+    _convolution,
+    _plan,
+    _prediction_dict,
+    _prediction_fields,
+    _progress_bar,
+    _tolerance_array,
+    _unpack,
+    _verdict,
+    clopper_pearson,
+)
 
-if TYPE_CHECKING:  # pandas is imported where it is used
-    import pandas as pd
-
+if TYPE_CHECKING:
     from .model import Case
     from .simulate import Tolerances
 
@@ -174,8 +186,6 @@ def importance_estimate(
        the American Statistical Association 95(449), 135-143.
     """
     from scipy import special, stats
-
-    from .simulate import clopper_pearson
 
     samples = int(samples)
     d = space.dimension
@@ -334,22 +344,7 @@ class ImportanceCheck:
             "beta_upper": _json_number(self.beta_upper),
             "form_note": self.form_note,
             "design_points": self.design_points,
-            "target_ppm": self.target_ppm,
-            "status": self.status,
-            "decided": self.decided,
-            "rss_ppm": self.rss_ppm,
-            "mean_shift_ppm": self.mean_shift_ppm,
-            "predicted_ppm": self.predicted_ppm,
-            "model_disagrees": self.model_disagrees,
-            "convolution_ppm": self.convolution_ppm,
-            "convolution_note": self.convolution_note,
-            "linear": self.linear,
-            "lower": self.lower,
-            "upper": self.upper,
-            "nominal": self.nominal,
-            "sigma": self.sigma,
-            "shift_side": self.shift_side,
-            "shifted_mean": self.shifted_mean,
+            **_prediction_dict(self),
             "units": self.units,
         }
         if histogram:
@@ -368,7 +363,7 @@ def _json_number(x):
 
 
 @dataclass(frozen=True)
-class ImportanceVerification:
+class ImportanceVerification(_CheckedRun):
     """Result of :func:`verify_importance`, read like :class:`allocator.simulate.Verification`.
 
     Attributes
@@ -403,37 +398,13 @@ class ImportanceVerification:
     allocated_with: str | None = None
     assumption_note: str = ""
 
+    _FRAME_DROP = ("design_points",)
+
     def __getitem__(self, name: str) -> ImportanceCheck:
-        for check in self.requirements:
-            if check.name == name:
-                return check
-        raise KeyError(name)
+        return super().__getitem__(name)
 
-    def to_dict(self, histogram: bool = True) -> dict:
-        """JSON-ready dict: status, method, seed, settings and one entry per requirement."""
-        return {
-            "status": self.status,
-            "success": self.success,
-            "message": self.message,
-            "method": self.method,
-            "seed": self.seed,
-            "samples": self.samples,
-            "confidence": self.confidence,
-            "shift_means": self.shift_means,
-            "tolerances": dict(self.tolerances),
-            "allocated_with": self.allocated_with,
-            "assumption_note": self.assumption_note,
-            "requirements": [c.to_dict(histogram) for c in self.requirements],
-        }
-
-    def to_frame(self) -> pd.DataFrame:
-        """One row per requirement (pandas DataFrame, index ``requirement``)."""
-        import pandas as pd
-
-        rows = [c.to_dict(histogram=False) for c in self.requirements]
-        for row in rows:
-            row.pop("design_points")
-        return pd.DataFrame(rows).set_index("name").rename_axis("requirement")
+    def _settings(self) -> dict:
+        return {"method": self.method, "seed": self.seed, "samples": self.samples}
 
     def _repr_html_(self) -> str:
         from .display import result_html
@@ -465,27 +436,6 @@ def _sum_or_none(values) -> float | None:
     if any(not math.isfinite(v) for v in values):
         return None
     return float(sum(values))
-
-
-def _histogram_range(plan, t, case, points) -> tuple[float, float]:
-    from . import stack
-
-    half = stack.worst_case_half_width(plan.a, case.counts, t)
-    lo, hi = plan.shifted_mean - half, plan.shifted_mean + half
-    for x in (plan.requirement.lower, plan.requirement.upper, *points):
-        if x is not None and math.isfinite(x):
-            lo, hi = min(lo, x), max(hi, x)
-    span = hi - lo if hi > lo else max(abs(plan.shifted_mean), 1.0) * 1e-9
-    return lo - 0.05 * span, hi + 0.05 * span
-
-
-def exact_chain_distribution(case, plan, t, sigma_factors):
-    """The convolved distribution of a linear chain at its shifted mean (None for an expression)."""
-    if not plan.linear:
-        return None
-    return linear_sum_distribution(
-        plan.a, case.counts, t, [c.distribution for c in case.contributors], sigma_factors, mean=plan.shifted_mean
-    )
 
 
 def _check_requirement(case, plan, t, f, evaluate, samples, seed, stream, bins) -> ImportanceCheck:
@@ -527,28 +477,19 @@ def _check_requirement(case, plan, t, f, evaluate, samples, seed, stream, bins) 
         raw = np.maximum(raw, MIN_COMPONENT_SHARE)
         weights = dict(zip(centres, raw / raw.sum()))
     design_y = [float(responses(evaluate, space.values(u))[0]) for u in centres.values()]
-    edges_range = _histogram_range(plan, t, case, design_y)
+    edges_range = _bin_range(plan, t, case, (req.lower, req.upper, *design_y))
     estimate = importance_estimate(space, evaluate, req.lower, req.upper, centres, weights, samples=samples,
                                    seed=seed, stream=stream, histogram_range=edges_range, bins=bins)
 
-    dist = exact_chain_distribution(case, plan, t, f)
-    if dist is None:
-        conv_ppm, conv_note, exact_density = None, "not available: the expression is nonlinear", None
-    else:
-        below, above = dist.fallout(req.lower, req.upper)
-        conv_ppm = fraction_to_ppm(below + above)
-        conv_note = "exact distribution of the linear chain by numerical convolution"
-        exact_density = dist.bin_probabilities(estimate.histogram_edges) / np.diff(estimate.histogram_edges)
+    conv_ppm, conv_note, dist = _convolution(case, t, f, plan)
+    exact_density = (None if dist is None
+                     else dist.bin_probabilities(estimate.histogram_edges) / np.diff(estimate.histogram_edges))
     ppm = fraction_to_ppm
     lo_ppm, hi_ppm = ppm(estimate.ci_low), ppm(estimate.ci_high)
-    predicted = plan.mean_shift_ppm if plan.mean_shift_ppm is not None else plan.rss_ppm
     form_total, sorm_total = _sum_or_none(form_sum), _sum_or_none(sorm_sum)
     return ImportanceCheck(
-        name=req.name,
+        **_prediction_fields(case, plan, lo_ppm, hi_ppm),
         method="importance",
-        linear=plan.linear,
-        lower=req.lower,
-        upper=req.upper,
         samples=estimate.samples,
         hits=estimate.hits,
         fallout_ppm=float(ppm(estimate.probability)),
@@ -564,23 +505,11 @@ def _check_requirement(case, plan, t, f, evaluate, samples, seed, stream, bins) 
         beta_upper=betas["upper"],
         form_note="; ".join(notes),
         design_points=points,
-        target_ppm=float(req.target_ppm),
-        rss_ppm=float(plan.rss_ppm),
-        mean_shift_ppm=None if plan.mean_shift_ppm is None else float(plan.mean_shift_ppm),
-        predicted_ppm=float(predicted),
         convolution_ppm=None if conv_ppm is None else float(conv_ppm),
         convolution_note=conv_note,
-        nominal=float(plan.nominal),
-        sigma=float(plan.sigma),
-        shift_side=int(plan.side),
-        shifted_mean=float(plan.shifted_mean),
-        model_disagrees=bool(predicted < lo_ppm or predicted > hi_ppm),
-        status="fail" if lo_ppm > req.target_ppm else "pass",
-        decided=bool(lo_ppm > req.target_ppm or hi_ppm <= req.target_ppm),
         histogram_edges=estimate.histogram_edges,
         histogram_density=estimate.histogram_density,
         exact_density=exact_density,
-        units=case.requirement_units(req.name),
     )
 
 
@@ -660,7 +589,6 @@ def verify_importance(
     (0.000987, True)
     """
     from .errors import CaseError
-    from .simulate import _assumption_note, _checked_run, _plan, _progress_bar, _tolerance_array, _unpack, _verdict
 
     samples, seed = _checked_run(samples, seed)
     if not case.requirements:

@@ -51,6 +51,7 @@ from .errors import CaseError, UsageError, did_you_mean
 
 if TYPE_CHECKING:
     import pandas as pd
+    from numpy.typing import ArrayLike
 
     from .model import Case
 
@@ -224,7 +225,7 @@ def ad_pvalue(statistic: float, n: int) -> float:
     return min(max(p, 0.0), 1.0)
 
 
-def anderson_darling_normal(values) -> tuple[float, float]:
+def anderson_darling_normal(values: ArrayLike) -> tuple[float, float]:
     """Anderson–Darling test of normality: statistic (scipy.stats.anderson) and p-value.
 
     Parameters

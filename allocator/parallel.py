@@ -47,7 +47,7 @@ def _in_process(function: Callable, items: Iterable) -> Iterator:
 
 
 @contextmanager
-def local_runner(workers: int | None = None):
+def local_runner(workers: int | None = None) -> Iterator[Runner]:
     """A runner over ``workers`` local processes (default: :func:`default_workers`).
 
     One worker (or a machine with one processor) runs every item in this process, with no
@@ -99,7 +99,7 @@ def connect(address: str):
 
 
 @contextmanager
-def cluster_runner(address: str):
+def cluster_runner(address: str) -> Iterator[Runner]:
     """A runner over the workers of the Dask scheduler at ``address`` (``tcp://host:port``).
 
     Yields
@@ -126,7 +126,7 @@ def cluster_runner(address: str):
 
 
 @contextmanager
-def runner(workers: int | None = None, scheduler: str | None = None):
+def runner(workers: int | None = None, scheduler: str | None = None) -> Iterator[Runner]:
     """The runner a command's options ask for: the cluster at ``scheduler`` when given, else
     ``workers`` local processes.
 

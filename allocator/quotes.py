@@ -46,6 +46,7 @@ from .errors import CaseError, UsageError, did_you_mean
 
 if TYPE_CHECKING:
     import pandas as pd
+    from numpy.typing import ArrayLike
 
     from .costs.family import CurveFamily
     from .model import Case
@@ -205,7 +206,7 @@ def nonnegative_pair(u: np.ndarray, w: np.ndarray) -> tuple[float, float]:
     return min(candidates, key=rss)
 
 
-def fit_curve(tolerance, cost, curve: str) -> FamilyFit:
+def fit_curve(tolerance: ArrayLike, cost: ArrayLike, curve: str) -> FamilyFit:
     """Fit one cost-curve family to quotes by least squares on relative residuals.
 
     Parameters

@@ -29,6 +29,12 @@ from .errors import CaseError, UsageError
 if TYPE_CHECKING:
     import pandas as pd
 
+    from .economics import FalloutEconomics
+    from .importance import ImportanceVerification
+    from .model import Case
+    from .simulate import Verification
+    from .sweep import Frontier
+
 __all__ = [
     "INSTALL_HINT",
     "SUFFIX",
@@ -394,7 +400,7 @@ def allocation_sheets(results: Sequence) -> dict[str, pd.DataFrame]:
     return {"summary": summary, "tolerances": tolerances, "requirements": requirements}
 
 
-def frontier_sheets(result, economics=None) -> dict[str, pd.DataFrame]:
+def frontier_sheets(result: Frontier, economics: FalloutEconomics | None = None) -> dict[str, pd.DataFrame]:
     """The tables of ``frontier``: ``frontier`` (one row per value and model) and, with
     fallout economics, ``economics`` (one row per model).
 
@@ -440,7 +446,9 @@ def frontier_sheets(result, economics=None) -> dict[str, pd.DataFrame]:
     return out
 
 
-def verification_sheets(result, case=None) -> dict[str, pd.DataFrame]:
+def verification_sheets(
+    result: Verification | ImportanceVerification, case: Case | None = None
+) -> dict[str, pd.DataFrame]:
     """The tables of ``verify``: ``verification`` (one row per requirement),
     ``tolerances`` (what was simulated) and ``run`` (samples, seed, status).
 

@@ -126,6 +126,28 @@ def clopper_pearson(failures: ArrayLike, trials: ArrayLike, confidence: float = 
     return low, high
 
 
+def _prediction_dict(check) -> dict:
+    """The keys every requirement check writes alike: target, verdict, analytic predictions, plan."""
+    return {
+        "target_ppm": check.target_ppm,
+        "status": check.status,
+        "decided": check.decided,
+        "rss_ppm": check.rss_ppm,
+        "mean_shift_ppm": check.mean_shift_ppm,
+        "predicted_ppm": check.predicted_ppm,
+        "model_disagrees": check.model_disagrees,
+        "convolution_ppm": check.convolution_ppm,
+        "convolution_note": check.convolution_note,
+        "linear": check.linear,
+        "lower": check.lower,
+        "upper": check.upper,
+        "nominal": check.nominal,
+        "sigma": check.sigma,
+        "shift_side": check.shift_side,
+        "shifted_mean": check.shifted_mean,
+    }
+
+
 @dataclass(frozen=True)
 class RequirementCheck:
     """Verification of one requirement (see :class:`Verification`).
@@ -190,22 +212,7 @@ class RequirementCheck:
             "below": self.below,
             "above": self.above,
             "undefined": self.undefined,
-            "target_ppm": self.target_ppm,
-            "status": self.status,
-            "decided": self.decided,
-            "rss_ppm": self.rss_ppm,
-            "mean_shift_ppm": self.mean_shift_ppm,
-            "predicted_ppm": self.predicted_ppm,
-            "model_disagrees": self.model_disagrees,
-            "convolution_ppm": self.convolution_ppm,
-            "convolution_note": self.convolution_note,
-            "linear": self.linear,
-            "lower": self.lower,
-            "upper": self.upper,
-            "nominal": self.nominal,
-            "sigma": self.sigma,
-            "shift_side": self.shift_side,
-            "shifted_mean": self.shifted_mean,
+            **_prediction_dict(self),
             "mean": self.mean,
             "std": self.std,
             "units": self.units,
@@ -223,8 +230,53 @@ class RequirementCheck:
         return out
 
 
+class _CheckedRun:
+    """What a verification result does with its requirement checks (lookup, dict, frame).
+
+    A subclass is a frozen dataclass with the fields ``status``, ``success``, ``message``,
+    ``confidence``, ``shift_means``, ``tolerances``, ``requirements``, ``allocated_with`` and
+    ``assumption_note``; :meth:`_settings` gives its own run settings for :meth:`to_dict`.
+    """
+
+    _FRAME_DROP: tuple = ()  # check keys left out of to_frame (not one value per cell)
+
+    def __getitem__(self, name: str):
+        for check in self.requirements:
+            if check.name == name:
+                return check
+        raise KeyError(name)
+
+    def _settings(self) -> dict:
+        raise NotImplementedError
+
+    def to_dict(self, histogram: bool = True) -> dict:
+        """JSON-ready dict: status, seed, settings and one entry per requirement check."""
+        return {
+            "status": self.status,
+            "success": self.success,
+            "message": self.message,
+            **self._settings(),
+            "confidence": self.confidence,
+            "shift_means": self.shift_means,
+            "tolerances": dict(self.tolerances),
+            "allocated_with": self.allocated_with,
+            "assumption_note": self.assumption_note,
+            "requirements": [c.to_dict(histogram) for c in self.requirements],
+        }
+
+    def to_frame(self) -> pd.DataFrame:
+        """One row per requirement (pandas DataFrame, index ``requirement``)."""
+        import pandas as pd
+
+        rows = [c.to_dict(histogram=False) for c in self.requirements]
+        for row in rows:
+            for key in self._FRAME_DROP:
+                row.pop(key)
+        return pd.DataFrame(rows).set_index("name").rename_axis("requirement")
+
+
 @dataclass(frozen=True)
-class Verification:
+class Verification(_CheckedRun):
     """Result of :func:`verify`, read like :class:`scipy.optimize.OptimizeResult`.
 
     Attributes
@@ -268,35 +320,11 @@ class Verification:
     assumption_note: str = ""
 
     def __getitem__(self, name: str) -> RequirementCheck:
-        for check in self.requirements:
-            if check.name == name:
-                return check
-        raise KeyError(name)
+        return super().__getitem__(name)
 
-    def to_dict(self, histogram: bool = True) -> dict:
-        """JSON-ready dict: status, seed, settings and one entry per requirement check."""
-        return {
-            "status": self.status,
-            "success": self.success,
-            "message": self.message,
-            "seed": self.seed,
-            "samples": self.samples,
-            "block_size": self.block_size,
-            "chunk_size": self.chunk_size,
-            "confidence": self.confidence,
-            "shift_means": self.shift_means,
-            "tolerances": dict(self.tolerances),
-            "allocated_with": self.allocated_with,
-            "assumption_note": self.assumption_note,
-            "requirements": [c.to_dict(histogram) for c in self.requirements],
-        }
-
-    def to_frame(self) -> pd.DataFrame:
-        """One row per requirement (pandas DataFrame, index ``requirement``)."""
-        import pandas as pd
-
-        rows = [c.to_dict(histogram=False) for c in self.requirements]
-        return pd.DataFrame(rows).set_index("name").rename_axis("requirement")
+    def _settings(self) -> dict:
+        return {"seed": self.seed, "samples": self.samples, "block_size": self.block_size,
+                "chunk_size": self.chunk_size}
 
     def _repr_html_(self) -> str:
         from .display import result_html
@@ -506,12 +534,19 @@ def _block_rng(entropy: int, block: int) -> np.random.Generator:
 
 def _histogram_range(plan: _Plan, t: np.ndarray, case, first_block: np.ndarray) -> tuple[float, float]:
     """Fixed bins: the (shifted) worst-case range, widened by block 0's spread if needed."""
+    finite = first_block[np.isfinite(first_block)]
+    spread = [float(q) for q in np.quantile(finite, _HISTOGRAM_QUANTILES)] if finite.size else []
+    return _bin_range(plan, t, case, spread)
+
+
+def _bin_range(plan: _Plan, t: np.ndarray, case, values) -> tuple[float, float]:
+    """The (shifted) worst-case range of ``plan``'s response, widened to hold the finite ``values``
+    and then by :data:`_HISTOGRAM_MARGIN` of its span each side."""
     half = stack.worst_case_half_width(plan.a, case.counts, t)
     lo, hi = plan.shifted_mean - half, plan.shifted_mean + half
-    finite = first_block[np.isfinite(first_block)]
-    if finite.size:
-        q_lo, q_hi = np.quantile(finite, _HISTOGRAM_QUANTILES)
-        lo, hi = min(lo, float(q_lo)), max(hi, float(q_hi))
+    for x in values:
+        if x is not None and math.isfinite(x):
+            lo, hi = min(lo, x), max(hi, x)
     span = hi - lo
     if not span > 0:
         span = max(abs(plan.shifted_mean), 1.0) * 1e-9
@@ -957,7 +992,7 @@ def _tally_elsewhere(engine: _Engine, tally: _Tally, map_blocks, setup):
     return map_blocks(_tally_blocks, jobs)
 
 
-def _convolution(case, engine: _Engine, t: np.ndarray, plan: _Plan):
+def _convolution(case, t: np.ndarray, sigma_factors: np.ndarray, plan: _Plan):
     """Exact fallout [ppm] of a linear chain by numerical convolution (None if nonlinear), a note
     and the distribution (None if nonlinear)."""
     if not plan.linear:
@@ -967,7 +1002,7 @@ def _convolution(case, engine: _Engine, t: np.ndarray, plan: _Plan):
         case.counts,
         t,
         [c.distribution for c in case.contributors],
-        engine.sigma_factors,
+        sigma_factors,
         mean=plan.shifted_mean,
     )
     conv_below, conv_above = dist.fallout(plan.requirement.lower, plan.requirement.upper)
@@ -977,22 +1012,17 @@ def _convolution(case, engine: _Engine, t: np.ndarray, plan: _Plan):
 
 def _requirement_check(case, engine: _Engine, t: np.ndarray, tally: _Tally, j: int, ci) -> RequirementCheck:
     """The result for requirement column ``j``: counts, interval ``ci`` (fractions), predictions, histogram."""
-    plan = engine.order[j]
-    req, samples = plan.requirement, engine.samples
+    plan, samples = engine.order[j], engine.samples
     not_closed = int(engine.not_closed[j])  # nan responses, counted apart from undefined
     failures = tally.below[j] + tally.above[j] + tally.undefined[j]
     fallout_ppm = fraction_to_ppm(failures / samples)
     lo_ppm, hi_ppm = fraction_to_ppm(ci[0]), fraction_to_ppm(ci[1])
-    predicted = plan.mean_shift_ppm if plan.mean_shift_ppm is not None else plan.rss_ppm
-    convolution_ppm, note, dist = _convolution(case, engine, t, plan)
+    convolution_ppm, note, dist = _convolution(case, t, engine.sigma_factors, plan)
     edges = tally.edges(j)
     mean, var = tally.moments(j)
     hist = tally.hist
     return RequirementCheck(
-        name=req.name,
-        linear=plan.linear,
-        lower=req.lower,
-        upper=req.upper,
+        **_prediction_fields(case, plan, lo_ppm, hi_ppm),
         samples=samples,
         below=int(tally.below[j]),
         above=int(tally.above[j]),
@@ -1000,30 +1030,44 @@ def _requirement_check(case, engine: _Engine, t: np.ndarray, tally: _Tally, j: i
         fallout_ppm=float(fallout_ppm),
         ci_low_ppm=lo_ppm,
         ci_high_ppm=hi_ppm,
-        target_ppm=float(req.target_ppm),
-        rss_ppm=float(plan.rss_ppm),
-        mean_shift_ppm=None if plan.mean_shift_ppm is None else float(plan.mean_shift_ppm),
-        predicted_ppm=float(predicted),
         convolution_ppm=None if convolution_ppm is None else float(convolution_ppm),
         convolution_note=note,
-        nominal=float(plan.nominal),
-        sigma=float(plan.sigma),
-        shift_side=int(plan.side),
-        shifted_mean=float(plan.shifted_mean),
         mean=float(mean),
         std=float(math.sqrt(max(var, 0.0))) if math.isfinite(var) else math.nan,
-        model_disagrees=bool(predicted < lo_ppm or predicted > hi_ppm),
-        status="fail" if lo_ppm > req.target_ppm else "pass",
-        decided=bool(lo_ppm > req.target_ppm or hi_ppm <= req.target_ppm),
         histogram_edges=edges,
         histogram_counts=hist[j, 1:-1].copy(),
         underflow=int(hist[j, 0]),
         overflow=int(hist[j, -1]),
-        units=case.requirement_units(req.name),
         through_loop=bool(engine.through_loop[j]),
         not_closed=not_closed,
         exact_density=None if dist is None else dist.bin_probabilities(edges) / np.diff(edges),
     )
+
+
+def _prediction_fields(case, plan: _Plan, lo_ppm: float, hi_ppm: float) -> dict:
+    """The check fields every verification method fills alike from the requirement's plan and
+    the interval ``[lo_ppm, hi_ppm]`` of its fallout: limits, target, analytic predictions,
+    the verdict (fail when the interval lies above the target) and the units."""
+    req = plan.requirement
+    predicted = plan.mean_shift_ppm if plan.mean_shift_ppm is not None else plan.rss_ppm
+    return {
+        "name": req.name,
+        "linear": plan.linear,
+        "lower": req.lower,
+        "upper": req.upper,
+        "target_ppm": float(req.target_ppm),
+        "rss_ppm": float(plan.rss_ppm),
+        "mean_shift_ppm": None if plan.mean_shift_ppm is None else float(plan.mean_shift_ppm),
+        "predicted_ppm": float(predicted),
+        "nominal": float(plan.nominal),
+        "sigma": float(plan.sigma),
+        "shift_side": int(plan.side),
+        "shifted_mean": float(plan.shifted_mean),
+        "model_disagrees": bool(predicted < lo_ppm or predicted > hi_ppm),
+        "status": "fail" if lo_ppm > req.target_ppm else "pass",
+        "decided": bool(lo_ppm > req.target_ppm or hi_ppm <= req.target_ppm),
+        "units": case.requirement_units(req.name),
+    }
 
 
 def _verdict(checks) -> tuple[str, str]:

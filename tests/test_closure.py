@@ -83,14 +83,18 @@ def test_twin_allocation_is_identical(model):
     np.testing.assert_allclose(a.allocated_array(), b.allocated_array(), rtol=1e-9)
 
 
+def _clutch_text(shift: bool) -> str:
+    """The clutch case, with a mean shift on the ring radius when ``shift``."""
+    if shift:
+        return CLUTCH_TEXT.replace("nominal = 50.800\n", "nominal = 50.800\nmean_shift = 0.3\n")
+    return CLUTCH_TEXT
+
+
 @pytest.mark.parametrize("shift", [False, True])
 def test_twin_monte_carlo_counts_are_identical(shift):
     # wide tolerances: some assemblies leave the limits and some cannot close at all
     # (the roller no longer fits: (a + c) > (e − c))
-    text = CLUTCH_TEXT
-    if shift:
-        text = text.replace("nominal = 50.800\n", "nominal = 50.800\nmean_shift = 0.3\n")
-    closure, explicit = twins(text)
+    closure, explicit = twins(_clutch_text(shift))
     wide = {"hub_flat": 0.3, "roller_radius": 0.1, "ring_radius": 0.3}
     a = verify(closure.with_tolerances(wide), samples=30_000, seed=11)
     b = verify(explicit.with_tolerances(wide), samples=30_000, seed=11)
@@ -434,10 +438,7 @@ def test_importance_sampling_through_the_loop_equals_its_explicit_twin(shift):
     # must give the same estimate for the same seed: the same draws, the same responses
     from allocator.importance import verify_importance
 
-    text = CLUTCH_TEXT
-    if shift:
-        text = text.replace("nominal = 50.800\n", "nominal = 50.800\nmean_shift = 0.3\n")
-    closure, explicit = twins(text)
+    closure, explicit = twins(_clutch_text(shift))
     a = verify_importance(closure, samples=20_000, seed=5)
     b = verify_importance(explicit, samples=20_000, seed=5)
     for ca, cb in zip(a.requirements, b.requirements):

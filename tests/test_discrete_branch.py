@@ -17,17 +17,20 @@ from scipy import optimize, stats
 from allocator.model import AllocationSettings, Case, Contributor, CostCurve, Process, Requirement
 from allocator.solve.discrete import DiscreteAllocation
 
+from helpers import unit_cost
+
 
 def _choose(points, prices):
     return CostCurve("table", points_tolerance=tuple(points), points_cost=tuple(prices), between="choose")
 
 
-def _mean_shift_case(seed):
+def _mean_shift_case(seed, parts=4, listed=3):
+    """An invented chain of ``parts`` contributors, each with ``listed`` (tolerance, price) choices."""
     rng = np.random.default_rng(seed)
     people = []
-    for i in range(4):
-        points = np.sort(rng.uniform(0.005, 0.06, 3))
-        prices = np.sort(rng.uniform(0.5, 5.0, 3))[::-1]
+    for i in range(parts):
+        points = np.sort(rng.uniform(0.005, 0.06, listed))
+        prices = np.sort(rng.uniform(0.5, 5.0, listed))[::-1]
         people.append(Contributor(name=f"x{i}", nominal=10.0, tolerance=float(points[-1]),
                                   limits=(points[0], points[-1]), cost=_choose(points, prices),
                                   mean_shift=float(rng.uniform(0.0, 0.3)), cp=float(rng.choice([1.0, 1.33]))))
@@ -41,9 +44,9 @@ def _mean_shift_case(seed):
                 allocation=AllocationSettings(models=("mean-shift",)))
 
 
-@pytest.mark.parametrize("seed", [1, 3, 5])
-def test_mean_shift_listed_values_match_enumeration(seed):
-    case = _mean_shift_case(seed)
+def _assert_least_cost_by_enumeration(case):
+    """Every combination of listed values checked by the mean-shift formula (scipy.stats normal
+    tails, the mean anywhere in y0 ± δ); the solver's cost must be the least feasible one."""
     req = case.requirements[0]
     a = np.abs([req.chain[c.name] for c in case.contributors])
     m = np.array([c.mean_shift for c in case.contributors])
@@ -64,6 +67,11 @@ def test_mean_shift_listed_values_match_enumeration(seed):
     assert result.total_cost == pytest.approx(cost[ok].min(), rel=1e-9)
 
 
+@pytest.mark.parametrize("seed", [1, 3, 5])
+def test_mean_shift_listed_values_match_enumeration(seed):
+    _assert_least_cost_by_enumeration(_mean_shift_case(seed))
+
+
 def _process_case():
     """Invented: a bore by one of three processes, a hub by one of two, a plain plate."""
     body = Contributor(name="body", nominal=40.0, tolerance=0.03, processes=(
@@ -79,14 +87,6 @@ def _process_case():
                       lower=2.25, upper=2.35, fallout_ppm=100)
     return Case(title="invented", contributors=(body, hub, plate), requirements=(req,),
                 allocation=AllocationSettings(models=("rss",)))
-
-
-def _cost(curve, t):
-    if curve.curve == "reciprocal":
-        return curve.a + curve.b / t
-    if curve.curve == "reciprocal-power":
-        return curve.a + curve.b / t**curve.k
-    return curve.a + curve.b * np.exp(-curve.c * t)
 
 
 @pytest.mark.parametrize("model", ["rss", "mean-shift"])
@@ -114,7 +114,7 @@ def test_process_choice_certified_to_1e9_against_slsqp_enumeration(model):
         if np.any(margins(np.log(lo)) < 0):
             continue  # even the tightest tolerances of this combination miss
         res = optimize.minimize(
-            lambda x, combo=combo: sum(_cost(p.cost, np.exp(xi)) for p, xi in zip(combo, x)),
+            lambda x, combo=combo: sum(float(unit_cost(p.cost, np.exp(xi))) for p, xi in zip(combo, x)),
             np.log(lo * 1.01), method="SLSQP", bounds=list(zip(np.log(lo), np.log(hi))),
             constraints=[{"type": "ineq", "fun": margins}], options={"ftol": 1e-14, "maxiter": 500})
         if res.success and np.all(margins(res.x) >= -1e-9):
@@ -153,33 +153,4 @@ def test_two_requirements_still_solved_and_checked():
 def test_mean_shift_seven_by_six_listed_values_match_enumeration():
     # 6^7 = 279936 combinations (more than the search takes on alone when its first
     # bound is weak: then its incumbent prunes the MILP); every one checked here
-    rng = np.random.default_rng(21)
-    people = []
-    for i in range(7):
-        points = np.sort(rng.uniform(0.005, 0.06, 6))
-        prices = np.sort(rng.uniform(0.5, 5.0, 6))[::-1]
-        people.append(Contributor(name=f"x{i}", nominal=10.0, tolerance=float(points[-1]),
-                                  limits=(points[0], points[-1]), cost=_choose(points, prices),
-                                  mean_shift=float(rng.uniform(0.0, 0.3)), cp=float(rng.choice([1.0, 1.33]))))
-    chain = {c.name: float(rng.choice([1.0, -1.0, 2.0])) for c in people}
-    a = np.abs(list(chain.values()))
-    mid = np.array([np.median(c.cost.points_tolerance) for c in people])
-    half = 4.0 * float(np.sqrt(np.sum((a * mid / 3) ** 2))) + 0.1 * float(a @ mid)
-    y0 = 10.0 * sum(chain.values())
-    req = Requirement(name="gap", chain=chain, lower=y0 - half, upper=y0 + 1.2 * half, fallout_ppm=270)
-    case = Case(title="invented", contributors=tuple(people), requirements=(req,),
-                allocation=AllocationSettings(models=("mean-shift",)))
-    t = np.array(list(itertools.product(*[c.cost.points_tolerance for c in people])))
-    cost = np.array(list(itertools.product(*[c.cost.points_cost for c in people]))).sum(axis=1)
-    f = np.array([1.0 / (3.0 * c.cp) for c in people])
-    m = np.array([c.mean_shift for c in people])
-    sigma = np.sqrt(((a * f * t) ** 2).sum(axis=1))
-    delta = (a * m * t).sum(axis=1)
-    fallout = np.maximum(*[stats.norm.cdf(req.lower, y0 + s * delta, sigma)
-                           + stats.norm.sf(req.upper, y0 + s * delta, sigma) for s in (-1.0, 1.0)])
-    ok = fallout <= req.fallout_ppm * 1e-6 * (1 + 1e-9)
-    assert ok.any() and not ok.all()
-    result = DiscreteAllocation(case, "mean-shift").solve()
-    assert result.status == "optimal", result.message
-    assert result.gap == 0.0
-    assert result.total_cost == pytest.approx(cost[ok].min(), rel=1e-9)
+    _assert_least_cost_by_enumeration(_mean_shift_case(21, parts=7, listed=6))

@@ -51,19 +51,23 @@ def test_the_package_carries_its_typing_marker():
 
 
 def test_entry_points_result_types_and_errors_are_exported_from_the_package():
-    from allocator import economics, errors, offers, report, supplier
+    from allocator import (
+        closure, economics, errors, importance, measured, offers, quotes, report, sheets, studies, supplier, workbook,
+    )
     from allocator.analysis import StackAnalysis
     from allocator.simulate import Verification
     from allocator.solve.result import Allocation
     from allocator.sweep import Frontier
 
-    assert allocator.fallout_economics is economics.fallout_economics
-    assert allocator.supplier_sheet is supplier.supplier_sheet
-    assert allocator.evaluate_offers is offers.evaluate_offers
-    assert allocator.build_report is report.build_report
-    assert allocator.write_report is report.write_report
+    for module, name in ((economics, "fallout_economics"), (supplier, "supplier_sheet"), (offers, "evaluate_offers"),
+                         (report, "build_report"), (report, "write_report"), (importance, "verify_importance"),
+                         (quotes, "fit_costs"), (measured, "capability"), (studies, "study"),
+                         (workbook, "convert_case"), (workbook, "load_workbook_case"), (sheets, "write_workbook")):
+        assert getattr(allocator, name) is getattr(module, name), name
     for cls in (Allocation, StackAnalysis, Frontier, Verification, economics.FalloutEconomics,
-                supplier.SupplierSheet, offers.OfferEvaluation, offers.OfferResult, offers.Offer):
+                supplier.SupplierSheet, offers.OfferEvaluation, offers.OfferResult, offers.Offer,
+                importance.ImportanceVerification, importance.ImportanceCheck, quotes.CostFits,
+                measured.CapabilityStudy, studies.Study, studies.StudyRow, closure.ResponseEvaluator):
         assert getattr(allocator, cls.__name__) is cls
     for err in ("CaseError", "UsageError", "InfeasibleError"):
         assert getattr(allocator, err) is getattr(errors, err)
@@ -86,7 +90,9 @@ USER_MODULES = [
     "allocator.costs", "allocator.grades", "allocator.convolve", "allocator.ppm", "allocator.errors",
     "allocator.files", "allocator.status", "allocator.display", "allocator.sweep", "allocator.simulate",
     "allocator.economics", "allocator.supplier", "allocator.offers", "allocator.solve", "allocator.solve.result",
-    "allocator.report", "allocator.closure",
+    "allocator.report", "allocator.closure", "allocator.quotes", "allocator.measured", "allocator.workbook",
+    "allocator.sheets", "allocator.caseout", "allocator.tomlout", "allocator.studies", "allocator.parallel",
+    "allocator.form", "allocator.importance",
 ]
 
 
@@ -132,6 +138,9 @@ def test_the_walk_covers_the_entry_points_and_the_result_types():
     for name in ("allocator.allocate", "allocator.Allocation", "allocator.stack.rss_sigma",
                  "allocator.costs.CurveFamily", "allocator.report.Report"):
         assert name in objects, name
+    for module in USER_MODULES:  # each user module with functions or classes is walked
+        if module != "allocator.status":  # status words only
+            assert any(q.rsplit(".", 1)[0] == module for q in objects), module
     assert {"to_frame", "success", "to_dict"} <= {n for n, _ in _members(objects["allocator.Allocation"])}
 
 
@@ -180,3 +189,11 @@ def test_every_public_function_and_method_has_type_hints():
                 elif inspect.isfunction(raw):
                     missing += _untyped(f"{qualified}.{name}", raw, skip_first=True)
     assert not missing, f"{len(missing)} without full type hints: {missing}"
+
+
+def test_every_exported_name_is_documented_in_the_results_page():
+    # docs/results.md lists what `import allocator` exports; a name added to _LAZY without
+    # its line there is missing from the page users read
+    text = (ROOT / "docs/results.md").read_text(encoding="utf-8")
+    missing = [name for name in allocator.__all__ if name != "__version__" and f"`{name}`" not in text]
+    assert not missing, f"not in docs/results.md: {missing}"

@@ -391,15 +391,22 @@ SAME_MISTAKE = [
 
 @pytest.mark.parametrize("old, new, edit, place", SAME_MISTAKE, ids=[m[1] for m in SAME_MISTAKE])
 def test_the_workbook_gets_the_problem_text_the_case_file_gets(old, new, edit, place, tmp_path):
-    text = GEARBOX.read_text(encoding="utf-8")
+    field = _same_problem_in_both(GEARBOX, old, new, edit, tmp_path)
+    assert CELL.search(field).groups() == place
+
+
+def _same_problem_in_both(source, old, new, edit, tmp_path) -> str:
+    """The same mistake made in ``source`` as TOML text and in its workbook by ``edit``: both
+    are refused with the same problem text; the field (a workbook place) the book names."""
+    text = source.read_text(encoding="utf-8")
     assert old in text
     with pytest.raises(CaseError) as in_toml:
         loads_case(text.replace(old, new, 1))
-    book = _bad_workbook(tmp_path, edit)
+    book = _bad_workbook(tmp_path, edit, source)
     with pytest.raises(CaseError) as in_book:
         load_workbook_case(book)
     assert in_book.value.problem == in_toml.value.problem
-    assert CELL.search(in_book.value.field).groups() == place
+    return in_book.value.field
 
 
 CLUTCH_MISTAKES = [
@@ -419,16 +426,9 @@ CLUTCH_MISTAKES = [
 
 @pytest.mark.parametrize("old, new, edit, place", CLUTCH_MISTAKES, ids=[m[1] for m in CLUTCH_MISTAKES])
 def test_a_closure_mistake_gets_the_problem_text_the_case_file_gets(old, new, edit, place, tmp_path):
-    text = CLUTCH.read_text(encoding="utf-8")
-    assert old in text
-    with pytest.raises(CaseError) as in_toml:
-        loads_case(text.replace(old, new, 1))
-    book = _bad_workbook(tmp_path, edit, CLUTCH)
-    with pytest.raises(CaseError) as in_book:
-        load_workbook_case(book)
-    assert in_book.value.problem == in_toml.value.problem
-    found = CELL.search(in_book.value.field)
-    assert (found.groups() if found else (in_book.value.field.removeprefix("sheet "), None, None)) == place
+    field = _same_problem_in_both(CLUTCH, old, new, edit, tmp_path)
+    found = CELL.search(field)
+    assert (found.groups() if found else (field.removeprefix("sheet "), None, None)) == place
 
 
 def test_a_bad_case_file_writes_no_workbook(tmp_path):

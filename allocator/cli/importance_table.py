@@ -6,6 +6,7 @@ import click
 
 from ..ppm import format_ppm
 from .common import fmt, text_table, units_title
+from .verify import finish_notes, limits_cell, simulated_as
 
 
 def _ppm(value) -> str:
@@ -38,7 +39,7 @@ def print_importance(case, result, source: str, plot, made_by: dict) -> None:
         rows.append(
             [
                 c.name,
-                f"[{fmt(c.lower, 6)}, {fmt(c.upper, 6)}]" + (f" {c.units}" if c.units else ""),
+                limits_cell(c),
                 f"{_ppm(c.fallout_ppm)} [{_ppm(c.ci_low_ppm)}, {_ppm(c.ci_high_ppm)}]",
                 _ppm(c.form_ppm),
                 _ppm(c.sorm_ppm),
@@ -80,14 +81,7 @@ def print_importance(case, result, source: str, plot, made_by: dict) -> None:
         if c.undefined_ppm:
             notes.append(f"{c.name}: {format_ppm(c.undefined_ppm)} of assemblies with an undefined response, "
                          "counted as failures")
-    if made_by:
-        parts = [f"{name} by {p}" if p else f"{name} by none of its processes (own cp)" for name, p in made_by.items()]
-        shown = ", ".join(parts[:6]) + (f" and {len(parts) - 6} more (--json lists all)" if len(parts) > 6 else "")
-        notes.append(f"simulated with the cp of the process that makes each part: {shown}")
-    if result.assumption_note:
-        notes.append(f"note: {result.assumption_note}")
-    elif any(c.shift_side for c in result.requirements):
-        notes.append("mean shifts placed on the worse side of each requirement")
+    notes += simulated_as(result, made_by)
     notes.append(
         "FORM and SORM are approximations beside the sampled estimate; beta in σ of the standard normal space"
     )
@@ -95,9 +89,4 @@ def print_importance(case, result, source: str, plot, made_by: dict) -> None:
         "statistical results assume stable, capable processes with the stated distributions (tails included); "
         "check safety-critical fits worst case"
     )
-    if plot is not None:
-        notes.append(f"plot written to {plot}")
-    click.echo("")
-    for line in notes:
-        click.echo(line)
-    click.echo(f"result: {result.status} - {result.message}")
+    finish_notes(notes, result, plot)

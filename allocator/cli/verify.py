@@ -338,7 +338,7 @@ def _print_human(case, result, source: str, plot, made_by: dict) -> None:
         rows.append(
             [
                 c.name,
-                f"[{fmt(c.lower, 6)}, {fmt(c.upper, 6)}]" + (f" {c.units}" if c.units else ""),
+                limits_cell(c),
                 f"{c.samples:,}",
                 f"{_ppm(c.fallout_ppm)} [{_ppm(c.ci_low_ppm)}, {_ppm(c.ci_high_ppm)}]",
                 _ppm(c.rss_ppm),
@@ -386,6 +386,22 @@ def _print_human(case, result, source: str, plot, made_by: dict) -> None:
                 f"{c.name}: {c.not_closed:,} assemblies whose loop cannot close (the closure equations "
                 "have no solution near the nominal one), counted as failures"
             )
+    notes += simulated_as(result, made_by)
+    notes.append(
+        "statistical results assume stable, capable processes with the stated distributions; "
+        "check safety-critical fits worst case"
+    )
+    finish_notes(notes, result, plot)
+
+
+def limits_cell(check) -> str:
+    """``[lower, upper] units`` of a requirement check, for the limits column."""
+    return f"[{fmt(check.lower, 6)}, {fmt(check.upper, 6)}]" + (f" {check.units}" if check.units else "")
+
+
+def simulated_as(result, made_by: dict) -> list[str]:
+    """Note lines on what the run assumed: the process that makes each part, the mean shifts."""
+    notes = []
     if made_by:
         parts = [f"{name} by {p}" if p else f"{name} by none of its processes (own cp)" for name, p in made_by.items()]
         shown = ", ".join(parts[:6]) + (f" and {len(parts) - 6} more (--json lists all)" if len(parts) > 6 else "")
@@ -394,10 +410,11 @@ def _print_human(case, result, source: str, plot, made_by: dict) -> None:
         notes.append(f"note: {result.assumption_note}")
     elif any(c.shift_side for c in result.requirements):
         notes.append("mean shifts placed on the worse side of each requirement")
-    notes.append(
-        "statistical results assume stable, capable processes with the stated distributions; "
-        "check safety-critical fits worst case"
-    )
+    return notes
+
+
+def finish_notes(notes: list[str], result, plot) -> None:
+    """Print the notes (and where the plot went) after a blank line, then the result line."""
     if plot is not None:
         notes.append(f"plot written to {plot}")
     click.echo("")
