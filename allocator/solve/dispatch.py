@@ -69,11 +69,14 @@ def continuous_solver(problem: AllocationProblem):
     the conic problem is built.
     """
     from .exact import ExactAllocation, MeanShiftExact, applicable, applicable_mean_shift
+    from .multipliers import MultiplierNewton, applicable as applicable_multipliers
 
     if applicable(problem):
         return ExactAllocation(problem)
     if applicable_mean_shift(problem):
         return MeanShiftExact(problem, fallback=_conic_factory(problem))
+    if applicable_multipliers(problem):
+        return MultiplierNewton(problem, fallback=_conic_factory(problem))
     return _conic_factory(problem)()
 
 
