@@ -320,6 +320,7 @@ class LimitSweep:
             "CompiledAllocation": "compiled conic problem re-solved with new parameters (DPP)",
             "ExactAllocation": "exact 1-D Lagrange dual, solved again at each value",
             "MeanShiftExact": "optimality conditions of the mean-shift model solved directly at each value",
+            "MultiplierNewton": "Lagrange dual of all the requirements maximised by Newton at each value",
             "DiscreteAllocation": "mixed-integer program (MILP) solved again at each value",
         }.get(name, "the model's own solver, run again at each value")
 
