@@ -161,3 +161,19 @@ def test_allocate_takes_it_and_reports_infeasible_honestly():
     broken = replace(case, requirements=(bad,) + case.requirements[1:])
     out = allocate(broken, "rss")
     assert out.status == "infeasible"
+
+
+def test_hessian_over_shared_parts_equals_the_dense_product():
+    # the pair list (one bincount) against numpy's dense (coef·slope) wᵀ
+    from allocator.solve.multipliers import _SharedParts
+
+    rng = np.random.default_rng(4)
+    k, n = 40, 200
+    w = np.zeros((k, n))
+    for r in range(k):
+        w[r, rng.choice(n, 12, replace=False)] = rng.uniform(0.1, 2.0, 12)
+    coef = w * rng.uniform(1.0, 3.0, n)
+    shared = _SharedParts(w, coef)
+    assert shared.sparse
+    slope = rng.normal(size=n)
+    np.testing.assert_allclose(shared.matrix(slope), (coef * slope) @ w.T, rtol=1e-12, atol=1e-12)

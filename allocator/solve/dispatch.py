@@ -15,7 +15,9 @@ one requirement, worst case or rss (or mean shift with    ``lagrange-dual``: exa
 no free mean shift)
 one requirement, mean shift                               ``lagrange-newton``: Newton on the
                                                           KKT conditions, conic fallback
-several requirements                                      compiled conic problem
+several requirements, worst case or rss (or mean shift      ``lagrange-multipliers``: Newton on
+with no free mean shift), formula costs                   the multipliers, conic fallback
+several requirements otherwise                            compiled conic problem
 ========================================================  =================================
 
 This module never imports the discrete solver (which imports it): a case the continuous
@@ -64,7 +66,9 @@ def continuous_solver(problem: AllocationProblem):
 
     :class:`~allocator.solve.exact.ExactAllocation` for one separable requirement,
     :class:`~allocator.solve.exact.MeanShiftExact` (with the compiled conic problem as its
-    fallback) for one requirement under mean shift, else
+    fallback) for one requirement under mean shift,
+    :class:`~allocator.solve.multipliers.MultiplierNewton` (the same fallback) for several
+    separable requirements with formula costs, else
     :class:`~allocator.solve.continuous.CompiledAllocation`. cvxpy is imported only when
     the conic problem is built.
     """
