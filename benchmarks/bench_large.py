@@ -36,6 +36,7 @@ MODELS = ("worst-case", "rss", "mean-shift")
 def run_measured(cmd):
     """(wall [s], peak RSS [MB], stdout, exit code) of one process, via os.wait4."""
     env = dict(os.environ, PYTHONPATH=str(ROOT))
+    env.pop("PYTHONDONTWRITEBYTECODE", None)  # as installed: compiled modules are cached
     with tempfile.TemporaryFile() as out, tempfile.TemporaryFile() as err:
         start = time.perf_counter()
         proc = subprocess.Popen(cmd, stdout=out, stderr=err, cwd=ROOT, env=env)
