@@ -177,3 +177,48 @@ def test_hessian_over_shared_parts_equals_the_dense_product():
     assert shared.sparse
     slope = rng.normal(size=n)
     np.testing.assert_allclose(shared.matrix(slope), (coef * slope) @ w.T, rtol=1e-12, atol=1e-12)
+
+
+def chains_case(seed: int, model: str, parts: int = 60, count: int = 20, per_chain: int = 8):
+    """An invented case of many short chains over shared parts (formula costs, two-sided
+    limits leaving part of the loosest tolerances' spread; about one in ten loose)."""
+    from allocator.model import AllocationSettings, Case, Contributor
+
+    rng = np.random.default_rng(seed)
+    lo = rng.uniform(0.002, 0.01, parts)
+    hi = lo * rng.uniform(5, 30, parts)
+    count_ = rng.choice([1, 1, 1, 2], parts)
+    people = []
+    for i in range(parts):
+        kind = i % 3
+        cost = (CostCurve("reciprocal", a=rng.uniform(0.1, 2), b=rng.uniform(1e-3, 1e-2)) if kind == 0 else
+                CostCurve("reciprocal-power", a=rng.uniform(0.1, 2), b=rng.uniform(1e-5, 1e-3), k=1.5) if kind == 1
+                else CostCurve("exponential", a=rng.uniform(0.1, 1), b=rng.uniform(0.5, 3), c=rng.uniform(10, 60)))
+        people.append(Contributor(name=f"x{i}", nominal=float(rng.uniform(1, 50)), tolerance=float(lo[i]),
+                                  limits=(float(lo[i]), float(hi[i])), cost=cost, count=int(count_[i])))
+    reqs = []
+    for r in range(count):
+        members = np.sort(rng.choice(parts, size=per_chain, replace=False))
+        a = rng.choice([-1.0, 1.0], per_chain) * rng.uniform(0.5, 2.0, per_chain)
+        n, t = count_[members], hi[members]
+        y0 = float(np.sum(a * n * np.array([people[i].nominal for i in members])))
+        room = 0.4 * float(np.sum(n * np.abs(a) * t)) if model == "worst-case" else \
+            2.2 * float(np.sqrt(np.sum(n * (a * t / 3.0) ** 2)))
+        room *= 3.0 if rng.uniform() < 0.1 else 1.0
+        reqs.append(Requirement(f"r{r}", chain={f"x{i}": float(c) for i, c in zip(members, a)},
+                                lower=y0 - 1.3 * room, upper=y0 + room, fallout_ppm=100))
+    return Case(title="invented chains", contributors=tuple(people), requirements=tuple(reqs),
+                allocation=AllocationSettings(models=(model,)))
+
+
+@pytest.mark.parametrize("seed,model", [(3, "rss"), (1, "worst-case"), (7, "rss")])
+def test_newton_reaches_the_certificate_when_the_dual_no_longer_resolves_a_rise(seed, model):
+    # near the maximum the rise of D falls below its round-off while the excess is still
+    # 1e-8: the step must still be taken (it once stopped there, uncertified)
+    case = chains_case(seed, model)
+    result = MultiplierNewton(prepare(case, model)).solve()
+    assert result.status == "optimal", result.message
+    assert result.gap <= 1e-9
+    assert Reference(case, model).feasible(result.allocated_array(), rtol=1e-9 if model == "worst-case" else 1e-6)[0]
+    conic = CompiledAllocation(case, model).solve()
+    assert result.total_cost == pytest.approx(conic.total_cost, rel=1e-7)

@@ -200,11 +200,15 @@ class MultiplierNewton:
                 trial[idx] = np.maximum(lam[idx] + alpha * step, 0.0)
                 state = evaluate(trial)
                 rise = float((g * scale) @ (trial - lam))
-                if state[3] >= value + ARMIJO * rise and state[3] >= value:
+                if rise > 1e-13 * abs(value):
+                    if state[3] >= value + ARMIJO * rise and state[3] >= value:
+                        accepted = trial, state
+                        break
+                elif np.max(np.abs(state[2][free])) < np.max(np.abs(g[free])):
+                    # D no longer resolves the rise (round-off): the step counts when it
+                    # shrinks the largest excess, as Newton does near the maximum
                     accepted = trial, state
                     break
-                if rise <= 1e-14 * abs(value):
-                    break  # the rise is below round-off: no step improves
                 alpha *= 0.5
             if accepted is None:
                 break
