@@ -99,22 +99,20 @@ class MultiplierNewton:
         if reason:
             return problem.infeasible(limits, reason, SOLVER_NAME)
         rhs, allowance = dual.rhs(limits)
-        out = self._maximise(rhs)
-        if out is not None:
-            t_free, lam = out
-            polished, theta = problem.polish(problem.full(t_free), limits)
-            cost = problem.total_cost(polished)
-            bound = float(dual.bound(lam, np.where(np.isfinite(rhs), rhs, 0.0)))
-            gap = max(0.0, (cost - bound) / cost) if cost > 0 and math.isfinite(bound) else None
-            verified = theta >= 1.0 - 1e-9 and problem.feasible(polished, limits, rtol=problem._rtol())
-            if verified and gap is not None and gap <= GAP_LIMIT:
-                return problem.result(
-                    polished, limits, status="optimal",
-                    message=f"Lagrange dual of {len(rhs)} requirements maximised by Newton on the "
-                    "multipliers; re-checked against every requirement",
-                    solver=SOLVER_NAME, iterations=self.steps, gap=gap,
-                    multipliers=dual.multipliers(lam, allowance),
-                )
+        t_free, lam = self._maximise(rhs)
+        polished, theta = problem.polish(problem.full(t_free), limits)
+        cost = problem.total_cost(polished)
+        bound = float(dual.bound(lam, np.where(np.isfinite(rhs), rhs, 0.0)))
+        gap = max(0.0, (cost - bound) / cost) if cost > 0 and math.isfinite(bound) else None
+        verified = theta >= 1.0 - 1e-9 and problem.feasible(polished, limits, rtol=problem._rtol())
+        if verified and gap is not None and gap <= GAP_LIMIT:
+            return problem.result(
+                polished, limits, status="optimal",
+                message=f"Lagrange dual of {len(rhs)} requirements maximised by Newton on the "
+                "multipliers; re-checked against every requirement",
+                solver=SOLVER_NAME, iterations=self.steps, gap=gap,
+                multipliers=dual.multipliers(lam, allowance),
+            )
         if self._fallback is None:
             return problem.result(None, limits, status="failed", solver=SOLVER_NAME,
                                   message="Newton on the multipliers did not certify an optimum "
@@ -126,7 +124,7 @@ class MultiplierNewton:
     # ------------------------------------------------------------------ the dual
 
     def _maximise(self, rhs):
-        """``(free tolerances meeting every requirement, λ per requirement)`` or None."""
+        """``(free tolerances meeting every requirement up to round-off, λ per requirement)``."""
         dual = self.dual
         m = rhs.size
         lam_full = np.zeros(m)
@@ -214,7 +212,7 @@ class MultiplierNewton:
                 break
             lam, (t, v, g, value) = accepted
         lam_full[rows] = lam
-        return self._shrink(t, w, coef, target, lam > 0), lam_full
+        return self._shrink(t, coef, target), lam_full
 
     @staticmethod
     def _newton_step(h, g, lam, reference):
@@ -262,7 +260,7 @@ class MultiplierNewton:
                 lam[r] = float(np.median(per)) if per.size else 1.0
         return lam
 
-    def _shrink(self, t, w, coef, target, binding):
+    def _shrink(self, t, coef, target):
         """``t`` with every requirement met to round-off (``max(lo, θ t)``, θ ≤ 1)."""
         dual = self.dual
         power = 2 if dual.squared else 1
