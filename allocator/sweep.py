@@ -320,6 +320,7 @@ class LimitSweep:
             "CompiledAllocation": "compiled conic problem re-solved with new parameters (DPP)",
             "ExactAllocation": "exact 1-D Lagrange dual, solved again at each value",
             "MeanShiftExact": "optimality conditions of the mean-shift model solved directly at each value",
+            "MultiplierNewton": "Lagrange dual of all the requirements maximised by Newton at each value",
             "DiscreteAllocation": "mixed-integer choice (branch and bound with Lagrangian bounds, else MILP) "
                                   "solved again at each value from the last point's choice",
             "ConvolutionAllocation": "convex steps on the exact fallout, started at the rss or "

@@ -509,3 +509,15 @@ def test_family_scaling_parameter_checks_and_text(name):
             bad = CostCurve(name, **{**fam.one(curve), q.name: q.lower - 1.0})
             assert check_curve(bad) == f"{q.name} must be {q.bound} (got {q.lower - 1.0:g})"
     assert set(fam.case_keys) >= {q.name for q in fam.parameters}
+
+
+def test_lambert_w0_matches_scipy():
+    # the exponential family's own W₀ (no scipy import on the allocation path) against scipy
+    from scipy import special
+
+    from allocator.costs.exponential import lambert_w0
+
+    x = np.concatenate([np.logspace(-300, 300, 2000), [1.0, math.e, 0.5]])
+    np.testing.assert_allclose(lambert_w0(x), special.lambertw(x).real, rtol=1e-13)
+    assert lambert_w0(0.0) == 0.0 and lambert_w0(np.inf) == np.inf
+    assert lambert_w0(1.0) == pytest.approx(0.5671432904097838, rel=1e-15)  # the omega constant (from memory)

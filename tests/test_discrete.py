@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import itertools
 import json
+import sys
 from dataclasses import replace
 
 import numpy as np
@@ -124,9 +125,13 @@ def _choose_case(size, options, model, seed):
     return _case(contributors, [req], models=(model,))
 
 
+@pytest.mark.parametrize("backend", ["highspy", "scipy"])
 @pytest.mark.parametrize("model", ["worst-case", "rss"])
-def test_seven_by_six_choose_tables_match_enumeration(model):
-    # a smaller size of the benchmark's 30 x 6 case: 6^7 = 279936 combinations, all checked
+def test_seven_by_six_choose_tables_match_enumeration(model, backend, monkeypatch):
+    # a smaller size of the benchmark's 30 x 6 case: 6^7 = 279936 combinations, all checked;
+    # HiGHS through highspy (installed with cvxpy) and, without it, through scipy.optimize.milp
+    if backend == "scipy":
+        monkeypatch.setitem(sys.modules, "highspy", None)  # import highspy now fails
     case = _choose_case(7, 6, model, seed=11)
     t = np.array([c.cost.points_tolerance for c in case.contributors])  # 7 x 6
     price = np.array([c.cost.points_cost for c in case.contributors])

@@ -9,8 +9,10 @@ the independent numpy/scipy.stats code of tests/helpers.py and against an
 unspoilt solve -- and anything else must be status 'failed' (``allocate`` exits 1 with a
 one-line reason), never an unverified 'optimal'.
 
-The invented case has two requirements sharing contributors, so every model goes
-through the conic solver (allocator/solve/continuous.py).
+The invented case has two requirements sharing contributors. Worst case and rss of such
+a case are first offered to Newton on the Lagrange multipliers
+(allocator/solve/multipliers.py, tested in test_multipliers.py); here that path is
+switched off, so every model goes through the conic solver (allocator/solve/continuous.py).
 """
 
 from __future__ import annotations
@@ -25,7 +27,7 @@ from click.testing import CliRunner
 from allocator.cli.main import cli
 from allocator.model import AllocationSettings, Case, Contributor, CostCurve, Requirement
 from allocator.solve import allocate
-from allocator.solve import continuous
+from allocator.solve import continuous, multipliers
 
 from helpers import Reference, case_text, rtol_for
 
@@ -61,7 +63,20 @@ def invented_case() -> Case:
 
 
 CASE = invented_case()
-HONEST = {model: allocate(CASE, model) for model in MODELS}
+
+
+def _conic_only(problem) -> bool:
+    return False  # the multiplier path never applies: the conic solver answers
+
+
+with pytest.MonkeyPatch.context() as patch:
+    patch.setattr(multipliers, "applicable", _conic_only)
+    HONEST = {model: allocate(CASE, model) for model in MODELS}
+
+
+@pytest.fixture(autouse=True)
+def conic_path(monkeypatch):
+    monkeypatch.setattr(multipliers, "applicable", _conic_only)
 
 
 def test_the_unspoilt_solves_are_verified_optima():

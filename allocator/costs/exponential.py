@@ -8,9 +8,11 @@ References
 
 from __future__ import annotations
 
+import math
 from dataclasses import replace
 
 import numpy as np
+
 from .family import Parameter, SmoothFamily
 from .power import A, B
 
@@ -51,9 +53,7 @@ class Exponential(SmoothFamily):
         return np.log(p["b"] * p["c"] / s) / p["c"]
 
     def quadratic_root(self, p, q):
-        from scipy import special  # only the mean-shift and rss duals need Lambert W
-
-        return special.lambertw(p["b"] * p["c"] ** 2 / q).real / p["c"]
+        return lambert_w0(p["b"] * p["c"] ** 2 / q) / p["c"]
 
     def cvx(self, curves, t, weight):
         import cvxpy as cp
@@ -61,3 +61,32 @@ class Exponential(SmoothFamily):
         p = self.params(curves)
         term = cp.sum(cp.multiply(weight * p["b"], cp.exp(cp.multiply(-p["c"], t))))
         return float(weight @ p["a"]), term
+
+
+def lambert_w0(x):
+    """Principal branch ``W₀(x)`` of the Lambert W function for ``x ≥ 0`` (``w e^w = x``).
+
+    Newton's method on ``w + ln w = ln x`` (no overflow for any finite ``x``), from
+    ``ln(1 + x)`` below ``e`` and ``ln x − ln ln x`` above, until one step after every
+    change is below 1e-9 (quadratic convergence: round-off then); vectorised. Our
+    own few lines instead of ``scipy.special.lambertw``, whose import costs more than a
+    whole allocation (the tests compare the two). ``x = inf`` gives inf, ``x = 0`` gives 0.
+    """
+    x = np.asarray(x, dtype=float)
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        log_x = np.log(x)
+        big = x > math.e
+        w = np.where(big, log_x - np.log(np.where(big, log_x, 1.0)), np.log1p(x))
+        ok = (x > 0) & np.isfinite(x)
+        w = np.where(ok, w, np.where(x > 0, np.inf, 0.0))
+        close = False
+        for _ in range(60):
+            g = np.where(ok, w + np.log(w) - log_x, 0.0)
+            step = g * w / (w + 1.0)
+            new = np.where(ok, np.maximum(w - step, 0.1 * w), w)
+            change = np.abs(new - w) <= 1e-9 * np.abs(new)
+            w = new
+            if close:
+                break  # one step after a change of 1e-9: quadratic convergence, round-off
+            close = bool(np.all(change))
+    return w if w.ndim else float(w)

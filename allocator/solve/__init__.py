@@ -8,6 +8,8 @@ path):
 - the exact 1-D Lagrange dual (:mod:`.exact`) when the case has one requirement and the
   model is worst-case or rss (no cvxpy import, fastest); Newton on the KKT conditions for
   one requirement under mean shift;
+- Newton on the Lagrange multipliers (:mod:`.multipliers`) for several requirements
+  under worst case or rss with formula costs (no cvxpy import; conic fallback);
 - the convex conic formulation (:mod:`.continuous`) otherwise, with cutting planes for
   two-sided mean shift.
 

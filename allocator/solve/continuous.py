@@ -576,10 +576,12 @@ def _kkt_newton(p, limits, active, J, x, mu, at_lo, at_hi, max_steps):
         a = p.requirements[k].sensitivity
         rows.append((k, n * (a * f) ** 2, n * np.abs(a) * m))
     x = x.copy()
+    w_all = np.array([w for _, w, _ in rows])  # (active, contributors)
+    v_all = np.array([v for _, _, v in rows])
     for _ in range(max_steps):
-        grads, hess = [], np.diag((n * p.curves.curvature(x))[J])
         residual_c = np.empty(len(active))
         g_values = np.empty(len(active))
+        sigmas, slopes, seconds = (np.empty(len(active)) for _ in range(3))
         for j, (k, w, v) in enumerate(rows):
             req, lim = p.requirements[k], limits[k]
             sigma = math.sqrt(float(w @ (x * x)))
@@ -587,13 +589,15 @@ def _kkt_newton(p, limits, active, J, x, mu, at_lo, at_hi, max_steps):
             g, slope, second = allowance_with_curvature(req.nominal, delta, lim)
             if not (sigma > 0 and g > 0 and math.isfinite(g) and math.isfinite(second)):
                 return None
-            d_sigma = w * x / sigma
-            grads.append(d_sigma - slope * v)
-            wj, dj, vj = w[J], d_sigma[J], v[J]
-            hess += mu[j] * (np.diag(wj / sigma) - np.outer(dj, dj) / sigma - second * np.outer(vj, vj))
+            sigmas[j], slopes[j], seconds[j] = sigma, slope, second
             residual_c[j] = (sigma - g) / g
             g_values[j] = g
-        grad_h = np.array(grads)  # (active, contributors)
+        d_sigma = w_all * x / sigmas[:, None]
+        grad_h = d_sigma - slopes[:, None] * v_all  # (active, contributors)
+        # Σ_j μ_j (diag(w_j)/σ_j − d_j d_jᵀ/σ_j − g''_j v_j v_jᵀ), as two products
+        wj, dj, vj = w_all[:, J], d_sigma[:, J], v_all[:, J]
+        hess = np.diag((n * p.curves.curvature(x))[J] + (mu / sigmas) @ wj)
+        hess -= (dj * (mu / sigmas)[:, None]).T @ dj + (vj * (mu * seconds)[:, None]).T @ vj
         slope_cost = n * p.curves.derivative(x)
         residual_s = slope_cost + mu @ grad_h
         scale_s = np.maximum(np.abs(slope_cost[J]), 1e-300)

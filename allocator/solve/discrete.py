@@ -356,6 +356,12 @@ def _run_milp(objective, rows: _Rows, time_limit: float, integrality, upper, cut
     optimum (the cost of a verified solution): HiGHS then prunes every branch whose bound
     reaches it instead of searching for solutions there. It never changes the optimum.
     """
+    try:
+        import highspy  # HiGHS itself (a cvxpy dependency): scipy.optimize's import costs ~0.3 s
+    except ImportError:  # pragma: no cover - cvxpy brings it in
+        highspy = None
+    if highspy is not None:
+        return _run_highspy(highspy, objective, rows, time_limit, integrality, upper, cutoff)
     from scipy import optimize
 
     a, lo, hi = rows.matrix()
@@ -388,6 +394,54 @@ def _run_milp(objective, rows: _Rows, time_limit: float, integrality, upper, cut
                 raise
             _PRUNING_OPTIONS.clear()
     return _run_milp(objective, rows, time_limit, integrality, upper)
+
+
+_HIGHS_STATUS = {"kOptimal": 0, "kTimeLimit": 1, "kIterationLimit": 1, "kSolutionLimit": 1,
+                 "kInfeasible": 2, "kUnbounded": 3, "kUnboundedOrInfeasible": 3}
+
+
+def _run_highspy(highspy, objective, rows: _Rows, time_limit: float, integrality, upper, cutoff=None):
+    """:func:`_run_milp` through highspy, with scipy's result fields (``status`` 0 optimal,
+    1 limit, 2 infeasible, 3 unbounded, 4 other; ``x`` None without a solution; ``fun``,
+    ``mip_dual_bound``, ``mip_gap``, ``mip_node_count``, ``message``)."""
+    from types import SimpleNamespace
+
+    counts = np.array([i.size for i in rows.indices], dtype=int)
+    start = np.concatenate([[0], np.cumsum(counts)]).astype(np.int32)
+    index = (np.concatenate(rows.indices) if rows.indices else np.zeros(0)).astype(np.int32)
+    value = np.concatenate(rows.values) if rows.values else np.zeros(0)
+    lp = highspy.HighsLp()
+    lp.num_col_, lp.num_row_ = int(objective.size), len(rows.indices)
+    lp.col_cost_ = np.asarray(objective, dtype=float)
+    lp.col_lower_ = np.zeros(objective.size)
+    lp.col_upper_ = np.asarray(upper, dtype=float)
+    lp.row_lower_ = np.array(rows.lower, dtype=float)
+    lp.row_upper_ = np.array(rows.upper, dtype=float)
+    lp.a_matrix_.format_ = highspy.MatrixFormat.kRowwise
+    lp.a_matrix_.start_, lp.a_matrix_.index_, lp.a_matrix_.value_ = start, index, value
+    lp.a_matrix_.num_col_, lp.a_matrix_.num_row_ = lp.num_col_, lp.num_row_
+    kinds = (highspy.HighsVarType.kContinuous, highspy.HighsVarType.kInteger)
+    lp.integrality_ = [kinds[int(k)] for k in np.asarray(integrality)]
+    options = {"mip_rel_gap": 0.0, "mip_abs_gap": 0.0, "time_limit": float(time_limit), "presolve": "on",
+               "output_flag": False}
+    if cutoff is not None and math.isfinite(cutoff) and _PRUNING_OPTIONS:
+        options.update(_PRUNING_OPTIONS, objective_bound=float(cutoff))
+    with _quiet_stdout():
+        h = highspy.Highs()
+        for key, val in options.items():
+            h.setOptionValue(key, val)
+        h.passModel(lp)
+        h.run()
+    status = h.getModelStatus()
+    name = str(status).split(".")[-1]
+    info = h.getInfo()
+    has_x = info.primal_solution_status == 2  # a feasible point
+    x = np.array(h.getSolution().col_value, dtype=float) if has_x else None
+    return SimpleNamespace(
+        status=_HIGHS_STATUS.get(name, 4), x=x, fun=float(info.objective_function_value) if has_x else None,
+        mip_dual_bound=float(info.mip_dual_bound), mip_gap=float(info.mip_gap),
+        mip_node_count=int(info.mip_node_count), message=h.modelStatusToString(status),
+    )
 
 
 # --------------------------------------------------------------------------- Lagrangian

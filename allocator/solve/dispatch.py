@@ -15,7 +15,9 @@ one requirement, worst case or rss (or mean shift with    ``lagrange-dual``: exa
 no free mean shift)
 one requirement, mean shift                               ``lagrange-newton``: Newton on the
                                                           KKT conditions, conic fallback
-several requirements                                      compiled conic problem
+several requirements, worst case or rss (or mean shift      ``lagrange-multipliers``: Newton on
+with no free mean shift), formula costs                   the multipliers, conic fallback
+several requirements otherwise                            compiled conic problem
 model ``convolution`` (linear chains, continuous)         ``convolution-sca``: convex steps
                                                           on the exact fallout
                                                           (:mod:`allocator.solve.convolution`)
@@ -67,16 +69,21 @@ def continuous_solver(problem: AllocationProblem):
 
     :class:`~allocator.solve.exact.ExactAllocation` for one separable requirement,
     :class:`~allocator.solve.exact.MeanShiftExact` (with the compiled conic problem as its
-    fallback) for one requirement under mean shift, else
+    fallback) for one requirement under mean shift,
+    :class:`~allocator.solve.multipliers.MultiplierNewton` (the same fallback) for several
+    separable requirements with formula costs, else
     :class:`~allocator.solve.continuous.CompiledAllocation`. cvxpy is imported only when
     the conic problem is built.
     """
     from .exact import ExactAllocation, MeanShiftExact, applicable, applicable_mean_shift
+    from .multipliers import MultiplierNewton, applicable as applicable_multipliers
 
     if applicable(problem):
         return ExactAllocation(problem)
     if applicable_mean_shift(problem):
         return MeanShiftExact(problem, fallback=_conic_factory(problem))
+    if applicable_multipliers(problem):
+        return MultiplierNewton(problem, fallback=_conic_factory(problem))
     return _conic_factory(problem)()
 
 

@@ -23,8 +23,6 @@ from dataclasses import dataclass, replace
 from typing import Mapping
 
 import numpy as np
-from scipy import special
-
 from .. import costs, stack
 from ..chain import linearise
 from ..errors import CaseError, UsageError, did_you_mean
@@ -240,7 +238,7 @@ def sigma_limit_slopes(mean: float, sigma: float, limits: RequirementLimits) -> 
     """
     d_low, d_up = stack.room(mean, limits.lower, limits.upper)
     if not sigma > 0:
-        z = -float(special.ndtri(limits.fallout))
+        z = -stack.normal_quantile(limits.fallout)
         if d_up <= d_low:
             return {"mean": -1.0 / z, "lower": 0.0, "upper": 1.0 / z, "fallout": 0.0}
         return {"mean": 1.0 / z, "lower": -1.0 / z, "upper": 0.0, "fallout": 0.0}

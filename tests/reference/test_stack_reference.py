@@ -112,3 +112,25 @@ def test_mean_shift_sigma_limit_is_sigma_limit_at_worst_mean():
     s = stack.mean_shift_sigma_limit(0.1, 0.05, 1e-4, -0.2, 0.3)
     total = stats.norm.cdf(-0.2, 0.15, s) + stats.norm.sf(0.3, 0.15, s)
     assert total == pytest.approx(1e-4, rel=1e-9)
+
+
+def test_normal_quantile_matches_scipy_special_ndtri():
+    # the stack models' own Φ⁻¹ (no scipy import on the allocation path) against scipy
+    from scipy import special
+
+    for p in np.concatenate([np.logspace(-300, -0.302, 600), np.linspace(0.01, 0.99, 99), [0.5, 1 - 1e-12]]):
+        ours, ref = stack.normal_quantile(float(p)), float(special.ndtri(p))
+        assert ours == pytest.approx(ref, rel=1e-13, abs=1e-15), p
+    with pytest.raises(ValueError):
+        stack.normal_quantile(0.0)
+
+
+def test_two_sided_sigma_limit_matches_brentq_on_scipy():
+    # σ with Φ((L − μ)/σ) + Φ((μ − U)/σ) = p: scipy's brentq on scipy.stats.norm as the reference
+    from scipy import optimize
+
+    for lower, upper, p in [(-1.0, 1.3, 1e-4), (-0.2, 5.0, 0.01), (-1.0, 1.0000001, 1e-6), (-2.0, 2.5, 0.2)]:
+        sigma = stack.sigma_limit(0.0, p, lower, upper)
+        ref = optimize.brentq(lambda s: stats.norm.cdf(lower / s) + stats.norm.sf(upper / s) - p,
+                              1e-3, 10.0, xtol=1e-16, rtol=1e-15)
+        assert sigma == pytest.approx(ref, rel=1e-13)
