@@ -125,13 +125,9 @@ def _choose_case(size, options, model, seed):
     return _case(contributors, [req], models=(model,))
 
 
-@pytest.mark.parametrize("backend", ["highspy", "scipy"])
 @pytest.mark.parametrize("model", ["worst-case", "rss"])
-def test_seven_by_six_choose_tables_match_enumeration(model, backend, monkeypatch):
-    # a smaller size of the benchmark's 30 x 6 case: 6^7 = 279936 combinations, all checked;
-    # HiGHS through highspy (installed with cvxpy) and, without it, through scipy.optimize.milp
-    if backend == "scipy":
-        monkeypatch.setitem(sys.modules, "highspy", None)  # import highspy now fails
+def test_seven_by_six_choose_tables_match_enumeration(model):
+    # a smaller size of the benchmark's 30 x 6 case: 6^7 = 279936 combinations, all checked
     case = _choose_case(7, 6, model, seed=11)
     t = np.array([c.cost.points_tolerance for c in case.contributors])  # 7 x 6
     price = np.array([c.cost.points_cost for c in case.contributors])
@@ -155,6 +151,70 @@ def test_seven_by_six_choose_tables_match_enumeration(model, backend, monkeypatc
     assert result.status == "optimal"
     assert result.gap == 0.0
     assert result.total_cost == pytest.approx(cost[ok].min(), rel=1e-9)
+
+
+def _two_requirement_choose_case(model, seed):
+    """Six parts with six listed options each under two chains: the mixed-integer program's case."""
+    case = _choose_case(6, 6, model, seed=seed)
+    (req,) = case.requirements
+    names = list(req.chain)[:4]
+    sub = {n: req.chain[n] for n in names}
+    nominal = 10.0 * sum(sub.values())
+    a = np.abs(list(sub.values()))
+    mid = np.array([np.median(case.contributor(n).cost.points_tolerance) for n in names])
+    half = 0.8 * (float(a @ mid) if model == "worst-case" else 4.0 * float(np.sqrt(np.sum((a * mid / 3) ** 2))))
+    second = Requirement(name="inner", chain=sub, lower=nominal - half, upper=nominal + half, fallout_ppm=63)
+    return _case(list(case.contributors), [req, second], models=(model,))
+
+
+def _enumerated_least_cost(case, model):
+    """Least cost over every combination of listed options (itertools.product), scipy.stats fallout."""
+    parts = case.contributors
+    t = np.array([c.cost.points_tolerance for c in parts])
+    price = np.array([c.cost.points_cost for c in parts])
+    f = np.array([sigma_factor("normal", c.cp) for c in parts])
+    idx = np.array(list(itertools.product(range(t.shape[1]), repeat=len(parts))))
+    rows = np.arange(len(parts))
+    tt = t[rows, idx]
+    ok = np.ones(len(idx), dtype=bool)
+    for req in case.requirements:
+        a = np.array([req.chain.get(c.name, 0.0) for c in parts])
+        nominal = 10.0 * a.sum()
+        if model == "worst-case":
+            w = (np.abs(a) * tt).sum(axis=1)
+            ok &= (nominal - w >= req.lower) & (nominal + w <= req.upper)
+        else:
+            sigma = np.sqrt(((a * f * tt) ** 2).sum(axis=1))
+            ok &= stats.norm.cdf(req.lower, nominal, sigma) + stats.norm.sf(req.upper, nominal, sigma) \
+                <= req.fallout_ppm * 1e-6
+    assert ok.any() and not ok.all()
+    return price[rows, idx].sum(axis=1)[ok].min()
+
+
+@pytest.mark.parametrize("backend", ["highspy", "scipy", "highspy-moved"])
+@pytest.mark.parametrize("model", ["worst-case", "rss"])
+def test_the_mixed_integer_program_matches_enumeration_through_every_highs_route(model, backend, monkeypatch):
+    # two requirements go to the MILP; HiGHS through highspy (installed with cvxpy), through
+    # scipy.optimize.milp without it, and through scipy when highspy's interface has moved
+    from allocator.solve import discrete
+
+    if backend == "scipy":
+        monkeypatch.setitem(sys.modules, "highspy", None)  # import highspy now fails
+    if backend == "highspy-moved":
+        import types
+
+        monkeypatch.setitem(sys.modules, "highspy", types.SimpleNamespace())
+        monkeypatch.setattr(discrete, "_HIGHSPY_USABLE", [True])
+    calls = []
+    real = discrete._run_milp
+    monkeypatch.setattr(discrete, "_run_milp", lambda *a, **k: calls.append(1) or real(*a, **k))
+    case = _two_requirement_choose_case(model, seed=5)
+    result = DiscreteAllocation(case, model).solve()
+    assert calls, "the case was meant to exercise the mixed-integer program"
+    assert result.status == "optimal"
+    assert result.total_cost == pytest.approx(_enumerated_least_cost(case, model), rel=1e-9)
+    if backend == "highspy-moved":
+        assert discrete._HIGHSPY_USABLE == []
 
 
 def test_choose_table_with_a_dominated_entry_matches_enumeration():

@@ -358,10 +358,15 @@ def _run_milp(objective, rows: _Rows, time_limit: float, integrality, upper, cut
     """
     try:
         import highspy  # HiGHS itself (a cvxpy dependency): scipy.optimize's import costs ~0.3 s
-    except ImportError:  # pragma: no cover - cvxpy brings it in
+    except ImportError:
         highspy = None
-    if highspy is not None:
-        return _run_highspy(highspy, objective, rows, time_limit, integrality, upper, cutoff)
+    if highspy is not None and _HIGHSPY_USABLE:
+        try:
+            return _run_highspy(highspy, objective, rows, time_limit, integrality, upper, cutoff)
+        except (AttributeError, TypeError):
+            # a highspy whose Python interface moved (its names are less settled than scipy's):
+            # the same HiGHS through scipy.optimize.milp from now on, never a crash
+            _HIGHSPY_USABLE.clear()
     from scipy import optimize
 
     a, lo, hi = rows.matrix()
@@ -396,6 +401,8 @@ def _run_milp(objective, rows: _Rows, time_limit: float, integrality, upper, cut
     return _run_milp(objective, rows, time_limit, integrality, upper)
 
 
+# emptied when the installed highspy's interface does not match (see _run_milp)
+_HIGHSPY_USABLE = [True]
 _HIGHS_STATUS = {"kOptimal": 0, "kTimeLimit": 1, "kIterationLimit": 1, "kSolutionLimit": 1,
                  "kInfeasible": 2, "kUnbounded": 3, "kUnboundedOrInfeasible": 3}
 
