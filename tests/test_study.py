@@ -104,7 +104,7 @@ def test_rows_equal_allocating_each_case_alone(folder):
 def test_every_demo_case_in_two_workers_equals_allocating_it_alone():
     # processes, cost tables from CSV, ISO 286 and step rounding: the mixed-integer paths
     result = study([ROOT / "cases"], workers=2)
-    assert result.status == "optimal" and len(result.files) == 4
+    assert result.status == "optimal" and len(result.files) == len(list((ROOT / "cases").glob("*.toml")))
     for row in result.rows:
         alone = allocator.allocate(allocator.load_case(row.file), row.model)
         assert (row.status, row.total_cost, row.current_cost) == (alone.status, alone.total_cost, alone.current_cost)

@@ -187,7 +187,7 @@ def _check_against_enumeration(case, model):
         return result, ok
     assert result.status == "optimal", result.message
     assert result.total_cost == pytest.approx(expected, rel=1e-9)
-    assert result.gap == 0.0
+    assert result.gap <= 1e-12  # a proven optimum: HiGHS's own gap is round-off at most
     # the returned tolerances meet every requirement in the independent check too
     t = result.allocated_array()
     for req in case.requirements:
