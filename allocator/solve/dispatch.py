@@ -77,6 +77,7 @@ def continuous_solver(problem: AllocationProblem):
     """
     from .exact import ExactAllocation, MeanShiftExact, applicable, applicable_mean_shift
     from .multipliers import MultiplierNewton, applicable as applicable_multipliers
+    from .shift_multipliers import ShiftMultiplierNewton, applicable as applicable_shift
 
     if applicable(problem):
         return ExactAllocation(problem)
@@ -84,6 +85,8 @@ def continuous_solver(problem: AllocationProblem):
         return MeanShiftExact(problem, fallback=_conic_factory(problem))
     if applicable_multipliers(problem):
         return MultiplierNewton(problem, fallback=_conic_factory(problem))
+    if applicable_shift(problem):
+        return ShiftMultiplierNewton(problem, fallback=_conic_factory(problem))
     return _conic_factory(problem)()
 
 
