@@ -20,14 +20,25 @@ equations per binding requirement,
 
     F_{1r} = (σ_r − g_r(δ_r)) / g_r = 0,\\qquad F_{2r} = β_r + α_r σ_r g_r'(δ_r) = 0,
 
-solved by damped Newton steps in the ``2k`` prices of the ``k`` binding requirements,
-with the exact Jacobian (implicit differentiation of the per-part stationarity: four
-``k × k`` products over the parts). Requirements the loosest tolerances meet can never
-bind (every constraint grows with every tolerance) and keep zero prices; among the others
-a requirement whose price would turn negative while it is slack leaves, and one that is
-violated joins. The answer is then re-checked in numpy and certified by the Lagrangian
-bound of the tangent relaxation (:func:`~.continuous.lagrangian_bound`); without a
-certified relative gap of at most :data:`GAP_LIMIT` the compiled conic problem answers.
+for the requirements that bind, and ``α_r = β_r = 0`` for the others. Requirements the
+loosest tolerances meet can never bind (every constraint grows with every tolerance) and
+keep zero prices. For the other ``k`` the complementarity ``α_r ≥ 0``, ``F_{1r} ≤ 0``,
+``α_r F_{1r} = 0`` is written as one equation with the Fischer-Burmeister function
+``φ(a, b) = a + b − √(a² + b²)`` (Fischer 1992), so that no active set is guessed: a
+semismooth Newton method on the ``2k`` equations in the ``2k`` prices, with the exact
+Jacobian (implicit differentiation of the per-part stationarity: four ``k × k`` sums over
+the parts that requirements share), prices projected onto ``≥ 0`` and the step halved
+until the residual norm falls. The answer is then re-checked in numpy and certified by the
+Lagrangian bound of the tangent relaxation (:func:`~.continuous.lagrangian_bound`);
+without a certified relative gap of at most :data:`GAP_LIMIT` the compiled conic problem
+answers.
+
+References
+----------
+.. [1] Fischer, A. (1992). A special Newton-type optimization method. Optimization 24(3-4),
+   269-284.
+.. [2] Greenwood, W. H. and Chase, K. W. (1987). A new tolerance analysis method for
+   designers and manufacturers. Journal of Engineering for Industry 109(2), 112-116.
 """
 
 from __future__ import annotations
@@ -36,6 +47,7 @@ import math
 
 import numpy as np
 
+from .. import stack
 from .exact import minimise_quadratic_price
 from .problem import AllocationProblem, allowance_with_curvature
 
@@ -170,14 +182,20 @@ class ShiftMultiplierNewton:
         if not candidates:
             return self.hi.copy(), mu_out
         rows = np.array(candidates)
+        self._setup(rows, limits)
         alpha = self._start(rows)
+        for _ in range(30):  # prices high enough that every mean band stays inside its limits
+            t = self._tolerances(rows, alpha, np.zeros(rows.size))
+            sig, dlt = self._state(t, rows)
+            if np.all(dlt < self._domain[0]):
+                break
+            alpha = alpha * 10.0
+        else:
+            return None
         ref = alpha.copy()
-        t = self._tolerances(rows, alpha, np.zeros(rows.size))
-        sig, dlt = self._state(t, rows)
         slopes = np.array([self._allowance(r, limits[r], d)[1] for r, d in zip(rows, dlt)])
         beta = np.maximum(-alpha * sig * slopes, 0.0)
         beta[~np.isfinite(beta)] = 0.0
-        self._setup(rows, limits)
         out = self._newton(rows, alpha, beta, ref, limits)
         if out is None:
             return None
@@ -187,12 +205,10 @@ class ShiftMultiplierNewton:
             mu_out[int(r)] = float(a_r * s_r) if a_r > 0 else 0.0
         return t, mu_out
 
-    # ------------------------------------------------------------------ one active set
+    # ------------------------------------------------------------------ the Newton system
 
     def _setup(self, rows, limits):
         """Per candidate its domain (largest δ) and, for one limit, ``z`` (else inf); the pairs."""
-        from .. import stack
-
         domain, z = np.empty(rows.size), np.full(rows.size, np.inf)
         for j, r in enumerate(rows):
             req, lim = self.problem.requirements[r], limits[r]
@@ -207,8 +223,6 @@ class ShiftMultiplierNewton:
         return allowance_with_curvature(req.nominal, float(delta), lim)
 
     def _f1(self, r, lim, sigma, delta, cache):
-        from .. import stack
-
         req = self.problem.requirements[r]
         domain = cache.get(r)
         if domain is None:
