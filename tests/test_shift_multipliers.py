@@ -190,3 +190,28 @@ def test_jacobian_sums_over_shared_parts_equal_the_dense_products():
     dense = [(w * count * s1) @ w.T, (w * count * s2) @ v.T, (v * count * s2) @ w.T, (v * count * s3) @ v.T]
     for got, want in zip(pairs.products(s1, s2, s3), dense):
         np.testing.assert_allclose(got, want, rtol=1e-12, atol=1e-12)
+
+
+def test_re_solves_with_other_limits_match_the_conic_path():
+    # one solver re-solved with other limits (as a sweep does, each solve starting from the
+    # last one's prices), in an order that jumps: every point against the conic path
+    case = shift_case(8)
+    problem = prepare(case, MODEL)
+    solver = ShiftMultiplierNewton(problem)
+    conic = CompiledAllocation.from_problem(problem)
+    ref = Reference(case, MODEL)
+    name = case.requirements[0].name
+    room = ref.room()[0]
+    req = case.requirements[0]
+    for scale in (1.0, 0.7, 1.4, 0.75, 2.5, 0.9):
+        change = {k: ref.y0[0] + sign * room * scale for k, sign, x in (("lower", -1, req.lower), ("upper", 1, req.upper))
+                  if x is not None}
+        overrides = {name: change}
+        result = solver.solve(overrides)
+        expected = conic.solve(overrides)
+        assert expected.success, expected.message
+        assert result.status == "optimal", result.message
+        assert result.gap <= 1e-9
+        assert result.total_cost == pytest.approx(expected.total_cost, rel=1e-7)
+        moved = replace(case, requirements=(replace(req, **change),) + case.requirements[1:])
+        assert Reference(moved, MODEL).feasible(result.allocated_array(), rtol=1e-6)[0]

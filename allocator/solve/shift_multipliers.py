@@ -101,6 +101,7 @@ class ShiftMultiplierNewton:
         self.delta_held = (v[:, held] * p.counts[held]) @ t_held
         self._fallback = fallback
         self._conic = None
+        self._warm = None  # (candidates, α, β, reference α) of the last settled solve
         self.steps = 0
 
     # ------------------------------------------------------------------ pieces
@@ -183,6 +184,24 @@ class ShiftMultiplierNewton:
             return self.hi.copy(), mu_out
         rows = np.array(candidates)
         self._setup(rows, limits)
+        out = None
+        if self._warm is not None and self._warm[0] == tuple(candidates):
+            # a sweep's previous point: Newton from its prices, if it settles from there
+            _, alpha, beta, ref = self._warm
+            out = self._newton(rows, alpha, beta, ref, limits)
+        if out is None:
+            out = self._cold(rows, limits)
+        if out is None:
+            return None
+        alpha, beta, ref, t = out
+        self._warm = (tuple(candidates), alpha, beta, ref)
+        sig, _ = self._state(t, rows)
+        for r, a_r, s_r in zip(rows, alpha, sig):
+            mu_out[int(r)] = float(a_r * s_r) if a_r > 0 else 0.0
+        return t, mu_out
+
+    def _cold(self, rows, limits):
+        """Newton from prices built from the cost slopes: ``(α, β, ref, t)`` or None."""
         alpha = self._start(rows)
         for _ in range(30):  # prices high enough that every mean band stays inside its limits
             t = self._tolerances(rows, alpha, np.zeros(rows.size))
@@ -196,14 +215,7 @@ class ShiftMultiplierNewton:
         slopes = np.array([self._allowance(r, limits[r], d)[1] for r, d in zip(rows, dlt)])
         beta = np.maximum(-alpha * sig * slopes, 0.0)
         beta[~np.isfinite(beta)] = 0.0
-        out = self._newton(rows, alpha, beta, ref, limits)
-        if out is None:
-            return None
-        alpha, t = out
-        sig, _ = self._state(t, rows)
-        for r, a_r, s_r in zip(rows, alpha, sig):
-            mu_out[int(r)] = float(a_r * s_r) if a_r > 0 else 0.0
-        return t, mu_out
+        return self._newton(rows, alpha, beta, ref, limits)
 
     # ------------------------------------------------------------------ the Newton system
 
@@ -305,7 +317,7 @@ class ShiftMultiplierNewton:
         return np.block([[p11, p12], [j21 / scale[:, None], j22 / scale[:, None]]])
 
     def _newton(self, rows, alpha, beta, ref, limits):
-        """Semismooth Newton on the complementarity system; ``(α, t)`` or None."""
+        """Semismooth Newton on the complementarity system; ``(α, β, ref, t)`` or None."""
         k = rows.size
         state = self._system(rows, alpha, beta, ref, limits)
         if state is None:
@@ -313,7 +325,7 @@ class ShiftMultiplierNewton:
         for _ in range(MAX_STEPS):
             res = state[1]
             if np.all(np.abs(res[:k]) <= F1_TOL) and np.all(np.abs(res[k:]) <= F2_TOL):
-                return alpha, state[0]
+                return alpha, beta, ref, state[0]
             self.steps += 1
             jac = self._jacobian(rows, alpha, ref, state)
             # equilibrate: the prices differ by many decades
@@ -339,7 +351,7 @@ class ShiftMultiplierNewton:
                 lam *= 0.5
             if moved is None:
                 if np.all(np.abs(res[:k]) <= 1e-10) and np.all(np.abs(res[k:]) <= 1e-8):
-                    return alpha, state[0]  # round-off floor: no step improves any more
+                    return alpha, beta, ref, state[0]  # round-off floor: no step improves any more
                 return None
             alpha, beta, state = moved
         return None
