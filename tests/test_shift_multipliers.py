@@ -123,9 +123,14 @@ def slsqp_cost(case, starts: int = 3, seed: int = 0):
     return best
 
 
-@pytest.mark.parametrize("seed,sides", [(3, None), (8, None), (21, None), (5, "upper"), (13, "upper")])
-def test_shift_multipliers_match_conic_and_slsqp(seed, sides):
-    case = shift_case(seed, sides=sides)
+@pytest.mark.parametrize("seed,sides,size,count", [
+    (3, None, 14, 4), (8, None, 14, 4), (21, None, 14, 4), (5, "upper", 14, 4), (13, "upper", 14, 4),
+    # one requirement binds with nearly all its parts on their tightest limits, the others
+    # end slack: Newton on every candidate at once stalls, the growing set settles
+    (16, "upper", 16, 5), (33, None, 16, 5),
+])
+def test_shift_multipliers_match_conic_and_slsqp(seed, sides, size, count):
+    case = shift_case(seed, size=size, count=count, sides=sides)
     problem = prepare(case, MODEL)
     assert applicable(problem)
     result = ShiftMultiplierNewton(problem).solve()  # no fallback: this path must certify itself

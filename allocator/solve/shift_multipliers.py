@@ -56,6 +56,7 @@ __all__ = ["applicable", "ShiftMultiplierNewton", "SOLVER_NAME", "GAP_LIMIT"]
 SOLVER_NAME = "shift-multipliers"
 GAP_LIMIT = 1e-9  # 'optimal' needs a certified relative gap at most this (else: conic)
 MAX_STEPS = 200
+COLD_STEPS = 60  # Newton on every candidate at once: beyond this the growing set takes over
 F1_TOL, F2_TOL = 1e-13, 1e-11  # the scaled residuals at which Newton has settled
 
 
@@ -192,7 +193,10 @@ class ShiftMultiplierNewton:
         if out is None:
             out = self._cold(rows, limits)
         if out is None:
+            out = self._growing(rows, limits)
+        if out is None:
             return None
+        self._setup(rows, limits)
         alpha, beta, ref, t = out
         self._warm = (tuple(candidates), alpha, beta, ref)
         sig, _ = self._state(t, rows)
@@ -200,22 +204,81 @@ class ShiftMultiplierNewton:
             mu_out[int(r)] = float(a_r * s_r) if a_r > 0 else 0.0
         return t, mu_out
 
+    def _growing(self, rows, limits):
+        """Newton on a growing set: the most violated requirement first, then every one the
+        answer still violates joins (its start price from the cost slopes); ``(α, β, ref, t)``
+        over ``rows`` or None. Used when Newton on every candidate at once does not settle
+        (prices of requirements that end slack can hold the others back)."""
+        sigma, delta = self._state(self.hi, rows)
+        excess = np.array([self._f1(r, limits[r], s_, d, {}) for r, s_, d in zip(rows, sigma, delta)])
+        inside = np.zeros(rows.size, dtype=bool)
+        inside[int(np.argmax(excess))] = True
+        start = self._start(rows)
+        alpha, beta = np.where(inside, start, 0.0), np.zeros(rows.size)
+        for _ in range(rows.size):
+            sub = rows[inside]
+            self._setup(sub, limits)
+            fitted = self._fit_domain(sub, alpha[inside], beta[inside])
+            if fitted is None:
+                return None
+            alpha[inside] = self._onto_constraints(sub, fitted, beta[inside], limits)
+            out = self._newton(sub, alpha[inside], beta[inside], start[inside], limits)
+            if out is None:
+                return None
+            alpha[inside], beta[inside], _, t = out
+            sigma, delta = self._state(t, rows)
+            joining = ~inside & np.array([self._f1(r, limits[r], s_, d, {}) > 1e-12
+                                          for r, s_, d in zip(rows, sigma, delta)])
+            if not joining.any():
+                return alpha, beta, start, t
+            inside |= joining
+            alpha = np.where(joining, start, alpha)
+        return None
+
+    def _fit_domain(self, rows, alpha, beta):
+        """``α`` raised tenfold at a time until every mean band of ``rows`` stays inside its
+        limits (``δ`` below the domain of :meth:`_setup`), or None."""
+        for _ in range(30):
+            t = self._tolerances(rows, alpha, beta)
+            if np.all(self._state(t, rows)[1] < self._domain[0]):
+                return alpha
+            alpha = alpha * 10.0
+        return None
+
+    def _onto_constraints(self, rows, alpha, beta, limits):
+        """``c α`` with the common factor ``c ≥ 1`` at which the most violated of ``rows`` just
+        meets its limit (bisection in ``log c``, to 1 %): a start near the constraints."""
+        def worst(c):
+            t = self._tolerances(rows, c * alpha, beta)
+            sigma, delta = self._state(t, rows)
+            return max(self._f1(r, limits[r], s_, d, {}) for r, s_, d in zip(rows, sigma, delta))
+
+        if worst(1.0) <= 0:
+            return alpha
+        lo, hi = 0.0, math.log(10.0)
+        for _ in range(40):
+            if worst(math.exp(hi)) <= 0:
+                break
+            lo, hi = hi, hi + math.log(10.0)
+        else:
+            return alpha
+        while hi - lo > 0.01:
+            mid = 0.5 * (lo + hi)
+            lo, hi = (mid, hi) if worst(math.exp(mid)) > 0 else (lo, mid)
+        return math.exp(hi) * alpha
+
     def _cold(self, rows, limits):
         """Newton from prices built from the cost slopes: ``(α, β, ref, t)`` or None."""
-        alpha = self._start(rows)
-        for _ in range(30):  # prices high enough that every mean band stays inside its limits
-            t = self._tolerances(rows, alpha, np.zeros(rows.size))
-            sig, dlt = self._state(t, rows)
-            if np.all(dlt < self._domain[0]):
-                break
-            alpha = alpha * 10.0
-        else:
+        alpha = self._fit_domain(rows, self._start(rows), np.zeros(rows.size))
+        if alpha is None:
             return None
         ref = alpha.copy()
+        t = self._tolerances(rows, alpha, np.zeros(rows.size))
+        sig, dlt = self._state(t, rows)
         slopes = np.array([self._allowance(r, limits[r], d)[1] for r, d in zip(rows, dlt)])
         beta = np.maximum(-alpha * sig * slopes, 0.0)
         beta[~np.isfinite(beta)] = 0.0
-        return self._newton(rows, alpha, beta, ref, limits)
+        return self._newton(rows, alpha, beta, ref, limits, COLD_STEPS)
 
     # ------------------------------------------------------------------ the Newton system
 
@@ -316,20 +379,22 @@ class ShiftMultiplierNewton:
         j22 += np.eye(rows.size)
         return np.block([[p11, p12], [j21 / scale[:, None], j22 / scale[:, None]]])
 
-    def _newton(self, rows, alpha, beta, ref, limits):
+    def _newton(self, rows, alpha, beta, ref, limits, max_steps: int = MAX_STEPS):
         """Semismooth Newton on the complementarity system; ``(α, β, ref, t)`` or None."""
         k = rows.size
         state = self._system(rows, alpha, beta, ref, limits)
         if state is None:
             return None
-        for _ in range(MAX_STEPS):
+        for _ in range(max_steps):
             res = state[1]
             if np.all(np.abs(res[:k]) <= F1_TOL) and np.all(np.abs(res[k:]) <= F2_TOL):
                 return alpha, beta, ref, state[0]
             self.steps += 1
             jac = self._jacobian(rows, alpha, ref, state)
             # equilibrate: the prices differ by many decades
-            col = np.concatenate([np.maximum(alpha, 1e-6 * ref), np.maximum(beta, 1e-6 * np.maximum(beta.max(), 1e-300))])
+            # (β's own scale is α σ |g'|, what F2 = 0 makes it)
+            natural = np.maximum(alpha, 1e-6 * ref) * state[2] * np.abs(state[4])
+            col = np.concatenate([np.maximum(alpha, 1e-6 * ref), np.maximum(beta, np.maximum(1e-6 * natural, 1e-300))])
             scaled = jac * col[None, :]
             row = 1.0 / np.maximum(np.abs(scaled).max(axis=1), 1e-300)
             try:
