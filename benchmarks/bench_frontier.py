@@ -15,8 +15,8 @@ one two-sided requirement. Printed:
              the current-design solves)                               goal <= 0.5 s
              A: no contributor has a mean shift: all three models take the exact dual, all
                 points in one call (ExactAllocation.roots)
-             B: mean shifts 0-0.3: mean shift takes the compiled conic problem (one cvxpy
-                compile, then 100 parameter re-solves with cutting planes)
+             B: mean shifts 0-0.3: mean shift takes Newton on the KKT conditions at each
+                value, each solve starting from the previous value's prices
   economics  fallout_economics(case) for rss (scan + bounded Brent + stationarity check)
 
 Times are the best of --repeat runs after one warm-up run (imports and caches are not
@@ -26,10 +26,14 @@ counted; a command-line run pays them once).
 from __future__ import annotations
 
 import argparse
+import sys
 import time
 from dataclasses import replace
+from pathlib import Path
 
 import numpy as np
+
+sys.path.insert(0, str(Path(__file__).resolve().parent.parent))  # this checkout's allocator
 
 from allocator.economics import fallout_economics
 from allocator.sweep import frontier

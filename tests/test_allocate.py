@@ -729,3 +729,30 @@ def test_requirement_leaving_exactly_the_tightest_tolerances_is_solved():
     assert result.tolerances["hub"] == pytest.approx(0.005, rel=1e-9)
     assert result.tolerances["plate"] == pytest.approx(0.01, rel=1e-9)
     assert result.total_cost == pytest.approx(1.2 + 0.02 / 0.005 + 0.8 + 0.01 / 0.01, rel=1e-9)
+
+
+def test_mean_shift_newton_re_solves_match_the_conic_path():
+    # one requirement under mean shift, one solver re-solved with other upper limits (as a
+    # frontier does, each solve starting from the last one's prices), in an order that
+    # jumps: every point against the compiled conic problem (cvxpy/Clarabel)
+    from dataclasses import replace
+
+    from allocator.solve.exact import MeanShiftExact
+    from helpers import Reference
+
+    shifted = multi_case(mean_shift=0.2, table=False)
+    case = make_case(shifted.contributors, shifted.requirements[:1], models=("mean-shift",))
+    problem = prepare(case, "mean-shift")
+    solver, conic = MeanShiftExact(problem), CompiledAllocation.from_problem(problem)
+    req = case.requirements[0]
+    ref = Reference(case, "mean-shift")
+    for scale in (1.0, 0.8, 1.3, 0.85, 2.0, 0.95):
+        upper = ref.y0[0] + (req.upper - ref.y0[0]) * scale
+        overrides = {req.name: {"upper": upper}}
+        result, expected = solver.solve(overrides), conic.solve(overrides)
+        assert expected.success, expected.message
+        assert result.status == "optimal", result.message
+        assert result.gap <= 1e-8
+        assert result.total_cost == pytest.approx(expected.total_cost, rel=1e-7)
+        moved = make_case(case.contributors, (replace(req, upper=upper),), models=("mean-shift",))
+        assert Reference(moved, "mean-shift").feasible(result.allocated_array(), rtol=1e-6)[0]

@@ -218,20 +218,24 @@ def test_model_order_on_a_case_where_it_is_provable():
         assert front.savings("rss")[i] == pytest.approx(worst - rss)
 
 
-def test_conic_mean_shift_points_equal_independent_allocations():
-    # free mean shifts: the compiled conic problem re-solved with new parameters
+@pytest.mark.parametrize("table", [False, True])
+def test_mean_shift_points_of_several_requirements_equal_independent_allocations(table):
+    # free mean shifts and two requirements: Newton on the mean-shift prices re-solved from
+    # the last point's prices (formula costs), or the compiled conic problem re-solved with
+    # new parameters (a cost table); either way every point costs what a fresh allocation does
+    cost_c = (CostCurve("table", points_tolerance=(0.005, 0.02, 0.05, 0.1), points_cost=(2.0, 1.0, 0.6, 0.5))
+              if table else CostCurve("exponential", a=0.1, b=1.0, c=40.0))
     cs = [contributor("a", nominal=30.0, tolerance=0.03, limits=(0.005, 0.1), mean_shift=0.2,
                       cost=CostCurve("reciprocal", a=1.0, b=0.02)),
           contributor("b", nominal=10.0, tolerance=0.02, limits=(0.005, 0.1), mean_shift=0.1,
                       cost=CostCurve("reciprocal-power", a=0.3, b=2e-4, k=1.5)),
           contributor("c", nominal=19.8, tolerance=0.02, limits=(0.005, 0.1), distribution="uniform",
-                      cost=CostCurve("exponential", a=0.1, b=1.0, c=40.0))]
+                      cost=cost_c)]
     req = chain_requirement("gap", {"a": 1, "b": -1, "c": -1}, lower=0.05, upper=0.35, fallout_ppm=100)
-    # a second, slack requirement: one alone is solved without the conic problem
+    # a second, slack requirement: one alone is solved by the single-requirement Newton
     slack = chain_requirement("reach", {"a": 1}, upper=40.0)
     case = make_case(cs, [req, slack], models=("mean-shift",))
-    front = frontier(case, requirement="gap", vary="upper", values=[0.25, 0.3, 0.4])
-    assert "conic" in front.solvers["mean-shift"]
+    front = frontier(case, requirement="gap", vary="upper", values=[0.25, 0.3, 0.4, 0.28])
     for value, cost in zip(front.values, front.costs["mean-shift"]):
         single = allocate(_with_limit(case, "gap", "upper", value), "mean-shift")
         assert single.success and _close(cost, single.total_cost), (value, cost, single.total_cost)

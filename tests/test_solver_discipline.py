@@ -11,8 +11,9 @@ one-line reason), never an unverified 'optimal'.
 
 The invented case has two requirements sharing contributors. Worst case and rss of such
 a case are first offered to Newton on the Lagrange multipliers
-(allocator/solve/multipliers.py, tested in test_multipliers.py); here that path is
-switched off, so every model goes through the conic solver (allocator/solve/continuous.py).
+(allocator/solve/multipliers.py, tested in test_multipliers.py), mean shift to Newton on
+the mean-shift prices (allocator/solve/shift_multipliers.py, tested in
+test_shift_multipliers.py); here those paths are switched off, so every model goes through the conic solver (allocator/solve/continuous.py).
 """
 
 from __future__ import annotations
@@ -27,7 +28,7 @@ from click.testing import CliRunner
 from allocator.cli.main import cli
 from allocator.model import AllocationSettings, Case, Contributor, CostCurve, Requirement
 from allocator.solve import allocate
-from allocator.solve import continuous, multipliers
+from allocator.solve import continuous, multipliers, shift_multipliers
 
 from helpers import Reference, case_text, rtol_for
 
@@ -71,12 +72,14 @@ def _conic_only(problem) -> bool:
 
 with pytest.MonkeyPatch.context() as patch:
     patch.setattr(multipliers, "applicable", _conic_only)
+    patch.setattr(shift_multipliers, "applicable", _conic_only)
     HONEST = {model: allocate(CASE, model) for model in MODELS}
 
 
 @pytest.fixture(autouse=True)
 def conic_path(monkeypatch):
     monkeypatch.setattr(multipliers, "applicable", _conic_only)
+    monkeypatch.setattr(shift_multipliers, "applicable", _conic_only)
 
 
 def test_the_unspoilt_solves_are_verified_optima():

@@ -17,6 +17,9 @@ one requirement, mean shift                               ``lagrange-newton``: N
                                                           KKT conditions, conic fallback
 several requirements, worst case or rss (or mean shift      ``lagrange-multipliers``: Newton on
 with no free mean shift), formula costs                   the multipliers, conic fallback
+several requirements, mean shift with a free mean shift,  ``shift-multipliers``: semismooth
+formula costs                                             Newton on two prices per requirement,
+                                                          conic fallback
 several requirements otherwise                            compiled conic problem
 model ``convolution`` (linear chains, continuous)         ``convolution-sca``: convex steps
                                                           on the exact fallout
@@ -71,12 +74,15 @@ def continuous_solver(problem: AllocationProblem):
     :class:`~allocator.solve.exact.MeanShiftExact` (with the compiled conic problem as its
     fallback) for one requirement under mean shift,
     :class:`~allocator.solve.multipliers.MultiplierNewton` (the same fallback) for several
-    separable requirements with formula costs, else
+    separable requirements with formula costs,
+    :class:`~allocator.solve.shift_multipliers.ShiftMultiplierNewton` (the same fallback) for
+    several mean-shift requirements with formula costs, else
     :class:`~allocator.solve.continuous.CompiledAllocation`. cvxpy is imported only when
     the conic problem is built.
     """
     from .exact import ExactAllocation, MeanShiftExact, applicable, applicable_mean_shift
     from .multipliers import MultiplierNewton, applicable as applicable_multipliers
+    from .shift_multipliers import ShiftMultiplierNewton, applicable as applicable_shift
 
     if applicable(problem):
         return ExactAllocation(problem)
@@ -84,6 +90,8 @@ def continuous_solver(problem: AllocationProblem):
         return MeanShiftExact(problem, fallback=_conic_factory(problem))
     if applicable_multipliers(problem):
         return MultiplierNewton(problem, fallback=_conic_factory(problem))
+    if applicable_shift(problem):
+        return ShiftMultiplierNewton(problem, fallback=_conic_factory(problem))
     return _conic_factory(problem)()
 
 

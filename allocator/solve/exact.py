@@ -506,6 +506,7 @@ class MeanShiftExact:
         self.evaluations = 0
         self._fallback = fallback
         self._conic = None
+        self._warm = None  # (α, β) of the last settled solve: the next one (a sweep) starts there
 
     def tolerances(self, alpha: float, beta: float) -> np.ndarray:
         self.evaluations += 1
@@ -555,15 +556,19 @@ class MeanShiftExact:
         constraint = _ShiftConstraint(req.nominal, lim)
         if self._residual(self.hi, constraint, curvature=False)[0] <= 0:
             return self._loosest()
-        # 1. β = 0: a point on the constraint (F1 decreases as α grows)
-        alpha = self._start(constraint)
-        if alpha is None:
-            return None
-        # 2. Newton on (F1, F2)
-        settled = self._newton(alpha, constraint)
-        if settled is None:
-            return None
+        # 0. from the last solve's prices (a sweep's previous point), when Newton settles there
+        settled = self._newton(self._warm[0], constraint, self._warm[1]) if self._warm is not None else None
+        if settled is None or settled[2][1][0] > 1e-9:
+            # 1. β = 0: a point on the constraint (F1 decreases as α grows)
+            alpha = self._start(constraint)
+            if alpha is None:
+                return None
+            # 2. Newton on (F1, F2)
+            settled = self._newton(alpha, constraint)
+            if settled is None:
+                return None
         alpha, beta, state = settled
+        self._warm = (alpha, beta)
         t, res, sigma, delta, g, g1, g2, scale = state
         if res[0] > 1e-9:
             return None
@@ -615,9 +620,8 @@ class MeanShiftExact:
         f2 = (beta + alpha * sigma * g1) / scale if scale > 0 else 0.0
         return t, np.array([f1, f2]), sigma, delta, g, g1, g2, scale
 
-    def _newton(self, alpha: float, constraint: _ShiftConstraint):
-        """Damped Newton on ``(F1, F2)`` from ``(α, 0)``: ``(α, β, state)`` settled, or None."""
-        beta = 0.0
+    def _newton(self, alpha: float, constraint: _ShiftConstraint, beta: float = 0.0):
+        """Damped Newton on ``(F1, F2)`` from ``(α, β)``: ``(α, β, state)`` settled, or None."""
         state = self._system(alpha, beta, constraint)
         if state is None:
             return None
