@@ -166,7 +166,6 @@ class ShiftMultiplierNewton:
 
     def _solve(self, limits):
         """``(free tolerances, μ per requirement)`` or None."""
-        p = self.problem
         m = len(limits)
         mu_out = [0.0] * m
         self.steps = 0
