@@ -34,14 +34,44 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
-from typing import TYPE_CHECKING, Mapping, NamedTuple
+from typing import Mapping, NamedTuple, Protocol
 
 import numpy as np
 
 from .chain import CompiledExpression, compile_expression
 
-if TYPE_CHECKING:  # allocator.model imports this module (lazily, for Case.loop)
-    from .model import Case, Requirement
+
+
+class CaseLike(Protocol):
+    """What this module reads of an :class:`allocator.model.Case`.
+
+    Typed by its shape rather than imported: allocator.model imports this module (for
+    ``Case.loop``), and the package keeps its import graph free of cycles.
+    """
+
+    unknowns: tuple
+    closures: tuple
+    contributors: tuple
+    requirements: tuple
+
+    @property
+    def names(self) -> tuple[str, ...]: ...
+
+    @property
+    def unknown_names(self) -> tuple[str, ...]: ...
+
+    @property
+    def loop(self) -> LoopSolution | None: ...
+
+    def index(self, name: str) -> int: ...
+
+
+class RequirementLike(Protocol):
+    """What this module reads of an :class:`allocator.model.Requirement`."""
+
+    name: str
+    chain: Mapping[str, float] | None
+    expression: str | None
 
 __all__ = [
     "ClosureError",
@@ -105,7 +135,7 @@ class CompiledLoop:
     used: tuple[str, ...]
 
 
-def compile_loop(case: Case) -> CompiledLoop:
+def compile_loop(case: CaseLike) -> CompiledLoop:
     """Compile the closure equations of ``case`` (names: contributors and unknowns).
 
     Raises
@@ -267,7 +297,7 @@ class LoopSolution:
         return {n: float(v) for n, v in zip(self.unknowns, self.values)}
 
 
-def solve_loop(case: Case) -> LoopSolution:
+def solve_loop(case: CaseLike) -> LoopSolution:
     """Solve the closure equations of ``case`` at the nominals; ``du/dx`` there.
 
     Parameters
@@ -605,7 +635,7 @@ class ResponseEvaluator:
     (True, True)
     """
 
-    def __init__(self, case: Case):
+    def __init__(self, case: CaseLike):
         self.case = case
         self.names = case.names
         unknown_set = set(case.unknown_names)
@@ -623,14 +653,14 @@ class ResponseEvaluator:
         self._loop = compile_loop(case) if any(self._through_loop) else None
         self._position = {r.name: j for j, r in enumerate(case.requirements)}
 
-    def index(self, requirement: int | str | Requirement) -> int:
+    def index(self, requirement: int | str | RequirementLike) -> int:
         """Position of a requirement given by position, name or object."""
         if isinstance(requirement, (int, np.integer)):
             return int(requirement)
         name = requirement if isinstance(requirement, str) else requirement.name
         return self._position[name]
 
-    def through_loop(self, requirement: int | str | Requirement) -> bool:
+    def through_loop(self, requirement: int | str | RequirementLike) -> bool:
         """True when the requirement's response names an unknown (needs the closure solved)."""
         return self._through_loop[self.index(requirement)]
 
@@ -644,7 +674,7 @@ class ResponseEvaluator:
 
     def __call__(
         self,
-        requirement: int | str | Requirement,
+        requirement: int | str | RequirementLike,
         values: np.ndarray,
         *,
         unknowns: tuple[np.ndarray, np.ndarray] | None = None,
@@ -678,7 +708,8 @@ class ResponseEvaluator:
                 total = total + float(coeff) * values[:, self.case.index(name)]
             return ClosedResponse(total, np.ones(rows, dtype=bool))
         expr = self._compiled[j]
-        env = {name: values[:, self.case.index(name)] for name in expr.names if name in self.case._positions}
+        contributors = set(self.case.names)
+        env = {name: values[:, self.case.index(name)] for name in expr.names if name in contributors}
         closed = np.ones(rows, dtype=bool)
         if self._through_loop[j]:
             u, closed = self.solve(values) if unknowns is None else unknowns
@@ -699,7 +730,7 @@ class LoopSensitivities(NamedTuple):
     through_loop: np.ndarray  # ∂f/∂u · du/dx per contributor [response / length]
 
 
-def loop_sensitivities(case: Case, requirement: Requirement) -> LoopSensitivities:
+def loop_sensitivities(case: CaseLike, requirement: RequirementLike) -> LoopSensitivities:
     """Split ``dy/dx`` of ``requirement`` into ``∂f/∂x`` and ``∂f/∂u · du/dx`` at the nominals.
 
     Their sum is :attr:`allocator.chain.Linearisation.sensitivity`. A chain, or an

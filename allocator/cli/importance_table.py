@@ -6,7 +6,7 @@ import click
 
 from ..ppm import format_ppm
 from .common import fmt, text_table, units_title
-from .verify import finish_notes, limits_cell, simulated_as
+from .verify_text import finish_notes, limits_cell, simulated_as
 
 
 def _ppm(value) -> str:
