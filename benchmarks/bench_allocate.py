@@ -91,7 +91,7 @@ def single_requirement(sizes, repeat):
             problem = prepare(case, model)
             exact = ExactAllocation(problem)
             rhs = float(exact.dual.rhs(problem.limits())[0][0])
-            dual = best_time(lambda: exact._root(rhs), repeat)
+            dual = best_time(lambda: exact.roots([rhs]), repeat)
             full = best_time(lambda: allocate(case, model), repeat)
             start = time.perf_counter()
             compiled = CompiledAllocation.from_problem(problem)
