@@ -30,7 +30,7 @@ SUMMARIES = {
     "analyze": "Analyse the stack at the current tolerances.",
     "allocate": "Find the least-cost tolerances.",
     "frontier": "Least cost against a limit or fallout target.",
-    "verify": "Check tolerances by Monte Carlo simulation.",
+    "verify": "Check tolerances by simulation (Monte Carlo or importance sampling).",
     "report": "Write an HTML report for a design review.",
     "offer": "Evaluate supplier offers: saving, break-even price.",
     "study": "Allocate many cases at once: savings per case and in total.",
