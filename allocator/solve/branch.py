@@ -60,6 +60,8 @@ TANGENT_MAX_FALLOUT = 0.49  # as in .discrete: g is concave for targets up to he
 CHECK_RTOL = 1e-9  # as in .discrete: a choice meets the requirement within this
 WALK_STEPS, WALK_FACTOR = 40, 1.25  # listed values: multipliers tried for a first incumbent
 CACHED_MULTIPLIERS = 2048  # per relaxation: each entry's minimiser at these λ is kept
+ENOUGH_RTOL = 1e-10  # a warm-started bound stops this close (relative) below the incumbent's cost
+WARM_STEP = 0.05  # first step in log λ when a bracket is grown around a neighbouring bound's λ
 KELLEY_ROUNDS = 6  # mean shift: tangents tried at the root before the search (2 in a sweep,
 # which starts from the last point's choice)
 
@@ -271,37 +273,125 @@ class OptionSearch:
         return total, pick, use, t, cost
 
     def _bound(self, rel: _Relaxation, mask) -> _Bound:
-        """The Lagrangian bound of the node ``mask`` under ``rel`` (maximised over λ)."""
+        """The Lagrangian bound of the node ``mask`` under ``rel`` (maximised over λ).
+
+        Any λ gives a valid bound. The maximiser is where the slope ``Σ W t^m − S``
+        changes sign: by bisection in log λ over a wide bracket, or, where an earlier
+        bound of a sweep left its λ (at the previous point, or the previous node), by a bracket grown outward from that λ and closed by regula falsi on the
+        log of the spread (the Illinois variant, with a bisection step whenever the
+        bracket does not halve), stopping at the same width in log λ.
+        """
         rhs = rel.rhs
         total, pick, use, t, cost = self._totals(0.0, rel, mask)
         best = (float(np.sum(total[pick])), 0.0, total, pick, t, cost, use)
         feasible = pick if float(np.sum(use[pick])) <= rhs else None
         if feasible is None:
-            scale = float(np.sum(self.entries.n)) / rhs
-            lo, hi = math.log(scale) - 40.0, math.log(scale) + 40.0
-            for _ in range(BISECTION_STEPS):
-                mid = 0.5 * (lo + hi)
-                lam = math.exp(mid)
-                total, pick, use, t, cost = self._totals(lam, rel, mask)
-                spread = float(np.sum(use[pick]))
-                value = float(np.sum(total[pick])) - lam * rhs
-                if value > best[0]:
-                    best = (value, lam, total, pick, t, cost, use)
-                if spread > rhs:
-                    lo = mid
-                else:
-                    hi = mid
-                    feasible = pick
-                if hi - lo < self.log_tol:
-                    break
-            if feasible is None:
-                feasible = best[3]
+            # a sweep (the solver has a plan of points): start from the last bound's λ
+            hint = getattr(self.solver, "_lambda_hint", None) if getattr(self.solver, "_plan", ()) else None
+            if hint is not None and hint > 0 and math.isfinite(hint):
+                best, feasible = self._warm_bisection(rel, mask, rhs, best, math.log(hint))
+            else:
+                best, feasible = self._bisection(rel, mask, rhs, best)
+            if best[1] > 0:
+                self.solver._lambda_hint = best[1]
         value, lam, total, pick, t, cost, use = best
         if not math.isfinite(value):
             return _Bound(math.inf, lam, total, pick, feasible, t)
         # a margin for the rounding of the sums (the bound must never exceed the optimum)
         margin = 1e-12 * float(np.sum(np.abs(cost[pick]) + lam * use[pick]) + lam * rhs)
         return _Bound(value - margin, lam, total, pick, feasible, t)
+
+    def _at(self, x, rel, mask, rhs, best):
+        """Evaluate the dual at log λ = x: (spread, pick, best so far)."""
+        lam = math.exp(x)
+        total, pick, use, t, cost = self._totals(lam, rel, mask)
+        spread = float(np.sum(use[pick]))
+        value = float(np.sum(total[pick])) - lam * rhs
+        if value > best[0]:
+            best = (value, lam, total, pick, t, cost, use)
+        return spread, pick, best
+
+    def _bisection(self, rel, mask, rhs, best):
+        feasible = None
+        scale = float(np.sum(self.entries.n)) / rhs
+        lo, hi = math.log(scale) - 40.0, math.log(scale) + 40.0
+        for _ in range(BISECTION_STEPS):
+            mid = 0.5 * (lo + hi)
+            spread, pick, best = self._at(mid, rel, mask, rhs, best)
+            if spread > rhs:
+                lo = mid
+            else:
+                hi = mid
+                feasible = pick
+            if hi - lo < self.log_tol:
+                break
+        return best, (feasible if feasible is not None else best[3])
+
+    def _warm_bisection(self, rel, mask, rhs, best, x0):
+        """As :meth:`_bisection`, from a bracket grown around ``x0`` = log λ of a
+        neighbouring bound and closed by safeguarded regula falsi."""
+        scale = float(np.sum(self.entries.n)) / rhs
+        floor, ceiling = math.log(scale) - 40.0, math.log(scale) + 40.0
+        x0 = min(max(x0, floor), ceiling)
+        spread, pick, best = self._at(x0, rel, mask, rhs, best)
+        feasible = None
+        # the bound cannot usefully pass the incumbent's cost: stop once it is that close
+        enough = math.inf if self.best is None else self.best[0] - ENOUGH_RTOL * abs(self.best[0])
+        # f = log(spread / S): positive below the maximiser, not positive above it
+        f = lambda s: math.log(s / rhs) if s > 0 else -math.inf  # noqa: E731
+        if spread > rhs:
+            lo, f_lo, hi, f_hi = x0, f(spread), None, None
+            step = WARM_STEP
+            while hi is None:
+                if best[0] >= enough:
+                    return best, best[3]
+                x = min(lo + step, ceiling)
+                spread, pick, best = self._at(x, rel, mask, rhs, best)
+                if spread <= rhs:
+                    hi, f_hi, feasible = x, f(spread), pick
+                elif x >= ceiling:
+                    return best, best[3]  # not even the largest λ meets it: as bisection would
+                else:
+                    lo, f_lo, step = x, f(spread), 4.0 * step
+        else:
+            hi, f_hi, lo, f_lo, feasible = x0, f(spread), None, None, pick
+            step = WARM_STEP
+            while lo is None:
+                if best[0] >= enough:
+                    return best, feasible
+                x = max(hi - step, floor)
+                spread, pick, best = self._at(x, rel, mask, rhs, best)
+                if spread > rhs:
+                    lo, f_lo = x, f(spread)
+                elif x <= floor:
+                    return best, feasible
+                else:
+                    hi, f_hi, feasible, step = x, f(spread), pick, 4.0 * step
+        side, width = 0, hi - lo
+        for k in range(BISECTION_STEPS):
+            if hi - lo < self.log_tol or best[0] >= enough:
+                break
+            if k % 3 == 2 and hi - lo > 0.5 * width:
+                x = 0.5 * (lo + hi)  # the bracket did not halve in three steps: bisect
+            elif math.isfinite(f_hi) and f_lo > f_hi:
+                x = hi - f_hi * (hi - lo) / (f_hi - f_lo)
+                x = min(max(x, lo + 0.01 * (hi - lo)), hi - 0.01 * (hi - lo))
+            else:
+                x = 0.5 * (lo + hi)
+            if k % 3 == 2:
+                width = hi - lo
+            spread, pick, best = self._at(x, rel, mask, rhs, best)
+            if spread > rhs:
+                lo, f_lo = x, f(spread)
+                if side == -1:
+                    f_hi *= 0.5  # Illinois: the end kept twice counts half
+                side = -1
+            else:
+                hi, f_hi, feasible = x, f(spread), pick
+                if side == 1:
+                    f_lo *= 0.5
+                side = 1
+        return best, feasible
 
     def _node_bound(self, mask) -> _Bound:
         out = None

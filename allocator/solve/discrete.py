@@ -640,6 +640,10 @@ class DiscreteAllocation:
         self._last_pick = None  # the branch and bound's last choice (entry per contributor)
         self._entries = None  # the branch and bound's entries (built by its first search)
         self._solve_unrounded = None  # this solve's unrounded optimum (with rounding)
+        self._plan = ()  # the limit overrides of a sweep's points still to come (see plan())
+        self._primed = set()  # polisher keys whose roots were solved for the plan
+        self._overrides = None  # this solve's overrides
+        self._lambda_hint = None  # the branch and bound's last multiplier (its next bisection starts there)
 
     # ------------------------------------------------------------------ options
 
@@ -1194,6 +1198,17 @@ class DiscreteAllocation:
                 )
         return fields
 
+    def plan(self, overrides_seq) -> None:
+        """Announce the limits of a sweep's next solves (a :class:`~allocator.sweep.LimitSweep`).
+
+        A polisher built for a process choice then solves its 1-D dual for all of them
+        in one batched call (:meth:`~allocator.solve.exact.ExactAllocation.prime`) when
+        it is used at a second point; each point still polishes, re-checks and certifies its own
+        answer. An empty sequence forgets the plan.
+        """
+        self._plan = tuple(overrides_seq)
+        self._primed = set()
+
     # ------------------------------------------------------------------ solve
 
     def solve(self, overrides=None):
@@ -1212,6 +1227,7 @@ class DiscreteAllocation:
             ``rounding_cost`` [currency].
         """
         limits = self.reference.limits(overrides)
+        self._overrides = overrides
         for opts in self.options:  # refinement is per solve: start from the plain grid
             for o in opts:
                 if o.kind == "continuous":
@@ -1454,8 +1470,13 @@ class DiscreteAllocation:
         choice has no convex form (e.g. a table that is not convex).
         """
         if key in self._polishers:
-            self._polishers[key] = self._polishers.pop(key)  # most recently used last
-            return self._polishers[key]
+            solver = self._polishers[key] = self._polishers.pop(key)  # most recently used last
+            if key not in self._primed and self._plan and hasattr(solver, "prime"):
+                # a choice met again in a sweep: its root for every point to come at once
+                self._primed.add(key)
+                solver.prime(self._plan[self._plan.index(self._overrides):]
+                             if self._overrides in self._plan else self._plan)
+            return solver
         try:
             # the path allocate() takes for the same case with these processes held
             solver = continuous_solver(prepare(self._resolved_case(chosen), self.model, held))
