@@ -302,14 +302,14 @@ class OptionSearch:
         return _Bound(value - margin, lam, total, pick, feasible, t)
 
     def _at(self, x, rel, mask, rhs, best):
-        """Evaluate the dual at log λ = x: (spread, pick, best so far)."""
+        """Evaluate the dual at log λ = x: (slope Σ W t^m − S, value L, pick, best so far)."""
         lam = math.exp(x)
         total, pick, use, t, cost = self._totals(lam, rel, mask)
         spread = float(np.sum(use[pick]))
         value = float(np.sum(total[pick])) - lam * rhs
         if value > best[0]:
             best = (value, lam, total, pick, t, cost, use)
-        return spread, pick, best
+        return spread - rhs, value, pick, best
 
     def _bisection(self, rel, mask, rhs, best):
         feasible = None
@@ -317,8 +317,8 @@ class OptionSearch:
         lo, hi = math.log(scale) - 40.0, math.log(scale) + 40.0
         for _ in range(BISECTION_STEPS):
             mid = 0.5 * (lo + hi)
-            spread, pick, best = self._at(mid, rel, mask, rhs, best)
-            if spread > rhs:
+            slope, _, pick, best = self._at(mid, rel, mask, rhs, best)
+            if slope > 0:
                 lo = mid
             else:
                 hi = mid
@@ -329,68 +329,76 @@ class OptionSearch:
 
     def _warm_bisection(self, rel, mask, rhs, best, x0):
         """As :meth:`_bisection`, from a bracket grown around ``x0`` = log λ of a
-        neighbouring bound and closed by safeguarded regula falsi."""
+        neighbouring bound.
+
+        The bracket ``[λ_lo, λ_hi]`` (slope positive at ``λ_lo``, not positive at
+        ``λ_hi``) is closed at the crossing of the two ends' supporting lines
+        ``L(λ_e) + g_e (λ − λ_e)`` (``g`` the slope), with a bisection step whenever it
+        does not halve in three steps. ``L`` is concave, so the lines' crossing value is
+        at least ``max L``: the search stops once that is within :data:`ENOUGH_RTOL` of
+        the best value met (or the bracket is as narrow as the bisection's, or the bound
+        is that close below the incumbent's cost).
+        """
         scale = float(np.sum(self.entries.n)) / rhs
         floor, ceiling = math.log(scale) - 40.0, math.log(scale) + 40.0
         x0 = min(max(x0, floor), ceiling)
-        spread, pick, best = self._at(x0, rel, mask, rhs, best)
+        g, v, pick, best = self._at(x0, rel, mask, rhs, best)
         feasible = None
         # the bound cannot usefully pass the incumbent's cost: stop once it is that close
         enough = math.inf if self.best is None else self.best[0] - ENOUGH_RTOL * abs(self.best[0])
-        # f = log(spread / S): positive below the maximiser, not positive above it
-        f = lambda s: math.log(s / rhs) if s > 0 else -math.inf  # noqa: E731
-        if spread > rhs:
-            lo, f_lo, hi, f_hi = x0, f(spread), None, None
+        if g > 0:
+            lo, hi = (x0, v, g), None
             step = WARM_STEP
             while hi is None:
                 if best[0] >= enough:
                     return best, best[3]
-                x = min(lo + step, ceiling)
-                spread, pick, best = self._at(x, rel, mask, rhs, best)
-                if spread <= rhs:
-                    hi, f_hi, feasible = x, f(spread), pick
+                x = min(lo[0] + step, ceiling)
+                g, v, pick, best = self._at(x, rel, mask, rhs, best)
+                if g <= 0:
+                    hi, feasible = (x, v, g), pick
                 elif x >= ceiling:
                     return best, best[3]  # not even the largest λ meets it: as bisection would
                 else:
-                    lo, f_lo, step = x, f(spread), 4.0 * step
+                    lo, step = (x, v, g), 4.0 * step
         else:
-            hi, f_hi, lo, f_lo, feasible = x0, f(spread), None, None, pick
+            hi, lo, feasible = (x0, v, g), None, pick
             step = WARM_STEP
             while lo is None:
                 if best[0] >= enough:
                     return best, feasible
-                x = max(hi - step, floor)
-                spread, pick, best = self._at(x, rel, mask, rhs, best)
-                if spread > rhs:
-                    lo, f_lo = x, f(spread)
+                x = max(hi[0] - step, floor)
+                g, v, pick, best = self._at(x, rel, mask, rhs, best)
+                if g > 0:
+                    lo = (x, v, g)
                 elif x <= floor:
                     return best, feasible
                 else:
-                    hi, f_hi, feasible, step = x, f(spread), pick, 4.0 * step
-        side, width = 0, hi - lo
+                    hi, feasible, step = (x, v, g), pick, 4.0 * step
+        width = hi[0] - lo[0]
         for k in range(BISECTION_STEPS):
-            if hi - lo < self.log_tol or best[0] >= enough:
+            x_lo, v_lo, g_lo = lo
+            x_hi, v_hi, g_hi = hi
+            if x_hi - x_lo < self.log_tol or best[0] >= enough:
                 break
-            if k % 3 == 2 and hi - lo > 0.5 * width:
-                x = 0.5 * (lo + hi)  # the bracket did not halve in three steps: bisect
-            elif math.isfinite(f_hi) and f_lo > f_hi:
-                x = hi - f_hi * (hi - lo) / (f_hi - f_lo)
-                x = min(max(x, lo + 0.01 * (hi - lo)), hi - 0.01 * (hi - lo))
+            l_lo, l_hi = math.exp(x_lo), math.exp(x_hi)
+            cross = (v_hi - v_lo + g_lo * l_lo - g_hi * l_hi) / (g_lo - g_hi)
+            upper = v_lo + g_lo * (cross - l_lo)
+            if not (math.isfinite(upper) and math.isfinite(best[0])):
+                x = 0.5 * (x_lo + x_hi)
+            elif upper - best[0] <= ENOUGH_RTOL * abs(best[0]):
+                break  # no λ in the bracket gives a bound more than that above the best
+            elif k % 3 == 2 and x_hi - x_lo > 0.5 * width:
+                x = 0.5 * (x_lo + x_hi)  # the bracket did not halve in three steps: bisect
             else:
-                x = 0.5 * (lo + hi)
+                x = math.log(cross) if cross > 0 else x_lo
+                x = min(max(x, x_lo + 0.01 * (x_hi - x_lo)), x_hi - 0.01 * (x_hi - x_lo))
             if k % 3 == 2:
-                width = hi - lo
-            spread, pick, best = self._at(x, rel, mask, rhs, best)
-            if spread > rhs:
-                lo, f_lo = x, f(spread)
-                if side == -1:
-                    f_hi *= 0.5  # Illinois: the end kept twice counts half
-                side = -1
+                width = x_hi - x_lo
+            g, v, pick, best = self._at(x, rel, mask, rhs, best)
+            if g > 0:
+                lo = (x, v, g)
             else:
-                hi, f_hi, feasible = x, f(spread), pick
-                if side == 1:
-                    f_lo *= 0.5
-                side = 1
+                hi, feasible = (x, v, g), pick
         return best, feasible
 
     def _node_bound(self, mask) -> _Bound:
