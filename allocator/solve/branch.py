@@ -374,8 +374,9 @@ class OptionSearch:
                     return best, feasible
                 else:
                     hi, feasible, step = (x, v, g), pick, 4.0 * step
-        width = hi[0] - lo[0]
-        for k in range(BISECTION_STEPS):
+        last = [lo, hi]  # the two latest evaluations, for the secant step
+        stalls = 0
+        for _ in range(BISECTION_STEPS):
             x_lo, v_lo, g_lo = lo
             x_hi, v_hi, g_hi = hi
             if x_hi - x_lo < self.log_tol or best[0] >= enough:
@@ -383,18 +384,19 @@ class OptionSearch:
             l_lo, l_hi = math.exp(x_lo), math.exp(x_hi)
             cross = (v_hi - v_lo + g_lo * l_lo - g_hi * l_hi) / (g_lo - g_hi)
             upper = v_lo + g_lo * (cross - l_lo)
-            if not (math.isfinite(upper) and math.isfinite(best[0])):
-                x = 0.5 * (x_lo + x_hi)
-            elif upper - best[0] <= ENOUGH_RTOL * abs(best[0]):
+            if math.isfinite(upper) and math.isfinite(best[0]) and upper - best[0] <= ENOUGH_RTOL * abs(best[0]):
                 break  # no λ in the bracket gives a bound more than that above the best
-            elif k % 3 == 2 and x_hi - x_lo > 0.5 * width:
-                x = 0.5 * (x_lo + x_hi)  # the bracket did not halve in three steps: bisect
-            else:
-                x = math.log(cross) if cross > 0 else x_lo
-                x = min(max(x, x_lo + 0.01 * (x_hi - x_lo)), x_hi - 0.01 * (x_hi - x_lo))
-            if k % 3 == 2:
-                width = x_hi - x_lo
+            (x1, _, g1), (x2, _, g2) = last
+            x = x2 - g2 * (x2 - x1) / (g2 - g1) if g2 != g1 else math.nan  # secant on the slope
+            inner = 0.01 * (x_hi - x_lo)
+            if stalls >= 2 or not (x_lo + inner <= x <= x_hi - inner):
+                x = math.log(cross) if cross > 0 and stalls < 2 else 0.5 * (x_lo + x_hi)
+                x = min(max(x, x_lo + inner), x_hi - inner)
+                stalls = 0 if stalls >= 2 else stalls
             g, v, pick, best = self._at(x, rel, mask, rhs, best)
+            # a step that does not halve the slope counts as a stall (two: bisect)
+            stalls = stalls + 1 if abs(g) > 0.5 * min(abs(g1), abs(g2)) else 0
+            last = [last[1], (x, v, g)]
             if g > 0:
                 lo = (x, v, g)
             else:

@@ -114,6 +114,7 @@ OBJECTIVE_SCALE = 1e3  # HiGHS's absolute tolerances are tuned for objectives of
 CARRIED_CUTS = 24  # mean-shift tangent cuts a solve hands to the next (per requirement)
 SWEEP_STRIDE = 6  # with a previous optimum, keep every 6th point of the plain grid ...
 SWEEP_SPAN = 1.25  # ... and the plain grid within this factor of the last tolerance
+PRIMED_POINTS = 8  # a sweep: a process choice met again has its roots solved for this many points
 KEPT_POLISHERS = 64  # conic solvers kept per process choice for the polish
 CUTOFF_SLACK = 1e-6  # a pruning cutoff sits this far (relative) above the known cost
 # HiGHS options used with a cutoff (emptied, and no cutoff given, if the installed HiGHS
@@ -641,7 +642,7 @@ class DiscreteAllocation:
         self._entries = None  # the branch and bound's entries (built by its first search)
         self._solve_unrounded = None  # this solve's unrounded optimum (with rounding)
         self._plan = ()  # the limit overrides of a sweep's points still to come (see plan())
-        self._primed = set()  # polisher keys whose roots were solved for the plan
+        self._primed = {}  # polisher key -> plan position up to which its roots are solved
         self._overrides = None  # this solve's overrides
         self._lambda_hint = None  # the branch and bound's last multiplier (its next bisection starts there)
 
@@ -1203,11 +1204,11 @@ class DiscreteAllocation:
 
         A polisher built for a process choice then solves its 1-D dual for all of them
         in one batched call (:meth:`~allocator.solve.exact.ExactAllocation.prime`) when
-        it is used at a second point; each point still polishes, re-checks and certifies its own
+        it is used at a second point (the next :data:`PRIMED_POINTS` points); each point still polishes, re-checks and certifies its own
         answer. An empty sequence forgets the plan.
         """
         self._plan = tuple(overrides_seq)
-        self._primed = set()
+        self._primed = {}
 
     # ------------------------------------------------------------------ solve
 
@@ -1471,11 +1472,11 @@ class DiscreteAllocation:
         """
         if key in self._polishers:
             solver = self._polishers[key] = self._polishers.pop(key)  # most recently used last
-            if key not in self._primed and self._plan and hasattr(solver, "prime"):
-                # a choice met again in a sweep: its root for every point to come at once
-                self._primed.add(key)
-                solver.prime(self._plan[self._plan.index(self._overrides):]
-                             if self._overrides in self._plan else self._plan)
+            here = self._plan.index(self._overrides) if self._overrides in self._plan else None
+            if here is not None and here >= self._primed.get(key, 0) and hasattr(solver, "prime"):
+                # a choice met again in a sweep: its roots for the next points in one call
+                self._primed[key] = here + PRIMED_POINTS
+                solver.prime(self._plan[here:here + PRIMED_POINTS])
             return solver
         try:
             # the path allocate() takes for the same case with these processes held
