@@ -474,8 +474,9 @@ class OptionSearch:
         root = np.ones(e.size, dtype=bool)
         if self.model != "mean-shift":
             self.relaxations = [self._plain()]
-        if start is not None:
-            self._offer(start)
+        # a sweep's last choice, met at these limits: its tangent is the root's relaxation
+        # (the node's own Kelley steps follow), no rounds of tangents first
+        started = start is not None and self._offer(start)
         if self.model == "mean-shift":
             # tangents at the tightest choice, then at each relaxation's own choice
             # (Kelley's cutting planes, one multiplier each); the best are kept
@@ -485,7 +486,7 @@ class OptionSearch:
                 pick = self._tightest()
                 t = self._loose_t(pick, None)
             kept = []
-            for _ in range(KELLEY_ROUNDS if start is None else 2):
+            for _ in range(KELLEY_ROUNDS if start is None else 0 if started else 2):
                 rel = self._tangent(pick, t)
                 if rel is None:
                     break
