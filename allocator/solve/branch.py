@@ -535,9 +535,10 @@ class OptionSearch:
                 return None
             if self.best is None and not math.isfinite(value):
                 continue  # nothing in this node meets the requirement
-            if self.nodes == 1 or not e.continuous[b.feasible_pick].any():
+            if (self.nodes == 1 and not (started and self._pruned(value))) or not e.continuous[b.feasible_pick].any():
                 # the dual's choice as an incumbent (a polish each with continuous
-                # processes: at the root only, the leaves polish the rest)
+                # processes: at the root only, the leaves polish the rest; not where a
+                # sweep's last choice already leaves the root within the gap target)
                 self._offer(b.feasible_pick)
             if not e.continuous[b.pick].any():
                 self._offer(b.pick)

@@ -641,6 +641,8 @@ class DiscreteAllocation:
         self._last_pick = None  # the branch and bound's last choice (entry per contributor)
         self._entries = None  # the branch and bound's entries (built by its first search)
         self._solve_unrounded = None  # this solve's unrounded optimum (with rounding)
+        self._result_problems = {}  # chosen option indices -> AllocationProblem of the re-check
+        self._baseline = None  # each contributor's current unit cost (limits play no part)
         self._plan = ()  # the limit overrides of a sweep's points still to come (see plan())
         self._primed = {}  # polisher key -> plan position up to which its roots are solved
         self._overrides = None  # this solve's overrides
@@ -1153,12 +1155,21 @@ class DiscreteAllocation:
         held) or none of the shadow prices (a discrete choice has no derivative with
         respect to a limit); the grades, the rounding and the unrounded optimum.
         """
-        problem = AllocationProblem(self._resolved_case(chosen_options), self.model, self.fix)
-        problem.processes = tuple(o.name for o in chosen_options)
+        # the problem of a choice does not depend on the limits: kept for a sweep's next points
+        key = tuple(o.index for o in chosen_options)
+        problem = self._result_problems.get(key)
+        if problem is None:
+            problem = AllocationProblem(self._resolved_case(chosen_options), self.model, self.fix)
+            problem.processes = tuple(o.name for o in chosen_options)
+            if len(self._result_problems) >= KEPT_POLISHERS:
+                self._result_problems.pop(next(iter(self._result_problems)))
+            self._result_problems[key] = problem
         rtol = WORST_CASE_RTOL if self.model == "worst-case" else FALLOUT_RTOL
         if status == "optimal" and not problem.feasible(t, limits, rtol=rtol):
             status, message = "failed", "the chosen tolerances failed the re-check: " + message
-        baseline = self._baseline_unit_costs()
+        if self._baseline is None:
+            self._baseline = self._baseline_unit_costs()
+        baseline = self._baseline.copy()
         fields = dict(unit_cost_current=baseline, current_cost=float(np.sum(self.counts * baseline)),
                       lower_bound=lower_bound)
         if requirements is not None:
