@@ -230,10 +230,16 @@ class OptionSearch:
     def _plain(self) -> _Relaxation | None:
         e = self.entries
         a = self.a[e.owner]
+        # the entries' minimisers at each λ do not depend on the limits (only S does): one
+        # cache per requirement on the solver, shared by the points of a sweep
+        kept = getattr(self.solver, "_plain_caches", None)
+        if kept is None:
+            kept = self.solver._plain_caches = {}
+        cache = kept.setdefault(self.r, {})
         if self.model == "worst-case":
-            return _Relaxation(e.count * a, 1, self.room)
+            return _Relaxation(e.count * a, 1, self.room, cache)
         sigma_max = stack.sigma_limit(self.req.nominal, self.lim.fallout, self.lim.lower, self.lim.upper)
-        return _Relaxation(e.count * (a * e.factor) ** 2, 2, sigma_max**2)
+        return _Relaxation(e.count * (a * e.factor) ** 2, 2, sigma_max**2, cache)
 
     def _tangent(self, entry_pick, t) -> _Relaxation | None:
         """Mean shift: the tangent cut at the choice ``entry_pick`` with tolerances ``t``."""
