@@ -1494,6 +1494,12 @@ class DiscreteAllocation:
             solver = continuous_solver(prepare(self._resolved_case(chosen), self.model, held))
         except CaseError:
             solver = None
+        if solver is not None and hasattr(solver, "start_from"):
+            # Newton's start: the prices of the latest polish (the same requirement, other
+            # processes held), in place of a search from scratch
+            latest = next((p for p in reversed(self._polishers.values()) if getattr(p, "prices", None)), None)
+            if latest is not None:
+                solver.start_from(latest.prices)
         self._polishers[key] = solver
         while len(self._polishers) > KEPT_POLISHERS:
             self._polishers.pop(next(iter(self._polishers)))

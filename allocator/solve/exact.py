@@ -540,6 +540,18 @@ class MeanShiftExact:
         delta = float(self.n @ (self.v * t)) + self.delta_held
         return sigma, delta
 
+    @property
+    def prices(self):
+        """``(α, β)`` of the last settled solve, or None (see :meth:`start_from`)."""
+        return self._warm
+
+    def start_from(self, prices) -> None:
+        """Start the next solve's Newton from ``prices`` (another solver's :attr:`prices`,
+        e.g. the same requirement with other processes held); a start it does not settle
+        from is dropped for the usual one."""
+        if self._warm is None and prices is not None:
+            self._warm = (float(prices[0]), float(prices[1]))
+
     def solve(self, overrides=None):
         """Allocate; returns an :class:`~allocator.solve.result.Allocation`."""
         problem = self.problem
