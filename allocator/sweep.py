@@ -392,6 +392,9 @@ class LimitSweep:
             return self._batched(values, tick)
         out: list[_Point | None] = [None] * values.size
         order = range(values.size - 1, -1, -1) if self.vary == "lower" else range(values.size)
+        if hasattr(self.solver, "plan"):  # the discrete solver shares work across the points
+            extra = [] if keep is None or np.any(_same_value(values, keep)) else [keep]
+            self.solver.plan([self.overrides(values[i]) for i in order] + [self.overrides(v) for v in extra])
         for i in order:
             alloc = self.solve(values[i])
             if keep is not None and _same_value(values[i], keep):

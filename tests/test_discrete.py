@@ -956,3 +956,36 @@ def test_cli_exit_1_when_no_combination_meets_the_requirement(tmp_path):
     out = CliRunner().invoke(cli, ["allocate", str(path), "--model", "worst-case"])
     assert out.exit_code == 1
     assert "infeasible" in out.output
+
+
+def test_mean_shift_polish_started_from_another_choice_prices_matches_a_fresh_solve():
+    # The discrete solver starts the Newton of a new process choice's polish from the
+    # latest polish's prices; the answer must be the fresh solver's (cost to 1e-9) and meet
+    # the requirement by scipy.stats (the mean anywhere in y0 ± δ, normal parts σ = t/3).
+    from allocator.solve import solver_for
+
+    chain = {"a": 1.0, "b": -1.0, "c": 1.0}
+    curves = {"a": CostCurve("reciprocal", a=1.0, b=0.05), "b": CostCurve("reciprocal", a=2.0, b=0.02),
+              "c": CostCurve("exponential", a=0.5, b=3.0, c=40.0)}
+    parts = [Contributor(name=n, nominal=10.0, tolerance=0.05, limits=(0.005, 0.2), cost=curves[n],
+                         mean_shift=0.2) for n in chain]
+    req = Requirement(name="gap", chain=chain, lower=10.0 - 0.12, upper=10.0 + 0.12, fallout_ppm=100)
+    case = Case(title="invented", contributors=tuple(parts), requirements=(req,),
+                allocation=AllocationSettings(models=("mean-shift",)))
+    other = replace(case, contributors=tuple(replace(c, cost=CostCurve("reciprocal", a=3.0, b=0.01))
+                                             for c in parts))
+    donor = solver_for(other, "mean-shift")
+    donor.solve()
+    assert donor.prices is not None
+    seeded, fresh = solver_for(case, "mean-shift"), solver_for(case, "mean-shift")
+    seeded.start_from(donor.prices)
+    for upper in (10.12, 10.1, 10.15):
+        overrides = {"gap": {"upper": upper}}
+        one, ref = seeded.solve(overrides), fresh.solve(overrides)
+        assert one.status == ref.status == "optimal"
+        assert one.total_cost == pytest.approx(ref.total_cost, rel=1e-9)
+        t = one.allocated_array()
+        sigma, delta = float(np.sqrt(np.sum((t / 3.0) ** 2))), 0.2 * float(np.sum(t))
+        fallout = max(stats.norm.cdf(req.lower, 10.0 + s * delta, sigma)
+                      + stats.norm.sf(upper, 10.0 + s * delta, sigma) for s in (-1.0, 1.0))
+        assert fallout <= 100e-6 * (1 + 1e-6)

@@ -27,6 +27,7 @@ from __future__ import annotations
 
 import math
 import re
+from pathlib import Path
 import xml.etree.ElementTree as ET
 from dataclasses import replace
 from itertools import product
@@ -51,7 +52,7 @@ from allocator.sweep import LimitSweep, frontier
 from allocator.model import CostCurve, Economics, FrontierSettings
 from allocator.plots import render_economics_plot, render_frontier_plot
 from allocator.solve import allocate
-from helpers import chain_requirement, contributor, make_case, run_on_a_terminal
+from helpers import chain_requirement, contributor, make_case, run_on_a_terminal, unit_cost
 
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
 REL = 1e-7
@@ -1021,3 +1022,130 @@ def test_choose_table_frontier_against_exact_enumeration(model):
         else:
             assert cost == pytest.approx(price[ok].min(), rel=1e-9), upper
     assert sum(c is not None for c in front.costs[model]) >= 4
+
+
+# --------------------------------------------------------------------------- sweeps sharing work
+
+
+NINE_PART = Path(__file__).resolve().parents[1] / "benchmarks" / "nine_part_discrete.toml"
+
+
+@pytest.mark.parametrize("model", ["worst-case", "rss", "mean-shift"])
+def test_nine_part_discrete_frontier_equals_independent_allocations(model):
+    # The sweep shares work from point to point (the last point's multiplier starts each
+    # bound, a process choice met again has its dual roots solved for the next points at
+    # once): every point must still be what a fresh allocation finds at that limit alone,
+    # to 1e-9 in cost, with the same processes and a proven gap within the 1e-5 target.
+    from allocator.case import load_case
+
+    case = load_case(NINE_PART)
+    req = case.frontier.requirement or case.requirements[0].name
+    front = frontier(case, models=(model,), points=13)
+    assert front.statuses[model] == ["optimal"] * 13
+    for value, cost in zip(front.values, front.costs[model]):
+        single = allocate(case, model, overrides={req: {"upper": float(value)}})
+        assert single.status == "optimal" and single.gap <= 1e-5, single.message
+        assert cost == pytest.approx(single.total_cost, rel=1e-9), value
+    # and the processes, from the kept allocation at the case's own limit and a re-solve
+    sweep = LimitSweep(case, model, req, "upper")
+    sweep.sweep(front.values)
+    for value in front.values[::4]:
+        alloc = sweep.solve(float(value))
+        single = allocate(case, model, overrides={req: {"upper": float(value)}})
+        assert dict(alloc.processes) == dict(single.processes), value
+        assert alloc.gap <= 1e-5 and alloc.total_cost == pytest.approx(single.total_cost, rel=1e-9)
+
+
+def _two_process_case():
+    """Invented: a bore by one of three processes, a hub by one of two, a plain plate."""
+    from allocator.model import AllocationSettings, Case, Contributor, Process, Requirement
+
+    body = Contributor(name="body", nominal=40.0, tolerance=0.03, processes=(
+        Process("turning", (0.02, 0.10), CostCurve("reciprocal", a=3.0, b=0.05)),
+        Process("boring", (0.008, 0.03), CostCurve("reciprocal-power", a=5.0, b=0.0006, k=1.2)),
+        Process("grinding", (0.002, 0.01), CostCurve("reciprocal", a=9.0, b=0.02), cp=1.33)))
+    hub = Contributor(name="hub", nominal=25.0, tolerance=0.02, processes=(
+        Process("cast", (0.03, 0.12), CostCurve("exponential", a=0.8, b=4.0, c=30.0)),
+        Process("machined", (0.005, 0.08), CostCurve("exponential", a=1.2, b=6.0, c=60.0))))
+    plate = Contributor(name="plate", nominal=12.7, tolerance=0.03, limits=(0.01, 0.1),
+                        cost=CostCurve("reciprocal", a=0.8, b=0.01))
+    req = Requirement(name="clearance", chain={"body": 1, "hub": -1, "plate": -1},
+                      lower=2.25, upper=2.35, fallout_ppm=100)
+    return Case(title="invented", contributors=(body, hub, plate), requirements=(req,),
+                allocation=AllocationSettings(models=("worst-case", "rss")))
+
+
+@pytest.mark.parametrize("model", ["worst-case", "rss"])
+def test_process_frontier_against_enumerated_process_combinations(model):
+    # Reference: every process combination (itertools.product) solved as a continuous
+    # problem by scipy.optimize (SLSQP, in log t), the least taken per point; the rss
+    # fallout from scipy.stats.norm (normal parts: σ = t / (3 cp)).
+    from allocator.model import Process
+
+    case = _two_process_case()
+    req = case.requirements[0]
+    values = np.linspace(2.33, 2.45, 6)
+    front = frontier(case, vary="upper", values=values, models=(model,))
+    options = [c.processes if c.processes else [Process("", c.limits, c.cost)] for c in case.contributors]
+    for upper, cost, status in zip(values, front.costs[model], front.statuses[model]):
+        best = np.inf
+        for combo in product(*options):
+            lo = np.array([p.limits[0] for p in combo])
+            hi = np.array([p.limits[1] for p in combo])
+            f = np.array([1.0 / (3.0 * (p.cp or 1.0)) for p in combo])
+
+            def margin(x, f=f, upper=upper):
+                t = np.exp(x)
+                if model == "worst-case":
+                    room = min(2.3 - req.lower, upper - 2.3)
+                    return np.array([1.0 - np.sum(t) / room])
+                sigma = np.sqrt(np.sum((f * t) ** 2))
+                out = stats.norm.cdf(req.lower, 2.3, sigma) + stats.norm.sf(upper, 2.3, sigma)
+                return np.array([1.0 - out / (req.fallout_ppm * 1e-6)])
+
+            if margin(np.log(lo))[0] < 0:
+                continue
+            res = optimize.minimize(
+                lambda x, combo=combo: sum(float(unit_cost(p.cost, np.exp(xi))) for p, xi in zip(combo, x)),
+                np.log(lo * 1.01), method="SLSQP", bounds=list(zip(np.log(lo), np.log(hi))),
+                constraints=[{"type": "ineq", "fun": margin}], options={"ftol": 1e-14, "maxiter": 500})
+            if res.success and margin(res.x)[0] >= -1e-9:
+                best = min(best, res.fun)
+        assert status == "optimal"
+        assert cost == pytest.approx(best, rel=1e-6), upper
+        single = allocate(case, model, overrides={"clearance": {"upper": float(upper)}})
+        assert cost == pytest.approx(single.total_cost, rel=1e-9)
+
+
+def test_batched_roots_of_a_sweep_equal_one_at_a_time():
+    # ExactAllocation.prime solves the 1-D dual for many limits in one call; each solve
+    # at those limits must give what a fresh solver gives (cost to 1e-12, re-checked).
+    from allocator.solve import solver_for
+
+    body, hub, plate = _two_process_case().contributors
+    body = replace(body, processes=(), limits=(0.008, 0.03), cost=body.processes[1].cost)
+    hub = replace(hub, processes=(), limits=(0.005, 0.08), cost=hub.processes[1].cost)
+    case = replace(_two_process_case(), contributors=(body, hub, plate))
+    plan = [{"clearance": {"upper": float(v)}} for v in np.linspace(2.33, 2.45, 7)]
+    for model in ("worst-case", "rss"):
+        primed = solver_for(case, model)
+        assert hasattr(primed, "prime"), type(primed).__name__
+        primed.prime(plan)
+        for overrides in plan:
+            one, fresh = primed.solve(overrides), solver_for(case, model).solve(overrides)
+            assert one.status == fresh.status == "optimal"
+            assert one.total_cost == pytest.approx(fresh.total_cost, rel=1e-12)
+            np.testing.assert_allclose(one.allocated_array(), fresh.allocated_array(), rtol=1e-9)
+
+
+def test_table_minimiser_takes_many_rows_at_once():
+    # rows of a sweep at once must equal the table's own minimiser per element
+    from allocator.costs.table import Table
+
+    curve = CostCurve("table", points_tolerance=(0.01, 0.02, 0.05, 0.1), points_cost=(5.0, 3.0, 1.5, 1.0))
+    fam = Table()
+    s = np.array([[10.0, 150.0], [50.0, 250.0], [1.0, 400.0]])
+    out = fam.linear_minimiser([curve, curve], s)
+    assert out.shape == s.shape
+    for idx in np.ndindex(*s.shape):
+        assert out[idx] == fam.inverse_derivative_at(curve, -s[idx])

@@ -284,10 +284,20 @@ class Table(CurveFamily):
             out[i] = bool(np.any(np.abs(x - t[i]) <= rtol * x[-1]))
         return out
 
+    rows_at_once = ("linear_minimiser",)  # takes s of shape (points, parts) in one call
+
     def linear_minimiser(self, p, s):
-        return np.array(
-            [self.inverse_derivative_at(c, -float(s[i])) for i, c in enumerate(p)], dtype=float
-        ).reshape(len(p))
+        # as inverse_derivative_at per element; the table is checked once per part, not
+        # once per row of a sweep's many right-hand sides
+        s = np.asarray(s, dtype=float)
+        out = np.empty(s.shape[:-1] + (len(p),))
+        for i, curve in enumerate(p):
+            problem = table_problem(curve)
+            if problem:
+                raise ValueError(f"table cost has no inverse slope: {problem}")
+            x, _, slopes = points(curve)
+            out[..., i] = x[np.searchsorted(slopes, -s[..., i], side="left")]
+        return out
 
     def quadratic_minimiser(self, p, q, lo, hi, shift=None):
         out = np.empty(len(p))

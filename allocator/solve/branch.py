@@ -60,6 +60,8 @@ TANGENT_MAX_FALLOUT = 0.49  # as in .discrete: g is concave for targets up to he
 CHECK_RTOL = 1e-9  # as in .discrete: a choice meets the requirement within this
 WALK_STEPS, WALK_FACTOR = 40, 1.25  # listed values: multipliers tried for a first incumbent
 CACHED_MULTIPLIERS = 2048  # per relaxation: each entry's minimiser at these λ is kept
+ENOUGH_RTOL = 1e-10  # a warm-started bound stops this close (relative) below the incumbent's cost
+WARM_STEP = 0.05  # first step in log λ when a bracket is grown around a neighbouring bound's λ
 KELLEY_ROUNDS = 6  # mean shift: tangents tried at the root before the search (2 in a sweep,
 # which starts from the last point's choice)
 
@@ -228,10 +230,16 @@ class OptionSearch:
     def _plain(self) -> _Relaxation | None:
         e = self.entries
         a = self.a[e.owner]
+        # the entries' minimisers at each λ do not depend on the limits (only S does): one
+        # cache per requirement on the solver, shared by the points of a sweep
+        kept = getattr(self.solver, "_plain_caches", None)
+        if kept is None:
+            kept = self.solver._plain_caches = {}
+        cache = kept.setdefault(self.r, {})
         if self.model == "worst-case":
-            return _Relaxation(e.count * a, 1, self.room)
+            return _Relaxation(e.count * a, 1, self.room, cache)
         sigma_max = stack.sigma_limit(self.req.nominal, self.lim.fallout, self.lim.lower, self.lim.upper)
-        return _Relaxation(e.count * (a * e.factor) ** 2, 2, sigma_max**2)
+        return _Relaxation(e.count * (a * e.factor) ** 2, 2, sigma_max**2, cache)
 
     def _tangent(self, entry_pick, t) -> _Relaxation | None:
         """Mean shift: the tangent cut at the choice ``entry_pick`` with tolerances ``t``."""
@@ -271,37 +279,135 @@ class OptionSearch:
         return total, pick, use, t, cost
 
     def _bound(self, rel: _Relaxation, mask) -> _Bound:
-        """The Lagrangian bound of the node ``mask`` under ``rel`` (maximised over λ)."""
+        """The Lagrangian bound of the node ``mask`` under ``rel`` (maximised over λ).
+
+        Any λ gives a valid bound. The maximiser is where the slope ``Σ W t^m − S``
+        changes sign: by bisection in log λ over a wide bracket, or, where an earlier
+        bound of a sweep left its λ (at the previous point, or the previous node), by a bracket grown outward from that λ and closed by regula falsi on the
+        log of the spread (the Illinois variant, with a bisection step whenever the
+        bracket does not halve), stopping at the same width in log λ.
+        """
         rhs = rel.rhs
         total, pick, use, t, cost = self._totals(0.0, rel, mask)
         best = (float(np.sum(total[pick])), 0.0, total, pick, t, cost, use)
         feasible = pick if float(np.sum(use[pick])) <= rhs else None
         if feasible is None:
-            scale = float(np.sum(self.entries.n)) / rhs
-            lo, hi = math.log(scale) - 40.0, math.log(scale) + 40.0
-            for _ in range(BISECTION_STEPS):
-                mid = 0.5 * (lo + hi)
-                lam = math.exp(mid)
-                total, pick, use, t, cost = self._totals(lam, rel, mask)
-                spread = float(np.sum(use[pick]))
-                value = float(np.sum(total[pick])) - lam * rhs
-                if value > best[0]:
-                    best = (value, lam, total, pick, t, cost, use)
-                if spread > rhs:
-                    lo = mid
-                else:
-                    hi = mid
-                    feasible = pick
-                if hi - lo < self.log_tol:
-                    break
-            if feasible is None:
-                feasible = best[3]
+            # a sweep (the solver has a plan of points): start from the last bound's λ
+            hint = getattr(self.solver, "_lambda_hint", None) if getattr(self.solver, "_plan", ()) else None
+            if hint is not None and hint > 0 and math.isfinite(hint):
+                best, feasible = self._warm_bisection(rel, mask, rhs, best, math.log(hint))
+            else:
+                best, feasible = self._bisection(rel, mask, rhs, best)
+            if best[1] > 0:
+                self.solver._lambda_hint = best[1]
         value, lam, total, pick, t, cost, use = best
         if not math.isfinite(value):
             return _Bound(math.inf, lam, total, pick, feasible, t)
         # a margin for the rounding of the sums (the bound must never exceed the optimum)
         margin = 1e-12 * float(np.sum(np.abs(cost[pick]) + lam * use[pick]) + lam * rhs)
         return _Bound(value - margin, lam, total, pick, feasible, t)
+
+    def _at(self, x, rel, mask, rhs, best):
+        """Evaluate the dual at log λ = x: (slope Σ W t^m − S, value L, pick, best so far)."""
+        lam = math.exp(x)
+        total, pick, use, t, cost = self._totals(lam, rel, mask)
+        spread = float(np.sum(use[pick]))
+        value = float(np.sum(total[pick])) - lam * rhs
+        if value > best[0]:
+            best = (value, lam, total, pick, t, cost, use)
+        return spread - rhs, value, pick, best
+
+    def _bisection(self, rel, mask, rhs, best):
+        feasible = None
+        scale = float(np.sum(self.entries.n)) / rhs
+        lo, hi = math.log(scale) - 40.0, math.log(scale) + 40.0
+        for _ in range(BISECTION_STEPS):
+            mid = 0.5 * (lo + hi)
+            slope, _, pick, best = self._at(mid, rel, mask, rhs, best)
+            if slope > 0:
+                lo = mid
+            else:
+                hi = mid
+                feasible = pick
+            if hi - lo < self.log_tol:
+                break
+        return best, (feasible if feasible is not None else best[3])
+
+    def _warm_bisection(self, rel, mask, rhs, best, x0):
+        """As :meth:`_bisection`, from a bracket grown around ``x0`` = log λ of a
+        neighbouring bound.
+
+        The bracket ``[λ_lo, λ_hi]`` (slope positive at ``λ_lo``, not positive at
+        ``λ_hi``) is closed at the crossing of the two ends' supporting lines
+        ``L(λ_e) + g_e (λ − λ_e)`` (``g`` the slope), with a bisection step whenever it
+        does not halve in three steps. ``L`` is concave, so the lines' crossing value is
+        at least ``max L``: the search stops once that is within :data:`ENOUGH_RTOL` of
+        the best value met (or the bracket is as narrow as the bisection's, or the bound
+        is that close below the incumbent's cost).
+        """
+        scale = float(np.sum(self.entries.n)) / rhs
+        floor, ceiling = math.log(scale) - 40.0, math.log(scale) + 40.0
+        x0 = min(max(x0, floor), ceiling)
+        g, v, pick, best = self._at(x0, rel, mask, rhs, best)
+        feasible = None
+        # the bound cannot usefully pass the incumbent's cost: stop once it is that close
+        enough = math.inf if self.best is None else self.best[0] - ENOUGH_RTOL * abs(self.best[0])
+        if g > 0:
+            lo, hi = (x0, v, g), None
+            step = WARM_STEP
+            while hi is None:
+                if best[0] >= enough:
+                    return best, best[3]
+                x = min(lo[0] + step, ceiling)
+                g, v, pick, best = self._at(x, rel, mask, rhs, best)
+                if g <= 0:
+                    hi, feasible = (x, v, g), pick
+                elif x >= ceiling:
+                    return best, best[3]  # not even the largest λ meets it: as bisection would
+                else:
+                    lo, step = (x, v, g), 4.0 * step
+        else:
+            hi, lo, feasible = (x0, v, g), None, pick
+            step = WARM_STEP
+            while lo is None:
+                if best[0] >= enough:
+                    return best, feasible
+                x = max(hi[0] - step, floor)
+                g, v, pick, best = self._at(x, rel, mask, rhs, best)
+                if g > 0:
+                    lo = (x, v, g)
+                elif x <= floor:
+                    return best, feasible
+                else:
+                    hi, feasible, step = (x, v, g), pick, 4.0 * step
+        last = [lo, hi]  # the two latest evaluations, for the secant step
+        stalls = 0
+        for _ in range(BISECTION_STEPS):
+            x_lo, v_lo, g_lo = lo
+            x_hi, v_hi, g_hi = hi
+            if x_hi - x_lo < self.log_tol or best[0] >= enough:
+                break
+            l_lo, l_hi = math.exp(x_lo), math.exp(x_hi)
+            cross = (v_hi - v_lo + g_lo * l_lo - g_hi * l_hi) / (g_lo - g_hi)
+            upper = v_lo + g_lo * (cross - l_lo)
+            if math.isfinite(upper) and math.isfinite(best[0]) and upper - best[0] <= ENOUGH_RTOL * abs(best[0]):
+                break  # no λ in the bracket gives a bound more than that above the best
+            (x1, _, g1), (x2, _, g2) = last
+            x = x2 - g2 * (x2 - x1) / (g2 - g1) if g2 != g1 else math.nan  # secant on the slope
+            inner = 0.01 * (x_hi - x_lo)
+            if stalls >= 2 or not (x_lo + inner <= x <= x_hi - inner):
+                x = math.log(cross) if cross > 0 and stalls < 2 else 0.5 * (x_lo + x_hi)
+                x = min(max(x, x_lo + inner), x_hi - inner)
+                stalls = 0 if stalls >= 2 else stalls
+            g, v, pick, best = self._at(x, rel, mask, rhs, best)
+            # a step that does not halve the slope counts as a stall (two: bisect)
+            stalls = stalls + 1 if abs(g) > 0.5 * min(abs(g1), abs(g2)) else 0
+            last = [last[1], (x, v, g)]
+            if g > 0:
+                lo = (x, v, g)
+            else:
+                hi, feasible = (x, v, g), pick
+        return best, feasible
 
     def _node_bound(self, mask) -> _Bound:
         out = None
@@ -374,8 +480,9 @@ class OptionSearch:
         root = np.ones(e.size, dtype=bool)
         if self.model != "mean-shift":
             self.relaxations = [self._plain()]
-        if start is not None:
-            self._offer(start)
+        # a sweep's last choice, met at these limits: its tangent is the root's relaxation
+        # (the node's own Kelley steps follow), no rounds of tangents first
+        started = start is not None and self._offer(start)
         if self.model == "mean-shift":
             # tangents at the tightest choice, then at each relaxation's own choice
             # (Kelley's cutting planes, one multiplier each); the best are kept
@@ -385,7 +492,7 @@ class OptionSearch:
                 pick = self._tightest()
                 t = self._loose_t(pick, None)
             kept = []
-            for _ in range(KELLEY_ROUNDS if start is None else 2):
+            for _ in range(KELLEY_ROUNDS if start is None else 0 if started else 2):
                 rel = self._tangent(pick, t)
                 if rel is None:
                     break
@@ -434,9 +541,10 @@ class OptionSearch:
                 return None
             if self.best is None and not math.isfinite(value):
                 continue  # nothing in this node meets the requirement
-            if self.nodes == 1 or not e.continuous[b.feasible_pick].any():
+            if (self.nodes == 1 and not (started and self._pruned(value))) or not e.continuous[b.feasible_pick].any():
                 # the dual's choice as an incumbent (a polish each with continuous
-                # processes: at the root only, the leaves polish the rest)
+                # processes: at the root only, the leaves polish the rest; not where a
+                # sweep's last choice already leaves the root within the gap target)
                 self._offer(b.feasible_pick)
             if not e.continuous[b.pick].any():
                 self._offer(b.pick)

@@ -114,6 +114,7 @@ OBJECTIVE_SCALE = 1e3  # HiGHS's absolute tolerances are tuned for objectives of
 CARRIED_CUTS = 24  # mean-shift tangent cuts a solve hands to the next (per requirement)
 SWEEP_STRIDE = 6  # with a previous optimum, keep every 6th point of the plain grid ...
 SWEEP_SPAN = 1.25  # ... and the plain grid within this factor of the last tolerance
+PRIMED_POINTS = 8  # a sweep: a process choice met again has its roots solved for this many points
 KEPT_POLISHERS = 64  # conic solvers kept per process choice for the polish
 CUTOFF_SLACK = 1e-6  # a pruning cutoff sits this far (relative) above the known cost
 # HiGHS options used with a cutoff (emptied, and no cutoff given, if the installed HiGHS
@@ -640,6 +641,12 @@ class DiscreteAllocation:
         self._last_pick = None  # the branch and bound's last choice (entry per contributor)
         self._entries = None  # the branch and bound's entries (built by its first search)
         self._solve_unrounded = None  # this solve's unrounded optimum (with rounding)
+        self._result_problems = {}  # chosen option indices -> AllocationProblem of the re-check
+        self._baseline = None  # each contributor's current unit cost (limits play no part)
+        self._plan = ()  # the limit overrides of a sweep's points still to come (see plan())
+        self._primed = {}  # polisher key -> plan position up to which its roots are solved
+        self._overrides = None  # this solve's overrides
+        self._lambda_hint = None  # the branch and bound's last multiplier (its next bisection starts there)
 
     # ------------------------------------------------------------------ options
 
@@ -1148,12 +1155,21 @@ class DiscreteAllocation:
         held) or none of the shadow prices (a discrete choice has no derivative with
         respect to a limit); the grades, the rounding and the unrounded optimum.
         """
-        problem = AllocationProblem(self._resolved_case(chosen_options), self.model, self.fix)
-        problem.processes = tuple(o.name for o in chosen_options)
+        # the problem of a choice does not depend on the limits: kept for a sweep's next points
+        key = tuple(o.index for o in chosen_options)
+        problem = self._result_problems.get(key)
+        if problem is None:
+            problem = AllocationProblem(self._resolved_case(chosen_options), self.model, self.fix)
+            problem.processes = tuple(o.name for o in chosen_options)
+            if len(self._result_problems) >= KEPT_POLISHERS:
+                self._result_problems.pop(next(iter(self._result_problems)))
+            self._result_problems[key] = problem
         rtol = WORST_CASE_RTOL if self.model == "worst-case" else FALLOUT_RTOL
         if status == "optimal" and not problem.feasible(t, limits, rtol=rtol):
             status, message = "failed", "the chosen tolerances failed the re-check: " + message
-        baseline = self._baseline_unit_costs()
+        if self._baseline is None:
+            self._baseline = self._baseline_unit_costs()
+        baseline = self._baseline.copy()
         fields = dict(unit_cost_current=baseline, current_cost=float(np.sum(self.counts * baseline)),
                       lower_bound=lower_bound)
         if requirements is not None:
@@ -1194,6 +1210,17 @@ class DiscreteAllocation:
                 )
         return fields
 
+    def plan(self, overrides_seq) -> None:
+        """Announce the limits of a sweep's next solves (a :class:`~allocator.sweep.LimitSweep`).
+
+        A polisher built for a process choice then solves its 1-D dual for all of them
+        in one batched call (:meth:`~allocator.solve.exact.ExactAllocation.prime`) when
+        it is used at a second point (the next :data:`PRIMED_POINTS` points); each point still polishes, re-checks and certifies its own
+        answer. An empty sequence forgets the plan.
+        """
+        self._plan = tuple(overrides_seq)
+        self._primed = {}
+
     # ------------------------------------------------------------------ solve
 
     def solve(self, overrides=None):
@@ -1212,6 +1239,7 @@ class DiscreteAllocation:
             ``rounding_cost`` [currency].
         """
         limits = self.reference.limits(overrides)
+        self._overrides = overrides
         for opts in self.options:  # refinement is per solve: start from the plain grid
             for o in opts:
                 if o.kind == "continuous":
@@ -1454,13 +1482,24 @@ class DiscreteAllocation:
         choice has no convex form (e.g. a table that is not convex).
         """
         if key in self._polishers:
-            self._polishers[key] = self._polishers.pop(key)  # most recently used last
-            return self._polishers[key]
+            solver = self._polishers[key] = self._polishers.pop(key)  # most recently used last
+            here = self._plan.index(self._overrides) if self._overrides in self._plan else None
+            if here is not None and here >= self._primed.get(key, 0) and hasattr(solver, "prime"):
+                # a choice met again in a sweep: its roots for the next points in one call
+                self._primed[key] = here + PRIMED_POINTS
+                solver.prime(self._plan[here:here + PRIMED_POINTS])
+            return solver
         try:
             # the path allocate() takes for the same case with these processes held
             solver = continuous_solver(prepare(self._resolved_case(chosen), self.model, held))
         except CaseError:
             solver = None
+        if solver is not None and hasattr(solver, "start_from"):
+            # Newton's start: the prices of the latest polish (the same requirement, other
+            # processes held), in place of a search from scratch
+            latest = next((p for p in reversed(self._polishers.values()) if getattr(p, "prices", None)), None)
+            if latest is not None:
+                solver.start_from(latest.prices)
         self._polishers[key] = solver
         while len(self._polishers) > KEPT_POLISHERS:
             self._polishers.pop(next(iter(self._polishers)))

@@ -258,7 +258,8 @@ class ExactAllocation:
             return problem.infeasible(limits, reason, SOLVER_NAME)
         dual.evaluations = 0
         rhs, allowance = dual.rhs(limits)
-        t_free, lam, bound = (x[0] for x in self.roots(rhs[:1]))
+        primed = getattr(self, "_primed", {}).get(float(rhs[0]))
+        t_free, lam, bound = primed if primed is not None else (x[0] for x in self.roots(rhs[:1]))
         t = problem.full(t_free)
         polished, theta = problem.polish(t, limits)
         cost = problem.total_cost(polished)
@@ -279,6 +280,28 @@ class ExactAllocation:
             gap=gap,
             multipliers=dual.multipliers([float(lam)], allowance),
         )
+
+    def prime(self, overrides_seq) -> None:
+        """Solve the dual for the limits a sweep will ask for, in one batched call.
+
+        :meth:`solve` at one of these limits then takes its root from here (and still
+        polishes, re-checks and reports it as at any other limits).
+
+        Parameters
+        ----------
+        overrides_seq : sequence of dict
+            Limit overrides, as :meth:`solve` takes them, one per later solve.
+        """
+        problem, dual = self.problem, self.dual
+        rhs = []
+        for overrides in overrides_seq:
+            limits = problem.limits(overrides)
+            if problem.diagnose(limits) is None:
+                rhs.append(float(dual.rhs(limits)[0][0]))
+        self._primed = {}
+        if rhs:
+            t, lam, bound = self.roots(rhs)
+            self._primed = {s: (t[k], lam[k], bound[k]) for k, s in enumerate(rhs)}
 
     def roots(self, rhs):
         """Least-cost free tolerances with ``spread(t) ≤ S``, for many ``S`` at once.
@@ -516,6 +539,18 @@ class MeanShiftExact:
         sigma = math.sqrt(float(self.n @ (self.w * t * t)) + self.var_held)
         delta = float(self.n @ (self.v * t)) + self.delta_held
         return sigma, delta
+
+    @property
+    def prices(self):
+        """``(α, β)`` of the last settled solve, or None (see :meth:`start_from`)."""
+        return self._warm
+
+    def start_from(self, prices) -> None:
+        """Start the next solve's Newton from ``prices`` (another solver's :attr:`prices`,
+        e.g. the same requirement with other processes held); a start it does not settle
+        from is dropped for the usual one."""
+        if self._warm is None and prices is not None:
+            self._warm = (float(prices[0]), float(prices[1]))
 
     def solve(self, overrides=None):
         """Allocate; returns an :class:`~allocator.solve.result.Allocation`."""

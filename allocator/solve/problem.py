@@ -121,7 +121,7 @@ class CurveSet:
         for fam, idx, params in self.groups:
             args = [None if e is None else np.asarray(e)[..., idx] for e in extra]
             call = getattr(fam, method)
-            if t.ndim == 1 or not fam.piecewise:
+            if t.ndim == 1 or not fam.piecewise or method in getattr(fam, "rows_at_once", ()):
                 out[..., idx] = call(params, t[..., idx], *args)
                 continue
             for row in range(t.shape[0]):
