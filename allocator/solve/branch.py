@@ -138,16 +138,10 @@ class _Entries:
         k = self.points
         t[k], cost[k] = self.t_point[k], n[k] * self.c_point[k]
         if self.formula.size:
-            from .exact import minimise_linear_price, minimise_quadratic_price
+            from .exact import minimise_price
 
             k = self.formula
-            lo, hi = self.lo[k], self.hi[k]
-            with np.errstate(divide="ignore", over="ignore", invalid="ignore"):
-                if m == 1:
-                    tk = minimise_linear_price(self.curves, price[k], lo, hi)
-                else:
-                    tk = minimise_quadratic_price(self.curves, 2.0 * price[k], lo, hi)
-            tk = np.clip(np.nan_to_num(tk, nan=hi, posinf=hi), lo, hi)
+            tk = minimise_price(self.curves, price[k], self.lo[k], self.hi[k], m)
             t[k], cost[k] = tk, n[k] * self.curves.value(tk)
         k = self.free
         t[k] = np.where(weight[k] > 0, self.lo[k], self.hi[k])

@@ -510,16 +510,10 @@ class _LagrangianTerms:
         m, w, n = self.m, self.weight, self.count
         price = lam * w / n  # per unit of cost of one part
         if self.formula.size:
-            k = self.formula
-            lo, hi = self.lo[k], self.hi[k]
-            from .exact import minimise_linear_price, minimise_quadratic_price
+            from .exact import minimise_price
 
-            with np.errstate(divide="ignore", over="ignore", invalid="ignore"):
-                if m == 1:
-                    tk = minimise_linear_price(self.curves, price[k], lo, hi)
-                else:
-                    tk = minimise_quadratic_price(self.curves, 2.0 * price[k], lo, hi)
-            tk = np.clip(np.nan_to_num(tk, nan=hi, posinf=hi), lo, hi)
+            k = self.formula
+            tk = minimise_price(self.curves, price[k], self.lo[k], self.hi[k], m)
             t[k] = tk
             cost[k] = n[k] * self.curves.value(tk)
         if self.free.size:

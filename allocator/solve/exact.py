@@ -40,6 +40,7 @@ __all__ = [
     "SeparableDual",
     "refine",
     "minimise_linear_price",
+    "minimise_price",
     "minimise_quadratic_price",
 ]
 
@@ -996,6 +997,21 @@ def minimise_linear_price(cs, s, lo, hi) -> np.ndarray:
     """
     s = np.broadcast_to(np.asarray(s, dtype=float), np.shape(lo))
     return np.clip(cs.linear_minimiser(s), lo, hi)
+
+
+def minimise_price(cs, price, lo, hi, power: int) -> np.ndarray:
+    """Per part, the minimiser of ``C(t) + price·t^power`` on ``[lo, hi]``, ``power`` 1 or 2.
+
+    The Lagrangian step of a worst-case (``power`` 1: :func:`minimise_linear_price`) or
+    RSS constraint (``power`` 2: :func:`minimise_quadratic_price` with ``q = 2·price``);
+    a price that reaches no finite root (zero, overflow) gives the loosest limit.
+    """
+    with np.errstate(divide="ignore", over="ignore", invalid="ignore"):
+        if power == 1:
+            t = minimise_linear_price(cs, price, lo, hi)
+        else:
+            t = minimise_quadratic_price(cs, 2.0 * np.asarray(price, dtype=float), lo, hi)
+    return np.clip(np.nan_to_num(t, nan=hi, posinf=hi), lo, hi)
 
 
 def minimise_quadratic_price(cs, q, lo, hi, shift=None) -> np.ndarray:
