@@ -53,6 +53,26 @@ def chain_requirement(name, chain, lower=None, upper=None, fallout_ppm=2700.0):
 # scaling and solver-discipline tests.
 
 
+def body_hub_plate_case(models, *, lower=2.25, upper=2.35, mean_shift=0.0, plate="normal") -> Case:
+    """Invented: a bore made by one of three processes, a hub by one of two, a plain plate;
+    clearance ``body − hub − plate`` in ``[lower, upper]`` at 100 ppm."""
+    from allocator.model import Process
+
+    body = Contributor(name="body", nominal=40.0, tolerance=0.03, mean_shift=mean_shift, processes=(
+        Process("turning", (0.02, 0.10), CostCurve("reciprocal", a=3.0, b=0.05)),
+        Process("boring", (0.008, 0.03), CostCurve("reciprocal-power", a=5.0, b=0.0006, k=1.2)),
+        Process("grinding", (0.002, 0.01), CostCurve("reciprocal", a=9.0, b=0.02), cp=1.33)))
+    hub = Contributor(name="hub", nominal=25.0, tolerance=0.02, mean_shift=mean_shift, processes=(
+        Process("cast", (0.03, 0.12), CostCurve("exponential", a=0.8, b=4.0, c=30.0)),
+        Process("machined", (0.005, 0.08), CostCurve("exponential", a=1.2, b=6.0, c=60.0))))
+    plate = Contributor(name="plate", nominal=12.7, tolerance=0.03, limits=(0.01, 0.1), distribution=plate,
+                        mean_shift=mean_shift, cost=CostCurve("reciprocal", a=0.8, b=0.01))
+    req = Requirement(name="clearance", chain={"body": 1, "hub": -1, "plate": -1},
+                      lower=lower, upper=upper, fallout_ppm=100)
+    return Case(title="invented", contributors=(body, hub, plate), requirements=(req,),
+                allocation=AllocationSettings(models=tuple(models)))
+
+
 def sigma_over_t(c: Contributor) -> float:
     """σ/t: normal t/(3 cp), uniform t/√3, triangular t/√6 (contract conventions)."""
     return {"normal": 1.0 / (3.0 * c.cp), "uniform": 1.0 / math.sqrt(3.0),

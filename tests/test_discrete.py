@@ -30,6 +30,7 @@ from allocator.model import (
 )
 from allocator.solve import allocate
 from allocator.solve.discrete import DiscreteAllocation, needs_discrete
+from helpers import body_hub_plate_case
 
 CASES = __import__("pathlib").Path(__file__).resolve().parents[1] / "cases"
 
@@ -45,29 +46,8 @@ def _case(contributors, requirements, models=("worst-case",), rounding=None, uni
 
 
 def _process_case(mean_shift=0.0):
-    """Invented: a bore made by one of three processes plus two single-process parts."""
-    body = Contributor(
-        name="body", nominal=40.0, tolerance=0.03, mean_shift=mean_shift,
-        processes=(
-            Process("turning", (0.02, 0.10), CostCurve("reciprocal", a=3.0, b=0.05)),
-            Process("boring", (0.008, 0.03), CostCurve("reciprocal-power", a=5.0, b=0.0006, k=1.2)),
-            Process("grinding", (0.002, 0.01), CostCurve("reciprocal", a=9.0, b=0.02), cp=1.33),
-        ),
-    )
-    hub = Contributor(
-        name="hub", nominal=25.0, tolerance=0.02, mean_shift=mean_shift,
-        processes=(
-            Process("cast", (0.03, 0.12), CostCurve("exponential", a=0.8, b=4.0, c=30.0)),
-            Process("machined", (0.005, 0.08), CostCurve("exponential", a=1.2, b=6.0, c=60.0)),
-        ),
-    )
-    plate = Contributor(name="plate", nominal=12.7, tolerance=0.03, limits=(0.01, 0.1),
-                        distribution="triangular", mean_shift=mean_shift,
-                        cost=CostCurve("reciprocal", a=0.8, b=0.01))
-    req = Requirement(name="clearance", chain={"body": 1, "hub": -1, "plate": -1},
-                      lower=2.2, upper=2.4, fallout_ppm=100)
-    return _case([body, hub, plate], [req], models=("worst-case", "rss", "mean-shift"))
-
+    return body_hub_plate_case(("worst-case", "rss", "mean-shift"), lower=2.2, upper=2.4,
+                               mean_shift=mean_shift, plate="triangular")
 
 def _with_processes(case, chosen):
     """The case with each contributor restricted to the named process."""

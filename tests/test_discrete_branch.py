@@ -17,7 +17,7 @@ from scipy import optimize, stats
 from allocator.model import AllocationSettings, Case, Contributor, CostCurve, Process, Requirement
 from allocator.solve.discrete import DiscreteAllocation
 
-from helpers import unit_cost
+from helpers import body_hub_plate_case, unit_cost
 
 
 def _choose(points, prices):
@@ -73,21 +73,7 @@ def test_mean_shift_listed_values_match_enumeration(seed):
 
 
 def _process_case():
-    """Invented: a bore by one of three processes, a hub by one of two, a plain plate."""
-    body = Contributor(name="body", nominal=40.0, tolerance=0.03, processes=(
-        Process("turning", (0.02, 0.10), CostCurve("reciprocal", a=3.0, b=0.05)),
-        Process("boring", (0.008, 0.03), CostCurve("reciprocal-power", a=5.0, b=0.0006, k=1.2)),
-        Process("grinding", (0.002, 0.01), CostCurve("reciprocal", a=9.0, b=0.02), cp=1.33)))
-    hub = Contributor(name="hub", nominal=25.0, tolerance=0.02, processes=(
-        Process("cast", (0.03, 0.12), CostCurve("exponential", a=0.8, b=4.0, c=30.0)),
-        Process("machined", (0.005, 0.08), CostCurve("exponential", a=1.2, b=6.0, c=60.0))))
-    plate = Contributor(name="plate", nominal=12.7, tolerance=0.03, limits=(0.01, 0.1),
-                        cost=CostCurve("reciprocal", a=0.8, b=0.01))
-    req = Requirement(name="clearance", chain={"body": 1, "hub": -1, "plate": -1},
-                      lower=2.25, upper=2.35, fallout_ppm=100)
-    return Case(title="invented", contributors=(body, hub, plate), requirements=(req,),
-                allocation=AllocationSettings(models=("rss",)))
-
+    return body_hub_plate_case(("rss",))
 
 @pytest.mark.parametrize("model", ["rss", "mean-shift"])
 def test_process_choice_certified_to_1e9_against_slsqp_enumeration(model):

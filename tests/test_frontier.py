@@ -52,7 +52,7 @@ from allocator.sweep import LimitSweep, frontier
 from allocator.model import CostCurve, Economics, FrontierSettings
 from allocator.plots import render_economics_plot, render_frontier_plot
 from allocator.solve import allocate
-from helpers import chain_requirement, contributor, make_case, run_on_a_terminal, unit_cost
+from helpers import body_hub_plate_case, chain_requirement, contributor, make_case, run_on_a_terminal, unit_cost
 
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
 REL = 1e-7
@@ -1057,23 +1057,7 @@ def test_nine_part_discrete_frontier_equals_independent_allocations(model):
 
 
 def _two_process_case():
-    """Invented: a bore by one of three processes, a hub by one of two, a plain plate."""
-    from allocator.model import AllocationSettings, Case, Contributor, Process, Requirement
-
-    body = Contributor(name="body", nominal=40.0, tolerance=0.03, processes=(
-        Process("turning", (0.02, 0.10), CostCurve("reciprocal", a=3.0, b=0.05)),
-        Process("boring", (0.008, 0.03), CostCurve("reciprocal-power", a=5.0, b=0.0006, k=1.2)),
-        Process("grinding", (0.002, 0.01), CostCurve("reciprocal", a=9.0, b=0.02), cp=1.33)))
-    hub = Contributor(name="hub", nominal=25.0, tolerance=0.02, processes=(
-        Process("cast", (0.03, 0.12), CostCurve("exponential", a=0.8, b=4.0, c=30.0)),
-        Process("machined", (0.005, 0.08), CostCurve("exponential", a=1.2, b=6.0, c=60.0))))
-    plate = Contributor(name="plate", nominal=12.7, tolerance=0.03, limits=(0.01, 0.1),
-                        cost=CostCurve("reciprocal", a=0.8, b=0.01))
-    req = Requirement(name="clearance", chain={"body": 1, "hub": -1, "plate": -1},
-                      lower=2.25, upper=2.35, fallout_ppm=100)
-    return Case(title="invented", contributors=(body, hub, plate), requirements=(req,),
-                allocation=AllocationSettings(models=("worst-case", "rss")))
-
+    return body_hub_plate_case(("worst-case", "rss"))
 
 @pytest.mark.parametrize("model", ["worst-case", "rss"])
 def test_process_frontier_against_enumerated_process_combinations(model):
