@@ -54,7 +54,43 @@ def applicable(problem: AllocationProblem) -> bool:
     return len(problem.requirements) > 1 and separable(problem) and not problem.curves.tables
 
 
-class MultiplierNewton:
+class CertifiedNewton:
+    """What the Newton paths on the prices share: the verdict on a polished answer.
+
+    'optimal' only with the tolerances met after the polish and a certified relative gap
+    at most :data:`GAP_LIMIT` against a Lagrangian lower bound; otherwise the fallback
+    solver (built once, on first need) answers, or without one the result is 'failed'.
+    """
+
+    solver_name = SOLVER_NAME
+    what = "Newton on the multipliers"
+
+    def __init__(self, problem: AllocationProblem, fallback=None):
+        self.problem = problem
+        self._fallback = fallback
+        self._conic = None
+        self.steps = 0
+
+    def _verdict(self, polished, theta, limits, bound, overrides, *, message, multipliers):
+        """The optimal result if certified, else the fallback's answer (or 'failed')."""
+        p = self.problem
+        if polished is not None:
+            cost = p.total_cost(polished)
+            gap = (max(0.0, (cost - bound) / cost)
+                   if cost > 0 and bound is not None and math.isfinite(bound) else None)
+            verified = theta >= 1.0 - 1e-9 and p.feasible(polished, limits, rtol=p._rtol())
+            if verified and gap is not None and gap <= GAP_LIMIT:
+                return p.result(polished, limits, status="optimal", message=message, solver=self.solver_name,
+                                iterations=self.steps, gap=gap, multipliers=multipliers)
+        if self._fallback is None:
+            return p.result(None, limits, status="failed", solver=self.solver_name,
+                            message=f"{self.what} did not certify an optimum (no fallback solver given)")
+        if self._conic is None:
+            self._conic = self._fallback()
+        return self._conic.solve(overrides)
+
+
+class MultiplierNewton(CertifiedNewton):
     """Projected Newton on the multipliers of several separable requirements.
 
     Parameters
@@ -83,11 +119,8 @@ class MultiplierNewton:
     def __init__(self, problem: AllocationProblem, *, fallback=None):
         if not applicable(problem):
             raise ValueError("needs several separable requirements and formula costs")
-        self.problem = problem
+        super().__init__(problem, fallback)
         self.dual = SeparableDual(problem)
-        self._fallback = fallback
-        self._conic = None
-        self.steps = 0
 
     # ------------------------------------------------------------------ solve
 
@@ -101,25 +134,13 @@ class MultiplierNewton:
         rhs, allowance = dual.rhs(limits)
         t_free, lam = self._maximise(rhs)
         polished, theta = problem.polish(problem.full(t_free), limits)
-        cost = problem.total_cost(polished)
         bound = float(dual.bound(lam, np.where(np.isfinite(rhs), rhs, 0.0)))
-        gap = max(0.0, (cost - bound) / cost) if cost > 0 and math.isfinite(bound) else None
-        verified = theta >= 1.0 - 1e-9 and problem.feasible(polished, limits, rtol=problem._rtol())
-        if verified and gap is not None and gap <= GAP_LIMIT:
-            return problem.result(
-                polished, limits, status="optimal",
-                message=f"Lagrange dual of {len(rhs)} requirements maximised by Newton on the "
-                "multipliers; re-checked against every requirement",
-                solver=SOLVER_NAME, iterations=self.steps, gap=gap,
-                multipliers=dual.multipliers(lam, allowance),
-            )
-        if self._fallback is None:
-            return problem.result(None, limits, status="failed", solver=SOLVER_NAME,
-                                  message="Newton on the multipliers did not certify an optimum "
-                                  "(no fallback solver given)")
-        if self._conic is None:
-            self._conic = self._fallback()
-        return self._conic.solve(overrides)
+        return self._verdict(
+            polished, theta, limits, bound, overrides,
+            message=f"Lagrange dual of {len(rhs)} requirements maximised by Newton on the "
+            "multipliers; re-checked against every requirement",
+            multipliers=dual.multipliers(lam, allowance),
+        )
 
     # ------------------------------------------------------------------ the dual
 

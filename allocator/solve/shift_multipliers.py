@@ -49,12 +49,12 @@ import numpy as np
 
 from .. import stack
 from .exact import minimise_quadratic_price
+from .multipliers import GAP_LIMIT, CertifiedNewton
 from .problem import AllocationProblem, allowance_with_curvature
 
 __all__ = ["applicable", "ShiftMultiplierNewton", "SOLVER_NAME", "GAP_LIMIT"]
 
 SOLVER_NAME = "shift-multipliers"
-GAP_LIMIT = 1e-9  # 'optimal' needs a certified relative gap at most this (else: conic)
 MAX_STEPS = 200
 COLD_STEPS = 60  # Newton on every candidate at once: beyond this the growing set takes over
 F1_TOL, F2_TOL = 1e-13, 1e-11  # the scaled residuals at which Newton has settled
@@ -71,7 +71,7 @@ def applicable(problem: AllocationProblem) -> bool:
     )
 
 
-class ShiftMultiplierNewton:
+class ShiftMultiplierNewton(CertifiedNewton):
     """Newton on the prices ``(α, β)`` of several mean-shift requirements.
 
     Parameters
@@ -84,10 +84,14 @@ class ShiftMultiplierNewton:
         passes it); called at most once. Without it such a solve returns 'failed'.
     """
 
+    solver_name = SOLVER_NAME
+    what = "Newton on the mean-shift prices"
+
     def __init__(self, problem: AllocationProblem, *, fallback=None):
         if not applicable(problem):
             raise ValueError("needs several requirements under mean shift with free mean shifts")
-        self.problem = p = problem
+        super().__init__(problem, fallback)
+        p = problem
         free, held = p.free, ~p.free
         self.index = np.flatnonzero(free)
         self.lo, self.hi = p.tightest[free], p.loosest[free]
@@ -100,10 +104,7 @@ class ShiftMultiplierNewton:
         t_held = p.held[held]
         self.var_held = (w[:, held] * p.counts[held]) @ (t_held * t_held)
         self.delta_held = (v[:, held] * p.counts[held]) @ t_held
-        self._fallback = fallback
-        self._conic = None
         self._warm = None  # (candidates, α, β, reference α) of the last settled solve
-        self.steps = 0
 
     # ------------------------------------------------------------------ pieces
 
@@ -130,29 +131,18 @@ class ShiftMultiplierNewton:
         if reason:
             return p.infeasible(limits, reason, SOLVER_NAME)
         out = self._solve(limits)
-        if out is not None:
-            t_free, mu = out
-            polished, theta = p.polish(self._shrink(p.full(t_free), limits), limits)
-            cost = p.total_cost(polished)
-            bound = lagrangian_bound(p, limits, polished, mu)
-            gap = max(0.0, (cost - bound) / cost) if cost > 0 and bound is not None else None
-            verified = theta >= 1.0 - 1e-9 and p.feasible(polished, limits, rtol=p._rtol())
-            if verified and gap is not None and gap <= GAP_LIMIT:
-                binding = sum(1 for x in mu if x > 0)
-                return p.result(
-                    polished, limits, status="optimal",
-                    message=f"KKT conditions of {binding} binding mean-shift requirement"
-                    f"{'s' if binding != 1 else ''} solved by Newton on their prices; "
-                    "re-checked against every requirement",
-                    solver=SOLVER_NAME, iterations=self.steps, gap=gap, multipliers=mu,
-                )
-        if self._fallback is None:
-            return p.result(None, limits, status="failed", solver=SOLVER_NAME,
-                            message="Newton on the mean-shift prices did not certify an optimum "
-                            "(no fallback solver given)")
-        if self._conic is None:
-            self._conic = self._fallback()
-        return self._conic.solve(overrides)
+        if out is None:
+            return self._verdict(None, 0.0, limits, None, overrides, message="", multipliers=None)
+        t_free, mu = out
+        polished, theta = p.polish(self._shrink(p.full(t_free), limits), limits)
+        binding = sum(1 for x in mu if x > 0)
+        return self._verdict(
+            polished, theta, limits, lagrangian_bound(p, limits, polished, mu), overrides,
+            message=f"KKT conditions of {binding} binding mean-shift requirement"
+            f"{'s' if binding != 1 else ''} solved by Newton on their prices; "
+            "re-checked against every requirement",
+            multipliers=mu,
+        )
 
     def _shrink(self, t, limits):
         """``t`` shrunk by the first of a few round-off factors that meets every requirement
