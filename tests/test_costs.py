@@ -309,6 +309,31 @@ def test_convexity_detection():
     assert table_problem(RECIPROCAL) is None
 
 
+def test_table_checks_and_values_do_not_depend_on_how_the_points_are_held():
+    """A table's points and checks are worked out once per distinct table (a sweep asks
+    for them thousands of times): a curve built by hand with lists (unhashable) gives the
+    same values, slopes and messages as the loaded tuples, and the shared arrays cannot be
+    changed by a caller (which would corrupt every later use). Values against
+    ``numpy.interp`` of the listed points."""
+    from allocator.costs.table import points
+
+    for tol, cost in [((0.01, 0.02, 0.05), (5.0, 3.0, 2.4)), ((0.01, 0.02, 0.05), (5.0, 4.5, 2.0))]:
+        as_tuples = CostCurve("table", points_tolerance=tol, points_cost=cost)
+        as_lists = CostCurve("table", points_tolerance=list(tol), points_cost=list(cost))
+        assert table_problem(as_lists) == table_problem(as_tuples)
+        for x, y in zip(points(as_lists), points(as_tuples)):
+            np.testing.assert_array_equal(x, y)
+        t = np.array([0.01, 0.015, 0.03, 0.05])
+        if table_problem(as_tuples) is None:
+            np.testing.assert_allclose(as_lists.value(t), np.interp(t, tol, cost), rtol=1e-15)
+        x, y, slopes = points(as_tuples)
+        with pytest.raises(ValueError):
+            x[0] = 1.0  # read-only: the arrays are shared by every later call
+        np.testing.assert_allclose(slopes, np.diff(cost) / np.diff(tol), rtol=1e-15)
+    bad = CostCurve("table", points_tolerance=(0.01, 0.01, 0.05), points_cost=(5.0, 3.0, 2.4))
+    assert "strictly increasing" in table_problem(bad)  # the checks still say what is wrong
+
+
 # --------------------------------------------------------------------------- check_curve
 
 

@@ -14,6 +14,9 @@ References
 from __future__ import annotations
 
 from dataclasses import replace
+from functools import lru_cache
+from typing import NamedTuple
+
 import numpy as np
 
 from .family import RTOL, CurveFamily, CurveSpec, fmt
@@ -23,13 +26,55 @@ __all__ = ["Table", "table_problem", "BETWEEN"]
 BETWEEN = ("interpolate", "choose")
 
 
-def points(curve) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Breakpoints, costs and segment slopes of a table curve."""
-    x = np.asarray(curve.points_tolerance, dtype=float)
-    y = np.asarray(curve.points_cost, dtype=float)
+class _Derived(NamedTuple):
+    """What a table's points imply, worked out once per distinct table (read-only arrays)."""
+
+    x: np.ndarray | None
+    y: np.ndarray | None
+    slopes: np.ndarray | None
+    basic: str | None  # check_table without limits
+    convex: str | None  # table_problem
+
+
+def _derived(curve) -> _Derived:
+    """The table's arrays and checks, cached on its points and ``between``.
+
+    A sweep or a branch and bound asks a table for its points thousands of times; the
+    points are immutable once loaded, so the arrays and the two checks are computed once.
+    """
+    try:
+        return _derived_cached(
+            tuple(curve.points_tolerance), tuple(curve.points_cost), curve.between
+        )
+    except TypeError:  # unhashable parts (a hand-built curve): work it out uncached
+        return _derive(curve.points_tolerance, curve.points_cost, curve.between)
+
+
+@lru_cache(maxsize=4096)
+def _derived_cached(tolerances: tuple, costs: tuple, between: str) -> _Derived:
+    return _derive(tolerances, costs, between)
+
+
+def _derive(tolerances, costs, between) -> _Derived:
+    x = np.array(tolerances, dtype=float)
+    y = np.array(costs, dtype=float)
+    basic = _check_points(x, y, between)
     if x.size < 2 or x.size != y.size:
-        raise ValueError(check_table(curve, None) or "table needs at least 2 points")
-    return x, y, np.diff(y) / np.diff(x)
+        return _Derived(None, None, None, basic, basic)
+    with np.errstate(divide="ignore", invalid="ignore"):  # a bad table: `basic` says why
+        slopes = np.diff(y) / np.diff(x)
+    for a in (x, y, slopes):
+        a.setflags(write=False)
+    convex = basic or _convex_problem(x, y, slopes)
+    return _Derived(x, y, slopes, basic, convex)
+
+
+def points(curve) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Breakpoints, costs and segment slopes of a table curve (read-only arrays)."""
+    d = _derived(curve)
+    if d.x is None:
+        raise ValueError(d.basic or "table needs at least 2 points")
+    return d.x, d.y, d.slopes
 
 
 def range_slack(x: np.ndarray) -> float:
@@ -55,10 +100,24 @@ def _rise_problem(x: np.ndarray, y: np.ndarray) -> str | None:
 
 def check_table(curve, limits) -> str | None:
     """First problem with a table's points, ``between`` and limits, or None."""
-    if curve.between not in BETWEEN:
-        return f"between must be 'interpolate' or 'choose' (got {curve.between!r})"
-    x = np.asarray(curve.points_tolerance, dtype=float)
-    y = np.asarray(curve.points_cost, dtype=float)
+    basic = _derived(curve).basic
+    if basic or limits is None:
+        return basic
+    x = points(curve)[0]
+    lo, hi = (float(v) for v in limits)
+    slack = range_slack(x)
+    if lo < x[0] - slack or hi > x[-1] + slack:
+        return (
+            f"limits [{fmt(lo)}, {fmt(hi)}] reach outside the table's tolerances "
+            f"[{fmt(x[0])}, {fmt(x[-1])}]"
+        )
+    return None
+
+
+def _check_points(x: np.ndarray, y: np.ndarray, between: str) -> str | None:
+    """First problem with a table's points and ``between`` (limits aside), or None."""
+    if between not in BETWEEN:
+        return f"between must be 'interpolate' or 'choose' (got {between!r})"
     if x.size != y.size:
         return f"table has {x.size} tolerances but {y.size} costs"
     if x.size < 2:
@@ -76,7 +135,7 @@ def check_table(curve, limits) -> str | None:
         )
     if np.any(y < 0):
         return f"table costs must be >= 0 (got {fmt(y[y < 0][0])})"
-    if curve.between == "interpolate":
+    if between == "interpolate":
         # interpolated costs are used continuously: a looser tolerance that costs more is
         # an error in the data (a 'choose' table may list such a dominated entry)
         rise = _rise_problem(x, y)
@@ -84,14 +143,6 @@ def check_table(curve, limits) -> str | None:
             return (
                 f"{rise}: an interpolated cost must not rise as the tolerance loosens "
                 '(write between = "choose" if only the listed tolerances exist)'
-            )
-    if limits is not None:
-        lo, hi = (float(v) for v in limits)
-        slack = range_slack(x)
-        if lo < x[0] - slack or hi > x[-1] + slack:
-            return (
-                f"limits [{fmt(lo)}, {fmt(hi)}] reach outside the table's tolerances "
-                f"[{fmt(x[0])}, {fmt(x[-1])}]"
             )
     return None
 
@@ -145,10 +196,10 @@ def table_problem(curve: CurveSpec) -> str | None:
     """
     if curve.curve != Table.name:
         return None
-    basic = check_table(curve, None)
-    if basic:
-        return basic
-    x, y, slopes = points(curve)
+    return _derived(curve).convex
+
+
+def _convex_problem(x: np.ndarray, y: np.ndarray, slopes: np.ndarray) -> str | None:
     rise = _rise_problem(x, y)
     if rise:
         return rise
