@@ -395,12 +395,16 @@ class LimitSweep:
         if hasattr(self.solver, "plan"):  # the discrete solver shares work across the points
             extra = [] if keep is None or np.any(_same_value(values, keep)) else [keep]
             self.solver.plan([self.overrides(values[i]) for i in order] + [self.overrides(v) for v in extra])
-        for i in order:
-            alloc = self.solve(values[i])
-            if keep is not None and _same_value(values[i], keep):
-                self.kept = alloc
-            out[i] = self._point(alloc)
-            tick(1)
+        try:
+            for i in order:
+                alloc = self.solve(values[i])
+                if keep is not None and _same_value(values[i], keep):
+                    self.kept = alloc
+                out[i] = self._point(alloc)
+                tick(1)
+        finally:
+            if hasattr(self.solver, "plan"):
+                self.solver.plan(())  # later solves (the economics, say) are single ones again
         return out
 
     @staticmethod

@@ -348,6 +348,41 @@ def test_sweep_over_cost_tables_worst_case_against_linprog():
     assert [p.status for p in points].count("infeasible") == 1
 
 
+def test_warm_started_solves_over_cost_tables_worst_case_against_linprog():
+    """One solve per limit, each from the last one's λ (as a discrete sweep's polish
+    runs): the root often sits on a table's kink (the spread jumps there), which the
+    bracket must close onto rather than bisect towards. Each point against the linear
+    program in epigraph form (``scipy.optimize.linprog``, HiGHS), and against a cold
+    solve of a fresh solver at the same limit."""
+    from allocator.solve import prepare
+    from allocator.solve.exact import ExactAllocation
+
+    case, nominal = _table_case(formula=False)
+    warm = ExactAllocation(prepare(case, "worst-case"))
+    warm.start_at()
+    assert warm.kinks.size > 0
+    n = case.counts
+    a = np.array([1.0, -1.5, 1.0])
+    m = a.size
+    pieces, piece_rhs = _epigraph(case, m)
+    rooms = np.linspace(0.024, 0.3, 23)
+    for room in rooms:
+        overrides = {"gap": {"upper": nominal + float(room)}}
+        got = warm.solve(overrides)
+        cold = ExactAllocation(prepare(case, "worst-case")).solve(overrides)
+        res = optimize.linprog(
+            np.concatenate([np.zeros(m), n]),
+            A_ub=np.vstack([pieces, np.concatenate([n * np.abs(a), np.zeros(m)])]),
+            b_ub=np.concatenate([piece_rhs, [room]]),
+            bounds=[c.limits for c in case.contributors] + [(None, None)] * m,
+            method="highs",
+        )
+        assert res.status == 0 and got.status == "optimal", (room, got.message, res.message)
+        assert got.total_cost == pytest.approx(res.fun, rel=1e-9), (room, got.total_cost, res.fun)
+        assert got.total_cost == pytest.approx(cold.total_cost, rel=1e-12), room
+        assert got.requirements[0].shadow_upper == pytest.approx(cold.requirements[0].shadow_upper, rel=1e-9)
+
+
 def test_sweep_over_cost_tables_rss_against_slsqp():
     """Tables and a formula under rss: the one-call sweep against SLSQP on the epigraph form."""
     case, nominal = _table_case(formula=True)

@@ -1209,11 +1209,18 @@ class DiscreteAllocation:
 
         A polisher built for a process choice then solves its 1-D dual for all of them
         in one batched call (:meth:`~allocator.solve.exact.ExactAllocation.prime`) when
-        it is used at a second point (the next :data:`PRIMED_POINTS` points); each point still polishes, re-checks and certifies its own
-        answer. An empty sequence forgets the plan.
+        it is used at a second point (the next :data:`PRIMED_POINTS` points), and each
+        polisher's 1-D root search starts from its last root (warm starts); each point
+        still polishes, re-checks and certifies its own answer. An empty sequence
+        forgets the plan and the warm starts (later solves start cold, as a single
+        allocation does).
         """
         self._plan = tuple(overrides_seq)
         self._primed = {}
+        if not self._plan:
+            for solver in self._polishers.values():
+                if getattr(solver, "warm", False):
+                    solver.warm = False
 
     # ------------------------------------------------------------------ solve
 
@@ -1488,6 +1495,17 @@ class DiscreteAllocation:
             solver = continuous_solver(prepare(self._resolved_case(chosen), self.model, held))
         except CaseError:
             solver = None
+        if solver is not None and self._plan and hasattr(solver, "start_at"):
+            # a sweep: the 1-D dual's root from where the latest polish's was (another
+            # choice of processes); a single solve keeps the plain first guess
+            # (or the branch and bound's last multiplier: the same λ for the same requirement)
+            latest = next((p for p in reversed(self._polishers.values()) if getattr(p, "hint", None)), None)
+            if latest is not None:
+                solver.start_at(latest.hint)
+            elif self._lambda_hint is not None and 0.0 < self._lambda_hint < math.inf:
+                solver.start_at(math.log(self._lambda_hint))
+            else:
+                solver.start_at()
         if solver is not None and hasattr(solver, "start_from"):
             # Newton's start: the prices of the latest polish (the same requirement, other
             # processes held), in place of a search from scratch

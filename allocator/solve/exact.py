@@ -29,6 +29,7 @@ import math
 import numpy as np
 
 from .. import stack
+from ..costs.table import points as table_points
 from .problem import AllocationProblem, allowance_with_curvature, mean_shift_allowance
 
 __all__ = [
@@ -46,6 +47,7 @@ __all__ = [
 
 SOLVER_NAME = "lagrange-dual"
 GAP_LIMIT = 1e-8  # Newton's answer counts only with a dual bound this close (else: conic)
+HINT_STEP = 0.02  # first step in log λ when a bracket grows from a neighbouring solve's λ
 _LOG_FLOAT_MAX = math.log(np.finfo(float).max)  # exp() of more overflows
 
 
@@ -249,6 +251,21 @@ class ExactAllocation:
             raise ValueError("the exact dual needs one requirement under worst-case or rss")
         self.problem = problem
         self.dual = SeparableDual(problem)
+        self.kinks = _kinks(self.dual)
+        self.hint = None  # log λ of the last solve
+        self.warm = False  # True: each solve's bracket grows from the last one's λ
+
+    def start_at(self, hint: float | None = None) -> None:
+        """Warm starts, for a sweep of nearby limits: each later solve grows its bracket
+        from the previous solve's log λ (the first from ``hint``, a neighbouring
+        problem's, if given) in place of the first guess from the curves' slopes.
+
+        Any start brackets the same root; a near one takes fewer evaluations (results
+        can differ in the last bits, hence off unless asked for).
+        """
+        self.warm = True
+        if hint is not None and math.isfinite(hint):
+            self.hint = float(hint)
 
     def solve(self, overrides=None):
         """Allocate; returns an :class:`~allocator.solve.result.Allocation`."""
@@ -260,7 +277,11 @@ class ExactAllocation:
         dual.evaluations = 0
         rhs, allowance = dual.rhs(limits)
         primed = getattr(self, "_primed", {}).get(float(rhs[0]))
-        t_free, lam, bound = primed if primed is not None else (x[0] for x in self.roots(rhs[:1]))
+        if primed is None:
+            primed = (x[0] for x in self.roots(rhs[:1], hint=self.hint if self.warm else None))
+        t_free, lam, bound = primed
+        if 0.0 < lam < math.inf:
+            self.hint = math.log(lam)  # with warm starts, the next solve starts here
         t = problem.full(t_free)
         polished, theta = problem.polish(t, limits)
         cost = problem.total_cost(polished)
@@ -301,10 +322,10 @@ class ExactAllocation:
                 rhs.append(float(dual.rhs(limits)[0][0]))
         self._primed = {}
         if rhs:
-            t, lam, bound = self.roots(rhs)
+            t, lam, bound = self.roots(rhs, hint=self.hint if self.warm else None)
             self._primed = {s: (t[k], lam[k], bound[k]) for k, s in enumerate(rhs)}
 
-    def roots(self, rhs):
+    def roots(self, rhs, hint=None):
         """Least-cost free tolerances with ``spread(t) ≤ S``, for many ``S`` at once.
 
         Parameters
@@ -345,13 +366,18 @@ class ExactAllocation:
             tolerances = dual.tolerances(np.exp(x)[:, None] * w)
             return (dual.spreads(tolerances)[:, 0] - target[which]) / scale[which]
 
-        # a first λ from the slopes at the middle of the limits, then widen by decades
-        mid = np.sqrt(dual.lo * dual.hi)
-        slope = -dual.curves.derivative(mid)
-        with np.errstate(divide="ignore", invalid="ignore"):
-            per = slope / (2.0 * w * mid) if dual.squared else slope / w
-        per = per[(w > 0) & np.isfinite(per) & (per > 0)]
-        start = math.log(float(np.median(per)) if per.size else 1.0)
+        if hint is not None and math.isfinite(hint):
+            # a neighbouring solve's log λ: widen from it in growing steps
+            start, step, hinted = float(hint), HINT_STEP, True
+        else:
+            # a first λ from the slopes at the middle of the limits, then widen by decades
+            mid = np.sqrt(dual.lo * dual.hi)
+            slope = -dual.curves.derivative(mid)
+            with np.errstate(divide="ignore", invalid="ignore"):
+                per = slope / (2.0 * w * mid) if dual.squared else slope / w
+            per = per[(w > 0) & np.isfinite(per) & (per > 0)]
+            start, step = math.log(float(np.median(per)) if per.size else 1.0), math.log(10.0)
+            hinted = False
         everyone = np.arange(rows.size)
         x_hi = np.full(rows.size, start)
         f_hi = excess(x_hi, everyone)
@@ -361,28 +387,36 @@ class ExactAllocation:
         decade = math.log(10.0)
         tight = np.zeros(rows.size, dtype=bool)
         rising = f_hi > 0
+        widen = step
         for _ in range(400):
             if not rising.any():
                 break
             k = np.flatnonzero(rising)
             # no finite λ meets it: the requirement leaves exactly the tightest tolerances
             # (diagnose() let them pass up to round-off)
-            ceiling = x_hi[k] + decade >= _LOG_FLOAT_MAX
+            ceiling = x_hi[k] + widen >= _LOG_FLOAT_MAX
             tight[k[ceiling]] = True
             k = k[~ceiling]
-            x_hi[k] += decade
+            if hinted:  # the bracket's lower end: the last λ that fell short
+                x_lo[k], f_lo[k] = x_hi[k], f_hi[k]
+            x_hi[k] += widen
             f_hi[k] = excess(x_hi[k], k)
             rising[:] = False
             rising[k] = f_hi[k] > 0
+            widen = min(4.0 * widen, decade)
         tight |= rising
         falling = ~tight & (f_lo <= 0)
+        widen = step
         for _ in range(400):
             if not falling.any():
                 break
             k = np.flatnonzero(falling)
-            x_lo[k] -= decade
+            if hinted:  # the bracket's upper end: the last λ that met it
+                x_hi[k], f_hi[k] = x_lo[k], f_lo[k]
+            x_lo[k] -= widen
             f_lo[k] = excess(x_lo[k], k)
             falling[k] = f_lo[k] <= 0
+            widen = min(4.0 * widen, decade)
         live = np.flatnonzero(~tight & ~falling)
         stuck = rows[tight]
         t[stuck] = dual.lo
@@ -390,7 +424,10 @@ class ExactAllocation:
         bound[stuck] = math.nan
         if live.size == 0:
             return t, lam, bound
-        x_a, x_b = _bracket_roots(excess, live, x_lo[live], x_hi[live], f_lo[live], f_hi[live])
+        x_a, x_b, f_a, f_b = x_lo[live], x_hi[live], f_lo[live], f_hi[live]
+        if self.kinks.size:
+            x_a, x_b, f_a, f_b = _kink_brackets(excess, live, self.kinks, x_a, x_b, f_a, f_b)
+        x_a, x_b = _bracket_roots(excess, live, x_a, x_b, f_a, f_b)
         lam_a, lam_b = np.exp(x_a), np.exp(x_b)
         t_a, t_b = dual.tolerances(lam_a[:, None] * w), dual.tolerances(lam_b[:, None] * w)
         found = rows[live]
@@ -944,6 +981,71 @@ def _table_pieces(dual: SeparableDual, t_free: np.ndarray):
             piece_hi.append(min(x[k + 1], dual.hi[j]))
             dual.pinned[j] = t_free[j]
     return np.array(inner, dtype=int), np.array(piece_slope, dtype=float), piece_lo, piece_hi
+
+
+def _kinks(dual: SeparableDual) -> np.ndarray:
+    """Worst case: the sorted log λ at which a table contributor's minimiser jumps.
+
+    The minimiser of ``C(t) + λ w t`` over a convex table moves from one listed
+    tolerance to the next where ``λ w`` passes minus a piece's slope ``s_j``, i.e. at
+    ``λ = −s_j / w``; between these λ the spread is continuous. (Under rss the minimiser
+    of ``C(t) + λ w t²`` is continuous in λ: no kinks.)
+    """
+    if dual.squared or dual.weight.shape[0] != 1:
+        return np.empty(0)
+    out = []
+    w = dual.weight[0]
+    for j in dual.curves.tables:
+        if not w[j] > 0:
+            continue
+        _, _, slopes = table_points(dual.curves.curves[j])
+        lam = -np.asarray(slopes) / w[j]
+        out.append(np.log(lam[lam > 0]))
+    return np.unique(np.concatenate(out)) if out else np.empty(0)
+
+
+def _kink_brackets(f, which, kinks, a, b, fa, fb, *, eps: float = 2e-14):
+    """Narrow each bracket ``[a, b]`` (log λ) onto one continuous piece of ``f``.
+
+    ``f`` is evaluated at every kink inside each bracket (one call for all); the
+    bracket becomes the two nearest kinks (or ends) around the sign change. Where the
+    root is the jump itself (``f`` changes sign across a kink), the bracket closes to
+    ``kink ± eps·(1 + |kink|)``, narrower than the root finder's tolerance: bisecting
+    onto a jump would take some 45 halvings. Elsewhere ``f`` is continuous on the
+    narrowed bracket and regula falsi converges fast.
+    """
+    a, b, fa, fb = (np.array(x, dtype=float) for x in (a, b, fa, fb))
+    lo_k = np.searchsorted(kinks, a, side="right")
+    hi_k = np.searchsorted(kinks, b, side="left")
+    counts = np.maximum(hi_k - lo_k, 0)
+    if counts.sum():
+        rows = np.repeat(np.arange(a.size), counts)
+        first = np.repeat(lo_k - np.cumsum(counts) + counts, counts)
+        xs = kinks[np.arange(rows.size) + first]
+        fs = f(xs, which[rows])
+        above = fs > 0
+        # f is non-increasing: the last kink above zero and the first at or below it
+        for r, x, fx, up in zip(rows, xs, fs, above):
+            if up and x > a[r]:
+                a[r], fa[r] = x, fx
+            elif not up and x < b[r]:
+                b[r], fb[r] = x, fx
+    # a jump across a kink at either end: test just inside each end (one call for all)
+    n = a.size
+    below_b = b - eps * (1.0 + np.abs(b))
+    above_a = a + eps * (1.0 + np.abs(a))
+    probe = np.concatenate([below_b, above_a])
+    at_kink = np.concatenate([np.isin(b, kinks) & (below_b > a), np.isin(a, kinks) & (above_a < b)])
+    k = np.flatnonzero(at_kink)
+    if k.size:
+        fp = f(probe[k], which[k % n])
+        for idx, fx in zip(k, fp):
+            r = idx % n
+            if idx < n and fx > 0:  # still above zero just below the kink b: the root is the jump
+                a[r], fa[r] = probe[idx], fx
+            elif idx >= n and fx <= 0:  # already at or below zero just above the kink a
+                b[r], fb[r] = probe[idx], fx
+    return a, b, fa, fb
 
 
 def _bracket_roots(f, which, a, b, fa, fb, *, xtol: float = 1e-13, maxiter: int = 300):
