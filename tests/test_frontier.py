@@ -9,7 +9,8 @@ What each check compares against (outside the code under test):
   written into the requirement (a fresh solver, no overrides, no batching), to 1e-7;
 - the one-call sweep of the exact dual against ``scipy.optimize.minimize`` (SLSQP) on an
   invented case, and on convex cost tables against ``scipy.optimize.linprog`` (worst case:
-  a linear program in epigraph form) and SLSQP on the epigraph form (rss);
+  a linear program in epigraph form) and SLSQP on the epigraph form (rss); the same for
+  warm-started solves one limit at a time (as a discrete sweep's polish runs them);
 - model ordering: the mean-shift feasible set lies inside the rss one (the band of means
   contains the nominal; Greenwood & Chase 1987, estimated mean shift), so rss ≤ mean shift
   always; worst case ≥ mean shift where exact enumeration of the tolerance box's vertices
@@ -381,6 +382,56 @@ def test_warm_started_solves_over_cost_tables_worst_case_against_linprog():
         assert got.total_cost == pytest.approx(res.fun, rel=1e-9), (room, got.total_cost, res.fun)
         assert got.total_cost == pytest.approx(cold.total_cost, rel=1e-12), room
         assert got.requirements[0].shadow_upper == pytest.approx(cold.requirements[0].shadow_upper, rel=1e-9)
+
+
+def test_warm_started_solves_over_tables_and_a_formula_worst_case_against_slsqp():
+    """Tables with a smooth formula under worst case: the spread jumps at the tables'
+    kinks and moves continuously between them, so the root is sometimes a jump, sometimes
+    strictly between kinks. One warm-started solve per limit against SLSQP on the
+    epigraph form (Kraft 1988, through scipy.optimize.minimize) and against a cold solve."""
+    from allocator.solve import prepare
+    from allocator.solve.exact import ExactAllocation
+
+    case, nominal = _table_case(formula=True)
+    warm = ExactAllocation(prepare(case, "worst-case"))
+    warm.start_at()
+    n = case.counts
+    a = np.array([1.0, -1.5, 1.0, -0.5])
+    m = a.size
+    pieces, piece_rhs = _epigraph(case, m - 1)
+    formula = case.contributors[-1].cost
+    tightest = np.array([c.limits[0] for c in case.contributors])
+    start = np.concatenate([100.0 * tightest, [float(np.interp(x, c.cost.points_tolerance, c.cost.points_cost))
+                                               for x, c in zip(tightest, case.contributors[:3])]])
+    jumps = 0
+    for room in np.linspace(0.03, 0.3, 19):
+        overrides = {"gap": {"upper": nominal + float(room)}}
+        got = warm.solve(overrides)
+        cold = ExactAllocation(prepare(case, "worst-case")).solve(overrides)
+
+        def cost(v):  # v = (100 t_0..100 t_3, z_0..z_2): tables through z, the formula directly
+            return float(n[:3] @ v[m:] + n[3] * formula.value(v[3] / 100.0))
+
+        def tz(v):
+            return np.concatenate([v[: m - 1] / 100.0, v[m:]])
+
+        cons = [
+            {"type": "ineq", "fun": lambda v: piece_rhs - pieces @ tz(v)},
+            {"type": "ineq", "fun": lambda v, room=room: room - float(np.sum(n * np.abs(a) * v[:m] / 100.0))},
+        ]
+        res = optimize.minimize(cost, start, method="SLSQP",
+                                bounds=[(100.0 * lo, 100.0 * hi) for lo, hi in (c.limits for c in case.contributors)]
+                                + [(0.0, 10.0)] * (m - 1),
+                                constraints=cons, options={"ftol": 1e-12, "maxiter": 1000})
+        assert res.success, res.message
+        assert got.status == "optimal", (room, got.message)
+        assert got.total_cost == pytest.approx(res.fun, rel=1e-7), (room, got.total_cost, res.fun)
+        assert got.total_cost == pytest.approx(cold.total_cost, rel=1e-12), room
+        t = got.allocated_array()[:3]
+        on_kink = [np.min(np.abs(np.array(c.cost.points_tolerance) - x)) < 1e-12
+                   for x, c in zip(t, case.contributors[:3])]
+        jumps += not all(on_kink)  # a table part strictly inside a piece: the root was a jump
+    assert 0 < jumps < 19  # both kinds of root were met
 
 
 def test_sweep_over_cost_tables_rss_against_slsqp():

@@ -1012,7 +1012,8 @@ def _kink_brackets(f, which, kinks, a, b, fa, fb, *, eps: float = 2e-14):
     root is the jump itself (``f`` changes sign across a kink), the bracket closes to
     ``kink ± eps·(1 + |kink|)``, narrower than the root finder's tolerance: bisecting
     onto a jump would take some 45 halvings. Elsewhere ``f`` is continuous on the
-    narrowed bracket and regula falsi converges fast.
+    narrowed bracket and regula falsi converges fast. Every bracket returned still has
+    ``f(a) > 0 >= f(b)``.
     """
     a, b, fa, fb = (np.array(x, dtype=float) for x in (a, b, fa, fb))
     lo_k = np.searchsorted(kinks, a, side="right")
@@ -1023,13 +1024,16 @@ def _kink_brackets(f, which, kinks, a, b, fa, fb, *, eps: float = 2e-14):
         first = np.repeat(lo_k - np.cumsum(counts) + counts, counts)
         xs = kinks[np.arange(rows.size) + first]
         fs = f(xs, which[rows])
-        above = fs > 0
-        # f is non-increasing: the last kink above zero and the first at or below it
-        for r, x, fx, up in zip(rows, xs, fs, above):
-            if up and x > a[r]:
-                a[r], fa[r] = x, fx
-            elif not up and x < b[r]:
-                b[r], fb[r] = x, fx
+        # per row, the largest kink with f above zero and the smallest at or below it
+        up = fs > 0
+        last_up = np.full(a.size, -1)
+        np.maximum.at(last_up, rows[up], np.flatnonzero(up))
+        first_down = np.full(a.size, rows.size)
+        np.minimum.at(first_down, rows[~up], np.flatnonzero(~up))
+        move = (last_up >= 0) & (xs[np.maximum(last_up, 0)] > a)
+        a[move], fa[move] = xs[last_up[move]], fs[last_up[move]]
+        move = (first_down < rows.size) & (xs[np.minimum(first_down, rows.size - 1)] < b)
+        b[move], fb[move] = xs[first_down[move]], fs[first_down[move]]
     # a jump across a kink at either end: test just inside each end (one call for all)
     n = a.size
     below_b = b - eps * (1.0 + np.abs(b))
@@ -1038,13 +1042,15 @@ def _kink_brackets(f, which, kinks, a, b, fa, fb, *, eps: float = 2e-14):
     at_kink = np.concatenate([np.isin(b, kinks) & (below_b > a), np.isin(a, kinks) & (above_a < b)])
     k = np.flatnonzero(at_kink)
     if k.size:
-        fp = f(probe[k], which[k % n])
-        for idx, fx in zip(k, fp):
-            r = idx % n
-            if idx < n and fx > 0:  # still above zero just below the kink b: the root is the jump
-                a[r], fa[r] = probe[idx], fx
-            elif idx >= n and fx <= 0:  # already at or below zero just above the kink a
-                b[r], fb[r] = probe[idx], fx
+        fp = np.full(2 * n, np.nan)
+        fp[k] = f(probe[k], which[k % n])
+        jump_b = fp[:n] > 0  # still above zero just below the kink b: the root is that jump
+        jump_a = fp[n:] <= 0  # already at or below zero just above the kink a
+        both = jump_a & jump_b  # only round-off makes both hold: keep the plain bracket
+        jump_b &= ~both
+        jump_a &= ~both
+        a[jump_b], fa[jump_b] = below_b[jump_b], fp[:n][jump_b]
+        b[jump_a], fb[jump_a] = above_a[jump_a], fp[n:][jump_a]
     return a, b, fa, fb
 
 
