@@ -321,6 +321,53 @@ def _epigraph(case, t_count):
     return np.array(rows), np.array(rhs)
 
 
+def _epigraph_linprog(case, room):
+    """Worst case over the three tables (a = 1, −1.5, 1): the linear program in epigraph
+    form, by ``scipy.optimize.linprog`` (HiGHS); scipy's result."""
+    n = case.counts
+    a = np.array([1.0, -1.5, 1.0])
+    m = a.size
+    pieces, piece_rhs = _epigraph(case, m)
+    return optimize.linprog(
+        np.concatenate([np.zeros(m), n]),
+        A_ub=np.vstack([pieces, np.concatenate([n * np.abs(a), np.zeros(m)])]),
+        b_ub=np.concatenate([piece_rhs, [room]]),
+        bounds=[c.limits for c in case.contributors] + [(None, None)] * m,
+        method="highs",
+    )
+
+
+def _epigraph_slsqp(case, spread_left):
+    """Least cost of the three-table-plus-formula case by SLSQP on the epigraph form.
+
+    ``spread_left(t)`` >= 0 is the requirement (t the four tolerances); the tables' costs
+    are epigraph variables z_i over their pieces, the formula is costed directly. Returns
+    scipy's result (``fun`` the least cost).
+    """
+    n = case.counts
+    m = len(case.contributors)
+    pieces, piece_rhs = _epigraph(case, m - 1)
+    formula = case.contributors[-1].cost
+
+    def cost(v):  # v = (100 t_0..100 t_3, z_0..z_2): tables through z, the formula directly
+        return float(n[: m - 1] @ v[m:] + n[m - 1] * formula.value(v[m - 1] / 100.0))
+
+    def tz(v):
+        return np.concatenate([v[: m - 1] / 100.0, v[m:]])
+
+    cons = [
+        {"type": "ineq", "fun": lambda v: piece_rhs - pieces @ tz(v)},
+        {"type": "ineq", "fun": lambda v: spread_left(v[:m] / 100.0)},
+    ]
+    tightest = np.array([c.limits[0] for c in case.contributors])
+    start = np.concatenate([100.0 * tightest, [float(np.interp(x, c.cost.points_tolerance, c.cost.points_cost))
+                                               for x, c in zip(tightest, case.contributors[: m - 1])]])
+    return optimize.minimize(cost, start, method="SLSQP",
+                             bounds=[(100.0 * lo, 100.0 * hi) for lo, hi in (c.limits for c in case.contributors)]
+                             + [(0.0, 10.0)] * (m - 1),
+                             constraints=cons, options={"ftol": 1e-12, "maxiter": 1000})
+
+
 def test_sweep_over_cost_tables_worst_case_against_linprog():
     """Tables take the one-call sweep too; worst case is then a linear program (HiGHS)."""
     case, nominal = _table_case(formula=False)
@@ -328,19 +375,8 @@ def test_sweep_over_cost_tables_worst_case_against_linprog():
     assert sweep.batch is not None  # every point in one call of the exact dual
     rooms = [0.015, 0.03, 0.06, 0.1, 0.16, 0.25, 0.4, 0.6]  # the tightest spread is 0.023
     points = sweep.sweep([nominal + r for r in rooms])
-    n = case.counts
-    a = np.array([1.0, -1.5, 1.0])
-    m = a.size
-    pieces, piece_rhs = _epigraph(case, m)
     for value, point in zip(rooms, points):
-        room = min(value, 0.5)  # the lower limit is 0.5 below the nominal
-        res = optimize.linprog(
-            np.concatenate([np.zeros(m), n]),
-            A_ub=np.vstack([pieces, np.concatenate([n * np.abs(a), np.zeros(m)])]),
-            b_ub=np.concatenate([piece_rhs, [room]]),
-            bounds=[c.limits for c in case.contributors] + [(None, None)] * m,
-            method="highs",
-        )
+        res = _epigraph_linprog(case, min(value, 0.5))  # the lower limit is 0.5 below the nominal
         if res.status == 2:
             assert point.status == "infeasible", (value, point)
             continue
@@ -362,22 +398,12 @@ def test_warm_started_solves_over_cost_tables_worst_case_against_linprog():
     warm = ExactAllocation(prepare(case, "worst-case"))
     warm.start_at()
     assert warm.kinks.size > 0
-    n = case.counts
-    a = np.array([1.0, -1.5, 1.0])
-    m = a.size
-    pieces, piece_rhs = _epigraph(case, m)
     rooms = np.linspace(0.024, 0.3, 23)
     for room in rooms:
         overrides = {"gap": {"upper": nominal + float(room)}}
         got = warm.solve(overrides)
         cold = ExactAllocation(prepare(case, "worst-case")).solve(overrides)
-        res = optimize.linprog(
-            np.concatenate([np.zeros(m), n]),
-            A_ub=np.vstack([pieces, np.concatenate([n * np.abs(a), np.zeros(m)])]),
-            b_ub=np.concatenate([piece_rhs, [room]]),
-            bounds=[c.limits for c in case.contributors] + [(None, None)] * m,
-            method="highs",
-        )
+        res = _epigraph_linprog(case, float(room))
         assert res.status == 0 and got.status == "optimal", (room, got.message, res.message)
         assert got.total_cost == pytest.approx(res.fun, rel=1e-9), (room, got.total_cost, res.fun)
         assert got.total_cost == pytest.approx(cold.total_cost, rel=1e-12), room
@@ -397,32 +423,12 @@ def test_warm_started_solves_over_tables_and_a_formula_worst_case_against_slsqp(
     warm.start_at()
     n = case.counts
     a = np.array([1.0, -1.5, 1.0, -0.5])
-    m = a.size
-    pieces, piece_rhs = _epigraph(case, m - 1)
-    formula = case.contributors[-1].cost
-    tightest = np.array([c.limits[0] for c in case.contributors])
-    start = np.concatenate([100.0 * tightest, [float(np.interp(x, c.cost.points_tolerance, c.cost.points_cost))
-                                               for x, c in zip(tightest, case.contributors[:3])]])
     jumps = 0
     for room in np.linspace(0.03, 0.3, 19):
         overrides = {"gap": {"upper": nominal + float(room)}}
         got = warm.solve(overrides)
         cold = ExactAllocation(prepare(case, "worst-case")).solve(overrides)
-
-        def cost(v):  # v = (100 t_0..100 t_3, z_0..z_2): tables through z, the formula directly
-            return float(n[:3] @ v[m:] + n[3] * formula.value(v[3] / 100.0))
-
-        def tz(v):
-            return np.concatenate([v[: m - 1] / 100.0, v[m:]])
-
-        cons = [
-            {"type": "ineq", "fun": lambda v: piece_rhs - pieces @ tz(v)},
-            {"type": "ineq", "fun": lambda v, room=room: room - float(np.sum(n * np.abs(a) * v[:m] / 100.0))},
-        ]
-        res = optimize.minimize(cost, start, method="SLSQP",
-                                bounds=[(100.0 * lo, 100.0 * hi) for lo, hi in (c.limits for c in case.contributors)]
-                                + [(0.0, 10.0)] * (m - 1),
-                                constraints=cons, options={"ftol": 1e-12, "maxiter": 1000})
+        res = _epigraph_slsqp(case, lambda t, room=room: room - float(np.sum(n * np.abs(a) * t)))
         assert res.success, res.message
         assert got.status == "optimal", (room, got.message)
         assert got.total_cost == pytest.approx(res.fun, rel=1e-7), (room, got.total_cost, res.fun)
@@ -443,29 +449,9 @@ def test_sweep_over_cost_tables_rss_against_slsqp():
     points = sweep.sweep([nominal + r for r in rooms])
     n, f = case.counts, case.sigma_factors
     a = np.array([1.0, -1.5, 1.0, -0.5])
-    m = a.size
-    pieces, piece_rhs = _epigraph(case, m - 1)
-    formula = case.contributors[-1].cost
     for value, point in zip(rooms, points):
         sigma_max = _two_sided_sigma(0.0, -0.5, value, 100e-6)
-
-        def cost(v):  # v = (100 t_0..100 t_3, z_0..z_2): tables through z, the formula directly
-            return float(n[:3] @ v[m:] + n[3] * formula.value(v[3] / 100.0))
-
-        def tz(v):
-            return np.concatenate([v[: m - 1] / 100.0, v[m:]])
-
-        cons = [
-            {"type": "ineq", "fun": lambda v: piece_rhs - pieces @ tz(v)},
-            {"type": "ineq", "fun": lambda v: 1.0 - np.sum(n * (a * f * v[:m] / 100.0) ** 2) / sigma_max**2},
-        ]
-        tightest = np.array([c.limits[0] for c in case.contributors])
-        start = np.concatenate([100.0 * tightest, [float(np.interp(x, c.cost.points_tolerance, c.cost.points_cost))
-                                                   for x, c in zip(tightest, case.contributors[:3])]])
-        res = optimize.minimize(cost, start, method="SLSQP",
-                                bounds=[(100.0 * lo, 100.0 * hi) for lo, hi in (c.limits for c in case.contributors)]
-                                + [(0.0, 10.0)] * (m - 1),
-                                constraints=cons, options={"ftol": 1e-12, "maxiter": 1000})
+        res = _epigraph_slsqp(case, lambda t, s=sigma_max: 1.0 - np.sum(n * (a * f * t) ** 2) / s**2)
         assert res.success, res.message
         assert point.status == "optimal", (value, point)
         assert point.total_cost == pytest.approx(res.fun, rel=1e-7), (value, point.total_cost, res.fun)
