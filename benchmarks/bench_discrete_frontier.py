@@ -14,7 +14,9 @@ stack model:
              lower bound proven, the current-design solve)     goal: 25 points <= 10 x
 
 Both are timed in this process, one after the other, in CPU seconds (HiGHS runs in the
-process; on a shared machine CPU time is the steadier figure) and in wall seconds. The
+process; on a shared machine CPU time is the steadier figure) and in wall seconds, each
+the median of --repeat runs (default 5; a single allocation takes a few milliseconds, so
+one run is at the mercy of the clock's and the machine's noise). The
 points' statuses are printed: each must be 'optimal' or 'infeasible' (a point that could
 not be met), never 'failed'.
 
@@ -41,10 +43,15 @@ CASE = Path(__file__).resolve().parent / "nine_part_discrete.toml"
 MODELS = ("worst-case", "rss", "mean-shift")
 
 
-def _timed(func):
-    cpu, wall = time.process_time(), time.perf_counter()
-    out = func()
-    return out, time.process_time() - cpu, time.perf_counter() - wall
+def _timed(func, repeat=1):
+    """``(result, cpu, wall)``: the medians of ``repeat`` runs (each a fresh call)."""
+    cpus, walls = [], []
+    for _ in range(repeat):
+        cpu, wall = time.process_time(), time.perf_counter()
+        out = func()
+        cpus.append(time.process_time() - cpu)
+        walls.append(time.perf_counter() - wall)
+    return out, statistics.median(cpus), statistics.median(walls)
 
 
 def main() -> None:
@@ -52,6 +59,7 @@ def main() -> None:
     parser.add_argument("--points", type=int, default=25)
     parser.add_argument("--model", action="append", choices=MODELS, default=None)
     parser.add_argument("--quick", action="store_true", help="6 points instead of 25")
+    parser.add_argument("--repeat", type=int, default=5, help="median of this many runs of each")
     args = parser.parse_args()
     points = 6 if args.quick else args.points
     case = load_case(CASE)
@@ -64,15 +72,15 @@ def main() -> None:
     print("-" * len(header))
     rows = []
     for model in args.model or MODELS:
-        single, a_cpu, a_wall = _timed(lambda: allocate(case, model))
-        front, f_cpu, f_wall = _timed(lambda: frontier(case, models=(model,), points=points))
+        single, a_cpu, a_wall = _timed(lambda: allocate(case, model), args.repeat)
+        front, f_cpu, f_wall = _timed(lambda: frontier(case, models=(model,), points=points), args.repeat)
         statuses = front.statuses[model]
         bad = [s for s in statuses if s not in ("optimal", "infeasible")]
         summary = f"{statuses.count('optimal')} optimal, {statuses.count('infeasible')} infeasible"
         if bad:
             summary += f", {len(bad)} NOT solved: {front.message}"
-        print(f"{model:<11} {a_cpu:>12.2f} {f_cpu:>12.2f} {f_cpu / a_cpu:>6.1f}   "
-              f"{a_wall:>13.2f} {f_wall:>13.2f} {f_wall / a_wall:>6.1f}  {summary}"
+        print(f"{model:<11} {a_cpu:>12.4f} {f_cpu:>12.3f} {f_cpu / a_cpu:>6.1f}   "
+              f"{a_wall:>13.4f} {f_wall:>13.3f} {f_wall / a_wall:>6.1f}  {summary}"
               f" (single: {single.status}, gap {single.gap:.2g})")
         rows.append((model, front, f_cpu))
     print("\ncontext: a fresh allocate() at each of the frontier's limits (CPU seconds)")
