@@ -215,6 +215,46 @@ def rtol_for(model: str) -> float:
 # --------------------------------------------------------------------------- invented cases
 
 
+def slsqp_in_log_t(ref: Reference, margin, *, jac=None, margin_jac=None, accept=None,
+                   starts: int = 3, seed: int = 0) -> float | None:
+    """Least cost SLSQP finds over ``x = log t`` of the free parts (None: none accepted).
+
+    ``margin(x)`` (>= 0 where the requirements are met) is the constraint, with optional
+    Jacobians ``jac`` (of the cost) and ``margin_jac``. The first start is the tightest
+    tolerances, the others random in the tighter half (``seed``). ``accept(x, full)``
+    returns the ``x`` to cost (e.g. moved onto the tests' own check), or None to drop a
+    run; the default keeps the clipped answer as it is.
+    """
+    from scipy import optimize
+
+    free = ~ref.fixed
+    lo, hi = np.log(ref.lo[free]), np.log(ref.hi[free])
+
+    def full(x):
+        t = ref.held.copy()
+        t[free] = np.exp(x)
+        return t
+
+    def cost(x):
+        return float(ref.cost(full(x))[0])
+
+    rng = np.random.default_rng(seed)
+    best = None
+    constraint = {"type": "ineq", "fun": lambda x: margin(full(x))}
+    if margin_jac is not None:
+        constraint["jac"] = lambda x: margin_jac(full(x))
+    for k in range(starts):
+        x0 = lo if k == 0 else rng.uniform(lo, 0.5 * (lo + hi))
+        out = optimize.minimize(cost, x0, jac=None if jac is None else (lambda x: jac(full(x))),
+                                method="SLSQP", bounds=list(zip(lo, hi)), constraints=[constraint],
+                                options={"ftol": 1e-14, "maxiter": 500})
+        x = np.clip(out.x, lo, hi)
+        x = x if accept is None else accept(x, full)
+        if x is not None and (best is None or cost(x) < best):
+            best = cost(x)
+    return best
+
+
 def _pick(rng, options, weights=None):
     return options[int(rng.choice(len(options), p=weights))]
 

@@ -21,7 +21,7 @@ from allocator.model import CostCurve, Requirement
 from allocator.solve import allocate, prepare
 from allocator.solve.continuous import CompiledAllocation
 from allocator.solve.multipliers import MultiplierNewton, applicable
-from helpers import Reference, build_case, unit_cost_slope
+from helpers import Reference, build_case, slsqp_in_log_t, unit_cost_slope
 
 
 def formula_case(seed: int, model: str, size: int = 24, count: int = 6):
@@ -42,29 +42,19 @@ def slsqp_cost(case, model: str, starts: int = 3, seed: int = 0) -> float | None
     """Least cost SLSQP finds at a point the tests' own check calls feasible (None: none)."""
     ref = Reference(case, model)
     free = ~ref.fixed
-    lo, hi = np.log(ref.lo[free]), np.log(ref.hi[free])
 
-    def full(x):
-        t = ref.held.copy()
-        t[free] = np.exp(x)
-        return t
-
-    def cost(x):
-        return float(ref.cost(full(x))[0])
-
-    def grad(x):
-        t = full(x)
+    def grad(t):  # d cost / d log t of the free parts
         return np.array([ref.n[i] * unit_cost_slope(ref.curves[i], t[i]) for i in np.flatnonzero(free)]) * t[free]
 
     abs_a = np.abs(ref.a)
     if model == "worst-case":
         room = ref.room()
 
-        def margin(x):
-            return 1.0 - (full(x) * ref.n) @ abs_a.T / room
+        def margin(t):
+            return 1.0 - (t * ref.n) @ abs_a.T / room
 
-        def margin_jac(x):
-            return -(abs_a * ref.n / room[:, None])[:, free] * np.exp(x)
+        def margin_jac(t):
+            return -(abs_a * ref.n / room[:, None])[:, free] * t[free]
     else:
         # the largest σ each requirement allows (two-sided normal fallout, scipy.stats)
         sigma_max = []
@@ -84,25 +74,19 @@ def slsqp_cost(case, model: str, starts: int = 3, seed: int = 0) -> float | None
         sigma_max = np.array(sigma_max)
         w = ref.a**2 * ref.f**2 * ref.n
 
-        def margin(x):
-            return 1.0 - np.sqrt(w @ full(x) ** 2) / sigma_max
+        def margin(t):
+            return 1.0 - np.sqrt(w @ t**2) / sigma_max
 
-        def margin_jac(x):
-            t = full(x)
+        def margin_jac(t):
             sigma = np.sqrt(w @ t**2)
-            return -(w * t / (sigma * sigma_max)[:, None])[:, free] * np.exp(x)
+            return -(w * t / (sigma * sigma_max)[:, None])[:, free] * t[free]
 
-    rng = np.random.default_rng(seed)
-    best = None
-    for k in range(starts):
-        x0 = lo if k == 0 else rng.uniform(lo, 0.5 * (lo + hi))
-        out = optimize.minimize(cost, x0, jac=grad, method="SLSQP", bounds=list(zip(lo, hi)),
-                                constraints=[{"type": "ineq", "fun": margin, "jac": margin_jac}],
-                                options={"ftol": 1e-14, "maxiter": 500})
-        x = np.clip(out.x, lo, hi)
-        if ref.feasible(full(x), rtol=1e-9 if model == "worst-case" else 1e-6)[0] and (best is None or cost(x) < best):
-            best = cost(x)
-    return best
+    rtol = 1e-9 if model == "worst-case" else 1e-6
+
+    def accept(x, full):  # only points the tests' own check calls feasible
+        return x if ref.feasible(full(x), rtol=rtol)[0] else None
+
+    return slsqp_in_log_t(ref, margin, jac=grad, margin_jac=margin_jac, accept=accept, starts=starts, seed=seed)
 
 
 CASES = [(seed, model) for seed in (7, 12) for model in ("worst-case", "rss", "mean-shift")]
