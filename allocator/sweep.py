@@ -393,8 +393,7 @@ class LimitSweep:
         out: list[_Point | None] = [None] * values.size
         order = range(values.size - 1, -1, -1) if self.vary == "lower" else range(values.size)
         if hasattr(self.solver, "plan"):  # the discrete solver shares work across the points
-            extra = [] if keep is None or np.any(_same_value(values, keep)) else [keep]
-            self.solver.plan([self.overrides(values[i]) for i in order] + [self.overrides(v) for v in extra])
+            self.solver.plan([self.overrides(values[i]) for i in order])
         try:
             for i in order:
                 alloc = self.solve(values[i])

@@ -1131,6 +1131,21 @@ def test_nine_part_discrete_frontier_equals_independent_allocations(model):
 def _two_process_case():
     return body_hub_plate_case(("worst-case", "rss"))
 
+
+@pytest.mark.parametrize("model", ["worst-case", "rss"])
+def test_solves_after_a_process_sweep_equal_a_fresh_solver_bit_for_bit(model):
+    """A sweep shares warm starts and roots solved ahead between its points; once it ends,
+    a solve on the same solver (the frontier's current design, the economics) must be the
+    single allocation a fresh solver gives: same floats, not merely close."""
+    case = _two_process_case()
+    sweep = LimitSweep(case, model, "clearance", "upper")
+    sweep.sweep(np.linspace(2.33, 2.45, 9))
+    for value in (2.35, 2.4, 2.445):  # 2.35 is the case's own limit (the current design)
+        after = sweep.solve(value)
+        fresh = allocate(case, model, overrides={"clearance": {"upper": value}})
+        assert after.total_cost == fresh.total_cost, value
+        np.testing.assert_array_equal(after.allocated_array(), fresh.allocated_array())
+
 @pytest.mark.parametrize("model", ["worst-case", "rss"])
 def test_process_frontier_against_enumerated_process_combinations(model):
     # Reference: every process combination (itertools.product) solved as a continuous

@@ -43,7 +43,6 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from .. import costs, stack
-from ..costs.family import SmoothFamily
 from .problem import mean_shift_allowance
 
 __all__ = ["OptionSearch", "MAX_NODES"]
@@ -122,14 +121,6 @@ class _Entries:
         self.lo = np.array([o.limits[0] for o in opts], dtype=float)
         self.hi = np.array([o.limits[1] for o in opts], dtype=float)
         self.curves = CurveSet([opts[k].curve for k in self.formula]) if self.formula.size else None
-        # the formula entries per family, with their limits: per_entry asks each family's
-        # closed forms directly (the same arithmetic as exact.minimise_price and
-        # CurveSet.value, without their per-call dispatch: the bounds call it thousands of times)
-        self.groups = []
-        if self.curves is not None:
-            lo, hi = self.lo[self.formula], self.hi[self.formula]
-            self.groups = [(fam, idx, p, lo[idx], hi[idx]) for fam, idx, p in self.curves.groups]
-            self.fused = all(isinstance(fam, SmoothFamily) for fam, *_ in self.groups)
         self.tables = []
         for k in np.flatnonzero(self.kind == 2):  # linear between breakpoints
             o = opts[k]
@@ -146,25 +137,12 @@ class _Entries:
         price = lam * weight / n
         k = self.points
         t[k], cost[k] = self.t_point[k], n[k] * self.c_point[k]
-        if self.formula.size and self.fused:
-            k = self.formula
-            pk = price[k]
-            tk, ck = np.empty(k.size), np.empty(k.size)
-            with np.errstate(divide="ignore", over="ignore", invalid="ignore"):
-                for fam, idx, p, lo, hi in self.groups:
-                    s = pk[idx]
-                    # C'(t) = −price (m = 1) or C'(t) = −2·price·t (m = 2); nothing pulls
-                    # where the price is not positive or no root exists: the loosest limit
-                    x = fam.slope_root(p, s) if m == 1 else fam.quadratic_root(p, 2.0 * s)
-                    x = np.clip(np.where(np.isnan(x) | (s <= 0), hi, x), lo, hi)
-                    tk[idx], ck[idx] = x, fam.value(p, x)
-            t[k], cost[k] = tk, n[k] * ck
-        elif self.formula.size:
+        if self.formula.size:
             from .exact import minimise_price
 
             k = self.formula
-            tk = minimise_price(self.curves, price[k], self.lo[k], self.hi[k], m)
-            t[k], cost[k] = tk, n[k] * self.curves.value(tk)
+            t[k], ck = minimise_price(self.curves, price[k], self.lo[k], self.hi[k], m)
+            cost[k] = n[k] * ck
         k = self.free
         t[k] = np.where(weight[k] > 0, self.lo[k], self.hi[k])
         for k, x, c in self.tables:

@@ -513,9 +513,8 @@ class _LagrangianTerms:
             from .exact import minimise_price
 
             k = self.formula
-            tk = minimise_price(self.curves, price[k], self.lo[k], self.hi[k], m)
-            t[k] = tk
-            cost[k] = n[k] * self.curves.value(tk)
+            t[k], ck = minimise_price(self.curves, price[k], self.lo[k], self.hi[k], m)
+            cost[k] = n[k] * ck
         if self.free.size:
             k = self.free
             t[k] = np.where(w[k] > 0, self.lo[k], self.hi[k])
@@ -1212,15 +1211,15 @@ class DiscreteAllocation:
         it is used at a second point (the next :data:`PRIMED_POINTS` points), and each
         polisher's 1-D root search starts from its last root (warm starts); each point
         still polishes, re-checks and certifies its own answer. An empty sequence
-        forgets the plan and the warm starts (later solves start cold, as a single
-        allocation does).
+        forgets the plan, the warm starts and the roots solved ahead (later solves are
+        single ones, bit for bit as a fresh solver's).
         """
         self._plan = tuple(overrides_seq)
         self._primed = {}
         if not self._plan:
             for solver in self._polishers.values():
-                if getattr(solver, "warm", False):
-                    solver.warm = False
+                if hasattr(solver, "end_sweep"):
+                    solver.end_sweep()
 
     # ------------------------------------------------------------------ solve
 

@@ -29,6 +29,7 @@ import math
 import numpy as np
 
 from .. import stack
+from ..costs.family import SmoothFamily
 from ..costs.table import points as table_points
 from .problem import AllocationProblem, allowance_with_curvature, mean_shift_allowance
 
@@ -254,6 +255,7 @@ class ExactAllocation:
         self.kinks = _kinks(self.dual)
         self.hint = None  # log λ of the last solve
         self.warm = False  # True: each solve's bracket grows from the last one's λ
+        self._primed = {}  # rhs -> (t, λ, bound) solved ahead by prime()
 
     def start_at(self, hint: float | None = None) -> None:
         """Warm starts, for a sweep of nearby limits: each later solve grows its bracket
@@ -267,6 +269,12 @@ class ExactAllocation:
         if hint is not None and math.isfinite(hint):
             self.hint = float(hint)
 
+    def end_sweep(self) -> None:
+        """Back to single solves: no warm start and no roots solved ahead by :meth:`prime`
+        (a later solve is then bit for bit the one a fresh solver gives)."""
+        self.warm = False
+        self._primed = {}
+
     def solve(self, overrides=None):
         """Allocate; returns an :class:`~allocator.solve.result.Allocation`."""
         problem, dual = self.problem, self.dual
@@ -276,7 +284,7 @@ class ExactAllocation:
             return problem.infeasible(limits, reason, SOLVER_NAME)
         dual.evaluations = 0
         rhs, allowance = dual.rhs(limits)
-        primed = getattr(self, "_primed", {}).get(float(rhs[0]))
+        primed = self._primed.get(float(rhs[0]))
         if primed is None:
             primed = (x[0] for x in self.roots(rhs[:1], hint=self.hint if self.warm else None))
         t_free, lam, bound = primed
@@ -1107,19 +1115,38 @@ def minimise_linear_price(cs, s, lo, hi) -> np.ndarray:
     return np.clip(cs.linear_minimiser(s), lo, hi)
 
 
-def minimise_price(cs, price, lo, hi, power: int) -> np.ndarray:
-    """Per part, the minimiser of ``C(t) + price·t^power`` on ``[lo, hi]``, ``power`` 1 or 2.
+def minimise_price(cs, price, lo, hi, power: int):
+    """Per part, the minimiser of ``C(t) + price·t^power`` on ``[lo, hi]``, ``power`` 1 or 2,
+    and the unit cost ``C`` there.
 
-    The Lagrangian step of a worst-case (``power`` 1: :func:`minimise_linear_price`) or
-    RSS constraint (``power`` 2: :func:`minimise_quadratic_price` with ``q = 2·price``);
-    a price that reaches no finite root (zero, overflow) gives the loosest limit.
+    The Lagrangian step of a worst-case (``power`` 1: as :func:`minimise_linear_price`) or
+    RSS constraint (``power`` 2: as :func:`minimise_quadratic_price` with ``q = 2·price``);
+    a price that reaches no finite root (zero, overflow) gives the loosest limit. Returns
+    ``(t, C(t))`` [length], [currency] (0 for a part without a cost curve).
+
+    The branch and bound's bounds call this thousands of times: each family's closed
+    forms are asked directly, group by group (the same arithmetic as
+    :meth:`~allocator.solve.problem.CurveSet.linear_minimiser`, ``quadratic_minimiser`` and
+    ``value``, without their per-call dispatch).
     """
+    lo, hi = np.asarray(lo, dtype=float), np.asarray(hi, dtype=float)
+    price = np.broadcast_to(np.asarray(price, dtype=float), lo.shape)
+    t = np.full(lo.shape, np.inf)  # a part without a cost curve: nothing pulls it tighter
     with np.errstate(divide="ignore", over="ignore", invalid="ignore"):
-        if power == 1:
-            t = minimise_linear_price(cs, price, lo, hi)
-        else:
-            t = minimise_quadratic_price(cs, 2.0 * np.asarray(price, dtype=float), lo, hi)
-    return np.clip(np.nan_to_num(t, nan=hi, posinf=hi), lo, hi)
+        for fam, idx, p in cs.groups:
+            s = price[idx]
+            if isinstance(fam, SmoothFamily):
+                x = fam.slope_root(p, s) if power == 1 else fam.quadratic_root(p, 2.0 * s)
+                t[idx] = np.where(np.isnan(x) | (s <= 0), np.inf, x)
+            elif power == 1:
+                t[idx] = fam.linear_minimiser(p, s)
+            else:
+                t[idx] = fam.quadratic_minimiser(p, 2.0 * s, lo[idx], hi[idx])
+        t = np.clip(np.nan_to_num(np.clip(t, lo, hi), nan=hi, posinf=hi), lo, hi)
+        cost = np.zeros(lo.shape)
+        for fam, idx, p in cs.groups:
+            cost[idx] = fam.value(p, t[idx])
+    return t, cost
 
 
 def minimise_quadratic_price(cs, q, lo, hi, shift=None) -> np.ndarray:
