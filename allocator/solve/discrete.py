@@ -1498,7 +1498,8 @@ class DiscreteAllocation:
             # a sweep: the 1-D dual's root from where the latest polish's was (another
             # choice of processes); a single solve keeps the plain first guess
             # (or the branch and bound's last multiplier: the same λ for the same requirement)
-            latest = next((p for p in reversed(self._polishers.values()) if getattr(p, "hint", None)), None)
+            latest = next((p for p in reversed(self._polishers.values())
+                           if getattr(p, "hint", None) is not None), None)
             if latest is not None:
                 solver.start_at(latest.hint)
             elif self._lambda_hint is not None and 0.0 < self._lambda_hint < math.inf:
