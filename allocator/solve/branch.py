@@ -175,6 +175,7 @@ class _Bound:
     pick: np.ndarray  # entry per contributor at lam
     feasible_pick: np.ndarray  # entry per contributor at the bracket's feasible end
     t: np.ndarray  # per entry at lam
+    rough: bool = False  # stopped early: the node could not be pruned at that incumbent
 
 
 class OptionSearch:
@@ -187,8 +188,9 @@ class OptionSearch:
     r : int
         The one requirement with limits.
     polish : callable
-        ``polish(options, held) -> Allocation or None``: the conic optimum with those
-        options (and the listed tolerances ``held``) held.
+        ``polish(options, held, lam) -> Allocation or None``: the conic optimum with those
+        options (and the listed tolerances ``held``) held; ``lam`` is the multiplier of
+        the worst-case or rss bound that picked them (None: none), where its root is.
     gap_target : float
     """
 
@@ -272,7 +274,7 @@ class OptionSearch:
         pick = order[self.entries.starts]
         return total, pick, use, t, cost
 
-    def _bound(self, rel: _Relaxation, mask) -> _Bound:
+    def _bound(self, rel: _Relaxation, mask, precise: bool = False) -> _Bound:
         """The Lagrangian bound of the node ``mask`` under ``rel`` (maximised over λ).
 
         Any λ gives a valid bound. The maximiser is where the slope ``Σ W t^m − S``
@@ -281,7 +283,7 @@ class OptionSearch:
         log of the spread (the Illinois variant, with a bisection step whenever the
         bracket does not halve), stopping at the same width in log λ.
         """
-        rhs = rel.rhs
+        rhs, rough = rel.rhs, False
         total, pick, use, t, cost = self._totals(0.0, rel, mask)
         best = (float(np.sum(total[pick])), 0.0, total, pick, t, cost, use)
         feasible = pick if float(np.sum(use[pick])) <= rhs else None
@@ -289,7 +291,7 @@ class OptionSearch:
             # a sweep (the solver has a plan of points): start from the last bound's λ
             hint = getattr(self.solver, "_lambda_hint", None) if getattr(self.solver, "_plan", ()) else None
             if hint is not None and hint > 0 and math.isfinite(hint):
-                best, feasible = self._warm_bisection(rel, mask, rhs, best, math.log(hint))
+                best, feasible, rough = self._warm_bisection(rel, mask, rhs, best, math.log(hint), precise)
             else:
                 best, feasible = self._bisection(rel, mask, rhs, best)
             if best[1] > 0:
@@ -299,7 +301,7 @@ class OptionSearch:
             return _Bound(math.inf, lam, total, pick, feasible, t)
         # a margin for the rounding of the sums (the bound must never exceed the optimum)
         margin = 1e-12 * float(np.sum(np.abs(cost[pick]) + lam * use[pick]) + lam * rhs)
-        return _Bound(value - margin, lam, total, pick, feasible, t)
+        return _Bound(value - margin, lam, total, pick, feasible, t, rough)
 
     def _at(self, x, rel, mask, rhs, best):
         """Evaluate the dual at log λ = x: (slope Σ W t^m − S, value L, pick, best so far)."""
@@ -327,7 +329,7 @@ class OptionSearch:
                 break
         return best, (feasible if feasible is not None else best[3])
 
-    def _warm_bisection(self, rel, mask, rhs, best, x0):
+    def _warm_bisection(self, rel, mask, rhs, best, x0, precise=False):
         """As :meth:`_bisection`, from a bracket grown around ``x0`` = log λ of a
         neighbouring bound.
 
@@ -337,7 +339,11 @@ class OptionSearch:
         does not halve in three steps. ``L`` is concave, so the lines' crossing value is
         at least ``max L``: the search stops once that is within :data:`ENOUGH_RTOL` of
         the best value met (or the bracket is as narrow as the bisection's, or the bound
-        is that close below the incumbent's cost).
+        is that close below the incumbent's cost), or, unless ``precise``, once it is
+        below what would prune the node: no λ rules the node out, it will be split,
+        and any λ's bound is valid. Returns ``(best, feasible pick, rough)``, ``rough``
+        true in that last case (the node's bound is then only used where it reaches the
+        incumbent's cost itself: :meth:`_settles`).
         """
         scale = float(np.sum(self.entries.n)) / rhs
         floor, ceiling = math.log(scale) - 40.0, math.log(scale) + 40.0
@@ -346,18 +352,20 @@ class OptionSearch:
         feasible = None
         # the bound cannot usefully pass the incumbent's cost: stop once it is that close
         enough = math.inf if self.best is None else self.best[0] - ENOUGH_RTOL * abs(self.best[0])
+        cost = None if self.best is None or precise else self.best[0]
+        hopeless = None if cost is None else cost - self.gap_target * abs(cost)
         if g > 0:
             lo, hi = (x0, v, g), None
             step = WARM_STEP
             while hi is None:
                 if best[0] >= enough:
-                    return best, best[3]
+                    return best, best[3], False
                 x = min(lo[0] + step, ceiling)
                 g, v, pick, best = self._at(x, rel, mask, rhs, best)
                 if g <= 0:
                     hi, feasible = (x, v, g), pick
                 elif x >= ceiling:
-                    return best, best[3]  # not even the largest λ meets it: as bisection would
+                    return best, best[3], False  # not even the largest λ meets it: as bisection would
                 else:
                     lo, step = (x, v, g), 4.0 * step
         else:
@@ -365,13 +373,13 @@ class OptionSearch:
             step = WARM_STEP
             while lo is None:
                 if best[0] >= enough:
-                    return best, feasible
+                    return best, feasible, False
                 x = max(hi[0] - step, floor)
                 g, v, pick, best = self._at(x, rel, mask, rhs, best)
                 if g > 0:
                     lo = (x, v, g)
                 elif x <= floor:
-                    return best, feasible
+                    return best, feasible, False
                 else:
                     hi, feasible, step = (x, v, g), pick, 4.0 * step
         last = [lo, hi]  # the two latest evaluations, for the secant step
@@ -386,6 +394,8 @@ class OptionSearch:
             upper = v_lo + g_lo * (cross - l_lo)
             if math.isfinite(upper) and math.isfinite(best[0]) and upper - best[0] <= ENOUGH_RTOL * abs(best[0]):
                 break  # no λ in the bracket gives a bound more than that above the best
+            if hopeless is not None and upper < hopeless:
+                return best, feasible, True  # no λ brings the node within reach: it is split
             (x1, _, g1), (x2, _, g2) = last
             x = x2 - g2 * (x2 - x1) / (g2 - g1) if g2 != g1 else math.nan  # secant on the slope
             inner = 0.01 * (x_hi - x_lo)
@@ -401,12 +411,12 @@ class OptionSearch:
                 lo = (x, v, g)
             else:
                 hi, feasible = (x, v, g), pick
-        return best, feasible
+        return best, feasible, False
 
-    def _node_bound(self, mask) -> _Bound:
+    def _node_bound(self, mask, precise: bool = False) -> _Bound:
         out = None
         for rel in self.relaxations:
-            b = self._bound(rel, mask)
+            b = self._bound(rel, mask, precise)
             if out is None or b.value > out.value:
                 out = b
         return out
@@ -428,8 +438,11 @@ class OptionSearch:
         allowed = mean_shift_allowance(self.req.nominal, delta, self.lim)[0]
         return sigma <= allowed * (1 + CHECK_RTOL)
 
-    def _evaluate(self, pick):
-        """Cost and tolerances of the choice ``pick`` (entry per contributor), or None."""
+    def _evaluate(self, pick, lam=None):
+        """Cost and tolerances of the choice ``pick`` (entry per contributor), or None.
+
+        ``lam``: the multiplier of the bound that picked it (the polish's root is there
+        when the pick is the bound's own choice throughout its last bracket)."""
         key = tuple(int(k) for k in pick)
         if key in self._seen:
             return None
@@ -444,14 +457,17 @@ class OptionSearch:
         for c, k in zip(self.solver.case.contributors, pick):
             if not e.continuous[k] and not c.fixed:
                 held[c.name] = float(e.t_point[k])
-        alloc = self.polish([e.opts[k] for k in pick], held)
+        if self.model == "mean-shift" or not (lam is not None and 0.0 < lam < math.inf):
+            lam = None  # a tangent cut's multiplier is not the polish's
+        alloc = self.polish([e.opts[k] for k in pick], held, lam)
         if alloc is None or not alloc.success or alloc.total_cost is None:
             return None
         return float(alloc.total_cost), np.asarray(alloc.allocated_array(), dtype=float), alloc
 
-    def _offer(self, pick) -> bool:
-        """Evaluate ``pick``; keep it if it beats the incumbent. True when it did."""
-        out = self._evaluate(pick)
+    def _offer(self, pick, lam=None) -> bool:
+        """Evaluate ``pick`` (``lam``: as :meth:`_evaluate`); keep it if it beats the
+        incumbent. True when it did."""
+        out = self._evaluate(pick, lam)
         if out is None:
             return False
         cost, t, alloc = out
@@ -505,11 +521,11 @@ class OptionSearch:
         )
         root_value = -math.inf
         counter = 0
-        heap = [(-math.inf, counter, root)]
+        heap = [(-math.inf, counter, root, False)]
         lower = math.inf  # least bound of the nodes pruned or finished
         while heap:
-            key, _, mask = heapq.heappop(heap)
-            if self.best is not None and self._pruned(key):
+            key, _, mask, rough = heapq.heappop(heap)
+            if self.best is not None and self._settles(key, rough):
                 lower = min(lower, key)
                 break
             self.nodes += 1
@@ -539,9 +555,13 @@ class OptionSearch:
                 # the dual's choice as an incumbent (a polish each with continuous
                 # processes: at the root only, the leaves polish the rest; not where a
                 # sweep's last choice already leaves the root within the gap target)
-                self._offer(b.feasible_pick)
+                self._offer(b.feasible_pick, b.lam)
             if not e.continuous[b.pick].any():
                 self._offer(b.pick)
+            if self.best is not None and self._pruned(value) and b.rough:
+                # stopped early against the last incumbent: closed fully before it counts
+                b = self._node_bound(mask, precise=True)
+                value = max(b.value, key)
             if self.best is not None and self._pruned(value):
                 lower = min(lower, value)
                 continue
@@ -549,7 +569,7 @@ class OptionSearch:
             min_i = b.totals[b.pick][e.owner]
             forced = b.value - min_i + b.totals
             if self.best is not None:
-                keep = mask & ~self._pruned_array(forced)
+                keep = mask & ~self._settles(forced, b.rough)
                 lower = min(lower, float(np.min(forced[mask & ~keep], initial=math.inf)))
             else:
                 keep = mask & np.isfinite(forced)
@@ -576,7 +596,7 @@ class OptionSearch:
                     child[lo_:hi_] = False
                     child[k] = True
                     counter += 1
-                    heapq.heappush(heap, (max(value, float(forced[k])), counter, child))
+                    heapq.heappush(heap, (max(value, float(forced[k])), counter, child, b.rough))
         if self.best is None:
             return None
         cost = self.best[0]
@@ -604,10 +624,16 @@ class OptionSearch:
             return math.inf
         mask = np.zeros(e.size, dtype=bool)
         mask[leaf] = True
-        value = max(value, self._node_bound(mask).value)
+        b = self._node_bound(mask)
+        value = max(value, b.value)
         if self.best is not None and self._pruned(value):
             return value  # ruled out by its bound: no polish needed
-        self._offer(leaf)
+        self._offer(leaf, b.lam)
+        alloc = self.best[3] if self.best is not None and tuple(self.best[1]) == tuple(leaf) else None
+        if alloc is not None and alloc.gap is not None and alloc.total_cost is not None:
+            # the leaf is the incumbent: its polish's own dual bound is a bound on the leaf
+            # (its bound above may have stopped early, hopeless against the last incumbent)
+            value = max(value, float(alloc.total_cost) * (1.0 - float(alloc.gap)))
         if self.model == "mean-shift":
             # the polished leaf's own tangent makes its bound its optimum
             t = self._evaluate_again(leaf)
@@ -625,7 +651,7 @@ class OptionSearch:
         for c, k in zip(self.solver.case.contributors, leaf):
             if not e.continuous[k] and not c.fixed:
                 held[c.name] = float(e.t_point[k])
-        alloc = self.polish([e.opts[k] for k in leaf], held)
+        alloc = self.polish([e.opts[k] for k in leaf], held, None)
         if alloc is None or not alloc.success:
             return None
         return np.asarray(alloc.allocated_array(), dtype=float)
@@ -646,9 +672,12 @@ class OptionSearch:
         cost = self.best[0]
         return value >= cost - self.gap_target * abs(cost)
 
-    def _pruned_array(self, values):
+    def _settles(self, values, rough):
+        """Which bounds ``values`` rule their nodes out: within the gap target of the
+        incumbent's cost, or at least that cost for a bound stopped early (``rough``:
+        the proven lower bound stays as tight as the closed bounds make it)."""
         cost = self.best[0]
-        return values >= cost - self.gap_target * abs(cost)
+        return values >= (cost if rough else cost - self.gap_target * abs(cost))
 
     def _tightest(self):
         """Entry per contributor with the least σ (the tightest choice)."""

@@ -1284,8 +1284,8 @@ class DiscreteAllocation:
             return None
         cache = {}
 
-        def polish(chosen, held):
-            return self._polish_held(chosen, held, overrides, cache)[1]
+        def polish(chosen, held, lam=None):
+            return self._polish_held(chosen, held, overrides, cache, lam)[1]
 
         search = OptionSearch(self, limits, active[0], polish, self.gap_target)
         out = search.run(self._last_pick)
@@ -1461,13 +1461,19 @@ class DiscreteAllocation:
                 held[c.name] = float(cand.value[j])
         return self._polish_held(chosen, held, overrides, cache)
 
-    def _polish_held(self, chosen, held, overrides, cache):
-        """Continuous optimum with the options ``chosen`` and the tolerances ``held`` held."""
+    def _polish_held(self, chosen, held, overrides, cache, lam=None):
+        """Continuous optimum with the options ``chosen`` and the tolerances ``held`` held.
+
+        ``lam``: in a sweep, the branch and bound's multiplier for this choice at these
+        limits, where the polisher's root search starts (:meth:`ExactAllocation.aim`).
+        """
         key = tuple((o.index, held.get(c.name)) for c, o in zip(self.case.contributors, chosen))
         if key in cache:
             return cache[key]
         try:
             solver = self._polisher(key, chosen, held)
+            if lam is not None and self._plan and hasattr(solver, "aim"):
+                solver.aim(math.log(lam))
             alloc = None if solver is None else solver.solve(overrides)
         except CaseError:
             alloc = None  # e.g. a table that is not convex: keep the grid point

@@ -49,6 +49,7 @@ __all__ = [
 SOLVER_NAME = "lagrange-dual"
 GAP_LIMIT = 1e-8  # Newton's answer counts only with a dual bound this close (else: conic)
 HINT_STEP = 0.02  # first step in log λ when a bracket grows from a neighbouring solve's λ
+AIM_STEP = 1e-6  # ... or from a relaxation's λ of the same choice at the same limits (aim())
 _LOG_FLOAT_MAX = math.log(np.finfo(float).max)  # exp() of more overflows
 
 
@@ -144,14 +145,15 @@ class SeparableDual:
         values = self.curves.value(t)
         return float(self.n @ values) if values.ndim == 1 else values @ self.n
 
-    def bound(self, lam, rhs):
+    def bound(self, lam, rhs, t=None):
         """Weak-duality lower bound on the optimum: the Lagrangian's minimum at ``λ``.
 
         ``lam`` and ``rhs`` hold one value per requirement, or one row per point (then
-        one bound per point).
+        one bound per point). ``t``: the minimiser at ``lam`` (unpinned), if already known.
         """
         lam, rhs = np.asarray(lam, dtype=float), np.asarray(rhs, dtype=float)
-        t = self.tolerances(self.combined(lam), pinned=False)
+        if t is None:
+            t = self.tolerances(self.combined(lam), pinned=False)
         active = lam > 0
         if lam.ndim == 1:
             extra = float(lam[active] @ (self.spreads(t)[active] - rhs[active]))
@@ -256,6 +258,8 @@ class ExactAllocation:
         self.hint = None  # log λ of the last solve
         self.warm = False  # True: each solve's bracket grows from the last one's λ
         self._primed = {}  # rhs -> (t, λ, bound) solved ahead by prime()
+        self._aim = None  # log λ for the next solve only (aim())
+        self._known = {}  # with warm starts: log S -> log λ of the roots solved so far
 
     def start_at(self, hint: float | None = None) -> None:
         """Warm starts, for a sweep of nearby limits: each later solve grows its bracket
@@ -274,6 +278,15 @@ class ExactAllocation:
         (a later solve is then bit for bit the one a fresh solver gives)."""
         self.warm = False
         self._primed = {}
+        self._aim = None
+        self._known = {}
+
+    def aim(self, log_lam: float) -> None:
+        """With warm starts: the next solve's bracket grows from ``log_lam`` in steps from
+        :data:`AIM_STEP` (the multiplier of a relaxation whose own choice is this problem,
+        at the same limits: the root is as a rule within the relaxation's tolerance)."""
+        if self.warm and math.isfinite(log_lam):
+            self._aim = float(log_lam)
 
     def solve(self, overrides=None):
         """Allocate; returns an :class:`~allocator.solve.result.Allocation`."""
@@ -286,10 +299,16 @@ class ExactAllocation:
         rhs, allowance = dual.rhs(limits)
         primed = self._primed.get(float(rhs[0]))
         if primed is None:
-            primed = (x[0] for x in self.roots(rhs[:1], hint=self.hint if self.warm else None))
+            if self._aim is not None:
+                hint, step = self._aim, AIM_STEP
+            else:
+                hint, step = self._hints(rhs[:1]), HINT_STEP
+            primed = (x[0] for x in self.roots(rhs[:1], hint=hint, step=step))
+        self._aim = None
         t_free, lam, bound = primed
         if 0.0 < lam < math.inf:
             self.hint = math.log(lam)  # with warm starts, the next solve starts here
+            self._remember(rhs[:1], np.array([lam]))
         t = problem.full(t_free)
         polished, theta = problem.polish(t, limits)
         cost = problem.total_cost(polished)
@@ -330,10 +349,35 @@ class ExactAllocation:
                 rhs.append(float(dual.rhs(limits)[0][0]))
         self._primed = {}
         if rhs:
-            t, lam, bound = self.roots(rhs, hint=self.hint if self.warm else None)
+            t, lam, bound = self.roots(rhs, hint=self._hints(rhs))
             self._primed = {s: (t[k], lam[k], bound[k]) for k, s in enumerate(rhs)}
+            self._remember(rhs, lam)
 
-    def roots(self, rhs, hint=None):
+    def _remember(self, rhs, lam) -> None:
+        """With warm starts: keep the roots ``lam`` at ``rhs`` for :meth:`_hints`."""
+        if not self.warm:
+            return
+        for s, x in zip(np.asarray(rhs, dtype=float), np.asarray(lam, dtype=float)):
+            if 0.0 < s < math.inf and 0.0 < x < math.inf:
+                self._known[math.log(s)] = math.log(x)
+
+    def _hints(self, rhs):
+        """Start of each root's bracket in log λ: None without warm starts; else from the
+        roots met so far in the sweep, linear in (log S, log λ) through the two nearest
+        (beyond them: the end pair's line), or the last root's where fewer are known."""
+        if not self.warm or self.hint is None:
+            return None
+        if len(self._known) < 2:
+            return self.hint
+        xs = np.array(sorted(self._known))
+        ys = np.array([self._known[x] for x in xs])
+        with np.errstate(divide="ignore", invalid="ignore"):
+            x = np.log(np.asarray(rhs, dtype=float))
+        j = np.clip(np.searchsorted(xs, x), 1, xs.size - 1)
+        line = ys[j - 1] + (ys[j] - ys[j - 1]) / (xs[j] - xs[j - 1]) * (x - xs[j - 1])
+        return np.where(np.isfinite(line), line, self.hint)
+
+    def roots(self, rhs, hint=None, step=HINT_STEP):
         """Least-cost free tolerances with ``spread(t) ≤ S``, for many ``S`` at once.
 
         Parameters
@@ -342,6 +386,12 @@ class ExactAllocation:
             Right-hand sides ``S`` of the free part [response] (worst case) or
             [response²] (rss, mean shift); ``inf`` when the requirement has no limit
             (:meth:`SeparableDual.rhs`).
+        hint : float or array_like, optional
+            A log λ near the roots (a neighbouring solve's), or one per ``S``: each bracket grows from it in
+            steps of ``step``, times 4 each, at most a decade; without it, from the curves'
+            slopes in decades.
+        step : float
+            The first step from ``hint`` [log λ].
 
         Returns
         -------
@@ -368,15 +418,27 @@ class ExactAllocation:
         target = rhs[rows]
         scale = np.where(target != 0, np.abs(target), 1.0)
         w = dual.weight[0]
+        # (point, log λ) -> tolerances: the bracket's ends are not solved again (this
+        # dual pins nothing: pinned and unpinned tolerances are the same)
+        seen = {}
 
         def excess(x, which):
             """Relative excess of the spread at ``log λ = x`` for the points ``which``."""
             tolerances = dual.tolerances(np.exp(x)[:, None] * w)
+            seen.update(zip(zip(which.tolist(), x.tolist()), tolerances))
             return (dual.spreads(tolerances)[:, 0] - target[which]) / scale[which]
 
-        if hint is not None and math.isfinite(hint):
+        def at(x, which):
+            """Tolerances at ``log λ = x`` for the points ``which`` (evaluated already)."""
+            got = [seen.get(key) for key in zip(which.tolist(), x.tolist())]
+            if any(g is None for g in got):
+                return dual.tolerances(np.exp(x)[:, None] * w)
+            return np.array(got).reshape(x.size, w.size)
+
+        if hint is not None and np.all(np.isfinite(hint)):
             # a neighbouring solve's log λ: widen from it in growing steps
-            start, step, hinted = float(hint), HINT_STEP, True
+            start = np.broadcast_to(np.asarray(hint, dtype=float), rhs.shape)[rows]
+            hinted = True
         else:
             # a first λ from the slopes at the middle of the limits, then widen by decades
             mid = np.sqrt(dual.lo * dual.hi)
@@ -387,7 +449,7 @@ class ExactAllocation:
             start, step = math.log(float(np.median(per)) if per.size else 1.0), math.log(10.0)
             hinted = False
         everyone = np.arange(rows.size)
-        x_hi = np.full(rows.size, start)
+        x_hi = np.broadcast_to(np.asarray(start, dtype=float), rows.shape).copy()
         f_hi = excess(x_hi, everyone)
         x_lo, f_lo = x_hi.copy(), f_hi.copy()
         # bracket in log λ, evaluated exactly as the root finder will (exp(log λ) may
@@ -437,12 +499,12 @@ class ExactAllocation:
             x_a, x_b, f_a, f_b = _kink_brackets(excess, live, self.kinks, x_a, x_b, f_a, f_b)
         x_a, x_b = _bracket_roots(excess, live, x_a, x_b, f_a, f_b)
         lam_a, lam_b = np.exp(x_a), np.exp(x_b)
-        t_a, t_b = dual.tolerances(lam_a[:, None] * w), dual.tolerances(lam_b[:, None] * w)
+        t_a, t_b = at(x_a, live), at(x_b, live)
         found = rows[live]
         t[found] = self._mix(t_a, t_b, target[live])
         lam[found] = lam_b
-        bound[found] = np.maximum(dual.bound(lam_a[:, None], target[live, None]),
-                                  dual.bound(lam_b[:, None], target[live, None]))
+        bound[found] = np.maximum(dual.bound(lam_a[:, None], target[live, None], t_a),
+                                  dual.bound(lam_b[:, None], target[live, None], t_b))
         return t, lam, bound
 
     def _mix(self, t_a, t_b, rhs):
