@@ -544,5 +544,9 @@ def test_lambert_w0_matches_scipy():
 
     x = np.concatenate([np.logspace(-300, 300, 2000), [1.0, math.e, 0.5]])
     np.testing.assert_allclose(lambert_w0(x), special.lambertw(x).real, rtol=1e-13)
+    # a few values at a time take the element-by-element path: the same answers
+    few = np.array([lambert_w0(x[k:k + 3]) for k in range(0, x.size - 2, 3)]).ravel()
+    np.testing.assert_allclose(few, special.lambertw(x[: few.size]).real, rtol=1e-13)
+    assert lambert_w0(np.array([0.0, np.inf, -1.0])).tolist() == [0.0, np.inf, 0.0]
     assert lambert_w0(0.0) == 0.0 and lambert_w0(np.inf) == np.inf
     assert lambert_w0(1.0) == pytest.approx(0.5671432904097838, rel=1e-15)  # the omega constant (from memory)

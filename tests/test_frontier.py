@@ -1280,3 +1280,33 @@ def test_table_minimiser_takes_many_rows_at_once():
     assert out.shape == s.shape
     for idx in np.ndindex(*s.shape):
         assert out[idx] == fam.inverse_derivative_at(curve, -s[idx])
+
+
+def test_table_quadratic_minimiser_rows_against_minimize_scalar():
+    # the rss (and mean-shift) step C(t) + q t²/2 + shift·t over a table, many rows at once:
+    # each element against scipy.optimize.minimize_scalar (bounded) on the interpolant, a
+    # price of 0 against the table's own inverse slope
+    from allocator.costs.table import Table
+
+    curve = CostCurve("table", points_tolerance=(0.01, 0.02, 0.05, 0.1), points_cost=(5.0, 3.0, 1.5, 1.0))
+    other = CostCurve("table", points_tolerance=(0.002, 0.004, 0.03), points_cost=(9.0, 4.0, 2.0))
+    fam = Table()
+    q = np.array([[1e3, 5e4], [2e4, 1e6], [1e5, 0.0], [3e2, 2e7]])
+    shift = np.array([[0.0, 10.0], [5.0, 0.0], [0.0, 0.0], [20.0, 1.0]])
+    for sh in (None, shift):
+        out = fam.quadratic_minimiser([curve, other], q, None, None, sh)
+        assert out.shape == q.shape
+        for r, i in np.ndindex(*q.shape):
+            c = (curve, other)[i]
+            x = np.asarray(c.points_tolerance)
+            extra = 0.0 if sh is None else sh[r, i]
+            if q[r, i] == 0:
+                assert out[r, i] == fam.inverse_derivative_at(c, -extra)
+                continue
+            res = optimize.minimize_scalar(
+                lambda t: np.interp(t, x, c.points_cost) + 0.5 * q[r, i] * t * t + extra * t,
+                bounds=(x[0], x[-1]), method="bounded", options={"xatol": 1e-12})
+            assert out[r, i] == pytest.approx(res.x, abs=1e-8), (r, i, sh is None)
+        # one row (a single solve) gives the same as that row of many
+        np.testing.assert_array_equal(fam.quadratic_minimiser([curve, other], q[1], None, None,
+                                                              None if sh is None else sh[1]), out[1])

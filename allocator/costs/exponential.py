@@ -63,6 +63,26 @@ class Exponential(SmoothFamily):
         return float(weight @ p["a"]), term
 
 
+SMALL = 8  # up to this many values, Python floats: numpy's per-call cost is most of the time
+
+
+def _w0(x: float) -> float:
+    """:func:`lambert_w0` of one float: the same start and Newton steps, in Python floats."""
+    if not (x > 0 and math.isfinite(x)):
+        return math.inf if x > 0 else 0.0
+    log_x = math.log(x)
+    w = log_x - math.log(log_x) if x > math.e else math.log1p(x)
+    close = False
+    for _ in range(60):
+        new = max(w - (w + math.log(w) - log_x) * w / (w + 1.0), 0.1 * w)
+        change = abs(new - w) <= 1e-9 * abs(new)
+        w = new
+        if close:
+            break
+        close = change
+    return w
+
+
 def lambert_w0(x):
     """Principal branch ``W₀(x)`` of the Lambert W function for ``x ≥ 0`` (``w e^w = x``).
 
@@ -71,8 +91,13 @@ def lambert_w0(x):
     change is below 1e-9 (quadratic convergence: round-off then); vectorised. Our
     own few lines instead of ``scipy.special.lambertw``, whose import costs more than a
     whole allocation (the tests compare the two). ``x = inf`` gives inf, ``x = 0`` gives 0.
+    Up to :data:`SMALL` values are taken one by one in Python floats (:func:`_w0`, the
+    same steps): a bound of the branch and bound asks for one or two at a time.
     """
     x = np.asarray(x, dtype=float)
+    if x.size <= SMALL:  # a few parts (a branch and bound's bound, one root): element by element
+        w = np.array([_w0(float(v)) for v in x.flat]).reshape(x.shape)
+        return w if w.ndim else float(w)
     with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
         log_x = np.log(x)
         big = x > math.e

@@ -335,7 +335,7 @@ class Table(CurveFamily):
             out[i] = bool(np.any(np.abs(x - t[i]) <= rtol * x[-1]))
         return out
 
-    rows_at_once = ("linear_minimiser",)  # takes s of shape (points, parts) in one call
+    rows_at_once = ("linear_minimiser", "quadratic_minimiser")  # s, q of shape (points, parts)
 
     def linear_minimiser(self, p, s):
         # as inverse_derivative_at per element; the table is checked once per part, not
@@ -351,13 +351,30 @@ class Table(CurveFamily):
         return out
 
     def quadratic_minimiser(self, p, q, lo, hi, shift=None):
-        out = np.empty(len(p))
+        # C(t) + q t²/2 + shift·t over the table's range: h(t) = C'(t) + q t + shift is
+        # increasing, the minimiser is clip(−(s_j + shift)/q, x_j, x_{j+1}) for the last
+        # segment j with h(x_j) <= 0 (the first breakpoint when none has); one part at a
+        # time, every row of a sweep's many right-hand sides at once
+        q = np.asarray(q, dtype=float)
+        out = np.empty(q.shape[:-1] + (len(p),))
         for i, curve in enumerate(p):
-            r = 0.0 if shift is None else float(shift[i])
-            if q[i] > 0:
-                out[i] = _squared_minimiser(curve, float(q[i]), r)
-            else:
-                out[i] = self.inverse_derivative_at(curve, -r)
+            x, _, slopes = points(curve)
+            qi = q[..., i]
+            r = np.zeros(qi.shape) if shift is None else np.broadcast_to(np.asarray(shift, dtype=float)[..., i], qi.shape)
+            s = slopes + r[..., None]
+            with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+                met = s + qi[..., None] * x[:-1] <= 0  # h(x_j) = C'(x_j+) + q x_j + shift <= 0
+                j = met.shape[-1] - 1 - np.argmax(met[..., ::-1], axis=-1)  # the last such j
+                s_j = np.take_along_axis(s, j[..., None], axis=-1)[..., 0]
+                inside = np.clip(-s_j / qi, x[j], x[j + 1])
+            t = np.where(met.any(axis=-1), inside, x[0])
+            flat = ~(qi > 0)
+            if flat.any():  # no quadratic term: the first breakpoint whose slope reaches −shift
+                problem = table_problem(curve)
+                if problem:
+                    raise ValueError(f"table cost has no inverse slope: {problem}")
+                t = np.where(flat, x[np.searchsorted(slopes, -r, side="left")], t)
+            out[..., i] = t
         return out
 
     # ------------------------------------------------------------------ convex-solver form
@@ -374,22 +391,3 @@ class Table(CurveFamily):
             for j in range(width)
         ]
         return 0.0, cp.sum(cols[0] if width == 1 else cp.maximum(*cols))
-
-
-def _squared_minimiser(curve, q: float, shift: float = 0.0) -> float:
-    """Minimiser of ``C(t) + q t²/2 + shift·t`` over a convex piecewise-linear table's range.
-
-    ``h(t) = C'(t) + q t + shift`` is increasing; the answer is
-    ``clip(−(s_j + shift)/q, x_j, x_{j+1})`` for the last segment j with ``h(x_j) ≤ 0``
-    (the first breakpoint when none has).
-    """
-    x = np.asarray(curve.points_tolerance, dtype=float)
-    y = np.asarray(curve.points_cost, dtype=float)
-    s = np.diff(y) / np.diff(x) + shift
-    if q <= 0:
-        return float(x[-1])
-    ok = np.flatnonzero(s + q * x[:-1] <= 0)
-    if ok.size == 0:
-        return float(x[0])
-    j = ok[-1]
-    return float(np.clip(-s[j] / q, x[j], x[j + 1]))
