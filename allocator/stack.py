@@ -7,6 +7,7 @@ instance counts ``n`` [-], tolerances ``t`` [length] (± half-widths), σ/t fact
 
 from __future__ import annotations
 
+import functools
 import math
 
 import numpy as np
@@ -187,6 +188,7 @@ def _norm_cdf(z):
     return 0.5 * math.erfc(-z * _SQRT_HALF)
 
 
+@functools.lru_cache(maxsize=1024)
 def normal_quantile(p: float) -> float:
     """Standard normal quantile ``Φ⁻¹(p)`` for ``0 < p < 1`` [-].
 
@@ -195,7 +197,8 @@ def normal_quantile(p: float) -> float:
     Abramowitz & Stegun's rational approximation 26.2.23 (error below 4.5e-4) as the
     start, then Halley steps on ``Q(z) = erfc(z/√2)/2 = p`` (cubic convergence; ``Q`` from
     :func:`math.erfc` with full relative accuracy in the tail) to round-off. The tests
-    check it against ``scipy.special.ndtri``.
+    check it against ``scipy.special.ndtri``. Kept per ``p`` (a pure function): the
+    mean-shift solvers ask for the same one or two values thousands of times per solve.
 
     References
     ----------

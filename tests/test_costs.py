@@ -487,11 +487,19 @@ def test_family_vectorised_evaluation_and_minimisers(name):
     s = -cs.derivative(t) * rng.uniform(0.5, 2.0, t.size)
     q = s / t
     shift = s * rng.uniform(0.0, 1.0, t.size)
+    some_zero = np.where(np.arange(t.size) % 3 == 0, 0.0, shift)  # parts without mean shift
+    start = np.exp(rng.uniform(np.log(lo), np.log(hi)))  # Newton's start anywhere in range
     answers = {
         "linear": (minimise_linear_price(cs, s, lo, hi), np.zeros_like(q), s),
         "quadratic": (minimise_quadratic_price(cs, q, lo, hi), q, np.zeros_like(s)),
         "shifted": (minimise_quadratic_price(cs, q, lo, hi, shift), q, shift),
+        "shifted, some zero": (minimise_quadratic_price(cs, q, lo, hi, some_zero), q, some_zero),
+        "shifted, from a start": (minimise_quadratic_price(cs, q, lo, hi, shift, start=start), q, shift),
     }
+    # a zero shift is the plain quadratic step: its closed form, not an iteration towards it
+    zero = some_zero == 0
+    assert np.array_equal(answers["shifted, some zero"][0][zero], answers["quadratic"][0][zero])
+    assert answers["shifted, from a start"][0] == pytest.approx(answers["shifted"][0], rel=1e-12)
     for kind, (found, qq, ss) in answers.items():
         for i, curve in enumerate(parts):
             def f(x, i=i, curve=curve):

@@ -27,6 +27,16 @@ FREE_TEXT = {"message", "messages", "solver", "method", "note", "notes", "warnin
 REL = 1e-12
 # numbers this small are round-off of zero (shadow prices of slack limits, say)
 ABS = 1e-12
+# The economic optimum is the argmin of a flat function, refined by a bounded Brent search
+# to 1e-7 in ln(ppm) (allocator.economics.minimise_log): its ppm and the costs at it are
+# what that tolerance makes them, and a last-bit change in any solve (or in scipy's Brent)
+# moves them by ~1e-9. They are compared at 1e-6 (the current design's numbers stay at
+# 1e-12); the reference tests check the optimum against brute force and stationarity
+# (test_frontier.py).
+ARGMIN_REL = 1e-6
+AT_OPTIMUM = {"optimal_ppm", "predicted_ppm", "manufacturing_cost", "scrap_cost", "total_cost",
+              "annual_manufacturing", "annual_scrap", "annual_total", "annual_saving",
+              "saving_per_assembly", "slope_numeric", "slope_shadow"}
 
 # frontier sweeps of the discrete demos take many MILP solves
 SLOW = {("pump_shim", "frontier rss"), ("pump_shim", "frontier mean-shift"),
@@ -52,7 +62,9 @@ def compare(expected, actual, where: str, problems: list[str]) -> None:
         if expected != actual:
             problems.append(f"{where}: {expected!r}, now {actual!r}")
     elif isinstance(expected, (int, float)) and isinstance(actual, (int, float)):
-        if not math.isclose(expected, actual, rel_tol=REL, abs_tol=ABS):
+        at_optimum = ".economics." in where and where.rsplit(".", 1)[-1] in AT_OPTIMUM
+        rel = ARGMIN_REL if at_optimum else REL
+        if not math.isclose(expected, actual, rel_tol=rel, abs_tol=ABS):
             problems.append(f"{where}: {expected!r}, now {actual!r}")
     elif expected != actual:
         problems.append(f"{where}: {expected!r}, now {actual!r}")

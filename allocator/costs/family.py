@@ -203,9 +203,12 @@ class CurveFamily:
         raise NotImplementedError
 
     def quadratic_minimiser(
-        self, p: Params, q: np.ndarray, lo: np.ndarray, hi: np.ndarray, shift: np.ndarray | None = None
+        self, p: Params, q: np.ndarray, lo: np.ndarray, hi: np.ndarray, shift: np.ndarray | None = None,
+        start: np.ndarray | None = None,
     ) -> np.ndarray:
-        """Minimiser of ``C(t) + q t²/2 (+ shift·t)`` (unclipped inside ``[lo, hi]``)."""
+        """Minimiser of ``C(t) + q t²/2 (+ shift·t)`` (unclipped inside ``[lo, hi]``);
+        ``start``: a guess near it (the last minimiser of an iteration), where an
+        iterative method starts."""
         raise NotImplementedError
 
     # ------------------------------------------------------------------ convex-solver form
@@ -250,13 +253,15 @@ class SmoothFamily(CurveFamily):
         return np.where(np.isnan(t) | (q <= 0), np.inf, t)
 
     def quadratic_minimiser(
-        self, p: Params, q: np.ndarray, lo: np.ndarray, hi: np.ndarray, shift: np.ndarray | None = None
+        self, p: Params, q: np.ndarray, lo: np.ndarray, hi: np.ndarray, shift: np.ndarray | None = None,
+        start: np.ndarray | None = None,
     ) -> np.ndarray:
         """Minimiser of ``C(t) + q t²/2 (+ shift·t)``.
 
         Without ``shift`` in closed form. With ``shift`` (``C'(t) + q t + shift = 0``, the
         mean-shift stationarity) the root is bracketed by the one-term closed forms and
-        found by safeguarded Newton steps in ``log t`` (vectorised).
+        found by safeguarded Newton steps in ``log t`` (vectorised), from ``start`` where
+        given (inside the bracket), else from the bracket's geometric middle.
         """
         q = np.asarray(q, dtype=float)
         if shift is None:
@@ -270,10 +275,15 @@ class SmoothFamily(CurveFamily):
         )
         up = np.clip(up, lo, hi)  # a root below lo (or above hi) ends at that limit
         low = np.clip(np.minimum(low, up), lo, up)
+        # without the linear term (a part with no mean shift) the upper end is the root
+        # itself: the bracket closes on it (Newton steps from inside would creep up to it,
+        # each overshooting by round-off and bisecting)
+        low = np.where(shift == 0, up, low)
         h_up = self.derivative(p, up) + q * up + shift
         h_low = self.derivative(p, low) + q * low + shift
         # a root beyond a limit (h < 0 at hi, or h > 0 at lo) ends at that limit at once
-        t = np.where(h_up <= 0, up, np.where(h_low >= 0, low, np.sqrt(low * up)))
+        first = np.sqrt(low * up) if start is None else np.clip(np.asarray(start, dtype=float), low, up)
+        t = np.where(h_up <= 0, up, np.where(h_low >= 0, low, first))
         live = (low < up) & (h_up > 0) & (h_low < 0)
         for _ in range(60):
             if not live.any():

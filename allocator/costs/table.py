@@ -350,7 +350,7 @@ class Table(CurveFamily):
             out[..., i] = x[np.searchsorted(slopes, -s[..., i], side="left")]
         return out
 
-    def quadratic_minimiser(self, p, q, lo, hi, shift=None):
+    def quadratic_minimiser(self, p, q, lo, hi, shift=None, start=None):
         # C(t) + q t²/2 + shift·t over the table's range: h(t) = C'(t) + q t + shift is
         # increasing, the minimiser is clip(−(s_j + shift)/q, x_j, x_{j+1}) for the last
         # segment j with h(x_j) <= 0 (the first breakpoint when none has); one part at a

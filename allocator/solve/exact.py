@@ -638,10 +638,15 @@ class MeanShiftExact:
         self._fallback = fallback
         self._conic = None
         self._warm = None  # (α, β) of the last settled solve: the next one (a sweep) starts there
+        self._last_t = None  # the last tolerances evaluated (where the next evaluation's roots start)
 
     def tolerances(self, alpha: float, beta: float) -> np.ndarray:
         self.evaluations += 1
-        return minimise_quadratic_price(self.curves, alpha * self.w, self.lo, self.hi, shift=beta * self.v)
+        # Newton's prices move little from one evaluation to the next: each part's root
+        # search starts at its last minimiser
+        self._last_t = minimise_quadratic_price(self.curves, alpha * self.w, self.lo, self.hi,
+                                                shift=beta * self.v, start=self._last_t)
+        return self._last_t
 
     def _state(self, t):
         sigma = math.sqrt(float(self.n @ (self.w * t * t)) + self.var_held)
@@ -1211,7 +1216,7 @@ def minimise_price(cs, price, lo, hi, power: int):
     return t, cost
 
 
-def minimise_quadratic_price(cs, q, lo, hi, shift=None) -> np.ndarray:
+def minimise_quadratic_price(cs, q, lo, hi, shift=None, start=None) -> np.ndarray:
     """Per part, the minimiser of ``C(t) + q t²/2 (+ shift·t)`` on ``[lo, hi]``.
 
     Each curve family gives its own
@@ -1225,4 +1230,4 @@ def minimise_quadratic_price(cs, q, lo, hi, shift=None) -> np.ndarray:
     q = np.broadcast_to(np.asarray(q, dtype=float), np.shape(lo))
     if shift is not None:
         shift = np.broadcast_to(np.asarray(shift, dtype=float), np.shape(lo))
-    return np.clip(cs.quadratic_minimiser(q, lo, hi, shift), lo, hi)
+    return np.clip(cs.quadratic_minimiser(q, lo, hi, shift, start), lo, hi)

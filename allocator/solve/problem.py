@@ -153,9 +153,10 @@ class CurveSet:
         """Per part, the unclipped minimiser of ``C(t) + s t`` (inf where nothing pulls)."""
         return self._each("linear_minimiser", s, fill=np.inf)
 
-    def quadratic_minimiser(self, q, lo, hi, shift=None) -> np.ndarray:
-        """Per part, the minimiser of ``C(t) + q t²/2 (+ shift·t)`` (clip to [lo, hi] after)."""
-        return self._each("quadratic_minimiser", q, lo, hi, shift, fill=np.inf)
+    def quadratic_minimiser(self, q, lo, hi, shift=None, start=None) -> np.ndarray:
+        """Per part, the minimiser of ``C(t) + q t²/2 (+ shift·t)`` (clip to [lo, hi] after);
+        ``start``: a guess per part where an iterative family starts."""
+        return self._each("quadratic_minimiser", q, lo, hi, shift, start, fill=np.inf)
 
 
 def scaled_curve(curve: CostCurve | None, length: float, cost: float) -> CostCurve | None:
