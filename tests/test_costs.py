@@ -544,6 +544,28 @@ def test_family_scaling_parameter_checks_and_text(name):
     assert set(fam.case_keys) >= {q.name for q in fam.parameters}
 
 
+def test_table_value_in_bulk_equals_the_checked_value_or_nan():
+    # what the solvers' results cost tables with: each part's value_at, NaN where that
+    # refuses (outside the range, between listed tolerances of a 'choose' table, NaN)
+    fam = family("table")
+    rng = np.random.default_rng(5)
+    for k in range(300):
+        n = int(rng.integers(2, 7))
+        x = np.sort(rng.uniform(0.001, 0.2, n))
+        y = np.sort(rng.uniform(1.0, 10.0, n))[::-1]
+        curve = CostCurve("table", points_tolerance=tuple(x), points_cost=tuple(y),
+                          between=("interpolate", "choose")[k % 2])
+        probes = [rng.uniform(0.0, 0.25), x[int(rng.integers(n))], x[0] * (1 - 1e-12),
+                  x[-1] * (1 + 1e-12), x[0] - 1e-3, np.nan]
+        bulk = fam.value([curve] * len(probes), np.array(probes))
+        for t, got in zip(probes, bulk):
+            try:
+                want = float(fam.value_at(curve, np.asarray(float(t))))
+            except ValueError:
+                want = np.nan
+            assert got == want or (np.isnan(got) and np.isnan(want)), (curve, t, got, want)
+
+
 def test_lambert_w0_matches_scipy():
     # the exponential family's own W₀ (no scipy import on the allocation path) against scipy
     from scipy import special

@@ -1267,6 +1267,18 @@ def test_batched_roots_of_a_sweep_equal_one_at_a_time():
             one, fresh = warm.solve(overrides), solver_for(case, model).solve(overrides)
             assert one.status == fresh.status == "optimal"
             assert one.total_cost == pytest.approx(fresh.total_cost, rel=1e-12)
+        # a second problem (other curves) with one root of its own takes the first one's
+        # line through its roots, moved onto that root
+        other_case = replace(case, contributors=(replace(case.contributors[0], cost=hub.cost),
+                                                 *case.contributors[1:]))
+        other = solver_for(other_case, model)
+        other.start_at(warm.hint, like=warm)
+        other.solve(plan[2])
+        other.prime(plan)
+        for overrides in plan:
+            one, fresh = other.solve(overrides), solver_for(other_case, model).solve(overrides)
+            assert one.status == fresh.status == "optimal"
+            assert one.total_cost == pytest.approx(fresh.total_cost, rel=1e-12)
 
 
 def test_table_minimiser_takes_many_rows_at_once():

@@ -309,12 +309,25 @@ class Table(CurveFamily):
 
     # ------------------------------------------------------------------ vectorised (a loop)
     def value(self, p, t):
+        # value_at per part, NaN where it would refuse (e.g. a current tolerance outside
+        # the table), in Python floats: the solvers' results cost every table this way
         out = np.empty(len(p))
         for i, curve in enumerate(p):
-            try:
-                out[i] = self.value_at(curve, np.asarray(float(t[i])))
-            except ValueError:
-                out[i] = np.nan  # e.g. a current tolerance outside the table
+            d = _derived(curve)
+            x, y = d.x, d.y
+            ti = float(t[i])
+            if x is None:
+                out[i] = np.nan
+                continue
+            slack = range_slack(x)
+            if not x[0] - slack <= ti <= x[-1] + slack:  # outside (or NaN)
+                out[i] = np.nan
+                continue
+            ti = min(max(ti, x[0]), x[-1])
+            if curve.between == "choose" and np.min(np.abs(ti - x)) > slack:
+                out[i] = np.nan  # only the listed tolerances exist
+                continue
+            out[i] = np.interp(ti, x, y)
         return out
 
     def derivative(self, p, t):

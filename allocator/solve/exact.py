@@ -260,11 +260,14 @@ class ExactAllocation:
         self._primed = {}  # rhs -> (t, λ, bound) solved ahead by prime()
         self._aim = None  # log λ for the next solve only (aim())
         self._known = {}  # with warm starts: log S -> log λ of the roots solved so far
+        self._like = {}  # ... and of a neighbouring problem's (start_at(like=...))
 
-    def start_at(self, hint: float | None = None) -> None:
+    def start_at(self, hint: float | None = None, like: "ExactAllocation | None" = None) -> None:
         """Warm starts, for a sweep of nearby limits: each later solve grows its bracket
         from the previous solve's log λ (the first from ``hint``, a neighbouring
         problem's, if given) in place of the first guess from the curves' slopes.
+        ``like``: a neighbouring problem's solver (the same requirement, other processes
+        held) whose roots give the shape of log λ against log S until this one has two.
 
         Any start brackets the same root; a near one takes fewer evaluations (results
         can differ in the last bits, hence off unless asked for).
@@ -272,6 +275,8 @@ class ExactAllocation:
         self.warm = True
         if hint is not None and math.isfinite(hint):
             self.hint = float(hint)
+        if like is not None and len(like._known) >= 2:
+            self._like = dict(like._known)
 
     def end_sweep(self) -> None:
         """Back to single solves: no warm start and no roots solved ahead by :meth:`prime`
@@ -280,6 +285,7 @@ class ExactAllocation:
         self._primed = {}
         self._aim = None
         self._known = {}
+        self._like = {}
 
     def aim(self, log_lam: float) -> None:
         """With warm starts: the next solve's bracket grows from ``log_lam`` in steps from
@@ -364,17 +370,19 @@ class ExactAllocation:
     def _hints(self, rhs):
         """Start of each root's bracket in log λ: None without warm starts; else from the
         roots met so far in the sweep, linear in (log S, log λ) through the two nearest
-        (beyond them: the end pair's line), or the last root's where fewer are known."""
+        (beyond them: the end pair's line); with one root, a neighbouring problem's line
+        (:meth:`start_at`) moved onto it; else the last root's log λ."""
         if not self.warm or self.hint is None:
             return None
-        if len(self._known) < 2:
-            return self.hint
-        xs = np.array(sorted(self._known))
-        ys = np.array([self._known[x] for x in xs])
         with np.errstate(divide="ignore", invalid="ignore"):
             x = np.log(np.asarray(rhs, dtype=float))
-        j = np.clip(np.searchsorted(xs, x), 1, xs.size - 1)
-        line = ys[j - 1] + (ys[j] - ys[j - 1]) / (xs[j] - xs[j - 1]) * (x - xs[j - 1])
+        if len(self._known) >= 2:
+            line = _polyline(self._known, x)
+        elif len(self._known) == 1 and len(self._like) >= 2:
+            (x0, y0), = self._known.items()
+            line = _polyline(self._like, x) + (y0 - _polyline(self._like, np.array([x0]))[0])
+        else:
+            return self.hint
         return np.where(np.isfinite(line), line, self.hint)
 
     def roots(self, rhs, hint=None, step=HINT_STEP):
@@ -1077,6 +1085,16 @@ def _kinks(dual: SeparableDual) -> np.ndarray:
         lam = -np.asarray(slopes) / w[j]
         out.append(np.log(lam[lam > 0]))
     return np.unique(np.concatenate(out)) if out else np.empty(0)
+
+
+def _polyline(known: dict, x: np.ndarray) -> np.ndarray:
+    """Through the points ``known`` (x -> y, two or more): linear between the two nearest
+    to each ``x``, the end pair's line beyond them."""
+    xs = np.array(sorted(known))
+    ys = np.array([known[k] for k in xs])
+    j = np.clip(np.searchsorted(xs, x), 1, xs.size - 1)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return ys[j - 1] + (ys[j] - ys[j - 1]) / (xs[j] - xs[j - 1]) * (x - xs[j - 1])
 
 
 def _kink_brackets(f, which, kinks, a, b, fa, fb, *, eps: float = 2e-14):
