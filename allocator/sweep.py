@@ -273,6 +273,13 @@ class _Point(NamedTuple):
     message: str
 
 
+def _complete(result) -> Allocation:
+    """The complete Allocation of a solve's result (a Brief builds its own)."""
+    from .solve.result import Brief
+
+    return result.allocation() if isinstance(result, Brief) else result
+
+
 class LimitSweep:
     """One stack model's least cost for many values of one requirement's limit or target.
 
@@ -344,9 +351,16 @@ class LimitSweep:
         A solver that raises an arithmetic error (overflow in a root search, say) gives a
         'failed' point naming the error, so one bad point does not lose the sweep.
         """
+        return _complete(self._solve(value, brief=False))
+
+    def _solve(self, value: float, brief: bool):
+        """:meth:`solve`, or with ``brief`` the solver's :class:`~allocator.solve.result.Brief`
+        where it gives one (a sweep's point needs its cost, status and message)."""
         self.solves += 1
         overrides = self.overrides(value)
         try:
+            if brief and hasattr(self.solver, "solve_brief"):
+                return self.solver.solve_brief(overrides)
             return self.solver.solve(overrides)
         except ArithmeticError as err:
             if self.reference is None:
@@ -396,9 +410,10 @@ class LimitSweep:
             self.solver.plan([self.overrides(values[i]) for i in order])
         try:
             for i in order:
-                alloc = self.solve(values[i])
-                if keep is not None and _same_value(values[i], keep):
-                    self.kept = alloc
+                kept = keep is not None and _same_value(values[i], keep)
+                alloc = self._solve(values[i], brief=not kept)
+                if kept:
+                    self.kept = _complete(alloc)
                 out[i] = self._point(alloc)
                 tick(1)
         finally:

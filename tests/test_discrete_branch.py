@@ -140,3 +140,21 @@ def test_mean_shift_seven_by_six_listed_values_match_enumeration():
     # 6^7 = 279936 combinations (more than the search takes on alone when its first
     # bound is weak: then its incumbent prunes the MILP); every one checked here
     _assert_least_cost_by_enumeration(_mean_shift_case(21, parts=7, listed=6))
+
+
+@pytest.mark.parametrize("model", ["worst-case", "rss", "mean-shift"])
+def test_brief_solves_give_the_plain_solve_and_its_allocation(model):
+    # A sweep's points and the branch and bound's polishes take Briefs (the verdict,
+    # re-checked, before the Allocation is built): the same status, cost, gap and
+    # tolerances as the plain solve, and the Allocation it builds is the plain one
+    # (every field of its JSON document), fresh solvers both.
+    case = body_hub_plate_case((model,))
+    for upper in (2.34, 2.36, 2.42):
+        overrides = {"clearance": {"upper": upper}}
+        brief = DiscreteAllocation(case, model).solve_brief(overrides)
+        plain = DiscreteAllocation(case, model).solve(overrides)
+        assert brief.status == plain.status == "optimal", plain.message
+        assert brief.total_cost == plain.total_cost and brief.gap == plain.gap
+        assert brief.message == plain.message and brief.solver == plain.solver
+        np.testing.assert_array_equal(brief.allocated_array(), plain.allocated_array())
+        assert brief.allocation().to_dict() == plain.to_dict()

@@ -87,6 +87,7 @@ from .problem import (
     mean_shift_allowance,
     prepare,
 )
+from .result import Brief
 
 __all__ = [
     "DiscreteAllocation",
@@ -1140,13 +1141,15 @@ class DiscreteAllocation:
 
     def _result(self, chosen_options, t, limits, *, status, message, gap, iterations,
                 labels=None, requirements=None, solver=SOLVER_NAME, lower_bound=None):
-        """The :class:`Allocation` for a choice, re-checked by the shared numpy check.
+        """The result for a choice, re-checked by the shared numpy check: a
+        :class:`~allocator.solve.result.Brief` whose Allocation is built on demand.
 
         Built complete: the current cost of a contributor with processes is its cheapest
         process that offers the current tolerance (the continuous problem knows only one);
         ``requirements`` (the conic polish's, with shadow prices for the chosen processes
-        held) or none of the shadow prices (a discrete choice has no derivative with
-        respect to a limit); the grades, the rounding and the unrounded optimum.
+        held; a list, or the polish's Allocation or Brief) or none of the shadow prices (a
+        discrete choice has no derivative with respect to a limit); the grades, the
+        rounding and the unrounded optimum.
         """
         # the problem of a choice does not depend on the limits: kept for a sweep's next points
         key = tuple(o.index for o in chosen_options)
@@ -1165,13 +1168,19 @@ class DiscreteAllocation:
         baseline = self._baseline.copy()
         fields = dict(unit_cost_current=baseline, current_cost=float(np.sum(self.counts * baseline)),
                       lower_bound=lower_bound)
-        if requirements is not None:
-            fields["requirements"] = list(requirements)
         if labels is not None and any(labels):
             fields["grades"] = {n: g for n, g in zip(self.case.names, labels) if g}
-        fields.update(self._rounding_fields(problem.total_cost(t), message))
-        return problem.result(t, limits, status=status, solver=solver, iterations=iterations, gap=gap,
-                              marginal=requirements is not None, **fields)
+        cost = problem.total_cost(t)
+        fields.update(self._rounding_fields(cost, message))
+
+        def build():
+            if requirements is not None:
+                polish = requirements.allocation() if isinstance(requirements, Brief) else requirements
+                fields["requirements"] = list(getattr(polish, "requirements", polish))
+            return problem.result(t, limits, status=status, solver=solver, iterations=iterations, gap=gap,
+                                  marginal=requirements is not None, **fields)
+
+        return Brief(status, fields["message"], cost, gap, solver, t, build)
 
     def _infeasible(self, limits, message):
         return self.reference.result(None, limits, status="infeasible", solver=SOLVER_NAME,
@@ -1238,6 +1247,13 @@ class DiscreteAllocation:
             option is discrete), and with rounding ``unrounded_cost`` and
             ``rounding_cost`` [currency].
         """
+        out = self.solve_brief(overrides)
+        return out.allocation() if isinstance(out, Brief) else out
+
+    def solve_brief(self, overrides=None):
+        """As :meth:`solve`, an optimum's :class:`~allocator.solve.result.Allocation` not yet
+        built: a :class:`~allocator.solve.result.Brief`, re-checked as any result (what a
+        sweep's points need; an infeasible or failed solve's Allocation as is)."""
         limits = self.reference.limits(overrides)
         self._overrides = overrides
         for opts in self.options:  # refinement is per solve: start from the plain grid
@@ -1285,7 +1301,7 @@ class DiscreteAllocation:
         cache = {}
 
         def polish(chosen, held, lam=None):
-            return self._polish_held(chosen, held, overrides, cache, lam)[1]
+            return self._polish_held(chosen, held, overrides, cache, lam, brief=True)[1]
 
         search = OptionSearch(self, limits, active[0], polish, self.gap_target)
         out = search.run(self._last_pick)
@@ -1305,7 +1321,7 @@ class DiscreteAllocation:
             return self._result(out.options, out.tolerances, limits, status="optimal", message=message,
                                 gap=out.gap, iterations=out.nodes, labels=out.labels,
                                 solver="branch-and-bound")
-        alloc = out.allocation
+        polished = out.allocation  # a Brief: its requirements are built with the result
         held = dict(self.fix)
         for c, o, ti in zip(self.case.contributors, out.options, out.tolerances):
             if o.kind == "points" and not c.fixed:
@@ -1317,8 +1333,8 @@ class DiscreteAllocation:
             f"lower bound {_g(out.gap)}"
         )
         return self._result(out.options, out.tolerances, limits, status="optimal", message=message,
-                            gap=out.gap, iterations=out.nodes, requirements=alloc.requirements,
-                            solver=f"branch-and-bound+{alloc.solver}", lower_bound=out.bound)
+                            gap=out.gap, iterations=out.nodes, requirements=polished,
+                            solver=f"branch-and-bound+{polished.solver}", lower_bound=out.bound)
 
     def _sweep_grid(self, o: _Option) -> np.ndarray:
         """Starting grid of a continuous option when a previous solve's optimum is known.
@@ -1461,11 +1477,13 @@ class DiscreteAllocation:
                 held[c.name] = float(cand.value[j])
         return self._polish_held(chosen, held, overrides, cache)
 
-    def _polish_held(self, chosen, held, overrides, cache, lam=None):
+    def _polish_held(self, chosen, held, overrides, cache, lam=None, brief=False):
         """Continuous optimum with the options ``chosen`` and the tolerances ``held`` held.
 
         ``lam``: in a sweep, the branch and bound's multiplier for this choice at these
         limits, where the polisher's root search starts (:meth:`ExactAllocation.aim`).
+        ``brief``: a :class:`~allocator.solve.result.Brief` where the polisher gives one
+        (the branch and bound polishes many choices and keeps one).
         """
         key = tuple((o.index, held.get(c.name)) for c, o in zip(self.case.contributors, chosen))
         if key in cache:
@@ -1474,7 +1492,12 @@ class DiscreteAllocation:
             solver = self._polisher(key, chosen, held)
             if lam is not None and self._plan and hasattr(solver, "aim"):
                 solver.aim(math.log(lam))
-            alloc = None if solver is None else solver.solve(overrides)
+            if solver is None:
+                alloc = None
+            elif brief and hasattr(solver, "solve_brief"):
+                alloc = solver.solve_brief(overrides)
+            else:
+                alloc = solver.solve(overrides)
         except CaseError:
             alloc = None  # e.g. a table that is not convex: keep the grid point
         cache[key] = (chosen, alloc, held)

@@ -32,6 +32,7 @@ from .. import stack
 from ..costs.family import SmoothFamily
 from ..costs.table import points as table_points
 from .problem import AllocationProblem, allowance_with_curvature, mean_shift_allowance
+from .result import Brief
 
 __all__ = [
     "applicable",
@@ -296,6 +297,12 @@ class ExactAllocation:
 
     def solve(self, overrides=None):
         """Allocate; returns an :class:`~allocator.solve.result.Allocation`."""
+        out = self.solve_brief(overrides)
+        return out.allocation() if isinstance(out, Brief) else out
+
+    def solve_brief(self, overrides=None):
+        """As :meth:`solve`, the :class:`~allocator.solve.result.Allocation` not yet built:
+        a :class:`~allocator.solve.result.Brief` (an infeasible problem's Allocation as is)."""
         problem, dual = self.problem, self.dual
         limits = problem.limits(overrides)
         reason = problem.diagnose(limits)
@@ -321,20 +328,20 @@ class ExactAllocation:
         bound = float(bound) if math.isfinite(bound) else None
         gap = max(0.0, (cost - bound) / cost) if bound is not None and cost > 0 else None
         ok = theta >= 1.0 - 1e-9 and problem.feasible(polished, limits, rtol=problem._rtol())
-        return problem.result(
-            polished,
-            limits,
-            status="optimal" if ok else "failed",
-            message=(
-                "exact 1-D Lagrange dual; re-checked against the requirement"
-                if ok
-                else f"dual solution needed a shrink of {1 - theta:.2e} to meet the requirement"
-            ),
-            solver=SOLVER_NAME,
-            iterations=dual.evaluations,
-            gap=gap,
-            multipliers=dual.multipliers([float(lam)], allowance),
+        status = "optimal" if ok else "failed"
+        message = (
+            "exact 1-D Lagrange dual; re-checked against the requirement"
+            if ok
+            else f"dual solution needed a shrink of {1 - theta:.2e} to meet the requirement"
         )
+        evaluations = dual.evaluations
+        multipliers = dual.multipliers([float(lam)], allowance)
+
+        def build():
+            return problem.result(polished, limits, status=status, message=message, solver=SOLVER_NAME,
+                                  iterations=evaluations, gap=gap, multipliers=multipliers)
+
+        return Brief(status, message, cost, gap, SOLVER_NAME, polished, build)
 
     def prime(self, overrides_seq) -> None:
         """Solve the dual for the limits a sweep will ask for, in one batched call.
@@ -675,6 +682,13 @@ class MeanShiftExact:
 
     def solve(self, overrides=None):
         """Allocate; returns an :class:`~allocator.solve.result.Allocation`."""
+        out = self.solve_brief(overrides)
+        return out.allocation() if isinstance(out, Brief) else out
+
+    def solve_brief(self, overrides=None):
+        """As :meth:`solve`, the :class:`~allocator.solve.result.Allocation` of a settled
+        Newton not yet built: a :class:`~allocator.solve.result.Brief` (other outcomes,
+        the conic solver's included, as Allocations)."""
         problem = self.problem
         limits = problem.limits(overrides)
         reason = problem.diagnose(limits)
@@ -690,12 +704,16 @@ class MeanShiftExact:
             gap = max(0.0, (cost - bound) / cost) if cost > 0 else 0.0
             verified = theta >= 1.0 - 1e-9 and problem.feasible(polished, limits, rtol=problem._rtol())
             if verified and gap <= GAP_LIMIT:
-                return problem.result(
-                    polished, limits, status="optimal",
-                    message="KKT conditions solved by Newton (separable in the multipliers); "
-                    "re-checked against the requirement",
-                    solver=self.SOLVER_NAME, iterations=self.evaluations, gap=gap, multipliers=[mu],
-                )
+                message = ("KKT conditions solved by Newton (separable in the multipliers); "
+                           "re-checked against the requirement")
+                evaluations = self.evaluations
+
+                def build():
+                    return problem.result(polished, limits, status="optimal", message=message,
+                                          solver=self.SOLVER_NAME, iterations=evaluations, gap=gap,
+                                          multipliers=[mu])
+
+                return Brief("optimal", message, cost, gap, self.SOLVER_NAME, polished, build)
         # Newton did not settle (or its answer did not verify): the conic solver decides
         if self._fallback is None:
             return problem.result(None, limits, status="failed", solver=self.SOLVER_NAME,

@@ -11,7 +11,7 @@ from __future__ import annotations
 import math
 from dataclasses import FrozenInstanceError, asdict, dataclass
 from types import MappingProxyType
-from typing import TYPE_CHECKING
+from typing import TYPE_CHECKING, Callable
 
 import numpy as np
 
@@ -20,7 +20,7 @@ from .. import status as _status
 if TYPE_CHECKING:  # pandas is imported where it is used
     import pandas as pd
 
-__all__ = ["Allocation", "RequirementResult", "STATUSES"]
+__all__ = ["Allocation", "Brief", "RequirementResult", "STATUSES"]
 
 STATUSES = _status.SOLVE  # see allocator.status
 
@@ -398,6 +398,49 @@ class Allocation:
         if self.message:
             lines.append(f"  {self.message}")
         return "\n".join(lines)
+
+
+@dataclass(frozen=True)
+class Brief:
+    """A solve's verdict before its :class:`Allocation` is built.
+
+    What the many solves inside a sweep or a branch and bound read: the status, the
+    total cost, the gap and the allocated tolerances, re-checked like any allocation's.
+    :meth:`allocation` builds the complete :class:`Allocation` (the same object the plain
+    solve returns) when one is wanted; building it is most of a fast solve's time.
+
+    Attributes
+    ----------
+    status : str
+        As :attr:`Allocation.status`.
+    message : str
+    total_cost : float or None
+        [currency]
+    gap : float or None
+        Relative gap to a proven lower bound (None where none was proven).
+    solver : str
+    """
+
+    status: str
+    message: str
+    total_cost: float | None
+    gap: float | None
+    solver: str
+    _allocated: np.ndarray | None = None
+    _build: Callable[[], "Allocation"] | None = None
+
+    @property
+    def success(self) -> bool:
+        """True when ``status`` is 'optimal'."""
+        return self.status == _status.OPTIMAL
+
+    def allocated_array(self) -> np.ndarray | None:
+        """Allocated tolerances in case order (a copy; None when infeasible)."""
+        return None if self._allocated is None else np.array(self._allocated, dtype=float)
+
+    def allocation(self) -> "Allocation":
+        """The complete :class:`Allocation` (built now)."""
+        return self._build()
 
 
 def _frozen_array(values) -> np.ndarray:
