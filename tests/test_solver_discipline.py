@@ -279,3 +279,25 @@ def test_a_failed_message_names_each_solvers_reason(monkeypatch, model):
         result = allocate(CASE, model)
     for name in ("clarabel", "scs"):
         assert f"{name}: inaccurate" in result.message, result.message
+
+
+@pytest.mark.parametrize("model", MODELS)
+@pytest.mark.parametrize("excess", [1e-15, 1e-13, 1e-10, 1e-6, 1e-2, 0.3])
+def test_polish_shrinks_to_the_largest_factor_that_meets_the_requirements(model, excess):
+    # The optimum pushed outward by ``excess``: polish() returns the largest shrink factor
+    # θ whose point meets every requirement, to the last float: θ itself passes the numpy
+    # check and the next float above it fails (maximality checked directly, not through
+    # the search that found it).
+    from allocator.solve import prepare
+
+    problem = prepare(CASE, model)
+    limits = problem.limits(None)
+    t = HONEST[model].allocated_array() * (1.0 + excess)
+    polished, theta = problem.polish(t, limits)
+    free = problem.free
+    assert 0.0 < theta <= 1.0
+    assert problem.feasible(polished, limits)
+    if theta < 1.0:
+        above = np.nextafter(theta, 2.0)
+        shrunk = np.where(free, np.maximum(problem.tightest, above * np.clip(t, problem.tightest, problem.loosest)), t)
+        assert not problem.feasible(shrunk, limits), (theta, above)

@@ -611,8 +611,10 @@ class AllocationProblem:
         """Smallest shrink of the free tolerances that meets every requirement.
 
         Returns ``(t', θ)`` with ``t'_i = max(lower_i, θ·t_i)`` for free contributors
-        and θ ∈ (0, 1] found by bisection (1 when ``t`` is already feasible). Every
-        constraint is monotone in every tolerance, so feasibility is monotone in θ.
+        and θ ∈ (0, 1] the largest that meets them (1 when ``t`` is already feasible):
+        ``1 − θ`` of 1e-15, 1e-12, ... is tried first (a solver's answer misses by
+        round-off as a rule), then bisection. Every constraint is monotone in every
+        tolerance, so feasibility is monotone in θ.
         """
         t = np.clip(t, self.tightest, self.loosest)
         if self.feasible(t, limits):
@@ -624,6 +626,14 @@ class AllocationProblem:
             good = float(np.min(self.tightest[free] / np.maximum(t[free], 1e-300)))
         if not self.feasible(shrink(good), limits):
             return shrink(good), good  # infeasible even at the tightest: caller reports
+        # a solver's answer on the constraint misses it by round-off as a rule: shrinks of
+        # 1e-15, 1e-12, ... first, then bisection (some 50 checks fewer)
+        step = 1e-15
+        while 1.0 - step > good:
+            if self.feasible(shrink(1.0 - step), limits):
+                good = 1.0 - step
+                break
+            bad, step = 1.0 - step, step * 1e3
         for _ in range(200):
             mid = 0.5 * (good + bad)
             if mid in (good, bad):
