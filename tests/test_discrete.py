@@ -969,3 +969,36 @@ def test_mean_shift_polish_started_from_another_choice_prices_matches_a_fresh_so
         fallout = max(stats.norm.cdf(req.lower, 10.0 + s * delta, sigma)
                       + stats.norm.sf(upper, 10.0 + s * delta, sigma) for s in (-1.0, 1.0))
         assert fallout <= 100e-6 * (1 + 1e-6)
+
+
+def test_mean_shift_solver_reused_along_a_sweep_matches_fresh_solves():
+    # One solver through many limits (as a sweep's polisher): after two solves its Newton
+    # starts on the line through the last two solves' prices. Each answer, in any order of
+    # limits and over a fallout target too, must be a fresh solver's (cost to 1e-9) and
+    # meet the requirement by scipy.stats (normal parts σ = t/3, the mean anywhere in y0 ± δ).
+    from allocator.solve import solver_for
+
+    chain = {"a": 1.0, "b": -1.0, "c": 1.0}
+    curves = {"a": CostCurve("reciprocal", a=1.0, b=0.05), "b": CostCurve("reciprocal", a=2.0, b=0.02),
+              "c": CostCurve("exponential", a=0.5, b=3.0, c=40.0)}
+    parts = [Contributor(name=n, nominal=10.0, tolerance=0.05, limits=(0.005, 0.2), cost=curves[n],
+                         mean_shift=(0.2, 0.0, 0.1)[i]) for i, n in enumerate(chain)]
+    req = Requirement(name="gap", chain=chain, lower=10.0 - 0.12, upper=10.0 + 0.12, fallout_ppm=100)
+    case = Case(title="invented", contributors=tuple(parts), requirements=(req,),
+                allocation=AllocationSettings(models=("mean-shift",)))
+    reused = solver_for(case, "mean-shift")
+    sequence = [{"upper": u} for u in (10.10, 10.11, 10.12, 10.14, 10.13, 10.105, 10.2)]
+    sequence += [{"fallout_ppm": p} for p in (10.0, 30.0, 100.0, 1000.0, 3.0)]
+    for change in sequence:
+        overrides = {"gap": change}
+        one, ref = reused.solve(overrides), solver_for(case, "mean-shift").solve(overrides)
+        assert one.status == ref.status == "optimal", (change, one.message)
+        assert one.total_cost == pytest.approx(ref.total_cost, rel=1e-9), change
+        t = one.allocated_array()
+        upper = change.get("upper", req.upper)
+        target = change.get("fallout_ppm", req.fallout_ppm) * 1e-6
+        sigma = float(np.sqrt(np.sum((t / 3.0) ** 2)))
+        delta = float(np.sum(np.array([0.2, 0.0, 0.1]) * t))
+        fallout = max(stats.norm.cdf(req.lower, 10.0 + s * delta, sigma)
+                      + stats.norm.sf(upper, 10.0 + s * delta, sigma) for s in (-1.0, 1.0))
+        assert fallout <= target * (1 + 1e-6), change

@@ -654,6 +654,7 @@ class MeanShiftExact:
         self._conic = None
         self._warm = None  # (α, β) of the last settled solve: the next one (a sweep) starts there
         self._last_t = None  # the last tolerances evaluated (where the next evaluation's roots start)
+        self._path = []  # (log key, log α, β) of the last two settled solves (_starts)
 
     def tolerances(self, alpha: float, beta: float) -> np.ndarray:
         self.evaluations += 1
@@ -730,9 +731,16 @@ class MeanShiftExact:
         constraint = _ShiftConstraint(req.nominal, lim)
         if self._residual(self.hi, constraint, curvature=False)[0] <= 0:
             return self._loosest()
-        # 0. from the last solve's prices (a sweep's previous point), when Newton settles there
-        settled = self._newton(self._warm[0], constraint, self._warm[1]) if self._warm is not None else None
-        if settled is None or settled[2][1][0] > 1e-9:
+        # 0. from the prices the last solves' path points to (a sweep's next point), or
+        # the last solve's own, when Newton settles there
+        key = mean_shift_allowance(req.nominal, 0.0, lim)[0] if self._warm is not None else None
+        settled = None
+        for start in self._starts(key):
+            settled = self._newton(start[0], constraint, start[1])
+            if settled is not None and settled[2][1][0] <= 1e-9:
+                break
+            settled = None
+        if settled is None:
             # 1. β = 0: a point on the constraint (F1 decreases as α grows)
             alpha = self._start(constraint)
             if alpha is None:
@@ -743,10 +751,31 @@ class MeanShiftExact:
                 return None
         alpha, beta, state = settled
         self._warm = (alpha, beta)
+        if key is not None and key > 0 and alpha > 0:
+            self._path = [p for p in self._path[-1:] if p[0] != math.log(key)] + [
+                (math.log(key), math.log(alpha), beta)]
         t, res, sigma, delta, g, g1, g2, scale = state
         if res[0] > 1e-9:
             return None
         return t, alpha * sigma, self._lower_bound(t, alpha, beta, sigma, g)
+
+    def _starts(self, key):
+        """Newton's starts ``(α, β)`` before the cold one: on the line through the last two
+        settled solves' prices against ``key`` (the allowed σ at zero shift: it moves
+        smoothly with any limit or target; log α and β linear in log key), then the last
+        solve's prices."""
+        if self._warm is None:
+            return []
+        starts = []
+        if len(self._path) == 2 and key is not None and key > 0:
+            (x0, a0, b0), (x1, a1, b1) = self._path
+            x = math.log(key)
+            if x1 != x0 and x not in (x0, x1):
+                f = (x - x1) / (x1 - x0)
+                alpha, beta = math.exp(a1 + f * (a1 - a0)), b1 + f * (b1 - b0)
+                if math.isfinite(alpha) and math.isfinite(beta):
+                    starts.append((alpha, max(beta, 0.0)))
+        return starts + [self._warm]
 
     def _loosest(self):
         """``(t, μ, bound)`` when the loosest tolerances meet the requirement: no trade-off."""
