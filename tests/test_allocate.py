@@ -756,3 +756,34 @@ def test_mean_shift_newton_re_solves_match_the_conic_path():
         assert result.total_cost == pytest.approx(expected.total_cost, rel=1e-7)
         moved = make_case(case.contributors, (replace(req, upper=upper),), models=("mean-shift",))
         assert Reference(moved, "mean-shift").feasible(result.allocated_array(), rtol=1e-6)[0]
+
+
+@pytest.mark.parametrize("mean, lower, upper, ppm", [(0.1, -1.0, 1.0, 1000.0), (0.0, None, 2.0, 100.0),
+                                                     (0.5, -0.2, None, 10.0), (0.6, 0.0, 1.0, 2700.0),
+                                                     (0.0, -1.0, 1.0, 100.0)])
+def test_sigma_limit_curvature_against_scipy(mean, lower, upper, ppm):
+    # σ_max(μ) from scipy alone (brentq on scipy.stats.norm's two tails), its second
+    # derivative by a five-point difference with Richardson's step halving, against the
+    # closed form the mean-shift Newton uses (allowance_with_curvature)
+    from allocator.solve.problem import sigma_limit_curvature
+
+    p = ppm * 1e-6
+
+    def sigma_max(mu):
+        tails = lambda s: ((stats.norm.cdf(lower, mu, s) if lower is not None else 0.0)  # noqa: E731
+                           + (stats.norm.sf(upper, mu, s) if upper is not None else 0.0) - p)
+        return optimize.brentq(tails, 1e-6, 10.0, xtol=1e-15, rtol=4 * np.finfo(float).eps)
+
+    def second(h):
+        f = [sigma_max(mean + k * h) for k in (-2, -1, 0, 1, 2)]
+        return (-f[0] + 16 * f[1] - 30 * f[2] + 16 * f[3] - f[4]) / (12 * h * h)
+
+    reference = (16 * second(5e-4) - second(1e-3)) / 15
+    lim = RequirementLimits(lower, upper, ppm)
+    got = sigma_limit_curvature(mean, stack.sigma_limit(mean, p, lower, upper), lim)
+    if lower is None or upper is None:  # one limit: σ_max = distance / z is linear in μ
+        assert abs(got) <= 1e-9 and abs(reference) <= 1e-6
+    else:
+        assert abs(reference) > 1e-3  # a curvature worth checking
+        assert got == pytest.approx(reference, rel=1e-4)
+    assert sigma_limit_curvature(mean, 0.0, lim) is None

@@ -291,9 +291,40 @@ def mean_shift_allowance(nominal: float, delta: float, limits: RequirementLimits
     return high
 
 
+def sigma_limit_curvature(mean: float, sigma: float, limits: RequirementLimits) -> float | None:
+    """``∂²σ_max/∂μ²`` (:func:`sigma_limit_slopes`' ``mean``, differentiated once more).
+
+    With ``N = φ(z_U) − φ(z_L)`` and ``D = z_L φ(z_L) + z_U φ(z_U)`` (``σ′ = N/D``),
+    ``z_L′ = −(1 + z_L σ′)/σ``, ``z_U′ = (1 − z_U σ′)/σ`` and ``φ′ = −z φ z′``:
+    ``σ″ = (N′ D − N D′)/D²`` with ``N′ = −z_U φ_U z_U′ + z_L φ_L z_L′`` and
+    ``D′ = φ_L (1 − z_L²) z_L′ + φ_U (1 − z_U²) z_U′``. None at ``σ = 0``.
+    """
+    if not sigma > 0:
+        return None
+    d_low, d_up = stack.room(mean, limits.lower, limits.upper)
+    phi_l = z_l = phi_u = z_u = 0.0
+    if limits.lower is not None:
+        z_l = -d_low / sigma
+        phi_l = math.exp(-0.5 * z_l * z_l)
+    if limits.upper is not None:
+        z_u = -d_up / sigma
+        phi_u = math.exp(-0.5 * z_u * z_u)
+    n, d = phi_u - phi_l, z_l * phi_l + z_u * phi_u
+    slope = n / d
+    zl1, zu1 = -(1.0 + z_l * slope) / sigma, (1.0 - z_u * slope) / sigma
+    n1 = -z_u * phi_u * zu1 + z_l * phi_l * zl1
+    d1 = phi_l * (1.0 - z_l * z_l) * zl1 + phi_u * (1.0 - z_u * z_u) * zu1
+    return (n1 * d - n * d1) / (d * d)
+
+
 def allowance_with_curvature(nominal: float, delta: float, lim: RequirementLimits) -> tuple[float, float, float]:
-    """g(δ), g'(δ) and g''(δ) (the last by a central difference of the analytic g')."""
-    value, slope, _ = mean_shift_allowance(nominal, delta, lim)
+    """g(δ), g'(δ) and g''(δ): at the worse end of the band ``μ = ȳ ± δ``, ``g″ = σ_max″(μ)``
+    in closed form (:func:`sigma_limit_curvature`); a central difference of the analytic
+    g' where σ_max is 0."""
+    value, slope, mean = mean_shift_allowance(nominal, delta, lim)
+    curvature = sigma_limit_curvature(mean, value, lim)
+    if curvature is not None and math.isfinite(curvature):
+        return value, slope, curvature
     domain = min(stack.room(nominal, lim.lower, lim.upper))
     h = 1e-5 * max(delta, 1e-3 * domain)
     if delta - h < 0:
