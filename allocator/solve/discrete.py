@@ -1256,10 +1256,6 @@ class DiscreteAllocation:
         sweep's points need; an infeasible or failed solve's Allocation as is)."""
         limits = self.reference.limits(overrides)
         self._overrides = overrides
-        for opts in self.options:  # refinement is per solve: start from the plain grid
-            for o in opts:
-                if o.kind == "continuous":
-                    o.grid = o.base_grid if self._last_t is None else self._sweep_grid(o)
         carried = self._tangent_points
         self._tangents = {}  # requirement -> [(u, rhs, g'(δ))]: mean-shift cuts for these limits
         self._tangent_points = {}  # requirement -> [(u, δ*)] of those cuts
@@ -1283,6 +1279,12 @@ class DiscreteAllocation:
         searched = self._search(limits, overrides)
         if searched is not None:
             return searched
+        # the MILP's grids (the branch and bound needs none): refinement is per solve,
+        # from the plain grid (or, in a sweep, the grid around the last optimum)
+        for opts in self.options:
+            for o in opts:
+                if o.kind == "continuous":
+                    o.grid = o.base_grid if self._last_t is None else self._sweep_grid(o)
         if self.has_continuous:
             return self._solve_with_polish(limits, overrides)
         return self._solve_points(limits)
