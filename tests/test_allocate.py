@@ -787,3 +787,26 @@ def test_sigma_limit_curvature_against_scipy(mean, lower, upper, ppm):
         assert abs(reference) > 1e-3  # a curvature worth checking
         assert got == pytest.approx(reference, rel=1e-4)
     assert sigma_limit_curvature(mean, 0.0, lim) is None
+
+
+@pytest.mark.parametrize("model", ["worst-case", "rss", "mean-shift"])
+def test_compiled_re_solves_with_other_limits_equal_fresh_compiles(model):
+    # A compiled (conic) allocation re-solved with other limits starts with the solver
+    # settings that gave its last verified optimum; every re-solve must still be what a
+    # freshly compiled problem gives at those limits (cost to 1e-9, both verified).
+    rng = np.random.default_rng(8)
+    parts = [contributor(f"p{i}", tolerance=0.05, mean_shift=0.1 if i % 2 else 0.0,
+                         cost=CostCurve("reciprocal", a=float(rng.uniform(0.5, 2)), b=float(rng.uniform(0.01, 0.05))))
+             for i in range(8)]
+    chains = [{f"p{i}": float(rng.choice([-1.0, 1.0])) for i in range(8) if (i + k) % 3} for k in range(3)]
+    nominals = [sum(10.0 * a for a in chain.values()) for chain in chains]  # every nominal is 10
+    reqs = [chain_requirement(f"r{k}", chain, lower=y - 0.25, upper=y + 0.25, fallout_ppm=100.0)
+            for k, (chain, y) in enumerate(zip(chains, nominals))]
+    case = make_case(parts, reqs, models=(model,))
+    compiled = CompiledAllocation(case, model)
+    for upper_room in (0.25, 0.2, 0.3, 0.22):
+        overrides = {r.name: {"upper": y + upper_room} for r, y in zip(reqs, nominals)}
+        again = compiled.solve(overrides)
+        fresh = CompiledAllocation(case, model).solve(overrides)
+        assert again.status == fresh.status == "optimal", (again.message, fresh.message)
+        assert again.total_cost == pytest.approx(fresh.total_cost, rel=1e-9)

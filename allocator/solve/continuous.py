@@ -107,6 +107,7 @@ class CompiledAllocation:
         installed = set(cp.installed_solvers())
         order = SOLVER_ORDER if solvers is None else tuple(solvers)
         self.solvers = tuple(s for s in order if s.split("-")[0] in installed)
+        self._settled_by = None  # the tier of the last verified optimum (tried first next time)
         if not self.solvers:
             raise RuntimeError(f"none of the solvers {', '.join(order)} is installed")
         p = problem
@@ -300,7 +301,12 @@ class CompiledAllocation:
         shifting = self._set_rhs(limits, p.loosest)
         notes = []
         fallback = None
-        for solver in self.solvers:
+        # a re-solve (other limits) starts with the tier that gave the last verified
+        # optimum: where the tight tolerances ended 'inaccurate' they will as a rule again
+        order = self.solvers
+        if self._settled_by in order:
+            order = (self._settled_by,) + tuple(s for s in order if s != self._settled_by)
+        for solver in order:
             outcome = self._attempt(solver, limits, shifting)
             if outcome is None:
                 notes.append(f"{solver.lower()} failed")
@@ -326,6 +332,7 @@ class CompiledAllocation:
                     message += f"; {note}"
                 if theta < 1.0:
                     message += f" (polished: tolerances shrunk by {1 - theta:.1e})"
+                self._settled_by = solver
                 return p.result(polished, limits, status="optimal", message=message,
                                 solver=solver.lower(), iterations=iterations, gap=gap,
                                 multipliers=multipliers)
