@@ -203,6 +203,20 @@ class RequirementLimits:
         return self.lower is not None and self.upper is not None
 
 
+def _tails(mean: float, sigma: float, limits: RequirementLimits) -> tuple[float, float, float, float]:
+    """``(z_L, φ(z_L), z_U, φ(z_U))`` at ``σ > 0``, ``φ`` without its ``1/√(2π)``
+    (0, 0 for a missing limit): the terms of σ_max's derivatives."""
+    d_low, d_up = stack.room(mean, limits.lower, limits.upper)
+    phi_l = z_l = phi_u = z_u = 0.0
+    if limits.lower is not None:
+        z_l = -d_low / sigma
+        phi_l = math.exp(-0.5 * z_l * z_l)
+    if limits.upper is not None:
+        z_u = -d_up / sigma
+        phi_u = math.exp(-0.5 * z_u * z_u)
+    return z_l, phi_l, z_u, phi_u
+
+
 def sigma_limit_slopes(mean: float, sigma: float, limits: RequirementLimits) -> dict[str, float]:
     """Partial derivatives of the largest allowed σ (:func:`allocator.stack.sigma_limit`).
 
@@ -243,13 +257,7 @@ def sigma_limit_slopes(mean: float, sigma: float, limits: RequirementLimits) -> 
         if d_up <= d_low:
             return {"mean": -1.0 / z, "lower": 0.0, "upper": 1.0 / z, "fallout": 0.0}
         return {"mean": 1.0 / z, "lower": -1.0 / z, "upper": 0.0, "fallout": 0.0}
-    phi_l = z_l = phi_u = z_u = 0.0
-    if limits.lower is not None:
-        z_l = -d_low / sigma
-        phi_l = math.exp(-0.5 * z_l * z_l)
-    if limits.upper is not None:
-        z_u = -d_up / sigma
-        phi_u = math.exp(-0.5 * z_u * z_u)
+    z_l, phi_l, z_u, phi_u = _tails(mean, sigma, limits)
     # the 1/sqrt(2π) of φ cancels in every ratio except ∂σ/∂p
     d = z_l * phi_l + z_u * phi_u
     return {
@@ -301,14 +309,7 @@ def sigma_limit_curvature(mean: float, sigma: float, limits: RequirementLimits) 
     """
     if not sigma > 0:
         return None
-    d_low, d_up = stack.room(mean, limits.lower, limits.upper)
-    phi_l = z_l = phi_u = z_u = 0.0
-    if limits.lower is not None:
-        z_l = -d_low / sigma
-        phi_l = math.exp(-0.5 * z_l * z_l)
-    if limits.upper is not None:
-        z_u = -d_up / sigma
-        phi_u = math.exp(-0.5 * z_u * z_u)
+    z_l, phi_l, z_u, phi_u = _tails(mean, sigma, limits)
     n, d = phi_u - phi_l, z_l * phi_l + z_u * phi_u
     slope = n / d
     zl1, zu1 = -(1.0 + z_l * slope) / sigma, (1.0 - z_u * slope) / sigma
