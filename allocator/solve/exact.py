@@ -402,9 +402,9 @@ class ExactAllocation:
             [response²] (rss, mean shift); ``inf`` when the requirement has no limit
             (:meth:`SeparableDual.rhs`).
         hint : float or array_like, optional
-            A log λ near the roots (a neighbouring solve's), or one per ``S``: each bracket grows from it in
-            steps of ``step``, times 4 each, at most a decade; without it, from the curves'
-            slopes in decades.
+            A log λ near the roots (a neighbouring solve's), or one per ``S``: each
+            bracket grows from it in steps of ``step``, times 4 each, at most a decade;
+            without it, from the curves' slopes in decades.
         step : float
             The first step from ``hint`` [log λ].
 
