@@ -81,6 +81,17 @@ def range_slack(x: np.ndarray) -> float:
     return RTOL * max(abs(x[-1]), x[-1] - x[0])
 
 
+def _in_range(x: np.ndarray, t):
+    """``t`` (a float or an array) inside the tolerances ``x`` up to round-off (NaN: not)."""
+    slack = range_slack(x)
+    return (t >= x[0] - slack) & (t <= x[-1] + slack)
+
+
+def _listed(x: np.ndarray, t):
+    """``t`` (a float or an array) one of the listed tolerances ``x`` up to round-off."""
+    return np.abs(np.asarray(t)[..., None] - x).min(axis=-1) <= range_slack(x)
+
+
 def _rise_problem(x: np.ndarray, y: np.ndarray) -> str | None:
     """The first segment over which a table's cost rises (beyond round-off), or None.
 
@@ -269,8 +280,7 @@ class Table(CurveFamily):
     def domain(self, curve, t):
         """``t`` clipped onto the table range, or ValueError if it is really outside."""
         x = points(curve)[0]
-        slack = range_slack(x)
-        outside = (t < x[0] - slack) | (t > x[-1] + slack) | np.isnan(t)
+        outside = ~_in_range(x, t)
         if np.any(outside):
             bad = np.ravel(t[outside] if t.ndim else t)[0]
             raise ValueError(
@@ -283,9 +293,9 @@ class Table(CurveFamily):
         t = self.domain(curve, t)
         if curve.between == "choose":
             # only the listed tolerances exist: refuse to invent a cost between them
-            nearest = np.abs(t[..., None] - x).min(axis=-1)
-            if np.any(nearest > range_slack(x)):
-                bad = np.ravel(t[nearest > range_slack(x)] if t.ndim else t)[0]
+            unlisted = ~_listed(x, t)
+            if np.any(unlisted):
+                bad = np.ravel(t[unlisted] if t.ndim else t)[0]
                 raise ValueError(
                     f"tolerance {fmt(bad)} is not one of the listed tolerances "
                     "(between = 'choose')"
@@ -309,23 +319,17 @@ class Table(CurveFamily):
 
     # ------------------------------------------------------------------ vectorised (a loop)
     def value(self, p, t):
-        # value_at per part, NaN where it would refuse (e.g. a current tolerance outside
-        # the table), in Python floats: the solvers' results cost every table this way
-        out = np.empty(len(p))
+        # value_at per part (the same rules), NaN where it would refuse (e.g. a current
+        # tolerance outside the table), in Python floats without raising: the solvers'
+        # results cost every table this way
+        out = np.full(len(p), np.nan)
         for i, curve in enumerate(p):
-            d = _derived(curve)
-            x, y = d.x, d.y
+            x, y = _derived(curve)[:2]
             ti = float(t[i])
-            if x is None:
-                out[i] = np.nan
-                continue
-            slack = range_slack(x)
-            if not x[0] - slack <= ti <= x[-1] + slack:  # outside (or NaN)
-                out[i] = np.nan
+            if x is None or not _in_range(x, ti):
                 continue
             ti = min(max(ti, x[0]), x[-1])
-            if curve.between == "choose" and np.min(np.abs(ti - x)) > slack:
-                out[i] = np.nan  # only the listed tolerances exist
+            if curve.between == "choose" and not _listed(x, ti):
                 continue
             out[i] = np.interp(ti, x, y)
         return out
