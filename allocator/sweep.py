@@ -273,13 +273,6 @@ class _Point(NamedTuple):
     message: str
 
 
-def _complete(result) -> Allocation:
-    """The complete Allocation of a solve's result (a Brief builds its own)."""
-    from .solve.result import Brief
-
-    return result.allocation() if isinstance(result, Brief) else result
-
-
 class LimitSweep:
     """One stack model's least cost for many values of one requirement's limit or target.
 
@@ -351,7 +344,9 @@ class LimitSweep:
         A solver that raises an arithmetic error (overflow in a root search, say) gives a
         'failed' point naming the error, so one bad point does not lose the sweep.
         """
-        return _complete(self._solve(value, brief=False))
+        from .solve.result import complete
+
+        return complete(self._solve(value, brief=False))
 
     def _solve(self, value: float, brief: bool):
         """:meth:`solve`, or with ``brief`` the solver's :class:`~allocator.solve.result.Brief`
@@ -393,6 +388,8 @@ class LimitSweep:
         With ``keep``, the full allocation at that value (when it is one of ``values``, to
         1e-12 relative) is left in :attr:`kept`.
         """
+        from .solve.result import complete
+
         values = np.asarray(values, dtype=float)
         tick = tick or (lambda k: None)
         self.kept = None
@@ -413,7 +410,7 @@ class LimitSweep:
                 kept = keep is not None and _same_value(values[i], keep)
                 alloc = self._solve(values[i], brief=not kept)
                 if kept:
-                    self.kept = _complete(alloc)
+                    self.kept = complete(alloc)
                 out[i] = self._point(alloc)
                 tick(1)
         finally:

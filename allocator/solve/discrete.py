@@ -87,7 +87,7 @@ from .problem import (
     mean_shift_allowance,
     prepare,
 )
-from .result import Brief
+from .result import Brief, complete
 
 __all__ = [
     "DiscreteAllocation",
@@ -1175,7 +1175,7 @@ class DiscreteAllocation:
 
         def build():
             if requirements is not None:
-                polish = requirements.allocation() if isinstance(requirements, Brief) else requirements
+                polish = complete(requirements)
                 fields["requirements"] = list(getattr(polish, "requirements", polish))
             return problem.result(t, limits, status=status, solver=solver, iterations=iterations, gap=gap,
                                   marginal=requirements is not None, **fields)
@@ -1247,8 +1247,7 @@ class DiscreteAllocation:
             option is discrete), and with rounding ``unrounded_cost`` and
             ``rounding_cost`` [currency].
         """
-        out = self.solve_brief(overrides)
-        return out.allocation() if isinstance(out, Brief) else out
+        return complete(self.solve_brief(overrides))
 
     def solve_brief(self, overrides=None):
         """As :meth:`solve`, an optimum's :class:`~allocator.solve.result.Allocation` not yet

@@ -32,7 +32,7 @@ from .. import stack
 from ..costs.family import SmoothFamily
 from ..costs.table import points as table_points
 from .problem import AllocationProblem, allowance_with_curvature, mean_shift_allowance
-from .result import Brief
+from .result import Brief, complete
 
 __all__ = [
     "applicable",
@@ -297,8 +297,7 @@ class ExactAllocation:
 
     def solve(self, overrides=None):
         """Allocate; returns an :class:`~allocator.solve.result.Allocation`."""
-        out = self.solve_brief(overrides)
-        return out.allocation() if isinstance(out, Brief) else out
+        return complete(self.solve_brief(overrides))
 
     def solve_brief(self, overrides=None):
         """As :meth:`solve`, the :class:`~allocator.solve.result.Allocation` not yet built:
@@ -683,8 +682,7 @@ class MeanShiftExact:
 
     def solve(self, overrides=None):
         """Allocate; returns an :class:`~allocator.solve.result.Allocation`."""
-        out = self.solve_brief(overrides)
-        return out.allocation() if isinstance(out, Brief) else out
+        return complete(self.solve_brief(overrides))
 
     def solve_brief(self, overrides=None):
         """As :meth:`solve`, the :class:`~allocator.solve.result.Allocation` of a settled

@@ -20,7 +20,7 @@ from .. import status as _status
 if TYPE_CHECKING:  # pandas is imported where it is used
     import pandas as pd
 
-__all__ = ["Allocation", "Brief", "RequirementResult", "STATUSES"]
+__all__ = ["Allocation", "Brief", "RequirementResult", "STATUSES", "complete"]
 
 STATUSES = _status.SOLVE  # see allocator.status
 
@@ -441,6 +441,12 @@ class Brief:
     def allocation(self) -> "Allocation":
         """The complete :class:`Allocation` (built now)."""
         return self._build()
+
+
+def complete(result):
+    """The complete :class:`Allocation` of a solve's result: a :class:`Brief` builds its
+    own, an Allocation is returned as it is."""
+    return result.allocation() if isinstance(result, Brief) else result
 
 
 def _frozen_array(values) -> np.ndarray:
