@@ -439,11 +439,13 @@ class OptionSearch:
         allowed = mean_shift_allowance(self.req.nominal, delta, self.lim)[0]
         return sigma <= allowed * (1 + CHECK_RTOL)
 
-    def _evaluate(self, pick, lam=None):
+    def _evaluate(self, pick, lam=None, screen=False):
         """Cost and tolerances of the choice ``pick`` (entry per contributor), or None.
 
         ``lam``: the multiplier of the bound that picked it (the polish's root is there
-        when the pick is the bound's own choice throughout its last bracket)."""
+        when the pick is the bound's own choice throughout its last bracket). ``screen``:
+        a choice to polish only if its own bound does not rule it out
+        (:meth:`_worth_polishing`)."""
         key = tuple(int(k) for k in pick)
         if key in self._seen:
             return None
@@ -454,6 +456,8 @@ class OptionSearch:
             if not self._check(pick, t):
                 return None
             return float(np.sum(e.n * e.c_point[pick])), t, None
+        if screen and not self._worth_polishing(pick):
+            return None  # ruled out at the incumbent's cost or above (it only falls)
         held = dict(self.solver.fix)
         for c, k in zip(self.solver.case.contributors, pick):
             if not e.continuous[k] and not c.fixed:
@@ -465,10 +469,10 @@ class OptionSearch:
             return None
         return float(alloc.total_cost), np.asarray(alloc.allocated_array(), dtype=float), alloc
 
-    def _offer(self, pick, lam=None) -> bool:
-        """Evaluate ``pick`` (``lam``: as :meth:`_evaluate`); keep it if it beats the
-        incumbent. True when it did."""
-        out = self._evaluate(pick, lam)
+    def _offer(self, pick, lam=None, screen=False) -> bool:
+        """Evaluate ``pick`` (``lam``, ``screen``: as :meth:`_evaluate`); keep it if it
+        beats the incumbent. True when it did."""
+        out = self._evaluate(pick, lam, screen)
         if out is None:
             return False
         cost, t, alloc = out
@@ -556,8 +560,7 @@ class OptionSearch:
                 # the dual's choice as an incumbent (a polish each with continuous
                 # processes: at the root only, the leaves polish the rest; not where a
                 # sweep's last choice already leaves the root within the gap target)
-                if tuple(int(k) for k in b.feasible_pick) not in self._seen and self._worth_polishing(b.feasible_pick):
-                    self._offer(b.feasible_pick, b.lam)
+                self._offer(b.feasible_pick, b.lam, screen=True)
             if not e.continuous[b.pick].any():
                 self._offer(b.pick)
             if self.best is not None and self._pruned(value) and b.rough:

@@ -1531,7 +1531,7 @@ class DiscreteAllocation:
             latest = next((p for p in reversed(self._polishers.values())
                            if getattr(p, "hint", None) is not None), None)
             if latest is not None:
-                solver.start_at(latest.hint, like=latest if hasattr(latest, "_known") else None)
+                solver.start_at(latest.hint, like=latest)
             elif self._lambda_hint is not None and 0.0 < self._lambda_hint < math.inf:
                 solver.start_at(math.log(self._lambda_hint))
             else:
