@@ -443,7 +443,7 @@ class Brief:
         return self._build()
 
 
-def complete(result):
+def complete(result: "Allocation | Brief") -> "Allocation":
     """The complete :class:`Allocation` of a solve's result: a :class:`Brief` builds its
     own, an Allocation is returned as it is."""
     return result.allocation() if isinstance(result, Brief) else result
